@@ -1,0 +1,1 @@
+"""Layer 2: loaders and writers (depends on data only)."""

@@ -1,0 +1,8 @@
+"""Static matplotlib figures for papers (outside the compute layer; never widgets).
+
+Submodules: ``spectra`` (TRPES maps and decompositions), ``populations``
+(populations, fits, decay-associated spectra), ``structures`` (clusters,
+flagged trajectories).
+"""
+
+__all__: list[str] = []
