@@ -1,0 +1,415 @@
+"""Spectra: raw stick contributions and broadened time-resolved photoelectron maps.
+
+Two kinds of object, kept apart on purpose:
+
+* :class:`StickSpectrum` holds the *raw* ionisation sticks of an ensemble: one
+  row per (snapshot, open ionisation channel) with its kinetic energy and
+  weight. It is never resampled or broadened.
+* :class:`TRPESMap` holds a *broadened* map on a (delay, kinetic energy) grid,
+  with additive components (by state, channel, ...), the alive weight per delay
+  and the parameters that made it.
+
+Both are immutable (frozen dataclasses with read-only arrays). Units: kinetic
+energies in eV, delays and times in fs, intensities in eV^-1 (per unit kinetic
+energy, normalised as chosen when the map was made).
+"""
+
+from __future__ import annotations
+
+import io as _io
+import json
+import os
+import tempfile
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import numpy.typing as npt
+import pandas as pd
+
+from ..errors import ParseError, SchemaError
+
+__all__ = ["TRPESMap", "StickSpectrum", "TRPES_FORMAT"]
+
+#: tag written into saved maps (npz key ``format`` / first CSV comment line)
+TRPES_FORMAT = "ensemblelab-trpes-map-v1"
+
+
+def _ro(a: Any, name: str, *, dtype: Any = np.float64, ndim: int | None = None) -> np.ndarray:
+    arr = np.array(a, dtype=dtype, copy=True)
+    if ndim is not None and arr.ndim != ndim:
+        raise SchemaError(f"{name} must be a {ndim}-D array; got shape {arr.shape}.")
+    arr.setflags(write=False)
+    return arr
+
+
+def _json_safe(value: Any) -> Any:
+    """Turn numpy scalars/arrays and tuples into JSON-friendly values (recursively)."""
+    if isinstance(value, Mapping):
+        return {str(k): _json_safe(v) for k, v in value.items()}
+    if isinstance(value, list | tuple):
+        return [_json_safe(v) for v in value]
+    if isinstance(value, np.ndarray):
+        return _json_safe(value.tolist())
+    if isinstance(value, np.generic):
+        return value.item()
+    if isinstance(value, float | int | str | bool) or value is None:
+        return value
+    return repr(value)
+
+
+def _atomic_write_bytes(path: Path, data: bytes) -> None:
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    try:
+        with os.fdopen(fd, "wb") as fh:
+            fh.write(data)
+        os.replace(tmp, path)
+    except BaseException:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+        raise
+
+
+@dataclass(frozen=True, eq=False, repr=False)
+class TRPESMap:
+    """A broadened time-resolved photoelectron map (immutable).
+
+    Attributes
+    ----------
+    energies : ndarray, shape (n_energies,)
+        Photoelectron kinetic energies in eV (increasing).
+    delays : ndarray, shape (n_delays,)
+        Pump-probe delays in fs (increasing).
+    intensity : ndarray, shape (n_delays, n_energies)
+        Signal in eV^-1 (see ``params["normalise"]``).
+    components : dict of str to ndarray, shape (n_delays, n_energies) each
+        Additive decomposition of `intensity` (empty when none was asked for);
+        labels such as ``"S1"``, ``"D0"``, ``"S1->D0"``.
+    alive : ndarray, shape (n_delays,)
+        Alive trajectory weight (count for unit weights) behind each delay of the
+        pure signal, interpolated to the delay grid.
+    params : dict
+        The parameters used (JSON-serialisable).
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> m = TRPESMap(energies=np.linspace(0, 2, 5), delays=np.array([0.0, 10.0]),
+    ...              intensity=np.ones((2, 5)), alive=np.array([3.0, 3.0]))
+    >>> m.shape
+    (2, 5)
+    >>> len(m.to_frame())
+    10
+    """
+
+    energies: np.ndarray
+    delays: np.ndarray
+    intensity: np.ndarray
+    components: dict[str, np.ndarray] = field(default_factory=dict)
+    alive: np.ndarray | None = None
+    params: dict[str, Any] = field(default_factory=dict)
+
+    def __post_init__(self) -> None:
+        set_ = object.__setattr__
+        e = _ro(self.energies, "energies", ndim=1)
+        d = _ro(self.delays, "delays", ndim=1)
+        inten = _ro(self.intensity, "intensity", ndim=2)
+        shape = (d.size, e.size)
+        if inten.shape != shape:
+            raise SchemaError(
+                f"intensity must have shape (n_delays, n_energies) = {shape}; got {inten.shape}."
+            )
+        for name, arr in (("energies", e), ("delays", d)):
+            if arr.size > 1 and np.any(np.diff(arr) <= 0):
+                raise SchemaError(f"{name} must increase strictly; got {arr[:5]!r}...")
+        comps: dict[str, np.ndarray] = {}
+        for label, arr in dict(self.components).items():
+            c = _ro(arr, f"components[{label!r}]", ndim=2)
+            if c.shape != shape:
+                raise SchemaError(
+                    f"components[{label!r}] must have shape {shape} like intensity; got {c.shape}."
+                )
+            comps[str(label)] = c
+        alive = (np.full(d.size, np.nan) if self.alive is None
+                 else _ro(self.alive, "alive", ndim=1))
+        if alive.shape != (d.size,):
+            raise SchemaError(f"alive must have shape (n_delays={d.size},); got {alive.shape}.")
+        alive = _ro(alive, "alive")
+        set_(self, "energies", e)
+        set_(self, "delays", d)
+        set_(self, "intensity", inten)
+        set_(self, "components", comps)
+        set_(self, "alive", alive)
+        set_(self, "params", _json_safe(dict(self.params)))
+
+    # ------------------------------------------------------------------ basics
+    @property
+    def shape(self) -> tuple[int, int]:
+        """(n_delays, n_energies)."""
+        return self.intensity.shape
+
+    @property
+    def n_delays(self) -> int:
+        """Number of delays."""
+        return self.delays.size
+
+    @property
+    def n_energies(self) -> int:
+        """Number of kinetic energies."""
+        return self.energies.size
+
+    def component_sum(self) -> np.ndarray:
+        """Sum of all components, shape (n_delays, n_energies) (zeros if there are none)."""
+        total = np.zeros(self.shape)
+        for arr in self.components.values():
+            total = total + arr
+        return total
+
+    def replace(self, **changes: Any) -> TRPESMap:
+        """Return a new TRPESMap with some fields replaced."""
+        fields_ = {name: getattr(self, name) for name in self.__dataclass_fields__}
+        fields_.update(changes)
+        return type(self)(**fields_)
+
+    def to_frame(self, *, components: bool = True) -> pd.DataFrame:
+        """The map as a tidy long frame.
+
+        Parameters
+        ----------
+        components : bool, default True
+            Also add one row block per component.
+
+        Returns
+        -------
+        DataFrame
+            Columns ``component`` (``"total"`` then each component label),
+            ``delay`` (fs), ``energy`` (eV), ``intensity`` (eV^-1) and ``alive``;
+            one row per (component, delay, energy), delay-major.
+        """
+        blocks = [("total", self.intensity)]
+        if components:
+            blocks += list(self.components.items())
+        nd, ne = self.shape
+        delay = np.repeat(self.delays, ne)
+        energy = np.tile(self.energies, nd)
+        alive = np.repeat(self.alive, ne)
+        frames = [
+            pd.DataFrame({"component": label, "delay": delay, "energy": energy,
+                          "intensity": arr.reshape(-1), "alive": alive})
+            for label, arr in blocks
+        ]
+        out = pd.concat(frames, ignore_index=True)
+        out["component"] = out["component"].astype(str)
+        return out
+
+    # ------------------------------------------------------------------ files
+    def save(self, path: str | os.PathLike[str], *, overwrite: bool = True) -> Path:
+        """Write the map atomically as ``.npz`` (everything) or ``.csv`` (total only).
+
+        NPZ keys: ``format``, ``energies``, ``delays``, ``intensity``, ``alive``,
+        ``component_labels`` (unicode array), ``components`` (n_components,
+        n_delays, n_energies) and ``params`` (a JSON string). Written without
+        pickles, read back with ``allow_pickle=False``.
+
+        CSV: comment lines ``# ensemblelab-trpes-map-v1``, ``# params: {json}``,
+        ``# alive: v1,v2,...``; then a grid whose first row is ``delay_fs`` followed
+        by the kinetic energies (eV) and whose first column holds the delays (fs).
+        The same grid layout is read by :func:`ensemblelab.io.maps.load_measured_map`.
+
+        Parameters
+        ----------
+        path : path-like
+            Target file; the suffix (``.npz`` or ``.csv``) picks the format.
+        overwrite : bool, default True
+            Refuse to replace an existing file when False.
+
+        Returns
+        -------
+        Path
+            The written file.
+        """
+        path = Path(path)
+        suffix = path.suffix.lower()
+        if suffix not in (".npz", ".csv"):
+            raise ValueError(f"path must end in .npz or .csv; got {path.name!r}.")
+        if path.exists() and not overwrite:
+            raise FileExistsError(f"{path} exists; pass overwrite=True to replace it.")
+        if suffix == ".npz":
+            labels = list(self.components)
+            comps = (np.stack([self.components[k] for k in labels]) if labels
+                     else np.zeros((0, *self.shape)))
+            buf = _io.BytesIO()
+            np.savez_compressed(
+                buf,
+                format=np.array(TRPES_FORMAT),
+                energies=self.energies,
+                delays=self.delays,
+                intensity=self.intensity,
+                alive=self.alive,
+                component_labels=np.array(labels, dtype=np.str_),
+                components=comps,
+                params=np.array(json.dumps(self.params)),
+            )
+            _atomic_write_bytes(path, buf.getvalue())
+            return path
+        lines = [
+            f"# {TRPES_FORMAT}",
+            f"# params: {json.dumps(self.params)}",
+            "# alive: " + ",".join(repr(float(a)) for a in self.alive),
+            "delay_fs," + ",".join(repr(float(e)) for e in self.energies),
+        ]
+        for d, row in zip(self.delays, self.intensity, strict=True):
+            lines.append(repr(float(d)) + "," + ",".join(repr(float(v)) for v in row))
+        _atomic_write_bytes(path, ("\n".join(lines) + "\n").encode())
+        return path
+
+    @classmethod
+    def load(cls, path: str | os.PathLike[str]) -> TRPESMap:
+        """Read a map written by :meth:`save` (``.npz`` or ``.csv``).
+
+        Raises
+        ------
+        ParseError
+            When the file is not a saved TRPES map.
+        """
+        path = Path(path)
+        if path.suffix.lower() == ".npz":
+            try:
+                with np.load(path, allow_pickle=False) as z:
+                    data = {k: z[k] for k in z.files}
+            except (OSError, ValueError) as exc:
+                raise ParseError(f"not a readable npz file ({exc})", path=path) from exc
+            need = ("energies", "delays", "intensity")
+            missing = [k for k in need if k not in data]
+            if missing:
+                raise ParseError(f"missing array(s) {missing}; found {sorted(data)}", path=path,
+                                 hint="save maps with TRPESMap.save(...).")
+            labels = [str(x) for x in data.get("component_labels", np.array([], dtype=str))]
+            comps = data.get("components", np.zeros((0,)))
+            params = json.loads(str(data["params"])) if "params" in data else {}
+            return cls(energies=data["energies"], delays=data["delays"],
+                       intensity=data["intensity"],
+                       components={lab: comps[i] for i, lab in enumerate(labels)},
+                       alive=data.get("alive"), params=params)
+        text = path.read_text()
+        params: dict[str, Any] = {}
+        alive = None
+        rows: list[list[float]] = []
+        header: list[float] | None = None
+        for lineno, line in enumerate(text.splitlines(), start=1):
+            s = line.strip()
+            if not s:
+                continue
+            if s.startswith("#"):
+                body = s[1:].strip()
+                if body.startswith("params:"):
+                    params = json.loads(body[len("params:"):])
+                elif body.startswith("alive:"):
+                    alive = [float(x) for x in body[len("alive:"):].split(",") if x.strip()]
+                continue
+            cells = s.split(",")
+            try:
+                if header is None:
+                    header = [float(x) for x in cells[1:]]
+                else:
+                    rows.append([float(x) for x in cells])
+            except ValueError as exc:
+                raise ParseError(f"non-numeric cell ({exc})", path=path, line=lineno) from exc
+        if header is None or not rows:
+            raise ParseError("no grid found", path=path, hint="expected a header row of energies")
+        grid = np.array(rows)
+        return cls(energies=np.array(header), delays=grid[:, 0], intensity=grid[:, 1:],
+                   alive=None if alive is None else np.array(alive), params=params)
+
+    # ------------------------------------------------------------------ display
+    def __repr__(self) -> str:
+        comps = ", ".join(self.components) or "-"
+        return (
+            f"<ensemblelab.TRPESMap {self.n_delays} delays x {self.n_energies} energies; "
+            f"delay {self.delays[0]:.6g}..{self.delays[-1]:.6g} fs, energy "
+            f"{self.energies[0]:.6g}..{self.energies[-1]:.6g} eV; components: {comps}>"
+            if self.n_delays and self.n_energies else "<ensemblelab.TRPESMap (empty)>"
+        )
+
+
+@dataclass(frozen=True, eq=False, repr=False)
+class StickSpectrum:
+    """Raw photoionisation sticks of an ensemble (never resampled).
+
+    One entry per (snapshot, open ionisation channel). Closed channels
+    (kinetic energy <= 0) are not stored.
+
+    Attributes
+    ----------
+    snapshot : ndarray of int64, shape (n_sticks,)
+        Row of ``ens.snapshots`` the stick comes from.
+    traj : ndarray of int64, shape (n_sticks,)
+        Trajectory id.
+    time : ndarray, shape (n_sticks,)
+        Time since launch in fs.
+    state : ndarray of int64, shape (n_sticks,)
+        Active neutral state.
+    channel : ndarray of int64, shape (n_sticks,)
+        Cation state.
+    energy : ndarray, shape (n_sticks,)
+        Photoelectron kinetic energy n*h*nu - IP in eV.
+    weight : ndarray, shape (n_sticks,)
+        Cross section times trajectory weight (unnormalised).
+    info : dict
+        How the sticks were made (probe photon energy, n_photons, cross section...).
+
+    Examples
+    --------
+    >>> s = StickSpectrum(snapshot=[0, 0], traj=[0, 0], time=[0.0, 0.0], state=[1, 1],
+    ...                   channel=[0, 1], energy=[1.0, 0.4], weight=[0.9, 0.1])
+    >>> s.n_sticks, float(s.weight.sum())
+    (2, 1.0)
+    """
+
+    snapshot: np.ndarray
+    traj: np.ndarray
+    time: np.ndarray
+    state: np.ndarray
+    channel: np.ndarray
+    energy: np.ndarray
+    weight: np.ndarray
+    info: dict[str, Any] = field(default_factory=dict)
+
+    def __post_init__(self) -> None:
+        set_ = object.__setattr__
+        ints = ("snapshot", "traj", "state", "channel")
+        n = None
+        for name in ("snapshot", "traj", "time", "state", "channel", "energy", "weight"):
+            arr = _ro(getattr(self, name), name, dtype=np.int64 if name in ints else np.float64,
+                      ndim=1)
+            if n is None:
+                n = arr.size
+            elif arr.size != n:
+                raise SchemaError(
+                    f"{name} must have n_sticks={n} entries like snapshot; got {arr.size}."
+                )
+            set_(self, name, arr)
+        set_(self, "info", _json_safe(dict(self.info)))
+
+    @property
+    def n_sticks(self) -> int:
+        """Number of sticks."""
+        return self.energy.size
+
+    def to_frame(self) -> pd.DataFrame:
+        """The sticks as a DataFrame (snapshot, traj, time, state, channel, energy, weight)."""
+        return pd.DataFrame({name: np.array(getattr(self, name)) for name in
+                             ("snapshot", "traj", "time", "state", "channel", "energy",
+                              "weight")})
+
+    @classmethod
+    def from_arrays(cls, *, info: Mapping[str, Any] | None = None,
+                    **arrays: npt.ArrayLike) -> StickSpectrum:
+        """Build from keyword arrays (same names as the attributes)."""
+        return cls(info=dict(info or {}), **arrays)  # type: ignore[arg-type]
+
+    def __repr__(self) -> str:
+        return f"<ensemblelab.StickSpectrum {self.n_sticks} sticks>"
