@@ -1,0 +1,433 @@
+"""Electronic-state populations of an ensemble, with honest intervals.
+
+Three kinds of population (method notes section 7.1):
+
+* ``"active"`` (classical): the weighted fraction of alive trajectories whose
+  active state is i, ``P_i(t) = sum_n w_n delta(a_n(t), i) / sum_n w_n``.
+* ``"amplitudes"`` (quantum): the weighted mean of ``|c_{n,i}(t)|^2``.
+* ``"diabatic"``: the weighted mean of ``U[a_n(t), d]^2``, the diabatic
+  character of the active adiabatic state, with the convention of
+  :attr:`Ensemble.adt`: ``adiabatic_a = sum_d U[a, d] diabatic_d``.
+
+Alive mask. A trajectory is *alive* at time t when ``t_start <= t <= t_end``
+(its first and last snapshot times), it is not in `exclude`, and its weight is
+positive. Only alive trajectories enter the average at t; ``n_alive`` and the
+Kish effective size ``n_eff = (sum w)^2 / sum w^2`` are reported per time.
+
+Time grid. ``time_grid=None`` uses the ensemble's unique snapshot times.
+Otherwise each trajectory is sampled at its *nearest previous* step (the last
+snapshot with ``time <= t``), which never looks into the future of a trajectory
+and keeps the active state piecewise constant as surface hopping defines it.
+
+Intervals. ``method="wilson"`` uses the Wilson score interval (7.1) with the
+weighted fraction and ``n_eff`` (exact for unweighted active-state fractions;
+for the fractional kinds ``"amplitudes"``/``"diabatic"`` it is the usual
+approximation that treats the mean as a proportion -- prefer the bootstrap
+there). ``method="bootstrap"`` resamples whole trajectories with replacement
+(``n_boot`` resamples, seeded by `random_state`) and reports percentiles; the
+resampling is done for all resamples at once by matrix products.
+"""
+
+from __future__ import annotations
+
+import warnings
+from collections.abc import Iterable, Sequence
+from dataclasses import dataclass
+from typing import TYPE_CHECKING, Any
+
+import numpy as np
+import numpy.typing as npt
+import pandas as pd
+from scipy.stats import norm
+
+from ..errors import EnsembleWarning, SchemaError
+from . import _kernels_populations as _k
+
+if TYPE_CHECKING:
+    from ..data.ensemble import Ensemble
+
+__all__ = [
+    "populations",
+    "population_arrays",
+    "population_consistency",
+    "PopulationArrays",
+    "POPULATION_KINDS",
+]
+
+#: the kinds of population :func:`populations` computes
+POPULATION_KINDS = ("active", "amplitudes", "diabatic")
+
+_BLOCK = 256  # trajectories per block when accumulating (bounds the memory)
+
+
+@dataclass(frozen=True)
+class PopulationArrays:
+    """Per-trajectory state values on a common time grid (input of fits and bootstraps).
+
+    Attributes
+    ----------
+    times : ndarray, shape (n_times,)
+        Time grid in fs.
+    values : ndarray, shape (n_traj, n_times, n_states)
+        Per-trajectory value of each state (indicator, ``|c|^2`` or ``U^2``), 0 where
+        not alive.
+    alive : ndarray of bool, shape (n_traj, n_times)
+    weights : ndarray, shape (n_traj,)
+        Trajectory weights (0 for excluded trajectories).
+    traj : ndarray of int, shape (n_traj,)
+        Trajectory ids, aligned to the first axis.
+    labels : tuple of str
+        State labels.
+    kind : str
+        The population kind.
+    """
+
+    times: np.ndarray
+    values: np.ndarray
+    alive: np.ndarray
+    weights: np.ndarray
+    traj: np.ndarray
+    labels: tuple[str, ...]
+    kind: str
+
+    def mean(self) -> np.ndarray:
+        """Weighted populations, shape (n_times, n_states)."""
+        return _k.weighted_populations(self.values, self.alive, self.weights)["population"]
+
+    def bootstrap(self, counts: np.ndarray) -> np.ndarray:
+        """Populations of resamples given counts (n_boot, n_traj): (n_boot, n_times, n_states)."""
+        return _k.bootstrap_populations(self.values, self.alive, self.weights, counts)
+
+
+# ---------------------------------------------------------------- validation helpers
+def _resolve_weights(ens: Ensemble, weights: Any) -> tuple[np.ndarray, str]:
+    trajs = ens.trajectories
+    n = len(trajs)
+    if weights is None:
+        return trajs["weight"].to_numpy(np.float64), "weight"
+    if isinstance(weights, str):
+        if weights == "uniform":
+            return np.ones(n), "uniform"
+        if weights not in trajs.columns:
+            raise SchemaError(
+                f"The 'weights' parameter of populations names column {weights!r}, which the "
+                f"trajectories table does not have; found {list(trajs.columns)}. Hint: use None "
+                "(the 'weight' column), 'uniform', a column name or an array per trajectory."
+            )
+        w = pd.to_numeric(trajs[weights], errors="coerce").to_numpy(np.float64)
+        label = weights
+    else:
+        w = np.asarray(weights, dtype=np.float64)
+        label = "array"
+        if w.shape != (n,):
+            raise SchemaError(
+                f"The 'weights' parameter of populations must have shape (n_trajectories={n},) "
+                f"(one weight per row of ens.trajectories); got shape {w.shape}."
+            )
+    if not np.all(np.isfinite(w)) or np.any(w < 0):
+        bad = np.flatnonzero(~np.isfinite(w) | (w < 0))[:5]
+        raise SchemaError(
+            f"The 'weights' parameter of populations must be finite and >= 0; rows {bad.tolist()} "
+            f"have {w[bad].tolist()}."
+        )
+    return w, label
+
+
+def _resolve_grid(ens: Ensemble, time_grid: npt.ArrayLike | None) -> np.ndarray:
+    if time_grid is None:
+        return ens.times
+    grid = np.asarray(time_grid, dtype=np.float64).ravel()
+    if grid.size == 0 or not np.all(np.isfinite(grid)) or np.any(np.diff(grid) <= 0):
+        raise SchemaError(
+            "The 'time_grid' parameter of populations must be a non-empty, finite, strictly "
+            f"increasing array of times in fs; got {grid[:5]!r} (size {grid.size})."
+        )
+    return grid
+
+
+def _check_kind(ens: Ensemble, kind: str) -> None:
+    if kind not in POPULATION_KINDS:
+        raise SchemaError(
+            f"The 'kind' parameter of populations must be one of {POPULATION_KINDS}; got {kind!r}."
+        )
+    if kind == "amplitudes" and ens.amplitudes is None:
+        raise SchemaError(
+            "populations(kind='amplitudes') needs ens.amplitudes (|c_i|^2 per snapshot); this "
+            "ensemble has none. Hint: use kind='active'."
+        )
+    if kind == "diabatic" and ens.adt is None:
+        raise SchemaError(
+            "populations(kind='diabatic') needs ens.adt (adiabatic-to-diabatic matrices); this "
+            "ensemble has none. Hint: compute them first or use kind='active'."
+        )
+
+
+def _excluded_mask(ens: Ensemble, exclude: Iterable[int] | pd.DataFrame | None) -> np.ndarray:
+    ids = ens.trajectories["traj"].to_numpy()
+    if exclude is None:
+        return np.zeros(ids.size, dtype=bool)
+    if isinstance(exclude, pd.DataFrame):
+        frame = exclude
+        if "flagged" in frame.columns:
+            frame = frame[frame["flagged"].astype(bool)]
+        exclude = frame["traj"].to_numpy()
+    ex = np.asarray(list(exclude), dtype=np.int64)
+    return np.isin(ids, ex)
+
+
+def _values_block(ens: Ensemble, kind: str, idx: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Values (nb, n_times, n_states) and alive (nb, n_times) for sampled rows idx."""
+    alive = idx >= 0
+    safe = np.where(alive, idx, 0)
+    n_states = ens.n_states
+    active = ens.snapshots["active"].to_numpy()
+    if kind == "active":
+        vals = (active[safe][..., None] == np.arange(n_states)).astype(np.float64)
+    elif kind == "amplitudes":
+        vals = np.asarray(ens.amplitudes, dtype=np.float64)[safe]
+    else:
+        adt = ens.adt
+        vals = adt[safe, active[safe], :] ** 2
+    vals *= alive[..., None]
+    return vals, alive
+
+
+def population_arrays(
+    ens: Ensemble,
+    *,
+    kind: str = "active",
+    weights: str | npt.ArrayLike | None = None,
+    time_grid: npt.ArrayLike | None = None,
+    exclude: Iterable[int] | pd.DataFrame | None = None,
+) -> PopulationArrays:
+    """Per-trajectory state values and alive mask on a time grid.
+
+    Parameters
+    ----------
+    ens : Ensemble
+    kind : {"active", "amplitudes", "diabatic"}
+        See the module docstring.
+    weights : None, "uniform", str or array_like, shape (n_trajectories,)
+        None uses ``ens.trajectories["weight"]``; a string names a column of
+        ``ens.trajectories``.
+    time_grid : array_like, optional
+        Times in fs (increasing); default the ensemble's unique times.
+    exclude : iterable of int or DataFrame, optional
+        Trajectory ids treated as not alive (a flags frame with ``traj`` and
+        ``flagged`` columns works too).
+
+    Returns
+    -------
+    PopulationArrays
+        Dense arrays of shape (n_traj, n_times, n_states); for very large
+        ensembles prefer :func:`populations`, which works block by block.
+    """
+    _check_kind(ens, kind)
+    w, _ = _resolve_weights(ens, weights)
+    grid = _resolve_grid(ens, time_grid)
+    w = np.where(_excluded_mask(ens, exclude), 0.0, w)
+    idx = _k.sample_on_grid(ens.traj_index, ens.snapshots["time"].to_numpy(),
+                            ens.n_trajectories, grid)
+    idx[w <= 0] = -1
+    vals, alive = _values_block(ens, kind, idx)
+    return PopulationArrays(times=grid, values=vals, alive=alive, weights=w,
+                            traj=ens.trajectories["traj"].to_numpy(),
+                            labels=tuple(ens.state_labels), kind=kind)
+
+
+def populations(
+    ens: Ensemble,
+    *,
+    kind: str = "active",
+    weights: str | npt.ArrayLike | None = None,
+    ci: float = 0.95,
+    method: str = "wilson",
+    time_grid: npt.ArrayLike | None = None,
+    n_boot: int = 1000,
+    random_state: int | np.random.Generator | None = 0,
+    exclude: Iterable[int] | pd.DataFrame | None = None,
+    states: Sequence[int] | None = None,
+) -> pd.DataFrame:
+    """Populations of the electronic states against time, with intervals.
+
+    Parameters
+    ----------
+    ens : Ensemble
+    kind : {"active", "amplitudes", "diabatic"}
+        Classical (active-state) fractions, mean ``|c_i|^2``, or mean diabatic
+        character ``U[a, d]^2`` of the active state (see the module docstring).
+    weights : None, "uniform", str or array_like, shape (n_trajectories,)
+        Trajectory weights: None uses ``ens.trajectories["weight"]``; a string
+        names a column of ``ens.trajectories``; an array is aligned to its rows.
+    ci : float in (0, 1)
+        Confidence level of the interval.
+    method : {"wilson", "bootstrap"}
+        Wilson score interval with the Kish effective size, or percentile
+        bootstrap over whole trajectories.
+    time_grid : array_like, optional
+        Times in fs (strictly increasing). Default: the ensemble's unique
+        snapshot times. Trajectories are sampled at their nearest previous step.
+    n_boot : int
+        Bootstrap resamples (``method="bootstrap"``).
+    random_state : int, Generator or None
+        Seed of the bootstrap.
+    exclude : iterable of int or DataFrame, optional
+        Trajectory ids to leave out (treated as not alive at every time).
+    states : sequence of int, optional
+        Only report these states (0-based); populations are still normalised
+        over all states.
+
+    Returns
+    -------
+    DataFrame
+        Tidy, one row per (time, state): ``time`` (fs), ``state`` (0-based int),
+        ``label``, ``population``, ``lower``, ``upper``, ``n_alive`` (alive
+        trajectories with positive weight), ``n_eff`` (Kish effective size;
+        equals ``n_alive`` for equal weights). Where nothing is alive the
+        population and interval are NaN. ``frame.attrs`` records ``kind``,
+        ``method``, ``ci``, ``weights``, ``n_boot``, ``excluded`` (ids) and
+        ``ended_early`` (ids of trajectories ending before the last time).
+
+    Examples
+    --------
+    >>> from ensemblelab.testing import make_toy_ensemble
+    >>> ens = make_toy_ensemble(20, seed=1)
+    >>> pop = populations(ens, time_grid=[0.0, 100.0])
+    >>> pop.loc[pop["time"] == 0.0, "population"].tolist()
+    [0.0, 0.0, 1.0]
+    >>> bool((pop.groupby("time")["population"].sum() - 1).abs().max() < 1e-12)
+    True
+    """
+    _check_kind(ens, kind)
+    if method not in ("wilson", "bootstrap"):
+        raise SchemaError(
+            f"The 'method' parameter of populations must be 'wilson' or 'bootstrap'; got {method!r}."
+        )
+    if not (isinstance(ci, float | int) and 0.0 < float(ci) < 1.0):
+        raise SchemaError(f"The 'ci' parameter of populations must be in (0, 1); got {ci!r}.")
+    if method == "bootstrap" and (int(n_boot) != n_boot or n_boot < 2):
+        raise SchemaError(f"The 'n_boot' parameter of populations must be an int >= 2; got "
+                          f"{n_boot!r}.")
+    w, wlabel = _resolve_weights(ens, weights)
+    grid = _resolve_grid(ens, time_grid)
+    excluded = _excluded_mask(ens, exclude)
+    w = np.where(excluded, 0.0, w)
+    n_traj, n_states, n_times = ens.n_trajectories, ens.n_states, grid.size
+    idx_all = _k.sample_on_grid(ens.traj_index, ens.snapshots["time"].to_numpy(), n_traj, grid)
+    idx_all[w <= 0] = -1
+
+    counts = None
+    if method == "bootstrap":
+        rng = np.random.default_rng(random_state)
+        counts = _k.bootstrap_counts(n_traj, int(n_boot), rng)
+        boot_num = np.zeros((int(n_boot), n_times * n_states))
+        boot_den = np.zeros((int(n_boot), n_times))
+    num = np.zeros((n_times, n_states))
+    w_alive = np.zeros(n_times)
+    w2 = np.zeros(n_times)
+    n_alive = np.zeros(n_times, dtype=np.int64)
+    for s in range(0, n_traj, _BLOCK):
+        sl = slice(s, s + _BLOCK)
+        vals, alive = _values_block(ens, kind, idx_all[sl])
+        wb = w[sl]
+        a = alive.astype(np.float64)
+        num += np.tensordot(wb, vals, axes=(0, 0))
+        w_alive += wb @ a
+        w2 += (wb * wb) @ a
+        n_alive += alive.sum(axis=0)
+        if counts is not None:
+            cw = counts[:, sl] * wb[None, :]
+            boot_num += cw @ vals.reshape(vals.shape[0], -1)
+            boot_den += cw @ a
+    with np.errstate(divide="ignore", invalid="ignore"):
+        pop = num / w_alive[:, None]
+        n_eff = np.where(w2 > 0, w_alive * w_alive / w2, 0.0)
+    if counts is None:
+        z = float(norm.ppf(0.5 + 0.5 * float(ci)))
+        lo, hi = _k.wilson_interval(pop, np.broadcast_to(n_eff[:, None], pop.shape), z)
+    else:
+        with np.errstate(divide="ignore", invalid="ignore"):
+            boot = boot_num.reshape(-1, n_times, n_states) / boot_den[:, :, None]
+        alpha = 0.5 * (1.0 - float(ci))
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)
+            lo, hi = np.nanquantile(boot, [alpha, 1.0 - alpha], axis=0)
+        dead = w_alive <= 0
+        lo[dead], hi[dead] = np.nan, np.nan
+
+    if np.any(n_alive == 0):
+        warnings.warn(
+            f"populations: no trajectory is alive at {int(np.sum(n_alive == 0))} of {n_times} "
+            "grid times; their populations are NaN.", EnsembleWarning, stacklevel=2)
+    keep = np.arange(n_states) if states is None else np.asarray(list(states), dtype=np.int64)
+    if keep.size and (keep.min() < 0 or keep.max() >= n_states):
+        raise SchemaError(f"The 'states' parameter of populations must hold indices in "
+                          f"[0, {n_states - 1}]; got {keep.tolist()}.")
+    labels = np.asarray(ens.state_labels, dtype=object)
+    frame = pd.DataFrame(
+        {
+            "time": np.repeat(grid, keep.size),
+            "state": np.tile(keep, n_times),
+            "label": np.tile(labels[keep], n_times),
+            "population": pop[:, keep].ravel(),
+            "lower": lo[:, keep].ravel(),
+            "upper": hi[:, keep].ravel(),
+            "n_alive": np.repeat(n_alive, keep.size),
+            "n_eff": np.repeat(n_eff, keep.size),
+        }
+    )
+    t_end = ens.trajectories["t_end"].to_numpy()
+    ids = ens.trajectories["traj"].to_numpy()
+    frame.attrs.update(
+        kind=kind, method=method, ci=float(ci), weights=wlabel,
+        n_boot=int(n_boot) if method == "bootstrap" else 0,
+        excluded=ids[excluded].tolist(),
+        ended_early=ids[(t_end < grid[-1]) & ~excluded].tolist(),
+    )
+    return frame
+
+
+def population_consistency(ens: Ensemble) -> pd.DataFrame:
+    """Per-trajectory gap between the active state and the electronic amplitudes.
+
+    At each snapshot the gap is the total-variation distance
+    ``(1/2) sum_i | delta(a, i) - |c_i|^2 |`` (0 when the trajectory sits on the
+    state that carries all the amplitude, up to 1). In fewest-switches surface
+    hopping the *ensemble* fractions of active states should track the mean
+    amplitudes (method notes 7.1, a consistency diagnostic); trajectories whose
+    gap stays large for long are the ones that break it (frustrated hops,
+    decoherence problems).
+
+    Parameters
+    ----------
+    ens : Ensemble
+        Needs ``ens.amplitudes``.
+
+    Returns
+    -------
+    DataFrame
+        One row per trajectory: ``traj``, ``max_gap``, ``mean_gap`` (mean over
+        the trajectory's snapshots), ``time_of_max`` (fs), sorted by ``traj``.
+
+    Examples
+    --------
+    >>> from ensemblelab.testing import make_toy_ensemble
+    >>> gaps = population_consistency(make_toy_ensemble(5))
+    >>> float(gaps["max_gap"].max())
+    0.0
+    """
+    if ens.amplitudes is None:
+        raise SchemaError(
+            "population_consistency needs ens.amplitudes (|c_i|^2 per snapshot); this ensemble "
+            "has none."
+        )
+    active = ens.snapshots["active"].to_numpy()
+    onehot = active[:, None] == np.arange(ens.n_states)
+    gap = 0.5 * np.abs(onehot - np.asarray(ens.amplitudes, dtype=np.float64)).sum(axis=1)
+    frame = pd.DataFrame({"traj": ens.snapshots["traj"].to_numpy(), "gap": gap,
+                          "time": ens.snapshots["time"].to_numpy()})
+    grouped = frame.groupby("traj", sort=True)["gap"]
+    at_max = frame.loc[grouped.idxmax().to_numpy(), ["traj", "time"]].set_index("traj")["time"]
+    out = pd.DataFrame({"max_gap": grouped.max(), "mean_gap": grouped.mean(),
+                        "time_of_max": at_max}).reset_index()
+    return out
