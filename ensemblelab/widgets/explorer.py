@@ -1,0 +1,254 @@
+"""The explorer: every view around one shared SelectionModel."""
+
+from __future__ import annotations
+
+import html
+import os
+import time
+from collections.abc import Callable
+from pathlib import Path
+from typing import Any
+
+import ipywidgets as widgets
+import numpy as np
+
+from ..data.ensemble import Ensemble
+from ._messages import MessageArea
+from ._selection import SelectionModel
+from .session import apply_session, load_session, save_session, session_path_for
+
+__all__ = ["Explorer"]
+
+
+class Explorer:
+    """Linked views of one ensemble: map, populations, structures, table, trajectory, quality.
+
+    Box-select a band in the map: the selection table lists what contributes
+    (by cluster, state or trajectory, with shares), the structure view shows the
+    strongest contributing geometries and the population view marks the delay
+    range. All views observe :attr:`model`; none links to another.
+
+    Parameters
+    ----------
+    ens : Ensemble
+        The ensemble (never modified).
+    map_kwargs : dict, optional
+        Keyword arguments of :class:`~ensemblelab.widgets.MapView`
+        (``photon_energy``, ``probe_fwhm``, ``pump_fwhm``, ``energies``, ...).
+    population_kwargs, structure_kwargs : dict, optional
+        Keyword arguments of :class:`PopulationView` and :class:`StructureView`.
+    clusters : "auto", array_like, False or None
+        Cluster label per snapshot; ``"auto"`` (default) runs
+        :func:`ensemblelab.compute.clustering.cluster_snapshots`; False: none.
+    cluster_kwargs : dict, optional
+        Keyword arguments of ``cluster_snapshots``.
+    flags : DataFrame, optional
+        Flagged-trajectory table (default: computed by ``flag_trajectories``).
+    measured : TRPESMap, optional
+        A measured map to overlay in the map view.
+    data_path : path, optional
+        Where the ensemble was loaded from: the session file goes beside it.
+    session_path : path, optional
+        Session file (default: beside `data_path`, else ``./ensemblelab.session.json``).
+    restore : bool
+        Restore the session file if it exists.
+    export_folder : path, optional
+        Folder of the export buttons.
+    debounce : float
+        Seconds of quiet before a recomputation after a control change.
+
+    Attributes
+    ----------
+    model : SelectionModel
+    messages : MessageArea
+    map_view, population_view, structure_view, selection_table, trajectory_view,
+    quality_view, export : the views (None where one failed to build; see :attr:`messages`)
+    widget : ipywidgets.VBox
+    last_update_ms : float or None
+        In-kernel time of the last band selection, from the brush event to every
+        view updated.
+    """
+
+    def __init__(
+        self,
+        ens: Ensemble,
+        *,
+        map_kwargs: dict[str, Any] | None = None,
+        population_kwargs: dict[str, Any] | None = None,
+        structure_kwargs: dict[str, Any] | None = None,
+        clusters: Any = "auto",
+        cluster_kwargs: dict[str, Any] | None = None,
+        flags: Any = None,
+        measured: Any = None,
+        data_path: str | os.PathLike[str] | None = None,
+        session_path: str | os.PathLike[str] | None = None,
+        restore: bool = True,
+        export_folder: str | os.PathLike[str] | None = None,
+        debounce: float = 0.3,
+    ) -> None:
+        from .export import ExportPanel
+        from .map_view import MapView
+        from .population_view import PopulationView
+        from .quality_view import QualityView
+        from .selection_table import SelectionTable
+        from .structure_view import StructureView
+        from .trajectory_view import TrajectoryView
+
+        self.messages = MessageArea()
+        self.model = SelectionModel(ens)
+        self.data_path = None if data_path is None else Path(data_path)
+        if session_path is not None:
+            self.session_path = Path(session_path)
+        elif self.data_path is not None:
+            self.session_path = session_path_for(self.data_path)
+        else:
+            self.session_path = Path.cwd() / "ensemblelab.session.json"
+        self.last_update_ms: float | None = None
+        self._set_clusters(clusters, cluster_kwargs)
+        if flags is not None:
+            self.model.flags = flags
+
+        m, msg = self.model, self.messages
+        mk = {"debounce": debounce, "measured": measured, **dict(map_kwargs or {})}
+        self.map_view = self._build("map view", lambda: MapView(m, messages=msg, **mk))
+        pk = {"debounce": debounce, **dict(population_kwargs or {})}
+        self.population_view = self._build(
+            "population view", lambda: PopulationView(m, messages=msg, **pk))
+        self.structure_view = self._build(
+            "structure view",
+            lambda: StructureView(m, messages=msg, **dict(structure_kwargs or {})))
+        self.selection_table = self._build("selection table",
+                                           lambda: SelectionTable(m, messages=msg))
+        self.trajectory_view = self._build("trajectory view",
+                                           lambda: TrajectoryView(m, messages=msg))
+        self.quality_view = self._build("quality view", lambda: QualityView(m, messages=msg))
+        self.export = self._build("export", lambda: ExportPanel(
+            m, messages=msg, folder=export_folder, populations=self._populations,
+            save_session=self.save_session, restore_session=self.restore_session))
+
+        self.widget = self._layout()
+        self.widget.add_class("ensemblelab-explorer")
+        if restore and self.session_path.exists():
+            try:
+                self.restore_session()
+            except Exception as exc:  # noqa: BLE001 - shown, the explorer still works
+                self.messages.exception(exc, where="restoring the session")
+
+    # ------------------------------------------------------------------ building
+    def _set_clusters(self, clusters: Any, kwargs: dict[str, Any] | None) -> None:
+        if clusters is None or clusters is False:
+            return
+        if isinstance(clusters, str):
+            if clusters != "auto":
+                raise ValueError(f"clusters must be 'auto', labels or False; got {clusters!r}.")
+            try:
+                from ..compute.clustering import cluster_snapshots
+
+                result = cluster_snapshots(self.model.ens, **dict(kwargs or {}))
+                self.cluster_result = result
+                self.model.clusters = np.asarray(result.labels)
+            except Exception as exc:  # noqa: BLE001 - shown; views work without clusters
+                self.messages.exception(exc, where="clustering the snapshots")
+            return
+        self.model.clusters = np.asarray(clusters)
+
+    def _build(self, name: str, factory: Callable[[], Any]) -> Any:
+        try:
+            return factory()
+        except Exception as exc:  # noqa: BLE001 - one broken view must not hide the others
+            self.messages.exception(exc, where=f"building the {name}")
+            return None
+
+    def _panel(self, view: Any, name: str) -> widgets.Widget:
+        if view is not None:
+            return view.widget
+        return widgets.HTML(f"<i>The {html.escape(name)} is unavailable (see the messages).</i>")
+
+    def _layout(self) -> widgets.VBox:
+        title = widgets.HTML(
+            f"<h3 style='margin:4px 0'>ensemblelab explorer</h3>"
+            f"<span>{self.model.ens.n_trajectories} trajectories, "
+            f"{self.model.ens.n_snapshots} snapshots, {self.model.ens.n_atoms} atoms</span>")
+        top = widgets.HBox([self._panel(self.map_view, "map view"),
+                            self._panel(self.structure_view, "structure view")])
+        middle = widgets.HBox([
+            widgets.VBox([self._panel(self.selection_table, "selection table")],
+                         layout=widgets.Layout(width="40%")),
+            widgets.VBox([self._panel(self.population_view, "population view")],
+                         layout=widgets.Layout(width="60%")),
+        ])
+        tabs = widgets.Tab(children=[self._panel(self.trajectory_view, "trajectory view"),
+                                     self._panel(self.quality_view, "quality view"),
+                                     self._panel(self.export, "export")])
+        for i, name in enumerate(("trajectory", "quality", "export")):
+            tabs.set_title(i, name)
+        head = widgets.HTML("<b>messages</b>")
+        return widgets.VBox([title, top, middle, tabs, head, self.messages.widget])
+
+    def _repr_mimebundle_(self, **kwargs: Any) -> Any:
+        return self.widget._repr_mimebundle_(**kwargs)
+
+    def _populations(self) -> Any:
+        return None if self.population_view is None else self.population_view.table
+
+    # ------------------------------------------------------------------ interaction
+    def brush(self, energy_range: tuple[float, float],
+              delay_range: tuple[float, float]) -> float:
+        """Select a band as the browser does (brush traits, then ``brushing=False``).
+
+        Returns
+        -------
+        float
+            In-kernel milliseconds from the brush event to every view updated
+            (also stored in :attr:`last_update_ms`).
+        """
+        if self.map_view is None:
+            raise RuntimeError("the map view is unavailable (see the messages).")
+        brush = self.map_view.brush
+        brush.brushing = True
+        brush.selected_x = np.asarray(energy_range, dtype=float)
+        brush.selected_y = np.asarray(delay_range, dtype=float)
+        start = time.perf_counter()
+        brush.brushing = False
+        self.last_update_ms = 1e3 * (time.perf_counter() - start)
+        return self.last_update_ms
+
+    # ------------------------------------------------------------------ session
+    def map_params(self) -> dict[str, Any]:
+        """The map controls' values (saved with the session)."""
+        v = self.map_view
+        if v is None:
+            return {}
+        return {"photon_energy": v.photon_energy.value, "probe_fwhm": v.probe_fwhm.value,
+                "pump_fwhm": v.pump_fwhm.value, "n_photons": v.n_photons.value,
+                "resolution": v.resolution.value, "convolve": v.convolve.value,
+                "decomposition": v.decomposition.value}
+
+    def save_session(self, path: str | os.PathLike[str] | None = None) -> Path:
+        """Save selections, exclusions and labels as JSON beside the data; returns the path."""
+        target = Path(path) if path is not None else self.session_path
+        name = self.data_path.name if self.data_path is not None else None
+        out = save_session(self.model, target, map_params=self.map_params(), data_name=name)
+        self.messages.info(f"session saved to {out}")
+        return out
+
+    def restore_session(self, path: str | os.PathLike[str] | None = None) -> dict[str, Any]:
+        """Restore a saved session (map controls first, then exclusions and selection)."""
+        target = Path(path) if path is not None else self.session_path
+        state = load_session(target)
+        params = state.get("map", {}) or {}
+        if self.map_view is not None and params:
+            v = self.map_view
+            with v.figure.hold_sync():
+                for key, w in (("photon_energy", v.photon_energy), ("probe_fwhm", v.probe_fwhm),
+                               ("pump_fwhm", v.pump_fwhm), ("n_photons", v.n_photons),
+                               ("resolution", v.resolution), ("convolve", v.convolve),
+                               ("decomposition", v.decomposition)):
+                    if key in params and w.value != params[key]:
+                        w.value = params[key]
+            v._recompute_later.flush()
+        apply_session(self.model, state)
+        if self.map_view is not None:
+            self.map_view._recompute_later.flush()
+        self.messages.info(f"session restored from {target}")
+        return state

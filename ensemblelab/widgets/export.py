@@ -1,0 +1,259 @@
+"""Export what is selected: structures (XYZ, PDB), figures (PNG, SVG), tables (CSV).
+
+Every file is written atomically (temporary file + ``os.replace``) into an
+export folder; nothing is ever written into the data.
+"""
+
+from __future__ import annotations
+
+import io as _io
+import os
+import tempfile
+from collections.abc import Callable
+from pathlib import Path
+from typing import Any
+
+import ipywidgets as widgets
+import numpy as np
+import pandas as pd
+
+from ..data.ensemble import Ensemble
+from ._base import View
+from ._messages import MessageArea
+from ._selection import SelectionModel
+from .selection_table import group_band
+
+__all__ = ["ExportPanel", "export_structures", "export_tables", "export_figures",
+           "write_text_atomic", "write_bytes_atomic"]
+
+
+def write_bytes_atomic(path: str | os.PathLike[str], data: bytes) -> Path:
+    """Write `data` to `path` through a temporary file in the same folder."""
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    try:
+        with os.fdopen(fd, "wb") as fh:
+            fh.write(data)
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.replace(tmp, path)
+    except BaseException:
+        Path(tmp).unlink(missing_ok=True)
+        raise
+    return path
+
+
+def write_text_atomic(path: str | os.PathLike[str], text: str) -> Path:
+    """Write `text` (UTF-8) to `path` atomically."""
+    return write_bytes_atomic(path, text.encode("utf-8"))
+
+
+def export_structures(model: SelectionModel, folder: str | os.PathLike[str], *,
+                      fmt: str = "xyz", ids: Any = None, name: str = "selection",
+                      align: bool = True) -> Path:
+    """Write the selected geometries as one multi-frame XYZ or PDB file.
+
+    Parameters
+    ----------
+    model : SelectionModel
+    folder : path
+        Export folder (created).
+    fmt : {"xyz", "pdb"}
+    ids : sequence of int, optional
+        Snapshot ids (default ``model.selected``).
+    name : str
+        File stem.
+    align : bool
+        Superimpose every frame on the first (Kabsch, mass-weighted).
+
+    Returns
+    -------
+    Path
+        The written file; each frame's comment holds trajectory, time, state,
+        cluster and weight.
+    """
+    if fmt not in ("xyz", "pdb"):
+        raise ValueError(f"fmt must be 'xyz' or 'pdb'; got {fmt!r}.")
+    ids = list(model.selected if ids is None else ids)
+    if not ids:
+        raise ValueError("nothing is selected: select a band or a group first.")
+    from ..io.structures import write_pdb, write_xyz
+
+    rows = model.rows(ids)
+    sub = model.ens.select(np.isin(np.arange(model.ens.n_snapshots), rows))
+    if align and sub.n_snapshots > 1:
+        from ..compute.geometry import kabsch_align
+
+        ref_row = int(np.flatnonzero(sub.snapshots["snapshot"].to_numpy() == ids[0])[0])
+        aligned = kabsch_align(sub.geometries, reference=sub.geometries[ref_row],
+                               weights="mass", masses=sub.masses).aligned
+        sub = sub.replace(geometries=aligned)
+    sub = sub.assign(cluster=model.cluster_of(model.rows(sub.snapshots["snapshot"])))
+    path = Path(folder) / f"{name}.{fmt}"
+    writer = write_xyz if fmt == "xyz" else write_pdb
+    writer(sub, path, overwrite=True)
+    return path
+
+
+def export_tables(model: SelectionModel, folder: str | os.PathLike[str], *,
+                  extra: dict[str, pd.DataFrame] | None = None) -> list[Path]:
+    """Write the band, its grouped shares, the flags and the map as CSV files.
+
+    Returns
+    -------
+    list of Path
+        ``band_snapshots.csv``, ``band_by_<group>.csv``, ``flags.csv``,
+        ``trpes_map.csv`` and one file per entry of `extra` (those that exist).
+    """
+    folder = Path(folder)
+    out = []
+    tables: dict[str, pd.DataFrame] = {}
+    if model.band is not None:
+        tables["band_snapshots"] = model.band
+        for by in ("cluster", "state", "traj"):
+            tables[f"band_by_{by}"] = group_band(model.band, by,
+                                                 state_labels=model.ens.state_labels)
+    if model.flags is not None:
+        tables["flags"] = model.flags
+    if model.trpes_map is not None:
+        tables["trpes_map"] = model.trpes_map.to_frame()
+    tables.update(extra or {})
+    for stem, table in tables.items():
+        buf = _io.StringIO()
+        table.to_csv(buf, index=False)
+        out.append(write_text_atomic(folder / f"{stem}.csv", buf.getvalue()))
+    return out
+
+
+def export_figures(model: SelectionModel, folder: str | os.PathLike[str], *,
+                   fmt: str = "png", populations: pd.DataFrame | None = None) -> list[Path]:
+    """Save the map (with the selected band) and the populations as PNG or SVG.
+
+    Returns
+    -------
+    list of Path
+        ``trpes_map.<fmt>`` and, when `populations` is given, ``populations.<fmt>``.
+    """
+    if fmt not in ("png", "svg"):
+        raise ValueError(f"fmt must be 'png' or 'svg'; got {fmt!r}.")
+    from matplotlib.figure import Figure
+
+    folder = Path(folder)
+    out = []
+    if model.trpes_map is not None:
+        fig = Figure(figsize=(5.0, 4.0), dpi=120)
+        ax = fig.add_subplot()
+        trpes = model.trpes_map
+        mesh = ax.pcolormesh(trpes.energies, trpes.delays, np.nan_to_num(trpes.intensity),
+                             shading="auto", cmap="viridis")
+        fig.colorbar(mesh, ax=ax, label="intensity / eV$^{-1}$")
+        if model.energy_range is not None and model.delay_range is not None:
+            (e0, e1), (d0, d1) = model.energy_range, model.delay_range
+            ax.plot([e0, e1, e1, e0, e0], [d0, d0, d1, d1, d0], "w--", lw=1.5)
+        ax.set_xlabel("kinetic energy / eV")
+        ax.set_ylabel("delay / fs")
+        fig.tight_layout()
+        out.append(_save(fig, folder / f"trpes_map.{fmt}", fmt))
+    if populations is not None and len(populations):
+        fig = Figure(figsize=(5.0, 3.5), dpi=120)
+        ax = fig.add_subplot()
+        for state, part in populations.groupby("state"):
+            label = model.ens.state_labels[int(state)]
+            line, = ax.plot(part["time"], part["population"], label=label)
+            ax.fill_between(part["time"], part["lower"], part["upper"], alpha=0.2,
+                            color=line.get_color(), lw=0)
+        if model.delay_range is not None:
+            ax.axvspan(*model.delay_range, color="0.7", alpha=0.3)
+        ax.set_xlabel("time / fs")
+        ax.set_ylabel("population")
+        ax.legend()
+        fig.tight_layout()
+        out.append(_save(fig, folder / f"populations.{fmt}", fmt))
+    return out
+
+
+def _save(fig: Any, path: Path, fmt: str) -> Path:
+    buf = _io.BytesIO()
+    fig.savefig(buf, format=fmt)
+    return write_bytes_atomic(path, buf.getvalue())
+
+
+class ExportPanel(View):
+    """Buttons that export structures, figures, tables, and save or restore the session.
+
+    Parameters
+    ----------
+    model : SelectionModel or Ensemble
+        Shared selection state.
+    folder : path, optional
+        Export folder (default ``./ensemblelab-export``).
+    populations : callable, optional
+        Returns the populations table to draw and save (the explorer passes it).
+    save_session, restore_session : callable, optional
+        Called by the session buttons (the explorer passes them; hidden otherwise).
+    messages : MessageArea, optional
+        Where callback errors go.
+
+    Attributes
+    ----------
+    written : list of Path
+        Every file written so far.
+    """
+
+    title = "export"
+
+    def __init__(self, model: SelectionModel | Ensemble, *,
+                 folder: str | os.PathLike[str] | None = None,
+                 populations: Callable[[], pd.DataFrame | None] | None = None,
+                 save_session: Callable[[], Path] | None = None,
+                 restore_session: Callable[[], Any] | None = None,
+                 messages: MessageArea | None = None) -> None:
+        super().__init__(model, messages=messages)
+        self._populations = populations
+        self.written: list[Path] = []
+        default = Path(folder) if folder is not None else Path.cwd() / "ensemblelab-export"
+        self.folder = widgets.Text(value=str(default), description="folder",
+                                   layout=widgets.Layout(width="420px"))
+        buttons = []
+        actions: list[tuple[str, Callable[[], Any]]] = [
+            ("structures XYZ", lambda: [export_structures(self.model, self.folder.value,
+                                                          fmt="xyz")]),
+            ("structures PDB", lambda: [export_structures(self.model, self.folder.value,
+                                                          fmt="pdb")]),
+            ("figures PNG", lambda: export_figures(self.model, self.folder.value, fmt="png",
+                                                   populations=self._pop())),
+            ("figures SVG", lambda: export_figures(self.model, self.folder.value, fmt="svg",
+                                                   populations=self._pop())),
+            ("tables CSV", lambda: export_tables(
+                self.model, self.folder.value,
+                extra={"populations": p} if (p := self._pop()) is not None else None)),
+        ]
+        if save_session is not None:
+            actions.append(("save session", lambda: [save_session()]))
+        if restore_session is not None:
+            actions.append(("restore session", lambda: restore_session() and []))
+        self.buttons: dict[str, widgets.Button] = {}
+        for label, action in actions:
+            b = widgets.Button(description=label)
+            b.add_class("ensemblelab-export-" + label.replace(" ", "-").lower())
+            b.on_click(self._guard(lambda _b, a=action, lab=label: self._run(lab, a)))
+            self.buttons[label] = b
+            buttons.append(b)
+        self.result = widgets.HTML()
+        self._finish(self.folder, widgets.HBox(buttons[:5]), widgets.HBox(buttons[5:]),
+                     self.result)
+
+    def _pop(self) -> pd.DataFrame | None:
+        return None if self._populations is None else self._populations()
+
+    def _run(self, label: str, action: Callable[[], Any]) -> None:
+        paths = [Path(p) for p in (action() or [])]
+        self.written.extend(paths)
+        self.result.value = f"{label}: " + (", ".join(p.name for p in paths) or "done")
+        self.messages.info(f"{label}: wrote {len(paths)} file(s) to {self.folder.value}"
+                           if paths else f"{label}: done")
+
+    def click(self, label: str) -> None:
+        """Press a button by its label (as the browser does)."""
+        self.buttons[label].click()

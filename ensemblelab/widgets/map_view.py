@@ -1,0 +1,433 @@
+"""Map view: the TRPES map with a box selection of a band, decompositions, cuts and controls."""
+
+from __future__ import annotations
+
+from typing import Any
+
+import bqplot
+import ipywidgets as widgets
+import numpy as np
+
+from ..data.ensemble import Ensemble
+from ._base import View
+from ._messages import MessageArea
+from ._selection import SelectionModel
+from ._util import Debouncer, busy
+
+__all__ = ["MapView", "DECOMPOSITIONS"]
+
+#: decomposition menu: label -> ``by`` argument of compute_trpes
+DECOMPOSITIONS = {
+    "total": None,
+    "neutral state": "neutral",
+    "cation state": "cation",
+    "state pair": "pair",
+    "diabatic pair": "diabatic",
+}
+
+_MAX_SMALL_MAPS = 12
+
+
+def _heatmap(x_scale: Any, y_scale: Any, c_scale: Any, energies: np.ndarray,
+             delays: np.ndarray, values: np.ndarray) -> bqplot.HeatMap:
+    return bqplot.HeatMap(x=energies, y=delays, color=values,
+                          scales={"x": x_scale, "y": y_scale, "color": c_scale})
+
+
+def _default_energies(photon_energy: float, n_photons: int) -> np.ndarray:
+    return np.linspace(0.0, float(photon_energy) * int(n_photons), 241)
+
+
+def _default_delays(ens: Ensemble, fwhm_cc: float) -> np.ndarray:
+    t = ens.snapshots["time"].to_numpy()
+    t = t[np.isfinite(t)]
+    lo = float(t.min()) - 1.5 * fwhm_cc if t.size else -50.0
+    hi = float(t.max()) if t.size else 500.0
+    return np.linspace(lo, hi, 161)
+
+
+class MapView(View):
+    """The simulated TRPES map; a drawn box selects a band for the other views.
+
+    Recomputes (debounced) when a pulse control or the exclusions change and
+    writes the new map to ``model.trpes_map``; a finished box drag calls
+    ``model.select_band``.
+
+    Parameters
+    ----------
+    model : SelectionModel or Ensemble
+        Shared selection state.
+    photon_energy : float
+        Probe photon energy in eV.
+    probe_fwhm, pump_fwhm : float
+        Intensity FWHM of probe and pump in fs (``pump_fwhm=0``: no pump
+        cross-correlation is applied).
+    n_photons : int
+        Probe photons per ionisation.
+    resolution : float
+        Instrument energy resolution (FWHM) in eV.
+    convolve : bool
+        Convolve with the pump-probe cross-correlation.
+    energies, delays : array_like, optional
+        Kinetic-energy grid (eV) and delay grid (fs) of the map.
+    decomposition : str
+        One of :data:`DECOMPOSITIONS`.
+    measured : TRPESMap, optional
+        A measured map; shown on request with the residual.
+    trpes_kwargs : dict, optional
+        Further keyword arguments of :func:`ensemblelab.compute.spectra.compute_trpes`
+        (``weights``, ``cross_section``, ``normalise``).
+    debounce : float
+        Seconds of quiet after a control change before recomputing.
+    compute : bool
+        Compute the first map at once (else wait for :meth:`recompute`).
+    messages : MessageArea, optional
+        Where callback errors go.
+
+    Attributes
+    ----------
+    figure : bqplot.Figure
+        The main map; ``figure.interaction`` is the :class:`bqplot.interacts.BrushSelector`.
+    heatmap : bqplot.HeatMap
+    brush : bqplot.interacts.BrushSelector
+    grid : ipywidgets.GridBox
+        Small maps of the decomposition on a shared colour scale.
+    delay_cut, energy_cut : bqplot.Figure
+        Spectrum averaged over the selected delays; trace averaged over the selected energies.
+    status : ipywidgets.HTML
+        Progress of a recomputation.
+    n_computed : int
+        How many maps were computed (for tests and benchmarks).
+    """
+
+    title = "map view"
+
+    def __init__(
+        self,
+        model: SelectionModel | Ensemble,
+        *,
+        photon_energy: float = 5.0,
+        probe_fwhm: float = 30.0,
+        pump_fwhm: float = 30.0,
+        n_photons: int = 1,
+        resolution: float = 0.0,
+        convolve: bool = True,
+        energies: Any = None,
+        delays: Any = None,
+        decomposition: str = "total",
+        measured: Any = None,
+        trpes_kwargs: dict[str, Any] | None = None,
+        debounce: float = 0.3,
+        compute: bool = True,
+        messages: MessageArea | None = None,
+    ) -> None:
+        super().__init__(model, messages=messages)
+        if decomposition not in DECOMPOSITIONS:
+            raise ValueError(
+                f"decomposition must be one of {list(DECOMPOSITIONS)}; got {decomposition!r}."
+            )
+        self.trpes_kwargs = dict(trpes_kwargs or {})
+        self.measured = measured
+        self.n_computed = 0
+        self._fixed_energies = None if energies is None else np.asarray(energies, float)
+        self._fixed_delays = None if delays is None else np.asarray(delays, float)
+
+        style = {"description_width": "initial"}
+        lay = widgets.Layout(width="190px")
+        self.photon_energy = widgets.BoundedFloatText(
+            value=photon_energy, min=0.1, max=100.0, step=0.1, description="probe hν / eV",
+            style=style, layout=lay)
+        self.probe_fwhm = widgets.BoundedFloatText(
+            value=probe_fwhm, min=0.1, max=1e4, step=5.0, description="probe FWHM / fs",
+            style=style, layout=lay)
+        self.pump_fwhm = widgets.BoundedFloatText(
+            value=pump_fwhm, min=0.0, max=1e4, step=5.0, description="pump FWHM / fs",
+            style=style, layout=lay)
+        self.n_photons = widgets.BoundedIntText(
+            value=n_photons, min=1, max=4, description="probe photons", style=style, layout=lay)
+        self.resolution = widgets.BoundedFloatText(
+            value=resolution, min=0.0, max=10.0, step=0.01, description="resolution / eV",
+            style=style, layout=lay)
+        self.convolve = widgets.Checkbox(value=convolve, description="convolve", indent=False)
+        self.decomposition = widgets.Dropdown(options=list(DECOMPOSITIONS), value=decomposition,
+                                              description="show", layout=widgets.Layout(
+                                                  width="220px"))
+        self.layer = widgets.ToggleButtons(
+            options=["simulated", "measured", "residual"], value="simulated",
+            style={"button_width": "80px"}, disabled=measured is None)
+        self.status = widgets.HTML()
+        self.status.add_class("ensemblelab-map-status")
+        self.band_label = widgets.HTML()
+        self.band_label.add_class("ensemblelab-band-label")
+
+        # main map
+        self.x = bqplot.LinearScale()
+        self.y = bqplot.LinearScale()
+        self.c = bqplot.ColorScale(scheme="viridis")
+        e0 = np.linspace(0, 1, 3)
+        self.heatmap = _heatmap(self.x, self.y, self.c, e0, e0, np.zeros((3, 3)))
+        self.box = bqplot.Lines(x=np.zeros(0), y=np.zeros(0), scales={"x": self.x, "y": self.y},
+                                colors=["white"], stroke_width=2.0, line_style="dashed")
+        self.brush = bqplot.interacts.BrushSelector(x_scale=self.x, y_scale=self.y,
+                                                    color="white")
+        ax = bqplot.Axis(scale=self.x, label="kinetic energy / eV")
+        ay = bqplot.Axis(scale=self.y, side="left", label="delay / fs")
+        ac = bqplot.ColorAxis(scale=self.c, side="right")
+        self.figure = bqplot.Figure(
+            marks=[self.heatmap, self.box], axes=[ax, ay, ac], interaction=self.brush,
+            layout=widgets.Layout(width="520px", height="420px"),
+            fig_margin={"top": 20, "bottom": 45, "left": 60, "right": 70},
+            padding_x=0, padding_y=0,
+        )
+        self.figure.add_class("ensemblelab-map")
+
+        # decomposition grid (filled on demand)
+        self.grid = widgets.GridBox(layout=widgets.Layout(
+            grid_template_columns="repeat(3, 240px)", grid_gap="2px"))
+        self._small_scale = bqplot.ColorScale(scheme="viridis")
+
+        # cuts
+        self.cx = bqplot.LinearScale()
+        self.cy = bqplot.LinearScale(min=0.0)
+        self.tx = bqplot.LinearScale()
+        self.ty = bqplot.LinearScale(min=0.0)
+        self.delay_cut_line = bqplot.Lines(x=e0, y=np.zeros((1, 3)),
+                                           scales={"x": self.cx, "y": self.cy},
+                                           colors=["#1f77b4", "black"], labels=["simulated",
+                                                                                 "measured"])
+        self.energy_cut_line = bqplot.Lines(x=e0, y=np.zeros((1, 3)),
+                                            scales={"x": self.tx, "y": self.ty},
+                                            colors=["#1f77b4", "black"], labels=["simulated",
+                                                                                  "measured"])
+        small = widgets.Layout(width="260px", height="200px")
+        margin = {"top": 25, "bottom": 40, "left": 50, "right": 10}
+        self.delay_cut = bqplot.Figure(
+            marks=[self.delay_cut_line], layout=small, fig_margin=margin,
+            title="spectrum over the selected delays",
+            axes=[bqplot.Axis(scale=self.cx, label="kinetic energy / eV"),
+                  bqplot.Axis(scale=self.cy, side="left", tick_format=".2g")])
+        self.energy_cut = bqplot.Figure(
+            marks=[self.energy_cut_line], layout=small, fig_margin=margin,
+            title="trace over the selected energies",
+            axes=[bqplot.Axis(scale=self.tx, label="delay / fs"),
+                  bqplot.Axis(scale=self.ty, side="left", tick_format=".2g")])
+
+        self._recompute_later = Debouncer(self._guard(self.recompute), delay=debounce)
+        for w in (self.photon_energy, self.probe_fwhm, self.pump_fwhm, self.n_photons,
+                  self.resolution, self.convolve, self.decomposition):
+            w.observe(lambda change: self._recompute_later(), names="value")
+        self.layer.observe(self._guard(self._on_layer_change), names="value")
+        self.brush.observe(self._guard(self._on_brushing_change), names="brushing")
+        self._observe(self._on_excluded_change, "excluded")
+        self._observe(self._on_map_change, "trpes_map")
+        self._observe(self._on_range_change, ["energy_range", "delay_range"])
+
+        controls = widgets.VBox([
+            widgets.HBox([self.photon_energy, self.n_photons, self.probe_fwhm]),
+            widgets.HBox([self.pump_fwhm, self.resolution, self.convolve]),
+            widgets.HBox([self.decomposition, self.layer, self.status]),
+        ])
+        cuts = widgets.VBox([self.delay_cut, self.energy_cut])
+        self._finish(controls, widgets.HBox([self.figure, cuts]), self.band_label, self.grid)
+        if compute:
+            if self.model.trpes_map is None:
+                self.recompute()
+            else:
+                self._draw(self.model.trpes_map)
+
+    # ------------------------------------------------------------------ compute
+    def pulses(self) -> tuple[Any, Any]:
+        """The probe and pump pulses set by the controls (pump None when its FWHM is 0)."""
+        from ..compute.pulses import GaussianPulse
+
+        probe = GaussianPulse(photon_energy=float(self.photon_energy.value),
+                              fwhm=float(self.probe_fwhm.value),
+                              n_photons=int(self.n_photons.value))
+        pump = None
+        if float(self.pump_fwhm.value) > 0:
+            pump = GaussianPulse(photon_energy=float(self.photon_energy.value),
+                                 fwhm=float(self.pump_fwhm.value))
+        return probe, pump
+
+    def grids(self) -> tuple[np.ndarray, np.ndarray]:
+        """Kinetic-energy grid (eV) and delay grid (fs) of the map."""
+        probe, pump = self.pulses()
+        energies = self._fixed_energies
+        if energies is None:
+            energies = _default_energies(probe.photon_energy, probe.n_photons)
+        delays = self._fixed_delays
+        if delays is None:
+            fwhm_cc = float(np.hypot(probe.fwhm, pump.fwhm if pump is not None else 0.0))
+            delays = _default_delays(self.model.ens, fwhm_cc)
+        return energies, delays
+
+    def recompute(self) -> Any:
+        """Compute the map of ``model.current`` with the current controls; returns it."""
+        from ..compute.spectra import compute_trpes
+
+        probe, pump = self.pulses()
+        energies, delays = self.grids()
+        by = DECOMPOSITIONS[self.decomposition.value]
+        kwargs = dict(self.trpes_kwargs)
+        if pump is None and "weights" not in kwargs:
+            kwargs["weights"] = "uniform"
+        with busy(self.status, "computing the map ..."):
+            trpes = compute_trpes(
+                self.model.current, probe=probe, pump=pump, energies=energies, delays=delays,
+                resolution=float(self.resolution.value),
+                convolve=bool(self.convolve.value) and pump is not None, by=by, **kwargs,
+            )
+        self.n_computed += 1
+        self.model.trpes_map = trpes
+        return trpes
+
+    # ------------------------------------------------------------------ handlers
+    def _on_excluded_change(self, change: dict) -> None:
+        self._recompute_later()
+
+    def _on_map_change(self, change: dict) -> None:
+        if change["new"] is not None:
+            self._draw(change["new"])
+
+    def _on_layer_change(self, change: dict) -> None:
+        if self.model.trpes_map is not None:
+            self._draw(self.model.trpes_map)
+
+    def _on_brushing_change(self, change: dict) -> None:
+        if change["new"]:  # still dragging
+            return
+        sx, sy = self.brush.selected_x, self.brush.selected_y
+        if sx is None or sy is None or len(sx) < 2 or len(sy) < 2:
+            return
+        e_rng = (float(sx[0]), float(sx[-1]))
+        d_rng = (float(sy[0]), float(sy[-1]))
+        if e_rng[0] == e_rng[1] or d_rng[0] == d_rng[1]:
+            return
+        self.model.select_band(energy_range=e_rng, delay_range=d_rng)
+
+    def _on_range_change(self, change: dict) -> None:
+        self._draw_box()
+        self._draw_cuts()
+
+    # ------------------------------------------------------------------ drawing
+    def _layer_values(self, trpes: Any) -> np.ndarray:
+        sim = np.asarray(trpes.intensity, dtype=float)
+        if self.layer.value == "simulated" or self.measured is None:
+            return sim
+        measured = self._measured_on_grid(trpes)
+        if self.layer.value == "measured":
+            return measured
+        return sim - measured
+
+    def _measured_on_grid(self, trpes: Any) -> np.ndarray:
+        """The measured map resampled onto the simulated grid and scaled to it (display)."""
+        from ..compute.comparison import compare_maps
+
+        result = compare_maps(trpes, self.measured)
+        return np.asarray(result.measured, dtype=float)
+
+    def _draw(self, trpes: Any) -> None:
+        values = self._layer_values(trpes)
+        energies = np.asarray(trpes.energies, float)
+        delays = np.asarray(trpes.delays, float)
+        finite = values[np.isfinite(values)]
+        lo = float(finite.min()) if finite.size else 0.0
+        hi = float(finite.max()) if finite.size else 1.0
+        if self.layer.value == "residual":
+            m = max(abs(lo), abs(hi), 1e-300)
+            lo, hi = -m, m
+        with self.figure.hold_sync():
+            self.c.scheme = "RdBu" if self.layer.value == "residual" else "viridis"
+            self.c.min, self.c.max = lo, (hi if hi > lo else lo + 1.0)
+            self.heatmap.x = energies
+            self.heatmap.y = delays
+            self.heatmap.color = np.nan_to_num(values)
+            self.x.min, self.x.max = float(energies[0]), float(energies[-1])
+            self.y.min, self.y.max = float(delays[0]), float(delays[-1])
+        self._draw_grid(trpes)
+        self._draw_box()
+        self._draw_cuts()
+
+    def _draw_grid(self, trpes: Any) -> None:
+        comps = dict(getattr(trpes, "components", {}) or {})
+        if DECOMPOSITIONS[self.decomposition.value] is None or not comps:
+            self.grid.children = ()
+            return
+        names = list(comps)[:_MAX_SMALL_MAPS]
+        stack = np.stack([np.asarray(comps[k], float) for k in names])
+        finite = stack[np.isfinite(stack)]
+        lo = float(finite.min()) if finite.size else 0.0
+        hi = float(finite.max()) if finite.size else 1.0
+        self._small_scale.min, self._small_scale.max = lo, (hi if hi > lo else lo + 1.0)
+        figs = []
+        for name, values in zip(names, stack, strict=True):
+            xs, ys = bqplot.LinearScale(), bqplot.LinearScale()
+            hm = _heatmap(xs, ys, self._small_scale, np.asarray(trpes.energies, float),
+                          np.asarray(trpes.delays, float), np.nan_to_num(values))
+            fig = bqplot.Figure(
+                marks=[hm], title=str(name), padding_x=0, padding_y=0,
+                axes=[bqplot.Axis(scale=xs, num_ticks=3),
+                      bqplot.Axis(scale=ys, side="left", num_ticks=3)],
+                layout=widgets.Layout(width="238px", height="200px"),
+                fig_margin={"top": 25, "bottom": 25, "left": 40, "right": 8})
+            figs.append(fig)
+        self.grid.children = tuple(figs)
+
+    def _draw_box(self) -> None:
+        e, d = self.model.energy_range, self.model.delay_range
+        if e is None or d is None:
+            self.box.x, self.box.y = np.zeros(0), np.zeros(0)
+            self.band_label.value = "<i>Drag a box over a band to see what makes it.</i>"
+            return
+        self.box.x = np.array([e[0], e[1], e[1], e[0], e[0]])
+        self.box.y = np.array([d[0], d[0], d[1], d[1], d[0]])
+        self.band_label.value = (
+            f"band: {e[0]:.2f}–{e[1]:.2f} eV, {d[0]:.0f}–{d[1]:.0f} fs")
+
+    def cuts(self) -> tuple[np.ndarray, np.ndarray]:
+        """Spectrum averaged over the selected delays and trace averaged over the energies.
+
+        Returns
+        -------
+        spectrum : ndarray, shape (n_energies,)
+        trace : ndarray, shape (n_delays,)
+            Means over the selected ranges (over the whole map when none).
+        """
+        trpes = self.model.trpes_map
+        values = np.asarray(trpes.intensity, float)
+        d_mask = _mask(np.asarray(trpes.delays, float), self.model.delay_range)
+        e_mask = _mask(np.asarray(trpes.energies, float), self.model.energy_range)
+        return values[d_mask].mean(axis=0), values[:, e_mask].mean(axis=1)
+
+    def _draw_cuts(self) -> None:
+        trpes = self.model.trpes_map
+        if trpes is None:
+            return
+        spectrum, trace = self.cuts()
+        e = np.asarray(trpes.energies, float)
+        d = np.asarray(trpes.delays, float)
+        rows_s, rows_t = [spectrum], [trace]
+        if self.measured is not None:
+            try:
+                measured = self._measured_on_grid(trpes)
+            except Exception as exc:  # noqa: BLE001 - shown, the cuts still draw
+                self.messages.exception(exc, where="measured map")
+            else:
+                d_mask = _mask(d, self.model.delay_range)
+                e_mask = _mask(e, self.model.energy_range)
+                rows_s.append(measured[d_mask].mean(axis=0))
+                rows_t.append(measured[:, e_mask].mean(axis=1))
+        with self.delay_cut.hold_sync(), self.energy_cut.hold_sync():
+            self.delay_cut_line.x = e
+            self.delay_cut_line.y = np.nan_to_num(np.vstack(rows_s))
+            self.energy_cut_line.x = d
+            self.energy_cut_line.y = np.nan_to_num(np.vstack(rows_t))
+
+
+def _mask(grid: np.ndarray, rng: tuple[float, float] | None) -> np.ndarray:
+    if rng is None:
+        return np.ones(grid.size, bool)
+    m = (grid >= rng[0]) & (grid <= rng[1])
+    if not m.any():
+        m[np.argmin(np.abs(grid - 0.5 * (rng[0] + rng[1])))] = True
+    return m

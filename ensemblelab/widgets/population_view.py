@@ -1,0 +1,253 @@
+"""Population view: state populations with interval bands, fitted curves and a time cursor."""
+
+from __future__ import annotations
+
+from typing import Any
+
+import bqplot
+import ipywidgets as widgets
+import numpy as np
+import pandas as pd
+
+from ..data.ensemble import Ensemble
+from ._base import View
+from ._messages import MessageArea
+from ._selection import SelectionModel
+from ._util import Debouncer, busy
+from .trajectory_view import STATE_COLORS
+
+__all__ = ["PopulationView"]
+
+_MAX_TIMES = 600
+
+
+class PopulationView(View):
+    """Populations against time (from :func:`ensemblelab.compute.populations.populations`).
+
+    Observes ``model.excluded`` (recompute, debounced), ``model.delay_range``
+    (shaded) and ``model.time`` (cursor); a click on the plot writes
+    ``model.time``.
+
+    Parameters
+    ----------
+    model : SelectionModel or Ensemble
+        Shared selection state.
+    kind : {"active", "amplitudes", "diabatic"}
+        Population kind.
+    fit : {"none", "single", "sequential", "parallel"}
+        Kinetic model fitted with :func:`ensemblelab.compute.kinetics.fit_kinetics`
+        (``"sequential"``/``"parallel"`` need `fit_states`).
+    fit_states : sequence of int, optional
+        States in the roles A, B[, C] of the kinetic model.
+    irf_fwhm : float, optional
+        Instrument response (fs) of the fit.
+    time_grid : array_like, optional
+        Times in fs (default: the ensemble's times, thinned to at most 600).
+    debounce : float
+        Seconds of quiet before recomputing after a change.
+    messages : MessageArea, optional
+        Where callback errors go.
+
+    Attributes
+    ----------
+    figure : bqplot.Figure
+    lines : bqplot.Lines
+        Populations, one row per state.
+    bands : list of bqplot.Lines
+        Interval band of each state (``fill="between"``).
+    fit_lines : bqplot.Lines
+        Fitted curves (dashed).
+    delay_band : bqplot.Lines
+        The selected delay range (shaded).
+    cursor : bqplot.Lines
+        The time cursor.
+    table : DataFrame or None
+        The populations shown.
+    fit_result : KineticsResult or None
+        The last fit.
+    """
+
+    title = "population view"
+
+    def __init__(
+        self,
+        model: SelectionModel | Ensemble,
+        *,
+        kind: str = "active",
+        fit: str = "single",
+        fit_states: Any = None,
+        irf_fwhm: float | None = None,
+        time_grid: Any = None,
+        debounce: float = 0.3,
+        messages: MessageArea | None = None,
+    ) -> None:
+        super().__init__(model, messages=messages)
+        ens = self.model.ens
+        kinds = ["active"]
+        if ens.amplitudes is not None:
+            kinds.append("amplitudes")
+        if ens.adt is not None:
+            kinds.append("diabatic")
+        if kind not in kinds:
+            raise ValueError(f"kind must be one of {kinds} for this ensemble; got {kind!r}.")
+        self.fit_states = fit_states
+        self.irf_fwhm = irf_fwhm
+        self.time_grid = None if time_grid is None else np.asarray(time_grid, float)
+        self.table: pd.DataFrame | None = None
+        self.fit_result: Any = None
+        self.n_computed = 0
+
+        self.kind = widgets.Dropdown(options=kinds, value=kind, description="populations",
+                                     layout=widgets.Layout(width="230px"))
+        self.fit = widgets.Dropdown(options=["none", "single", "sequential", "parallel"],
+                                    value=fit, description="fit",
+                                    layout=widgets.Layout(width="180px"))
+        self.status = widgets.HTML()
+        self.fit_label = widgets.HTML()
+        self.fit_label.add_class("ensemblelab-fit-label")
+
+        n_states = ens.n_states
+        colors = [STATE_COLORS[i % len(STATE_COLORS)] for i in range(n_states)]
+        self.x = bqplot.LinearScale()
+        self.y = bqplot.LinearScale(min=0.0, max=1.0)
+        sc = {"x": self.x, "y": self.y}
+        zero = np.zeros(2)
+        self.delay_band = bqplot.Lines(x=zero, y=zero, scales=sc, fill="inside",
+                                       colors=["#bbbbbb"], fill_colors=["#bbbbbb"],
+                                       fill_opacities=[0.35], stroke_width=0.5)
+        self.bands = [
+            bqplot.Lines(x=zero, y=np.zeros((2, 2)), scales=sc, fill="between",
+                         colors=[c, c], fill_colors=[c], fill_opacities=[0.2],
+                         stroke_width=0.0, opacities=[0.0, 0.0])
+            for c in colors
+        ]
+        self.lines = bqplot.Lines(x=zero, y=np.zeros((n_states, 2)), scales=sc, colors=colors,
+                                  labels=list(ens.state_labels), display_legend=True,
+                                  stroke_width=2.0)
+        self.fit_lines = bqplot.Lines(x=zero, y=np.zeros((1, 2)), scales=sc, colors=["black"],
+                                      line_style="dashed", stroke_width=1.5)
+        self.cursor = bqplot.Lines(x=[0.0, 0.0], y=[0.0, 1.0], scales=sc, colors=["#555"],
+                                   line_style="dashed", visible=False)
+        self.selector = bqplot.interacts.IndexSelector(scale=self.x, marks=[self.lines],
+                                                       color="#555")
+        self.figure = bqplot.Figure(
+            marks=[self.delay_band, *self.bands, self.lines, self.fit_lines, self.cursor],
+            axes=[bqplot.Axis(scale=self.x, label="time / fs"),
+                  bqplot.Axis(scale=self.y, side="left", label="population",
+                              tick_format=".1f")],
+            interaction=self.selector, legend_location="top-right",
+            layout=widgets.Layout(width="100%", height="320px"),
+            fig_margin={"top": 20, "bottom": 45, "left": 60, "right": 20},
+        )
+        self.figure.add_class("ensemblelab-populations")
+
+        self._recompute_later = Debouncer(self._guard(self.recompute), delay=debounce)
+        self.kind.observe(lambda change: self._recompute_later(), names="value")
+        self.fit.observe(lambda change: self._recompute_later(), names="value")
+        self.selector.observe(self._guard(self._on_selector_change), names="selected")
+        self._observe(lambda change: self._recompute_later(), "excluded")
+        self._observe(self._on_delay_range_change, "delay_range")
+        self._observe(self._on_time_change, "time")
+        self._finish(widgets.HBox([self.kind, self.fit, self.status]), self.figure,
+                     self.fit_label)
+        self.recompute()
+        self._on_delay_range_change()
+
+    # ------------------------------------------------------------------ compute
+    def _grid(self) -> np.ndarray:
+        if self.time_grid is not None:
+            return self.time_grid
+        t = self.model.current.times
+        t = t[np.isfinite(t)]
+        if t.size > _MAX_TIMES:
+            t = t[np.linspace(0, t.size - 1, _MAX_TIMES).round().astype(int)]
+            t = np.unique(t)
+        return t
+
+    def recompute(self) -> pd.DataFrame:
+        """Recompute populations (and the fit) of ``model.current``; returns the table."""
+        from ..compute.populations import populations
+
+        ens = self.model.current
+        with busy(self.status, "computing populations ..."):
+            table = populations(ens, kind=self.kind.value, time_grid=self._grid())
+            self.table = table
+            self.fit_result = None
+            if self.fit.value != "none":
+                self.fit_result = self._fit(table)
+        self.n_computed += 1
+        self._draw()
+        return table
+
+    def _fit(self, table: pd.DataFrame) -> Any:
+        from ..compute.kinetics import fit_kinetics
+
+        kwargs: dict[str, Any] = {"model": self.fit.value, "n_boot": 0}
+        if self.fit_states is not None:
+            kwargs["states"] = self.fit_states
+        elif self.fit.value != "single":
+            raise ValueError(
+                f"the {self.fit.value!r} model needs fit_states (states in the roles A, B, C); "
+                "pass PopulationView(..., fit_states=[2, 1, 0]).")
+        if self.irf_fwhm:
+            kwargs["irf_fwhm"] = float(self.irf_fwhm)
+        return fit_kinetics(table, **kwargs)
+
+    # ------------------------------------------------------------------ drawing
+    def _draw(self) -> None:
+        table = self.table
+        n_states = self.model.ens.n_states
+        pivot = table.pivot_table(index="time", columns="state", values="population",
+                                  dropna=False)
+        t = pivot.index.to_numpy(float)
+        pop = np.vstack([pivot[s].to_numpy(float) if s in pivot else np.full(t.size, np.nan)
+                         for s in range(n_states)])
+        lower = table.pivot_table(index="time", columns="state", values="lower", dropna=False)
+        upper = table.pivot_table(index="time", columns="state", values="upper", dropna=False)
+        with self.figure.hold_sync():
+            self.lines.x = t
+            self.lines.y = np.nan_to_num(pop)
+            for s, band in enumerate(self.bands):
+                if s in lower and s in upper:
+                    band.x = t
+                    band.y = np.nan_to_num(np.vstack([lower[s].to_numpy(float),
+                                                      upper[s].to_numpy(float)]))
+            if t.size:
+                self.x.min, self.x.max = float(t.min()), float(t.max())
+            if self.fit_result is not None:
+                curves = self.fit_result.curves
+                fitted = curves.pivot_table(index="time", columns="state", values="fitted")
+                self.fit_lines.x = fitted.index.to_numpy(float)
+                self.fit_lines.y = fitted.to_numpy(float).T
+                self.fit_lines.visible = True
+                taus = ", ".join(f"{k} = {v:.1f} fs"
+                                 for k, v in self.fit_result.time_constants.items())
+                self.fit_label.value = f"{self.fit_result.model} fit: {taus}"
+            else:
+                self.fit_lines.visible = False
+                self.fit_label.value = ""
+
+    # ------------------------------------------------------------------ handlers
+    def _on_delay_range_change(self, change: dict | None = None) -> None:
+        rng = self.model.delay_range
+        if rng is None:
+            self.delay_band.x, self.delay_band.y = np.zeros(2), np.zeros(2)
+            self.delay_band.visible = False
+            return
+        self.delay_band.x = np.array([rng[0], rng[0], rng[1], rng[1]])
+        self.delay_band.y = np.array([0.0, 1.0, 1.0, 0.0])
+        self.delay_band.visible = True
+
+    def _on_time_change(self, change: dict) -> None:
+        t = change["new"]
+        if t is None:
+            self.cursor.visible = False
+            return
+        self.cursor.x = [float(t), float(t)]
+        self.cursor.visible = True
+
+    def _on_selector_change(self, change: dict) -> None:
+        sel = change["new"]
+        if sel is None or len(sel) == 0:
+            return
+        self.model.time = float(sel[0])
