@@ -95,7 +95,7 @@ class SelectionTable(View):
         self.summary = widgets.HTML(value="<i>No band selected.</i>")
         self.summary.add_class("ensemblelab-selection-summary")
         self.rows = widgets.Select(options=[], rows=8,
-                                   layout=widgets.Layout(width="100%", font_family="monospace"))
+                                   layout=widgets.Layout(width="100%"))
         self.rows.add_class("ensemblelab-selection-rows")
         self.html = widgets.HTML()
         self.html.add_class("ensemblelab-selection-table")

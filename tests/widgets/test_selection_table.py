@@ -1,0 +1,48 @@
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from ensemblelab.widgets import SelectionTable, group_band
+
+
+def _fake_band(toy, rows):
+    # a hand-made per-snapshot contribution table (shape of SelectionModel.band)
+    rng = np.random.default_rng(1)
+    intensity = rng.uniform(0.1, 1.0, size=rows.size)
+    snap = toy.snapshots.iloc[rows]
+    band = pd.DataFrame({
+        "snapshot": snap["snapshot"].to_numpy(), "traj": snap["traj"].to_numpy(),
+        "time": snap["time"].to_numpy(), "active": snap["active"].to_numpy(),
+        "intensity": intensity, "share": intensity / intensity.sum(),
+        "cluster": rows % 3, "weight": 1.0,
+    })
+    return band.sort_values("share", ascending=False).reset_index(drop=True)
+
+
+def test_group_band_sums_shares_like_bincount(toy):
+    band = _fake_band(toy, np.arange(0, 600, 7))
+    table = group_band(band, "cluster")
+    expected = np.bincount(band["cluster"], weights=band["share"])  # independent sum
+    got = table.set_index("key")["share"].sort_index().to_numpy()
+    np.testing.assert_allclose(got, expected, rtol=1e-12)
+    assert table["share"].is_monotonic_decreasing
+    assert table["share"].sum() == pytest.approx(1.0)
+    by_state = group_band(band, "state", state_labels=toy.state_labels)
+    assert set(by_state["label"]) <= set(toy.state_labels)
+
+
+def test_selectiontable_lists_groups_and_row_choice_selects(model, toy):
+    view = SelectionTable(model)
+    assert view.table is None and "No band" in view.summary.value
+    band = _fake_band(toy, np.arange(0, 900, 5))
+    model.band = band
+    assert len(view.rows.options) == 3
+    model.group_by = "traj"
+    assert view.group.value == "traj"
+    assert len(view.table) == band["traj"].nunique()
+    top = view.table["key"].iloc[0]
+    view.rows.value = int(top)  # the user chooses the first row
+    expected = band.loc[band["traj"] == top, "snapshot"].tolist()
+    assert list(model.selected) == expected and model.trajectory == int(top)
