@@ -194,9 +194,10 @@ def irf_exp(u: np.ndarray, tau: np.ndarray | float, sigma: float) -> np.ndarray:
         with np.errstate(over="ignore"):
             return np.where(u >= 0, np.exp(-np.clip(u, 0.0, None) / tau), 0.0)
     x = (sigma * sigma / tau - u) / (_SQRT2 * sigma)
-    g = np.exp(-0.5 * (u / sigma) ** 2)
     # where the argument is very negative erfcx overflows; there the erfc form is safe
+    # (both are evaluated, the unused one may overflow harmlessly)
     with np.errstate(over="ignore", invalid="ignore", under="ignore"):
+        g = np.exp(-0.5 * (u / sigma) ** 2)
         direct = 0.5 * g * erfcx(x)
         neg = 0.5 * np.exp(0.5 * (sigma / tau) ** 2 - u / tau) * erfc(x)
     return np.where(x > -20.0, direct, neg)

@@ -301,7 +301,8 @@ def populations(
     _check_kind(ens, kind)
     if method not in ("wilson", "bootstrap"):
         raise SchemaError(
-            f"The 'method' parameter of populations must be 'wilson' or 'bootstrap'; got {method!r}."
+            f"The 'method' parameter of populations must be 'wilson' or 'bootstrap'; got "
+            f"{method!r}."
         )
     if not (isinstance(ci, float | int) and 0.0 < float(ci) < 1.0):
         raise SchemaError(f"The 'ci' parameter of populations must be in (0, 1); got {ci!r}.")
