@@ -1,0 +1,279 @@
+"""Photoionisation cross-section models for the TRPES window function (method notes section 3).
+
+Every model is a callable object ``model(dyson, energy, ip, channel, photon_energy)``
+returning the cross section of each stick (arbitrary but consistent units):
+
+* :class:`DysonNorm` (default, ``"dyson"``): ``sigma = ||phi_D||^2``.
+* :class:`DysonTimes`: ``||phi_D||^2 * f(E_kin)`` with a user function or a table of
+  kinetic energy (per channel or shared), linearly interpolated.
+* :class:`HydrogenicPWA` (``"hydrogenic"``): the analytic plane-wave cross section of a
+  hydrogenic 1s orbital with effective exponent ``zeta = sqrt(2 IP)`` (atomic units),
+  ``sigma ~ ||phi_D||^2 omega k^3 zeta^5 / (zeta^2 + k^2)^6``.
+* :class:`AnionThresholdLaw` (``"anion-threshold"``): ``||phi_D||^2 * E^(l + 1/2)``, the
+  Wigner threshold law. Valid for **photodetachment of anions** only: for a neutral
+  ionised to a cation the Coulomb field keeps the cross section finite at threshold,
+  so this factor must not be used there; it is therefore never a default and the
+  bare name ``"threshold"`` is refused.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+import numpy.typing as npt
+
+from ..errors import SchemaError
+from ..units import HARTREE_EV
+
+__all__ = [
+    "CrossSection",
+    "DysonNorm",
+    "DysonTimes",
+    "HydrogenicPWA",
+    "AnionThresholdLaw",
+    "hydrogenic_factor",
+    "resolve_cross_section",
+]
+
+
+class CrossSection:
+    """Base class: ``__call__(dyson, energy, ip, channel, photon_energy) -> sigma``.
+
+    All arguments are arrays of shape (n_sticks,) except `photon_energy`
+    (``n h nu`` in eV): squared Dyson norms, kinetic energies (eV, > 0),
+    ionisation energies (eV) and cation channel indices.
+    """
+
+    name = "custom"
+
+    def __call__(self, dyson: np.ndarray, energy: np.ndarray, ip: np.ndarray,
+                 channel: np.ndarray, photon_energy: float) -> np.ndarray:
+        raise NotImplementedError
+
+    def describe(self) -> dict[str, Any]:
+        """A JSON-friendly description (stored in map parameters)."""
+        return {"model": self.name}
+
+
+@dataclass(frozen=True)
+class DysonNorm(CrossSection):
+    """``sigma = ||phi_D||^2`` (model M0; the default)."""
+
+    name: str = field(default="dyson", init=False)
+
+    def __call__(self, dyson, energy, ip, channel, photon_energy):  # noqa: D102
+        return np.asarray(dyson, dtype=float)
+
+
+@dataclass(frozen=True)
+class DysonTimes(CrossSection):
+    """``sigma = ||phi_D||^2 * f(E_kin)`` with a user function or table.
+
+    Parameters
+    ----------
+    factor : callable or (energies, values) or mapping channel -> (energies, values)
+        ``f(energy, channel) -> array`` (vectorised, energy in eV); or a table of
+        kinetic energies (eV, increasing) and factors used for every channel; or
+        one table per cation channel index. Tables are linearly interpolated and
+        held constant beyond their ends.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> cs = DysonTimes(([0.0, 2.0], [0.0, 1.0]))
+    >>> cs(np.array([0.5]), np.array([1.0]), np.array([4.0]), np.array([0]), 5.0)
+    array([0.25])
+    """
+
+    factor: Any = None
+    name: str = field(default="dyson-times", init=False)
+
+    def __post_init__(self) -> None:
+        f = self.factor
+        if callable(f):
+            return
+        tables = f if isinstance(f, Mapping) else {None: f}
+        for key, tab in tables.items():
+            try:
+                e, v = (np.asarray(x, dtype=float) for x in tab)
+            except (TypeError, ValueError) as exc:
+                raise SchemaError(
+                    "The 'factor' parameter of DysonTimes must be a callable, an (energies, "
+                    f"values) pair or a mapping channel -> pair. Got {type(f).__name__}."
+                ) from exc
+            if e.ndim != 1 or e.shape != v.shape or e.size < 2 or np.any(np.diff(e) <= 0):
+                raise SchemaError(
+                    f"DysonTimes table for channel {key!r} must be two 1-D arrays of equal "
+                    f"length >= 2 with increasing energies; got shapes {e.shape}, {v.shape}."
+                )
+
+    def __call__(self, dyson, energy, ip, channel, photon_energy):  # noqa: D102
+        f = self.factor
+        energy = np.asarray(energy, dtype=float)
+        if callable(f):
+            fac = np.asarray(f(energy, np.asarray(channel)), dtype=float)
+        elif isinstance(f, Mapping):
+            fac = np.zeros_like(energy)
+            channel = np.asarray(channel)
+            for k in np.unique(channel):
+                if int(k) not in f:
+                    raise SchemaError(
+                        f"DysonTimes has no table for cation channel {int(k)}; tables for "
+                        f"{sorted(f)}."
+                    )
+                e, v = (np.asarray(x, dtype=float) for x in f[int(k)])
+                sel = channel == k
+                fac[sel] = np.interp(energy[sel], e, v)
+        else:
+            e, v = (np.asarray(x, dtype=float) for x in f)
+            fac = np.interp(energy, e, v)
+        return np.asarray(dyson, dtype=float) * fac
+
+    def describe(self) -> dict[str, Any]:  # noqa: D102
+        return {"model": self.name, "factor": "callable" if callable(self.factor) else "table"}
+
+
+def hydrogenic_factor(energy: npt.ArrayLike, ip: npt.ArrayLike, *,
+                      photon_energy: float | None = None,
+                      zeta: npt.ArrayLike | None = None) -> np.ndarray:
+    """Plane-wave cross section of a hydrogenic 1s orbital (method notes section 3, M3).
+
+    ``omega k^3 zeta^5 / (zeta^2 + k^2)^6`` in atomic units, with ``k = sqrt(2 E)``
+    and, unless given, ``zeta = sqrt(2 IP)``. Threshold behaviour ``E^(3/2)``
+    (p wave); maximum at ``E = zeta^2 / 6`` hartree.
+
+    Parameters
+    ----------
+    energy : array_like
+        Kinetic energy in eV.
+    ip : array_like
+        Ionisation energy in eV (sets zeta when `zeta` is None).
+    photon_energy : float, optional
+        ``omega`` in eV; default ``energy + ip``.
+    zeta : array_like, optional
+        Orbital exponent in bohr^-1.
+
+    Returns
+    -------
+    ndarray
+        Relative cross section (arbitrary units, consistent across snapshots).
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from ensemblelab.units import HARTREE_EV
+    >>> r = hydrogenic_factor([0.01 * HARTREE_EV, 0.04 * HARTREE_EV], 1.0, zeta=1.0,
+    ...                       photon_energy=1.0)
+    >>> round(float(r[0] / r[1]), 6)
+    0.176137
+    """
+    e = np.maximum(np.asarray(energy, dtype=float), 0.0) / HARTREE_EV
+    ip_au = np.asarray(ip, dtype=float) / HARTREE_EV
+    z = np.sqrt(2.0 * np.maximum(ip_au, 0.0)) if zeta is None else np.asarray(zeta, float)
+    omega = (e + ip_au) if photon_energy is None else photon_energy / HARTREE_EV
+    k2 = 2.0 * e
+    return omega * k2**1.5 * z**5 / (z * z + k2) ** 6
+
+
+@dataclass(frozen=True)
+class HydrogenicPWA(CrossSection):
+    """``sigma = ||phi_D||^2 * hydrogenic_factor(E, IP)`` (model M3).
+
+    Parameters
+    ----------
+    zeta : float, optional
+        Fixed orbital exponent in bohr^-1; default ``sqrt(2 IP)`` per stick.
+    """
+
+    zeta: float | None = None
+    name: str = field(default="hydrogenic", init=False)
+
+    def __call__(self, dyson, energy, ip, channel, photon_energy):  # noqa: D102
+        return np.asarray(dyson, dtype=float) * hydrogenic_factor(
+            energy, ip, photon_energy=photon_energy, zeta=self.zeta)
+
+    def describe(self) -> dict[str, Any]:  # noqa: D102
+        return {"model": self.name, "zeta": self.zeta}
+
+
+@dataclass(frozen=True)
+class AnionThresholdLaw(CrossSection):
+    """``sigma = ||phi_D||^2 * (E / 1 eV)^(l + 1/2)``: Wigner threshold law.
+
+    Only for photodetachment of **anions** (short-range final-state interaction).
+    Do not use for neutral molecules ionised to cations: the Coulomb tail keeps
+    their cross section finite at threshold.
+
+    Parameters
+    ----------
+    l : int, default 1
+        Lowest outgoing partial wave (detachment from an s-like orbital gives a
+        p wave, l = 1, i.e. E^(3/2); from a p-like orbital an s wave, E^(1/2)).
+    """
+
+    l: int = 1
+    name: str = field(default="anion-threshold", init=False)
+
+    def __post_init__(self) -> None:
+        if isinstance(self.l, bool) or not isinstance(self.l, int) or self.l < 0:
+            raise SchemaError(f"AnionThresholdLaw l must be an int >= 0; got {self.l!r}.")
+
+    def __call__(self, dyson, energy, ip, channel, photon_energy):  # noqa: D102
+        e = np.maximum(np.asarray(energy, dtype=float), 0.0)
+        return np.asarray(dyson, dtype=float) * e ** (self.l + 0.5)
+
+    def describe(self) -> dict[str, Any]:  # noqa: D102
+        return {"model": self.name, "l": self.l}
+
+
+_NAMED: dict[str, Callable[[], CrossSection]] = {
+    "dyson": DysonNorm,
+    "hydrogenic": HydrogenicPWA,
+    "anion-threshold": AnionThresholdLaw,
+}
+
+
+def resolve_cross_section(spec: str | CrossSection | Callable[..., Any]) -> CrossSection:
+    """Turn a name, a model object or a plain ``f(energy, channel)`` into a model.
+
+    Parameters
+    ----------
+    spec : {"dyson", "hydrogenic", "anion-threshold"}, CrossSection or callable
+        A plain callable is wrapped as ``DysonTimes(spec)``.
+
+    Returns
+    -------
+    CrossSection
+    """
+    if isinstance(spec, CrossSection):
+        return spec
+    if isinstance(spec, str):
+        if spec in _NAMED:
+            return _NAMED[spec]()
+        if spec == "threshold":
+            raise SchemaError(
+                "cross_section='threshold' is not offered: the E^(l+1/2) threshold law holds "
+                "for anion photodetachment only (a neutral ionised to a cation has a finite "
+                "cross section at threshold). Hint: for anions pass "
+                "cross_section='anion-threshold' or AnionThresholdLaw(l=...)."
+            )
+        raise SchemaError(
+            f"The 'cross_section' parameter must be one of {sorted(_NAMED)}, a CrossSection or "
+            f"a callable f(energy, channel). Got {spec!r} instead."
+        )
+    if callable(spec):
+        return DysonTimes(spec)
+    raise SchemaError(
+        f"The 'cross_section' parameter must be a str, a CrossSection or a callable. Got "
+        f"{type(spec).__name__} instead."
+    )
+
+
+def _describe(cs: CrossSection) -> dict[str, Any]:
+    d = cs.describe()
+    return {k: (v if not isinstance(v, float) or math.isfinite(v) else None)
+            for k, v in d.items()}
