@@ -395,7 +395,7 @@ def cluster_snapshots(
     features : str, transformer, array_like or list of str
         "inverse_distances" (default), "sorted_inverse_distances", "coulomb",
         "aligned"; a scikit-learn transformer taking flattened geometries
-        (n_snapshots, n_atoms * 3), e.g. :class:`~ensemblelab.compute.descriptors.InternalCoordinates`;
+        (n_snapshots, n_atoms * 3), e.g. :class:`~.descriptors.InternalCoordinates`;
         a precomputed array (n_snapshots, n_features); or snapshot column names.
     estimator : scikit-learn clusterer, optional
         Any estimator with ``fit`` and ``predict`` or ``fit_predict`` (cloned per

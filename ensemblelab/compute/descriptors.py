@@ -190,7 +190,7 @@ class InternalCoordinates(_GeometryTransformer):
     >>> ic = InternalCoordinates(bonds=[(0, 1)], angles=[(1, 0, 2)])
     >>> F = ic.fit_transform(water.reshape(1, -1))
     >>> np.round(F, 4).tolist()
-    [[0.9572, 1.8242]]
+    [[0.9578, 1.8235]]
     """
 
     _parameter_constraints: dict[str, list[Any]] = {

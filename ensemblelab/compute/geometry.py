@@ -325,7 +325,7 @@ def rmsd(
     --------
     >>> import numpy as np
     >>> P = np.array([[0.0, 0, 0], [1, 0, 0], [0, 1, 0], [0, 0, 1]])
-    >>> Q = P.copy(); Q[1, 0] += 0.1
+    >>> Q = P.copy(); Q[0, 0] += 0.1
     >>> round(float(rmsd(Q, P)[0]), 7)
     0.0402486
     """

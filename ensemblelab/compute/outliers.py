@@ -1,0 +1,485 @@
+"""Flag broken and unusual trajectories.
+
+:func:`flag_trajectories` runs rule-based checks (energy conservation, hops at large
+gaps, electronic norm, non-finite values, missing steps, early ends, bond-topology
+changes) and a multivariate outlier score (isolation forest on per-trajectory
+features). Nothing is deleted: drop the flagged trajectories with
+``ens.without(table[table.flagged])``, which returns a new Ensemble.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from typing import TYPE_CHECKING, Any
+
+import numpy as np
+import pandas as pd
+from scipy import constants as _sc
+
+from ..errors import SchemaError
+from . import _kernels_geometry as _k
+
+if TYPE_CHECKING:
+    from ..data.ensemble import Ensemble
+
+__all__ = ["OutlierThresholds", "BROKEN_KINDS", "WARNING_KINDS", "flag_trajectories",
+           "kinetic_energy"]
+
+#: flag kinds that mark a trajectory as broken (``flagged=True``) by default
+BROKEN_KINDS = ("nonfinite", "missing_steps", "early_end", "energy_drift", "energy_jump",
+                "large_gap_hop", "norm_error", "topology_change", "small_s1s0_gap")
+#: flag kinds reported but not counted as broken by default
+WARNING_KINDS = ("energy_drift_warning", "unusual")
+
+#: (1/2) m v^2 with m in amu and v in Angstrom/fs, expressed in eV
+_AMU_A2_FS2_EV = _sc.physical_constants["atomic mass constant"][0] * 1e10 / _sc.e
+
+
+@dataclass(frozen=True)
+class OutlierThresholds:
+    """User-tunable thresholds of :func:`flag_trajectories`.
+
+    Every default is common practice (method notes, section 8), not a law; tune
+    them to your electronic-structure method and time step.
+
+    Attributes
+    ----------
+    drift_warn : float
+        Total-energy drift |E_tot(t) - E_tot(0)| (eV) reported as a warning.
+        Default 0.2 eV (common practice).
+    drift_reject : float
+        Drift (eV) that marks a trajectory as broken. Default 0.5 eV (common practice).
+    jump : float
+        Change of the total energy within one step without a hop (eV). Default
+        0.1 eV (common practice).
+    hop_gap : float
+        |E_from - E_to| at a hop (eV) above which the hop is suspicious. Default
+        0.5 eV (common practice; internal conversion normally hops at <~ 0.1-0.3 eV).
+    norm : float
+        |sum_i |c_i|^2 - 1| above which the electronic norm is broken. Default 1e-3
+        (common practice).
+    s1s0_gap : float or None
+        Flag an S1/S0 gap below this value (eV) while on S1, for methods that cannot
+        describe S1/S0 crossings (common practice: 0.1 eV). Default None (off).
+    bond_scale : float
+        Atoms are bonded when r < bond_scale (r_cov,A + r_cov,B). Default 1.25
+        (common practice).
+    bond_margin : float
+        Hysteresis: a bond counts as broken above bond_scale (1 + margin) sum r_cov
+        and as formed below bond_scale (1 - margin) sum r_cov, so vibrations near the
+        threshold do not flip. Default 0.1 (common practice).
+    bond_stretch : float
+        A t = 0 bond longer than bond_stretch times its t = 0 length is broken.
+        Default 2.0 (common practice).
+    step_gap_factor : float
+        A time step longer than this multiple of the median step means missing
+        steps. Default 1.5 (common practice).
+    expected_t_end : float or None
+        Time (fs) every trajectory should reach; default: the longest trajectory.
+    end_tolerance : float or None
+        Slack (fs) on `expected_t_end`; default 1.5 median time steps.
+    end_ok_states : tuple of int
+        Active states on which stopping early is normal (e.g. ``(0,)`` when the
+        dynamics stop on reaching the ground state). Default () (common practice
+        varies by program; set it explicitly).
+    contamination : float
+        Expected fraction of unusual trajectories for the isolation forest.
+        Default 0.05 (common practice).
+    broken_kinds : tuple of str
+        Flag kinds that set ``flagged``; add "unusual" or "energy_drift_warning"
+        to count those too.
+    """
+
+    drift_warn: float = 0.2
+    drift_reject: float = 0.5
+    jump: float = 0.1
+    hop_gap: float = 0.5
+    norm: float = 1e-3
+    s1s0_gap: float | None = None
+    bond_scale: float = 1.25
+    bond_margin: float = 0.1
+    bond_stretch: float = 2.0
+    step_gap_factor: float = 1.5
+    expected_t_end: float | None = None
+    end_tolerance: float | None = None
+    end_ok_states: tuple[int, ...] = ()
+    contamination: float = 0.05
+    broken_kinds: tuple[str, ...] = field(default=BROKEN_KINDS)
+
+
+def kinetic_energy(velocities: np.ndarray, masses: np.ndarray) -> np.ndarray:
+    """Nuclear kinetic energy (eV) from velocities (Angstrom/fs) and masses (amu).
+
+    Parameters
+    ----------
+    velocities : ndarray, shape (n_snapshots, n_atoms, 3)
+    masses : ndarray, shape (n_atoms,)
+
+    Returns
+    -------
+    ndarray, shape (n_snapshots,)
+    """
+    return 0.5 * _AMU_A2_FS2_EV * np.einsum("nak,nak,a->n", velocities, velocities, masses)
+
+
+def _total_energy(ens: Ensemble) -> tuple[np.ndarray | None, str]:
+    cols = ens.snapshots.columns
+    if "e_tot" in cols:
+        return ens.snapshots["e_tot"].to_numpy(dtype=np.float64), "column e_tot"
+    active = ens.snapshots["active"].to_numpy()
+    e_pot = ens.energies[np.arange(ens.n_snapshots), active]
+    if "e_kin" in cols:
+        return e_pot + ens.snapshots["e_kin"].to_numpy(dtype=np.float64), "E_active + e_kin"
+    if ens.velocities is not None:
+        return e_pot + kinetic_energy(ens.velocities, ens.masses), "E_active + velocities"
+    return None, "no total energy (energy checks skipped)"
+
+
+class _Flags:
+    """Collects (traj row, kind, time, reason) events; keeps the first per kind."""
+
+    def __init__(self, n_traj: int) -> None:
+        self.events: list[dict[int, tuple[float, str]]] = [{} for _ in range(n_traj)]
+
+    def add(self, row: int, kind: str, time: float, reason: str) -> None:
+        cur = self.events[row].get(kind)
+        if cur is None or time < cur[0]:
+            self.events[row][kind] = (float(time), reason)
+
+
+def _first_per_traj(mask: np.ndarray, tix: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Trajectory rows with any True in `mask`, and the first snapshot row of each."""
+    idx = np.flatnonzero(mask)
+    rows, first = np.unique(tix[idx], return_index=True)
+    return rows, idx[first]
+
+
+def _fmt(x: float) -> str:
+    return f"{x:.3g}"
+
+
+def flag_trajectories(
+    ens: Ensemble,
+    *,
+    thresholds: OutlierThresholds | Mapping[str, Any] | None = None,
+    multivariate: bool = True,
+    random_state: int = 0,
+    chunk_size: int = 65536,
+) -> pd.DataFrame:
+    """Flag broken and unusual trajectories, with a readable reason for every flag.
+
+    Checks (thresholds in :class:`OutlierThresholds`, all common practice):
+
+    * ``nonfinite``: NaN/Inf in geometries, energies, total energy or amplitudes;
+    * ``missing_steps``: a step-index jump or a time step > step_gap_factor x median;
+    * ``early_end``: the trajectory stops before `expected_t_end` (not on an
+      `end_ok_states` state);
+    * ``energy_drift`` / ``energy_drift_warning``: |E_tot(t) - E_tot(0)|;
+    * ``energy_jump``: |Delta E_tot| in one step without a hop;
+    * ``large_gap_hop``: a hop with |E_from - E_to| > hop_gap;
+    * ``norm_error``: |sum |c|^2 - 1| > norm;
+    * ``topology_change``: a bond of t = 0 breaks or a new one forms (covalent radii);
+    * ``small_s1s0_gap``: (optional) S1/S0 gap below s1s0_gap on S1;
+    * ``unusual``: isolation-forest outlier on per-trajectory features (drift, jumps,
+      hops, gaps, length, RMSD to the mean structure, mean active energy); reported,
+      not counted as broken by default.
+
+    The total energy is the ``e_tot`` column, else the active-state energy plus
+    ``e_kin``, else plus the kinetic energy from velocities; without any, the energy
+    checks are skipped.
+
+    Parameters
+    ----------
+    ens : Ensemble
+    thresholds : OutlierThresholds or mapping, optional
+        Overrides of the defaults (a mapping updates only the named fields).
+    multivariate : bool
+        Compute the isolation-forest score (needs >= 8 trajectories).
+    random_state : int
+        Seed of the isolation forest.
+    chunk_size : int
+        Snapshots per chunk for the distance checks (memory bound).
+
+    Returns
+    -------
+    DataFrame
+        One row per trajectory (order of ``ens.trajectories``): ``traj``,
+        ``flagged`` (bool: any flag in ``broken_kinds``), ``flags`` (";"-joined
+        kinds), ``reason`` (";"-joined readable reasons, one per flag, same order),
+        ``first_bad_time`` (fs, earliest broken flag; NaN if none), ``score``
+        (multivariate outlier score, higher = more unusual; NaN when not computed),
+        ``unusual`` (bool), ``n_flags``, and the measured ``max_drift``,
+        ``max_jump``, ``max_hop_gap``, ``max_norm_error`` (NaN when not available),
+        ``t_end``.
+
+    Examples
+    --------
+    >>> from ensemblelab.testing import make_toy_ensemble
+    >>> ens = make_toy_ensemble(12, t_max=50.0, ragged=True)
+    >>> table = flag_trajectories(ens, thresholds={"hop_gap": 2.0, "drift_reject": 2.0})
+    >>> "early_end" in table.loc[2, "flags"]
+    True
+    >>> clean = ens.without(table[table.flagged])
+    """
+    if thresholds is None:
+        th = OutlierThresholds()
+    elif isinstance(thresholds, OutlierThresholds):
+        th = thresholds
+    elif isinstance(thresholds, Mapping):
+        names = {f.name for f in dataclasses.fields(OutlierThresholds)}
+        unknown = set(thresholds) - names
+        if unknown:
+            raise SchemaError(f"thresholds has unknown field(s) {sorted(unknown)}; known: "
+                              f"{sorted(names)}.")
+        th = dataclasses.replace(OutlierThresholds(), **dict(thresholds))
+    else:
+        raise SchemaError(f"thresholds must be an OutlierThresholds or a mapping; got "
+                          f"{type(thresholds).__name__}.")
+
+    snaps = ens.snapshots
+    n = ens.n_snapshots
+    trajs = ens.trajectories
+    n_traj = len(trajs)
+    tix = ens.traj_index
+    time = snaps["time"].to_numpy()
+    step = snaps["step"].to_numpy()
+    active = snaps["active"].to_numpy()
+    labels = ens.state_labels
+    flags = _Flags(n_traj)
+    starts = np.flatnonzero(np.r_[True, tix[1:] != tix[:-1]]) if n else np.zeros(0, int)
+    same = np.r_[False, tix[1:] == tix[:-1]] if n else np.zeros(0, bool)  # row i vs i-1
+    dt_all = np.diff(time)[same[1:]] if n > 1 else np.zeros(0)
+    dt_med = float(np.median(dt_all)) if dt_all.size else np.nan
+
+    # ---- non-finite values
+    e_tot, _source = _total_energy(ens)
+    checks: list[tuple[str, np.ndarray]] = [
+        ("geometries", ~np.isfinite(ens.geometries).all(axis=(1, 2))),
+        ("energies", ~np.isfinite(ens.energies).all(axis=1)),
+    ]
+    if e_tot is not None:
+        checks.append(("total energy", ~np.isfinite(e_tot)))
+    if ens.amplitudes is not None:
+        checks.append(("amplitudes", ~np.isfinite(ens.amplitudes).all(axis=1)))
+    for what, bad in checks:
+        for r, i in zip(*_first_per_traj(bad, tix), strict=True):
+            flags.add(r, "nonfinite", time[i], f"non-finite values (NaN/Inf) in {what} at "
+                                               f"{_fmt(time[i])} fs")
+
+    # ---- missing steps
+    if n > 1:
+        dstep = np.r_[1, np.diff(step)]
+        dtime = np.r_[0.0, np.diff(time)]
+        gap = same & ((dstep > 1) | (np.isfinite(dt_med) & (dtime > th.step_gap_factor * dt_med)))
+        for r, i in zip(*_first_per_traj(gap, tix), strict=True):
+            flags.add(r, "missing_steps", time[i - 1] + dt_med,
+                      f"missing steps between {_fmt(time[i - 1])} and {_fmt(time[i])} fs "
+                      f"(median step {_fmt(dt_med)} fs)")
+
+    # ---- early end
+    t_end = trajs["t_end"].to_numpy(dtype=np.float64)
+    t_ref = th.expected_t_end if th.expected_t_end is not None else (
+        float(t_end.max()) if n_traj else 0.0)
+    tol = th.end_tolerance if th.end_tolerance is not None else (
+        1.5 * dt_med if np.isfinite(dt_med) else 0.0)
+    last = np.r_[starts[1:] - 1, n - 1] if n else np.zeros(0, int)
+    for r in np.flatnonzero(t_end < t_ref - tol):
+        if int(active[last[r]]) in th.end_ok_states:
+            continue
+        flags.add(r, "early_end", t_end[r], f"ended at {_fmt(t_end[r])} fs, before the "
+                                            f"expected {_fmt(t_ref)} fs")
+
+    # ---- energies
+    max_drift = np.full(n_traj, np.nan)
+    max_jump = np.full(n_traj, np.nan)
+    if e_tot is not None and n:
+        finite = np.isfinite(e_tot)
+        # reference: first finite total energy of each trajectory
+        ref_pos = np.full(n_traj, -1)
+        rows_f, first_f = _first_per_traj(finite, tix)
+        ref_pos[rows_f] = first_f
+        e0 = np.where(ref_pos[tix] >= 0, e_tot[np.maximum(ref_pos[tix], 0)], np.nan)
+        drift = np.abs(e_tot - e0)
+        d_filled = np.where(np.isfinite(drift), drift, -np.inf)
+        max_drift = np.maximum.reduceat(d_filled, starts)
+        max_drift[~np.isfinite(max_drift)] = np.nan
+        for kind, lim, word in (("energy_drift", th.drift_reject, "broken"),
+                                ("energy_drift_warning", th.drift_warn, "warning level")):
+            for r, i in zip(*_first_per_traj(np.nan_to_num(drift, nan=0.0) > lim, tix),
+                            strict=True):
+                flags.add(r, kind, time[i], f"total energy drifted by {_fmt(drift[i])} eV "
+                                            f"(> {_fmt(lim)} eV, {word}) at {_fmt(time[i])} fs")
+        jump = np.zeros(n)
+        jump[1:] = np.abs(np.diff(e_tot))
+        no_hop = same & np.r_[False, active[1:] == active[:-1]]
+        jump = np.where(no_hop & np.isfinite(jump), jump, 0.0)
+        max_jump = np.maximum.reduceat(jump, starts)
+        for r, i in zip(*_first_per_traj(jump > th.jump, tix), strict=True):
+            flags.add(r, "energy_jump", time[i],
+                      f"total energy jumped by {_fmt(jump[i])} eV in one step without a hop "
+                      f"at {_fmt(time[i])} fs (> {_fmt(th.jump)} eV)")
+
+    # ---- hops at large gaps
+    hops = ens.hops()
+    max_hop_gap = np.zeros(n_traj)
+    n_hops = np.zeros(n_traj)
+    if len(hops):
+        hrow = np.searchsorted(trajs["traj"].to_numpy(), hops["traj"].to_numpy())
+        gaps = hops["gap"].to_numpy()
+        np.maximum.at(max_hop_gap, hrow, np.nan_to_num(gaps, nan=0.0))
+        np.add.at(n_hops, hrow, 1.0)
+        for r, g, t, a, b in zip(hrow, gaps, hops["time"].to_numpy(), hops["from"].to_numpy(),
+                                 hops["to"].to_numpy(), strict=True):
+            if g > th.hop_gap:
+                flags.add(int(r), "large_gap_hop", t,
+                          f"hop {labels[a]}->{labels[b]} at {_fmt(t)} fs with a gap of "
+                          f"{_fmt(g)} eV (> {_fmt(th.hop_gap)} eV)")
+
+    # ---- electronic norm
+    max_norm = np.full(n_traj, np.nan)
+    if ens.amplitudes is not None and n:
+        err = np.abs(ens.amplitudes.sum(axis=1) - 1.0)
+        err_f = np.where(np.isfinite(err), err, 0.0)
+        max_norm = np.maximum.reduceat(err_f, starts)
+        for r, i in zip(*_first_per_traj(err_f > th.norm, tix), strict=True):
+            flags.add(r, "norm_error", time[i], f"electronic populations sum to "
+                                                f"{1.0 + (ens.amplitudes[i].sum() - 1.0):.6g} "
+                                                f"(|error| {err[i]:.2g} > {th.norm:.2g}) at "
+                                                f"{_fmt(time[i])} fs")
+
+    # ---- small S1/S0 gap
+    if th.s1s0_gap is not None and ens.n_states > 1 and n:
+        g10 = ens.energies[:, 1] - ens.energies[:, 0]
+        bad = (active == 1) & (np.nan_to_num(g10, nan=np.inf) < th.s1s0_gap)
+        for r, i in zip(*_first_per_traj(bad, tix), strict=True):
+            flags.add(r, "small_s1s0_gap", time[i], f"S1/S0 gap {_fmt(g10[i])} eV on S1 at "
+                                                    f"{_fmt(time[i])} fs (< {th.s1s0_gap} eV)")
+
+    # ---- bond topology (covalent radii), chunked over snapshots
+    if ens.n_atoms > 1 and n:
+        _topology(ens, th, tix, time, flags, chunk_size)
+
+    # ---- multivariate score
+    score = np.full(n_traj, np.nan)
+    unusual = np.zeros(n_traj, dtype=bool)
+    if multivariate and n_traj >= 8:
+        score, unusual = _multivariate(ens, tix, starts, max_drift, max_jump, n_hops,
+                                       max_hop_gap, t_end, th, random_state)
+        for r in np.flatnonzero(unusual):
+            flags.add(int(r), "unusual", np.nan,
+                      f"unusual trajectory (isolation-forest score {score[r]:.3g}, among the "
+                      f"{th.contamination:.0%} most atypical)")
+
+    # ---- assemble
+    order = {k: i for i, k in enumerate(BROKEN_KINDS + WARNING_KINDS)}
+    out_flags, out_reason, first_bad, flagged, n_flags = [], [], [], [], []
+    for r in range(n_traj):
+        ev = flags.events[r]
+        kinds = sorted(ev, key=lambda k: (order.get(k, 99), k))
+        out_flags.append(";".join(kinds))
+        out_reason.append("; ".join(ev[k][1] for k in kinds))
+        broken = [k for k in kinds if k in th.broken_kinds]
+        times = [ev[k][0] for k in broken if np.isfinite(ev[k][0])]
+        first_bad.append(min(times) if times else np.nan)
+        flagged.append(bool(broken))
+        n_flags.append(len(kinds))
+    return pd.DataFrame({
+        "traj": trajs["traj"].to_numpy(),
+        "flagged": np.asarray(flagged, dtype=bool),
+        "flags": out_flags,
+        "reason": out_reason,
+        "first_bad_time": np.asarray(first_bad, dtype=np.float64),
+        "score": score,
+        "unusual": unusual,
+        "n_flags": np.asarray(n_flags, dtype=np.int64),
+        "max_drift": max_drift,
+        "max_jump": max_jump,
+        "max_hop_gap": max_hop_gap,
+        "max_norm_error": max_norm,
+        "t_end": t_end,
+    })
+
+
+def _topology(ens: Ensemble, th: OutlierThresholds, tix: np.ndarray, time: np.ndarray,
+              flags: _Flags, chunk_size: int) -> None:
+    from .geometry import covalent_radii_for
+
+    try:
+        rad = covalent_radii_for(ens.symbols)
+    except SchemaError:
+        return  # unknown elements: no covalent radii, no topology check
+    i, j = _k.pair_indices(ens.n_atoms)
+    cut = th.bond_scale * (rad[i] + rad[j])
+    finite = np.isfinite(ens.geometries).all(axis=(1, 2))
+    rows0, pos0 = _first_per_traj(finite, tix)
+    ref_row = np.full(len(ens.trajectories), -1)
+    ref_row[rows0] = pos0
+    r0_all = _k.pair_distances(ens.geometries[pos0], i, j) if len(pos0) else np.zeros((0, len(i)))
+    r0_of = np.full((len(ens.trajectories), len(i)), np.nan)
+    r0_of[rows0] = r0_all
+    bonded0 = r0_of < cut
+    sym = ens.symbols
+    n = ens.n_snapshots
+    for s in range(0, n, chunk_size):
+        sl = slice(s, min(n, s + chunk_size))
+        X = ens.geometries[sl]
+        r = _k.pair_distances(X, i, j)
+        t_ix = tix[sl]
+        b0 = bonded0[t_ix]
+        r0 = r0_of[t_ix]
+        with np.errstate(invalid="ignore"):
+            broken = b0 & ((r > cut * (1 + th.bond_margin)) | (r > th.bond_stretch * r0))
+            formed = ~b0 & np.isfinite(r0) & (r < cut * (1 - th.bond_margin))
+        for mask, word in ((broken, "broken"), (formed, "formed")):
+            rows_any = np.flatnonzero(mask.any(axis=1))
+            if not rows_any.size:
+                continue
+            tr, first = np.unique(t_ix[rows_any], return_index=True)
+            for traj_row, loc in zip(tr, rows_any[first], strict=True):
+                p = int(np.flatnonzero(mask[loc])[0])
+                a, b = int(i[p]), int(j[p])
+                t = time[s + loc]
+                flags.add(int(traj_row), "topology_change", t,
+                          f"bond {a}-{b} ({sym[a]}-{sym[b]}) {word} at {_fmt(t)} fs "
+                          f"({r[loc, p]:.2f} Angstrom; t=0: {r0[loc, p]:.2f} Angstrom)")
+
+
+def _multivariate(ens: Ensemble, tix: np.ndarray, starts: np.ndarray, max_drift: np.ndarray,
+                  max_jump: np.ndarray, n_hops: np.ndarray, max_hop_gap: np.ndarray,
+                  t_end: np.ndarray, th: OutlierThresholds, random_state: int
+                  ) -> tuple[np.ndarray, np.ndarray]:
+    from sklearn.ensemble import IsolationForest
+    from sklearn.preprocessing import RobustScaler
+
+    from .geometry import mean_structure, rmsd
+
+    n = ens.n_snapshots
+    finite = np.isfinite(ens.geometries).all(axis=(1, 2))
+    rng = np.random.default_rng(random_state)
+    fin_rows = np.flatnonzero(finite)
+    sub = fin_rows if fin_rows.size <= 5000 else np.sort(rng.choice(fin_rows, 5000, False))
+    feats = [max_drift, max_jump, n_hops, max_hop_gap, t_end]
+    if sub.size:
+        ref, _ = mean_structure(ens.geometries[sub], max_iter=10, tol=1e-6)
+        rm = np.full(n, np.nan)
+        rm[fin_rows] = rmsd(ens.geometries[fin_rows], ref)
+        df = pd.DataFrame({"t": tix, "r": rm})
+        g = df.groupby("t")["r"]
+        feats += [g.mean().reindex(range(len(t_end))).to_numpy(),
+                  g.max().reindex(range(len(t_end))).to_numpy()]
+    e_act = ens.energies[np.arange(n), ens.snapshots["active"].to_numpy()]
+    e_act = np.where(np.isfinite(e_act), e_act, np.nan)
+    feats.append(pd.Series(e_act).groupby(tix).mean().reindex(range(len(t_end))).to_numpy())
+    F = np.column_stack(feats).astype(np.float64)
+    keep = np.isfinite(F).any(axis=0) & (np.nanstd(F, axis=0) > 0)
+    F = F[:, keep]
+    if F.shape[1] == 0:
+        return np.full(len(t_end), np.nan), np.zeros(len(t_end), bool)
+    med = np.nanmedian(F, axis=0)
+    F = np.where(np.isfinite(F), F, med)
+    F = RobustScaler().fit_transform(F)
+    forest = IsolationForest(n_estimators=200, contamination=th.contamination,
+                             random_state=random_state).fit(F)
+    return -forest.score_samples(F), forest.predict(F) == -1
