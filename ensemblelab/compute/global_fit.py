@@ -9,9 +9,11 @@ once; the nonlinear parameters minimise the remaining (projected) residual with
 bounded least squares (variable projection). For simulated maps the IRF is
 known (the pump-probe cross-correlation) and should stay fixed (``fix_irf=True``).
 
-Intervals on the lifetimes are Wald intervals from the Jacobian of the
-projected residual (``s^2 (J^T J)^{-1}``, s^2 = RSS / degrees of freedom, which
-treats the map's residuals as independent with one common variance), or, with
+Intervals on the lifetimes are Wald intervals from the marginal covariance
+``s^2 [J^T (I - P) J]^{-1}`` (J the model's derivative with respect to the
+nonlinear parameters at fixed spectra, P the projector on the kinetic basis,
+s^2 = RSS / degrees of freedom; this treats the map's residuals as independent
+with one common variance), or, with
 ``interval="bootstrap"``, percentile intervals from refits to the fitted map
 plus resampled residual *rows* (whole delays, keeping the correlation along
 energy).
@@ -382,19 +384,28 @@ def fit_global(
     nat = np.r_[taus, [sig * _FWHM_PER_SIGMA] if fit_sigma else [], [tz] if not fix_t0 else []]
     dn = np.r_[taus, [sig * _FWHM_PER_SIGMA] if fit_sigma else [], [1.0] if not fix_t0 else []]
     if x.size and interval == "covariance":
+        # Marginal covariance of the nonlinear parameters in the full problem:
+        # s^2 [J^T (I - P) J]^-1 with J = d(Y(x) DAS)/dx at fixed DAS and P the projector
+        # on the columns of Y (the residual-dependent part of the derivative of the
+        # projected residual is left out: it would make the intervals too narrow).
         eps = 1e-6
+        q, _ = np.linalg.qr(y)
         jac = np.empty((n_obs, x.size))
         for j in range(x.size):
             h = eps * max(1.0, abs(x[j]))
             xp, xm = x.copy(), x.copy()
             xp[j] += h
             xm[j] -= h
-            jac[:, j] = (resid(xp) - resid(xm)) / (2 * h)
+            tp, sp, zp = unpack(xp)
+            tm, sm, zm = unpack(xm)
+            dm = (_basis(d - zp, tp, sp, include_infinite)
+                  - _basis(d - zm, tm, sm, include_infinite)) @ das / (2 * h)
+            jac[:, j] = (dm - q @ (q.T @ dm)).ravel()
         cov = s2 * np.linalg.pinv(jac.T @ jac)
         se = np.sqrt(np.clip(np.diag(cov), 0, None)) * np.abs(dn)
         lo, hi = nat - z * se, nat + z * se
-        method = ("covariance (Wald, s^2 (J^T J)^-1 of the projected residual; assumes "
-                  "independent residuals of equal variance)")
+        method = ("covariance (Wald, s^2 [J^T (I - P) J]^-1 marginal over the spectra; "
+                  "assumes independent residuals of equal variance)")
     elif x.size:
         rng = np.random.default_rng(random_state)
         fit_map = y @ das
