@@ -274,12 +274,28 @@ def _split_frames(text: str, path: Path) -> tuple[int, int, list[str]]:
     return n_atoms, n_frames, lines
 
 
+_NAN_TOKENS = ["nan", "NaN", "NAN", "-nan", "+nan", "-NaN", "+NaN"]
+
+
+def _read_table(text: str, ncol: int, *, symbols: bool = False) -> pd.DataFrame | None:
+    """Parse whitespace-separated columns with pandas' C tokenizer; None when anything is odd."""
+    dtype: dict[int, Any] = {j: np.float64 for j in range(int(symbols), ncol)}
+    if symbols:
+        dtype[0] = object
+    try:
+        return pd.read_csv(io.StringIO(text), sep=r"\s+", header=None, engine="c",
+                           names=list(range(ncol)), dtype=dtype, keep_default_na=False,
+                           na_values={j: _NAN_TOKENS for j in range(int(symbols), ncol)},
+                           skip_blank_lines=False)
+    except (ValueError, pd.errors.ParserError, pd.errors.EmptyDataError):
+        return None
+
+
 def _atom_block(lines: list[str], n_atoms: int, n_frames: int, path: Path
                 ) -> tuple[list[str], np.ndarray, np.ndarray | None]:
     size = n_atoms + 2
     table = np.array(lines, dtype=object).reshape(n_frames, size)
     atoms = table[:, 2:].ravel()
-    block = "\n".join(atoms)
     ncol = len(atoms[0].split())
     if ncol not in (4, 7):
         raise ParseError(
@@ -288,31 +304,30 @@ def _atom_block(lines: list[str], n_atoms: int, n_frames: int, path: Path
             path=path, frame=0, line=3, field="atom line",
             hint="one atom per line: element symbol, then Cartesian coordinates.",
         )
-    symbols = _FIRST_TOKEN_RE.findall(block)
+    df = _read_table("\n".join(atoms), ncol, symbols=True)
     numeric = None
-    if len(symbols) == atoms.size:
-        numeric = parse_floats(_FIRST_TOKEN_RE.sub("", block), atoms.size * (ncol - 1))
+    if df is not None and len(df) == atoms.size:
+        numeric = df.iloc[:, 1:].to_numpy(np.float64)
+        if np.isnan(numeric).any() and parse_floats(
+                " ".join(" ".join(a.split()[1:]) for a in atoms), atoms.size * (ncol - 1)) is None:
+            numeric = None  # a NaN that is not a literal nan: a missing or odd field
     if numeric is None:
         _locate_atom_error(atoms, n_atoms, ncol, path)
         raise ParseError("could not parse the atom lines.", path=path, field="atom line")
-    ref = symbols[:n_atoms]
-    if symbols != ref * n_frames:
-        for f in range(n_frames):
-            got = symbols[f * n_atoms:(f + 1) * n_atoms]
-            if got != ref:
-                a = next(i for i in range(n_atoms) if got[i] != ref[i])
-                raise ParseError(
-                    f"the elements change: atom {a} is {ref[a]} in frame 0 but {got[a]} here.",
-                    path=path, frame=f, line=_loc(n_atoms, f, 2 + a), field="element",
-                    hint="every frame of every trajectory must hold the same atoms in the same "
-                         "order.",
-                )
+    sym = df.iloc[:, 0].to_numpy(dtype=object).reshape(n_frames, n_atoms)
+    ref = [str(x) for x in sym[0]]
+    same = sym == sym[0]
+    if not same.all():
+        f, a = (int(i) for i in np.argwhere(~same)[0])
+        raise ParseError(
+            f"the elements change: atom {a} is {ref[a]} in frame 0 but {sym[f, a]} here.",
+            path=path, frame=f, line=_loc(n_atoms, f, 2 + a), field="element",
+            hint="every frame of every trajectory must hold the same atoms in the same order.",
+        )
     numeric = numeric.reshape(n_frames, n_atoms, ncol - 1)
-    geoms = numeric[:, :, :3]
-    vel = numeric[:, :, 3:] if ncol == 7 else None
-    if vel is not None:
-        geoms, vel = geoms.copy(), vel.copy()
-    return ref, geoms, vel
+    if ncol == 7:
+        return ref, numeric[:, :, :3].copy(), numeric[:, :, 3:].copy()
+    return ref, numeric, None
 
 
 def _locate_atom_error(atoms: np.ndarray, n_atoms: int, ncol: int, path: Path) -> None:
@@ -339,6 +354,28 @@ def _locate_atom_error(atoms: np.ndarray, n_atoms: int, ncol: int, path: Path) -
                 ) from None
 
 
+def _fast_values(comments: Sequence[str]) -> list[tuple[str, ...]] | None:
+    """Values of frames 1.. when they all share the key sequence of frame 1, else None.
+
+    One anchored regex built from frame 1 is applied to all comment lines at
+    once, so a frame with a missing, extra or re-ordered key does not match and
+    the caller falls back to the frame-by-frame path (which names the frame).
+    """
+    if len(comments) < 2:
+        return []
+    parts = []
+    for m in _PAIR_RE.finditer(comments[1]):
+        quoted = m.group(2) is not None
+        parts.append(re.escape(m.group(1)) + "=" + ('"([^"\n]*)"' if quoted else r'([^\s"]*)'))
+    if len(parts) < 2:
+        return None
+    pattern = re.compile(r"^[ \t]*" + r"[ \t]+".join(parts) + r"[ \t]*$", re.MULTILINE)
+    rows = pattern.findall("\n".join(comments[1:]))
+    if len(rows) != len(comments) - 1:
+        return None
+    return rows
+
+
 def _parse_comments(comments: Sequence[str], n_atoms: int, path: Path
                     ) -> tuple[dict[str, str], list[str], dict[str, list[str]]]:
     """Return (header, per-frame keys in order, key -> values of every frame)."""
@@ -357,9 +394,19 @@ def _parse_comments(comments: Sequence[str], n_atoms: int, path: Path
                 hint="every frame's comment line needs time=, active= and energies=\"...\" "
                      "(see the key table in ensemblelab.io.xyz).",
             )
-    values: dict[str, list[str]] = {k: [] for k in keys}
+    values: dict[str, list[str]] = {k: [(q or p) for kk, q, p in pairs0 if kk == k][:1]
+                                    for k in keys}
     keyset = set(keys)
-    for f, line in enumerate(comments):
+    rows = _fast_values(comments)
+    if rows is not None and len(comments) > 1:
+        keys1 = [m.group(1) for m in _PAIR_RE.finditer(comments[1])]
+        if set(keys1) - set(HEADER_KEYS) == keyset and len(keys1) == len(set(keys1)):
+            columns = list(zip(*rows, strict=True))
+            for k, col in zip(keys1, columns, strict=True):
+                if k in keyset:
+                    values[k].extend(col)
+            return header, keys, values
+    for f, line in enumerate(comments[1:], start=1):
         d = {k: (q or p) for k, q, p in _PAIR_RE.findall(line) if k not in HEADER_KEYS}
         if d.keys() != keyset:
             missing = sorted(keyset - d.keys())
@@ -375,12 +422,41 @@ def _parse_comments(comments: Sequence[str], n_atoms: int, path: Path
     return header, keys, values
 
 
-def _numbers(vals: list[str], key: str, n_atoms: int, path: Path) -> np.ndarray:
+def _all_numbers(values: dict[str, list[str]], keys: list[str]) -> dict[str, np.ndarray]:
+    """Parse every numeric key of every frame with one C-tokenizer call (empty dict on trouble)."""
+    keys = [k for k in keys if parse_floats(values[k][0]) is not None and values[k][0].strip()]
+    if not keys or len(values[keys[0]]) < 50:
+        return {}
+    widths = [len(values[k][0].split()) for k in keys]
+    text = "\n".join(map(" ".join, zip(*(values[k] for k in keys), strict=True)))
+    df = _read_table(text, sum(widths))
+    if df is None or len(df) != len(values[keys[0]]):
+        return {}
+    arr = df.to_numpy(np.float64)
+    if np.isnan(arr).any():
+        return {}
+    out, j = {}, 0
+    for k, w in zip(keys, widths, strict=True):
+        out[k] = arr[:, j:j + w]
+        j += w
+    return out
+
+
+def _numbers(vals: list[str], key: str, n_atoms: int, path: Path,
+             pre: dict[str, np.ndarray] | None = None) -> np.ndarray:
     """Parse the values of one key of every frame to a (n_frames, m) float array."""
+    if pre and key in pre:
+        return pre[key].copy()
     m = len(vals[0].split())
     if m == 0:
         raise ParseError(f"expected at least one number, found {vals[0]!r}.", path=path, frame=0,
                          line=2, field=key, hint='write e.g. energies="0.0 3.1 4.2".')
+    if len(vals) * m > 4000:
+        df = _read_table("\n".join(vals), m)
+        if df is not None and len(df) == len(vals):
+            arr = df.to_numpy(np.float64)
+            if not np.isnan(arr).any():
+                return arr
     arr = parse_floats(" ".join(vals), len(vals) * m)
     if arr is not None:
         return arr.reshape(len(vals), m)
@@ -402,8 +478,9 @@ def _numbers(vals: list[str], key: str, n_atoms: int, path: Path) -> np.ndarray:
     raise ParseError(f"could not parse the values of {key!r}.", **{"path": path, "field": key})
 
 
-def _integers(vals: list[str], key: str, n_atoms: int, path: Path) -> np.ndarray:
-    arr = _numbers(vals, key, n_atoms, path)
+def _integers(vals: list[str], key: str, n_atoms: int, path: Path,
+              pre: dict[str, np.ndarray] | None = None) -> np.ndarray:
+    arr = _numbers(vals, key, n_atoms, path, pre)
     if arr.shape[1] != 1:
         raise ParseError(f"expected one integer, found {arr.shape[1]} values {vals[0]!r}.",
                          path=path, frame=0, line=2, field=key, hint=f"write {key}=<integer>.")
@@ -416,8 +493,11 @@ def _integers(vals: list[str], key: str, n_atoms: int, path: Path) -> np.ndarray
     return arr.astype(np.int64)
 
 
-def _user_column(vals: list[str], key: str) -> Any:
+def _user_column(vals: list[str], key: str, pre: dict[str, np.ndarray] | None = None) -> Any:
     joined = " ".join(vals)
+    if pre and key in pre and pre[key].shape[1] == 1:
+        arr = pre[key][:, 0].copy()
+        return arr.astype(np.int64) if not _NOT_INT_RE.search(joined) else arr
     if any(not v or len(v.split()) != 1 for v in vals):
         return np.array(vals, dtype=object)
     arr = parse_floats(joined, len(vals))
@@ -462,6 +542,7 @@ def _parse_file(path: Path, *, energy_unit: str | None, time_unit: str | None,
     comments = lines[1::size][:n_frames]
     del lines
     header, keys, values = _parse_comments(comments, n_atoms, path)
+    pre = _all_numbers(values, keys)
 
     e_unit = resolve_unit("energy", header.get("energy_unit"), energy_unit, path=path)
     t_unit = resolve_unit("time", header.get("time_unit"), time_unit, path=path)
@@ -478,7 +559,7 @@ def _parse_file(path: Path, *, energy_unit: str | None, time_unit: str | None,
     def frame_line(row: int) -> tuple[int, int]:
         return row, _loc(n_atoms, row, 1)
 
-    time = _numbers(values["time"], "time", n_atoms, path)
+    time = _numbers(values["time"], "time", n_atoms, path, pre)
     if time.shape[1] != 1:
         raise ParseError(f"expected one number, found {values['time'][0]!r}.", path=path,
                          frame=0, line=2, field="time", hint="write time=<number>.")
@@ -503,10 +584,10 @@ def _parse_file(path: Path, *, energy_unit: str | None, time_unit: str | None,
     arrays: dict[str, np.ndarray] = {}
     for key in ARRAY_KEYS:
         if key in values:
-            arrays[key] = _numbers(values[key], key, n_atoms, path)
+            arrays[key] = _numbers(values[key], key, n_atoms, path, pre)
     energies = arrays.pop("energies")
     n_states = energies.shape[1]
-    active = _integers(values["active"], "active", n_atoms, path) - base
+    active = _integers(values["active"], "active", n_atoms, path, pre) - base
     bad = (active < 0) | (active >= n_states)
     if bad.any():
         f = int(np.flatnonzero(bad)[0])
@@ -598,19 +679,19 @@ def _parse_file(path: Path, *, energy_unit: str | None, time_unit: str | None,
     step = snapshot = None
     for key in keys:
         if key == "step":
-            step = _integers(values[key], key, n_atoms, path)
+            step = _integers(values[key], key, n_atoms, path, pre)
         elif key == "snapshot":
-            snapshot = _integers(values[key], key, n_atoms, path)
+            snapshot = _integers(values[key], key, n_atoms, path, pre)
         elif key in _RESERVED:
             continue
         elif key in _SCALAR_ENERGY_KEYS:
-            col = _numbers(values[key], key, n_atoms, path)
+            col = _numbers(values[key], key, n_atoms, path, pre)
             if col.shape[1] != 1:
                 raise ParseError(f"expected one number, found {values[key][0]!r}.", path=path,
                                  frame=0, line=2, field=key, hint=f"write {key}=<number>.")
             columns[key] = col[:, 0] * e_fac
         else:
-            columns[key] = _user_column(values[key], key)
+            columns[key] = _user_column(values[key], key, pre)
     return _FileData(path=path, n_frames=n_frames, symbols=symbols, geometries=geoms,
                      velocities=vel, time=time, active=active, step=step, snapshot=snapshot,
                      arrays=out_arrays, columns=columns, header=header, energy_unit=e_unit,
