@@ -712,8 +712,9 @@ def contributions(
     ``w / A(u) * int_E G(E - x) dE * int_tau K(tau - u) dtau`` where ``A`` is the
     normalisation (alive weight) and ``K`` the cross-correlation (or the linear
     interpolation hat when the map was not convolved). Energies below 0 count as
-    no signal. The kernel renormalisation near the trajectories' end (see
-    :func:`compute_trpes`) is ignored here.
+    no signal. The kernel is the one the map used (renormalised near the
+    trajectories' end, see :func:`compute_trpes`); the delay integral is done by
+    Gauss-Legendre quadrature, the energy integral with error functions.
 
     Parameters
     ----------
@@ -753,12 +754,15 @@ def contributions(
     times = model.times
     sigma = p.get("sigma_cc")
     if sigma:
-        tw = ndtr((t2 - times) / sigma) - ndtr((t1 - times) / sigma)
-        q = np.full(times.size, model.time_step)
-        q[np.abs(times - model.t_known) < 1e-9 * model.time_step] *= 0.5
-        if model.grid_start == 0.0:
-            q[0] *= 0.5
-        tw = tw * q
+        # integral over the delay window of the (edge-renormalised) kernel matrix,
+        # by 8-point Gauss-Legendre on sub-intervals no longer than sigma_cc
+        n_sub = max(1, int(math.ceil((t2 - t1) / sigma)))
+        x, wq = np.polynomial.legendre.leggauss(8)
+        edges = np.linspace(t1, t2, n_sub + 1)
+        half = 0.5 * np.diff(edges)
+        nodes = (edges[:-1, None] + half[:, None] * (x[None, :] + 1.0)).ravel()
+        wts = (half[:, None] * wq[None, :]).ravel()
+        tw = wts @ model.time_weights(nodes, sigma=sigma)
     else:
         tw = _hat_integrals(times, t1, t2, model.t_known)
     tw = tw * norm

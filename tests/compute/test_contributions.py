@@ -1,0 +1,99 @@
+"""Band contributions: exact decomposition of a map region into snapshots."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from test_trpes_fixtures import random_ensemble
+
+from ensemblelab.compute.pulses import GaussianPulse
+from ensemblelab.compute.spectra import compute_trpes, contributions
+from ensemblelab.errors import SchemaError
+
+PROBE = GaussianPulse(photon_energy=5.0, fwhm=30.0)
+PUMP = GaussianPulse(photon_energy=4.0, fwhm=30.0)
+
+
+@pytest.fixture(scope="module")
+def ens_and_map():
+    ens = random_ensemble(6, seed=21, n_steps=60, dt=1.0)
+    e = np.linspace(0.0, 4.0, 801)
+    d = np.arange(-60.0, 80.0, 0.5)
+    m = compute_trpes(ens, probe=PROBE, pump=PUMP, energies=e, delays=d, progress=False)
+    return ens, m
+
+
+def _region_integral(m, er, dr):
+    e, d = m.energies, m.delays
+    se = (e >= er[0]) & (e <= er[1])
+    sd = (d >= dr[0]) & (d <= dr[1])
+    sub = m.intensity[np.ix_(sd, se)]
+    return np.trapezoid(np.trapezoid(sub, e[se], axis=1), d[sd])
+
+
+@pytest.mark.parametrize(("er", "dr"), [((0.5, 1.5), (0.0, 30.0)), ((1.0, 3.5), (-40.0, -5.0)),
+                                        ((0.0, 4.0), (-60.0, 50.0))])
+def test_contributions_total_equals_map_integral(ens_and_map, er, dr):
+    ens, m = ens_and_map
+    df = contributions(ens, m, energy_range=er, delay_range=dr)
+    assert df["share"].sum() == pytest.approx(1.0, abs=1e-12)
+    assert df["intensity"].sum() == pytest.approx(df.attrs["total"], rel=1e-12)
+    # the region total is the integral of the map (trapezoid on a 5 meV x 0.5 fs grid)
+    assert df.attrs["total"] == pytest.approx(_region_integral(m, er, dr), rel=2e-3)
+    assert np.all(np.diff(df["intensity"].to_numpy()) <= 0)  # sorted descending
+    assert {"snapshot", "traj", "time", "active", "share", "intensity"} <= set(df.columns)
+
+
+def test_contributions_negative_delays_come_from_early_snapshots(ens_and_map):
+    ens, m = ens_and_map
+    df = contributions(ens, m, energy_range=(0.0, 4.0), delay_range=(-40.0, -20.0))
+    # only the convolution puts signal there: snapshots near t = 0 dominate
+    top = df.head(10)
+    assert top["time"].max() <= 20.0
+    assert df["time"].min() == 0.0
+
+
+def test_contributions_by_traj_and_column_group_the_snapshots(ens_and_map):
+    ens, m = ens_and_map
+    kw = dict(energy_range=(0.5, 2.5), delay_range=(10.0, 40.0))
+    snap = contributions(ens, m, **kw)
+    per_traj = contributions(ens, m, by="traj", **kw)
+    expected = snap.groupby("traj")["intensity"].sum()
+    got = per_traj.set_index("traj")["intensity"]
+    np.testing.assert_allclose(got.loc[expected.index], expected, rtol=1e-12)
+    by_state = contributions(ens, m, by="active", **kw)
+    assert by_state["share"].sum() == pytest.approx(1.0, abs=1e-12)
+
+
+def test_contributions_single_snapshot_analytic():
+    from ensemblelab.data.ensemble import Ensemble
+
+    ens = Ensemble.from_arrays(traj=[0, 0], time=[0.0, 1.0], active=[1, 1],
+                               geometries=np.zeros((2, 1, 3)), symbols=["H"],
+                               energies=[[0.0, 0.0], [0.0, 0.0]], cation_energies=[[4.0], [9.0]],
+                               dyson=[[1.0], [1.0]])
+    m = compute_trpes(ens, probe=PROBE, energies=np.linspace(0, 2, 11), delays=[0.0, 1.0],
+                      convolve=False, progress=False)
+    df = contributions(ens, m, energy_range=(0.0, 2.0), delay_range=(0.0, 1.0))
+    # only snapshot 0 has an open channel; its hat over [0, 1] integrates to 1/2 fs and its
+    # Gaussian (centre 1 eV, FWHM 0.0608 eV) lies entirely inside [0, 2] eV (analytic)
+    assert list(df["snapshot"]) == [0]
+    assert df["intensity"].iloc[0] == pytest.approx(0.5, rel=1e-12)
+
+
+def test_contributions_reject_bad_ranges(ens_and_map):
+    ens, m = ens_and_map
+    with pytest.raises(SchemaError, match="low < high"):
+        contributions(ens, m, energy_range=(2.0, 1.0), delay_range=(0.0, 10.0))
+    with pytest.raises(SchemaError, match="'by' parameter"):
+        contributions(ens, m, energy_range=(1.0, 2.0), delay_range=(0.0, 10.0), by="nope")
+
+
+def test_contributions_rebuilds_from_params(ens_and_map):
+    ens, m = ens_and_map
+    fresh = type(m)(energies=m.energies, delays=m.delays, intensity=m.intensity,
+                    alive=m.alive, params=m.params)  # no cached model
+    kw = dict(energy_range=(0.5, 2.5), delay_range=(10.0, 40.0))
+    a = contributions(ens, m, **kw)
+    b = contributions(ens, fresh, **kw)
+    np.testing.assert_allclose(a["intensity"].to_numpy(), b["intensity"].to_numpy(), rtol=1e-12)

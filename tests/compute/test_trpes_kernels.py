@@ -1,0 +1,95 @@
+"""The fast TRPES kernels agree with their naive reference twins."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from test_trpes_fixtures import random_ensemble
+
+from ensemblelab.compute import _kernels_trpes as K
+from ensemblelab.compute import _reference_trpes as R
+from ensemblelab.compute.pulses import GaussianPulse, cross_correlation_sigma
+from ensemblelab.compute.spectra import prepare_sticks
+
+PROBE = GaussianPulse(photon_energy=5.0, fwhm=30.0)
+PUMP = GaussianPulse(photon_energy=4.0, fwhm=30.0)
+
+
+@pytest.mark.parametrize("convolve", [True, False])
+@pytest.mark.parametrize("offset", [0.0, 0.7])  # 0.7 fs: snapshots off the grid (split)
+def test_kernel_map_equals_naive(convolve, offset):
+    ens = random_ensemble(5, seed=9, offset=offset)
+    model = prepare_sticks(ens, probe=PROBE, pump=PUMP, progress=False, time_step=2.0)
+    assert (model.tfrac is not None) == (offset != 0.0)
+    energies = np.linspace(-0.2, 4.0, 85)
+    delays = np.arange(-50.0, 95.0, 3.5)
+    fast = model.broaden(energies=energies, delays=delays, pump=PUMP, convolve=convolve)
+    sigma = cross_correlation_sigma(PUMP, PROBE) if convolve else None
+    naive = R.trpes_naive(model, energies=energies, delays=delays,
+                          fwhm=model.fwhm(), sigma=sigma)
+    scale = naive.max()
+    assert scale > 0
+    # moment expansion at order 6, 8 bins per FWHM: <= ~1e-7 of the peak (module docstring)
+    np.testing.assert_allclose(fast.intensity, naive, rtol=0, atol=3e-7 * scale)
+
+
+@pytest.mark.parametrize(("order", "tol"), [(2, 1e-2), (4, 5e-5), (8, 3e-10)])
+def test_kernel_moment_order_accuracy(order, tol):
+    rng = np.random.default_rng(1)
+    n = 500
+    x = rng.uniform(0.3, 2.7, n)
+    w = rng.uniform(0, 1, n)
+    tb = rng.integers(0, 4, n)
+    g = 0.06
+    e = np.linspace(0, 3, 301)
+    h = g / 8
+    hist = K.deposit_moments(tb, x, w, n_time=4, e_lo=0.0, h=h, n_fine=int(3 / h) + 2,
+                             order=order, chunk=128)
+    b = K.energy_matrices(e, e_lo=0.0, h=h, n_fine=int(3 / h) + 2, fwhm=g, order=order)
+    fast = K.assemble(hist, b, np.eye(4))[0]
+    naive = R.pure_map_naive(tb, None, x, w, n_time=4, energies=e, fwhm=g)
+    assert np.abs(fast - naive).max() <= tol * naive.max()
+
+
+def test_kernel_chunking_does_not_change_result():
+    rng = np.random.default_rng(2)
+    n = 1000
+    args = (rng.integers(0, 5, n), rng.uniform(0, 2, n), rng.uniform(0, 1, n))
+    kw = dict(n_time=5, e_lo=0.0, h=0.01, n_fine=202, order=4)
+    a = K.deposit_moments(*args, chunk=1 << 20, **kw)
+    b = K.deposit_moments(*args, chunk=37, **kw)
+    np.testing.assert_allclose(a, b, rtol=1e-12, atol=1e-15)
+
+
+def test_kernel_time_matrix_unit_step_is_half_at_zero():
+    # method notes 2.4, [D]: unit step convolved at tau = 0 gives 0.5 (1e-12), any sigma
+    for sigma in (5.0, 18.0, 40.0):
+        times = np.arange(-400.0, 600.0, 1.0)
+        c = K.time_matrix(np.array([0.0]), times, sigma=sigma, t_known=590.0, t_launch=0.0)
+        assert c[0, times >= 0].sum() == pytest.approx(0.5, abs=1e-12)
+
+
+def test_kernel_time_matrix_exponential_closed_form():
+    # method notes 2.4 / 7.3, [C]: e^{-u/100 fs} with T_cc = 50 fs at -50, 0, 50, 200 fs
+    # -> 0.008646, 0.425407, 0.610385, 0.138421; discrete grid, tolerance 5e-4 (dt <= 0.1 fs)
+    sigma = 50.0 / 2.354820045
+    dt = 0.1
+    times = np.arange(-400.0, 1200.0 + dt / 2, dt)
+    delays = np.array([-50.0, 0.0, 50.0, 200.0])
+    c = K.time_matrix(delays, times, sigma=sigma, t_known=1200.0, t_launch=0.0)
+    f = np.where(times >= 0, np.exp(-np.clip(times, 0, None) / 100.0), 0.0)
+    out = c @ f
+    np.testing.assert_allclose(out, [0.008646, 0.425407, 0.610385, 0.138421], atol=5e-4)
+    # the trapezoid start makes the discrete value close to the closed form (7.2): 1e-5
+    np.testing.assert_allclose(out, [0.008646, 0.425407, 0.610385, 0.138421], atol=1e-5)
+
+
+def test_kernel_time_matrix_matches_naive_loop():
+    rng = np.random.default_rng(3)
+    times = np.arange(-300.0, 150.0, 2.0)
+    pure = np.zeros((times.size, 3))
+    pure[times >= 0] = rng.uniform(size=(int((times >= 0).sum()), 3))
+    delays = np.array([-30.0, 0.0, 33.3, 120.0, 145.0])
+    c = K.time_matrix(delays, times, sigma=12.0, t_known=148.0, t_launch=0.0)
+    ref = R.convolve_naive(pure, times, delays, sigma=12.0, t_known=148.0)
+    np.testing.assert_allclose(c @ pure, ref, rtol=1e-12, atol=1e-14)
