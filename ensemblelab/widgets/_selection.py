@@ -70,6 +70,10 @@ class SelectionModel(HasTraits):
         Cluster label of every snapshot of :attr:`ens` (-1: noise / none).
     flags : DataFrame or None
         Flagged-trajectory table (``traj, flagged, reason, ...``).
+    cluster_names : dict
+        Display name of each cluster code (``{"0": "S1:0", ...}``).
+    cluster_medoids : tuple of int
+        Medoid snapshot id of each cluster (from the clustering result).
     labels : dict
         User labels saved with the session, e.g. ``{"clusters": {"0": "planar"},
         "bands": {"A": [e0, e1, d0, d1]}}``.
@@ -90,6 +94,8 @@ class SelectionModel(HasTraits):
     time = AnyTrait(None, allow_none=True)
     clusters = AnyTrait(None, allow_none=True)
     flags = Instance(pd.DataFrame, allow_none=True)
+    cluster_names = Dict()
+    cluster_medoids = Tuple()
     labels = Dict()
     group_by = Unicode("cluster")
     max_selected = Int(200)
@@ -172,6 +178,12 @@ class SelectionModel(HasTraits):
             return np.full(len(rows), -1, dtype=np.int64)
         return np.asarray(self.clusters)[rows]
 
+    def cluster_name(self, code: int) -> str:
+        """Display name of a cluster code ("-" for none / noise)."""
+        if int(code) < 0:
+            return "-"
+        return str(self.cluster_names.get(str(int(code)), int(code)))
+
     def snapshot_info(self, snapshot_id: int) -> dict[str, Any]:
         """Trajectory, time (fs), active state, cluster and weight of one snapshot."""
         row = int(self.rows([snapshot_id])[0])
@@ -184,6 +196,7 @@ class SelectionModel(HasTraits):
             "time": float(snap["time"].iat[row]),
             "state": self.ens.state_labels[int(snap["active"].iat[row])],
             "cluster": int(self.cluster_of(np.array([row]))[0]),
+            "cluster_name": self.cluster_name(int(self.cluster_of(np.array([row]))[0])),
             "weight": weight,
         }
         if self.band is not None and "share" in self.band.columns:

@@ -41,7 +41,7 @@ class Explorer:
         Cluster label per snapshot; ``"auto"`` (default) runs
         :func:`ensemblelab.compute.clustering.cluster_snapshots`; False: none.
     cluster_kwargs : dict, optional
-        Keyword arguments of ``cluster_snapshots``.
+        Keyword arguments of ``cluster_snapshots`` (default ``n_clusters=3``).
     flags : DataFrame, optional
         Flagged-trajectory table (default: computed by ``flag_trajectories``).
     measured : TRPESMap, optional
@@ -144,13 +144,25 @@ class Explorer:
             try:
                 from ..compute.clustering import cluster_snapshots
 
-                result = cluster_snapshots(self.model.ens, **dict(kwargs or {}))
+                options = {"n_clusters": 3, **dict(kwargs or {})}
+                result = cluster_snapshots(self.model.ens, **options)
                 self.cluster_result = result
-                self.model.clusters = np.asarray(result.labels)
+                summary = result.summary
+                self.model.clusters = np.asarray(result.codes)
+                self.model.cluster_names = {str(int(c)): str(n) for c, n in
+                                            zip(summary["code"], summary["cluster"],
+                                                strict=True)}
+                self.model.cluster_medoids = tuple(
+                    int(s) for s in summary["medoid_snapshot"].to_numpy() if s >= 0)
             except Exception as exc:  # noqa: BLE001 - shown; views work without clusters
                 self.messages.exception(exc, where="clustering the snapshots")
             return
-        self.model.clusters = np.asarray(clusters)
+        codes, names = np.unique(np.asarray(clusters), return_inverse=True)
+        if np.issubdtype(codes.dtype, np.integer):
+            self.model.clusters = np.asarray(clusters, dtype=np.int64)
+        else:  # string labels: integer codes plus names
+            self.model.clusters = names.astype(np.int64)
+            self.model.cluster_names = {str(i): str(c) for i, c in enumerate(codes)}
 
     def _build(self, name: str, factory: Callable[[], Any]) -> Any:
         try:

@@ -81,18 +81,27 @@ def export_structures(model: SelectionModel, folder: str | os.PathLike[str], *,
     from ..io.structures import write_pdb, write_xyz
 
     rows = model.rows(ids)
-    sub = model.ens.select(np.isin(np.arange(model.ens.n_snapshots), rows))
-    if align and sub.n_snapshots > 1:
+    xyz = np.asarray(model.ens.geometries[rows], dtype=np.float64)
+    if align and len(ids) > 1:
         from ..compute.geometry import kabsch_align
 
-        ref_row = int(np.flatnonzero(sub.snapshots["snapshot"].to_numpy() == ids[0])[0])
-        aligned = kabsch_align(sub.geometries, reference=sub.geometries[ref_row],
-                               weights="mass", masses=sub.masses).aligned
-        sub = sub.replace(geometries=aligned)
-    sub = sub.assign(cluster=model.cluster_of(model.rows(sub.snapshots["snapshot"])))
+        xyz = kabsch_align(xyz, reference=xyz[0], weights="mass",
+                           masses=model.ens.masses).aligned
+    infos = [model.snapshot_info(int(s)) for s in ids]
+    info = pd.DataFrame({
+        "snapshot": [i["snapshot"] for i in infos],
+        "traj": [i["traj"] for i in infos],
+        "time": [i["time"] for i in infos],
+        "state": [i["state"] for i in infos],
+        "cluster": [i["cluster_name"] for i in infos],
+        "weight": [i["weight"] for i in infos],
+    })
+    if model.band is not None:
+        info["share"] = [i.get("share", 0.0) for i in infos]
     path = Path(folder) / f"{name}.{fmt}"
+    path.parent.mkdir(parents=True, exist_ok=True)
     writer = write_xyz if fmt == "xyz" else write_pdb
-    writer(sub, path, overwrite=True)
+    writer(path, xyz, model.ens.symbols, info=info, overwrite=True)
     return path
 
 
@@ -112,7 +121,7 @@ def export_tables(model: SelectionModel, folder: str | os.PathLike[str], *,
     if model.band is not None:
         tables["band_snapshots"] = model.band
         for by in ("cluster", "state", "traj"):
-            tables[f"band_by_{by}"] = group_band(model.band, by,
+            tables[f"band_by_{by}"] = group_band(model.band, by, cluster_names=model.cluster_names,
                                                  state_labels=model.ens.state_labels)
     if model.flags is not None:
         tables["flags"] = model.flags

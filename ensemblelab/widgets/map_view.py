@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import warnings
 from typing import Any
 
 import bqplot
@@ -203,12 +204,12 @@ class MapView(View):
         margin = {"top": 25, "bottom": 40, "left": 50, "right": 10}
         self.delay_cut = bqplot.Figure(
             marks=[self.delay_cut_line], layout=small, fig_margin=margin,
-            title="spectrum over the selected delays",
+            title="delay cut",
             axes=[bqplot.Axis(scale=self.cx, label="kinetic energy / eV"),
                   bqplot.Axis(scale=self.cy, side="left", tick_format=".2g")])
         self.energy_cut = bqplot.Figure(
             marks=[self.energy_cut_line], layout=small, fig_margin=margin,
-            title="trace over the selected energies",
+            title="energy cut",
             axes=[bqplot.Axis(scale=self.tx, label="delay / fs"),
                   bqplot.Axis(scale=self.ty, side="left", tick_format=".2g")])
 
@@ -271,12 +272,16 @@ class MapView(View):
         kwargs = dict(self.trpes_kwargs)
         if pump is None and "weights" not in kwargs:
             kwargs["weights"] = "uniform"
-        with busy(self.status, "computing the map ..."):
+        with busy(self.status, "computing the map ..."), \
+                warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
             trpes = compute_trpes(
                 self.model.current, probe=probe, pump=pump, energies=energies, delays=delays,
                 resolution=float(self.resolution.value),
-                convolve=bool(self.convolve.value) and pump is not None, by=by, **kwargs,
+                convolve=bool(self.convolve.value), by=by, progress=False, **kwargs,
             )
+        for w in caught:
+            self.messages.warning(f"map: {w.message}")
         self.n_computed += 1
         self.model.trpes_map = trpes
         return trpes

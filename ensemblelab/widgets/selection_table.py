@@ -20,7 +20,8 @@ _GROUP_LABELS = {"cluster": "cluster", "state": "state", "traj": "trajectory"}
 _N_ROWS = 25
 
 
-def group_band(band: pd.DataFrame, by: str, *, state_labels: Any = None) -> pd.DataFrame:
+def group_band(band: pd.DataFrame, by: str, *, state_labels: Any = None,
+               cluster_names: dict[str, str] | None = None) -> pd.DataFrame:
     """Sum the per-snapshot contributions of a band over groups.
 
     Parameters
@@ -32,6 +33,8 @@ def group_band(band: pd.DataFrame, by: str, *, state_labels: Any = None) -> pd.D
         Grouping (``"state"`` groups by the active state).
     state_labels : sequence of str, optional
         Names of the neutral states, for the ``label`` column.
+    cluster_names : dict, optional
+        Display name of each cluster code (keys: the code as a string).
 
     Returns
     -------
@@ -53,7 +56,9 @@ def group_band(band: pd.DataFrame, by: str, *, state_labels: Any = None) -> pd.D
     if by == "state" and state_labels is not None:
         labels = [state_labels[int(k)] for k in out["key"]]
     elif by == "cluster":
-        labels = ["unclustered" if int(k) < 0 else f"cluster {int(k)}" for k in out["key"]]
+        names = cluster_names or {}
+        labels = ["unclustered" if int(k) < 0 else f"cluster {names.get(str(int(k)), int(k))}"
+                  for k in out["key"]]
     else:
         labels = [f"trajectory {int(k)}" for k in out["key"]]
     out.insert(1, "label", labels)
@@ -139,7 +144,8 @@ class SelectionTable(View):
                                       "<i>Nothing contributes to this band.</i>")
                 return
             table = group_band(band, self.model.group_by,
-                               state_labels=self.model.ens.state_labels)
+                               state_labels=self.model.ens.state_labels,
+                               cluster_names=self.model.cluster_names)
             self.table = table
             e, d = self.model.energy_range, self.model.delay_range
             where = (f"{e[0]:.2f}–{e[1]:.2f} eV, {d[0]:.0f}–{d[1]:.0f} fs"

@@ -156,14 +156,10 @@ class StructureView(View):
         tuple of int
             The medoid snapshot ids (also written to ``model.selected``).
         """
-        if self.model.clusters is None:
-            raise ValueError("no clusters are known: cluster the ensemble first "
-                             "(Explorer(..., clusters=...) or model.clusters = labels).")
-        from ..compute.representatives import medoids
-
-        labels = np.asarray(self.model.clusters)
-        ids = medoids(self.model.ens, labels=labels)
-        ids = tuple(int(i) for i in ids)
+        if not self.model.cluster_medoids:
+            raise ValueError("no cluster medoids are known: cluster the ensemble first "
+                             "(Explorer(..., clusters='auto') or set model.cluster_medoids).")
+        ids = tuple(int(i) for i in self.model.cluster_medoids)
         self.mode.value = "overlay"
         self.n_top.value = max(1, min(64, len(ids)))
         self.model.selected = ids
@@ -267,14 +263,14 @@ class StructureView(View):
 def _cells(i: int, info: dict[str, Any]) -> list[Any]:
     share = info.get("share")
     return [i, info["traj"], f"{info['time']:.1f}", info["state"],
-            info["cluster"] if info["cluster"] >= 0 else "-", f"{info['weight']:.3g}",
-            "-" if share is None else f"{100 * share:.1f} %"]
+            info["cluster_name"], f"{info['weight']:.3g}",
+            "-" if share is None else f"{100 * share:.2g} %"]
 
 
 def _caption_line(info: dict[str, Any]) -> str:
-    cluster = info["cluster"] if info["cluster"] >= 0 else "-"
+    cluster = info["cluster_name"]
     text = (f"trajectory {info['traj']} · t = {info['time']:.1f} fs · state {info['state']} · "
             f"cluster {cluster} · weight {info['weight']:.3g}")
     if info.get("share") is not None:
-        text += f" · share {100 * info['share']:.1f} %"
+        text += f" · share {100 * info['share']:.2g} %"
     return f"<b class='ensemblelab-caption-line'>{html.escape(text)}</b>"

@@ -19,7 +19,8 @@ def rigid():
     base = rng.normal(size=(5, 3))
     frames = np.stack([base @ _rotation(0.3 * i).T + i for i in range(6)])
     return Ensemble.from_arrays(traj=[0, 0, 0, 1, 1, 1], time=[0.0, 1, 2, 0, 1, 2],
-                                active=[1] * 6, geometries=frames, symbols=["C", "N", "O", "H", "H"],
+                                active=[1] * 6, geometries=frames,
+                                symbols=["C", "N", "O", "H", "H"],
                                 energies=np.zeros((6, 2)))
 
 
@@ -75,4 +76,8 @@ def test_structureview_follows_a_snapshot_outside_the_selection(model, toy):
 def test_structureview_medoids_need_clusters(model):
     view = StructureView(model, align=False)
     view.medoids.click()  # a click without clusters: a visible error, not an exception
-    assert view.messages.errors and "no clusters are known" in view.messages.errors[-1]["text"]
+    assert view.messages.errors
+    assert "no cluster medoids are known" in view.messages.errors[-1]["text"]
+    model.cluster_medoids = (3, 30, 300)
+    view.medoids.click()
+    assert model.selected == (3, 30, 300) and view.shown_ids == (3, 30, 300)

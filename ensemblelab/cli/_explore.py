@@ -1,0 +1,176 @@
+"""``ensemblelab explore [PATH]``: serve the linked explorer in the browser with Voila.
+
+The notebook Voila runs is generated into a temporary folder; it reads the
+data path from a JSON literal written into its first cell (no code is built
+from user input). Default PATH: the shipped demo data (``demo_data/`` in the
+source tree), or, when the package is installed elsewhere, a copy regenerated
+into the user cache folder.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import signal
+import socket
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+from typing import Any
+
+__all__ = ["register", "default_data_path", "write_notebook", "voila_command", "free_port",
+           "wait_for_port", "stop_process_group"]
+
+#: front-end extensions Voila need not load (one of them raises a harmless runtime error)
+DENYLIST = ("@jupyter-notebook/lab-extension", "@voila-dashboards/jupyterlab-preview",
+            "jupyterlab_pygments")
+
+
+def register(subparsers: Any) -> None:
+    """Add the ``explore`` sub-command."""
+    p = subparsers.add_parser(
+        "explore", help="serve the linked explorer (Voila on 127.0.0.1) and print its URL",
+        description="Serve the linked explorer of an ensemble in the browser (Voila on "
+                    "127.0.0.1). Default: the shipped, invented demo ensemble.")
+    p.add_argument("path", nargs="?", default=None,
+                   help="ensemble to explore (native store, extended-XYZ folder or table); "
+                        "default: the demo data")
+    p.add_argument("--port", type=int, default=0, help="port (default: a free one)")
+    p.add_argument("--nonfinite", choices=("keep", "raise"), default="keep",
+                   help="what to do with NaN/inf values in the data (default: keep them; "
+                        "the quality view flags those trajectories)")
+    p.add_argument("--notebook-dir", default=None,
+                   help="where to write the generated notebook (default: a temporary folder)")
+    p.set_defaults(func=run)
+
+
+def default_data_path() -> Path:
+    """The demo data: ``demo_data/`` beside the package sources, else a cached regenerated copy."""
+    here = Path(__file__).resolve()
+    for parent in here.parents[1:4]:
+        candidate = parent / "demo_data"
+        if candidate.is_dir() and any(candidate.iterdir()):
+            return candidate
+    cache = Path(os.environ.get("XDG_CACHE_HOME", Path.home() / ".cache")) / "ensemblelab"
+    target = cache / "demo_data"
+    if not (target.is_dir() and any(target.glob("*.xyz*"))):
+        from ..demo import make_ensemble
+        from ..io import write_extxyz
+
+        cache.mkdir(parents=True, exist_ok=True)
+        print(f"ensemblelab explore: writing the demo ensemble to {target} ...", file=sys.stderr)
+        write_extxyz(make_ensemble(), target, compress=True)
+    return target
+
+
+def write_notebook(folder: str | os.PathLike[str], data_path: str | os.PathLike[str], *,
+                   nonfinite: str = "keep", explorer: dict[str, Any] | None = None) -> Path:
+    """Write the explorer notebook for `data_path` into `folder`; returns its path."""
+    import nbformat
+
+    config = {"path": str(Path(data_path).resolve()), "nonfinite": nonfinite,
+              "explorer": dict(explorer or {})}
+    literal = json.dumps(json.dumps(config))
+    cells = [
+        nbformat.v4.new_code_cell(
+            "import json\n"
+            "import ensemblelab\n"
+            "from ensemblelab.widgets import Explorer\n"
+            f"config = json.loads({literal})\n"
+            "ens = ensemblelab.load(config['path'], nonfinite=config['nonfinite'], "
+            "progress=False)\n"
+            "app = Explorer(ens, data_path=config['path'], **config['explorer'])\n"
+            "app"),
+    ]
+    nb = nbformat.v4.new_notebook(cells=cells)
+    nb.metadata["kernelspec"] = {"name": "python3", "display_name": "Python 3",
+                                 "language": "python"}
+    path = Path(folder) / "ensemblelab_explorer.ipynb"
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tmp = path.with_name(f".{path.name}.tmp")
+    nbformat.write(nb, str(tmp))
+    os.replace(tmp, path)
+    return path
+
+
+def free_port() -> int:
+    """A TCP port free on 127.0.0.1 now."""
+    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
+        s.bind(("127.0.0.1", 0))
+        return int(s.getsockname()[1])
+
+
+def voila_command(notebook: str | os.PathLike[str], port: int) -> list[str]:
+    """The Voila command line serving `notebook` on 127.0.0.1:`port` (no browser)."""
+    cmd = [sys.executable, "-m", "voila", str(notebook), f"--port={int(port)}",
+           "--Voila.ip=127.0.0.1", "--no-browser", "--Voila.port_retries=0",
+           "--VoilaConfiguration.show_tracebacks=True"]
+    cmd += [f"--VoilaConfiguration.extension_denylist={name}" for name in DENYLIST]
+    return cmd
+
+
+def wait_for_port(port: int, *, timeout: float = 60.0, proc: Any = None) -> bool:
+    """Wait until something listens on 127.0.0.1:`port` (a TCP connect, no HTTP request)."""
+    end = time.monotonic() + timeout
+    while time.monotonic() < end:
+        if proc is not None and proc.poll() is not None:
+            return False
+        with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
+            s.settimeout(0.5)
+            if s.connect_ex(("127.0.0.1", port)) == 0:
+                return True
+        time.sleep(0.2)
+    return False
+
+
+def stop_process_group(proc: subprocess.Popen, *, timeout: float = 10.0) -> None:
+    """Stop a process started with ``start_new_session=True`` and all its children."""
+    if proc.poll() is not None:
+        return
+    try:
+        pgid = os.getpgid(proc.pid)
+    except ProcessLookupError:
+        return
+    os.killpg(pgid, signal.SIGTERM)
+    try:
+        proc.wait(timeout=timeout)
+    except subprocess.TimeoutExpired:
+        os.killpg(pgid, signal.SIGKILL)
+        proc.wait(timeout=timeout)
+
+
+def run(args: argparse.Namespace) -> int:
+    """Serve the explorer until interrupted."""
+    from ..errors import UnknownFormatError
+
+    data = Path(args.path).expanduser() if args.path else default_data_path()
+    if not data.exists():
+        raise UnknownFormatError(f"{data}: no such file or folder. Hint: pass the path of an "
+                                 "ensemble, or nothing for the demo data.")
+    folder = Path(args.notebook_dir) if args.notebook_dir else Path(
+        tempfile.mkdtemp(prefix="ensemblelab-explore-"))
+    notebook = write_notebook(folder, data, nonfinite=args.nonfinite)
+    port = int(args.port) or free_port()
+    proc = subprocess.Popen(voila_command(notebook, port), cwd=str(folder),
+                            start_new_session=True)
+
+    def _terminate(signum: int, frame: Any) -> None:  # SIGTERM: stop Voila too
+        raise SystemExit(0)
+
+    previous = signal.signal(signal.SIGTERM, _terminate)
+    try:
+        if not wait_for_port(port, timeout=120.0, proc=proc):
+            print("ensemblelab explore: error: the Voila server did not start "
+                  f"(exit status {proc.poll()}).", file=sys.stderr)
+            return 1
+        print(f"ensemblelab explorer of {data} at http://127.0.0.1:{port}/", flush=True)
+        print("(first render takes a few seconds; press Ctrl-C to stop)", flush=True)
+        return int(proc.wait() or 0)
+    except KeyboardInterrupt:
+        return 0
+    finally:
+        stop_process_group(proc)
+        signal.signal(signal.SIGTERM, previous)

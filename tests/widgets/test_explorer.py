@@ -1,0 +1,173 @@
+"""The explorer end to end in the kernel: brush a band, check every linked view.
+
+The toy ensemble (ensemblelab.testing; method notes section 1.7 scenario,
+computed independently (not published)): S2 ionises to D0 at IP 3.5 eV and S1
+at IP 4.5 eV, so with a 5.0 eV probe the S2 band sits at 1.5 eV and the S1
+band at 0.5 eV kinetic energy; the S2 -> S1 lifetime is 100 fs.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from ensemblelab.widgets import Explorer
+
+MAP = {"photon_energy": 5.0, "probe_fwhm": 30.0, "pump_fwhm": 30.0,
+       "energies": np.linspace(0.0, 2.5, 126), "delays": np.arange(-60.0, 201.0, 5.0)}
+
+
+@pytest.fixture(scope="module")
+def app(toy, tmp_path_factory):
+    folder = tmp_path_factory.mktemp("explorer")
+    return Explorer(toy, map_kwargs=MAP, debounce=0, data_path=folder / "toy_store",
+                    export_folder=folder / "export", restore=False)
+
+
+def test_explorer_builds_every_view_without_errors(app):
+    for name in ("map_view", "population_view", "structure_view", "selection_table",
+                 "trajectory_view", "quality_view", "export"):
+        assert getattr(app, name) is not None, name
+    assert app.messages.errors == []
+    assert app.model.trpes_map is not None
+    assert app.model.clusters is not None and len(app.model.cluster_names) >= 2
+
+
+def test_explorer_brush_on_s2_band_links_all_views(app, toy):
+    ms = app.brush((1.35, 1.65), (0.0, 60.0))
+    model = app.model
+    # selection table: grouped by state, the S2 band is made by S2 snapshots
+    model.group_by = "state"
+    table = app.selection_table.table
+    assert table["label"].iloc[0] == "S2"
+    assert table["share"].iloc[0] > 0.99
+    assert table["share"].sum() == pytest.approx(1.0, abs=1e-9)
+    # structure view: the strongest contributing geometries, captioned
+    view = app.structure_view
+    assert view.shown_ids == tuple(model.band["snapshot"].iloc[: view.n_top.value])
+    first = model.snapshot_info(view.shown_ids[0])
+    assert first["state"] == "S2"
+    assert f"trajectory {first['traj']}" in view.caption.value
+    # population view: the selected delay range is shaded
+    np.testing.assert_allclose(app.population_view.delay_band.x, [0.0, 0.0, 60.0, 60.0])
+    assert app.population_view.delay_band.visible
+    # map view: the box is drawn, the cuts follow
+    np.testing.assert_allclose(app.map_view.box.x, [1.35, 1.65, 1.65, 1.35, 1.35])
+    print(f"\nin-kernel brush -> all views updated: {ms:.1f} ms (toy ensemble)")
+
+
+def test_explorer_brush_on_s1_band_at_late_delays(app):
+    app.brush((0.35, 0.65), (150.0, 200.0))
+    app.model.group_by = "state"
+    table = app.selection_table.table
+    assert table["label"].iloc[0] == "S1" and table["share"].iloc[0] > 0.99
+    app.model.group_by = "cluster"
+    names = app.selection_table.table["label"].tolist()
+    assert all(n.startswith("cluster S1") for n in names)  # clusters are split by state
+
+
+def test_explorer_choosing_a_table_row_shows_its_structures(app):
+    app.brush((1.35, 1.65), (0.0, 60.0))
+    app.model.group_by = "traj"
+    key = int(app.selection_table.table["key"].iloc[1])
+    app.selection_table.rows.value = key
+    assert {app.model.snapshot_info(s)["traj"] for s in app.structure_view.shown_ids} == {key}
+    assert app.model.trajectory == key
+    assert app.trajectory_view.shown == key
+
+
+def test_explorer_exclusion_changes_map_and_populations(app):
+    before = np.array(app.model.trpes_map.intensity)
+    n_map, n_pop = app.map_view.n_computed, app.population_view.n_computed
+    app.model.exclude([0, 1, 2, 3, 4, 5])
+    assert app.map_view.n_computed == n_map + 1
+    assert app.population_view.n_computed == n_pop + 1
+    after = np.array(app.model.trpes_map.intensity)
+    assert not np.allclose(before, after)
+    assert not set(app.model.band["traj"]) & {0, 1, 2, 3, 4, 5}  # the band followed
+    app.model.restore(app.model.excluded)
+    np.testing.assert_allclose(app.model.trpes_map.intensity, before, rtol=1e-12)
+
+
+def test_explorer_decomposition_grid_and_controls(app):
+    mv = app.map_view
+    mv.decomposition.value = "neutral state"
+    comps = app.model.trpes_map.components
+    assert len(mv.grid.children) == len(comps) >= 2
+    # the small maps share one colour scale
+    scales = {id(fig.marks[0].scales["color"]) for fig in mv.grid.children}
+    assert len(scales) == 1
+    n = mv.n_computed
+    mv.probe_fwhm.value = 60.0  # a wider probe broadens the band (debounce 0: at once)
+    assert mv.n_computed == n + 1
+    assert app.model.trpes_map.params["probe"]["fwhm"] == 60.0
+    mv.probe_fwhm.value = 30.0
+    mv.decomposition.value = "total"
+    assert mv.grid.children == ()
+
+
+def test_explorer_callback_error_is_shown_not_raised(app):
+    mv = app.map_view
+    mv.photon_energy.value = 5.0
+    mv.probe_fwhm.value = 0.1  # allowed by the control
+    app.model.trpes_map = None  # a broken state: brushing needs a map
+    app.brush((1.0, 1.2), (0.0, 10.0))
+    assert app.messages.errors
+    assert "no map is shown yet" in app.messages.errors[-1]["text"]
+    assert "Traceback" in app.messages.widget.value
+    mv.probe_fwhm.value = 30.0  # recompute restores a map
+    assert app.model.trpes_map is not None
+    app.messages.clear()
+
+
+def test_explorer_session_round_trip_beside_the_data(app, toy, tmp_path):
+    import ensemblelab
+
+    store = ensemblelab.save(toy, tmp_path / "toy_store")
+    digest = {p: hashlib.sha256(p.read_bytes()).hexdigest() for p in store.rglob("*")
+              if p.is_file()}
+    first = Explorer(toy, map_kwargs=MAP, debounce=0, data_path=store, restore=False,
+                     clusters=False)
+    first.model.exclude([7, 8])
+    first.brush((1.35, 1.65), (0.0, 60.0))
+    first.model.labels = {"bands": {"A": [1.35, 1.65, 0.0, 60.0]}}
+    path = first.save_session()
+    assert path == tmp_path / "toy_store.session.json"  # beside the data, not inside
+    state = json.loads(path.read_text())
+    assert state["excluded"] == [7, 8] and state["selection"]["energy_range"] == [1.35, 1.65]
+    second = Explorer(toy, map_kwargs=MAP, debounce=0, data_path=store, clusters=False)
+    assert second.model.excluded == (7, 8)
+    assert second.model.energy_range == (1.35, 1.65)
+    assert second.model.selected == first.model.selected
+    assert second.model.labels == first.model.labels
+    after = {p: hashlib.sha256(p.read_bytes()).hexdigest() for p in store.rglob("*")
+             if p.is_file()}
+    assert after == digest  # the data files were never written
+
+
+def test_explorer_exports_structures_figures_tables(app, tmp_path):
+    app.brush((1.35, 1.65), (0.0, 60.0))
+    app.export.folder.value = str(tmp_path)
+    app.export.click("structures XYZ")
+    app.export.click("structures PDB")
+    app.export.click("figures PNG")
+    app.export.click("figures SVG")
+    app.export.click("tables CSV")
+    assert app.messages.errors == [], app.messages.errors
+    xyz = (tmp_path / "selection.xyz").read_text().splitlines()
+    n_atoms = app.model.ens.n_atoms
+    assert int(xyz[0]) == n_atoms
+    assert len(xyz) == len(app.model.selected) * (n_atoms + 2)  # XYZ layout (common practice)
+    assert (tmp_path / "selection.pdb").read_text().count("MODEL") >= len(app.model.selected)
+    assert (tmp_path / "trpes_map.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"  # PNG magic
+    assert b"<svg" in (tmp_path / "populations.svg").read_bytes()[:2000]
+    import pandas as pd
+
+    by_state = pd.read_csv(tmp_path / "band_by_state.csv")
+    assert by_state["share"].sum() == pytest.approx(1.0, abs=1e-9)
+    assert {"populations.csv", "band_snapshots.csv", "trpes_map.csv"} <= {
+        p.name for p in Path(tmp_path).iterdir()}
