@@ -367,9 +367,9 @@ def permutation_rmsd(
 
     Alternates a Kabsch fit with a per-element optimal assignment
     (:func:`scipy.optimize.linear_sum_assignment` on squared distances) until the
-    assignment no longer changes (common practice; a local search, started both
-    from the given order and from the assignment of the centred, unrotated frames;
-    the better result is kept).
+    assignment no longer changes (common practice; a local search, started from the
+    given order, from the centred frame, and from the four proper matchings of the
+    principal axes; the best result is kept).
 
     Parameters
     ----------
@@ -418,21 +418,35 @@ def permutation_rmsd(
     def refine(P: np.ndarray, perm: np.ndarray) -> tuple[float, np.ndarray]:
         for _ in range(max_iter):
             r, al, _, _ = _k.kabsch_rmsd(P[perm][None], refc, w, return_aligned=True)
-            new = assign(al[0])
+            new = perm[assign(al[0])]
             if np.array_equal(new, perm):
                 break
             perm = new
         r = _k.kabsch_rmsd(P[perm][None], refc, w)[0]
         return float(r[0]), perm
 
+    def axes(Y: np.ndarray) -> np.ndarray:
+        _, vec = np.linalg.eigh((Y * w[:, None]).T @ Y)
+        return vec
+
+    v_ref = axes(refc)
+    signs = [np.diag(d) for d in ((1, 1, 1), (1, -1, -1), (-1, 1, -1), (-1, -1, 1))]
     out = np.empty(n)
     perms = np.empty((n, a), dtype=np.int64)
     for f in range(n):
         P = X[f] - _k.weighted_centre(X[f], w)
         best = refine(P, np.arange(a))
-        other = refine(P, assign(P))
-        if other[0] < best[0]:
-            best = other
+        starts = [P]
+        v_p = axes(P)
+        for S in signs:  # principal-axis frames matched with the 4 proper sign choices
+            R = v_ref @ S @ v_p.T
+            if np.linalg.det(R) < 0:
+                R = v_ref @ (S * np.array([1, 1, -1])) @ v_p.T
+            starts.append(P @ R.T)
+        for Y in starts:
+            other = refine(P, assign(Y))
+            if other[0] < best[0]:
+                best = other
         out[f], perms[f] = best
     return out, perms
 
