@@ -52,9 +52,9 @@ def make_clean(n_traj=30, *, n_steps=81, dt=0.5, seed=0, groups=None, spread=0.0
         pop = np.zeros((n_steps, 3))
         pop[:, 2] = np.where(act == 2, 0.7, 0.2)
         pop[:, 1] = 1 - pop[:, 2]
-        traj.append(np.full(n_steps, k)); time.append(t); active.append(act)
-        geoms.append(X); energies.append(e); amps.append(pop); ekin.append(kin)
-        etot.append(e_pot + kin)
+        for lst, val in ((traj, np.full(n_steps, k)), (time, t), (active, act), (geoms, X),
+                         (energies, e), (amps, pop), (ekin, kin), (etot, e_pot + kin)):
+            lst.append(val)
     return dict(traj=np.concatenate(traj), time=np.concatenate(time),
                 active=np.concatenate(active), geometries=np.concatenate(geoms),
                 energies=np.concatenate(energies), amplitudes=np.concatenate(amps),
@@ -78,11 +78,11 @@ def inject(d, traj_id, kind, step):
     rows = np.flatnonzero(d["traj"] == traj_id)
     r = rows[step]
     t_bad = float(d["time"][r])
-    if kind == "energy_drift":   # slow heating, 1 eV over the rest of the run
-        ramp = np.clip((d["time"][rows] - t_bad) / 10.0, 0, None) * 0.1
+    if kind == "energy_drift":   # steady heating, 0.048 eV/fs (0.024 eV per step: no jump)
+        ramp = np.clip(d["time"][rows] - t_bad, 0, None) * 0.048
         d["e_tot"][rows] += ramp
-        # the drift first exceeds 0.5 eV 50 fs after onset
-        return t_bad + 50.0
+        # 0.48 eV after 10 fs, 0.504 eV after 10.5 fs: first above 0.5 eV (noise 1e-4 eV)
+        return t_bad + 10.5
     if kind == "energy_jump":
         d["e_tot"][rows[step:]] += 0.4
         return t_bad
