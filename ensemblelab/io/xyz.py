@@ -1168,7 +1168,7 @@ def _known(symbol: str) -> bool:
     return True
 
 
-def _write_trajectories_csv(ens: Ensemble, path: Path) -> None:
+def _write_trajectories_csv(ens: Ensemble, path: Any) -> None:
     table = ens.trajectories.drop(columns=["n_steps", "t_end"])
     extra = {}
     if ens.excitation_energies is not None:
