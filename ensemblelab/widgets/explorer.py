@@ -133,6 +133,10 @@ class Explorer:
                 self.restore_session()
             except Exception as exc:  # noqa: BLE001 - shown, the explorer still works
                 self.messages.exception(exc, where="restoring the session")
+        if not self.model.selected and self.model.cluster_medoids and \
+                self.structure_view is not None:
+            # something to look at before the first band: the cluster medoids
+            self.model.selected = tuple(self.model.cluster_medoids)
 
     # ------------------------------------------------------------------ building
     def _set_clusters(self, clusters: Any, kwargs: dict[str, Any] | None) -> None:

@@ -213,6 +213,8 @@ class MapView(View):
             axes=[bqplot.Axis(scale=self.tx, label="delay / fs"),
                   bqplot.Axis(scale=self.ty, side="left", tick_format=".2g")])
 
+        self.delay_cut.add_class("ensemblelab-delay-cut")
+        self.energy_cut.add_class("ensemblelab-energy-cut")
         self._recompute_later = Debouncer(self._guard(self.recompute), delay=debounce)
         for w in (self.photon_energy, self.probe_fwhm, self.pump_fwhm, self.n_photons,
                   self.resolution, self.convolve, self.decomposition):
