@@ -1,0 +1,718 @@
+"""The chunked native store: an ensemble split into blocks of whole trajectories.
+
+For ensembles larger than memory. Written incrementally (one chunk at a time)
+by :class:`ChunkedStoreWriter`, read chunk by chunk by :func:`load_chunk` and
+lazily by :class:`ensemblelab.io.lazy.LazyEnsemble` (``load(path, lazy=True)``).
+
+Layout (``layout: "chunked"``, schema version 1)
+------------------------------------------------
+::
+
+    big.ens/
+        manifest.json              what is in the folder (below)
+        trajectories.parquet       every trajectory (traj, weight, initial_state, n_steps,
+                                   t_end, user columns); small, read eagerly
+        chunks/
+            c000000/
+                snapshots.parquet  the chunk's rows of the snapshot table
+                trajectories.parquet  the chunk's rows of the trajectory table
+                geometries.npy     (n_chunk_snapshots, n_atoms, 3) in the stored dtype
+                energies.npy       (n_chunk_snapshots, n_states)
+                <name>.npy         every other per-snapshot array, and the per-trajectory
+                                   arrays (excitation_energies, ...) of the chunk's
+                                   trajectories
+            c000001/
+            ...
+
+A trajectory never straddles two chunks, and trajectory ids increase strictly
+from chunk to chunk, so the concatenation of the chunks in order is the
+in-memory :class:`~ensemblelab.Ensemble` (sorted by trajectory, then time).
+
+``manifest.json`` has the keys of the single-file store (``format``,
+``schema_version``, ``created_by``, ``units``, ``n_snapshots``,
+``n_trajectories``, ``symbols``, ``masses``, ``state_labels``,
+``cation_labels``, ``metadata``) with ``layout = "chunked"``, plus
+
+==============  ===================================================================
+key             meaning
+==============  ===================================================================
+``arrays``      list of ``{"name", "dtype", "tail", "per"}``: stored dtype, shape after
+                the first axis, ``per`` = ``"snapshot"`` or ``"trajectory"``
+``columns``     the snapshot table's columns, in order
+``tables``      ``{"trajectories": "trajectories.parquet"}``
+``chunks``      list of ``{"dir", "n_snapshots", "n_trajectories", "row_start",
+                "traj_row_start", "traj_first", "traj_last", "t_min", "t_max"}``
+==============  ===================================================================
+
+Arrays keep the dtype they were written with (for example float32 geometries)
+and are read with ``allow_pickle=False``. The whole store is written in a
+temporary folder beside the target and renamed into place by
+:meth:`ChunkedStoreWriter.close`; an interrupted write leaves no store (and any
+previous store at the target intact).
+"""
+
+from __future__ import annotations
+
+import contextlib
+import copy as _copy
+import functools
+import json
+from collections.abc import Iterable, Iterator, Mapping
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from ..data.ensemble import (
+    REQUIRED_COLUMNS,
+    SCHEMA_VERSION,
+    SNAPSHOT_ARRAYS,
+    TRAJECTORY_ARRAYS,
+    Ensemble,
+)
+from ..errors import SchemaError, StoreError
+from ._common import atomic_folder, decode_metadata, dumps_json, encode_metadata
+
+__all__ = [
+    "ChunkedStoreWriter",
+    "save_chunked",
+    "load_chunk",
+    "read_chunked_manifest",
+    "is_chunked_store",
+    "convert_extxyz_chunked",
+    "DEFAULT_CHUNK_TRAJECTORIES",
+]
+
+#: default number of trajectories per chunk
+DEFAULT_CHUNK_TRAJECTORIES = 1000
+_MANIFEST = "manifest.json"
+_FORMAT = "ensemblelab-store"
+_SNAP_NAMES = ("geometries", "energies", *SNAPSHOT_ARRAYS)
+
+
+def is_chunked_store(path: str | Path) -> bool:
+    """True when `path` is a native store folder with ``layout = "chunked"``."""
+    manifest = Path(path) / _MANIFEST
+    if not manifest.is_file():
+        return False
+    try:
+        data = json.loads(manifest.read_text())
+    except (json.JSONDecodeError, UnicodeDecodeError, OSError):
+        return False
+    return isinstance(data, dict) and data.get("format") == _FORMAT and \
+        data.get("layout") == "chunked"
+
+
+def _is_store_folder(path: Path) -> bool:
+    manifest = Path(path) / _MANIFEST
+    if not manifest.is_file():
+        return False
+    try:
+        return json.loads(manifest.read_text()).get("format") == _FORMAT
+    except (json.JSONDecodeError, UnicodeDecodeError, AttributeError, OSError):
+        return False
+
+
+def _fake_geometries(n: int, n_atoms: int) -> np.ndarray:
+    """A read-only zero array of shape (n, n_atoms, 3) that takes no memory."""
+    return np.broadcast_to(np.zeros((1, 1, 3)), (n, n_atoms, 3))
+
+
+# ----------------------------------------------------------------------------- writing
+class ChunkedStoreWriter:
+    """Write a chunked native store incrementally, one block of trajectories at a time.
+
+    Use as a context manager; nothing appears at `path` until :meth:`close`
+    (called on a clean exit) renames the finished folder into place. An
+    exception inside the ``with`` block removes the partial folder.
+
+    Parameters
+    ----------
+    path : str or Path
+        Target store folder.
+    chunk_size : int
+        Trajectories per chunk for :meth:`append` (buffered until this many).
+    overwrite : bool
+        Replace an existing store (never a folder that is not a store).
+    metadata : mapping, optional
+        Ensemble metadata; default the metadata of the first appended ensemble.
+    renumber : bool
+        Give snapshots the ids 0, 1, ... in store order (default). False keeps
+        the ``snapshot`` column of the appended ensembles (must stay unique).
+
+    Examples
+    --------
+    >>> import tempfile, pathlib
+    >>> from ensemblelab.testing import make_toy_ensemble
+    >>> ens = make_toy_ensemble(6, t_max=10.0)
+    >>> tmp = pathlib.Path(tempfile.mkdtemp())
+    >>> with ChunkedStoreWriter(tmp / "big.ens", chunk_size=4) as w:
+    ...     for i in ens.trajectories["traj"]:
+    ...         w.append(ens.trajectory(i))
+    >>> read_chunked_manifest(tmp / "big.ens")["n_trajectories"]
+    6
+    """
+
+    def __init__(self, path: str | Path, *, chunk_size: int = DEFAULT_CHUNK_TRAJECTORIES,
+                 overwrite: bool = False, metadata: Mapping[str, Any] | None = None,
+                 renumber: bool = True) -> None:
+        if not isinstance(chunk_size, int | np.integer) or chunk_size < 1:
+            raise SchemaError(f"The 'chunk_size' parameter must be an int >= 1 (trajectories "
+                              f"per chunk). Got {chunk_size!r} instead.")
+        self.path = Path(path)
+        self.chunk_size = int(chunk_size)
+        self.renumber = bool(renumber)
+        self._meta = None if metadata is None else encode_metadata(metadata)
+        self._stack = contextlib.ExitStack()
+        self._tmp: Path | None = self._stack.enter_context(
+            atomic_folder(self.path, overwrite=overwrite, is_ours=_is_store_folder,
+                          kind="native store"))
+        (self._tmp / "chunks").mkdir()
+        self._buffer: list[Ensemble] = []
+        self._buffered = 0
+        self._schema: dict[str, Any] | None = None
+        self._chunks: list[dict[str, Any]] = []
+        self._traj_tables: list[pd.DataFrame] = []
+        self._rows = 0
+        self._traj_rows = 0
+        self._last_traj: int | None = None
+        self._closed = False
+
+    # -- context manager
+    def __enter__(self) -> ChunkedStoreWriter:
+        return self
+
+    def __exit__(self, exc_type: Any, exc: Any, tb: Any) -> None:
+        if exc_type is None:
+            self.close()
+        else:
+            self.abort()
+
+    @property
+    def n_chunks(self) -> int:
+        """Chunks written so far."""
+        return len(self._chunks)
+
+    @property
+    def n_snapshots(self) -> int:
+        """Snapshots written so far (not counting the buffer)."""
+        return self._rows
+
+    def append(self, ens: Ensemble) -> None:
+        """Buffer whole trajectories; a chunk is written when `chunk_size` are buffered.
+
+        Parameters
+        ----------
+        ens : Ensemble
+            One or more whole trajectories whose ids are all larger than every
+            id appended before.
+        """
+        self._check_open()
+        if not isinstance(ens, Ensemble):
+            raise SchemaError(f"append() takes an Ensemble; got {type(ens).__name__}.")
+        if ens.n_trajectories == 0:
+            return
+        self._buffer.append(ens)
+        self._buffered += ens.n_trajectories
+        while self._buffered >= self.chunk_size:
+            self._flush(self.chunk_size)
+
+    def write_chunk(self, ens: Ensemble, *, arrays: Mapping[str, np.ndarray] | None = None
+                    ) -> None:
+        """Write `ens` as one chunk now (after flushing the buffer).
+
+        Parameters
+        ----------
+        ens : Ensemble
+            Whole trajectories, ids larger than every id written before.
+        arrays : mapping of str to ndarray, optional
+            Per-snapshot arrays to store instead of the ensemble's own, in their
+            own dtype (for example float32 geometries; same shape). Lets a
+            generator build the chunk's Ensemble with placeholder geometries.
+        """
+        self._check_open()
+        self.flush()
+        self._write(ens, arrays or {})
+
+    def flush(self) -> None:
+        """Write whatever is buffered as (possibly smaller) chunks."""
+        while self._buffered:
+            self._flush(min(self._buffered, self.chunk_size))
+
+    def close(self) -> Path:
+        """Flush, write the manifest and move the store into place. Returns the path."""
+        if self._closed:
+            return self.path
+        try:
+            self.flush()
+            if self._schema is None:
+                raise StoreError(f"{self.path}: nothing was written (no trajectories). Hint: "
+                                 "append at least one trajectory before closing.")
+            self._finish()
+        except BaseException:
+            self.abort()
+            raise
+        self._closed = True
+        self._stack.close()  # renames the temporary folder into place
+        return self.path
+
+    def abort(self) -> None:
+        """Discard everything written (the previous store, if any, stays)."""
+        if self._closed:
+            return
+        self._closed = True
+        self._buffer.clear()
+        with contextlib.suppress(_Abort):
+            self._stack.__exit__(_Abort, _Abort(), None)
+
+    # -- internals
+    def _check_open(self) -> None:
+        if self._closed:
+            raise StoreError(f"{self.path}: the writer is closed.")
+
+    def _flush(self, n_traj: int) -> None:
+        take: list[Ensemble] = []
+        count = 0
+        while self._buffer and count < n_traj:
+            ens = self._buffer[0]
+            need = n_traj - count
+            if ens.n_trajectories <= need:
+                take.append(self._buffer.pop(0))
+                count += ens.n_trajectories
+            else:
+                ids = ens.trajectories["traj"].to_numpy()
+                take.append(ens.select(ids[:need]))
+                self._buffer[0] = ens.select(ids[need:])
+                count += need
+        self._buffered -= count
+        self._write(concat_ensembles(take), {})
+
+    def _schema_of(self, ens: Ensemble, arrays: Mapping[str, np.ndarray]) -> dict[str, Any]:
+        entries = []
+        for name in _SNAP_NAMES:
+            arr = arrays.get(name, getattr(ens, name))
+            if arr is not None:
+                entries.append({"name": name, "dtype": np.dtype(arr.dtype).str,
+                                "tail": list(arr.shape[1:]), "per": "snapshot"})
+        for name in TRAJECTORY_ARRAYS:
+            arr = getattr(ens, name)
+            if arr is not None:
+                entries.append({"name": name, "dtype": np.dtype(arr.dtype).str,
+                                "tail": list(arr.shape[1:]), "per": "trajectory"})
+        return {
+            "symbols": list(ens.symbols),
+            "masses": [float(m) for m in ens.masses],
+            "state_labels": list(ens.state_labels),
+            "cation_labels": list(ens.cation_labels),
+            "arrays": entries,
+            "columns": list(ens.snapshots.columns),
+            "traj_columns": [c for c in ens.trajectories.columns],
+        }
+
+    def _write(self, ens: Ensemble, arrays: Mapping[str, np.ndarray]) -> None:
+        unknown = set(arrays) - set(_SNAP_NAMES)
+        if unknown:
+            raise SchemaError(f"write_chunk(arrays=...) takes per-snapshot arrays "
+                              f"{list(_SNAP_NAMES)}; got {sorted(unknown)}.")
+        for name, arr in arrays.items():
+            own = getattr(ens, name)
+            if own is None or arr.shape != own.shape:
+                raise SchemaError(f"write_chunk(arrays=...): {name} must have the shape of the "
+                                  f"chunk's own array {None if own is None else own.shape}; "
+                                  f"got {arr.shape}.")
+        schema = self._schema_of(ens, arrays)
+        if self._schema is None:
+            self._schema = schema
+            if self._meta is None:
+                self._meta = encode_metadata(ens.metadata)
+        elif schema != self._schema:
+            diff = [k for k in schema if schema[k] != self._schema[k]]
+            raise SchemaError(
+                f"chunk {len(self._chunks)} does not match the first chunk in {diff} "
+                f"(first: {[self._schema[k] for k in diff]}, this: {[schema[k] for k in diff]}). "
+                "Hint: every trajectory of a store needs the same atoms, states, arrays and "
+                "columns."
+            )
+        ids = ens.trajectories["traj"].to_numpy()
+        if self._last_traj is not None and ids[0] <= self._last_traj:
+            raise SchemaError(
+                f"trajectory ids must increase from chunk to chunk; got id {int(ids[0])} after "
+                f"{self._last_traj}. Hint: append trajectories in increasing id order."
+            )
+        assert self._tmp is not None
+        name = f"c{len(self._chunks):06d}"
+        folder = self._tmp / "chunks" / name
+        folder.mkdir()
+        n = ens.n_snapshots
+        frame = ens.snapshots
+        if self.renumber:
+            frame = frame.copy()
+            frame["snapshot"] = np.arange(self._rows, self._rows + n, dtype=np.int64)
+        for entry in schema["arrays"]:
+            arr = arrays.get(entry["name"], getattr(ens, entry["name"]))
+            np.save(folder / f"{entry['name']}.npy", np.ascontiguousarray(arr),
+                    allow_pickle=False)
+        trajs = ens.trajectories
+        try:
+            frame.to_parquet(folder / "snapshots.parquet", index=False)
+            trajs.to_parquet(folder / "trajectories.parquet", index=False)
+        except (TypeError, ValueError, ImportError) as exc:
+            raise StoreError(
+                f"{self.path}: cannot write the tables as Parquet ({exc}). Hint: user columns "
+                "must hold numbers, booleans or text of one type."
+            ) from exc
+        time = frame["time"].to_numpy()
+        self._chunks.append({
+            "dir": f"chunks/{name}",
+            "n_snapshots": int(n),
+            "n_trajectories": int(len(ids)),
+            "row_start": int(self._rows),
+            "traj_row_start": int(self._traj_rows),
+            "traj_first": int(ids[0]),
+            "traj_last": int(ids[-1]),
+            "t_min": float(time.min()) if n else 0.0,
+            "t_max": float(time.max()) if n else 0.0,
+        })
+        self._traj_tables.append(trajs)
+        self._rows += n
+        self._traj_rows += len(ids)
+        self._last_traj = int(ids[-1])
+
+    def _finish(self) -> None:
+        from .. import __version__
+
+        assert self._tmp is not None and self._schema is not None
+        trajs = pd.concat(self._traj_tables, ignore_index=True)
+        trajs.to_parquet(self._tmp / "trajectories.parquet", index=False)
+        meta = dict(self._meta or {})
+        manifest = {
+            "format": _FORMAT,
+            "schema_version": SCHEMA_VERSION,
+            "layout": "chunked",
+            "created_by": f"ensemblelab {__version__}",
+            "units": decode_metadata(meta).get("units", {}),
+            "n_snapshots": int(self._rows),
+            "n_trajectories": int(self._traj_rows),
+            "symbols": self._schema["symbols"],
+            "masses": self._schema["masses"],
+            "state_labels": self._schema["state_labels"],
+            "cation_labels": self._schema["cation_labels"],
+            "tables": {"trajectories": "trajectories.parquet"},
+            "arrays": self._schema["arrays"],
+            "columns": self._schema["columns"],
+            "chunks": self._chunks,
+            "metadata": meta,
+        }
+        (self._tmp / _MANIFEST).write_text(dumps_json(manifest))
+
+
+class _Abort(Exception):
+    """Raised into the atomic-folder context to discard a partial store."""
+
+
+def concat_ensembles(parts: list[Ensemble]) -> Ensemble:
+    """Concatenate ensembles of disjoint, increasing trajectories (internal helper).
+
+    Returns
+    -------
+    Ensemble
+        A new Ensemble (metadata of the first part).
+    """
+    if len(parts) == 1:
+        return parts[0]
+    first = parts[0]
+    arrays: dict[str, Any] = {}
+    for name in (*SNAPSHOT_ARRAYS, *TRAJECTORY_ARRAYS):
+        vals = [getattr(p, name) for p in parts]
+        if all(v is None for v in vals):
+            arrays[name] = None
+        elif any(v is None for v in vals):
+            raise SchemaError(f"cannot concatenate: {name} is present in some parts only.")
+        else:
+            arrays[name] = np.concatenate(vals)
+    frame = pd.concat([p.snapshots for p in parts], ignore_index=True)
+    trajs = pd.concat([p.trajectories.drop(columns=["n_steps", "t_end"]) for p in parts],
+                      ignore_index=True)
+    return Ensemble(
+        snapshots=frame,
+        geometries=np.concatenate([p.geometries for p in parts]),
+        energies=np.concatenate([p.energies for p in parts]),
+        symbols=first.symbols, masses=first.masses, trajectories=trajs,
+        state_labels=first.state_labels, cation_labels=first.cation_labels,
+        metadata=_copy.deepcopy(first.metadata), **arrays,
+    )
+
+
+def save_chunked(ens: Ensemble, path: str | Path, *,
+                 chunk_size: int = DEFAULT_CHUNK_TRAJECTORIES,
+                 overwrite: bool = False) -> Path:
+    """Write an in-memory ensemble as a chunked store (keeps its snapshot ids).
+
+    Parameters
+    ----------
+    ens : Ensemble
+    path : str or Path
+        Target folder.
+    chunk_size : int
+        Trajectories per chunk.
+    overwrite : bool
+        Replace an existing store.
+
+    Returns
+    -------
+    Path
+    """
+    ids = ens.trajectories["traj"].to_numpy()
+    with ChunkedStoreWriter(path, chunk_size=chunk_size, overwrite=overwrite,
+                            metadata=ens.metadata, renumber=False) as w:
+        for s in range(0, len(ids), chunk_size):
+            w.write_chunk(ens.select(ids[s:s + chunk_size]) if len(ids) > chunk_size else ens)
+    return Path(path)
+
+
+# ----------------------------------------------------------------------------- reading
+@functools.lru_cache(maxsize=32)
+def _manifest_cached(path: str, mtime_ns: int) -> str:
+    return (Path(path) / _MANIFEST).read_text()
+
+
+def read_chunked_manifest(path: str | Path) -> dict[str, Any]:
+    """Read and check the manifest of a chunked store.
+
+    Raises
+    ------
+    StoreError
+        Missing or invalid manifest, another layout, a future schema or missing keys.
+    """
+    path = Path(path)
+    mpath = path / _MANIFEST
+    if not mpath.is_file():
+        raise StoreError(f"{path}: not a native store (no {_MANIFEST}). Hint: write one with "
+                         "ensemblelab convert --chunked or ChunkedStoreWriter.")
+    try:
+        manifest = json.loads(_manifest_cached(str(path.resolve()), mpath.stat().st_mtime_ns))
+    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
+        raise StoreError(f"{mpath}: the manifest is not valid JSON ({exc}). Hint: the store is "
+                         "corrupt; convert the original files again.") from exc
+    if not isinstance(manifest, dict) or manifest.get("format") != _FORMAT:
+        raise StoreError(f"{mpath}: expected format {_FORMAT!r}. Hint: this folder was not "
+                         "written by ensemblelab.")
+    if manifest.get("layout") != "chunked":
+        raise StoreError(f"{mpath}: layout {manifest.get('layout')!r} is not 'chunked'. Hint: "
+                         "open it with ensemblelab.load(path) (eager).")
+    version = manifest.get("schema_version")
+    if not isinstance(version, int) or version > SCHEMA_VERSION:
+        raise StoreError(f"{mpath}: schema_version {version!r} is not one this ensemblelab "
+                         f"reads (<= {SCHEMA_VERSION}). Hint: upgrade ensemblelab.")
+    required = ("n_snapshots", "n_trajectories", "symbols", "masses", "arrays", "columns",
+                "chunks", "tables")
+    missing = [k for k in required if k not in manifest]
+    if missing:
+        raise StoreError(f"{mpath}: the manifest lacks key(s) {missing}. Hint: the store is "
+                         "corrupt; convert the original files again.")
+    return manifest
+
+
+def _load_npy(file: Path, entry: Mapping[str, Any], rows: int, mmap: bool) -> np.ndarray:
+    if not file.is_file():
+        raise StoreError(f"{file}: array file of {entry['name']} is missing. Hint: the store is "
+                         "incomplete; convert the original files again.")
+    try:
+        arr = np.load(file, mmap_mode="r" if mmap else None, allow_pickle=False)
+    except (ValueError, OSError, EOFError) as exc:
+        raise StoreError(f"{file}: cannot read the array ({exc}). Hint: the file is corrupt; "
+                         "convert the original files again.") from exc
+    want = (rows, *entry["tail"])
+    if arr.shape != want or arr.dtype != np.dtype(entry["dtype"]):
+        raise StoreError(f"{file}: expected {entry['name']} of shape {want} and dtype "
+                         f"{np.dtype(entry['dtype'])}, found {arr.shape} {arr.dtype}. Hint: the "
+                         "store is inconsistent; convert the original files again.")
+    if not mmap:
+        arr.setflags(write=False)
+    return arr
+
+
+def load_chunk_array(path: str | Path, index: int, name: str, *, mmap: bool = False
+                     ) -> np.ndarray:
+    """One stored array of chunk `index`, in its stored dtype."""
+    path = Path(path)
+    manifest = read_chunked_manifest(path)
+    chunk = manifest["chunks"][index]
+    entry = next((e for e in manifest["arrays"] if e["name"] == name), None)
+    if entry is None:
+        raise KeyError(f"the store has no array {name!r}.")
+    rows = chunk["n_trajectories"] if entry["per"] == "trajectory" else chunk["n_snapshots"]
+    return _load_npy(path / chunk["dir"] / f"{name}.npy", entry, rows, mmap)
+
+
+def read_chunk_table(path: str | Path, index: int, table: str = "snapshots",
+                     columns: list[str] | None = None) -> pd.DataFrame:
+    """The snapshot (or trajectory) table of chunk `index`."""
+    path = Path(path)
+    manifest = read_chunked_manifest(path)
+    file = path / manifest["chunks"][index]["dir"] / f"{table}.parquet"
+    try:
+        return pd.read_parquet(file, columns=columns)
+    except Exception as exc:  # pyarrow raises its own error types
+        raise StoreError(f"{file}: cannot read the Parquet table ({exc}). Hint: the store is "
+                         "incomplete or corrupt; convert the original files again.") from exc
+
+
+def load_chunk(path: str | Path, index: int, *, fields: Iterable[str] | None = None,
+               columns: Iterable[str] | None = None, mmap: bool = False) -> Ensemble:
+    """Chunk `index` of a chunked store as an in-memory Ensemble of whole trajectories.
+
+    Parameters
+    ----------
+    path : str or Path
+        The store folder.
+    index : int
+        Chunk number (0-based).
+    fields : iterable of str, optional
+        Arrays to read (default all). ``energies`` is always read; without
+        ``geometries`` the chunk holds read-only zero placeholders of the right
+        shape (for computations that do not need coordinates).
+    columns : iterable of str, optional
+        Extra snapshot columns to read besides the required ones (default all).
+    mmap : bool
+        Memory-map the arrays instead of reading them (float64 arrays only are
+        then used without a copy).
+
+    Returns
+    -------
+    Ensemble
+    """
+    path = Path(path)
+    manifest = read_chunked_manifest(path)
+    chunks = manifest["chunks"]
+    if not 0 <= int(index) < len(chunks):
+        raise IndexError(f"chunk index {index} out of range [0, {len(chunks)}).")
+    chunk = chunks[int(index)]
+    wanted = None if fields is None else {"energies", *fields}
+    cols = None
+    if columns is not None:
+        extra = [c for c in manifest["columns"] if c in set(columns)]
+        cols = [*REQUIRED_COLUMNS, *[c for c in extra if c not in REQUIRED_COLUMNS]]
+    frame = read_chunk_table(path, index, "snapshots", cols)
+    trajs = read_chunk_table(path, index, "trajectories")
+    arrays: dict[str, Any] = {}
+    for entry in manifest["arrays"]:
+        name = entry["name"]
+        if wanted is not None and name not in wanted:
+            continue
+        rows = chunk["n_trajectories"] if entry["per"] == "trajectory" else chunk["n_snapshots"]
+        arrays[name] = _load_npy(path / chunk["dir"] / f"{name}.npy", entry, rows, mmap)
+    if "geometries" not in arrays:
+        arrays["geometries"] = _fake_geometries(chunk["n_snapshots"], len(manifest["symbols"]))
+    metadata = decode_metadata(manifest.get("metadata", {}))
+    try:
+        return Ensemble(
+            snapshots=frame,
+            trajectories=trajs.drop(columns=["n_steps", "t_end"], errors="ignore"),
+            symbols=tuple(manifest["symbols"]),
+            masses=np.asarray(manifest["masses"], dtype=np.float64),
+            state_labels=tuple(manifest.get("state_labels", ())),
+            cation_labels=tuple(manifest.get("cation_labels", ())),
+            metadata=metadata,
+            **arrays,
+        )
+    except SchemaError as exc:
+        raise StoreError(f"{path}: chunk {index} is inconsistent ({exc}). Hint: convert the "
+                         "original files again.") from exc
+
+
+# ----------------------------------------------------------------------------- converting
+def convert_extxyz_chunked(
+    source: str | Path,
+    target: str | Path,
+    *,
+    chunk_size: int = DEFAULT_CHUNK_TRAJECTORIES,
+    overwrite: bool = False,
+    progress: bool = True,
+    **load_kw: Any,
+) -> Path:
+    """Stream an extended-XYZ folder into a chunked store, one file at a time.
+
+    Memory holds one chunk of trajectories at most; the trajectory table
+    (``trajectories.csv``) and ``metadata.json`` are read once (they are small).
+
+    Parameters
+    ----------
+    source : str or Path
+        Folder of ``*.xyz`` / ``*.xyz.gz`` files (one per trajectory).
+    target : str or Path
+        Store folder to create.
+    chunk_size : int
+        Trajectories per chunk.
+    overwrite : bool
+        Replace an existing store at `target`.
+    progress : bool
+        Progress bar over the files.
+    **load_kw
+        ``energy_unit``, ``time_unit``, ``length_unit``, ``state_base``,
+        ``nonfinite`` as for :func:`ensemblelab.io.load_extxyz`.
+
+    Returns
+    -------
+    Path
+        The store. Snapshot ids are 0, 1, ... in (trajectory, time) order, as an
+        eager load of the folder gives them.
+    """
+    from tqdm.auto import tqdm
+
+    from . import xyz
+    from ._common import file_source
+
+    source = Path(source)
+    if not source.is_dir():
+        raise FileNotFoundError(f"{source}: not a folder of extended-XYZ files.")
+    files = sorted(xyz.find_trajectory_files(source), key=lambda item: item[0])
+    if not files:
+        raise StoreError(f"{source}: no *.xyz or *.xyz.gz files. Hint: one extended-XYZ file "
+                         "per trajectory is expected.")
+    metadata: dict[str, Any] = {}
+    meta_path = source / "metadata.json"
+    if meta_path.is_file():
+        metadata = decode_metadata(json.loads(meta_path.read_text()))
+    sources = list(metadata.pop("sources", []))
+    table: pd.DataFrame | None = None
+    arrays: dict[str, np.ndarray] = {}
+    csv_path = source / "trajectories.csv"
+    if csv_path.is_file():
+        ids_all = np.array([t for t, _ in files], dtype=np.int64)
+        base = load_kw.get("state_base")
+        if base is None:  # the first file's header decides, as for an eager load
+            opts = {k: load_kw.get(k) for k in ("energy_unit", "time_unit", "length_unit",
+                                                "state_base")}
+            header = xyz._parse_file(files[0][1], nonfinite="keep", **opts).header
+            base = int(header.get("state_base", 0))
+        table, arrays = xyz._read_trajectories_csv(
+            csv_path, ids_all, energy_unit=load_kw.get("energy_unit"), state_base=base)
+        sources.append(file_source(csv_path, fmt="csv"))
+    pos_of = {} if table is None else {int(t): i for i, t in enumerate(table["traj"])}
+    with ChunkedStoreWriter(target, chunk_size=chunk_size, overwrite=overwrite,
+                            metadata={**metadata, "sources": []}, renumber=True) as writer:
+        for tid, fpath in tqdm(files, desc="converting", unit="file", disable=not progress):
+            ens = xyz.load_extxyz(fpath, progress=False, **load_kw)
+            sources.extend(ens.metadata.get("sources", []))
+            pos = pos_of.get(int(tid))
+            if pos is not None:
+                changes: dict[str, Any] = {"trajectories": table.iloc[[pos]].reset_index(
+                    drop=True)}
+                for name, arr in arrays.items():
+                    changes[name] = arr[[pos]]
+                ens = ens.replace(**changes)
+            writer.append(ens)
+        writer.flush()
+        writer._meta = encode_metadata({**metadata, "sources": sources})
+    return Path(target)
+
+
+def iter_chunk_indices(manifest: Mapping[str, Any], traj_ids: np.ndarray) -> Iterator[int]:
+    """Chunks that hold any of the (sorted) trajectory ids."""
+    for i, chunk in enumerate(manifest["chunks"]):
+        lo = np.searchsorted(traj_ids, chunk["traj_first"], side="left")
+        hi = np.searchsorted(traj_ids, chunk["traj_last"], side="right")
+        if hi > lo:
+            yield i
