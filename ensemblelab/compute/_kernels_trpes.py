@@ -39,8 +39,8 @@ __all__ = [
     "assemble",
 ]
 
-#: sticks per chunk in :func:`deposit_moments` (~8 MB per float64 temporary)
-DEFAULT_CHUNK = 1 << 20
+#: sticks per chunk in :func:`deposit_moments` (~2 MB per float64 buffer)
+DEFAULT_CHUNK = 1 << 18
 
 
 def deposit_moments(
@@ -87,34 +87,44 @@ def deposit_moments(
     size = n_comp * n_time * n_fine
     out = np.zeros((order, size))
     inv_h = 1.0 / h
+    shift = 0.5 - e_lo * inv_h
     n = energy.shape[0]
+    m = min(chunk, max(n, 1))
+    p = np.empty(m)
+    flat = np.empty(m, dtype=np.int64)
+    bins = np.empty(m, dtype=np.int64)
+    acc = np.empty(m)
     for s in range(0, n, chunk):
-        sl = slice(s, min(n, s + chunk))
-        p = energy[sl] - e_lo
-        p *= inv_h
-        b = np.rint(p)
-        p -= b  # delta / h in [-1/2, 1/2]
-        flat = b.astype(np.int64)
-        tb = tbin[sl]
+        e = min(n, s + chunk)
+        k_n = e - s
+        pv, fv, bv, av = p[:k_n], flat[:k_n], bins[:k_n], acc[:k_n]
+        np.multiply(energy[s:e], inv_h, out=pv)
+        pv += shift  # (x - e_lo)/h + 1/2 > 0
+        np.copyto(bv, pv, casting="unsafe")  # truncation = floor here: nearest bin centre
+        pv -= bv
+        pv -= 0.5  # delta / h in [-1/2, 1/2)
         if comp is not None:
-            flat += (comp[sl].astype(np.int64) * n_time + tb) * n_fine
+            np.multiply(comp[s:e], n_time, out=fv)
+            fv += tbin[s:e]
+            fv *= n_fine
         else:
-            flat += tb.astype(np.int64) * n_fine
-        acc = np.array(weight[sl], dtype=np.float64, copy=True)
+            np.multiply(tbin[s:e], n_fine, out=fv)
+        fv += bv
+        np.copyto(av, weight[s:e])
         if tfrac is None:
             for k in range(order):
-                out[k] += np.bincount(flat, acc, minlength=size)
+                out[k] += np.bincount(fv, av, minlength=size)
                 if k + 1 < order:
-                    acc *= p
+                    av *= pv
         else:
-            f = tfrac[sl]
+            f = tfrac[s:e]
             later = f > 0
-            flat2 = flat[later] + n_fine
+            fv2 = fv[later] + n_fine
             for k in range(order):
-                out[k] += np.bincount(flat, acc * (1.0 - f), minlength=size)
-                out[k] += np.bincount(flat2, acc[later] * f[later], minlength=size)
+                out[k] += np.bincount(fv, av * (1.0 - f), minlength=size)
+                out[k] += np.bincount(fv2, av[later] * f[later], minlength=size)
                 if k + 1 < order:
-                    acc *= p
+                    av *= pv
     return out.reshape(order, n_comp, n_time, n_fine)
 
 
@@ -245,7 +255,8 @@ def assemble(hist: np.ndarray, bmat: np.ndarray, cmat: np.ndarray) -> np.ndarray
     hist : ndarray, shape (order, n_comp, n_time, n_fine)
         Moment histograms already divided by the alive weight per time bin.
     bmat : ndarray, shape (order, n_fine, n_energies)
-    cmat : ndarray, shape (n_delays, n_time)
+    cmat : ndarray, shape (n_delays, n_time), or None
+        None means the identity (maps on the internal time grid).
 
     Returns
     -------
@@ -254,9 +265,12 @@ def assemble(hist: np.ndarray, bmat: np.ndarray, cmat: np.ndarray) -> np.ndarray
     order, n_comp, n_time, n_fine = hist.shape
     n_e = bmat.shape[2]
     b2 = bmat.reshape(order * n_fine, n_e)
-    out = np.empty((n_comp, cmat.shape[0], n_e))
+    out = np.empty((n_comp, n_time if cmat is None else cmat.shape[0], n_e))
     for c in range(n_comp):
         h2 = np.moveaxis(hist[:, c], 0, 1).reshape(n_time, order * n_fine)
+        if cmat is None:
+            out[c] = h2 @ b2
+            continue
         # choose the cheaper association of C @ H @ B
         cost_a = cmat.shape[0] * n_time * order * n_fine + cmat.shape[0] * order * n_fine * n_e
         cost_b = n_time * order * n_fine * n_e + cmat.shape[0] * n_time * n_e

@@ -66,7 +66,7 @@ __all__ = [
     "DEFAULT_BINS_PER_FWHM",
 ]
 
-#: Taylor moments kept per fine energy bin (relative accuracy ~1e-8 at 8 bins per FWHM)
+#: Taylor moments kept per fine energy bin (error <~1e-7 of the peak at 8 bins per FWHM)
 DEFAULT_ORDER = 6
 #: fine energy bins per FWHM of the stick Gaussian
 DEFAULT_BINS_PER_FWHM = 8.0

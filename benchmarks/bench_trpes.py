@@ -1,0 +1,165 @@
+"""Benchmark: TRPES map assembly, re-broadening and band contributions.
+
+Prints ratios against peers measured in the same run (absolute timings are noisy):
+
+* assembly of a 600 x 300 map from N (snapshot, channel) contributions, as a fraction
+  of a plain streaming read of the same input arrays (numpy sums; goal >= 1/4);
+* speed-up against numpy.histogram2d + scipy.ndimage.gaussian_filter on the same grid
+  (goal >= 20x) and against the naive per-contribution Gaussian evaluation (timed on a
+  subset and scaled; goal >= 500x);
+* re-broadening cached sticks for a new probe width (goal <= 50 ms for 600 x 300);
+* contributions() for a band region at 1e7 contributions (goal <= 100 ms).
+
+Usage: python benchmarks/bench_trpes.py [--quick] [--sizes 1e7 1e8]
+"""
+
+from __future__ import annotations
+
+import argparse
+import resource
+import sys
+import time
+
+import numpy as np
+
+from ensemblelab.compute import _kernels_trpes as K
+from ensemblelab.compute import _reference_trpes as R
+from ensemblelab.compute.pulses import GaussianPulse
+from ensemblelab.compute.spectra import DEFAULT_ORDER, compute_trpes, contributions
+
+N_DELAYS, N_ENERGIES = 600, 300
+FWHM = 0.060832  # eV, a 30 fs probe
+E_MAX = 3.0
+
+
+def _best(fn, repeat: int = 3) -> float:
+    best = float("inf")
+    for _ in range(repeat):
+        t0 = time.perf_counter()
+        fn()
+        best = min(best, time.perf_counter() - t0)
+    return best
+
+
+def make_inputs(n: int, seed: int = 0):
+    """Synthetic contributions: time bin, kinetic energy (eV), weight."""
+    rng = np.random.default_rng(seed)
+    tbin = rng.integers(0, N_DELAYS, n)
+    energy = rng.uniform(0.05, E_MAX - 0.05, n)
+    weight = rng.uniform(0.0, 1.0, n)
+    return tbin, energy, weight
+
+
+def streaming_read(tbin, energy, weight) -> float:
+    return float(tbin.sum()) + float(energy.sum()) + float(weight.sum())
+
+
+def fast_map(tbin, energy, weight, *, order: int = DEFAULT_ORDER):
+    h = FWHM / 8.0
+    n_fine = int(E_MAX / h) + 2
+    hist = K.deposit_moments(tbin, energy, weight, n_time=N_DELAYS, e_lo=0.0, h=h,
+                             n_fine=n_fine, order=order)
+    e = np.linspace(0.0, E_MAX, N_ENERGIES)
+    b = K.energy_matrices(e, e_lo=0.0, h=h, n_fine=n_fine, fwhm=FWHM, order=order)
+    return K.assemble(hist, b, None)[0]
+
+
+def hist_filter_map(tbin, energy, weight):
+    from scipy.ndimage import gaussian_filter1d
+
+    de = E_MAX / N_ENERGIES
+    h, _, _ = np.histogram2d(tbin + 0.5, energy, bins=(N_DELAYS, N_ENERGIES),
+                             range=((0, N_DELAYS), (0.0, E_MAX)), weights=weight)
+    return gaussian_filter1d(h, FWHM / 2.354820045 / de, axis=1) / de
+
+
+def naive_time_per_stick(tbin, energy, weight, n_sub: int = 3000) -> float:
+    e = np.linspace(0.0, E_MAX, N_ENERGIES)
+    t = _best(lambda: R.pure_map_naive(tbin[:n_sub], None, energy[:n_sub], weight[:n_sub],
+                                       n_time=N_DELAYS, energies=e, fwhm=FWHM), repeat=1)
+    return t / n_sub
+
+
+def bench_assembly(n: int, *, repeat: int) -> dict[str, float]:
+    tbin, energy, weight = make_inputs(n)
+    rss0 = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    t_read = _best(lambda: streaming_read(tbin, energy, weight), repeat)
+    t_fast = _best(lambda: fast_map(tbin, energy, weight), repeat)
+    t_fast3 = _best(lambda: fast_map(tbin, energy, weight, order=3), repeat)
+    rss1 = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    t_hist = _best(lambda: hist_filter_map(tbin, energy, weight), 1)
+    t_naive = naive_time_per_stick(tbin, energy, weight) * n
+    return {"n": n, "read": t_read, "fast": t_fast, "fast3": t_fast3, "hist": t_hist,
+            "naive_scaled": t_naive, "extra_rss_mb": rss1 - rss0}
+
+
+def bench_rebroaden_and_contributions(n_contrib: int, *, repeat: int) -> dict[str, float]:
+    """An ensemble with ~n_contrib (snapshot, channel) contributions, 3 cation channels."""
+    from ensemblelab.data.ensemble import Ensemble
+
+    n_channels = 3
+    n_steps = N_DELAYS
+    n_traj = max(1, n_contrib // (n_steps * n_channels))
+    rng = np.random.default_rng(1)
+    n = n_traj * n_steps
+    t = np.tile(np.arange(n_steps, dtype=float), n_traj)
+    traj = np.repeat(np.arange(n_traj), n_steps)
+    hop = rng.exponential(150.0, n_traj)
+    active = np.where(t < hop[traj], 2, 1)
+    en = np.zeros((n, 3))
+    en[:, 1] = 3.0 + 0.2 * rng.standard_normal(n)
+    en[:, 2] = 4.0 + 0.2 * rng.standard_normal(n)
+    cat = 7.0 + np.array([0.0, 0.5, 1.0]) + 0.1 * rng.standard_normal((n, 3))
+    dy = rng.uniform(0.2, 1.0, (n, n_channels))
+    ens = Ensemble.from_arrays(traj=traj, time=t, active=active, geometries=np.zeros((n, 1, 3)),
+                               symbols=["H"], energies=en, cation_energies=cat, dyson=dy,
+                               copy=False)
+    probe = GaussianPulse(photon_energy=7.0, fwhm=30.0)
+    pump = GaussianPulse(photon_energy=4.0, fwhm=30.0)
+    energies = np.linspace(0.0, 4.0, N_ENERGIES)
+    delays = np.linspace(-100.0, 500.0, N_DELAYS)
+    t0 = time.perf_counter()
+    m = compute_trpes(ens, probe=probe, pump=pump, energies=energies, delays=delays,
+                      progress=False)
+    t_first = time.perf_counter() - t0
+    model = m._model  # cached sticks and moments
+    n_sticks = model.sticks.n_sticks
+    probe2 = GaussianPulse(photon_energy=7.0, fwhm=40.0)
+    t_re = _best(lambda: model.broaden(energies=energies, delays=delays, probe=probe2, pump=pump,
+                                       resolution=0.05), repeat)
+    kw = dict(energy_range=(1.0, 1.6), delay_range=(50.0, 150.0))
+    contributions(ens, m, **kw)  # first call sorts the sticks once (cached)
+    t_c = _best(lambda: contributions(ens, m, **kw), repeat)
+    return {"n_sticks": n_sticks, "first_map": t_first, "rebroaden": t_re, "contrib": t_c}
+
+
+def main(argv: list[str] | None = None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--quick", action="store_true", help="tiny sizes (smoke run)")
+    ap.add_argument("--sizes", nargs="*", type=float, default=None)
+    args = ap.parse_args(argv)
+    sizes = [int(s) for s in (args.sizes or ([2e4] if args.quick else [1e7, 1e8]))]
+    repeat = 1 if args.quick else 3
+    print(f"TRPES benchmark (map {N_DELAYS} x {N_ENERGIES}; fast kernel order "
+          f"{DEFAULT_ORDER}, 8 bins per FWHM)")
+    for n in sizes:
+        r = bench_assembly(n, repeat=repeat if n <= 10**7 else 1)
+        print(f"\nassembly from {n:.0e} contributions:")
+        print(f"  throughput vs streaming read       : {r['read'] / r['fast']:.3f} "
+              f"(order 3: {r['read'] / r['fast3']:.3f}; goal >= 0.25)")
+        print(f"  speed-up vs histogram2d+filter     : {r['hist'] / r['fast']:.1f}x "
+              f"(order 3: {r['hist'] / r['fast3']:.1f}x; goal >= 20x)")
+        print(f"  speed-up vs naive per-contribution : {r['naive_scaled'] / r['fast']:.0f}x "
+              f"(goal >= 500x; naive timed on 3000 and scaled)")
+        print(f"  extra peak memory of the kernels   : {r['extra_rss_mb']:.0f} MB (chunked)")
+    n_c = 2 * 10**4 if args.quick else 10**7
+    r = bench_rebroaden_and_contributions(n_c, repeat=repeat)
+    print(f"\nensemble with {r['n_sticks']:.2e} open (snapshot, channel) contributions:")
+    print(f"  first map (sticks + moments + map) : {r['first_map'] * 1e3:.0f} ms")
+    print(f"  re-broaden 600 x 300, new width    : {r['rebroaden'] * 1e3:.1f} ms (goal <= 50 ms)")
+    print(f"  contributions for a band region    : {r['contrib'] * 1e3:.1f} ms (goal <= 100 ms)")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
