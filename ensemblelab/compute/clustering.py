@@ -10,7 +10,8 @@ clustering estimator. Defaults scale from 10^3 to 10^6 snapshots:
 * estimators with ``predict`` (k-means, mini-batch k-means, Gaussian mixtures) then
   label every snapshot chunk by chunk; estimators without it (HDBSCAN, DBSCAN,
   agglomerative) keep their own labels on the subsample and the rest is assigned to
-  the nearest cluster centroid (noise stays noise only inside the subsample);
+  its nearest fitted neighbour (``assign="neighbour"``, default; noise neighbours
+  give noise) or to the nearest cluster centroid (``assign="centroid"``, faster);
 * features are computed chunk by chunk and never held for all snapshots at once.
 
 :func:`cluster_hops` does the same for the geometries at every surface hop.
@@ -208,7 +209,7 @@ def _set_k(est: BaseEstimator, k: int) -> BaseEstimator:
 
 
 def _fit_group(rows: np.ndarray, fz: _Featuriser, est: BaseEstimator, k: int,
-               max_fit: int, chunk: int, rng: np.random.Generator
+               max_fit: int, chunk: int, rng: np.random.Generator, assign: str = "neighbour"
                ) -> tuple[np.ndarray, np.ndarray | None]:
     """Labels (local 0..K-1, -1 noise) for `rows`, and centroids (K, n_features)."""
     n = len(rows)
@@ -237,12 +238,22 @@ def _fit_group(rows: np.ndarray, fz: _Featuriser, est: BaseEstimator, k: int,
         return labels, None
     cent = np.stack([Ffit[fit_labels == c].mean(0) for c in uniq])
     if len(fit_pos) < n and not hasattr(est, "predict"):
-        from sklearn.metrics import pairwise_distances_argmin
-
         rest = np.setdiff1d(np.arange(n), fit_pos)
+        if assign == "centroid":
+            from sklearn.metrics import pairwise_distances_argmin
+
+            def lab_of(F: np.ndarray) -> np.ndarray:
+                return np.asarray(uniq)[pairwise_distances_argmin(F, cent)]
+        else:
+            from sklearn.neighbors import KNeighborsClassifier
+
+            knn = KNeighborsClassifier(n_neighbors=1).fit(Ffit, fit_labels)
+
+            def lab_of(F: np.ndarray) -> np.ndarray:
+                return knn.predict(F)
         for s in range(0, len(rest), chunk):
             part = rest[s:s + chunk]
-            labels[part] = np.asarray(uniq)[pairwise_distances_argmin(fz(rows[part]), cent)]
+            labels[part] = lab_of(fz(rows[part]))
     sizes = np.array([np.sum(labels == c) for c in uniq])
     order = np.argsort(-sizes, kind="stable")
     remap = {uniq[o]: i for i, o in enumerate(order)}
@@ -382,6 +393,7 @@ def cluster_snapshots(
     method: Literal["kmeans", "density", "agglomerative"] = "kmeans",
     standardise: bool = True,
     max_fit_samples: int = 50000,
+    assign: Literal["neighbour", "centroid"] = "neighbour",
     silhouette_samples: int = 2000,
     chunk_size: int = 65536,
     random_state: int = 0,
@@ -407,12 +419,14 @@ def cluster_snapshots(
         Clusters per group (ignored by density-based estimators).
     method : {"kmeans", "density", "agglomerative"}
         Default estimator: k-means (mini-batch above 10^4 fitted samples), HDBSCAN,
-        or Ward agglomerative (fitted on the subsample, the rest assigned to the
-        nearest centroid).
+        or Ward agglomerative (fitted on the subsample, the rest assigned by `assign`).
     standardise : bool
         Scale features to zero mean and unit variance before clustering.
     max_fit_samples : int
         Largest subsample per group the estimator is fitted on.
+    assign : {"neighbour", "centroid"}
+        How snapshots outside the subsample get labels from estimators without
+        ``predict``: label of the nearest fitted snapshot, or nearest cluster mean.
     silhouette_samples : int
         Subsample size per group for the silhouette score.
     chunk_size : int
@@ -472,7 +486,9 @@ def cluster_snapshots(
             method, k, min(len(rows), max_fit_samples), random_state)
         if "random_state" in est.get_params(deep=False) and estimator is None:
             est.set_params(random_state=random_state)
-        local, _ = _fit_group(rows, fz, est, k, max_fit_samples, chunk_size, rng)
+        if assign not in ("neighbour", "centroid"):
+            raise SchemaError(f"assign must be 'neighbour' or 'centroid'; got {assign!r}.")
+        local, _ = _fit_group(rows, fz, est, k, max_fit_samples, chunk_size, rng, assign)
         prefix = f"{ens.state_labels[state]}:" if state >= 0 else ""
         # silhouette and medoids on a subsample of the group
         sub = np.arange(len(rows))

@@ -443,7 +443,7 @@ def _topology(ens: Ensemble, th: OutlierThresholds, tix: np.ndarray, time: np.nd
                 t = time[s + loc]
                 flags.add(int(traj_row), "topology_change", t,
                           f"bond {a}-{b} ({sym[a]}-{sym[b]}) {word} at {_fmt(t)} fs "
-                          f"({r[loc, p]:.2f} Angstrom; t=0: {r0[loc, p]:.2f} Angstrom)")
+                          f"({r[loc, p]:.2f} Angstrom, {r0[loc, p]:.2f} Angstrom at t=0)")
 
 
 def _multivariate(ens: Ensemble, tix: np.ndarray, starts: np.ndarray, max_drift: np.ndarray,

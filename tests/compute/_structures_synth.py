@@ -28,8 +28,8 @@ def make_clean(n_traj=30, *, n_steps=81, dt=0.5, seed=0, groups=None, spread=0.0
         shapes = []
         for g in range(int(np.max(groups)) + 1):
             s = BASE.copy()
-            s[3, 1] += 0.6 * g          # move the H around (planted structural groups)
-            s[2, 2] += 0.4 * (g % 2)
+            s[3, 1] += 0.8 * g          # move the H around (planted structural groups)
+            s[2, 2] += 0.8 * (g % 2)
             shapes.append(s)
     for k in range(n_traj):
         shape = shapes[0 if groups is None else int(groups[k])]
