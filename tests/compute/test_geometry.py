@@ -179,3 +179,18 @@ def test_input_not_modified():
     kabsch_align(X)
     rmsd(X, X[0])
     np.testing.assert_array_equal(X, before)
+
+
+def test_benchmark_smoke():
+    # the benchmark's functions run at tiny size (keeps benchmarks/bench_structures.py alive)
+    import importlib.util
+    from pathlib import Path
+
+    path = Path(__file__).resolve().parents[2] / "benchmarks" / "bench_structures.py"
+    spec = importlib.util.spec_from_file_location("bench_structures", path)
+    mod = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(mod)
+    r = mod.bench_rmsd(300, loop_frames=50)
+    assert r["max_abs_diff"] < 1e-10 and r["speedup_qcp"] > 0
+    c = mod.bench_clustering(2000)
+    assert c["n_snapshots"] == 2000 and c["n_clusters"] >= 2
