@@ -96,7 +96,8 @@ def main() -> None:
           f"speed-up vs loop {r['speedup_qcp']:.0f}x (goal >= 50x)")
     print(f"  Kabsch {r['t_kabsch']:.3f} s  {r['fps_kabsch']:.3g} frames/s  "
           f"speed-up vs loop {r['speedup_kabsch']:.0f}x")
-    print(f"  loop   {r['t_loop_scaled']:.1f} s (scaled); max |difference| {r['max_abs_diff']:.1e} A")
+    print(f"  loop   {r['t_loop_scaled']:.1f} s (scaled); "
+          f"max |difference| {r['max_abs_diff']:.1e} A")
     c = bench_clustering(n_clu)
     print(f"cluster_snapshots, {c['n_snapshots']} snapshots x 12 atoms, by state, mini-batch "
           f"k-means: {c['t_cluster']:.1f} s (goal < 60 s for 10^6 on 2 cores); "
