@@ -1,0 +1,641 @@
+"""Initial conditions: Wigner sampling of harmonic normal modes and doorway selection.
+
+Wigner sampling (method notes section 5): every vibrational mode of frequency
+omega is a harmonic oscillator whose Wigner function is a Gaussian in the
+mass-weighted normal coordinate Q and its momentum P with
+
+    <Q^2> = hbar / (2 omega) * alpha,   <P^2> = hbar omega / 2 * alpha,
+    alpha = coth(hbar omega / (2 k_B T))   (alpha = 1 at T = 0).
+
+Cartesian positions and velocities follow from ``x = x_eq + M^-1/2 L Q`` and
+``v = M^-1/2 L P``. Internally Hartree atomic units; positions come out in
+Angstrom and velocities in Angstrom/fs.
+
+Doorway selection for a Gaussian pump (method notes section 1.2): the weight of
+sample n on excited state i is ``w_ni = |mu_0i|^2 I_pu(hbar omega_pu - dE_0i)`` with
+the peak-normalised spectral intensity ``I_pu(x) = exp(-4 ln2 x^2 / Gamma^2)``,
+``Gamma = 4 ln2 hbar / T`` (T the temporal intensity FWHM). Given oscillator
+strengths, ``|mu|^2 = 3 f / (2 dE)`` (atomic units), i.e. the weight carries 1/dE.
+"""
+
+from __future__ import annotations
+
+import gzip
+import io
+import math
+import os
+import tempfile
+import warnings
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import numpy.typing as npt
+import pandas as pd
+
+from ..data.elements import masses_for
+from ..errors import NumericalWarning, SchemaError
+from ..units import (
+    AMU_ME,
+    AU_TIME_FS,
+    BOHR_ANGSTROM,
+    FOUR_LN2,
+    HARTREE_CM1,
+    HARTREE_EV,
+    HBAR_EV_FS,
+    KB_EV,
+)
+
+__all__ = [
+    "WignerSample",
+    "thermal_factor",
+    "sample_normal_modes",
+    "sample_wigner",
+    "normal_modes_from_hessian",
+    "sample_wigner_from_hessian",
+    "doorway_weights",
+    "select_initial_conditions",
+    "write_initial_conditions",
+]
+
+#: velocity: one bohr per atomic time unit in Angstrom/fs
+_AU_VEL = BOHR_ANGSTROM / AU_TIME_FS
+
+
+def _rng(random_state: Any) -> np.random.Generator:
+    if isinstance(random_state, np.random.Generator):
+        return random_state
+    return np.random.default_rng(random_state)
+
+
+def thermal_factor(frequencies: npt.ArrayLike, temperature: float = 0.0) -> np.ndarray:
+    """``alpha = coth(hbar omega / (2 k_B T))`` (1 at T = 0).
+
+    Parameters
+    ----------
+    frequencies : array_like
+        Harmonic wavenumbers in cm^-1 (> 0).
+    temperature : float
+        Temperature in K (>= 0).
+
+    Returns
+    -------
+    ndarray
+        The factor that multiplies both Wigner variances of each mode.
+
+    Examples
+    --------
+    >>> round(float(thermal_factor([1000.0], 300.0)[0]), 6)
+    1.016664
+    """
+    w = np.asarray(frequencies, dtype=float)
+    if temperature < 0:
+        raise SchemaError(f"temperature must be >= 0 K; got {temperature}.")
+    if temperature == 0:
+        return np.ones_like(w)
+    x = (w / HARTREE_CM1 * HARTREE_EV) / (2.0 * KB_EV * temperature)
+    return 1.0 / np.tanh(x)
+
+
+def sample_normal_modes(
+    omega: npt.ArrayLike,
+    *,
+    n_samples: int,
+    temperature: float = 0.0,
+    random_state: Any = None,
+) -> tuple[np.ndarray, np.ndarray]:
+    """Draw (Q, P) of independent harmonic modes from their Wigner distribution.
+
+    Parameters
+    ----------
+    omega : array_like, shape (n_modes,)
+        Angular frequencies in hartree (hbar = 1).
+    n_samples : int
+    temperature : float
+        Kelvin; the variances carry ``coth(omega / 2 k_B T)``.
+    random_state : int or Generator, optional
+
+    Returns
+    -------
+    Q, P : ndarray, shape (n_samples, n_modes)
+        Mass-weighted coordinates and momenta in atomic units
+        (``<Q^2> = alpha / (2 omega)``, ``<P^2> = alpha omega / 2``).
+    """
+    w = np.asarray(omega, dtype=float)
+    if np.any(w <= 0):
+        raise SchemaError(f"omega must be > 0; got {w[w <= 0][:5]}.")
+    alpha = thermal_factor(w * HARTREE_CM1, temperature)
+    rng = _rng(random_state)
+    xi = rng.standard_normal((int(n_samples), w.size))
+    eta = rng.standard_normal((int(n_samples), w.size))
+    return xi * np.sqrt(alpha / (2 * w)), eta * np.sqrt(alpha * w / 2)
+
+
+@dataclass(frozen=True)
+class WignerSample:
+    """Wigner-sampled geometries and velocities.
+
+    Attributes
+    ----------
+    positions : ndarray, shape (n_samples, n_atoms, 3)
+        Angstrom.
+    velocities : ndarray, shape (n_samples, n_atoms, 3)
+        Angstrom/fs.
+    symbols : tuple of str
+    masses : ndarray, shape (n_atoms,)
+        amu.
+    frequencies : ndarray, shape (n_modes,)
+        Wavenumbers (cm^-1) of the sampled modes.
+    Q, P : ndarray, shape (n_samples, n_modes)
+        Mass-weighted normal coordinates and momenta (atomic units).
+    temperature : float
+        K.
+    soft_modes : DataFrame
+        Modes that were not sampled (``mode``, ``frequency`` in cm^-1 with imaginary
+        ones negative, ``reason``).
+    """
+
+    positions: np.ndarray
+    velocities: np.ndarray
+    symbols: tuple[str, ...]
+    masses: np.ndarray
+    frequencies: np.ndarray
+    Q: np.ndarray
+    P: np.ndarray
+    temperature: float = 0.0
+    soft_modes: pd.DataFrame = field(default_factory=lambda: pd.DataFrame(
+        {"mode": [], "frequency": [], "reason": []}))
+
+    @property
+    def n_samples(self) -> int:
+        """Number of samples."""
+        return self.positions.shape[0]
+
+    def mode_energies(self) -> np.ndarray:
+        """Harmonic energy of every mode and sample in eV, shape (n_samples, n_modes)."""
+        w = self.frequencies / HARTREE_CM1
+        return 0.5 * (self.P**2 + (w * self.Q) ** 2) * HARTREE_EV
+
+    def to_frame(self) -> pd.DataFrame:
+        """One row per sample: ``sample``, ``e_vib`` (eV), ``e_kin`` (eV)."""
+        e_kin = 0.5 * np.sum(self.P**2, axis=1) * HARTREE_EV
+        return pd.DataFrame({"sample": np.arange(self.n_samples),
+                             "e_vib": self.mode_energies().sum(axis=1), "e_kin": e_kin})
+
+
+def sample_wigner(
+    *,
+    frequencies: npt.ArrayLike,
+    normal_modes: npt.ArrayLike,
+    equilibrium: npt.ArrayLike,
+    n_samples: int,
+    symbols: Sequence[str] | None = None,
+    masses: npt.ArrayLike | None = None,
+    temperature: float = 0.0,
+    mode_kind: str = "mass-weighted",
+    random_state: Any = None,
+) -> WignerSample:
+    """Wigner-sample Cartesian geometries and velocities from harmonic normal modes.
+
+    Parameters
+    ----------
+    frequencies : array_like, shape (n_modes,)
+        Harmonic wavenumbers in cm^-1 (> 0; drop soft/imaginary modes first, or use
+        :func:`sample_wigner_from_hessian`).
+    normal_modes : array_like, shape (n_modes, n_atoms, 3)
+        Mass-weighted orthonormal normal modes L (``mode_kind="mass-weighted"``), or
+        Cartesian displacement vectors (``mode_kind="cartesian"``), which are turned
+        into mass-weighted ones by ``L ~ M^1/2 x`` and renormalised.
+    equilibrium : array_like, shape (n_atoms, 3)
+        Reference geometry in Angstrom.
+    n_samples : int
+    symbols : sequence of str, optional
+        Element symbols (masses default from them).
+    masses : array_like, shape (n_atoms,), optional
+        Masses in amu.
+    temperature : float
+        Kelvin (0: ground state).
+    mode_kind : {"mass-weighted", "cartesian"}
+    random_state : int or Generator, optional
+
+    Returns
+    -------
+    WignerSample
+
+    Examples
+    --------
+    >>> s = sample_wigner(frequencies=[1000.0], normal_modes=[[[1.0, 0, 0]]],
+    ...                   equilibrium=[[0.0, 0, 0]], masses=[1.0], symbols=["H"],
+    ...                   n_samples=3, random_state=0)
+    >>> s.positions.shape
+    (3, 1, 3)
+    """
+    w = np.atleast_1d(np.asarray(frequencies, dtype=float))
+    modes = np.asarray(normal_modes, dtype=float)
+    x_eq = np.asarray(equilibrium, dtype=float)
+    if x_eq.ndim != 2 or x_eq.shape[1] != 3:
+        raise SchemaError(f"equilibrium must have shape (n_atoms, 3); got {x_eq.shape}.")
+    n_atoms = x_eq.shape[0]
+    if modes.shape != (w.size, n_atoms, 3):
+        raise SchemaError(
+            f"normal_modes must have shape (n_modes={w.size}, n_atoms={n_atoms}, 3); got "
+            f"{modes.shape}."
+        )
+    if np.any(~np.isfinite(w)) or np.any(w <= 0):
+        raise SchemaError(
+            f"frequencies must be finite and > 0 cm^-1; got {w[~(w > 0)][:5]}. Hint: drop "
+            "imaginary or soft modes, or use sample_wigner_from_hessian."
+        )
+    if symbols is None and masses is None:
+        raise SchemaError("pass symbols or masses (amu) of the atoms.")
+    m_amu = masses_for(list(symbols)) if masses is None else np.asarray(masses, dtype=float)
+    if m_amu.shape != (n_atoms,):
+        raise SchemaError(f"masses must have shape (n_atoms={n_atoms},); got {m_amu.shape}.")
+    symbols_t = tuple(symbols) if symbols is not None else tuple("X" * n_atoms)
+    m3 = np.repeat(m_amu * AMU_ME, 3)  # electron masses per Cartesian component
+    lmat = modes.reshape(w.size, -1)
+    if mode_kind == "cartesian":
+        lmat = lmat * np.sqrt(m3)
+        lmat /= np.linalg.norm(lmat, axis=1, keepdims=True)
+    elif mode_kind != "mass-weighted":
+        raise SchemaError(f"mode_kind must be 'mass-weighted' or 'cartesian'; got {mode_kind!r}.")
+    gram = lmat @ lmat.T
+    if not np.allclose(gram, np.eye(w.size), atol=1e-6):
+        raise SchemaError(
+            "mass-weighted normal_modes must be orthonormal (L L^T = 1); largest deviation "
+            f"{np.abs(gram - np.eye(w.size)).max():.3g}. Hint: pass mode_kind='cartesian' for "
+            "Cartesian displacement vectors."
+        )
+    omega = w / HARTREE_CM1
+    qq, pp = sample_normal_modes(omega, n_samples=n_samples, temperature=temperature,
+                                 random_state=random_state)
+    dx = (qq @ lmat) / np.sqrt(m3) * BOHR_ANGSTROM
+    dv = (pp @ lmat) / np.sqrt(m3) * _AU_VEL
+    return WignerSample(
+        positions=x_eq[None] + dx.reshape(-1, n_atoms, 3),
+        velocities=dv.reshape(-1, n_atoms, 3),
+        symbols=symbols_t,
+        masses=m_amu,
+        frequencies=w,
+        Q=qq,
+        P=pp,
+        temperature=float(temperature),
+    )
+
+
+def _rigid_basis(x_bohr: np.ndarray, m3: np.ndarray) -> np.ndarray:
+    """Orthonormal mass-weighted basis of translations and rotations (columns)."""
+    n = x_bohr.shape[0]
+    mass = m3[::3]
+    com = (mass[:, None] * x_bohr).sum(0) / mass.sum()
+    r = x_bohr - com
+    vecs = []
+    for k in range(3):
+        t = np.zeros((n, 3))
+        t[:, k] = 1.0
+        vecs.append(t)
+    for k in range(3):
+        axis = np.zeros(3)
+        axis[k] = 1.0
+        vecs.append(np.cross(axis, r))
+    b = np.array([v.reshape(-1) * np.sqrt(m3) for v in vecs]).T  # (3n, 6)
+    uu, ss, _ = np.linalg.svd(b, full_matrices=False)
+    rank = int(np.sum(ss > 1e-6 * ss.max()))
+    return uu[:, :rank]
+
+
+def normal_modes_from_hessian(
+    hessian: npt.ArrayLike,
+    *,
+    equilibrium: npt.ArrayLike,
+    symbols: Sequence[str] | None = None,
+    masses: npt.ArrayLike | None = None,
+) -> tuple[np.ndarray, np.ndarray, int]:
+    """Harmonic frequencies and mass-weighted normal modes from a Cartesian Hessian.
+
+    Translations and rotations (6, or 5 for a linear molecule, found from the
+    geometry) are projected out exactly before diagonalising.
+
+    Parameters
+    ----------
+    hessian : array_like, shape (3 n_atoms, 3 n_atoms)
+        Cartesian Hessian in hartree / bohr^2.
+    equilibrium : array_like, shape (n_atoms, 3)
+        Geometry in Angstrom.
+    symbols, masses : optional
+        Element symbols or masses (amu).
+
+    Returns
+    -------
+    frequencies : ndarray, shape (n_vib,)
+        Wavenumbers in cm^-1, ascending; imaginary modes are returned negative.
+    modes : ndarray, shape (n_vib, n_atoms, 3)
+        Mass-weighted orthonormal normal modes.
+    n_rigid : int
+        Number of projected translations and rotations (6 or 5).
+    """
+    x_eq = np.asarray(equilibrium, dtype=float)
+    n_atoms = x_eq.shape[0]
+    h = np.asarray(hessian, dtype=float)
+    if h.shape != (3 * n_atoms, 3 * n_atoms):
+        raise SchemaError(
+            f"hessian must have shape (3 n_atoms, 3 n_atoms) = {(3 * n_atoms,) * 2}; got {h.shape}."
+        )
+    if symbols is None and masses is None:
+        raise SchemaError("pass symbols or masses (amu) of the atoms.")
+    m_amu = masses_for(list(symbols)) if masses is None else np.asarray(masses, dtype=float)
+    m3 = np.repeat(m_amu * AMU_ME, 3)
+    hmw = 0.5 * (h + h.T) / np.sqrt(np.outer(m3, m3))
+    rigid = _rigid_basis(x_eq / BOHR_ANGSTROM, m3)
+    # orthonormal complement of the rigid-body space
+    full, _, _ = np.linalg.svd(np.eye(3 * n_atoms) - rigid @ rigid.T)
+    comp = full[:, : 3 * n_atoms - rigid.shape[1]]
+    lam, vec = np.linalg.eigh(comp.T @ hmw @ comp)
+    lmat = (comp @ vec).T  # (n_vib, 3n)
+    freq = np.sign(lam) * np.sqrt(np.abs(lam)) * HARTREE_CM1
+    return freq, lmat.reshape(-1, n_atoms, 3), int(rigid.shape[1])
+
+
+def sample_wigner_from_hessian(
+    hessian: npt.ArrayLike,
+    *,
+    equilibrium: npt.ArrayLike,
+    n_samples: int,
+    symbols: Sequence[str] | None = None,
+    masses: npt.ArrayLike | None = None,
+    temperature: float = 0.0,
+    soft_threshold: float = 50.0,
+    random_state: Any = None,
+) -> WignerSample:
+    """Wigner-sample from a Cartesian Hessian (translations/rotations removed).
+
+    Imaginary modes and modes softer than `soft_threshold` are not sampled; they
+    are listed in ``WignerSample.soft_modes`` and reported by a NumericalWarning
+    (common practice: exclude them, method notes section 5).
+
+    Parameters
+    ----------
+    hessian : array_like, shape (3 n_atoms, 3 n_atoms)
+        Hartree / bohr^2.
+    equilibrium : array_like, shape (n_atoms, 3)
+        Angstrom.
+    n_samples : int
+    symbols, masses : optional
+    temperature : float
+        Kelvin.
+    soft_threshold : float
+        cm^-1; default 50.
+    random_state : int or Generator, optional
+
+    Returns
+    -------
+    WignerSample
+    """
+    freq, modes, _ = normal_modes_from_hessian(hessian, equilibrium=equilibrium,
+                                               symbols=symbols, masses=masses)
+    keep = freq >= soft_threshold
+    if not np.all(keep):
+        bad = np.flatnonzero(~keep)
+        reason = np.where(freq[bad] < 0, "imaginary", "soft")
+        warnings.warn(
+            f"{bad.size} mode(s) not sampled: {', '.join(f'{f:.1f}' for f in freq[bad])} cm^-1 "
+            f"(imaginary shown negative; threshold {soft_threshold} cm^-1). See "
+            "WignerSample.soft_modes.",
+            NumericalWarning,
+            stacklevel=2,
+        )
+    else:
+        bad = np.zeros(0, dtype=int)
+        reason = np.zeros(0, dtype=str)
+    sample = sample_wigner(frequencies=freq[keep], normal_modes=modes[keep],
+                           equilibrium=equilibrium, n_samples=n_samples, symbols=symbols,
+                           masses=masses, temperature=temperature, random_state=random_state)
+    soft = pd.DataFrame({"mode": bad, "frequency": freq[bad], "reason": reason})
+    return WignerSample(**{**sample.__dict__, "soft_modes": soft})
+
+
+# ---------------------------------------------------------------------------- doorway
+def _pump_parameters(pump: Any, photon_energy: float | None, fwhm: float | None
+                     ) -> tuple[float, float]:
+    if pump is not None:
+        if not (hasattr(pump, "photon_energy") and hasattr(pump, "fwhm")):
+            raise SchemaError(
+                "pump must have photon_energy (eV) and fwhm (fs) attributes, e.g. "
+                "GaussianPulse(photon_energy=4.8, fwhm=20.0)."
+            )
+        photon_energy, fwhm = float(pump.photon_energy), float(pump.fwhm)
+    if photon_energy is None or fwhm is None:
+        raise SchemaError(
+            "pass pump=GaussianPulse(...) or both photon_energy= (eV) and fwhm= (fs)."
+        )
+    if not (fwhm > 0 and math.isfinite(fwhm)):
+        raise SchemaError(f"The pump 'fwhm' must be > 0 fs; got {fwhm}.")
+    return float(photon_energy), float(fwhm)
+
+
+def doorway_weights(
+    table: pd.DataFrame,
+    *,
+    pump: Any = None,
+    photon_energy: float | None = None,
+    fwhm: float | None = None,
+) -> pd.DataFrame:
+    """Doorway weights of every (sample, excited state) pair for a Gaussian pump.
+
+    Parameters
+    ----------
+    table : DataFrame
+        Tidy table, one row per (sample, state): ``sample``, ``state``,
+        ``excitation_energy`` (eV), and either ``mu2`` (|mu_0i|^2 in e^2 bohr^2) or
+        ``oscillator_strength``. Rows with ``state == 0`` are ignored.
+    pump : GaussianPulse-like, optional
+        Any object with ``photon_energy`` (eV) and ``fwhm`` (fs, intensity FWHM).
+    photon_energy, fwhm : float, optional
+        The same as plain numbers.
+
+    Returns
+    -------
+    DataFrame
+        The input columns plus ``mu2`` (derived from f as ``3 f / (2 dE)`` when
+        needed), ``spectral`` (peak-normalised pump spectral intensity at the
+        detuning) and ``weight`` (``mu2 * spectral``). The input is not modified.
+
+    Examples
+    --------
+    >>> t = pd.DataFrame({"sample": [0, 0], "state": [1, 2],
+    ...                   "excitation_energy": [4.0, 4.3], "mu2": [1.0, 0.5]})
+    >>> w = doorway_weights(t, photon_energy=4.1, fwhm=20.0)
+    >>> [round(x, 7) for x in w["weight"]]
+    [0.0357934, 8e-07]
+    """
+    e_pu, t_pu = _pump_parameters(pump, photon_energy, fwhm)
+    if not isinstance(table, pd.DataFrame):
+        raise SchemaError(f"table must be a pandas DataFrame; got {type(table).__name__}.")
+    missing = [c for c in ("sample", "state", "excitation_energy") if c not in table.columns]
+    if missing:
+        raise SchemaError(
+            f"table is missing column(s) {missing}; found {list(table.columns)}. It needs "
+            "sample, state, excitation_energy (eV) and mu2 or oscillator_strength."
+        )
+    out = table.loc[table["state"] != 0].copy().reset_index(drop=True)
+    de = out["excitation_energy"].to_numpy(float)
+    if "mu2" in out.columns:
+        mu2 = out["mu2"].to_numpy(float)
+    elif "oscillator_strength" in out.columns:
+        if np.any(de <= 0):
+            raise SchemaError("excitation_energy must be > 0 eV to convert oscillator strengths.")
+        mu2 = 1.5 * out["oscillator_strength"].to_numpy(float) / (de / HARTREE_EV)
+        out["mu2"] = mu2
+    else:
+        raise SchemaError(
+            "table needs a 'mu2' (|mu_0i|^2, e^2 bohr^2) or an 'oscillator_strength' column; "
+            f"found {list(table.columns)}."
+        )
+    if np.any(mu2 < 0) or not np.all(np.isfinite(mu2)) or not np.all(np.isfinite(de)):
+        raise SchemaError("mu2 / oscillator strengths must be finite and >= 0, energies finite.")
+    gamma = FOUR_LN2 * HBAR_EV_FS / t_pu
+    out["spectral"] = np.exp(-FOUR_LN2 * (e_pu - de) ** 2 / gamma**2)
+    out["weight"] = mu2 * out["spectral"].to_numpy()
+    return out
+
+
+def select_initial_conditions(
+    table: pd.DataFrame,
+    *,
+    pump: Any = None,
+    photon_energy: float | None = None,
+    fwhm: float | None = None,
+    method: str = "rejection",
+    epsilon: float = 1e-3,
+    n_select: int | None = None,
+    random_state: Any = None,
+) -> pd.DataFrame:
+    """Choose which (sample, state) pairs to launch for a Gaussian pump.
+
+    Parameters
+    ----------
+    table : DataFrame
+        As for :func:`doorway_weights`.
+    pump, photon_energy, fwhm
+        The pump pulse (see :func:`doorway_weights`).
+    method : {"rejection", "weights"}
+        ``"rejection"``: accept pair (n, i) if ``xi < w_ni / w_max`` (xi uniform);
+        accepted pairs get weight 1. ``"weights"``: keep every pair with
+        ``w_ni > epsilon * w_max`` and carry ``w_ni / w_max`` as its weight (method
+        notes section 1.2; epsilon = 1e-3 is common practice).
+    epsilon : float
+        Threshold of the weights method.
+    n_select : int, optional
+        Rejection only: stop after this many accepted pairs (in table order).
+    random_state : int or Generator, optional
+
+    Returns
+    -------
+    DataFrame
+        One row per launched pair: ``sample``, ``state``, ``excitation_energy``,
+        ``mu2``, ``spectral``, ``doorway`` (w_ni / w_max) and ``weight``.
+    """
+    w = doorway_weights(table, pump=pump, photon_energy=photon_energy, fwhm=fwhm)
+    w_max = float(w["weight"].max()) if len(w) else 0.0
+    if not w_max > 0:
+        raise SchemaError(
+            "every doorway weight is zero: no state is bright within the pump bandwidth. "
+            "Hint: check photon_energy, the excitation energies (eV) and the dipoles."
+        )
+    w["doorway"] = w["weight"] / w_max
+    if method == "rejection":
+        xi = _rng(random_state).random(len(w))
+        keep = xi < w["doorway"].to_numpy()
+        sel = w.loc[keep].copy()
+        if n_select is not None:
+            if len(sel) < n_select:
+                warnings.warn(
+                    f"only {len(sel)} of the requested {n_select} pairs were accepted; "
+                    "sample more geometries.", NumericalWarning, stacklevel=2)
+            sel = sel.iloc[: int(n_select)]
+        sel["weight"] = 1.0
+    elif method == "weights":
+        if not 0 <= epsilon < 1:
+            raise SchemaError(f"epsilon must be in [0, 1); got {epsilon}.")
+        sel = w.loc[w["doorway"] > epsilon].copy()
+        sel["weight"] = sel["doorway"]
+    else:
+        raise SchemaError(f"method must be 'rejection' or 'weights'; got {method!r}.")
+    return sel.reset_index(drop=True)
+
+
+def _atomic_write_bytes(path: Path, data: bytes) -> None:
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", dir=path.parent)
+    try:
+        with os.fdopen(fd, "wb") as fh:
+            fh.write(data)
+        os.replace(tmp, path)
+    except BaseException:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+        raise
+
+
+def write_initial_conditions(
+    path: str | os.PathLike,
+    sample: WignerSample,
+    selection: pd.DataFrame | None = None,
+    *,
+    overwrite: bool = False,
+    precision: int = 8,
+) -> Path:
+    """Write initial conditions as an extended-XYZ file (atomic write).
+
+    One frame per selected (sample, state) pair, with positions (Angstrom) and
+    velocities (Angstrom/fs) as ``Properties=species:S:1:pos:R:3:vel:R:3`` and the
+    pair's ``sample``, ``state``, ``weight`` and ``excitation_energy`` on the
+    comment line. A name ending in ``.gz`` is gzip-compressed (mtime 0, so the
+    bytes are reproducible).
+
+    Parameters
+    ----------
+    path : path-like
+    sample : WignerSample
+    selection : DataFrame, optional
+        Output of :func:`select_initial_conditions`; default every sample, state 0.
+    overwrite : bool
+        Replace an existing file.
+    precision : int
+        Decimals written.
+
+    Returns
+    -------
+    Path
+    """
+    path = Path(path)
+    if path.exists() and not overwrite:
+        raise FileExistsError(f"{path} exists; pass overwrite=True to replace it.")
+    if selection is None:
+        selection = pd.DataFrame({"sample": np.arange(sample.n_samples), "state": 0,
+                                  "weight": 1.0})
+    buf = io.StringIO()
+    fmt = f"{{:.{precision}f}}"
+    n_atoms = len(sample.symbols)
+    for row in selection.itertuples(index=False):
+        n = int(row.sample)
+        extra = [f"sample={n}", f"state={int(row.state)}",
+                 f"weight={float(getattr(row, 'weight', 1.0)):.10g}"]
+        if hasattr(row, "excitation_energy"):
+            extra.append(f"excitation_energy={float(row.excitation_energy):.10g}")
+        buf.write(f"{n_atoms}\n")
+        buf.write('Properties=species:S:1:pos:R:3:vel:R:3 units="Angstrom,Angstrom/fs" '
+                  + " ".join(extra) + "\n")
+        for sym, x, v in zip(sample.symbols, sample.positions[n], sample.velocities[n],
+                             strict=True):
+            buf.write(sym + " " + " ".join(fmt.format(c) for c in (*x, *v)) + "\n")
+    data = buf.getvalue().encode()
+    if path.name.endswith(".gz"):
+        raw = io.BytesIO()
+        with gzip.GzipFile(filename="", mode="wb", fileobj=raw, mtime=0) as gz:
+            gz.write(data)
+        data = raw.getvalue()
+    _atomic_write_bytes(path, data)
+    return path
