@@ -106,7 +106,11 @@ class SelectionModel(HasTraits):
         super().__init__(ens=ens, **traits)
         self._current_key: tuple[int, ...] | None = None
         self._current: Ensemble | None = None
-        self._row_of = pd.Index(ens.snapshots["snapshot"].to_numpy())
+        ids = ens.snapshots["snapshot"].to_numpy()
+        self._identity_ids = bool(np.array_equal(ids, np.arange(ids.size)))
+        self._row_of = pd.Index(ids)
+        self._weights = ens.snapshot_weights()  # per snapshot row (the ensemble is frozen)
+        self._top_share: dict[int, float] = {}
 
     # ------------------------------------------------------------------ validation
     @validate("excluded")
@@ -166,6 +170,11 @@ class SelectionModel(HasTraits):
         """Rows of :attr:`ens` holding the given snapshot ids, shape (n,)."""
         ids = np.asarray(list(snapshot_ids) if not isinstance(snapshot_ids, np.ndarray)
                          else snapshot_ids, dtype=np.int64)
+        if self._identity_ids:
+            if ids.size and (ids.min() < 0 or ids.max() >= self.ens.n_snapshots):
+                bad = ids[(ids < 0) | (ids >= self.ens.n_snapshots)][:10].tolist()
+                raise KeyError(f"unknown snapshot id(s) {bad}.")
+            return ids
         rows = self._row_of.get_indexer(ids)
         if np.any(rows < 0):
             bad = ids[rows < 0][:10].tolist()
@@ -189,7 +198,7 @@ class SelectionModel(HasTraits):
         row = int(self.rows([snapshot_id])[0])
         snap = self.ens.snapshots
         traj = int(snap["traj"].iat[row])
-        weight = float(self.ens.snapshot_weights()[row])
+        weight = float(self._weights[row])
         info = {
             "snapshot": int(snapshot_id),
             "traj": traj,
@@ -199,9 +208,12 @@ class SelectionModel(HasTraits):
             "cluster_name": self.cluster_name(int(self.cluster_of(np.array([row]))[0])),
             "weight": weight,
         }
-        if self.band is not None and "share" in self.band.columns:
-            hit = self.band.loc[self.band["snapshot"] == snapshot_id, "share"]
-            info["share"] = float(hit.iloc[0]) if len(hit) else 0.0
+        if self.band is not None:
+            share = self._top_share.get(int(snapshot_id))
+            if share is None:
+                hit = self.band.loc[self.band["snapshot"].to_numpy() == snapshot_id, "share"]
+                share = float(hit.iloc[0]) if len(hit) else 0.0
+            info["share"] = share
         return info
 
     # ------------------------------------------------------------------ actions
@@ -306,10 +318,15 @@ class SelectionModel(HasTraits):
             self.current, self.trpes_map, energy_range=energy_range, delay_range=delay_range,
             by="snapshot",
         )
-        table = table.sort_values("share", ascending=False, kind="stable").reset_index(drop=True)
+        if not table["share"].is_monotonic_decreasing:
+            table = table.sort_values("share", ascending=False, kind="stable")
+        table = table.reset_index(drop=True)
         rows = self.rows(table["snapshot"].to_numpy())
         table["cluster"] = self.cluster_of(rows)
-        table["weight"] = self.ens.snapshot_weights()[rows]
+        table["weight"] = self._weights[rows]
+        top = table.head(4 * self.max_selected)
+        self._top_share = dict(zip(top["snapshot"].to_numpy().tolist(),
+                                   top["share"].to_numpy().tolist(), strict=True))
         if "active" not in table.columns:
             table["active"] = self.ens.snapshots["active"].to_numpy()[rows]
         if "traj" not in table.columns:

@@ -317,26 +317,32 @@ class MapView(View):
         self._draw_cuts()
 
     # ------------------------------------------------------------------ drawing
-    def _layer_values(self, trpes: Any) -> np.ndarray:
-        sim = np.asarray(trpes.intensity, dtype=float)
-        if self.layer.value == "simulated" or self.measured is None:
-            return sim
-        measured = self._measured_on_grid(trpes)
-        if self.layer.value == "measured":
-            return measured
-        return sim - measured
-
-    def _measured_on_grid(self, trpes: Any) -> np.ndarray:
-        """The measured map resampled onto the simulated grid and scaled to it (display)."""
-        from ..compute.comparison import compare_maps
+    def comparison(self) -> Any:
+        """The fit of the shown map to the measured one (``compare_maps``), or None."""
+        trpes = self.model.trpes_map
+        if self.measured is None or trpes is None:
+            return None
+        cached = getattr(self, "_comparison", None)
+        if cached is not None and cached[0] is trpes:
+            return cached[1]
+        from ..compute.compare import compare_maps
 
         result = compare_maps(trpes, self.measured)
-        return np.asarray(result.measured, dtype=float)
+        self._comparison = (trpes, result)
+        return result
+
+    def _layer(self, trpes: Any) -> Any:
+        """The map drawn: simulated, measured (resampled) or residual (measured - model)."""
+        if self.layer.value == "simulated" or self.measured is None:
+            return trpes
+        result = self.comparison()
+        return result.measured if self.layer.value == "measured" else result.residual
 
     def _draw(self, trpes: Any) -> None:
-        values = self._layer_values(trpes)
-        energies = np.asarray(trpes.energies, float)
-        delays = np.asarray(trpes.delays, float)
+        shown = self._layer(trpes)
+        values = np.asarray(shown.intensity, dtype=float)
+        energies = np.asarray(shown.energies, float)
+        delays = np.asarray(shown.delays, float)
         finite = values[np.isfinite(values)]
         lo = float(finite.min()) if finite.size else 0.0
         hi = float(finite.max()) if finite.size else 1.0
@@ -413,22 +419,28 @@ class MapView(View):
         spectrum, trace = self.cuts()
         e = np.asarray(trpes.energies, float)
         d = np.asarray(trpes.delays, float)
-        rows_s, rows_t = [spectrum], [trace]
+        xs, ys = [e], [spectrum]
+        xt, yt = [d], [trace]
         if self.measured is not None:
             try:
-                measured = self._measured_on_grid(trpes)
+                result = self.comparison()
             except Exception as exc:  # noqa: BLE001 - shown, the cuts still draw
                 self.messages.exception(exc, where="measured map")
             else:
-                d_mask = _mask(d, self.model.delay_range)
-                e_mask = _mask(e, self.model.energy_range)
-                rows_s.append(measured[d_mask].mean(axis=0))
-                rows_t.append(measured[:, e_mask].mean(axis=1))
+                m = result.measured
+                me, md = np.asarray(m.energies, float), np.asarray(m.delays, float)
+                values = np.asarray(m.intensity, float) / max(result.scale, 1e-300)
+                xs.append(me)
+                ys.append(values[_mask(md, self.model.delay_range)].mean(axis=0))
+                xt.append(md)
+                yt.append(values[:, _mask(me, self.model.energy_range)].mean(axis=1))
         with self.delay_cut.hold_sync(), self.energy_cut.hold_sync():
-            self.delay_cut_line.x = e
-            self.delay_cut_line.y = np.nan_to_num(np.vstack(rows_s))
-            self.energy_cut_line.x = d
-            self.energy_cut_line.y = np.nan_to_num(np.vstack(rows_t))
+            self.delay_cut_line.x = xs[0] if len(xs) == 1 else xs
+            self.delay_cut_line.y = np.nan_to_num(ys[0])[None] if len(ys) == 1 else [
+                np.nan_to_num(y) for y in ys]
+            self.energy_cut_line.x = xt[0] if len(xt) == 1 else xt
+            self.energy_cut_line.y = np.nan_to_num(yt[0])[None] if len(yt) == 1 else [
+                np.nan_to_num(y) for y in yt]
 
 
 def _mask(grid: np.ndarray, rng: tuple[float, float] | None) -> np.ndarray:
