@@ -181,6 +181,8 @@ def atomic_folder(target: Path, *, overwrite: bool, is_ours: Any, kind: str) -> 
     the new complete folder at `target`, never a half-written one.
     """
     target = Path(target)
+    if target.is_dir() and not any(target.iterdir()):
+        target.rmdir()  # an empty folder holds nothing to lose
     if target.exists():
         if not target.is_dir():
             raise StoreError(

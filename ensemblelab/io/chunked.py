@@ -590,6 +590,8 @@ def load_chunk(path: str | Path, index: int, *, fields: Iterable[str] | None = N
         raise IndexError(f"chunk index {index} out of range [0, {len(chunks)}).")
     chunk = chunks[int(index)]
     wanted = None if fields is None else {"energies", *fields}
+    if wanted is not None and wanted & {"dyson", "adt_cation"}:
+        wanted.add("cation_energies")  # they need it to be valid
     cols = None
     if columns is not None:
         extra = [c for c in manifest["columns"] if c in set(columns)]
@@ -613,7 +615,8 @@ def load_chunk(path: str | Path, index: int, *, fields: Iterable[str] | None = N
             symbols=tuple(manifest["symbols"]),
             masses=np.asarray(manifest["masses"], dtype=np.float64),
             state_labels=tuple(manifest.get("state_labels", ())),
-            cation_labels=tuple(manifest.get("cation_labels", ())),
+            cation_labels=tuple(manifest.get("cation_labels", ()))
+            if "cation_energies" in arrays else (),
             metadata=metadata,
             **arrays,
         )

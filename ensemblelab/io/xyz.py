@@ -887,7 +887,7 @@ def load_extxyz(
     stacks: dict[str, _Stack] = {}
     lists: dict[str, list[Any]] = {}
     traj_ids: list[np.ndarray] = []
-    steps: list[np.ndarray] | None = []
+    steps: list[np.ndarray] = []
     snaps: list[np.ndarray] | None = []
     sources = []
     suspicious: list[tuple[Path, str]] = []
@@ -916,7 +916,8 @@ def load_extxyz(
             if name not in data.columns:
                 lists[name].append(np.full(data.n_frames, np.nan))
         traj_ids.append(np.full(data.n_frames, tid, dtype=np.int64))
-        steps = None if steps is None or data.step is None else [*steps, data.step]
+        steps.append(data.step if data.step is not None else
+                     np.arange(data.n_frames, dtype=np.int64))
         snaps = None if snaps is None or data.snapshot is None else [*snaps, data.snapshot]
         sources.append(file_source(fpath, fmt="extxyz", traj=int(tid), n_frames=data.n_frames,
                                    energy_unit=data.energy_unit))
@@ -967,39 +968,50 @@ def load_extxyz(
             sources.append(file_source(csv_path, fmt="csv"))
     metadata["sources"] = sources
 
-    columns = {}
+    # Files come in trajectory order and times increase within each (checked above), so the
+    # snapshot frame is built here directly, already sorted, and handed to the constructor
+    # without the copies of Ensemble.from_arrays (bounded peak memory).
+    n = sum(len(t) for t in traj_ids)
+    data_cols: dict[str, Any] = {
+        "snapshot": np.concatenate(snaps) if snaps else np.arange(n, dtype=np.int64),
+        "traj": np.concatenate(traj_ids),
+        "step": np.concatenate(steps),
+        "time": out.pop("time"),
+        "active": out.pop("active"),
+    }
+    del traj_ids, steps, snaps
     for name in column_order:
-        parts = lists[name]
+        if name in data_cols:
+            raise ParseError(f"the key {name!r} is reserved.", path=first.path, field=name,
+                             hint="rename the user column.")
+        parts = lists.pop(name)
         if any(p.dtype == object for p in parts):
-            columns[name] = np.concatenate([p.astype(object) for p in parts])
+            data_cols[name] = np.concatenate([p.astype(object) for p in parts])
         else:
-            columns[name] = np.concatenate(parts)
+            data_cols[name] = np.concatenate(parts)
+        del parts
+    frame = pd.DataFrame(data_cols)
+    del data_cols
+    for arr in out.values():
+        arr.setflags(write=False)  # ours alone: the constructor may keep it without a copy
+    if trajectories is None:
+        trajectories = pd.DataFrame({"traj": ids_all})
     try:
-        ens = Ensemble.from_arrays(
-            traj=np.concatenate(traj_ids),
-            time=out.pop("time"),
-            active=out.pop("active"),
+        return Ensemble(
+            snapshots=frame,
             geometries=out.pop("geometries"),
-            symbols=first.symbols,
             energies=out.pop("energies"),
-            step=np.concatenate(steps) if steps else None,
-            masses=masses,
+            symbols=tuple(first.symbols),
+            masses=masses if masses is not None else masses_for(first.symbols),
             trajectories=trajectories,
-            state_labels=state_labels,
-            cation_labels=cation_labels,
+            state_labels=tuple(state_labels or ()),
+            cation_labels=tuple(cation_labels or ()),
             metadata=metadata,
-            columns=columns,
-            copy=False,
             **out,
             **traj_arrays,
         )
     except SchemaError as exc:
         raise SchemaError(f"{path}: {exc}") from exc
-    if snaps:
-        frame = ens.snapshots.copy()
-        frame["snapshot"] = np.concatenate(snaps)
-        ens = ens.replace(snapshots=frame)
-    return ens
 
 
 # ---------------------------------------------------------------------------------- writing
@@ -1104,7 +1116,7 @@ def write_extxyz(
     for c in extra_cols:
         values = frame[c].to_numpy()
         if values.dtype == bool:
-            parts.append("%s")
+            parts.append(f"{c}=%s")
             blocks.append(np.where(values, "True", "False").astype(object)[:, None])
         elif np.issubdtype(values.dtype, np.integer):
             parts.append(f"{c}=%d")

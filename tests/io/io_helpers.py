@@ -55,7 +55,8 @@ def random_ensemble(
         trajectories["family"] = rng.integers(0, 3, size=n_traj)
     columns = {"e_kin": rng.uniform(size=n), "cluster": rng.integers(-1, 4, size=n)}
     if text_column:
-        columns["tag"] = np.array(rng.choice(["ok", "odd", "late"], size=n), dtype=object)
+        columns["tag"] = np.array(rng.choice(["ok", "odd one", "late"], size=n), dtype=object)
+        columns["flag"] = rng.uniform(size=n) < 0.5
     symbols = list(rng.choice(["H", "C", "N", "O"], size=n_atoms))
     return Ensemble.from_arrays(
         traj=traj, time=time, active=active, geometries=rng.normal(size=(n, n_atoms, 3)),

@@ -89,6 +89,12 @@ def test_store_overwrite_replaces_atomically(tmp_path):
     assert sorted(p.name for p in tmp_path.iterdir()) == ["s"]  # no temp or old folders left
 
 
+def test_store_writes_into_an_empty_existing_folder(tmp_path):
+    (tmp_path / "empty").mkdir()
+    ens = make_toy_ensemble(2)
+    assert_ensemble_equal(load(save(ens, tmp_path / "empty")), ens)
+
+
 def test_store_refuses_to_overwrite_foreign_folder(tmp_path):
     folder = tmp_path / "results"
     folder.mkdir()
