@@ -31,7 +31,7 @@ __all__ = ["OutlierThresholds", "BROKEN_KINDS", "WARNING_KINDS", "flag_trajector
 BROKEN_KINDS = ("nonfinite", "missing_steps", "early_end", "energy_drift", "energy_jump",
                 "large_gap_hop", "norm_error", "topology_change", "small_s1s0_gap")
 #: flag kinds reported but not counted as broken by default
-WARNING_KINDS = ("energy_drift_warning", "unusual")
+WARNING_KINDS = ("energy_drift_warning", "bond_formed", "unusual")
 
 #: (1/2) m v^2 with m in amu and v in Angstrom/fs, expressed in eV
 _AMU_A2_FS2_EV = _sc.physical_constants["atomic mass constant"][0] * 1e10 / _sc.e
@@ -67,12 +67,17 @@ class OutlierThresholds:
         Atoms are bonded when r < bond_scale (r_cov,A + r_cov,B). Default 1.25
         (common practice).
     bond_margin : float
-        Hysteresis: a bond counts as broken above bond_scale (1 + margin) sum r_cov
-        and as formed below bond_scale (1 - margin) sum r_cov, so vibrations near the
-        threshold do not flip. Default 0.1 (common practice).
+        Hysteresis: a t = 0 bond counts as broken above bond_scale (1 + margin)
+        sum r_cov and a new bond as formed below bond_scale (1 - margin) sum r_cov,
+        so vibrations near the threshold (and hot initial geometries) do not flip.
+        Default 0.2 (common practice).
     bond_stretch : float
         A t = 0 bond longer than bond_stretch times its t = 0 length is broken.
         Default 2.0 (common practice).
+    bond_persist_steps : int
+        A bond change counts only when it lasts this many consecutive steps (or
+        until the trajectory ends), so a single wide vibration is not a
+        fragmentation. Default 3 (common practice).
     step_gap_factor : float
         A time step longer than this multiple of the median step means missing
         steps. Default 1.5 (common practice).
@@ -99,8 +104,9 @@ class OutlierThresholds:
     norm: float = 1e-3
     s1s0_gap: float | None = None
     bond_scale: float = 1.25
-    bond_margin: float = 0.1
+    bond_margin: float = 0.2
     bond_stretch: float = 2.0
+    bond_persist_steps: int = 3
     step_gap_factor: float = 1.5
     expected_t_end: float | None = None
     end_tolerance: float | None = None
@@ -180,7 +186,9 @@ def flag_trajectories(
     * ``energy_jump``: |Delta E_tot| in one step without a hop;
     * ``large_gap_hop``: a hop with |E_from - E_to| > hop_gap;
     * ``norm_error``: |sum |c|^2 - 1| > norm;
-    * ``topology_change``: a bond of t = 0 breaks or a new one forms (covalent radii);
+    * ``topology_change``: a bond of t = 0 breaks (fragmentation; covalent radii);
+    * ``bond_formed``: a new bond forms (e.g. hydrogen transfer; chemistry rather than a
+      failure, so reported but not counted as broken by default);
     * ``small_s1s0_gap``: (optional) S1/S0 gap below s1s0_gap on S1;
     * ``unusual``: isolation-forest outlier on per-trajectory features (drift, jumps,
       hops, gaps, length, RMSD to the mean structure, mean active energy); reported,
@@ -422,28 +430,39 @@ def _topology(ens: Ensemble, th: OutlierThresholds, tix: np.ndarray, time: np.nd
     bonded0 = r0_of < cut
     sym = ens.symbols
     n = ens.n_snapshots
+    any_mask = {"broken": np.zeros(n, bool), "formed": np.zeros(n, bool)}
+    first_pair = {"broken": np.zeros(n, np.int64), "formed": np.zeros(n, np.int64)}
+    dist = {"broken": np.zeros(n), "formed": np.zeros(n)}
     for s in range(0, n, chunk_size):
         sl = slice(s, min(n, s + chunk_size))
-        X = ens.geometries[sl]
-        r = _k.pair_distances(X, i, j)
+        r = _k.pair_distances(ens.geometries[sl], i, j)
         t_ix = tix[sl]
         b0 = bonded0[t_ix]
         r0 = r0_of[t_ix]
         with np.errstate(invalid="ignore"):
-            broken = b0 & ((r > cut * (1 + th.bond_margin)) | (r > th.bond_stretch * r0))
-            formed = ~b0 & np.isfinite(r0) & (r < cut * (1 - th.bond_margin))
-        for mask, word in ((broken, "broken"), (formed, "formed")):
-            rows_any = np.flatnonzero(mask.any(axis=1))
-            if not rows_any.size:
-                continue
-            tr, first = np.unique(t_ix[rows_any], return_index=True)
-            for traj_row, loc in zip(tr, rows_any[first], strict=True):
-                p = int(np.flatnonzero(mask[loc])[0])
-                a, b = int(i[p]), int(j[p])
-                t = time[s + loc]
-                flags.add(int(traj_row), "topology_change", t,
-                          f"bond {a}-{b} ({sym[a]}-{sym[b]}) {word} at {_fmt(t)} fs "
-                          f"({r[loc, p]:.2f} Angstrom, {r0[loc, p]:.2f} Angstrom at t=0)")
+            masks = {"broken": b0 & ((r > cut * (1 + th.bond_margin)) | (r > th.bond_stretch * r0)),
+                     "formed": ~b0 & np.isfinite(r0) & (r < cut * (1 - th.bond_margin))}
+        for word, mask in masks.items():
+            any_mask[word][sl] = mask.any(axis=1)
+            p = np.argmax(mask, axis=1)
+            first_pair[word][sl] = p
+            dist[word][sl] = r[np.arange(len(p)), p]
+    # the change must persist for bond_persist_steps consecutive steps (or to the end)
+    k = max(1, int(th.bond_persist_steps))
+    last = np.r_[np.flatnonzero(tix[1:] != tix[:-1]), n - 1]
+    end_of = last[np.searchsorted(last, np.arange(n))]
+    for word, mask in any_mask.items():
+        c = np.r_[0, np.cumsum(mask)]
+        stop = np.minimum(np.arange(n) + k, end_of + 1)
+        ok = mask & (c[stop] - c[np.arange(n)] == stop - np.arange(n))
+        for traj_row, loc in zip(*_first_per_traj(ok, tix), strict=True):
+            pp = int(first_pair[word][loc])
+            a_, b_ = int(i[pp]), int(j[pp])
+            t = time[loc]
+            flags.add(int(traj_row), "topology_change" if word == "broken" else "bond_formed", t,
+                      f"bond {a_}-{b_} ({sym[a_]}-{sym[b_]}) {word} at {_fmt(t)} fs "
+                      f"({dist[word][loc]:.2f} Angstrom, {r0_of[traj_row, pp]:.2f} Angstrom "
+                      "at t=0)")
 
 
 def _multivariate(ens: Ensemble, tix: np.ndarray, starts: np.ndarray, max_drift: np.ndarray,

@@ -111,6 +111,6 @@ def inject(d, traj_id, kind, step):
         v /= np.linalg.norm(v)
         shift = np.clip(d["time"][rows] - t_bad, 0, None)[:, None] * 0.2 * v
         X[rows, 3] += shift
-        # O-H cutoff 1.25 * 0.97 * 1.1 = 1.334 A; O-H starts at ~0.95 A
+        # O-H broken above 1.25 * 0.97 * 1.2 = 1.455 A; O-H starts at ~0.95 A
         return None
     raise ValueError(kind)
