@@ -58,11 +58,12 @@ class MapView(View):
     ----------
     model : SelectionModel or Ensemble
         Shared selection state.
-    photon_energy : float
-        Probe photon energy in eV.
-    probe_fwhm, pump_fwhm : float
-        Intensity FWHM of probe and pump in fs (``pump_fwhm=0``: no pump
-        cross-correlation is applied).
+    photon_energy : float, optional
+        Probe photon energy in eV (default: ``ens.metadata["suggested_probe"]``,
+        else 5.0).
+    probe_fwhm, pump_fwhm : float, optional
+        Intensity FWHM of probe and pump in fs (``pump_fwhm=0``: no pump);
+        defaults from ``suggested_probe``/``suggested_pump`` in the metadata, else 30.
     n_photons : int
         Probe photons per ionisation.
     resolution : float
@@ -107,9 +108,9 @@ class MapView(View):
         self,
         model: SelectionModel | Ensemble,
         *,
-        photon_energy: float = 5.0,
-        probe_fwhm: float = 30.0,
-        pump_fwhm: float = 30.0,
+        photon_energy: float | None = None,
+        probe_fwhm: float | None = None,
+        pump_fwhm: float | None = None,
         n_photons: int = 1,
         resolution: float = 0.0,
         convolve: bool = True,
@@ -123,6 +124,16 @@ class MapView(View):
         messages: MessageArea | None = None,
     ) -> None:
         super().__init__(model, messages=messages)
+        meta = self.model.ens.metadata
+        probe_meta = meta.get("suggested_probe") or {}
+        pump_meta = meta.get("suggested_pump") or {}
+        if photon_energy is None:
+            photon_energy = float(probe_meta.get("photon_energy", 5.0))
+        if probe_fwhm is None:
+            probe_fwhm = float(probe_meta.get("fwhm", 30.0))
+        if pump_fwhm is None:
+            pump_fwhm = float(pump_meta.get("fwhm", 30.0))
+        self.pump_photon_energy = pump_meta.get("photon_energy")
         if decomposition not in DECOMPOSITIONS:
             raise ValueError(
                 f"decomposition must be one of {list(DECOMPOSITIONS)}; got {decomposition!r}."
@@ -248,8 +259,9 @@ class MapView(View):
                               n_photons=int(self.n_photons.value))
         pump = None
         if float(self.pump_fwhm.value) > 0:
-            pump = GaussianPulse(photon_energy=float(self.photon_energy.value),
-                                 fwhm=float(self.pump_fwhm.value))
+            hv = self.pump_photon_energy if self.pump_photon_energy is not None else \
+                float(self.photon_energy.value)
+            pump = GaussianPulse(photon_energy=float(hv), fwhm=float(self.pump_fwhm.value))
         return probe, pump
 
     def grids(self) -> tuple[np.ndarray, np.ndarray]:
