@@ -151,3 +151,17 @@ def test_ensemble_adt_from_step_and_reference_overlaps():
     np.testing.assert_allclose(ensemble_adt(ens), exact, atol=1e-12)
     ref = Ensemble.from_arrays(overlaps=exact * 0.9, **base)  # scaled: Loewdin removes it
     np.testing.assert_allclose(ensemble_adt(ref, kind="reference"), exact, atol=1e-12)
+
+
+def test_local_diabatisation_reproduces_demo_model_adt():
+    # the demo model (ensemblelab.demo) stores its exact ADT matrices and the step overlaps;
+    # propagating from the exact ADT at t = 0 must reproduce |A|^2 along every trajectory
+    # (analytic model, computed independently of this module)
+    from ensemblelab.demo import make_ensemble
+
+    ens = make_ensemble(3, faults=False, velocities=False, t_max=200.0)
+    traj = ens.snapshots["traj"].to_numpy()
+    for t in np.unique(traj):
+        rows = np.flatnonzero(traj == t)
+        a = propagate_adt(ens.overlaps[rows], a0=ens.adt[rows[0]])
+        np.testing.assert_allclose(a**2, ens.adt[rows] ** 2, atol=1e-10)
