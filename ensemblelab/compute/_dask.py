@@ -1,0 +1,815 @@
+"""Chunk-by-chunk reductions for lazy (chunked-store) ensembles, run with Dask (private).
+
+Each public computation that accepts a :class:`~ensemblelab.io.lazy.LazyEnsemble`
+dispatches here. The plan is always the same: a first cheap pass collects the
+global quantities the in-memory code derives from the whole ensemble (time grid,
+median step, stick energy range), then every chunk (whole trajectories, read
+by the task itself from the store, so on a cluster nothing large travels) is
+reduced to partial sums with the *same kernels* as in memory, the partial sums
+are added in a tree, and the in-memory finishing code turns them into the
+result. Differences from the in-memory result come only from the order of
+floating-point additions (~1e-15 relative).
+
+* TRPES map: Taylor-moment histograms and alive weights are sums over sticks
+  and snapshots, so the map of the ensemble is assembled from the sum of the
+  per-chunk histograms (``_kernels_trpes.deposit_moments``) and then broadened
+  and normalised once.
+* contributions: the time/energy weights of the region are global; each chunk
+  gives its per-snapshot (or per-group) intensities.
+* populations: weighted counts ``sum w v``, ``sum w alive``, ``sum w^2 alive`` and
+  the bootstrap numerators are sums over trajectories; intervals come last.
+* flag_trajectories: the rule-based checks are per trajectory (a trajectory
+  never straddles chunks), with the global median step, expected end time and
+  tolerance passed in; the isolation-forest score is fitted once on the
+  per-trajectory features gathered from all chunks, with the mean structure of
+  the same random subsample of snapshots as in memory.
+
+Scheduling: ``client`` (a ``dask.distributed.Client``) runs the tasks on its
+cluster; otherwise ``scheduler`` (``"threads"``, ``"processes"``,
+``"synchronous"``) or Dask's default (the active distributed client if there is
+one, else the local threaded scheduler).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+import warnings
+from collections.abc import Callable, Mapping, Sequence
+from typing import TYPE_CHECKING, Any
+
+import numpy as np
+import pandas as pd
+
+from .._optional import import_optional
+from ..errors import EnsembleWarning, SchemaError
+
+if TYPE_CHECKING:
+    from ..data.spectrum import TRPESMap
+    from ..io.lazy import LazyEnsemble
+    from .pulses import GaussianPulse
+
+__all__ = ["is_lazy", "compute_trpes", "contributions", "populations", "flag_trajectories",
+           "median_step"]
+
+
+def is_lazy(ens: object) -> bool:
+    """True when `ens` is a LazyEnsemble (checked without importing the io layer's class)."""
+    return type(ens).__name__ == "LazyEnsemble" and hasattr(ens, "iter_chunks")
+
+
+# ------------------------------------------------------------------------ scheduling
+def _dask() -> Any:
+    return import_optional("dask", extra="dask", purpose="computations on lazy ensembles")
+
+
+def _add(a: Any, b: Any) -> Any:
+    if isinstance(a, dict):
+        return {k: _add(a[k], b[k]) for k in a}
+    if a is None:
+        return b
+    return a + b
+
+
+def _tree(parts: list[Any], combine: Callable[[Any, Any], Any]) -> Any:
+    dask = _dask()
+    parts = list(parts)
+    while len(parts) > 1:
+        nxt = [dask.delayed(combine, pure=True)(parts[i], parts[i + 1])
+               for i in range(0, len(parts) - 1, 2)]
+        if len(parts) % 2:
+            nxt.append(parts[-1])
+        parts = nxt
+    return parts[0]
+
+
+def _compute(objs: Sequence[Any], *, client: Any, scheduler: Any, progress: bool,
+             desc: str) -> tuple[Any, ...]:
+    dask = _dask()
+    if client is not None:
+        return tuple(dask.compute(*objs, scheduler=client))
+    if progress and scheduler != "distributed":
+        from dask.callbacks import Callback
+        from tqdm.auto import tqdm
+
+        class _Bar(Callback):  # a tqdm bar over finished tasks (local schedulers)
+            def _start_state(self, dsk: Any, state: Any) -> None:
+                self.bar = tqdm(total=sum(len(state[k]) for k in ("ready", "waiting",
+                                                                  "running")),
+                                desc=desc, unit="task", leave=False)
+
+            def _posttask(self, key: Any, result: Any, dsk: Any, state: Any, wid: Any) -> None:
+                self.bar.update(1)
+
+            def _finish(self, dsk: Any, state: Any, errored: bool) -> None:
+                self.bar.close()
+
+        try:
+            from distributed import default_client
+
+            default_client()
+            has_client = True
+        except (ImportError, ValueError):
+            has_client = False
+        if not has_client:
+            with _Bar():
+                return tuple(dask.compute(*objs, scheduler=scheduler))
+    return tuple(dask.compute(*objs, scheduler=scheduler))
+
+
+def _tasks(lz: LazyEnsemble, func: Callable[..., Any], *args: Any, **kw: Any) -> list[Any]:
+    dask = _dask()
+    path = str(lz.path)
+    return [dask.delayed(func, pure=True)(path, i, *args, **kw) for i in range(lz.n_chunks)]
+
+
+# ------------------------------------------------------------------------ time statistics
+def _merge_counts(a: tuple[np.ndarray, np.ndarray], b: tuple[np.ndarray, np.ndarray]
+                  ) -> tuple[np.ndarray, np.ndarray]:
+    v = np.concatenate([a[0], b[0]])
+    c = np.concatenate([a[1], b[1]])
+    u, inv = np.unique(v, return_inverse=True)
+    return u, np.bincount(inv, c, minlength=u.size).astype(np.int64)
+
+
+def _median_from_counts(values: np.ndarray, counts: np.ndarray) -> float:
+    """``np.median`` of the multiset {values[i] repeated counts[i] times}, exactly."""
+    n = int(counts.sum())
+    if n == 0:
+        return math.nan
+    cum = np.cumsum(counts)
+    if n % 2:
+        return float(values[np.searchsorted(cum, n // 2, side="right")])
+    a = values[np.searchsorted(cum, n // 2 - 1, side="right")]
+    b = values[np.searchsorted(cum, n // 2, side="right")]
+    return float(np.mean(np.array([a, b])))
+
+
+def _time_stats_chunk(path: str, index: int) -> dict[str, Any]:
+    from ..io.chunked import read_chunk_table
+
+    frame = read_chunk_table(path, index, "snapshots", ["traj", "time"])
+    time = frame["time"].to_numpy()
+    traj = frame["traj"].to_numpy()
+    dt = np.diff(time)[traj[1:] == traj[:-1]]
+    u, c = np.unique(dt, return_counts=True)
+    return {"t_min": float(time.min()) if time.size else math.inf,
+            "t_max": float(time.max()) if time.size else -math.inf, "dt": (u, c)}
+
+
+def _merge_time_stats(a: dict[str, Any], b: dict[str, Any]) -> dict[str, Any]:
+    return {"t_min": min(a["t_min"], b["t_min"]), "t_max": max(a["t_max"], b["t_max"]),
+            "dt": _merge_counts(a["dt"], b["dt"])}
+
+
+def _time_stats(lz: LazyEnsemble, *, client: Any, scheduler: Any) -> dict[str, Any]:
+    cache = lz._cache
+    if "time_stats" not in cache:
+        total = _tree(_tasks(lz, _time_stats_chunk), _merge_time_stats)
+        (cache["time_stats"],) = _compute([total], client=client, scheduler=scheduler,
+                                          progress=False, desc="time grid")
+    return cache["time_stats"]
+
+
+def median_step(lz: LazyEnsemble, *, client: Any = None, scheduler: Any = None) -> float:
+    """Median time step (fs) within trajectories over the whole lazy ensemble (exact)."""
+    st = _time_stats(lz, client=client, scheduler=scheduler)
+    return _median_from_counts(*st["dt"])
+
+
+def _grid(t_min: float, t_max: float, dt: float) -> tuple[float, int]:
+    """Start and size of the internal TRPES time grid (as ``spectra._time_grid``)."""
+    start = math.floor(t_min / dt + 1e-9) * dt if math.isfinite(t_min) else 0.0
+    start = min(start, 0.0)
+    j_max = int(np.floor((t_max - start) / dt + 1e-9)) if math.isfinite(t_max) else 0
+    return start, j_max + 2
+
+
+def _bins(time: np.ndarray, start: float, dt: float) -> tuple[np.ndarray, np.ndarray | None]:
+    pos = (time - start) / dt
+    j = np.floor(pos + 1e-9).astype(np.int64)
+    frac = pos - j
+    frac[np.abs(frac) < 1e-9] = 0.0
+    return j, (frac if np.any(frac > 0) else None)
+
+
+# ------------------------------------------------------------------------ TRPES
+def _trpes_fields(by: str | None) -> list[str]:
+    fields = ["cation_energies", "dyson", "excitation_energies", "transition_dipoles",
+              "oscillator_strengths"]
+    if by == "diabatic":
+        fields += ["adt", "adt_cation"]
+    return fields
+
+
+def _energy_range_chunk(path: str, index: int, total_energy: float) -> dict[str, Any]:
+    from ..io.chunked import load_chunk
+
+    ens = load_chunk(path, index, fields=["cation_energies"])
+    if ens.cation_energies is None:
+        return {"e_min": math.inf, "e_max": -math.inf}
+    active = ens.snapshots["active"].to_numpy()
+    e_neutral = ens.energies[np.arange(ens.n_snapshots), active]
+    ekin = total_energy - (ens.cation_energies - e_neutral[:, None])
+    e = ekin[ekin > 0]
+    return {"e_min": float(e.min()) if e.size else math.inf,
+            "e_max": float(e.max()) if e.size else -math.inf}
+
+
+def _merge_range(a: dict[str, float], b: dict[str, float]) -> dict[str, float]:
+    return {"e_min": min(a["e_min"], b["e_min"]), "e_max": max(a["e_max"], b["e_max"])}
+
+
+def _chunk_sticks(path: str, index: int, opts: Mapping[str, Any]) -> tuple[Any, Any, np.ndarray]:
+    """(chunk ensemble, its TRPESModel, weight of each trajectory of the chunk)."""
+    from ..io.chunked import load_chunk
+    from .spectra import prepare_sticks, trajectory_weights
+
+    ens = load_chunk(path, index, fields=_trpes_fields(opts["by"]))
+    model = prepare_sticks(ens, probe=opts["probe"], pump=opts["pump"],
+                           cross_section=opts["cross_section"], weights=opts["weights"],
+                           by=opts["by"], time_step=opts["dt"], order=opts["order"],
+                           bins_per_fwhm=opts["bins_per_fwhm"], progress=False)
+    w_traj, _ = trajectory_weights(ens, weights=opts["weights"], pump=opts["pump"])
+    return ens, model, w_traj
+
+
+def _trpes_chunk(path: str, index: int, opts: Mapping[str, Any]) -> dict[str, Any]:
+    from . import _kernels_trpes as K
+
+    ens, model, w_traj = _chunk_sticks(path, index, opts)
+    start, dt, n_time = opts["start"], opts["dt"], opts["n_time"]
+    j, frac = _bins(ens.snapshots["time"].to_numpy(), start, dt)
+    alive = K.deposit_counts(j, w_traj[ens.traj_index], n_time=n_time, tfrac=frac)
+    sticks = model.sticks
+    tb = j[sticks.snapshot]
+    tf = None if frac is None else frac[sticks.snapshot]
+    grid = {"n_time": n_time, "e_lo": opts["e_lo"], "h": opts["h"], "n_fine": opts["n_fine"],
+            "order": opts["order"]}
+    hist = K.deposit_moments(tb, sticks.energy, sticks.weight, tfrac=tf, **grid)
+    hist_comp = None
+    if model.comp is not None:
+        src = model.comp_src
+        ww = sticks.weight if model.comp_weight is None else model.comp_weight
+        hist_comp = K.deposit_moments(
+            tb if src is None else tb[src], sticks.energy if src is None else sticks.energy[src],
+            ww, comp=model.comp, n_comp=len(model.labels),
+            tfrac=None if tf is None else (tf if src is None else tf[src]), **grid)
+    return {"alive": alive, "hist": hist, "hist_comp": hist_comp,
+            "n_sticks": np.int64(sticks.n_sticks), "total_weight": np.array(float(w_traj.sum()))}
+
+
+def _trpes_setup(lz: LazyEnsemble, *, probe: Any, pump: Any, cross_section: Any, weights: str,
+                 by: str | None, time_step: float | None, client: Any, scheduler: Any
+                 ) -> dict[str, Any]:
+    from .spectra import _BY, _check_nonneg, _check_pulse
+
+    probe = _check_pulse(probe, "probe")
+    pump = _check_pulse(pump, "pump", optional=True)
+    if by not in _BY:
+        raise SchemaError(f"The 'by' parameter must be one of {list(_BY)}. Got {by!r} instead.")
+    if not (lz.has("cation_energies") and lz.has("dyson")):
+        raise SchemaError(
+            "compute_trpes needs ens.cation_energies and ens.dyson (squared Dyson norms). "
+            "Hint: load an ensemble whose snapshots carry cation energies and Dyson norms."
+        )
+    if by == "diabatic" and not lz.has("adt"):
+        raise SchemaError("by='diabatic' needs ens.adt (adiabatic-to-diabatic matrices).")
+    st = _time_stats(lz, client=client, scheduler=scheduler)
+    if time_step is None:
+        dt = _median_from_counts(*st["dt"])
+        dt = 1.0 if not math.isfinite(dt) else dt
+    else:
+        dt = _check_nonneg(time_step, "time_step")
+        if dt == 0:
+            raise SchemaError("The 'time_step' parameter must be > 0.")
+    start, n_time = _grid(st["t_min"], st["t_max"], dt)
+    return {"probe": probe, "pump": pump, "cross_section": cross_section, "weights": weights,
+            "by": by, "dt": dt, "start": start, "n_time": n_time, "t_known": st["t_max"]}
+
+
+def _weights_chunk(path: str, index: int, opts: Mapping[str, Any]) -> dict[str, Any]:
+    """Alive weight on the grid and total trajectory weight of one chunk."""
+    from ..io.chunked import load_chunk
+    from . import _kernels_trpes as K
+    from .spectra import trajectory_weights
+
+    ens = load_chunk(path, index, fields=["excitation_energies", "transition_dipoles",
+                                          "oscillator_strengths"])
+    w_traj, used = trajectory_weights(ens, weights=opts["weights"], pump=opts["pump"])
+    j, frac = _bins(ens.snapshots["time"].to_numpy(), opts["start"], opts["dt"])
+    return {"alive": K.deposit_counts(j, w_traj[ens.traj_index], n_time=opts["n_time"],
+                                      tfrac=frac),
+            "total_weight": np.array(float(w_traj.sum()))}
+
+
+def compute_trpes(
+    lz: LazyEnsemble,
+    *,
+    probe: GaussianPulse,
+    pump: GaussianPulse | None = None,
+    energies: Any,
+    delays: Any,
+    resolution: float = 0.0,
+    convolve: bool = True,
+    cross_section: Any = "dyson",
+    weights: str = "doorway",
+    normalise: str = "alive",
+    by: str | None = None,
+    progress: bool = True,
+    time_step: float | None = None,
+    client: Any = None,
+    scheduler: Any = None,
+) -> TRPESMap:
+    """:func:`ensemblelab.compute.spectra.compute_trpes` for a lazy ensemble (see there)."""
+    from ..data.spectrum import StickSpectrum
+    from .cross_sections import _describe, resolve_cross_section
+    from .spectra import (
+        DEFAULT_BINS_PER_FWHM,
+        DEFAULT_ORDER,
+        TRPESModel,
+        _check_grid,
+        _check_nonneg,
+        trajectory_weights,
+    )
+
+    energies = _check_grid(energies, "energies")
+    delays = _check_grid(delays, "delays")
+    resolution = _check_nonneg(resolution, "resolution")
+    if normalise not in ("alive", "initial"):
+        raise SchemaError(f"The 'normalise' parameter must be 'alive' or 'initial'. Got "
+                          f"{normalise!r} instead.")
+    opts = _trpes_setup(lz, probe=probe, pump=pump, cross_section=cross_section,
+                        weights=weights, by=by, time_step=time_step, client=client,
+                        scheduler=scheduler)
+    probe, pump = opts["probe"], opts["pump"]
+    cs = resolve_cross_section(cross_section)
+    # the word params["weights"] uses, from the (small) trajectory table alone
+    first = lz.chunk(0, fields=["excitation_energies", "transition_dipoles",
+                                "oscillator_strengths"]) if lz.n_chunks else None
+    _, weights_used = trajectory_weights(first, weights=weights, pump=pump)
+    fwhm = math.hypot(probe.effective_spectral_fwhm, resolution)
+    h = fwhm / DEFAULT_BINS_PER_FWHM
+    rng = _tree(_tasks(lz, _energy_range_chunk, probe.total_energy), _merge_range)
+    (erange,) = _compute([rng], client=client, scheduler=scheduler, progress=False,
+                         desc="energy range")
+    e_lo = erange["e_min"] if math.isfinite(erange["e_min"]) else 0.0
+    e_hi = erange["e_max"] if math.isfinite(erange["e_max"]) else 0.0
+    n_fine = int(math.floor((e_hi - e_lo) / h + 0.5)) + 2
+    opts.update(e_lo=e_lo, h=h, n_fine=n_fine, order=DEFAULT_ORDER,
+                bins_per_fwhm=DEFAULT_BINS_PER_FWHM)
+    (total,) = _compute([_tree(_tasks(lz, _trpes_chunk, opts), _add)], client=client,
+                        scheduler=scheduler, progress=progress, desc="TRPES chunks")
+    wsum = total
+    labels = _labels(lz, by)
+    if total["hist_comp"] is None and by is not None:
+        total["hist_comp"] = np.zeros((DEFAULT_ORDER, len(labels), opts["n_time"], n_fine))
+    empty = np.zeros(0)
+    sticks = StickSpectrum(snapshot=empty.astype(np.int64), traj=empty.astype(np.int64),
+                           time=empty, state=empty.astype(np.int64),
+                           channel=empty.astype(np.int64), energy=empty, weight=empty)
+    n_sticks = int(total["n_sticks"])
+    model = TRPESModel(
+        sticks=sticks, probe=probe, by=by, labels=labels, grid_start=opts["start"],
+        time_step=opts["dt"], n_time=opts["n_time"], alive=wsum["alive"],
+        total_weight=float(wsum["total_weight"]), t_known=float(opts["t_known"]),
+        tbin=empty.astype(np.int64), tfrac=None,
+        info={"cross_section": _describe(cs), "weights": weights_used, "n_sticks": n_sticks,
+              "n_snapshots": lz.n_snapshots, "n_trajectories": lz.n_trajectories,
+              "progress": False, "n_states": lz.n_states, "n_cation": lz.n_cation},
+        order=DEFAULT_ORDER, bins_per_fwhm=DEFAULT_BINS_PER_FWHM, n_snapshots=lz.n_snapshots,
+    )
+    model._cache.update(h=h, e_lo=e_lo, n_fine=n_fine, hist=total["hist"],
+                        hist_comp=total["hist_comp"] if by is not None else None)
+    m = model.broaden(energies=energies, delays=delays, pump=pump, resolution=resolution,
+                      convolve=convolve, normalise=normalise)
+    object.__setattr__(m, "_model", None)  # the moments live in the chunks, not here
+    object.__setattr__(m, "_lazy_grid", {
+        "path": str(lz.path), "start": opts["start"], "dt": opts["dt"],
+        "n_time": opts["n_time"], "alive": wsum["alive"],
+        "total_weight": float(wsum["total_weight"]), "t_known": float(opts["t_known"])})
+    return m
+
+
+def _labels(lz: LazyEnsemble, by: str | None) -> list[str]:
+    if by is None:
+        return []
+    if by == "neutral":
+        return list(lz.state_labels)
+    if by == "cation":
+        return list(lz.cation_labels)
+    if by == "pair":
+        return [f"{a}->{b}" for a in lz.state_labels for b in lz.cation_labels]
+    meta = lz.metadata
+    dl = list(meta.get("diabatic_labels") or [f"d{lab}" for lab in lz.state_labels])
+    cl = list(meta.get("cation_diabatic_labels") or [f"d{lab}" for lab in lz.cation_labels])
+    return [f"{a}->{b}" for a in dl for b in cl]
+
+
+# ------------------------------------------------------------------------ contributions
+def _contrib_chunk(path: str, index: int, opts: Mapping[str, Any]) -> pd.DataFrame:
+    """The in-memory ``contributions`` of one chunk, on the ensemble's time grid."""
+    import types
+
+    from .spectra import contributions as contributions_in_memory
+
+    ens, model, _ = _chunk_sticks(path, index, opts)
+    j, frac = _bins(ens.snapshots["time"].to_numpy(), opts["start"], opts["dt"])
+    snap = model.sticks.snapshot
+    model = dataclasses.replace(
+        model, grid_start=opts["start"], time_step=opts["dt"], n_time=opts["n_time"],
+        alive=opts["alive"], total_weight=opts["total_weight"], t_known=opts["t_known"],
+        tbin=j[snap], tfrac=None if frac is None else frac[snap], ens_id=id(ens),
+        n_snapshots=ens.n_snapshots, _cache={})
+    fake_map = types.SimpleNamespace(params=opts["params"], _model=model)
+    out = contributions_in_memory(ens, fake_map, energy_range=opts["energy_range"],
+                                  delay_range=opts["delay_range"], by=opts["group"])
+    return out.drop(columns=["share"])
+
+
+def _concat(a: pd.DataFrame, b: pd.DataFrame) -> pd.DataFrame:
+    return pd.concat([a, b], ignore_index=True)
+
+
+def contributions(
+    lz: LazyEnsemble,
+    trpes_map: TRPESMap,
+    *,
+    energy_range: Sequence[float],
+    delay_range: Sequence[float],
+    by: str = "snapshot",
+    client: Any = None,
+    scheduler: Any = None,
+    progress: bool = True,
+) -> pd.DataFrame:
+    """:func:`ensemblelab.compute.spectra.contributions` for a lazy ensemble (see there)."""
+    from .cross_sections import resolve_cross_section
+    from .pulses import GaussianPulse
+
+    e1, e2 = (float(x) for x in energy_range)
+    t1, t2 = (float(x) for x in delay_range)
+    if not (e2 > e1 and t2 > t1):
+        raise SchemaError(f"energy_range and delay_range must be (low, high) with low < high; "
+                          f"got {energy_range!r}, {delay_range!r}.")
+    if by not in ("snapshot", "traj") and by not in lz.columns:
+        raise SchemaError(f"The 'by' parameter must be 'snapshot', 'traj' or a column of "
+                          f"ens.snapshots {lz.columns}. Got {by!r} instead.")
+    p = trpes_map.params
+    try:
+        probe = GaussianPulse(**p["probe"])
+        pump = GaussianPulse(**p["pump"]) if p.get("pump") else None
+        cs = p.get("cross_section", {}).get("model", "dyson")
+    except (KeyError, TypeError) as exc:
+        raise SchemaError("trpes_map.params lacks the probe settings; pass a map made by "
+                          "compute_trpes.") from exc
+    if cs not in ("dyson", "hydrogenic", "anion-threshold"):
+        raise SchemaError(f"the map was made with a custom cross section ({cs!r}) that cannot "
+                          "be rebuilt from its parameters for a lazy ensemble.")
+    resolve_cross_section(cs)
+    w = p.get("weights", "doorway")
+    weights = ("doorway" if w in ("doorway", "ensemble") else
+               "uniform" if w == "uniform" else w.split(":", 1)[-1])
+    grid = getattr(trpes_map, "_lazy_grid", None)
+    if not (isinstance(grid, dict) and grid.get("path") == str(lz.path)):
+        opts = _trpes_setup(lz, probe=probe, pump=pump, cross_section=cs, weights=weights,
+                            by=None, time_step=p.get("time_step"), client=client,
+                            scheduler=scheduler)
+        (wsum,) = _compute([_tree(_tasks(lz, _weights_chunk, opts), _add)], client=client,
+                           scheduler=scheduler, progress=False, desc="alive weights")
+        grid = {"start": opts["start"], "dt": opts["dt"], "n_time": opts["n_time"],
+                "alive": wsum["alive"], "total_weight": float(wsum["total_weight"]),
+                "t_known": float(opts["t_known"])}
+    opts = {"probe": probe, "pump": pump, "cross_section": cs, "weights": weights, "by": None,
+            "order": 1, "bins_per_fwhm": 8.0, "params": dict(p), "group": by,
+            "energy_range": (e1, e2), "delay_range": (t1, t2), **grid}
+    opts.pop("path", None)
+    (out,) = _compute([_tree(_tasks(lz, _contrib_chunk, opts), _concat)], client=client,
+                      scheduler=scheduler, progress=progress, desc="contributions")
+    if by == "snapshot":
+        total = float(out["intensity"].sum())
+    else:
+        out = out.groupby(by, sort=True, as_index=False)[["intensity", "n_snapshots"]].sum()
+        total = float(out["intensity"].sum())
+        out = out[out["intensity"] > 0]
+        out["n_snapshots"] = out["n_snapshots"].astype(np.int64)
+    order = np.argsort(-out["intensity"].to_numpy(), kind="stable")
+    out = out.iloc[order].reset_index(drop=True)
+    out["share"] = out["intensity"] / total if total > 0 else 0.0
+    out.attrs["total"] = total
+    out.attrs["energy_range"] = (e1, e2)
+    out.attrs["delay_range"] = (t1, t2)
+    return out
+
+
+# ------------------------------------------------------------------------ populations
+def _pop_chunk(path: str, index: int, opts: Mapping[str, Any]) -> dict[str, Any]:
+    from ..io.chunked import load_chunk
+    from . import _kernels_populations as _k
+    from .populations import _BLOCK, _values_block
+
+    kind = opts["kind"]
+    fields = {"active": [], "amplitudes": ["amplitudes"], "diabatic": ["adt"]}[kind]
+    ens = load_chunk(path, index, fields=fields)
+    grid = opts["grid"]
+    lo = opts["traj_rows"][index]
+    w = opts["w"][lo:lo + ens.n_trajectories]
+    n_traj, n_states, n_times = ens.n_trajectories, ens.n_states, grid.size
+    idx_all = _k.sample_on_grid(ens.traj_index, ens.snapshots["time"].to_numpy(), n_traj, grid)
+    idx_all[w <= 0] = -1
+    counts = opts.get("counts")
+    if counts is not None:
+        counts = counts[:, lo:lo + n_traj]
+        boot_num = np.zeros((counts.shape[0], n_times * n_states))
+        boot_den = np.zeros((counts.shape[0], n_times))
+    num = np.zeros((n_times, n_states))
+    w_alive = np.zeros(n_times)
+    w2 = np.zeros(n_times)
+    n_alive = np.zeros(n_times, dtype=np.int64)
+    for s in range(0, n_traj, _BLOCK):
+        sl = slice(s, s + _BLOCK)
+        vals, alive = _values_block(ens, kind, idx_all[sl])
+        wb = w[sl]
+        a = alive.astype(np.float64)
+        num += np.tensordot(wb, vals, axes=(0, 0))
+        w_alive += wb @ a
+        w2 += (wb * wb) @ a
+        n_alive += alive.sum(axis=0)
+        if counts is not None:
+            cw = counts[:, sl] * wb[None, :]
+            boot_num += cw @ vals.reshape(vals.shape[0], -1)
+            boot_den += cw @ a
+    out = {"num": num, "w_alive": w_alive, "w2": w2, "n_alive": n_alive}
+    if counts is not None:
+        out.update(boot_num=boot_num, boot_den=boot_den)
+    return out
+
+
+def populations(
+    lz: LazyEnsemble,
+    *,
+    kind: str = "active",
+    weights: Any = None,
+    ci: float = 0.95,
+    method: str = "wilson",
+    time_grid: Any = None,
+    n_boot: int = 1000,
+    random_state: Any = 0,
+    exclude: Any = None,
+    states: Sequence[int] | None = None,
+    client: Any = None,
+    scheduler: Any = None,
+    progress: bool = True,
+) -> pd.DataFrame:
+    """:func:`ensemblelab.compute.populations.populations` for a lazy ensemble (see there)."""
+    from scipy.stats import norm
+
+    from . import _kernels_populations as _k
+    from .populations import _check_kind, _excluded_mask, _resolve_grid, _resolve_weights
+
+    _check_kind(lz, kind)
+    if method not in ("wilson", "bootstrap"):
+        raise SchemaError(
+            f"The 'method' parameter of populations must be 'wilson' or 'bootstrap'; got "
+            f"{method!r}."
+        )
+    if not (isinstance(ci, float | int) and 0.0 < float(ci) < 1.0):
+        raise SchemaError(f"The 'ci' parameter of populations must be in (0, 1); got {ci!r}.")
+    if method == "bootstrap" and (int(n_boot) != n_boot or n_boot < 2):
+        raise SchemaError(f"The 'n_boot' parameter of populations must be an int >= 2; got "
+                          f"{n_boot!r}.")
+    w, wlabel = _resolve_weights(lz, weights)
+    grid = _resolve_grid(lz, time_grid)
+    excluded = _excluded_mask(lz, exclude)
+    w = np.where(excluded, 0.0, w)
+    n_traj, n_states, n_times = lz.n_trajectories, lz.n_states, grid.size
+    opts: dict[str, Any] = {"kind": kind, "grid": grid, "w": w,
+                            "traj_rows": [c["traj_row_start"] for c in lz.chunks]}
+    if method == "bootstrap":
+        rng = np.random.default_rng(random_state)
+        opts["counts"] = _k.bootstrap_counts(n_traj, int(n_boot), rng)
+    (tot,) = _compute([_tree(_tasks(lz, _pop_chunk, opts), _add)], client=client,
+                      scheduler=scheduler, progress=progress, desc="population chunks")
+    num, w_alive, w2, n_alive = tot["num"], tot["w_alive"], tot["w2"], tot["n_alive"]
+    # ---- finishing: the same formulas as the in-memory populations()
+    with np.errstate(divide="ignore", invalid="ignore"):
+        pop = num / w_alive[:, None]
+        n_eff = np.where(w2 > 0, w_alive * w_alive / w2, 0.0)
+    if method == "wilson":
+        z = float(norm.ppf(0.5 + 0.5 * float(ci)))
+        lo, hi = _k.wilson_interval(pop, np.broadcast_to(n_eff[:, None], pop.shape), z)
+    else:
+        with np.errstate(divide="ignore", invalid="ignore"):
+            boot = tot["boot_num"].reshape(-1, n_times, n_states) / tot["boot_den"][:, :, None]
+        alpha = 0.5 * (1.0 - float(ci))
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)
+            lo, hi = np.nanquantile(boot, [alpha, 1.0 - alpha], axis=0)
+        dead = w_alive <= 0
+        lo[dead], hi[dead] = np.nan, np.nan
+    if np.any(n_alive == 0):
+        warnings.warn(
+            f"populations: no trajectory is alive at {int(np.sum(n_alive == 0))} of {n_times} "
+            "grid times; their populations are NaN.", EnsembleWarning, stacklevel=3)
+    keep = np.arange(n_states) if states is None else np.asarray(list(states), dtype=np.int64)
+    if keep.size and (keep.min() < 0 or keep.max() >= n_states):
+        raise SchemaError(f"The 'states' parameter of populations must hold indices in "
+                          f"[0, {n_states - 1}]; got {keep.tolist()}.")
+    labels = np.asarray(lz.state_labels, dtype=object)
+    frame = pd.DataFrame({
+        "time": np.repeat(grid, keep.size),
+        "state": np.tile(keep, n_times),
+        "label": np.tile(labels[keep], n_times),
+        "population": pop[:, keep].ravel(),
+        "lower": lo[:, keep].ravel(),
+        "upper": hi[:, keep].ravel(),
+        "n_alive": np.repeat(n_alive, keep.size),
+        "n_eff": np.repeat(n_eff, keep.size),
+    })
+    t_end = lz.trajectories["t_end"].to_numpy()
+    ids = lz.trajectories["traj"].to_numpy()
+    frame.attrs.update(
+        kind=kind, method=method, ci=float(ci), weights=wlabel,
+        n_boot=int(n_boot) if method == "bootstrap" else 0,
+        excluded=ids[excluded].tolist(),
+        ended_early=ids[(t_end < grid[-1]) & ~excluded].tolist(),
+    )
+    return frame
+
+
+# ------------------------------------------------------------------------ trajectory flags
+def _flags_chunk(path: str, index: int, opts: Mapping[str, Any]) -> dict[str, Any]:
+    from ..io.chunked import load_chunk
+    from .outliers import flag_trajectories as flag_in_memory
+
+    ens = load_chunk(path, index)
+    table = flag_in_memory(ens, thresholds=opts["th"], multivariate=False,
+                           chunk_size=opts["chunk_size"])
+    tix = ens.traj_index
+    time = ens.snapshots["time"].to_numpy()
+    same = np.r_[False, tix[1:] == tix[:-1]]
+    dt_all = np.diff(time)[same[1:]] if ens.n_snapshots > 1 else np.zeros(0)
+    local_med = float(np.median(dt_all)) if dt_all.size else math.nan
+    hops = ens.hops()
+    n_hops = np.bincount(np.searchsorted(ens.trajectories["traj"].to_numpy(),
+                                         hops["traj"].to_numpy()),
+                         minlength=ens.n_trajectories).astype(np.float64)
+    finite = np.isfinite(ens.geometries).all(axis=(1, 2))
+    e_act = ens.energies[np.arange(ens.n_snapshots), ens.snapshots["active"].to_numpy()]
+    e_act = np.where(np.isfinite(e_act), e_act, np.nan)
+    e_mean = pd.Series(e_act).groupby(tix).mean().reindex(
+        range(ens.n_trajectories)).to_numpy()
+    return {"table": table, "n_hops": n_hops, "n_finite": int(finite.sum()),
+            "e_mean": e_mean, "local_median": local_med}
+
+
+def _gather_chunk(path: str, index: int, positions: np.ndarray) -> np.ndarray:
+    """Geometries (float64) of the finite rows number `positions` (within the chunk)."""
+    from ..io.chunked import load_chunk_array
+
+    geoms = load_chunk_array(path, index, "geometries", mmap=True)
+    finite = np.isfinite(geoms).all(axis=(1, 2))
+    rows = np.flatnonzero(finite)[positions]
+    return np.asarray(geoms[rows], dtype=np.float64)
+
+
+def _rmsd_chunk(path: str, index: int, ref: np.ndarray) -> dict[str, np.ndarray]:
+    from ..io.chunked import load_chunk
+    from .geometry import rmsd
+
+    ens = load_chunk(path, index, fields=["geometries"])
+    finite = np.isfinite(ens.geometries).all(axis=(1, 2))
+    fin_rows = np.flatnonzero(finite)
+    rm = np.full(ens.n_snapshots, np.nan)
+    if fin_rows.size:
+        rm[fin_rows] = rmsd(ens.geometries[fin_rows], ref)
+    g = pd.DataFrame({"t": ens.traj_index, "r": rm}).groupby("t")["r"]
+    rng = range(ens.n_trajectories)
+    return {"mean": g.mean().reindex(rng).to_numpy(), "max": g.max().reindex(rng).to_numpy()}
+
+
+def _thresholds(thresholds: Any) -> Any:
+    from .outliers import OutlierThresholds
+
+    if thresholds is None:
+        return OutlierThresholds()
+    if isinstance(thresholds, OutlierThresholds):
+        return thresholds
+    if isinstance(thresholds, Mapping):
+        names = {f.name for f in dataclasses.fields(OutlierThresholds)}
+        unknown = set(thresholds) - names
+        if unknown:
+            raise SchemaError(f"thresholds has unknown field(s) {sorted(unknown)}; known: "
+                              f"{sorted(names)}.")
+        return dataclasses.replace(OutlierThresholds(), **dict(thresholds))
+    raise SchemaError(f"thresholds must be an OutlierThresholds or a mapping; got "
+                      f"{type(thresholds).__name__}.")
+
+
+def flag_trajectories(
+    lz: LazyEnsemble,
+    *,
+    thresholds: Any = None,
+    multivariate: bool = True,
+    random_state: int = 0,
+    chunk_size: int = 65536,
+    client: Any = None,
+    scheduler: Any = None,
+    progress: bool = True,
+) -> pd.DataFrame:
+    """:func:`ensemblelab.compute.outliers.flag_trajectories` for a lazy ensemble (see there).
+
+    The rule-based checks run per chunk with the ensemble-wide expected end time
+    and tolerance. One caveat: the missing-steps rule uses the median step of
+    each chunk's own trajectories; when that differs from the ensemble median an
+    EnsembleWarning says so (regular time steps, the normal case, give equal medians).
+    """
+    th = _thresholds(thresholds)
+    dt_med = median_step(lz, client=client, scheduler=scheduler)
+    t_end_all = lz.trajectories["t_end"].to_numpy(dtype=np.float64)
+    t_ref = th.expected_t_end if th.expected_t_end is not None else (
+        float(t_end_all.max()) if lz.n_trajectories else 0.0)
+    tol = th.end_tolerance if th.end_tolerance is not None else (
+        1.5 * dt_med if np.isfinite(dt_med) else 0.0)
+    th_chunk = dataclasses.replace(th, expected_t_end=t_ref, end_tolerance=tol)
+    opts = {"th": th_chunk, "chunk_size": chunk_size}
+    parts = _compute(_tasks(lz, _flags_chunk, opts), client=client, scheduler=scheduler,
+                     progress=progress, desc="flag chunks")
+    meds = np.array([p["local_median"] for p in parts])
+    differs = np.isfinite(meds) & np.isfinite(dt_med) & (meds != dt_med)
+    if np.any(differs):
+        warnings.warn(
+            f"flag_trajectories: the median time step of {int(differs.sum())} chunk(s) differs "
+            f"from the ensemble median ({dt_med:.6g} fs); their missing-steps check used the "
+            "chunk's own median.", EnsembleWarning, stacklevel=3)
+    table = pd.concat([p["table"] for p in parts], ignore_index=True)
+    n_traj = len(table)
+    if multivariate and n_traj >= 8:
+        score, unusual = _multivariate_lazy(lz, parts, table, th, random_state,
+                                            client=client, scheduler=scheduler)
+        table["score"] = score
+        table["unusual"] = unusual
+        text = [f"unusual trajectory (isolation-forest score {score[r]:.3g}, among the "
+                f"{th.contamination:.0%} most atypical)" for r in range(n_traj)]
+        flags = table["flags"].tolist()
+        reason = table["reason"].tolist()
+        flagged = table["flagged"].to_numpy().copy()
+        n_flags = table["n_flags"].to_numpy().copy()
+        for r in np.flatnonzero(unusual):
+            flags[r] = f"{flags[r]};unusual" if flags[r] else "unusual"
+            reason[r] = f"{reason[r]}; {text[r]}" if reason[r] else text[r]
+            n_flags[r] += 1
+            if "unusual" in th.broken_kinds:
+                flagged[r] = True
+        table["flags"], table["reason"] = flags, reason
+        table["flagged"], table["n_flags"] = flagged, n_flags
+    return table
+
+
+def _multivariate_lazy(lz: LazyEnsemble, parts: Sequence[Mapping[str, Any]],
+                       table: pd.DataFrame, th: Any, random_state: int, *, client: Any,
+                       scheduler: Any) -> tuple[np.ndarray, np.ndarray]:
+    """The isolation-forest score of ``outliers._multivariate``, assembled from chunks."""
+    from sklearn.ensemble import IsolationForest
+    from sklearn.preprocessing import RobustScaler
+
+    from .geometry import mean_structure
+
+    dask = _dask()
+    n_fin = np.array([p["n_finite"] for p in parts], dtype=np.int64)
+    total_fin = int(n_fin.sum())
+    rng = np.random.default_rng(random_state)
+    if total_fin <= 5000:
+        pos = np.arange(total_fin)
+    else:  # rng.choice(fin_rows, k) == fin_rows[rng.choice(len(fin_rows), k)]
+        pos = np.sort(rng.choice(total_fin, 5000, False))
+    feats = [table[c].to_numpy(np.float64) for c in ("max_drift", "max_jump")]
+    feats.append(np.concatenate([p["n_hops"] for p in parts]))
+    feats += [table[c].to_numpy(np.float64) for c in ("max_hop_gap", "t_end")]
+    if pos.size:
+        offsets = np.r_[0, np.cumsum(n_fin)]
+        gathers = []
+        path = str(lz.path)
+        for i in range(len(parts)):
+            sel = pos[(pos >= offsets[i]) & (pos < offsets[i + 1])] - offsets[i]
+            if sel.size:
+                gathers.append(dask.delayed(_gather_chunk, pure=True)(path, i, sel))
+        geoms = _compute(gathers, client=client, scheduler=scheduler, progress=False,
+                         desc="subsample")
+        ref, _ = mean_structure(np.concatenate(geoms), max_iter=10, tol=1e-6)
+        rms = _compute(_tasks(lz, _rmsd_chunk, ref), client=client, scheduler=scheduler,
+                       progress=False, desc="rmsd")
+        feats += [np.concatenate([r["mean"] for r in rms]),
+                  np.concatenate([r["max"] for r in rms])]
+    feats.append(np.concatenate([p["e_mean"] for p in parts]))
+    F = np.column_stack(feats).astype(np.float64)
+    n = F.shape[0]
+    keep = np.isfinite(F).any(axis=0) & (np.nanstd(F, axis=0) > 0)
+    F = F[:, keep]
+    if F.shape[1] == 0:
+        return np.full(n, np.nan), np.zeros(n, bool)
+    med = np.nanmedian(F, axis=0)
+    F = np.where(np.isfinite(F), F, med)
+    F = RobustScaler().fit_transform(F)
+    forest = IsolationForest(n_estimators=200, contamination=th.contamination,
+                             random_state=random_state).fit(F)
+    return -forest.score_samples(F), forest.predict(F) == -1
