@@ -52,7 +52,8 @@ def default_data_path() -> Path:
     here = Path(__file__).resolve()
     for parent in here.parents[1:4]:
         candidate = parent / "demo_data"
-        if candidate.is_dir() and any(candidate.iterdir()):
+        if candidate.is_dir() and (any(candidate.glob("*.xyz*"))
+                                   or (candidate / "manifest.json").exists()):
             return candidate
     cache = Path(os.environ.get("XDG_CACHE_HOME", Path.home() / ".cache")) / "ensemblelab"
     target = cache / "demo_data"
@@ -71,7 +72,10 @@ def write_notebook(folder: str | os.PathLike[str], data_path: str | os.PathLike[
     """Write the explorer notebook for `data_path` into `folder`; returns its path."""
     import nbformat
 
-    config = {"path": str(Path(data_path).resolve()), "nonfinite": nonfinite,
+    data_path = Path(data_path).resolve()
+    measured = data_path / "measured_map.csv" if data_path.is_dir() else None
+    config = {"path": str(data_path), "nonfinite": nonfinite,
+              "measured": str(measured) if measured is not None and measured.exists() else None,
               "explorer": dict(explorer or {})}
     literal = json.dumps(json.dumps(config))
     cells = [
@@ -82,7 +86,12 @@ def write_notebook(folder: str | os.PathLike[str], data_path: str | os.PathLike[
             f"config = json.loads({literal})\n"
             "ens = ensemblelab.load(config['path'], nonfinite=config['nonfinite'], "
             "progress=False)\n"
-            "app = Explorer(ens, data_path=config['path'], **config['explorer'])\n"
+            "measured = None\n"
+            "if config['measured']:\n"
+            "    from ensemblelab.io.maps import load_measured_map\n"
+            "    measured = load_measured_map(config['measured'])\n"
+            "app = Explorer(ens, data_path=config['path'], measured=measured, "
+            "**config['explorer'])\n"
             "app"),
     ]
     nb = nbformat.v4.new_notebook(cells=cells)
