@@ -431,28 +431,27 @@ class MapView(View):
         spectrum, trace = self.cuts()
         e = np.asarray(trpes.energies, float)
         d = np.asarray(trpes.delays, float)
-        xs, ys = [e], [spectrum]
-        xt, yt = [d], [trace]
+        ys, yt = [spectrum], [trace]
         if self.measured is not None:
             try:
                 result = self.comparison()
             except Exception as exc:  # noqa: BLE001 - shown, the cuts still draw
                 self.messages.exception(exc, where="measured map")
             else:
+                # the measured cuts, on the simulated scale, drawn on the simulated grid
                 m = result.measured
                 me, md = np.asarray(m.energies, float), np.asarray(m.delays, float)
-                values = np.asarray(m.intensity, float) / max(result.scale, 1e-300)
-                xs.append(me)
-                ys.append(values[_mask(md, self.model.delay_range)].mean(axis=0))
-                xt.append(md)
-                yt.append(values[:, _mask(me, self.model.energy_range)].mean(axis=1))
+                values = np.nan_to_num(np.asarray(m.intensity, float)) / max(result.scale,
+                                                                               1e-300)
+                cut_e = values[_mask(md, self.model.delay_range)].mean(axis=0)
+                cut_d = values[:, _mask(me, self.model.energy_range)].mean(axis=1)
+                ys.append(np.interp(e, me, cut_e, left=np.nan, right=np.nan))
+                yt.append(np.interp(d, md, cut_d, left=np.nan, right=np.nan))
         with self.delay_cut.hold_sync(), self.energy_cut.hold_sync():
-            self.delay_cut_line.x = xs[0] if len(xs) == 1 else xs
-            self.delay_cut_line.y = np.nan_to_num(ys[0])[None] if len(ys) == 1 else [
-                np.nan_to_num(y) for y in ys]
-            self.energy_cut_line.x = xt[0] if len(xt) == 1 else xt
-            self.energy_cut_line.y = np.nan_to_num(yt[0])[None] if len(yt) == 1 else [
-                np.nan_to_num(y) for y in yt]
+            self.delay_cut_line.x = e
+            self.delay_cut_line.y = np.vstack(ys)
+            self.energy_cut_line.x = d
+            self.energy_cut_line.y = np.vstack(yt)
 
 
 def _mask(grid: np.ndarray, rng: tuple[float, float] | None) -> np.ndarray:
