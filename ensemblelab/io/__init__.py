@@ -43,7 +43,9 @@ def load(
         trajectory), a single ``.xyz``/``.xyz.gz`` trajectory, or a CSV/Parquet
         snapshot table.
     lazy : bool
-        Reserved for out-of-core (chunked) loading; not available yet.
+        Return a :class:`~ensemblelab.io.lazy.LazyEnsemble` (Dask arrays over the
+        chunks) of a chunked store (``ensemblelab convert --chunked``). Other inputs
+        are refused with a hint to convert them first.
     energy_unit, time_unit, length_unit : str, optional
         Units of the input when it does not declare them (default eV, fs,
         Angstrom); converted to internal units at the boundary. Ignored for
@@ -68,11 +70,13 @@ def load(
     ParseError, SchemaError, StoreError, UnknownFormatError
         With the file, frame/line, field and a hint.
     """
-    if lazy:
-        raise NotImplementedError(
-            "lazy=True (chunked, out-of-core loading) is not available yet; load eagerly, or "
-            "open a native store with mmap_mode='r' to map its arrays instead of reading them."
-        )
+    from .chunked import is_chunked_store
+
+    if lazy or is_chunked_store(path):  # chunked store: a LazyEnsemble (or all of it)
+        from .lazy import LazyEnsemble, lazy_from
+
+        lz = lazy_from(path, format=format) if lazy else LazyEnsemble(path)
+        return lz if lazy else lz.compute()
     name = format or detect_format(path)
     loader = get_loader(name)
     if name == "store":

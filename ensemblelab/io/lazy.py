@@ -333,3 +333,18 @@ class LazyEnsemble:
 
 def _column(path: str, index: int, name: str) -> np.ndarray:
     return read_chunk_table(path, index, "snapshots", [name])[name].to_numpy()
+
+
+def lazy_from(path: str | Path, *, format: str | None = None) -> LazyEnsemble:
+    """``load(path, lazy=True)``: open a chunked store, or explain how to make one."""
+    from .chunked import is_chunked_store
+
+    if is_chunked_store(path):
+        return LazyEnsemble(path)
+    raise StoreError(
+        f"{path}: lazy=True needs a chunked native store (layout 'chunked'); this input is "
+        f"{'a single-file store' if (Path(path) / 'manifest.json').is_file() else 'not one'}. "
+        "Hint: convert it with `ensemblelab convert INPUT OUTPUT --chunked` (or "
+        "ensemblelab.io.chunked.convert_extxyz_chunked / save_chunked), then load the output "
+        "with lazy=True."
+    )

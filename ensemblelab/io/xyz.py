@@ -28,26 +28,26 @@ quoted and space separated. Frames must be in increasing time.
 Per-frame keys (names of our own)
 ---------------------------------
 
-==================  ========================================  =================================
-key                 meaning                                   shape / unit
-==================  ========================================  =================================
-``time``            time (required)                           scalar, ``time_unit``
-``active``          active neutral state (required); 0-based  scalar int
-                    unless ``state_base=1``
-``energies``        neutral adiabatic energies (required)     n_states, ``energy_unit``
-``cation_energies`` cation state energies, same zero          n_cation, ``energy_unit``
-``dyson``           squared Dyson norms: of the active state  n_cation, or n_states*n_cation
-                    (n_cation values), or of every state      (row-major, see ``dyson_shape``)
-``amplitudes``      electronic populations abs(c_i)^2         n_states
-``adt``             adiabatic-to-diabatic matrix U (row-major) n_states*n_states
-``adt_cation``      cation ADT matrix (row-major)             n_cation*n_cation
-``overlaps``        state overlaps with the previous step     n_states*n_states (row-major)
-``step``            step index (default 0, 1, ...)            scalar int
-``snapshot``        stable snapshot id (written only after    scalar int
-                    a selection)
-``e_kin, e_tot``    kinetic and total energy                  scalar, ``energy_unit``
-any other key       a user column of the snapshot table       scalar (int, float or text)
-==================  ========================================  =================================
+===================  ==============================================  ==========================
+key                  meaning                                         values / unit
+===================  ==============================================  ==========================
+``time``             time (required)                                 1, ``time_unit``
+``active``           active neutral state (required), 0-based        1 int
+                     unless ``state_base=1``
+``energies``         neutral adiabatic energies (required)           n_states, ``energy_unit``
+``cation_energies``  cation state energies, same zero as energies    n_cation, ``energy_unit``
+``dyson``            squared Dyson norms of the active state, or     n_cation, or
+                     of every state (see ``dyson_shape``)            n_states*n_cation
+``amplitudes``       electronic populations abs(c_i)^2               n_states
+``adt``              adiabatic-to-diabatic matrix U, row-major       n_states*n_states
+``adt_cation``       cation ADT matrix, row-major                    n_cation*n_cation
+``overlaps``         state overlaps with the previous step,          n_states*n_states
+                     row-major
+``step``             step index (default 0, 1, ...)                  1 int
+``snapshot``         stable snapshot id (written after a selection)  1 int
+``e_kin, e_tot``     kinetic and total energy                        1, ``energy_unit``
+any other key        a user column of the snapshot table             1 (int, float, bool, text)
+===================  ==============================================  ==========================
 
 File header keys (read from the first frame of a file; may be repeated)
 -----------------------------------------------------------------------
@@ -69,11 +69,15 @@ key                  meaning
 (counted like ``active``), ``exc_<i>`` excitation energies E_i - E_0 at t = 0
 (in the ``energy_unit`` passed to :func:`load_extxyz`, default eV), ``f_<i>``
 oscillator strengths, ``tdm_<i>_<x|y|z>`` transition dipoles (e*bohr), and any
-user columns.
+user columns. ``metadata.json`` holds the Ensemble metadata, encoded as in the
+native store (see :mod:`ensemblelab.io.store`); its ``sources`` are kept as the
+history and the files read now are appended.
 
-The reader parses a whole file at a time with numpy's C number parser (no
-per-atom Python loop) and converts units at the boundary with
-:mod:`ensemblelab.units` (CODATA via scipy.constants).
+A user column whose values all look like integers is read as int64, numbers as
+float64, ``True``/``False`` as bool, anything else as text (quote text with
+spaces). The reader parses a whole file at a time with pandas' C tokenizer (no
+per-atom Python loop), checks every frame, and converts units at the boundary
+with :mod:`ensemblelab.units` (CODATA via scipy.constants).
 """
 
 from __future__ import annotations

@@ -35,7 +35,8 @@ def test_bench_load_main_quick_prints_ratios(bench, capsys, monkeypatch):
     pytest.importorskip("ase")
     monkeypatch.setattr(bench, "run", lambda **kw: {
         "n_frames_total": 1, "ours_s": 1.0, "ase_s": 2.0, "ours_cpu_s": 1.0, "ase_cpu_s": 2.0,
-        "speed_ratio": 2.0, "cpu_ratio": 2.0, "peak_ratio": 1.2, "retained_ratio": 1.0})
+        "speed_ratio": 2.0, "cpu_ratio": 2.0, "peak_ratio": 1.2, "retained_ratio": 1.0,
+        "rss_peak_ratio": 1.3})
     assert bench.main(["--quick"]) == 0
     out = capsys.readouterr().out
     assert "speed ratio, wall (ase / ours)    : 2.0x" in out and "1.20" in out

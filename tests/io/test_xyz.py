@@ -183,7 +183,9 @@ def test_extxyz_progress_bar_writes_to_stderr(tmp_path, capsys):
     assert capsys.readouterr().err == ""
 
 
-def test_load_lazy_not_implemented(tmp_path):
+def test_load_lazy_needs_a_chunked_store(tmp_path):
+    from ensemblelab.errors import StoreError
+
     folder = write_extxyz(make_toy_ensemble(2), tmp_path / "lz")
-    with pytest.raises(NotImplementedError, match="lazy=True"):
+    with pytest.raises(StoreError, match="lazy=True needs a chunked native store"):
         load(folder, lazy=True)
