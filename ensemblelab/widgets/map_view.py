@@ -438,15 +438,19 @@ class MapView(View):
             except Exception as exc:  # noqa: BLE001 - shown, the cuts still draw
                 self.messages.exception(exc, where="measured map")
             else:
-                # the measured cuts, on the simulated scale, drawn on the simulated grid
+                # the measured cuts, on the simulated scale, drawn where both grids overlap
                 m = result.measured
                 me, md = np.asarray(m.energies, float), np.asarray(m.delays, float)
                 values = np.nan_to_num(np.asarray(m.intensity, float)) / max(result.scale,
                                                                                1e-300)
                 cut_e = values[_mask(md, self.model.delay_range)].mean(axis=0)
                 cut_d = values[:, _mask(me, self.model.energy_range)].mean(axis=1)
-                ys.append(np.interp(e, me, cut_e, left=np.nan, right=np.nan))
-                yt.append(np.interp(d, md, cut_d, left=np.nan, right=np.nan))
+                ie = (e >= me.min()) & (e <= me.max())
+                idl = (d >= md.min()) & (d <= md.max())
+                if ie.sum() >= 2 and idl.sum() >= 2:
+                    e, d = e[ie], d[idl]
+                    ys = [spectrum[ie], np.interp(e, me, cut_e)]
+                    yt = [trace[idl], np.interp(d, md, cut_d)]
         with self.delay_cut.hold_sync(), self.energy_cut.hold_sync():
             self.delay_cut_line.x = e
             self.delay_cut_line.y = np.vstack(ys)
