@@ -34,15 +34,29 @@ _LAZY: dict[str, str] = {
     # spectroscopy
     "GaussianPulse": "ensemblelab.compute.pulses",
     "TRPESMap": "ensemblelab.data.spectrum",
+    "StickSpectrum": "ensemblelab.data.spectrum",
     "compute_trpes": "ensemblelab.compute.spectra",
     "contributions": "ensemblelab.compute.spectra",
+    "prepare_sticks": "ensemblelab.compute.spectra",
+    "doorway_weights": "ensemblelab.compute.spectra",
+    "compare_maps": "ensemblelab.compute.compare",
+    "load_measured_map": "ensemblelab.io.maps",
     # populations and kinetics
     "populations": "ensemblelab.compute.populations",
+    "population_consistency": "ensemblelab.compute.populations",
     "fit_kinetics": "ensemblelab.compute.kinetics",
     "fit_global": "ensemblelab.compute.global_fit",
     # structures
     "cluster_snapshots": "ensemblelab.compute.clustering",
+    "cluster_hops": "ensemblelab.compute.clustering",
     "flag_trajectories": "ensemblelab.compute.outliers",
+    "OutlierThresholds": "ensemblelab.compute.outliers",
+    "kabsch_align": "ensemblelab.compute.geometry",
+    "rmsd": "ensemblelab.compute.geometry",
+    "align_ensemble": "ensemblelab.compute.geometry",
+    "cluster_representatives": "ensemblelab.compute.representatives",
+    "band_representatives": "ensemblelab.compute.representatives",
+    "time_window_representatives": "ensemblelab.compute.representatives",
 }
 
 __all__ = [
@@ -55,17 +69,35 @@ __all__ = [
     "StoreError",
     "UnitWarning",
     "UnknownFormatError",
+    # io
     "load",
     "save",
+    "load_measured_map",
+    # spectroscopy
     "GaussianPulse",
     "TRPESMap",
+    "StickSpectrum",
     "compute_trpes",
     "contributions",
+    "prepare_sticks",
+    "doorway_weights",
+    "compare_maps",
+    # populations and kinetics
     "populations",
+    "population_consistency",
     "fit_kinetics",
     "fit_global",
+    # structures
     "cluster_snapshots",
+    "cluster_hops",
     "flag_trajectories",
+    "OutlierThresholds",
+    "kabsch_align",
+    "rmsd",
+    "align_ensemble",
+    "cluster_representatives",
+    "band_representatives",
+    "time_window_representatives",
 ]
 
 

@@ -9,6 +9,18 @@ import importlib
 from typing import Any
 
 _LAZY: dict[str, str] = {
+    "prepare_sticks": "ensemblelab.compute.spectra",
+    "doorway_weights": "ensemblelab.compute.spectra",
+    "compare_maps": "ensemblelab.compute.compare",
+    "population_consistency": "ensemblelab.compute.populations",
+    "cluster_hops": "ensemblelab.compute.clustering",
+    "OutlierThresholds": "ensemblelab.compute.outliers",
+    "kabsch_align": "ensemblelab.compute.geometry",
+    "rmsd": "ensemblelab.compute.geometry",
+    "align_ensemble": "ensemblelab.compute.geometry",
+    "cluster_representatives": "ensemblelab.compute.representatives",
+    "band_representatives": "ensemblelab.compute.representatives",
+    "time_window_representatives": "ensemblelab.compute.representatives",
     "GaussianPulse": "ensemblelab.compute.pulses",
     "compute_trpes": "ensemblelab.compute.spectra",
     "contributions": "ensemblelab.compute.spectra",
