@@ -12,6 +12,10 @@ __all__ = ["register"]
 
 def _run(args: argparse.Namespace) -> int:
     args.path = args.src
+    if getattr(args, "chunked", False):  # streamed into the chunked store (larger than memory)
+        from ._chunked_convert import run_chunked
+
+        return run_chunked(args)
     ens = load_from_args(args)
     if args.to == "store":
         from ..io import save
@@ -41,5 +45,10 @@ def register(subparsers: argparse._SubParsersAction) -> None:
     p.add_argument("--compress", action="store_true", help="gzip the files (--to extxyz)")
     p.add_argument("--overwrite", action="store_true",
                    help="replace DST if it is a store (never any other folder)")
+    p.add_argument("--chunked", action="store_true",
+                   help="write the chunked store (for ensembles larger than memory; extended-XYZ "
+                        "folders are streamed file by file); open it with load(DST, lazy=True)")
+    p.add_argument("--chunk-size", type=int, default=1000,
+                   help="trajectories per chunk with --chunked (default 1000)")
     add_load_options(p)
     p.set_defaults(func=_run)

@@ -173,6 +173,7 @@ def flag_trajectories(
     multivariate: bool = True,
     random_state: int = 0,
     chunk_size: int = 65536,
+    client: Any = None,
 ) -> pd.DataFrame:
     """Flag broken and unusual trajectories, with a readable reason for every flag.
 
@@ -209,6 +210,9 @@ def flag_trajectories(
         Seed of the isolation forest.
     chunk_size : int
         Snapshots per chunk for the distance checks (memory bound).
+    client : dask.distributed.Client, optional
+        For a lazy ensemble (``load(path, lazy=True)``): run the per-chunk checks on
+        this cluster (default: Dask's default scheduler).
 
     Returns
     -------
@@ -231,6 +235,12 @@ def flag_trajectories(
     True
     >>> clean = ens.without(table[table.flagged])
     """
+    from . import _dask
+
+    if _dask.is_lazy(ens):  # chunked store: per-chunk checks with Dask
+        return _dask.flag_trajectories(ens, thresholds=thresholds, multivariate=multivariate,
+                                       random_state=random_state, chunk_size=chunk_size,
+                                       client=client)
     if thresholds is None:
         th = OutlierThresholds()
     elif isinstance(thresholds, OutlierThresholds):

@@ -247,6 +247,7 @@ def populations(
     random_state: int | np.random.Generator | None = 0,
     exclude: Iterable[int] | pd.DataFrame | None = None,
     states: Sequence[int] | None = None,
+    client: Any = None,
 ) -> pd.DataFrame:
     """Populations of the electronic states against time, with intervals.
 
@@ -276,6 +277,9 @@ def populations(
     states : sequence of int, optional
         Only report these states (0-based); populations are still normalised
         over all states.
+    client : dask.distributed.Client, optional
+        For a lazy ensemble (``load(path, lazy=True)``): run the per-chunk sums on
+        this cluster (default: Dask's default scheduler).
 
     Returns
     -------
@@ -298,6 +302,12 @@ def populations(
     >>> bool((pop.groupby("time")["population"].sum() - 1).abs().max() < 1e-12)
     True
     """
+    from . import _dask
+
+    if _dask.is_lazy(ens):  # chunked store: per-chunk weighted counts with Dask
+        return _dask.populations(ens, kind=kind, weights=weights, ci=ci, method=method,
+                                 time_grid=time_grid, n_boot=n_boot, random_state=random_state,
+                                 exclude=exclude, states=states, client=client)
     _check_kind(ens, kind)
     if method not in ("wilson", "bootstrap"):
         raise SchemaError(

@@ -594,6 +594,7 @@ def compute_trpes(
     by: str | None = None,
     progress: bool = True,
     time_step: float | None = None,
+    client: Any = None,
 ) -> TRPESMap:
     """Simulated TRPES map of an ensemble (classical doorway-window, eq. 1.4, 1.5, 2.3).
 
@@ -628,6 +629,9 @@ def compute_trpes(
         Progress bar for large ensembles.
     time_step : float, optional
         Internal time grid step (fs); default the median trajectory step.
+    client : dask.distributed.Client, optional
+        For a lazy ensemble (``load(path, lazy=True)``): run the per-chunk
+        reduction on this cluster (default: Dask's default scheduler).
 
     Returns
     -------
@@ -648,6 +652,14 @@ def compute_trpes(
     >>> m.shape, sorted(m.components)
     ((26, 201), ['S0', 'S1', 'S2'])
     """
+    from . import _dask
+
+    if _dask.is_lazy(ens):  # chunked store: reduce chunk by chunk with Dask
+        return _dask.compute_trpes(ens, probe=probe, pump=pump, energies=energies, delays=delays,
+                                   resolution=resolution, convolve=convolve,
+                                   cross_section=cross_section, weights=weights,
+                                   normalise=normalise, by=by, progress=progress,
+                                   time_step=time_step, client=client)
     model = prepare_sticks(ens, probe=probe, pump=pump, cross_section=cross_section,
                            weights=weights, by=by, time_step=time_step, progress=progress)
     return model.broaden(energies=energies, delays=delays, pump=pump, resolution=resolution,
@@ -703,6 +715,7 @@ def contributions(
     energy_range: Sequence[float],
     delay_range: Sequence[float],
     by: str = "snapshot",
+    client: Any = None,
 ) -> pd.DataFrame:
     """Share of each snapshot (or group) in a region of a TRPES map.
 
@@ -728,6 +741,8 @@ def contributions(
         Delay window in fs.
     by : {"snapshot", "traj"} or str
         Group by snapshot, trajectory, or any column of ``ens.snapshots``.
+    client : dask.distributed.Client, optional
+        For a lazy ensemble: run the per-chunk work on this cluster.
 
     Returns
     -------
@@ -738,6 +753,11 @@ def contributions(
         group key column, ``intensity``, ``share`` and ``n_snapshots``.
         ``attrs["total"]`` holds the region total.
     """
+    from . import _dask
+
+    if _dask.is_lazy(ens):  # chunked store: per-chunk contributions with Dask
+        return _dask.contributions(ens, trpes_map, energy_range=energy_range,
+                                   delay_range=delay_range, by=by, client=client)
     e1, e2 = (float(x) for x in energy_range)
     t1, t2 = (float(x) for x in delay_range)
     if not (e2 > e1 and t2 > t1):

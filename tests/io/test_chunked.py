@@ -153,3 +153,18 @@ def test_import_does_not_import_dask():
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
                          check=True)
     assert out.stdout.strip() == "False"
+
+
+def test_cli_convert_chunked_streams_extxyz(tmp_path, toy, capsys):
+    from ensemblelab.cli import main
+    from ensemblelab.io import load, write_extxyz
+
+    folder = write_extxyz(toy, tmp_path / "xyz")
+    rc = main(["convert", str(folder), str(tmp_path / "c.ens"), "--chunked", "--chunk-size", "5",
+               "--no-progress"])
+    assert rc == 0
+    assert "3 chunk(s)" in capsys.readouterr().out
+    lazy = load(tmp_path / "c.ens", lazy=True)
+    assert lazy.n_chunks == 3
+    # an eager load of a chunked store reads every chunk
+    assert_ensemble_equal(load(tmp_path / "c.ens"), load(folder, progress=False))

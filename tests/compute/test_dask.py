@@ -1,0 +1,130 @@
+"""Lazy (chunked) ensembles give the in-memory results: TRPES, contributions, populations, flags.
+
+Check values throughout: the in-memory result on the same ensemble (computed
+independently, not published); the lazy path must agree to 1e-12 relative.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from ensemblelab import load
+from ensemblelab.compute.outliers import flag_trajectories
+from ensemblelab.compute.populations import populations
+from ensemblelab.compute.pulses import GaussianPulse
+from ensemblelab.compute.spectra import compute_trpes, contributions
+from ensemblelab.io.chunked import save_chunked
+from ensemblelab.testing import make_toy_ensemble
+
+pytest.importorskip("dask")
+RTOL = 1e-12  # the issue's tolerance for lazy vs in-memory
+
+KW = {"probe": GaussianPulse(photon_energy=5.0, fwhm=30.0),
+      "pump": GaussianPulse(photon_energy=4.0, fwhm=20.0),
+      "energies": np.linspace(0.0, 2.0, 81), "delays": np.arange(-40.0, 121.0, 8.0),
+      "progress": False}
+
+
+def _demo_or_toy():
+    try:
+        from ensemblelab.demo import make_ensemble
+    except ImportError:
+        return make_toy_ensemble(24, t_max=100.0, ragged=True, seed=7)
+    return make_ensemble(n_trajectories=24, seed=7)
+
+
+@pytest.fixture(scope="module", params=["demo", "many_chunks"])
+def pair(request, tmp_path_factory):
+    if request.param == "demo":
+        ens, size = _demo_or_toy(), 5
+    else:  # a generated ensemble split into many chunks of 2 trajectories
+        ens, size = make_toy_ensemble(41, t_max=90.0, ragged=True, seed=11), 2
+    path = save_chunked(ens, tmp_path_factory.mktemp(request.param) / "s.ens", chunk_size=size)
+    lazy = load(path, lazy=True)
+    assert lazy.n_chunks == -(-ens.n_trajectories // size)
+    return ens, lazy
+
+
+def _close(a, b):
+    scale = np.nanmax(np.abs(a)) if np.size(a) else 1.0
+    np.testing.assert_allclose(a, b, rtol=RTOL, atol=RTOL * scale)
+
+
+@pytest.mark.parametrize("by", [None, "neutral", "pair"])
+def test_lazy_trpes_equals_in_memory(pair, by):
+    ens, lazy = pair
+    ref = compute_trpes(ens, by=by, **KW)
+    got = compute_trpes(lazy, by=by, **KW)
+    _close(got.intensity, ref.intensity)
+    _close(got.alive, ref.alive)
+    assert sorted(got.components) == sorted(ref.components)
+    for k in ref.components:
+        _close(got.components[k], ref.components[k])
+    assert got.params == ref.params
+    assert np.abs(ref.intensity).max() > 0  # a real map, not zeros on both sides
+
+
+@pytest.mark.parametrize("by", ["snapshot", "traj", "active"])
+def test_lazy_contributions_equal_in_memory(pair, by):
+    ens, lazy = pair
+    region = {"energy_range": (0.4, 1.6), "delay_range": (0.0, 60.0), "by": by}
+    ref = contributions(ens, compute_trpes(ens, **KW), **region)
+    got = contributions(lazy, compute_trpes(lazy, **KW), **region)
+    assert len(ref) > 0
+    pd.testing.assert_frame_equal(got, ref, rtol=RTOL, check_dtype=False)
+    assert got.attrs["total"] == pytest.approx(ref.attrs["total"], rel=RTOL)
+
+
+def test_lazy_contributions_of_an_in_memory_map(pair):
+    ens, lazy = pair
+    m = compute_trpes(ens, **KW)  # the map does not know the lazy ensemble: grid is rebuilt
+    region = {"energy_range": (0.4, 1.6), "delay_range": (0.0, 60.0), "by": "traj"}
+    pd.testing.assert_frame_equal(contributions(lazy, m, **region),
+                                  contributions(ens, m, **region), rtol=RTOL)
+
+
+@pytest.mark.parametrize(("kind", "method"), [("active", "wilson"), ("amplitudes", "wilson"),
+                                              ("diabatic", "bootstrap")])
+def test_lazy_populations_equal_in_memory(pair, kind, method):
+    ens, lazy = pair
+    if kind == "diabatic" and ens.adt is None:
+        pytest.skip("no ADT matrices")
+    ref = populations(ens, kind=kind, method=method, n_boot=40)
+    got = populations(lazy, kind=kind, method=method, n_boot=40)
+    pd.testing.assert_frame_equal(got, ref, rtol=RTOL)
+    assert got.attrs == ref.attrs
+
+
+def test_lazy_populations_on_a_grid_with_exclusions(pair):
+    ens, lazy = pair
+    ex = ens.trajectories["traj"].to_numpy()[::3]
+    kw = {"time_grid": np.linspace(0.0, 80.0, 17), "exclude": ex, "weights": "uniform"}
+    pd.testing.assert_frame_equal(populations(lazy, **kw), populations(ens, **kw), rtol=RTOL)
+
+
+def test_lazy_flags_equal_in_memory(pair):
+    ens, lazy = pair
+    th = {"hop_gap": 2.0, "drift_reject": 2.0}
+    ref = flag_trajectories(ens, thresholds=th)
+    got = flag_trajectories(lazy, thresholds=th)
+    pd.testing.assert_frame_equal(got, ref, rtol=RTOL)
+    assert ref["flagged"].any()  # the ragged ensemble has early ends to find
+
+
+def test_lazy_trpes_on_a_local_cluster(pair):
+    distributed = pytest.importorskip("distributed")
+    ens, lazy = pair
+    # two workers talking TCP on loopback (threads in this process keep the test fast)
+    cluster = distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=False,
+                                       host="127.0.0.1", protocol="tcp://",
+                                       dashboard_address=None)
+    try:
+        with distributed.Client(cluster) as client:
+            got = compute_trpes(lazy, client=client, **KW)
+            pops = populations(lazy, client=client)
+    finally:
+        cluster.close()
+    _close(got.intensity, compute_trpes(ens, **KW).intensity)
+    pd.testing.assert_frame_equal(pops, populations(ens), rtol=RTOL)
