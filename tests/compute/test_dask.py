@@ -128,3 +128,19 @@ def test_lazy_trpes_on_a_local_cluster(pair):
         cluster.close()
     _close(got.intensity, compute_trpes(ens, **KW).intensity)
     pd.testing.assert_frame_equal(pops, populations(ens), rtol=RTOL)
+
+
+def test_bench_scale_smoke(tmp_path):
+    import importlib.util
+    from pathlib import Path
+
+    file = Path(__file__).resolve().parents[2] / "benchmarks" / "bench_scale.py"
+    spec = importlib.util.spec_from_file_location("bench_scale", file)
+    bench = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(bench)
+    path = tmp_path / "s.ens"
+    bench.generate(path, n_trajectories=7, n_steps=40, chunk_size=3, progress=False)
+    lazy = bench.lazy_run(path, progress=False)
+    mem = bench.memory_run(path, n_subset=7)
+    # same trajectories both ways: the same sticks (computed independently, not published)
+    assert lazy["n_sticks"] == mem["n_sticks"] == 7 * 40
