@@ -51,10 +51,10 @@ def default_data_path() -> Path:
     """The demo data: ``demo_data/`` beside the package sources, else a cached regenerated copy."""
     here = Path(__file__).resolve()
     for parent in here.parents[1:4]:
-        candidate = parent / "demo_data"
-        if candidate.is_dir() and (any(candidate.glob("*.xyz*"))
-                                   or (candidate / "manifest.json").exists()):
-            return candidate
+        for candidate in (parent / "demo_data" / "ensemble", parent / "demo_data"):
+            if candidate.is_dir() and (any(candidate.glob("*.xyz*"))
+                                       or (candidate / "manifest.json").exists()):
+                return candidate
     cache = Path(os.environ.get("XDG_CACHE_HOME", Path.home() / ".cache")) / "ensemblelab"
     target = cache / "demo_data"
     if not (target.is_dir() and any(target.glob("*.xyz*"))):
@@ -73,9 +73,11 @@ def write_notebook(folder: str | os.PathLike[str], data_path: str | os.PathLike[
     import nbformat
 
     data_path = Path(data_path).resolve()
-    measured = data_path / "measured_map.csv" if data_path.is_dir() else None
+    # a measured map shipped with the data: inside the data folder or beside it
+    found = [p for p in (data_path / "measured_map.csv", data_path.parent / "measured_map.csv")
+             if data_path.is_dir() and p.is_file()]
     config = {"path": str(data_path), "nonfinite": nonfinite,
-              "measured": str(measured) if measured is not None and measured.exists() else None,
+              "measured": str(found[0]) if found else None,
               "explorer": dict(explorer or {})}
     literal = json.dumps(json.dumps(config))
     cells = [
