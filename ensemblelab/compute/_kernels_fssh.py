@@ -198,7 +198,7 @@ class FSSHState:
     vd: np.ndarray  # (n_traj, n, n) diabatic matrix at q
     e: np.ndarray  # (n_traj, n) adiabatic energies
     u: np.ndarray  # (n_traj, n, n) ADT matrices
-    gad: np.ndarray  # (n_traj, n_dof, n, n) adiabatic gradient matrices
+    g: np.ndarray  # (n_traj, n_dof, n, n) diabatic gradient matrices dV/dq
     e_bath: np.ndarray  # (n_traj,) energy removed by friction
     n_hops: np.ndarray  # (n_traj,) int
     n_frustrated: np.ndarray  # (n_traj,) int
@@ -217,28 +217,35 @@ class FSSHState:
 
 
 def evaluate(model, q: np.ndarray, u_prev: np.ndarray | None):
-    """Diabatic matrix, adiabatic energies, ADT and adiabatic gradients at q."""
+    """Diabatic matrix, adiabatic energies, ADT and diabatic gradients at q."""
     vd = np.asarray(model.diabatic(q), dtype=float)
     g = np.asarray(model.gradient(q), dtype=float)
     e, u = adiabatic_states(vd, u_prev)
-    return vd, e, u, adiabatic_gradients(u, g)
+    return vd, e, u, g
 
 
-def _active_force(gad: np.ndarray, active: np.ndarray) -> np.ndarray:
-    r = np.arange(gad.shape[0])
-    return -gad[r, :, active, active]
+def _coupling(g: np.ndarray, u: np.ndarray, a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """``<a|dV/dq|b>`` for one pair of adiabatic states per trajectory, shape (n_traj, n_dof)."""
+    r = np.arange(g.shape[0])
+    ua, ub = u[r, a], u[r, b]
+    return np.einsum("nmd,nd->nm", np.einsum("nmde,ne->nmd", g, ub), ua)
+
+
+def _active_force(g: np.ndarray, u: np.ndarray, active: np.ndarray) -> np.ndarray:
+    """Hellmann-Feynman force ``-<a|dV/dq|a>`` on the active state, shape (n_traj, n_dof)."""
+    return -_coupling(g, u, active, active)
 
 
 def initial_state(model, q: np.ndarray, v: np.ndarray, state: np.ndarray) -> FSSHState:
     """Build the state at t = 0 with all population on adiabatic `state`."""
-    vd, e, u, gad = evaluate(model, q, None)
+    vd, e, u, g = evaluate(model, q, None)
     n_traj, n = e.shape
     ca = np.zeros((n_traj, n), dtype=complex)
     ca[np.arange(n_traj), state] = 1.0
     c = _apply(np.swapaxes(u, 1, 2), ca)
     z = np.zeros(n_traj, dtype=np.int64)
     return FSSHState(q=q.copy(), v=v.copy(), c=c, active=state.astype(np.int64).copy(), vd=vd,
-                     e=e, u=u, gad=gad, e_bath=np.zeros(n_traj), n_hops=z, n_frustrated=z.copy())
+                     e=e, u=u, g=g, e_bath=np.zeros(n_traj), n_hops=z, n_frustrated=z.copy())
 
 
 def fssh_step(
@@ -279,12 +286,12 @@ def fssh_step(
     n_traj = st.q.shape[0]
     r = np.arange(n_traj)
     inv_m = 1.0 / masses
-    f0 = _active_force(st.gad, st.active)
+    f0 = _active_force(st.g, st.u, st.active)
     v_half = st.v + (0.5 * dt) * f0 * inv_m
     q1 = st.q + dt * v_half
-    vd1, e1, u1, gad1 = evaluate(model, q1, st.u)
+    vd1, e1, u1, g1 = evaluate(model, q1, st.u)
     active = st.active.copy()
-    f1 = _active_force(gad1, active)
+    f1 = _active_force(g1, u1, active)
     v1 = v_half + (0.5 * dt) * f1 * inv_m
     e_bath = st.e_bath.copy()
     if friction is not None:
@@ -312,7 +319,8 @@ def fssh_step(
         idx = np.flatnonzero(will)
         target = np.argmax(zeta[idx, None] < cum[idx], axis=1)
         a = active[idx]
-        d = gad1[idx, :, a, target]  # direction of the nonadiabatic coupling vector
+        # direction of the nonadiabatic coupling vector <a|dV/dq|l> / (E_l - E_a)
+        d = _coupling(g1[idx], u1[idx], a, target)
         vv = v1[idx]
         dn = np.sqrt(np.sum(d * d, axis=1))
         no_d = dn <= 1e-300
@@ -329,7 +337,7 @@ def fssh_step(
         gamma = np.where(ok, (bb - sgn * np.sqrt(np.where(ok, disc, 0.0))) / (2.0 * aa), 0.0)
         vv = vv - gamma[:, None] * d * inv_m
         if reverse_frustrated:
-            ft = -gad1[idx, :, target, target]
+            ft = -_coupling(g1[idx], u1[idx], target, target)
             rev = ~ok & (np.sum(ft * d, axis=1) * bb < 0)
             vv = np.where(rev[:, None], vv - (bb / aa)[:, None] * d * inv_m, vv)
         v1[idx] = vv
@@ -350,5 +358,5 @@ def fssh_step(
         pa = np.maximum(p[r, active], 1e-300)
         ca1[r, active] *= np.sqrt(np.maximum(1.0 - rest, 0.0) / pa)
         c1 = _apply(np.swapaxes(u1, 1, 2), ca1)
-    return FSSHState(q=q1, v=v1, c=c1, active=active, vd=vd1, e=e1, u=u1, gad=gad1,
+    return FSSHState(q=q1, v=v1, c=c1, active=active, vd=vd1, e=e1, u=u1, g=g1,
                      e_bath=e_bath, n_hops=n_hops, n_frustrated=n_frus)
