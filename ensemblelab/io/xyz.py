@@ -189,10 +189,11 @@ def _read_text(path: Path) -> str:
         raise ParseError(f"cannot read the file ({exc}).", path=path,
                          hint="check that the file is complete; re-copy a truncated .gz.") from exc
     try:
-        return raw.decode("utf-8")
+        text = raw.decode("utf-8")
     except UnicodeDecodeError as exc:
         raise ParseError(f"the file is not UTF-8 text ({exc}).", path=path,
                          hint="extended-XYZ files are plain text; is this a binary file?") from exc
+    return text.replace("\r\n", "\n") if "\r" in text else text
 
 
 # ---------------------------------------------------------------------------------- parsing

@@ -189,3 +189,25 @@ def test_load_lazy_needs_a_chunked_store(tmp_path):
     folder = write_extxyz(make_toy_ensemble(2), tmp_path / "lz")
     with pytest.raises(StoreError, match="lazy=True needs a chunked native store"):
         load(folder, lazy=True)
+
+
+def test_extxyz_nonfinite_keep_on_a_long_trajectory(tmp_path):
+    # long enough (>4000 numbers per key) to go through the bulk parser, not the small path
+    ens = make_toy_ensemble(1, t_max=2500.0)
+    energies = np.array(ens.energies)
+    energies[1234, 1] = np.nan
+    broken = ens.replace(energies=energies)
+    folder = write_extxyz(broken, tmp_path / "nan")
+    # line: 1234 frames x (4 atoms + 2 lines) + 2 = 7406, the 1-based comment line (derived)
+    with pytest.raises(ParseError, match=r"traj_0.xyz, frame 1234, line 7406, field 'energies'"):
+        load(folder, progress=False)
+    with pytest.warns(ensemblelab.EnsembleWarning, match="first at frame 1234"):
+        back = load(folder, progress=False, nonfinite="keep")
+    assert_ensemble_equal(broken, back)
+
+
+def test_extxyz_windows_line_endings(tmp_path):
+    path = tmp_path / "crlf_0.xyz"
+    path.write_bytes(HAND_WRITTEN.replace("\n", "\r\n").encode())
+    ens = load_extxyz(path, state_base=1, progress=False)
+    assert ens.n_snapshots == 2 and ens.symbols == ("H", "H")
