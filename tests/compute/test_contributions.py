@@ -97,3 +97,22 @@ def test_contributions_rebuilds_from_params(ens_and_map):
     a = contributions(ens, m, **kw)
     b = contributions(ens, fresh, **kw)
     np.testing.assert_allclose(a["intensity"].to_numpy(), b["intensity"].to_numpy(), rtol=1e-12)
+
+
+def test_contributions_top_keeps_strongest_rows_and_region_total():
+    # the top-N view must be the head of the full sorted table (computed independently
+    # from the full table, not published)
+    from ensemblelab import GaussianPulse, compute_trpes, contributions
+    from ensemblelab.testing import make_toy_ensemble
+
+    ens = make_toy_ensemble(30, seed=4, t_max=200.0)
+    m = compute_trpes(ens, probe=GaussianPulse(photon_energy=5.0, fwhm=30.0),
+                      energies=np.linspace(0.0, 2.0, 81), delays=np.arange(-40.0, 201.0, 5.0),
+                      progress=False)
+    full = contributions(ens, m, energy_range=(0.3, 1.7), delay_range=(20.0, 120.0))
+    head = contributions(ens, m, energy_range=(0.3, 1.7), delay_range=(20.0, 120.0), top=25)
+    assert len(head) == 25
+    np.testing.assert_allclose(head["intensity"].to_numpy(), full["intensity"].to_numpy()[:25],
+                               rtol=1e-12)
+    assert head.attrs["total"] == pytest.approx(full.attrs["total"], rel=1e-12)
+    assert head["share"].sum() < 1.0
