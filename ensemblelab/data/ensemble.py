@@ -186,10 +186,10 @@ class Ensemble:
         trajectories : DataFrame, optional
             Per-trajectory table with a ``traj`` column; missing rows get
             ``weight`` 1 and ``initial_state`` from the first snapshot.
-        cation_energies, dyson, amplitudes, adt, adt_cation, overlaps, velocities : array_like, optional
-            Per-snapshot arrays, see :data:`SNAPSHOT_ARRAYS`.
-        excitation_energies, oscillator_strengths, transition_dipoles : array_like, opt.
-            Per-trajectory arrays aligned to the sorted unique trajectory ids.
+        cation_energies, dyson, amplitudes, adt, adt_cation, overlaps, velocities : array_like
+            Optional per-snapshot arrays, see :data:`SNAPSHOT_ARRAYS`.
+        excitation_energies, oscillator_strengths, transition_dipoles : array_like
+            Optional per-trajectory arrays aligned to the sorted unique trajectory ids.
         state_labels, cation_labels : sequence of str, optional
             Defaults ``S0, S1, ...`` and ``D0, D1, ...``.
         metadata : mapping, optional
