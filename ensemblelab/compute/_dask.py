@@ -34,6 +34,7 @@ from __future__ import annotations
 
 import dataclasses
 import math
+import sys
 import warnings
 from collections.abc import Callable, Mapping, Sequence
 from typing import TYPE_CHECKING, Any
@@ -104,13 +105,15 @@ def _compute(objs: Sequence[Any], *, client: Any, scheduler: Any, progress: bool
             def _finish(self, dsk: Any, state: Any, errored: bool) -> None:
                 self.bar.close()
 
-        try:
-            from distributed import default_client
+        has_client = False
+        if "distributed" in sys.modules:  # no client can exist before it is imported
+            try:
+                from distributed import default_client
 
-            default_client()
-            has_client = True
-        except (ImportError, ValueError):
-            has_client = False
+                default_client()
+                has_client = True
+            except (ImportError, ValueError):
+                has_client = False
         if not has_client:
             with _Bar():
                 return tuple(dask.compute(*objs, scheduler=scheduler))
@@ -120,7 +123,76 @@ def _compute(objs: Sequence[Any], *, client: Any, scheduler: Any, progress: bool
 def _tasks(lz: LazyEnsemble, func: Callable[..., Any], *args: Any, **kw: Any) -> list[Any]:
     dask = _dask()
     path = str(lz.path)
+    args = _shared(args)
     return [dask.delayed(func, pure=True)(path, i, *args, **kw) for i in range(lz.n_chunks)]
+
+
+def _one(manifest: Mapping[str, Any], index: int) -> dict[str, Any]:
+    """The part of the manifest a task on chunk `index` needs (its record and the arrays)."""
+    return {"arrays": manifest["arrays"], "chunks": [manifest["chunks"][index]]}
+
+
+def _view_tasks(lz: LazyEnsemble, func: Callable[..., Any], *args: Any,
+                indices: Sequence[int] | None = None) -> list[Any]:
+    """One delayed ``func(path, sub_manifest, *args)`` per chunk (or per chunk of `indices`)."""
+    dask = _dask()
+    path = str(lz.path)
+    m = lz._manifest
+    idx = range(lz.n_chunks) if indices is None else indices
+    args = _shared(args)
+    return [dask.delayed(func, pure=True)(path, _one(m, i), *args) for i in idx]
+
+
+def _shared(args: Sequence[Any]) -> list[Any]:
+    """Mappings among `args` as one graph node each (hashed and shipped once, not per task)."""
+    dask = _dask()
+    return [dask.delayed(a, traverse=False) if isinstance(a, Mapping) else a for a in args]
+
+
+class _ChunkView:
+    """A few fields of one chunk, read without building a validated Ensemble.
+
+    Has the attributes of :class:`~ensemblelab.Ensemble` that the per-chunk
+    reductions use (``snapshots`` with the columns read, ``trajectories``,
+    ``n_snapshots``, ``n_trajectories``, ``n_states``, ``traj_index`` and the arrays
+    read, float64 as in an Ensemble; memory-mapped where stored as float64).
+    Geometries are never read.
+    """
+
+    _ARRAYS = ("energies", "cation_energies", "dyson", "amplitudes", "adt", "adt_cation",
+               "overlaps", "velocities", "excitation_energies", "oscillator_strengths",
+               "transition_dipoles")
+
+    def __init__(self, path: str, sub: Mapping[str, Any], names: Sequence[str]) -> None:
+        from ..io.chunked import read_chunk_fields
+
+        frame, trajs, arrays = read_chunk_fields(path, sub, 0, names)
+        self.snapshots = frame
+        self.trajectories = trajs
+        self.n_snapshots = len(frame)
+        self.n_trajectories = len(trajs)
+        self.n_states = int(next(e for e in sub["arrays"] if e["name"] == "energies")["tail"][0])
+        for name in self._ARRAYS:
+            arr = arrays.get(name)
+            if arr is not None and arr.dtype != np.float64:
+                arr = arr.astype(np.float64)
+            setattr(self, name, arr)
+        self.traj_index = np.searchsorted(trajs["traj"].to_numpy(), frame["traj"].to_numpy())
+        if "active" in frame.columns and self.n_snapshots:
+            active = frame["active"].to_numpy()
+            if active.min() < 0 or active.max() >= self.n_states:
+                from ..errors import StoreError
+
+                raise StoreError(f"{path}: chunk {sub['chunks'][0]['dir']} has active states "
+                                 f"outside [0, {self.n_states - 1}]. Hint: the store is "
+                                 "corrupt; convert the original files again.")
+
+    def active_dyson(self) -> np.ndarray | None:
+        """As :meth:`Ensemble.active_dyson`."""
+        if self.dyson is None or self.dyson.ndim == 2:
+            return self.dyson
+        active = self.snapshots["active"].to_numpy()
+        return self.dyson[np.arange(self.n_snapshots), active]
 
 
 # ------------------------------------------------------------------------ time statistics
@@ -163,11 +235,27 @@ def _merge_time_stats(a: dict[str, Any], b: dict[str, Any]) -> dict[str, Any]:
 
 
 def _time_stats(lz: LazyEnsemble, *, client: Any, scheduler: Any) -> dict[str, Any]:
+    """Time range and time-step counts: from the manifest, reading only chunks without them."""
     cache = lz._cache
     if "time_stats" not in cache:
-        total = _tree(_tasks(lz, _time_stats_chunk), _merge_time_stats)
-        (cache["time_stats"],) = _compute([total], client=client, scheduler=scheduler,
-                                          progress=False, desc="time grid")
+        total: dict[str, Any] = {"t_min": math.inf, "t_max": -math.inf,
+                                 "dt": (np.zeros(0), np.zeros(0, dtype=np.int64))}
+        pending = []
+        for i, c in enumerate(lz._manifest["chunks"]):
+            if "dt_values" not in c:
+                pending.append(i)
+            elif c["n_snapshots"]:
+                total = _merge_time_stats(total, {
+                    "t_min": float(c["t_min"]), "t_max": float(c["t_max"]),
+                    "dt": (np.asarray(c["dt_values"], dtype=np.float64),
+                           np.asarray(c["dt_counts"], dtype=np.int64))})
+        if pending:
+            tasks = [_dask().delayed(_time_stats_chunk, pure=True)(str(lz.path), i)
+                     for i in pending]
+            (rest,) = _compute([_tree(tasks, _merge_time_stats)], client=client,
+                               scheduler=scheduler, progress=False, desc="time grid")
+            total = _merge_time_stats(total, rest)
+        cache["time_stats"] = total
     return cache["time_stats"]
 
 
@@ -202,18 +290,49 @@ def _trpes_fields(by: str | None) -> list[str]:
     return fields
 
 
-def _energy_range_chunk(path: str, index: int, total_energy: float) -> dict[str, Any]:
-    from ..io.chunked import load_chunk
-
-    ens = load_chunk(path, index, fields=["cation_energies"])
-    if ens.cation_energies is None:
+def _energy_range_chunk(path: str, sub: Mapping[str, Any], total_energy: float
+                        ) -> dict[str, Any]:
+    """Smallest and largest open-channel kinetic energy of one chunk (read from its arrays)."""
+    view = _ChunkView(path, sub, ["energies", "cation_energies"])
+    if view.cation_energies is None:
         return {"e_min": math.inf, "e_max": -math.inf}
-    active = ens.snapshots["active"].to_numpy()
-    e_neutral = ens.energies[np.arange(ens.n_snapshots), active]
-    ekin = total_energy - (ens.cation_energies - e_neutral[:, None])
+    active = view.snapshots["active"].to_numpy()
+    e_neutral = view.energies[np.arange(view.n_snapshots), active]
+    ekin = total_energy - (view.cation_energies - e_neutral[:, None])
     e = ekin[ekin > 0]
     return {"e_min": float(e.min()) if e.size else math.inf,
             "e_max": float(e.max()) if e.size else -math.inf}
+
+
+def _energy_range(lz: LazyEnsemble, total_energy: float, *, client: Any, scheduler: Any
+                  ) -> dict[str, float]:
+    """Range of the stick energies ``total_energy - IP`` over open channels (IP < total).
+
+    From each chunk's ``ip_min`` / ``ip_max`` in the manifest: a chunk whose every
+    channel is open gives ``total - ip_max`` and ``total - ip_min`` exactly (float
+    subtraction is monotone), a closed chunk gives nothing; only chunks that are
+    partly open at this photon energy (or lack the summary) are read.
+    """
+    E = total_energy
+    out = {"e_min": math.inf, "e_max": -math.inf}
+    pending = []
+    for i, c in enumerate(lz._manifest["chunks"]):
+        if "ip_min" not in c:
+            pending.append(i)
+            continue
+        lo, hi = c["ip_min"], c["ip_max"]
+        if lo is None or lo >= E:  # no finite IP, or every channel closed
+            continue
+        if hi < E:
+            out = _merge_range(out, {"e_min": E - hi, "e_max": E - lo})
+        else:
+            pending.append(i)
+    if pending:
+        tasks = _view_tasks(lz, _energy_range_chunk, E, indices=pending)
+        (rest,) = _compute([_tree(tasks, _merge_range)], client=client, scheduler=scheduler,
+                           progress=False, desc="energy range")
+        out = _merge_range(out, rest)
+    return out
 
 
 def _merge_range(a: dict[str, float], b: dict[str, float]) -> dict[str, float]:
@@ -257,6 +376,76 @@ def _trpes_chunk(path: str, index: int, opts: Mapping[str, Any]) -> dict[str, An
             tfrac=None if tf is None else (tf if src is None else tf[src]), **grid)
     return {"alive": alive, "hist": hist, "hist_comp": hist_comp,
             "n_sticks": np.int64(sticks.n_sticks), "total_weight": np.array(float(w_traj.sum()))}
+
+
+def _trpes_chunk_fast(path: str, sub: Mapping[str, Any], opts: Mapping[str, Any]
+                      ) -> dict[str, Any]:
+    """Moment histograms of one chunk straight from its arrays (no Ensemble, no geometries).
+
+    The sticks are those of :func:`.spectra.prepare_sticks` (same formulas and
+    order of operations, so the same floating-point values): one per snapshot and
+    open cation channel, energy ``E_probe - (E_cation - E_active)``, weight
+    ``w_traj * sigma``. Used for ``by`` in (None, "neutral", "cation", "pair").
+    """
+    from . import _kernels_trpes as K
+    from .cross_sections import resolve_cross_section
+    from .spectra import trajectory_weights
+
+    names = ["energies", "cation_energies", "dyson"]
+    if opts["weights"] == "doorway" and opts["pump"] is not None:
+        names += ["excitation_energies", "transition_dipoles", "oscillator_strengths"]
+    view = _ChunkView(path, sub, names)
+    cs = resolve_cross_section(opts["cross_section"])
+    w_traj, _ = trajectory_weights(view, weights=opts["weights"], pump=opts["pump"])
+    w_snap = w_traj[view.traj_index]
+    start, dt, n_time = opts["start"], opts["dt"], opts["n_time"]
+    j, frac = _bins(view.snapshots["time"].to_numpy(), start, dt)
+    alive = K.deposit_counts(j, w_snap, n_time=n_time, tfrac=frac)
+    active = view.snapshots["active"].to_numpy()
+    e_neutral = view.energies[np.arange(view.n_snapshots), active]
+    ip = view.cation_energies - e_neutral[:, None]
+    total_energy = opts["probe"].total_energy
+    ekin = total_energy - ip
+    snap, chan = np.nonzero(ekin > 0)
+    dyson = view.active_dyson()
+    sigma = np.asarray(cs(dyson[snap, chan], ekin[snap, chan], ip[snap, chan], chan,
+                          total_energy), dtype=float)
+    if sigma.shape != snap.shape or not np.all(np.isfinite(sigma)) or np.any(sigma < 0):
+        raise SchemaError("the cross-section model must return finite values >= 0, one per "
+                          "stick.")
+    energy = ekin[snap, chan]
+    weight = w_snap[snap] * sigma
+    tb = j[snap]
+    tf = None if frac is None else frac[snap]
+    grid = {"n_time": n_time, "e_lo": opts["e_lo"], "h": opts["h"], "n_fine": opts["n_fine"],
+            "order": opts["order"], "tfrac": tf}
+    hist = K.deposit_moments(tb, energy, weight, **grid)
+    hist_comp = None
+    by = opts["by"]
+    if by is not None:
+        n_cat = view.cation_energies.shape[1]
+        comp = {"neutral": lambda: active[snap], "cation": lambda: chan,
+                "pair": lambda: active[snap] * n_cat + chan}[by]()
+        hist_comp = K.deposit_moments(tb, energy, weight, comp=comp, n_comp=opts["n_comp"],
+                                      **grid)
+    return {"alive": alive, "hist": hist, "hist_comp": hist_comp,
+            "n_sticks": np.int64(snap.size), "total_weight": np.array(float(w_traj.sum()))}
+
+
+def _weights_word(lz: LazyEnsemble, weights: str, pump: Any) -> str:
+    """``params["weights"]`` of the map (as ``trajectory_weights`` names it), from the manifest."""
+    import types
+
+    from .spectra import trajectory_weights
+
+    if weights == "doorway" and pump is not None and lz.has("excitation_energies") and (
+            lz.has("transition_dipoles") or lz.has("oscillator_strengths")):
+        return "doorway"
+    # every other case looks at the trajectory table only
+    table = types.SimpleNamespace(trajectories=lz.trajectories,
+                                  n_trajectories=lz.n_trajectories, excitation_energies=None,
+                                  transition_dipoles=None, oscillator_strengths=None)
+    return trajectory_weights(table, weights=weights, pump=pump)[1]
 
 
 def _trpes_setup(lz: LazyEnsemble, *, probe: Any, pump: Any, cross_section: Any, weights: str,
@@ -330,7 +519,6 @@ def compute_trpes(
         TRPESModel,
         _check_grid,
         _check_nonneg,
-        trajectory_weights,
     )
 
     energies = _check_grid(energies, "energies")
@@ -344,24 +532,24 @@ def compute_trpes(
                         scheduler=scheduler)
     probe, pump = opts["probe"], opts["pump"]
     cs = resolve_cross_section(cross_section)
-    # the word params["weights"] uses, from the (small) trajectory table alone
-    first = lz.chunk(0, fields=["excitation_energies", "transition_dipoles",
-                                "oscillator_strengths"]) if lz.n_chunks else None
-    _, weights_used = trajectory_weights(first, weights=weights, pump=pump)
+    # the word params["weights"] uses, from the manifest and the trajectory table
+    weights_used = _weights_word(lz, weights, pump)
     fwhm = math.hypot(probe.effective_spectral_fwhm, resolution)
     h = fwhm / DEFAULT_BINS_PER_FWHM
-    rng = _tree(_tasks(lz, _energy_range_chunk, probe.total_energy), _merge_range)
-    (erange,) = _compute([rng], client=client, scheduler=scheduler, progress=False,
-                         desc="energy range")
+    erange = _energy_range(lz, probe.total_energy, client=client, scheduler=scheduler)
     e_lo = erange["e_min"] if math.isfinite(erange["e_min"]) else 0.0
     e_hi = erange["e_max"] if math.isfinite(erange["e_max"]) else 0.0
     n_fine = int(math.floor((e_hi - e_lo) / h + 0.5)) + 2
-    opts.update(e_lo=e_lo, h=h, n_fine=n_fine, order=DEFAULT_ORDER,
-                bins_per_fwhm=DEFAULT_BINS_PER_FWHM)
-    (total,) = _compute([_tree(_tasks(lz, _trpes_chunk, opts), _add)], client=client,
-                        scheduler=scheduler, progress=progress, desc="TRPES chunks")
-    wsum = total
     labels = _labels(lz, by)
+    opts.update(e_lo=e_lo, h=h, n_fine=n_fine, order=DEFAULT_ORDER,
+                bins_per_fwhm=DEFAULT_BINS_PER_FWHM, n_comp=len(labels))
+    if by == "diabatic":  # needs the ADT matrices: the validated-Ensemble path
+        tasks = _tasks(lz, _trpes_chunk, opts)
+    else:
+        tasks = _view_tasks(lz, _trpes_chunk_fast, opts)
+    (total,) = _compute([_tree(tasks, _add)], client=client, scheduler=scheduler,
+                        progress=progress, desc="TRPES chunks")
+    wsum = total
     if total["hist_comp"] is None and by is not None:
         total["hist_comp"] = np.zeros((DEFAULT_ORDER, len(labels), opts["n_time"], n_fine))
     empty = np.zeros(0)
@@ -502,16 +690,15 @@ def contributions(
 
 
 # ------------------------------------------------------------------------ populations
-def _pop_chunk(path: str, index: int, opts: Mapping[str, Any]) -> dict[str, Any]:
-    from ..io.chunked import load_chunk
+def _pop_chunk(path: str, sub: Mapping[str, Any], opts: Mapping[str, Any]) -> dict[str, Any]:
     from . import _kernels_populations as _k
     from .populations import _BLOCK, _values_block
 
     kind = opts["kind"]
     fields = {"active": [], "amplitudes": ["amplitudes"], "diabatic": ["adt"]}[kind]
-    ens = load_chunk(path, index, fields=fields)
+    ens = _ChunkView(path, sub, fields)
     grid = opts["grid"]
-    lo = opts["traj_rows"][index]
+    lo = sub["chunks"][0]["traj_row_start"]
     w = opts["w"][lo:lo + ens.n_trajectories]
     n_traj, n_states, n_times = ens.n_trajectories, ens.n_states, grid.size
     idx_all = _k.sample_on_grid(ens.traj_index, ens.snapshots["time"].to_numpy(), n_traj, grid)
@@ -582,12 +769,11 @@ def populations(
     excluded = _excluded_mask(lz, exclude)
     w = np.where(excluded, 0.0, w)
     n_traj, n_states, n_times = lz.n_trajectories, lz.n_states, grid.size
-    opts: dict[str, Any] = {"kind": kind, "grid": grid, "w": w,
-                            "traj_rows": [c["traj_row_start"] for c in lz.chunks]}
+    opts: dict[str, Any] = {"kind": kind, "grid": grid, "w": w}
     if method == "bootstrap":
         rng = np.random.default_rng(random_state)
         opts["counts"] = _k.bootstrap_counts(n_traj, int(n_boot), rng)
-    (tot,) = _compute([_tree(_tasks(lz, _pop_chunk, opts), _add)], client=client,
+    (tot,) = _compute([_tree(_view_tasks(lz, _pop_chunk, opts), _add)], client=client,
                       scheduler=scheduler, progress=progress, desc="population chunks")
     num, w_alive, w2, n_alive = tot["num"], tot["w_alive"], tot["w2"], tot["n_alive"]
     # ---- finishing: the same formulas as the in-memory populations()

@@ -16,6 +16,7 @@ Layout (``layout: "chunked"``, schema version 1)
             c000000/
                 snapshots.parquet  the chunk's rows of the snapshot table
                 trajectories.parquet  the chunk's rows of the trajectory table
+                times.npy          the chunk's sorted distinct snapshot times (fs)
                 geometries.npy     (n_chunk_snapshots, n_atoms, 3) in the stored dtype
                 energies.npy       (n_chunk_snapshots, n_states)
                 <name>.npy         every other per-snapshot array, and the per-trajectory
@@ -41,8 +42,20 @@ key             meaning
 ``columns``     the snapshot table's columns, in order
 ``tables``      ``{"trajectories": "trajectories.parquet"}``
 ``chunks``      list of ``{"dir", "n_snapshots", "n_trajectories", "row_start",
-                "traj_row_start", "traj_first", "traj_last", "t_min", "t_max"}``
+                "traj_row_start", "traj_first", "traj_last", "t_min", "t_max",
+                "n_times", "dt_values", "dt_counts", "ip_min", "ip_max"}``
 ==============  ===================================================================
+
+The chunk records carry the summaries a computation would otherwise need a
+pass over the data for, written when the chunk is written: the time range
+(``t_min``, ``t_max``, fs), the number of distinct times (``n_times``; the
+times themselves are in the chunk's ``times.npy``), the distinct time steps
+within trajectories with their counts (``dt_values``, ``dt_counts``; left out
+when a chunk has more than 256 distinct steps) and the range of the finite
+ionisation energies ``cation_energies - energies[active]`` in eV (``ip_min``,
+``ip_max``; None without cation energies or finite values). Readers treat every
+one of these keys as optional (a store without them is read with a pass over
+the chunks).
 
 Arrays keep the dtype they were written with (for example float32 geometries)
 and are read with ``allow_pickle=False``. The whole store is written in a
@@ -89,6 +102,8 @@ DEFAULT_CHUNK_TRAJECTORIES = 1000
 _MANIFEST = "manifest.json"
 _FORMAT = "ensemblelab-store"
 _SNAP_NAMES = ("geometries", "energies", *SNAPSHOT_ARRAYS)
+_TIMES = "times.npy"  # per chunk: its sorted distinct snapshot times (fs)
+_MAX_DT_VALUES = 256  # most distinct time steps a chunk record lists
 
 
 def is_chunked_store(path: str | Path) -> bool:
@@ -112,6 +127,35 @@ def _is_store_folder(path: Path) -> bool:
         return json.loads(manifest.read_text()).get("format") == _FORMAT
     except (json.JSONDecodeError, UnicodeDecodeError, AttributeError, OSError):
         return False
+
+
+def _chunk_stats(ens: Ensemble, arrays: Mapping[str, np.ndarray]) -> dict[str, Any]:
+    """Summaries of one chunk kept in the manifest so that readers need no pre-pass.
+
+    ``dt_values`` / ``dt_counts``: the distinct time steps within trajectories and
+    how often each occurs (omitted when there are more than ``_MAX_DT_VALUES``);
+    ``ip_min`` / ``ip_max``: the smallest and largest finite ionisation energy
+    ``cation_energies - energies[active]`` (eV; None when there is none), computed
+    in float64 from the arrays as stored.
+    """
+    out: dict[str, Any] = {}
+    time = ens.snapshots["time"].to_numpy()
+    traj = ens.snapshots["traj"].to_numpy()
+    dt = np.diff(time)[traj[1:] == traj[:-1]]
+    u, c = np.unique(dt, return_counts=True)
+    if u.size <= _MAX_DT_VALUES:
+        out["dt_values"] = [float(v) for v in u]
+        out["dt_counts"] = [int(v) for v in c]
+    cation = arrays.get("cation_energies", ens.cation_energies)
+    if cation is not None:
+        energies = np.asarray(arrays.get("energies", ens.energies), dtype=np.float64)
+        active = ens.snapshots["active"].to_numpy()
+        e_neutral = energies[np.arange(ens.n_snapshots), active]
+        ip = np.asarray(cation, dtype=np.float64) - e_neutral[:, None]
+        ip = ip[np.isfinite(ip)]
+        out["ip_min"] = float(ip.min()) if ip.size else None
+        out["ip_max"] = float(ip.max()) if ip.size else None
+    return out
 
 
 def _fake_geometries(n: int, n_atoms: int) -> np.ndarray:
@@ -363,7 +407,9 @@ class ChunkedStoreWriter:
                 "must hold numbers, booleans or text of one type."
             ) from exc
         time = frame["time"].to_numpy()
-        self._chunks.append({
+        times = np.unique(time)
+        np.save(folder / _TIMES, times, allow_pickle=False)
+        record = {
             "dir": f"chunks/{name}",
             "n_snapshots": int(n),
             "n_trajectories": int(len(ids)),
@@ -373,7 +419,10 @@ class ChunkedStoreWriter:
             "traj_last": int(ids[-1]),
             "t_min": float(time.min()) if n else 0.0,
             "t_max": float(time.max()) if n else 0.0,
-        })
+            "n_times": int(times.size),
+        }
+        record.update(_chunk_stats(ens, arrays))
+        self._chunks.append(record)
         self._traj_tables.append(trajs)
         self._rows += n
         self._traj_rows += len(ids)
@@ -544,6 +593,87 @@ def load_chunk_array(path: str | Path, index: int, name: str, *, mmap: bool = Fa
         raise KeyError(f"the store has no array {name!r}.")
     rows = chunk["n_trajectories"] if entry["per"] == "trajectory" else chunk["n_snapshots"]
     return _load_npy(path / chunk["dir"] / f"{name}.npy", entry, rows, mmap)
+
+
+def read_chunk_fields(path: str | Path, manifest: Mapping[str, Any], index: int,
+                      names: Iterable[str], *, columns: Iterable[str] = ("traj", "time",
+                                                                        "active"),
+                      mmap: bool = True) -> tuple[pd.DataFrame, pd.DataFrame, dict[str, Any]]:
+    """Only some arrays and snapshot columns of chunk `index`, without building an Ensemble.
+
+    For computations that touch a few fields of every chunk: nothing else is read
+    (no geometries) and the arrays are memory-mapped. Shapes and dtypes are checked
+    against `manifest`; the deeper checks of :class:`~ensemblelab.Ensemble` are not
+    made (use :func:`load_chunk` for a validated chunk).
+
+    Parameters
+    ----------
+    path : str or Path
+        The store folder.
+    manifest : mapping
+        Its manifest (:func:`read_chunked_manifest`), passed in so that a task
+        does not parse it again.
+    index : int
+        Chunk number (0-based).
+    names : iterable of str
+        Arrays to read; names the store does not hold are returned as None.
+    columns : iterable of str
+        Snapshot columns to read.
+    mmap : bool
+        Memory-map the arrays (read-only) instead of reading them.
+
+    Returns
+    -------
+    snapshots : pandas.DataFrame
+        The requested columns, one row per snapshot of the chunk.
+    trajectories : pandas.DataFrame
+        The chunk's rows of the trajectory table.
+    arrays : dict of str to ndarray or None
+        In their stored dtype.
+    """
+    path = Path(path)
+    chunks = manifest["chunks"]
+    if not 0 <= int(index) < len(chunks):
+        raise IndexError(f"chunk index {index} out of range [0, {len(chunks)}).")
+    chunk = chunks[int(index)]
+    entries = {e["name"]: e for e in manifest["arrays"]}
+    folder = path / chunk["dir"]
+    frame = _read_parquet(folder / "snapshots.parquet", list(columns))
+    trajs = _read_parquet(folder / "trajectories.parquet", None)
+    if len(frame) != chunk["n_snapshots"] or len(trajs) != chunk["n_trajectories"]:
+        raise StoreError(f"{folder}: {len(frame)} snapshot and {len(trajs)} trajectory rows, "
+                         f"the manifest says {chunk['n_snapshots']} and "
+                         f"{chunk['n_trajectories']}. Hint: the store is inconsistent; "
+                         "convert the original files again.")
+    arrays: dict[str, Any] = {}
+    for name in names:
+        entry = entries.get(name)
+        if entry is None:
+            arrays[name] = None
+            continue
+        rows = chunk["n_trajectories"] if entry["per"] == "trajectory" else chunk["n_snapshots"]
+        arrays[name] = _load_npy(folder / f"{name}.npy", entry, rows, mmap)
+    return frame, trajs, arrays
+
+
+def read_chunk_times(path: str | Path, manifest: Mapping[str, Any], index: int) -> np.ndarray:
+    """Sorted distinct snapshot times (fs) of chunk `index` (``times.npy`` when present)."""
+    path = Path(path)
+    chunk = manifest["chunks"][int(index)]
+    file = path / chunk["dir"] / _TIMES
+    if "n_times" in chunk and file.is_file():
+        entry = {"name": "times", "dtype": "<f8", "tail": []}
+        return _load_npy(file, entry, chunk["n_times"], False)
+    frame = _read_parquet(path / chunk["dir"] / "snapshots.parquet", ["time"])
+    return np.unique(frame["time"].to_numpy(dtype=np.float64))
+
+
+def _read_parquet(file: Path, columns: list[str] | None) -> pd.DataFrame:
+    try:
+        return pd.read_parquet(file, columns=columns)
+    except Exception as exc:  # pyarrow raises its own error types
+        raise StoreError(f"{file}: cannot read the Parquet table ({exc}). Hint: the store is "
+                         "incomplete or corrupt; convert the original files again.") from exc
 
 
 def read_chunk_table(path: str | Path, index: int, table: str = "snapshots",

@@ -36,6 +36,7 @@ from .chunked import (
     load_chunk,
     load_chunk_array,
     read_chunk_table,
+    read_chunk_times,
     read_chunked_manifest,
 )
 
@@ -226,10 +227,10 @@ class LazyEnsemble:
 
     @property
     def times(self) -> np.ndarray:
-        """Sorted unique snapshot times in fs (reads the time column of every chunk)."""
+        """Sorted unique snapshot times in fs (from each chunk's small ``times.npy``)."""
         if "times" not in self._cache:
-            parts = [np.unique(read_chunk_table(self.path, i, "snapshots", ["time"])["time"]
-                               .to_numpy()) for i in range(self.n_chunks)]
+            parts = [read_chunk_times(self.path, self._manifest, i)
+                     for i in range(self.n_chunks)]
             self._cache["times"] = np.unique(np.concatenate(parts)) if parts else np.zeros(0)
         return self._cache["times"]
 

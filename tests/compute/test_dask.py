@@ -66,6 +66,48 @@ def test_lazy_trpes_equals_in_memory(pair, by):
     assert np.abs(ref.intensity).max() > 0  # a real map, not zeros on both sides
 
 
+@pytest.mark.parametrize("photon", [4.0, 4.4])
+def test_lazy_trpes_with_partly_closed_channels(pair, photon):
+    # the probe opens the S2 channel (IP 3.5 eV) but not the S1 one (IP 4.5 eV): the chunks
+    # are partly open and the stick energy range is read from the chunks, not the manifest
+    ens, lazy = pair
+    kw = {**KW, "probe": GaussianPulse(photon_energy=photon, fwhm=30.0)}
+    ref = compute_trpes(ens, by="cation", **kw)
+    got = compute_trpes(lazy, by="cation", **kw)
+    _close(got.intensity, ref.intensity)
+    assert got.params == ref.params
+    assert 0 < got.params["n_sticks"] < ens.n_snapshots  # some channels closed, some open
+
+
+def test_lazy_trpes_without_manifest_summaries(pair, tmp_path):
+    # a store whose manifest lacks the per-chunk summaries (time steps, IP range, times)
+    # is read with a pass over the chunks and gives the same map
+    import json
+    import shutil
+
+    ens, lazy = pair
+    copy = tmp_path / "old.ens"
+    shutil.copytree(lazy.path, copy)
+    manifest = json.loads((copy / "manifest.json").read_text())
+    for rec in manifest["chunks"]:
+        for key in ("dt_values", "dt_counts", "ip_min", "ip_max", "n_times"):
+            rec.pop(key)
+        (copy / rec["dir"] / "times.npy").unlink()
+    (copy / "manifest.json").write_text(json.dumps(manifest))
+    old = load(copy, lazy=True)
+    _close(compute_trpes(old, **KW).intensity, compute_trpes(ens, **KW).intensity)
+    np.testing.assert_array_equal(old.times, ens.times)
+
+
+@pytest.mark.parametrize("scheduler", ["threads", "synchronous"])
+def test_lazy_trpes_schedulers(pair, scheduler):
+    from ensemblelab.compute import _dask
+
+    ens, lazy = pair
+    got = _dask.compute_trpes(lazy, scheduler=scheduler, **KW)
+    _close(got.intensity, compute_trpes(ens, **KW).intensity)
+
+
 @pytest.mark.parametrize("by", ["snapshot", "traj", "active"])
 def test_lazy_contributions_equal_in_memory(pair, by):
     ens, lazy = pair

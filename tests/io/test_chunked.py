@@ -168,3 +168,43 @@ def test_cli_convert_chunked_streams_extxyz(tmp_path, toy, capsys):
     assert lazy.n_chunks == 3
     # an eager load of a chunked store reads every chunk
     assert_ensemble_equal(load(tmp_path / "c.ens"), load(folder, progress=False))
+
+
+def test_manifest_summaries_match_the_chunk_data(tmp_path, toy):
+    # check values: the same summaries computed here from the in-memory ensemble
+    # (computed independently, not published)
+    path = save_chunked(toy, tmp_path / "s.ens", chunk_size=4)
+    manifest = read_chunked_manifest(path)
+    lazy = LazyEnsemble(path)
+    ids = toy.trajectories["traj"].to_numpy()
+    for i, rec in enumerate(manifest["chunks"]):
+        part = toy.select(ids[4 * i:4 * i + 4])
+        time = part.snapshots["time"].to_numpy()
+        traj = part.snapshots["traj"].to_numpy()
+        u, c = np.unique(np.diff(time)[traj[1:] == traj[:-1]], return_counts=True)
+        assert rec["dt_values"] == u.tolist() and rec["dt_counts"] == c.tolist()
+        assert (rec["t_min"], rec["t_max"]) == (time.min(), time.max())
+        ip = part.cation_energies - part.energies[np.arange(part.n_snapshots),
+                                                  part.snapshots["active"].to_numpy()][:, None]
+        assert (rec["ip_min"], rec["ip_max"]) == (ip.min(), ip.max())  # exact: JSON repr
+        assert rec["n_times"] == np.unique(time).size
+    np.testing.assert_array_equal(lazy.times, toy.times)
+
+
+def test_read_chunk_fields_reads_only_what_is_asked(tmp_path, toy):
+    from ensemblelab.io.chunked import read_chunk_fields
+
+    path = save_chunked(toy, tmp_path / "s.ens", chunk_size=5)
+    manifest = read_chunked_manifest(path)
+    frame, trajs, arrays = read_chunk_fields(path, manifest, 1, ["energies", "velocities"])
+    ref = load_chunk(path, 1)
+    # check value: the validated chunk (computed independently, not published)
+    assert list(frame.columns) == ["traj", "time", "active"]
+    np.testing.assert_array_equal(frame["time"].to_numpy(), ref.snapshots["time"].to_numpy())
+    np.testing.assert_array_equal(arrays["energies"], ref.energies)
+    assert arrays["velocities"] is None  # not in the store
+    assert set(arrays) == {"energies", "velocities"}  # geometries never read
+    np.testing.assert_array_equal(trajs["traj"].to_numpy(), ref.trajectories["traj"].to_numpy())
+    (path / "chunks" / "c000001" / "energies.npy").write_bytes(b"broken")
+    with pytest.raises(StoreError, match="cannot read the array"):
+        read_chunk_fields(path, manifest, 1, ["energies"])
