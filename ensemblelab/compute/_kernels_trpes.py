@@ -42,8 +42,8 @@ import math
 import os
 import threading
 from collections.abc import Callable
-from typing import Any
 from concurrent.futures import ThreadPoolExecutor
+from typing import Any
 
 import numpy as np
 
@@ -297,9 +297,11 @@ def deposit_moments(
     if backend != "numpy":
         kernel = _numba_kernel()
         if kernel is None and backend == "numba":
-            from .._optional import import_optional
+            from ..errors import MissingDependencyError
 
-            import_optional("numba", extra="fast", purpose="the compiled TRPES deposit kernel")
+            raise MissingDependencyError(
+                "numba is required for the compiled TRPES deposit kernel; install with pip "
+                "install 'ensemblelab[fast]' (or use backend='auto' / 'numpy').")
         if kernel is not None:
             return _deposit_numba(kernel, tbin, energy, weight, comp, tfrac, n_time=n_time,
                                   e_lo=e_lo, h=h, n_fine=n_fine, order=order, n_comp=n_comp,

@@ -15,9 +15,17 @@ PROBE = GaussianPulse(photon_energy=5.0, fwhm=30.0)
 PUMP = GaussianPulse(photon_energy=4.0, fwhm=30.0)
 
 
+@pytest.fixture(params=["auto", "numpy-fallback"])
+def deposit_backend(request, monkeypatch):
+    """Run once with the default backend and once as if numba were not installed."""
+    if request.param == "numpy-fallback":
+        monkeypatch.setattr(K, "_NUMBA", {"dep": None})
+    return request.param
+
+
 @pytest.mark.parametrize("convolve", [True, False])
 @pytest.mark.parametrize("offset", [0.0, 0.7])  # 0.7 fs: snapshots off the grid (split)
-def test_kernel_map_equals_naive(convolve, offset):
+def test_kernel_map_equals_naive(convolve, offset, deposit_backend):
     ens = random_ensemble(5, seed=9, offset=offset)
     model = prepare_sticks(ens, probe=PROBE, pump=PUMP, progress=False, time_step=2.0)
     assert (model.tfrac is not None) == (offset != 0.0)
@@ -93,3 +101,113 @@ def test_kernel_time_matrix_matches_naive_loop():
     c = K.time_matrix(delays, times, sigma=12.0, t_known=148.0, t_launch=0.0)
     ref = R.convolve_naive(pure, times, delays, sigma=12.0, t_known=148.0)
     np.testing.assert_allclose(c @ pure, ref, rtol=1e-12, atol=1e-14)
+
+
+# --- compiled (numba) deposit backend against the numpy one and the naive twin ---------
+
+def _sticks(n, seed, *, n_time=7, split=False, n_comp=1):
+    rng = np.random.default_rng(seed)
+    tb = rng.integers(0, n_time - 1 if split else n_time, n)
+    x = rng.uniform(0.2, 2.8, n)
+    w = rng.uniform(0.0, 1.0, n)
+    tf = np.where(rng.uniform(size=n) < 0.5, rng.uniform(size=n), 0.0) if split else None
+    comp = rng.integers(0, n_comp, n) if n_comp > 1 else None
+    return tb, x, w, tf, comp
+
+
+@pytest.mark.parametrize("split", [False, True])
+@pytest.mark.parametrize("n_comp", [1, 3])
+@pytest.mark.parametrize("n_threads", [1, 3])
+def test_kernel_numba_deposit_equals_numpy(split, n_comp, n_threads):
+    pytest.importorskip("numba")
+    tb, x, w, tf, comp = _sticks(5000, 4, split=split, n_comp=n_comp)
+    kw = dict(n_time=7, e_lo=0.0, h=0.01, n_fine=302, order=6, n_comp=n_comp, comp=comp,
+              tfrac=tf)
+    a = K.deposit_moments(tb, x, w, backend="numba", n_threads=n_threads, **kw)
+    b = K.deposit_moments(tb, x, w, backend="numpy", chunk=777, **kw)
+    assert a.shape == b.shape == (6, n_comp, 7, 302)
+    # same sums, other summation order: rounding only (computed independently, 1e-12)
+    np.testing.assert_allclose(a, b, rtol=0, atol=1e-12 * np.abs(b).max())
+
+
+def test_kernel_numba_map_equals_naive_with_split_and_components():
+    pytest.importorskip("numba")
+    tb, x, w, tf, comp = _sticks(400, 5, n_time=6, split=True, n_comp=2)
+    g = 0.06
+    h = g / 8
+    e = np.linspace(0.0, 3.0, 241)
+    nf = int(3 / h) + 2
+    hist = K.deposit_moments(tb, x, w, n_time=6, e_lo=0.0, h=h, n_fine=nf, order=6,
+                             comp=comp, n_comp=2, tfrac=tf, backend="numba", n_threads=2)
+    b = K.energy_matrices(e, e_lo=0.0, h=h, n_fine=nf, fwhm=g, order=6)
+    maps = K.assemble(hist, b, None)
+    for c in range(2):
+        sel = comp == c
+        naive = R.pure_map_naive(tb[sel], tf[sel], x[sel], w[sel], n_time=6, energies=e,
+                                 fwhm=g)
+        # order 6, 8 bins per FWHM: <= ~2e-7 of the peak (module docstring; computed
+        # independently, not published)
+        assert np.abs(maps[c] - naive).max() <= 3e-7 * naive.max()
+    # components add up to the total (1e-12, method notes 4)
+    total = K.assemble(K.deposit_moments(tb, x, w, n_time=6, e_lo=0.0, h=h, n_fine=nf,
+                                         order=6, tfrac=tf, backend="numba"), b, None)[0]
+    np.testing.assert_allclose(maps.sum(axis=0), total, rtol=0, atol=1e-12 * total.max())
+
+
+def test_kernel_numba_rejects_sticks_outside_grid():
+    pytest.importorskip("numba")
+    tb, x, w, _, _ = _sticks(100, 6)
+    kw = dict(n_time=7, e_lo=0.0, h=0.01, n_fine=302, order=4, backend="numba")
+    with pytest.raises(ValueError, match="outside the grid"):
+        K.deposit_moments(tb, x + 5.0, w, **kw)
+    with pytest.raises(ValueError, match="outside the grid"):
+        K.deposit_moments(tb + 7, x, w, **kw)
+    x_nan = x.copy()
+    x_nan[3] = np.nan
+    with pytest.raises(ValueError, match="1 stick"):
+        K.deposit_moments(tb, x_nan, w, **kw)
+
+
+def test_kernel_banded_assemble_equals_dense_product():
+    # the banded energy broadening leaves out entries < 1e-16 of the largest: it equals
+    # the dense product H @ B to ~1e-13 of the peak (computed independently)
+    tb, x, w, _, _ = _sticks(3000, 7)
+    h = 0.06 / 8
+    nf = int(3 / h) + 2
+    e = np.linspace(-0.1, 3.0, 157)
+    hist = K.deposit_moments(tb, x, w, n_time=7, e_lo=0.0, h=h, n_fine=nf, order=6,
+                             backend="numpy")
+    b = K.energy_matrices(e, e_lo=0.0, h=h, n_fine=nf, fwhm=0.06, order=6)
+    dense = np.einsum("ktf,kfe->te", hist[:, 0], b)
+    banded = K.assemble(hist, b, None)[0]
+    np.testing.assert_allclose(banded, dense, rtol=0, atol=1e-12 * dense.max())
+    cmat = np.random.default_rng(8).uniform(size=(5, 7))
+    np.testing.assert_allclose(K.assemble(hist, b, cmat)[0], cmat @ dense, rtol=0,
+                               atol=1e-12 * (cmat @ dense).max())
+
+
+def test_kernel_numpy_backend_without_numba_and_lazy_import():
+    # numba is imported on the first compiled-kernel use only, never by the package import
+    import subprocess
+    import sys
+
+    code = ("import sys, ensemblelab, ensemblelab.compute.spectra; "
+            "assert 'numba' not in sys.modules")
+    subprocess.run([sys.executable, "-c", code], check=True)
+    tb, x, w, _, _ = _sticks(200, 9)
+    with pytest.raises(ValueError, match="backend"):
+        K.deposit_moments(tb, x, w, n_time=7, e_lo=0.0, h=0.01, n_fine=302, order=2,
+                          backend="fortran")
+
+
+def test_kernel_numba_backend_missing_raises(monkeypatch):
+    from ensemblelab.errors import MissingDependencyError
+
+    monkeypatch.setattr(K, "_NUMBA", {"dep": None})  # as if numba were not installed
+    assert not K.numba_available()
+    tb, x, w, _, _ = _sticks(50, 10)
+    kw = dict(n_time=7, e_lo=0.0, h=0.01, n_fine=302, order=2)
+    with pytest.raises(MissingDependencyError, match=r"ensemblelab\[fast\]"):
+        K.deposit_moments(tb, x, w, backend="numba", **kw)
+    # "auto" falls back to numpy
+    assert K.deposit_moments(tb, x, w, **kw).shape == (2, 1, 7, 302)
