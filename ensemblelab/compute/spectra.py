@@ -57,6 +57,7 @@ from .pulses import FWHM_TO_SIGMA, GaussianPulse, cross_correlation_sigma
 __all__ = [
     "compute_trpes",
     "contributions",
+    "region_intensity",
     "prepare_sticks",
     "TRPESModel",
     "doorway_weights",
@@ -708,6 +709,79 @@ def _hat_integrals(times: np.ndarray, lo: float, hi: float, t_known: float) -> n
     return out
 
 
+def _region_intensity(ens: Ensemble, trpes_map: TRPESMap, energy_range: Sequence[float],
+                      delay_range: Sequence[float]
+                      ) -> tuple[np.ndarray, tuple[float, float], tuple[float, float]]:
+    """Per-snapshot-row region intensity (n_snapshots,) and the checked ranges."""
+    e1, e2 = (float(x) for x in energy_range)
+    t1, t2 = (float(x) for x in delay_range)
+    if not (e2 > e1 and t2 > t1):
+        raise SchemaError(f"energy_range and delay_range must be (low, high) with low < high; "
+                          f"got {energy_range!r}, {delay_range!r}.")
+    model = _model_for(ens, trpes_map)
+    p = trpes_map.params
+    fwhm = float(p["fwhm_energy"])
+    s_e = fwhm * FWHM_TO_SIGMA
+    norm = model._norm(p.get("normalise", "alive"))
+    times = model.times
+    sigma = p.get("sigma_cc")
+    if sigma:
+        # integral over the delay window of the (edge-renormalised) kernel matrix,
+        # by 8-point Gauss-Legendre on sub-intervals no longer than sigma_cc
+        n_sub = max(1, int(math.ceil((t2 - t1) / sigma)))
+        x, wq = np.polynomial.legendre.leggauss(8)
+        edges = np.linspace(t1, t2, n_sub + 1)
+        half = 0.5 * np.diff(edges)
+        nodes = (edges[:-1, None] + half[:, None] * (x[None, :] + 1.0)).ravel()
+        wts = (half[:, None] * wq[None, :]).ravel()
+        tw = wts @ model.time_weights(nodes, sigma=sigma)
+    else:
+        tw = _hat_integrals(times, t1, t2, model.t_known)
+    tw = tw * norm
+    per_snap = _region_per_snapshot(model, tw, max(e1, 0.0), e2, s_e, ens.n_snapshots)
+    return per_snap, (e1, e2), (t1, t2)
+
+
+def region_intensity(
+    ens: Ensemble,
+    trpes_map: TRPESMap,
+    *,
+    energy_range: Sequence[float],
+    delay_range: Sequence[float],
+) -> np.ndarray:
+    """Region intensity of every snapshot, unsorted, in the ensemble's row order.
+
+    The array :func:`contributions` sorts and groups: entry ``i`` is the integral
+    over ``energy_range x delay_range`` of the part of the map made by snapshot row
+    ``i`` of ``ens.snapshots`` (zero where it does not contribute). Its sum is the
+    region total (``contributions(...).attrs["total"]``). No sort and no table: for
+    interactive use, where a caller groups it (``np.bincount``) or picks the
+    strongest rows (``np.argpartition``) itself.
+
+    Parameters
+    ----------
+    ens : Ensemble
+        The in-memory ensemble the map was computed from.
+    trpes_map : TRPESMap
+        A map from :func:`compute_trpes`.
+    energy_range : (float, float)
+        Kinetic energy window in eV.
+    delay_range : (float, float)
+        Delay window in fs.
+
+    Returns
+    -------
+    ndarray of float, shape (n_snapshots,)
+        Region intensity per snapshot row in fs (eV^-1 eV fs), all >= 0.
+    """
+    from . import _dask
+
+    if _dask.is_lazy(ens):
+        raise SchemaError("region_intensity needs an in-memory ensemble; for a lazy "
+                          "(chunked) ensemble use contributions(..., by=...) instead.")
+    return _region_intensity(ens, trpes_map, energy_range, delay_range)[0]
+
+
 def contributions(
     ens: Ensemble,
     trpes_map: TRPESMap,
@@ -762,35 +836,11 @@ def contributions(
     if _dask.is_lazy(ens):  # chunked store: per-chunk contributions with Dask
         return _dask.contributions(ens, trpes_map, energy_range=energy_range,
                                    delay_range=delay_range, by=by, client=client)
-    e1, e2 = (float(x) for x in energy_range)
-    t1, t2 = (float(x) for x in delay_range)
-    if not (e2 > e1 and t2 > t1):
-        raise SchemaError(f"energy_range and delay_range must be (low, high) with low < high; "
-                          f"got {energy_range!r}, {delay_range!r}.")
     if by not in ("snapshot", "traj") and by not in ens.snapshots.columns:
         raise SchemaError(f"The 'by' parameter must be 'snapshot', 'traj' or a column of "
                           f"ens.snapshots {list(ens.snapshots.columns)}. Got {by!r} instead.")
-    model = _model_for(ens, trpes_map)
-    p = trpes_map.params
-    fwhm = float(p["fwhm_energy"])
-    s_e = fwhm * FWHM_TO_SIGMA
-    norm = model._norm(p.get("normalise", "alive"))
-    times = model.times
-    sigma = p.get("sigma_cc")
-    if sigma:
-        # integral over the delay window of the (edge-renormalised) kernel matrix,
-        # by 8-point Gauss-Legendre on sub-intervals no longer than sigma_cc
-        n_sub = max(1, int(math.ceil((t2 - t1) / sigma)))
-        x, wq = np.polynomial.legendre.leggauss(8)
-        edges = np.linspace(t1, t2, n_sub + 1)
-        half = 0.5 * np.diff(edges)
-        nodes = (edges[:-1, None] + half[:, None] * (x[None, :] + 1.0)).ravel()
-        wts = (half[:, None] * wq[None, :]).ravel()
-        tw = wts @ model.time_weights(nodes, sigma=sigma)
-    else:
-        tw = _hat_integrals(times, t1, t2, model.t_known)
-    tw = tw * norm
-    per_snap = _region_per_snapshot(model, tw, max(e1, 0.0), e2, s_e, ens.n_snapshots)
+    per_snap, (e1, e2), (t1, t2) = _region_intensity(ens, trpes_map, energy_range,
+                                                     delay_range)
     total = float(per_snap.sum())
     frame = ens.snapshots
     if by == "snapshot":

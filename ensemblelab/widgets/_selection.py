@@ -51,9 +51,14 @@ class SelectionModel(HasTraits):
     delay_range : (float, float) or None
         Selected pump-probe delay interval in fs.
     band : DataFrame or None
-        Per-snapshot contributions of the selected band (from
-        :func:`ensemblelab.compute.spectra.contributions`), strongest first, with
-        ``cluster`` and ``weight`` columns added.
+        The strongest contributing snapshots of the selected band (at most
+        :attr:`band_rows` rows, strongest first; the columns of
+        :func:`ensemblelab.compute.spectra.contributions` with ``by="snapshot"``
+        plus ``cluster`` and ``weight``). Shares are fractions of the whole band.
+        ``attrs``: ``total`` (band intensity), ``n_snapshots`` and
+        ``n_trajectories`` (all contributing ones), ``complete`` (the table holds
+        every contributing snapshot). :meth:`group_table` groups *all*
+        contributing snapshots exactly; :meth:`full_band` gives the whole table.
     selected : tuple of int
         Snapshot ids behind the current selection, strongest first (at most
         :attr:`max_selected`).
@@ -79,6 +84,10 @@ class SelectionModel(HasTraits):
         "bands": {"A": [e0, e1, d0, d1]}}``.
     group_by : {"cluster", "state", "traj"}
         How the selection table groups the band.
+    max_selected : int
+        At most this many snapshot ids go to :attr:`selected`.
+    band_rows : int
+        At most this many strongest snapshots are kept in :attr:`band`.
     """
 
     ens = Instance(Ensemble)
@@ -99,6 +108,7 @@ class SelectionModel(HasTraits):
     labels = Dict()
     group_by = Unicode("cluster")
     max_selected = Int(200)
+    band_rows = Int(1000)
 
     def __init__(self, ens: Ensemble, **traits: Any) -> None:
         if not isinstance(ens, Ensemble):
@@ -111,6 +121,9 @@ class SelectionModel(HasTraits):
         self._row_of = pd.Index(ids)
         self._weights = ens.snapshot_weights()  # per snapshot row (the ensemble is frozen)
         self._top_share: dict[int, float] = {}
+        self._band_data: _BandData | None = None
+        self._keys: dict[str, tuple[np.ndarray, np.ndarray]] = {}  # per group_by: codes, values
+        self._keys_for: tuple[int, int] | None = None
 
     # ------------------------------------------------------------------ validation
     @validate("excluded")
@@ -210,6 +223,9 @@ class SelectionModel(HasTraits):
         }
         if self.band is not None:
             share = self._top_share.get(int(snapshot_id))
+            data = self._live_band()
+            if share is None and data is not None:
+                share = data.share_of(self, int(snapshot_id))
             if share is None:
                 hit = self.band.loc[self.band["snapshot"].to_numpy() == snapshot_id, "share"]
                 share = float(hit.iloc[0]) if len(hit) else 0.0
@@ -286,9 +302,21 @@ class SelectionModel(HasTraits):
         """
         if self.band is None:
             raise ValueError("no band is selected: choose a band in the map first.")
-        column = "active" if key == "state" else key
-        part = self.band.loc[self.band[column].to_numpy() == value]
-        ids = tuple(part["snapshot"].to_numpy()[: self.max_selected].tolist())
+        if key not in ("cluster", "state", "traj"):
+            raise ValueError(f"key must be one of 'cluster', 'state', 'traj'; got {key!r}.")
+        data = self._live_band()
+        if data is not None:  # the group's strongest snapshots among all contributing ones
+            codes, values = self._group_keys(key)
+            hit = np.flatnonzero(values == value)
+            rows = (np.flatnonzero(codes == hit[0]) if hit.size else
+                    np.zeros(0, dtype=np.int64))
+            rows = rows[data.intensity[rows] > 0]
+            rows = rows[_strongest(data.intensity[rows], self.max_selected)]
+            ids = tuple(self.current.snapshots["snapshot"].to_numpy()[rows].tolist())
+        else:  # a band table set by hand: its own rows
+            column = "active" if key == "state" else key
+            part = self.band.loc[self.band[column].to_numpy() == value]
+            ids = tuple(part["snapshot"].to_numpy()[: self.max_selected].tolist())
         with self.hold_trait_notifications():
             if key == "cluster":
                 self.cluster = int(value)
@@ -298,6 +326,88 @@ class SelectionModel(HasTraits):
             if ids:
                 self.frame = int(ids[0])
         return ids
+
+    def group_table(self, by: str | None = None) -> pd.DataFrame | None:
+        """The band's contributions summed over groups, exact over all contributing snapshots.
+
+        Parameters
+        ----------
+        by : {"cluster", "state", "traj"}, optional
+            Grouping (default :attr:`group_by`).
+
+        Returns
+        -------
+        DataFrame or None
+            Columns as :func:`ensemblelab.widgets.group_band`: ``key``, ``label``,
+            ``share`` (sums to 1 over the groups), ``intensity``, ``n_snapshots``,
+            ``n_trajectories``; largest share first. None without a band. A band
+            table set by hand is grouped from its own rows.
+        """
+        from .selection_table import _labelled, group_band
+
+        by = self.group_by if by is None else by
+        if by not in ("cluster", "state", "traj"):
+            raise ValueError(f"by must be one of 'cluster', 'state', 'traj'; got {by!r}.")
+        if self.band is None:
+            return None
+        data = self._live_band()
+        if data is None:
+            return group_band(self.band, by, state_labels=self.ens.state_labels,
+                              cluster_names=self.cluster_names)
+        codes, values = self._group_keys(by)
+        x, mask = data.intensity, data.mask
+        n_groups = values.size
+        inten = np.bincount(codes, x, minlength=n_groups)
+        n_snap = np.bincount(codes[mask], minlength=n_groups)
+        if by == "traj":
+            n_traj = (n_snap > 0).astype(np.int64)
+        else:
+            t_codes, t_values = self._group_keys("traj")
+            n_traj = _pair_counts(codes[mask], t_codes[mask], n_groups, t_values.size)
+        keep = np.flatnonzero(n_snap > 0)
+        order = keep[np.argsort(-inten[keep], kind="stable")]
+        total = data.total
+        out = pd.DataFrame({
+            "key": values[order],
+            "share": inten[order] / total if total > 0 else 0.0,
+            "intensity": inten[order],
+            "n_snapshots": n_snap[order],
+            "n_trajectories": n_traj[order],
+        })
+        return _labelled(out, by, state_labels=self.ens.state_labels,
+                         cluster_names=self.cluster_names)
+
+    def band_summary(self) -> dict[str, Any] | None:
+        """Totals of the band: ``n_snapshots``, ``n_trajectories`` (contributing), ``total``."""
+        band = self.band
+        if band is None:
+            return None
+        data = self._live_band()
+        if data is not None:
+            return {"n_snapshots": data.n_snapshots, "n_trajectories": data.n_trajectories,
+                    "total": data.total}
+        total = float(band["intensity"].sum()) if "intensity" in band else float("nan")
+        n_traj = int(band["traj"].nunique()) if "traj" in band else 0
+        return {"n_snapshots": len(band), "n_trajectories": n_traj, "total": total}
+
+    def full_band(self) -> pd.DataFrame | None:
+        """Every contributing snapshot of the band, strongest first (computed on demand).
+
+        The whole per-snapshot table of
+        :func:`ensemblelab.compute.spectra.contributions` with ``cluster`` and
+        ``weight`` columns: millions of rows on a large ensemble, so this is for
+        export, not for every brush. Returns :attr:`band` itself when it is already
+        complete (or was set by hand), None without a band.
+        """
+        band = self.band
+        data = self._live_band()
+        if band is None or data is None or bool(band.attrs.get("complete", False)):
+            return band
+        from ..compute.spectra import contributions
+
+        table = contributions(self.current, self.trpes_map, energy_range=data.energy_range,
+                              delay_range=data.delay_range, by="snapshot")
+        return self._decorate(table.reset_index(drop=True))
 
     def exclude(self, trajs: Iterable[int]) -> None:
         """Add trajectories to :attr:`excluded`."""
@@ -309,28 +419,155 @@ class SelectionModel(HasTraits):
         self.excluded = tuple(t for t in self.excluded if t not in drop)
 
     # ------------------------------------------------------------------ internals
-    def _band_table(
-        self, energy_range: tuple[float, float] | None, delay_range: tuple[float, float] | None
-    ) -> pd.DataFrame:
-        from ..compute.spectra import contributions
+    def _live_band(self) -> _BandData | None:
+        """The per-snapshot arrays behind :attr:`band`, when they still describe it."""
+        data = self._band_data
+        if data is None or data.band is not self.band or data.current is not self.current:
+            return None
+        return data
 
-        table = contributions(
-            self.current, self.trpes_map, energy_range=energy_range, delay_range=delay_range,
-            by="snapshot",
-        )
-        if not table["share"].is_monotonic_decreasing:
-            table = table.sort_values("share", ascending=False, kind="stable")
-        table = table.reset_index(drop=True)
+    def _current_rows(self) -> np.ndarray | None:
+        """Rows of :attr:`ens` of the snapshots of :attr:`current` (None: the same rows)."""
+        cur = self.current
+        if cur is self.ens:
+            return None
+        if self._keys_for != (id(cur), id(self.clusters)):
+            self._reset_keys()
+        if "_rows" not in self._keys:
+            self._keys["_rows"] = (self.rows(cur.snapshots["snapshot"].to_numpy()),
+                                   np.zeros(0))
+        return self._keys["_rows"][0]
+
+    def _reset_keys(self) -> None:
+        self._keys = {}
+        self._keys_for = (id(self.current), id(self.clusters))
+
+    def _group_keys(self, by: str) -> tuple[np.ndarray, np.ndarray]:
+        """Group code of every row of :attr:`current` and the value of each code (cached)."""
+        if self._keys_for != (id(self.current), id(self.clusters)):
+            self._reset_keys()
+        if by not in self._keys:
+            snap = self.current.snapshots
+            if by == "cluster":
+                rows = self._current_rows()
+                keys = (np.full(len(snap), -1, dtype=np.int64) if self.clusters is None else
+                        np.asarray(self.clusters)[rows if rows is not None else slice(None)])
+            else:
+                keys = snap["active" if by == "state" else "traj"].to_numpy()
+            self._keys[by] = _codes(keys)
+        return self._keys[by]
+
+    def _decorate(self, table: pd.DataFrame) -> pd.DataFrame:
+        """Add ``cluster`` and ``weight`` (and any missing key columns) to a snapshot table."""
         rows = self.rows(table["snapshot"].to_numpy())
         table["cluster"] = self.cluster_of(rows)
         table["weight"] = self._weights[rows]
+        for column in ("active", "traj", "time"):
+            if column not in table.columns:
+                table[column] = self.ens.snapshots[column].to_numpy()[rows]
+        return table
+
+    def _band_table(
+        self, energy_range: tuple[float, float], delay_range: tuple[float, float]
+    ) -> pd.DataFrame:
+        from ..compute.spectra import region_intensity
+
+        cur = self.current
+        x = region_intensity(cur, self.trpes_map, energy_range=energy_range,
+                             delay_range=delay_range)
+        mask = x > 0
+        n_snapshots = int(np.count_nonzero(mask))
+        total = float(x.sum())
+        t_codes, t_values = self._group_keys("traj")
+        n_traj = int(np.count_nonzero(np.bincount(t_codes[mask], minlength=t_values.size)))
+        k = min(n_snapshots, max(self.band_rows, self.max_selected))
+        order = np.flatnonzero(mask) if k == n_snapshots else np.arange(x.size)
+        order = order[_strongest(x[order], k)]
+        snap = cur.snapshots
+        table = pd.DataFrame({
+            "snapshot": snap["snapshot"].to_numpy()[order],
+            "traj": snap["traj"].to_numpy()[order],
+            "time": snap["time"].to_numpy()[order],
+            "active": snap["active"].to_numpy()[order],
+            "intensity": x[order],
+        })
+        table["share"] = table["intensity"] / total if total > 0 else 0.0
+        table = self._decorate(table)
+        table.attrs.update(total=total, energy_range=energy_range, delay_range=delay_range,
+                           n_snapshots=n_snapshots, n_trajectories=n_traj,
+                           complete=k == n_snapshots)
         top = table.head(4 * self.max_selected)
         self._top_share = dict(zip(top["snapshot"].to_numpy().tolist(),
                                    top["share"].to_numpy().tolist(), strict=True))
-        if "active" not in table.columns:
-            table["active"] = self.ens.snapshots["active"].to_numpy()[rows]
-        if "traj" not in table.columns:
-            table["traj"] = self.ens.snapshots["traj"].to_numpy()[rows]
-        if "time" not in table.columns:
-            table["time"] = self.ens.snapshots["time"].to_numpy()[rows]
+        self._band_data = _BandData(band=table, current=cur, intensity=x, mask=mask,
+                                    total=total, n_snapshots=n_snapshots, n_trajectories=n_traj,
+                                    energy_range=energy_range, delay_range=delay_range)
         return table
+
+
+class _BandData:
+    """Per-snapshot arrays of one band selection (over the rows of ``current``)."""
+
+    def __init__(self, *, band: pd.DataFrame, current: Ensemble, intensity: np.ndarray,
+                 mask: np.ndarray, total: float, n_snapshots: int, n_trajectories: int,
+                 energy_range: tuple[float, float], delay_range: tuple[float, float]) -> None:
+        self.band = band
+        self.current = current
+        self.intensity = intensity
+        self.mask = mask
+        self.total = total
+        self.n_snapshots = n_snapshots
+        self.n_trajectories = n_trajectories
+        self.energy_range = energy_range
+        self.delay_range = delay_range
+        self._row_of: pd.Index | None = None
+
+    def share_of(self, model: SelectionModel, snapshot_id: int) -> float | None:
+        """Share of one snapshot in the band (0.0 for a snapshot of an excluded trajectory)."""
+        if self.total <= 0:
+            return 0.0
+        if self.current is model.ens:
+            row = int(model.rows([snapshot_id])[0])
+        else:
+            if self._row_of is None:
+                self._row_of = pd.Index(self.current.snapshots["snapshot"].to_numpy())
+            row = int(self._row_of.get_indexer([snapshot_id])[0])
+            if row < 0:
+                return 0.0
+        return float(self.intensity[row] / self.total)
+
+
+def _strongest(values: np.ndarray, k: int) -> np.ndarray:
+    """Indices of the `k` largest `values`, largest first (ties: lower index first)."""
+    k = min(int(k), values.size)
+    if k <= 0:
+        return np.zeros(0, dtype=np.int64)
+    if k < values.size:
+        idx = np.argpartition(-values, k - 1)[:k]
+        idx.sort()  # ties at equal value keep the row order, as a stable sort does
+    else:
+        idx = np.arange(values.size)
+    return idx[np.argsort(-values[idx], kind="stable")]
+
+
+def _codes(keys: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Non-negative integer codes of `keys` (n,) and the key of each code."""
+    keys = np.asarray(keys)
+    if keys.size and np.issubdtype(keys.dtype, np.integer):
+        lo, hi = int(keys.min()), int(keys.max())
+        if hi - lo <= 4 * keys.size + 1024:  # small integer range: offset, no hashing
+            return (keys - lo).astype(np.intp, copy=False), np.arange(lo, hi + 1)
+    codes, uniques = pd.factorize(keys, sort=True)
+    return codes.astype(np.intp, copy=False), np.asarray(uniques)
+
+
+def _pair_counts(groups: np.ndarray, trajs: np.ndarray, n_groups: int, n_trajs: int
+                 ) -> np.ndarray:
+    """Number of distinct trajectories within each group, shape (n_groups,)."""
+    if groups.size == 0:
+        return np.zeros(n_groups, dtype=np.int64)
+    if n_groups * n_trajs <= 50_000_000:
+        pairs = np.bincount(groups * n_trajs + trajs, minlength=n_groups * n_trajs)
+        return np.count_nonzero(pairs.reshape(n_groups, n_trajs), axis=1)
+    pairs = np.unique(groups.astype(np.int64) * n_trajs + trajs)
+    return np.bincount(pairs // n_trajs, minlength=n_groups)

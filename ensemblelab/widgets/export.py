@@ -21,7 +21,6 @@ from ..data.ensemble import Ensemble
 from ._base import View
 from ._messages import MessageArea
 from ._selection import SelectionModel
-from .selection_table import group_band
 
 __all__ = ["ExportPanel", "export_structures", "export_tables", "export_figures",
            "write_text_atomic", "write_bytes_atomic"]
@@ -119,10 +118,10 @@ def export_tables(model: SelectionModel, folder: str | os.PathLike[str], *,
     out = []
     tables: dict[str, pd.DataFrame] = {}
     if model.band is not None:
-        tables["band_snapshots"] = model.band
+        # every contributing snapshot (computed now: the brush keeps only the strongest)
+        tables["band_snapshots"] = model.full_band()
         for by in ("cluster", "state", "traj"):
-            tables[f"band_by_{by}"] = group_band(model.band, by, cluster_names=model.cluster_names,
-                                                 state_labels=model.ens.state_labels)
+            tables[f"band_by_{by}"] = model.group_table(by)
     if model.flags is not None:
         tables["flags"] = model.flags
     if model.trpes_map is not None:

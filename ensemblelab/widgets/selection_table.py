@@ -53,12 +53,21 @@ def group_band(band: pd.DataFrame, by: str, *, state_labels: Any = None,
     })
     out.index.name = "key"
     out = out.reset_index().sort_values("share", ascending=False, kind="stable")
+    return _labelled(out.reset_index(drop=True), by, state_labels=state_labels,
+                     cluster_names=cluster_names)
+
+
+def _labelled(out: pd.DataFrame, by: str, *, state_labels: Any = None,
+              cluster_names: dict[str, str] | None = None) -> pd.DataFrame:
+    """Insert the display ``label`` of each group key (column 1) of a grouped table."""
     if by == "state" and state_labels is not None:
         labels = [state_labels[int(k)] for k in out["key"]]
     elif by == "cluster":
         names = cluster_names or {}
         labels = ["unclustered" if int(k) < 0 else f"cluster {names.get(str(int(k)), int(k))}"
                   for k in out["key"]]
+    elif by == "state":
+        labels = [f"state {int(k)}" for k in out["key"]]
     else:
         labels = [f"trajectory {int(k)}" for k in out["key"]]
     out.insert(1, "label", labels)
@@ -68,8 +77,10 @@ def group_band(band: pd.DataFrame, by: str, *, state_labels: Any = None,
 class SelectionTable(View):
     """Contributions of the selected band, grouped, with shares; a chosen row is shown.
 
-    Observes ``model.band`` and ``model.group_by``; choosing a row calls
-    ``model.select_group`` (the structure view then shows those snapshots).
+    Observes ``model.band`` and ``model.group_by``; the shares are exact over every
+    contributing snapshot (``model.group_table``), also when ``model.band`` keeps only
+    the strongest ones. Choosing a row calls ``model.select_group`` (the structure
+    view then shows that group's strongest snapshots).
 
     Parameters
     ----------
@@ -143,17 +154,16 @@ class SelectionTable(View):
                 self.summary.value = ("<i>No band selected.</i>" if band is None else
                                       "<i>Nothing contributes to this band.</i>")
                 return
-            table = group_band(band, self.model.group_by,
-                               state_labels=self.model.ens.state_labels,
-                               cluster_names=self.model.cluster_names)
+            table = self.model.group_table(self.model.group_by)
             self.table = table
             e, d = self.model.energy_range, self.model.delay_range
             where = (f"{e[0]:.2f}–{e[1]:.2f} eV, {d[0]:.0f}–{d[1]:.0f} fs"
                      if e is not None and d is not None else "")
-            total = float(band["intensity"].sum()) if "intensity" in band else float("nan")
+            info = self.model.band_summary()
             self.summary.value = (
-                f"<b>band {html.escape(where)}</b>: {len(band)} contributing snapshots from "
-                f"{band['traj'].nunique()} trajectories; integrated intensity {total:.4g}")
+                f"<b>band {html.escape(where)}</b>: {info['n_snapshots']} contributing "
+                f"snapshots from {info['n_trajectories']} trajectories; integrated intensity "
+                f"{info['total']:.4g}")
             shown = table.head(_N_ROWS)
             self.rows.options = [
                 (f"{r.label:<16s} {100 * r.share:6.1f} %  ({r.n_snapshots} snapshots, "
