@@ -80,7 +80,7 @@ def test_faults_are_injected_and_labelled(small_faulty):
 
 def test_perturbed_scenario_changes_the_model():
     sc = DEFAULT_SCENARIO.perturbed(energies=(0.0, 4.2, 4.9))
-    assert sc.energies == (0.0, 4.2, 4.9) and DEFAULT_SCENARIO.energies[1] == 4.30
+    assert sc.energies == (0.0, 4.2, 4.9) and DEFAULT_SCENARIO.energies[1] == 4.45
     q = np.zeros((1, 4))
     diff = sc.model().diabatic(q) - DEFAULT_SCENARIO.model().diabatic(q)
     assert np.abs(diff).max() > 0

@@ -54,16 +54,16 @@ class DemoScenario:
     meaning of every field.
     """
 
-    energies: tuple = (0.0, 4.30, 4.75)
-    twist: tuple = (2.2, -2.0, 0.6)
+    energies: tuple = (0.0, 4.45, 4.75)
+    twist: tuple = (2.2, -2.3, 0.6)
     asymmetry: tuple = (0.2, 0.1, 0.1)
     frequencies: tuple = (0.19, 0.12, 0.08)
-    kappa: tuple = ((0.0, 0.15, -0.30), (0.0, 0.0, 0.0), (0.0, 0.0, 0.0))
-    coupling_ce: float = 0.15  # lam of x_c between E and B
-    coupling_pe: float = 0.15  # lam of x_p between G and E
-    eta_eb: float = 0.12  # constant E-B coupling
+    kappa: tuple = ((0.0, 0.10, -0.20), (0.0, 0.0, 0.0), (0.0, 0.0, 0.0))
+    coupling_ce: float = 0.10  # lam of x_c between E and B
+    coupling_pe: float = 0.16  # lam of x_p between G and E
+    eta_eb: float = 0.03  # constant E-B coupling
     inertia: float = 30.0  # amu Angstrom^2
-    torsion_friction: float = 1.0 / 200.0  # 1/fs
+    torsion_friction: float = 0.0075  # 1/fs
     cation_energies: tuple = (7.0, 8.2, 9.0)
     cation_twist: tuple = (1.0, -0.6, 0.3)
     cation_asymmetry: tuple = (0.1, 0.1, 0.0)
