@@ -72,13 +72,21 @@ MIN_STICKS_PER_THREAD = 1 << 19
 #: numba backend: sticks ahead whose accumulator cells are prefetched
 PREFETCH_AHEAD = 32
 
+#: numba backend with several threads: "rows" (each thread reads all sticks and owns a
+#: range of accumulator rows: one shared accumulator) or "sticks" (each thread takes a
+#: range of sticks into its own accumulator, summed at the end)
+THREAD_SPLIT = "sticks"
+
 
 def _dep_range(tbin, energy, weight, comp, tfrac, acc, lo, hi, n_time, n_fine, n_comp,
-               order, shift, inv_h):  # pragma: no cover - compiled by numba
+               order, shift, inv_h, g_lo, g_hi, count_bad):  # pragma: no cover - numba
     """Deposit sticks ``lo:hi`` into ``acc`` (flat, layout comp/time/fine/moment).
 
+    Only accumulator rows ``g = comp * n_time + tbin`` in ``[g_lo, g_hi)`` are written,
+    so threads owning disjoint row ranges can share one accumulator.
     ``comp`` / ``tfrac`` of length 0 mean "no components" / "no time split".
-    Returns the number of sticks out of range (skipped; the caller raises).
+    Returns the number of sticks out of range when `count_bad` (skipped; the caller
+    raises), else 0.
     """
     has_c = comp.shape[0] > 0
     has_f = tfrac.shape[0] > 0
@@ -90,11 +98,12 @@ def _dep_range(tbin, energy, weight, comp, tfrac, acc, lo, hi, n_time, n_fine, n
             pj = energy[j] * inv_h + shift
             if not (pj >= 0.0 and pj < n_fine):
                 pj = 0.0
-            cj = comp[j] if has_c else 0
-            rj = ((cj * n_time + tbin[j]) * n_fine + int(pj)) * order
-            _prefetch(acc, rj)
-            _prefetch(acc, rj + order - 1)
-            if has_f:
+            gj = (comp[j] if has_c else 0) * n_time + tbin[j]
+            rj = (gj * n_fine + int(pj)) * order
+            if g_lo <= gj < g_hi:
+                _prefetch(acc, rj)
+                _prefetch(acc, rj + order - 1)
+            if has_f and g_lo <= gj + 1 < g_hi:
                 _prefetch(acc, rj + row_t)
                 _prefetch(acc, rj + row_t + order - 1)
         p = energy[i] * inv_h + shift  # (x - e_lo)/h + 1/2
@@ -103,27 +112,34 @@ def _dep_range(tbin, energy, weight, comp, tfrac, acc, lo, hi, n_time, n_fine, n
         if not (p >= 0.0 and p < n_fine) or tb < 0 or tb >= n_time or c < 0 or c >= n_comp:
             bad += 1
             continue
+        g = c * n_time + tb
+        f = tfrac[i] if has_f else 0.0
+        own = g_lo <= g < g_hi
+        if not own and not (f > 0.0 and g_lo <= g + 1 < g_hi):
+            continue
         b = int(p)  # p >= 0: truncation = floor = nearest bin centre
         d = p - b - 0.5  # delta / h in [-1/2, 1/2)
-        row = ((c * n_time + tb) * n_fine + b) * order
+        row = (g * n_fine + b) * order
         v = weight[i]
-        f = tfrac[i] if has_f else 0.0
         if f > 0.0:
             if tb + 1 >= n_time:
                 bad += 1
                 continue
             v0 = v * (1.0 - f)
-            v1 = v * f
-            for k in range(order):
-                acc[row + k] += v0
-                acc[row + row_t + k] += v1
-                v0 *= d
-                v1 *= d
+            if own:
+                for k in range(order):
+                    acc[row + k] += v0
+                    v0 *= d
+            if g_lo <= g + 1 < g_hi:
+                v1 = v * f
+                for k in range(order):
+                    acc[row + row_t + k] += v1
+                    v1 *= d
         else:
             for k in range(order):
                 acc[row + k] += v
                 v *= d
-    return bad
+    return bad if count_bad else 0
 
 
 def _prefetch(arr, index):  # pragma: no cover - replaced by a numba intrinsic
@@ -198,7 +214,7 @@ def _default_threads(n: int) -> int:
 
 
 def _deposit_numba(kernel, tbin, energy, weight, comp, tfrac, *, n_time, e_lo, h, n_fine,
-                   order, n_comp, n_threads) -> np.ndarray:
+                   order, n_comp, n_threads, split=None) -> np.ndarray:
     size = n_comp * n_time * n_fine * order
     n = energy.shape[0]
     inv_h = 1.0 / h
@@ -213,12 +229,24 @@ def _deposit_numba(kernel, tbin, energy, weight, comp, tfrac, *, n_time, e_lo, h
     if comp.dtype.kind not in "iu":
         comp = comp.astype(np.int64)
     n_threads = _default_threads(n) if n_threads is None else max(1, min(int(n_threads), n))
-    accs = [np.zeros(size) for _ in range(n_threads)]
-    bounds = [t * n // n_threads for t in range(n_threads + 1)]
+    split = split or THREAD_SPLIT
+    n_rows = n_comp * n_time
+    if split == "rows":  # one shared accumulator; thread t owns a range of rows
+        n_threads = min(n_threads, n_rows)
+        acc = np.zeros(size)
+        cuts = [t * n_rows // n_threads for t in range(n_threads + 1)]
 
-    def run(t: int) -> int:
-        return kernel(tbin, energy, weight, comp, tfrac, accs[t], bounds[t], bounds[t + 1],
-                      n_time, n_fine, n_comp, order, shift, inv_h)
+        def run(t: int) -> int:
+            return kernel(tbin, energy, weight, comp, tfrac, acc, 0, n, n_time, n_fine,
+                          n_comp, order, shift, inv_h, cuts[t], cuts[t + 1], t == 0)
+    else:  # thread t takes a range of sticks into its own accumulator
+        accs = [np.zeros(size) for _ in range(n_threads)]
+        bounds = [t * n // n_threads for t in range(n_threads + 1)]
+
+        def run(t: int) -> int:
+            return kernel(tbin, energy, weight, comp, tfrac, accs[t], bounds[t],
+                          bounds[t + 1], n_time, n_fine, n_comp, order, shift, inv_h, 0,
+                          n_rows, True)
 
     if n_threads == 1:
         bad = run(0)
@@ -230,9 +258,12 @@ def _deposit_numba(kernel, tbin, energy, weight, comp, tfrac, *, n_time, e_lo, h
             f"deposit_moments: {bad} stick(s) outside the grid (time bin in [0, {n_time}), "
             f"component in [0, {n_comp}), energy in [{e_lo - h / 2}, {e_lo + (n_fine - 0.5) * h})"
             "). Hint: size the fine grid from the stick energies.")
-    out = accs[0]
-    for a in accs[1:]:
-        out += a
+    if split == "rows":
+        out = acc
+    else:
+        out = accs[0]
+        for a in accs[1:]:
+            out += a
     # a view with the documented axis order (moment, comp, time, fine bin)
     return out.reshape(n_comp, n_time, n_fine, order).transpose(3, 0, 1, 2)
 

@@ -118,8 +118,11 @@ def _sticks(n, seed, *, n_time=7, split=False, n_comp=1):
 @pytest.mark.parametrize("split", [False, True])
 @pytest.mark.parametrize("n_comp", [1, 3])
 @pytest.mark.parametrize("n_threads", [1, 3])
-def test_kernel_numba_deposit_equals_numpy(split, n_comp, n_threads):
+@pytest.mark.parametrize("thread_split", ["sticks", "rows"])
+def test_kernel_numba_deposit_equals_numpy(split, n_comp, n_threads, thread_split,
+                                           monkeypatch):
     pytest.importorskip("numba")
+    monkeypatch.setattr(K, "THREAD_SPLIT", thread_split)
     tb, x, w, tf, comp = _sticks(5000, 4, split=split, n_comp=n_comp)
     kw = dict(n_time=7, e_lo=0.0, h=0.01, n_fine=302, order=6, n_comp=n_comp, comp=comp,
               tfrac=tf)
