@@ -31,6 +31,7 @@ import pandas as pd
 
 from .data.ensemble import Ensemble
 from .errors import StoreError
+from .plotting.spectra import plot_components, plot_map
 
 __all__ = ["build_report"]
 
@@ -54,44 +55,6 @@ def _table_html(table: pd.DataFrame, *, max_rows: int = 30) -> str:
     if len(table) > max_rows:
         text += f"<p><i>{len(table) - max_rows} more rows in the CSV file.</i></p>"
     return text
-
-
-def _map_figure(trpes: Any, *, title: str) -> Any:
-    from matplotlib.figure import Figure
-
-    fig = Figure(figsize=(5.5, 4.2))
-    ax = fig.add_subplot()
-    mesh = ax.pcolormesh(trpes.energies, trpes.delays, np.nan_to_num(trpes.intensity),
-                         shading="auto", cmap="viridis")
-    fig.colorbar(mesh, ax=ax, label="intensity / eV$^{-1}$")
-    ax.set_xlabel("kinetic energy / eV")
-    ax.set_ylabel("delay / fs")
-    ax.set_title(title)
-    fig.tight_layout()
-    return fig
-
-
-def _components_figure(trpes: Any) -> Any:
-    from matplotlib.figure import Figure
-
-    names = list(trpes.components)
-    n = len(names)
-    cols = min(3, n)
-    rows = int(np.ceil(n / cols))
-    fig = Figure(figsize=(3.4 * cols, 2.9 * rows))
-    stack = np.stack([np.nan_to_num(trpes.components[k]) for k in names])
-    vmin, vmax = float(stack.min()), float(stack.max())
-    mesh = None
-    for i, name in enumerate(names):
-        ax = fig.add_subplot(rows, cols, i + 1)
-        mesh = ax.pcolormesh(trpes.energies, trpes.delays, stack[i], shading="auto",
-                             cmap="viridis", vmin=vmin, vmax=vmax)
-        ax.set_title(str(name))
-        ax.set_xlabel("kinetic energy / eV")
-        ax.set_ylabel("delay / fs")
-    if mesh is not None:
-        fig.colorbar(mesh, ax=fig.axes, label="intensity / eV$^{-1}$ (shared scale)")
-    return fig
 
 
 def build_report(
@@ -178,9 +141,10 @@ def build_report(
                       else np.asarray(delays, float))
             trpes = compute_trpes(clean, probe=probe, pump=pump, energies=e_grid,
                                   delays=d_grid, by="neutral", progress=False)
-            _png(_map_figure(trpes, title="TRPES map (total)"),
+            _png(plot_map(trpes, title="TRPES map (total)"),
                  tmp / "figures" / "trpes_map.png")
-            _png(_components_figure(trpes), tmp / "figures" / "trpes_by_state.png")
+            _png(plot_components(trpes, include_total=False),
+                 tmp / "figures" / "trpes_by_state.png")
             _csv(trpes.to_frame(), tmp / "tables" / "trpes_map.csv")
             sections.append(
                 "<h2>Time-resolved photoelectron spectrum</h2>"
