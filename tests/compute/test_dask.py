@@ -182,7 +182,12 @@ def test_bench_scale_smoke(tmp_path):
     spec.loader.exec_module(bench)
     path = tmp_path / "s.ens"
     bench.generate(path, n_trajectories=7, n_steps=40, chunk_size=3, progress=False)
+    bench._warm_up(path)
     lazy = bench.lazy_run(path, progress=False)
     mem = bench.memory_run(path, n_subset=7)
-    # same trajectories both ways: the same sticks (computed independently, not published)
+    # same trajectories both ways: the same sticks, one per snapshot (every channel is
+    # open at 5 eV; computed independently, not published)
     assert lazy["n_sticks"] == mem["n_sticks"] == 7 * 40
+    part = bench.load_subset(path, n_subset=4)  # a chunk and a part of the next
+    np.testing.assert_array_equal(part.trajectories["traj"].to_numpy(), np.arange(4))
+    assert part.n_snapshots == 4 * 40 and part.dyson.shape == (4 * 40, 1)
