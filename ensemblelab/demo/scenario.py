@@ -11,6 +11,8 @@ from memory; parameters our own):
 * three harmonic modes: C=C stretch x_t (tunes B against E), an in-plane mode
   x_c (couples B and E) and the pyramidalisation x_p at the twisted carbon
   (couples E and G, so that G and E meet in a twisted conical intersection);
+* small diabatic couplings, so that hops happen near the crossing seams at small
+  gaps (mostly below 0.3 eV), as in internal conversion;
 * a weak zero-temperature friction on the torsion stands in for energy flow to
   the solvent and the other modes (its work is booked in ``e_tot``);
 * three cation diabats (pi hole, pi* / second-pi hole, lone-pair hole) with their
