@@ -878,7 +878,8 @@ def _region_per_snapshot(model: TRPESModel, tw: np.ndarray, lo_e: float, hi_e: f
     ``tw`` (n_time,) holds the normalised delay-window weight of each time-grid point.
     Sticks are kept sorted by energy (contiguous slices, no gathers); sticks further
     than 9 sigma inside the energy window have an energy weight of exactly 1.0 in
-    double precision, so only the two edge slices need error functions. The time
+    double precision, so only the two edge slices need error functions (one each when
+    the window is wider than 18 sigma: the far edge's term is then 1 or 0). The time
     weight is applied per snapshot (all sticks of a snapshot share it).
     """
     sticks = model.sticks
@@ -900,16 +901,22 @@ def _region_per_snapshot(model: TRPESModel, tw: np.ndarray, lo_e: float, hi_e: f
     a, a2, b2, b = np.searchsorted(e_sorted, [lo_e - span, lo_e + span, hi_e - span,
                                               hi_e + span])
     per_snap = np.zeros(n_snapshots)
+    wide = hi_e - lo_e >= 2.0 * span  # each edge slice is >= 9 sigma from the other edge
     if a2 < b2:  # interior: erf weight is 1.0 to double precision
         per_snap += np.bincount(s_sorted[a2:b2], w_sorted[a2:b2], minlength=n_snapshots)
-        edges = [(a, a2), (b2, b)]
+        edges = [(a, a2, "low"), (b2, b, "high")]
     else:
-        edges = [(a, b)]
-    for i, j in edges:
+        edges = [(a, b, "both")]
+    for i, j, side in edges:
         if j <= i:
             continue
         x = e_sorted[i:j]
-        ew = ndtr((hi_e - x) / s_e) - ndtr((lo_e - x) / s_e)
+        if wide and side == "low":  # ndtr((hi - x) / s) is 1.0 in double precision here
+            ew = ndtr((x - lo_e) / s_e)
+        elif wide and side == "high":  # ndtr((lo - x) / s) < 1.2e-19 here
+            ew = ndtr((hi_e - x) / s_e)
+        else:
+            ew = ndtr((hi_e - x) / s_e) - ndtr((lo_e - x) / s_e)
         per_snap += np.bincount(s_sorted[i:j], w_sorted[i:j] * ew, minlength=n_snapshots)
     tb = c["tbin_snap"]
     if model.tfrac is None:

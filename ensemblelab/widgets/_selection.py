@@ -55,10 +55,10 @@ class SelectionModel(HasTraits):
         :attr:`band_rows` rows, strongest first; the columns of
         :func:`ensemblelab.compute.spectra.contributions` with ``by="snapshot"``
         plus ``cluster`` and ``weight``). Shares are fractions of the whole band.
-        ``attrs``: ``total`` (band intensity), ``n_snapshots`` and
-        ``n_trajectories`` (all contributing ones), ``complete`` (the table holds
-        every contributing snapshot). :meth:`group_table` groups *all*
-        contributing snapshots exactly; :meth:`full_band` gives the whole table.
+        ``attrs``: ``total`` (band intensity), ``n_snapshots`` (all contributing
+        ones), ``complete`` (the table holds every contributing snapshot).
+        :meth:`group_table` groups *all* contributing snapshots exactly;
+        :meth:`full_band` gives the whole table.
     selected : tuple of int
         Snapshot ids behind the current selection, strongest first (at most
         :attr:`max_selected`).
@@ -354,16 +354,7 @@ class SelectionModel(HasTraits):
         if data is None:
             return group_band(self.band, by, state_labels=self.ens.state_labels,
                               cluster_names=self.cluster_names)
-        codes, values = self._group_keys(by)
-        x, mask = data.intensity, data.mask
-        n_groups = values.size
-        inten = np.bincount(codes, x, minlength=n_groups)
-        n_snap = np.bincount(codes[mask], minlength=n_groups)
-        if by == "traj":
-            n_traj = (n_snap > 0).astype(np.int64)
-        else:
-            t_codes, t_values = self._group_keys("traj")
-            n_traj = _pair_counts(codes[mask], t_codes[mask], n_groups, t_values.size)
+        inten, n_snap, n_traj, values = self._group_sums(data, by)
         keep = np.flatnonzero(n_snap > 0)
         order = keep[np.argsort(-inten[keep], kind="stable")]
         total = data.total
@@ -384,7 +375,11 @@ class SelectionModel(HasTraits):
             return None
         data = self._live_band()
         if data is not None:
-            return {"n_snapshots": data.n_snapshots, "n_trajectories": data.n_trajectories,
+            if data.traj_counts is None:
+                t_codes, t_values = self._group_keys("traj")
+                data.traj_counts = np.bincount(t_codes[data.mask], minlength=t_values.size)
+            return {"n_snapshots": data.n_snapshots,
+                    "n_trajectories": int(np.count_nonzero(data.traj_counts)),
                     "total": data.total}
         total = float(band["intensity"].sum()) if "intensity" in band else float("nan")
         n_traj = int(band["traj"].nunique()) if "traj" in band else 0
@@ -457,6 +452,47 @@ class SelectionModel(HasTraits):
             self._keys[by] = _codes(keys)
         return self._keys[by]
 
+    def _group_sums(self, data: _BandData, by: str
+                    ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        """Intensity, contributing snapshots and trajectories of every group (cached)."""
+        cache_key = f"{by}:{id(self.clusters)}" if by == "cluster" else by
+        if cache_key in data.groups:
+            return data.groups[cache_key]
+        x, mask = data.intensity, data.mask
+        t_codes, t_values = self._group_keys("traj")
+        n_t = t_values.size
+        if by == "traj":
+            inten = np.bincount(t_codes, x, minlength=n_t)
+            if data.traj_counts is None:
+                data.traj_counts = np.bincount(t_codes[mask], minlength=n_t)
+            n_snap = data.traj_counts
+            out = (inten, n_snap, (n_snap > 0).astype(np.int64), t_values)
+        else:
+            codes, values = self._group_keys(by)
+            n_g = values.size
+            if n_g * n_t <= 20_000_000:  # one (group, trajectory) table answers everything
+                pairs = self._pair_codes(by, codes, t_codes, n_t)
+                per_pair = np.bincount(pairs[mask], minlength=n_g * n_t).reshape(n_g, n_t)
+                inten = np.bincount(pairs, x, minlength=n_g * n_t).reshape(n_g, n_t).sum(axis=1)
+                if data.traj_counts is None:
+                    data.traj_counts = per_pair.sum(axis=0)
+                out = (inten, per_pair.sum(axis=1), np.count_nonzero(per_pair, axis=1), values)
+            else:
+                inten = np.bincount(codes, x, minlength=n_g)
+                n_snap = np.bincount(codes[mask], minlength=n_g)
+                out = (inten, n_snap, _pair_counts(codes[mask], t_codes[mask], n_g, n_t),
+                       values)
+        data.groups[cache_key] = out
+        return out
+
+    def _pair_codes(self, by: str, codes: np.ndarray, t_codes: np.ndarray, n_t: int
+                    ) -> np.ndarray:
+        """Code of the (group, trajectory) pair of every row of :attr:`current` (cached)."""
+        key = f"_pairs_{by}"
+        if key not in self._keys:
+            self._keys[key] = (codes * n_t + t_codes, np.zeros(0))
+        return self._keys[key][0]
+
     def _decorate(self, table: pd.DataFrame) -> pd.DataFrame:
         """Add ``cluster`` and ``weight`` (and any missing key columns) to a snapshot table."""
         rows = self.rows(table["snapshot"].to_numpy())
@@ -478,8 +514,6 @@ class SelectionModel(HasTraits):
         mask = x > 0
         n_snapshots = int(np.count_nonzero(mask))
         total = float(x.sum())
-        t_codes, t_values = self._group_keys("traj")
-        n_traj = int(np.count_nonzero(np.bincount(t_codes[mask], minlength=t_values.size)))
         k = min(n_snapshots, max(self.band_rows, self.max_selected))
         order = np.flatnonzero(mask) if k == n_snapshots else np.arange(x.size)
         order = order[_strongest(x[order], k)]
@@ -494,13 +528,12 @@ class SelectionModel(HasTraits):
         table["share"] = table["intensity"] / total if total > 0 else 0.0
         table = self._decorate(table)
         table.attrs.update(total=total, energy_range=energy_range, delay_range=delay_range,
-                           n_snapshots=n_snapshots, n_trajectories=n_traj,
-                           complete=k == n_snapshots)
+                           n_snapshots=n_snapshots, complete=k == n_snapshots)
         top = table.head(4 * self.max_selected)
         self._top_share = dict(zip(top["snapshot"].to_numpy().tolist(),
                                    top["share"].to_numpy().tolist(), strict=True))
         self._band_data = _BandData(band=table, current=cur, intensity=x, mask=mask,
-                                    total=total, n_snapshots=n_snapshots, n_trajectories=n_traj,
+                                    total=total, n_snapshots=n_snapshots,
                                     energy_range=energy_range, delay_range=delay_range)
         return table
 
@@ -509,7 +542,7 @@ class _BandData:
     """Per-snapshot arrays of one band selection (over the rows of ``current``)."""
 
     def __init__(self, *, band: pd.DataFrame, current: Ensemble, intensity: np.ndarray,
-                 mask: np.ndarray, total: float, n_snapshots: int, n_trajectories: int,
+                 mask: np.ndarray, total: float, n_snapshots: int,
                  energy_range: tuple[float, float], delay_range: tuple[float, float]) -> None:
         self.band = band
         self.current = current
@@ -517,7 +550,8 @@ class _BandData:
         self.mask = mask
         self.total = total
         self.n_snapshots = n_snapshots
-        self.n_trajectories = n_trajectories
+        self.groups: dict[str, tuple[np.ndarray, ...]] = {}  # per group_by, see _group_sums
+        self.traj_counts: np.ndarray | None = None  # contributing snapshots per trajectory
         self.energy_range = energy_range
         self.delay_range = delay_range
         self._row_of: pd.Index | None = None
@@ -539,14 +573,25 @@ class _BandData:
 
 def _strongest(values: np.ndarray, k: int) -> np.ndarray:
     """Indices of the `k` largest `values`, largest first (ties: lower index first)."""
-    k = min(int(k), values.size)
+    n = values.size
+    k = min(int(k), n)
     if k <= 0:
         return np.zeros(0, dtype=np.int64)
-    if k < values.size:
-        idx = np.argpartition(-values, k - 1)[:k]
-        idx.sort()  # ties at equal value keep the row order, as a stable sort does
-    else:
-        idx = np.arange(values.size)
+    idx = np.arange(n)
+    if k < n and n > 64 * k and n > 200_000:
+        # a threshold from a strided sample keeps ~2k candidates; every value above
+        # the k-th largest is >= it whenever at least k values pass, else: no shortcut
+        step = max(1, n // 50_000)
+        sample = values[::step]
+        r = min(sample.size, 2 * k * sample.size // n + 16)
+        thr = np.partition(sample, sample.size - r)[sample.size - r]
+        cand = np.flatnonzero(values >= thr)
+        if k <= cand.size < n // 4:
+            idx = cand
+    if k < idx.size:
+        sub = np.argpartition(-values[idx], k - 1)[:k]
+        sub.sort()  # ties at equal value keep the row order, as a stable sort does
+        idx = idx[sub]
     return idx[np.argsort(-values[idx], kind="stable")]
 
 
