@@ -116,3 +116,37 @@ def test_contributions_top_keeps_strongest_rows_and_region_total():
                                rtol=1e-12)
     assert head.attrs["total"] == pytest.approx(full.attrs["total"], rel=1e-12)
     assert head["share"].sum() < 1.0
+
+
+def test_region_intensity_is_the_unsorted_contributions_column(ens_and_map):
+    from ensemblelab.compute.spectra import region_intensity
+
+    ens, m = ens_and_map
+    kw = dict(energy_range=(0.5, 2.5), delay_range=(10.0, 40.0))
+    x = region_intensity(ens, m, **kw)
+    full = contributions(ens, m, **kw)  # computed independently (not published)
+    assert x.shape == (ens.n_snapshots,) and np.all(x >= 0)
+    rows = np.flatnonzero(np.isin(ens.snapshots["snapshot"], full["snapshot"]))
+    expect = np.zeros(ens.n_snapshots)
+    order = np.argsort(ens.snapshots["snapshot"].to_numpy()[rows])
+    expect[rows[order]] = full.sort_values("snapshot")["intensity"].to_numpy()
+    np.testing.assert_allclose(x, expect, rtol=1e-12, atol=0.0)
+    assert x.sum() == pytest.approx(full.attrs["total"], rel=1e-12)
+    with pytest.raises(SchemaError, match="low < high"):
+        region_intensity(ens, m, energy_range=(2.0, 1.0), delay_range=(0.0, 1.0))
+
+
+@pytest.mark.parametrize("split", [0.52, 1.7, 3.3])
+def test_region_intensity_adds_over_adjacent_windows(ens_and_map, split):
+    # integrals over adjacent windows add up (analytic); a narrow and a wide window
+    # take different error-function paths (one or two terms per edge)
+    from ensemblelab.compute.spectra import region_intensity
+
+    ens, m = ens_and_map
+    whole = region_intensity(ens, m, energy_range=(0.5, 3.5), delay_range=(-20.0, 50.0))
+    parts = (region_intensity(ens, m, energy_range=(0.5, split), delay_range=(-20.0, 50.0))
+             + region_intensity(ens, m, energy_range=(split, 3.5), delay_range=(-20.0, 50.0)))
+    np.testing.assert_allclose(parts, whole, rtol=1e-11, atol=1e-14 * whole.max())
+    later = (region_intensity(ens, m, energy_range=(0.5, 3.5), delay_range=(-20.0, 10.0))
+             + region_intensity(ens, m, energy_range=(0.5, 3.5), delay_range=(10.0, 50.0)))
+    np.testing.assert_allclose(later, whole, rtol=1e-11, atol=1e-14 * whole.max())
