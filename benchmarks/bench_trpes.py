@@ -6,7 +6,8 @@ Prints ratios against peers measured in the same run (absolute timings are noisy
   of a plain streaming read of the same input arrays (goal >= 1/4): the peer sums each
   input array (time bin, energy, weight: the bytes the kernel must read) with numpy,
   single-threaded; a second figure is against the same sums split over as many threads
-  as the kernel uses;
+  as the kernel uses, a third uses the same arrays in the order prepare_sticks makes
+  them (trajectory by trajectory) instead of random order;
 * speed-up against numpy.histogram2d + scipy.ndimage.gaussian_filter on the same grid
   (goal >= 20x) and against the naive per-contribution Gaussian evaluation (timed on a
   subset and scaled; goal >= 500x);
@@ -59,6 +60,21 @@ def make_inputs(n: int, seed: int = 0):
     rng = np.random.default_rng(seed)
     tbin = rng.integers(0, N_DELAYS, n)
     energy = rng.uniform(0.05, E_MAX - 0.05, n)
+    weight = rng.uniform(0.0, 1.0, n)
+    return tbin, energy, weight
+
+
+def make_inputs_ordered(n: int, seed: int = 0, n_channels: int = 3):
+    """Like :func:`make_inputs`, in the order prepare_sticks produces: trajectory by
+    trajectory, time step by time step, a few channels per snapshot (energies drift
+    slowly along a trajectory). The same arrays, only another order and correlation."""
+    rng = np.random.default_rng(seed)
+    per_traj = N_DELAYS * n_channels
+    n_traj = -(-n // per_traj)
+    tbin = np.tile(np.repeat(np.arange(N_DELAYS), n_channels), n_traj)[:n]
+    base = rng.uniform(0.5, E_MAX - 0.5, (n_traj, 1, n_channels))
+    drift = 0.3 * np.sin(np.linspace(0.0, 6.0, N_DELAYS))[None, :, None]
+    energy = np.clip(base + drift, 0.05, E_MAX - 0.05).reshape(-1)[:n]
     weight = rng.uniform(0.0, 1.0, n)
     return tbin, energy, weight
 
@@ -124,11 +140,16 @@ def bench_assembly(n: int, *, repeat: int, backend: str = "auto") -> dict[str, f
                      repeat)
     t_fast = _best(lambda: fast_map(tbin, energy, weight, backend=backend), repeat)
     t_fast3 = _best(lambda: fast_map(tbin, energy, weight, order=3, backend=backend), repeat)
+    tbin[:], energy[:], weight[:] = make_inputs_ordered(n)  # same bytes, another order
+    t_read_o = _best(lambda: streaming_read(tbin, energy, weight), repeat)
+    t_fast_o = _best(lambda: fast_map(tbin, energy, weight, backend=backend), repeat)
+    tbin[:], energy[:], weight[:] = make_inputs(n)
     rss1 = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
     t_hist = _best(lambda: hist_filter_map(tbin, energy, weight), 1)
     t_naive = naive_time_per_stick(tbin, energy, weight) * n
     return {"n": n, "read": t_read, "read_threads": t_read_t, "n_threads": n_threads,
             "fast": t_fast, "fast3": t_fast3, "hist": t_hist, "naive_scaled": t_naive,
+            "read_ordered": t_read_o, "fast_ordered": t_fast_o,
             "extra_rss_mb": rss1 - rss0}
 
 
@@ -193,6 +214,8 @@ def main(argv: list[str] | None = None) -> int:
               f"(order 3: {r['read'] / r['fast3']:.3f}; goal >= 0.25)")
         print(f"  ... vs read in {r['n_threads']} thread(s) (kernel's): "
               f"{r['read_threads'] / r['fast']:.3f}")
+        print(f"  ... sticks in prepare_sticks order : {r['read_ordered'] / r['fast_ordered']:.3f}"
+              " (trajectory by trajectory; the figures above use random order)")
         print(f"  absolute: read {r['read'] * 1e3:.0f} ms, map {r['fast'] * 1e3:.0f} ms, "
               f"histogram2d+filter {r['hist'] * 1e3:.0f} ms, naive (scaled) "
               f"{r['naive_scaled']:.0f} s")

@@ -70,7 +70,7 @@ BACKENDS = ("auto", "numba", "numpy")
 MIN_STICKS_PER_THREAD = 1 << 19
 
 #: numba backend: sticks ahead whose accumulator cells are prefetched
-PREFETCH_AHEAD = 32
+PREFETCH_AHEAD = 16
 
 #: numba backend with several threads: "rows" (each thread reads all sticks and owns a
 #: range of accumulator rows: one shared accumulator) or "sticks" (each thread takes a
@@ -135,6 +135,16 @@ def _dep_range(tbin, energy, weight, comp, tfrac, acc, lo, hi, n_time, n_fine, n
                 for k in range(order):
                     acc[row + row_t + k] += v1
                     v1 *= d
+        elif order == 6:  # the default order, unrolled (same products up to rounding)
+            d2 = d * d
+            d3 = d2 * d
+            v3 = v * d3
+            acc[row] += v
+            acc[row + 1] += v * d
+            acc[row + 2] += v * d2
+            acc[row + 3] += v3
+            acc[row + 4] += v3 * d
+            acc[row + 5] += v3 * d2
         else:
             for k in range(order):
                 acc[row + k] += v
