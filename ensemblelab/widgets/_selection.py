@@ -433,6 +433,15 @@ class SelectionModel(HasTraits):
                                    np.zeros(0))
         return self._keys["_rows"][0]
 
+    def _current_row_of(self, snapshot_ids: Iterable[int]) -> np.ndarray:
+        """Rows of :attr:`current` holding the given snapshot ids (-1: not there)."""
+        if self._keys_for != (id(self.current), id(self.clusters)):
+            self._reset_keys()
+        if "_index" not in self._keys:
+            self._keys["_index"] = (pd.Index(self.current.snapshots["snapshot"].to_numpy()),
+                                    np.zeros(0))
+        return self._keys["_index"][0].get_indexer(np.asarray(list(snapshot_ids)))
+
     def _reset_keys(self) -> None:
         self._keys = {}
         self._keys_for = (id(self.current), id(self.clusters))
@@ -554,7 +563,6 @@ class _BandData:
         self.traj_counts: np.ndarray | None = None  # contributing snapshots per trajectory
         self.energy_range = energy_range
         self.delay_range = delay_range
-        self._row_of: pd.Index | None = None
 
     def share_of(self, model: SelectionModel, snapshot_id: int) -> float | None:
         """Share of one snapshot in the band (0.0 for a snapshot of an excluded trajectory)."""
@@ -563,9 +571,7 @@ class _BandData:
         if self.current is model.ens:
             row = int(model.rows([snapshot_id])[0])
         else:
-            if self._row_of is None:
-                self._row_of = pd.Index(self.current.snapshots["snapshot"].to_numpy())
-            row = int(self._row_of.get_indexer([snapshot_id])[0])
+            row = int(model._current_row_of([snapshot_id])[0])
             if row < 0:
                 return 0.0
         return float(self.intensity[row] / self.total)

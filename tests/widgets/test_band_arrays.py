@@ -174,3 +174,18 @@ def test_strongest_matches_a_stable_sort(n):
         assert np.all(np.diff(got[x[got] == x[got][-1]]) > 0)  # ties in row order
     assert _strongest(x, 0).size == 0
     np.testing.assert_array_equal(_strongest(x, n + 5), np.argsort(-x, kind="stable"))
+
+
+def test_share_beyond_the_kept_rows_with_exclusions(small_band, toy, trpes):
+    model, _ = small_band
+    model.exclude([4])
+    model.trpes_map = compute_trpes(model.current, probe=GaussianPulse(photon_energy=5.0,
+                                                                       fwhm=30.0),
+                                    energies=trpes.energies, delays=trpes.delays,
+                                    progress=False)
+    full = contributions(model.current, model.trpes_map, by="snapshot", **BAND)
+    row = full.iloc[len(full) // 2]
+    assert model.snapshot_info(int(row["snapshot"]))["share"] == pytest.approx(
+        float(row["share"]), rel=1e-12)
+    gone = int(toy.snapshots.loc[toy.snapshots["traj"] == 4, "snapshot"].iloc[0])
+    assert model.snapshot_info(gone)["share"] == 0.0  # an excluded trajectory's snapshot
