@@ -241,10 +241,12 @@ class SelectionModel(HasTraits):
     ) -> pd.DataFrame:
         """Select a band of the current map and find what contributes to it.
 
-        Calls :func:`ensemblelab.compute.spectra.contributions` on :attr:`current`
-        and :attr:`trpes_map`, then updates :attr:`energy_range`,
+        Calls :func:`ensemblelab.compute.spectra.region_intensity` on :attr:`current`
+        and :attr:`trpes_map` (every snapshot's band intensity, unsorted), keeps the
+        :attr:`band_rows` strongest snapshots as :attr:`band` and the array for exact
+        grouping (:meth:`group_table`), then updates :attr:`energy_range`,
         :attr:`delay_range`, :attr:`band` and :attr:`selected` together (observers
-        see a consistent state).
+        see a consistent state). No full sorted table is built (:meth:`full_band`).
 
         Parameters
         ----------
@@ -256,7 +258,7 @@ class SelectionModel(HasTraits):
         Returns
         -------
         DataFrame
-            The per-snapshot contributions, strongest first.
+            The strongest contributing snapshots, strongest first (:attr:`band`).
         """
         if self.trpes_map is None:
             raise ValueError("no map is shown yet: select_band needs trpes_map to be set.")
@@ -286,7 +288,11 @@ class SelectionModel(HasTraits):
             self.selected = ()
 
     def select_group(self, key: str, value: Any) -> tuple[int, ...]:
-        """Show the band's snapshots of one group (a selection-table row).
+        """Show the strongest snapshots of one group of the band (a selection-table row).
+
+        With a band from :meth:`select_band` the group's strongest contributing
+        snapshots are found among *all* of them (not only the rows kept in
+        :attr:`band`); a band table set by hand is filtered as it is.
 
         Parameters
         ----------
