@@ -1,13 +1,19 @@
 """Chunk-by-chunk reductions for lazy (chunked-store) ensembles, run with Dask (private).
 
 Each public computation that accepts a :class:`~ensemblelab.io.lazy.LazyEnsemble`
-dispatches here. The plan is always the same: a first cheap pass collects the
-global quantities the in-memory code derives from the whole ensemble (time grid,
-median step, stick energy range), then every chunk (whole trajectories, read
-by the task itself from the store, so on a cluster nothing large travels) is
-reduced to partial sums with the *same kernels* as in memory, the partial sums
-are added in a tree, and the in-memory finishing code turns them into the
-result. Differences from the in-memory result come only from the order of
+dispatches here. The global quantities the in-memory code derives from the whole
+ensemble (time grid, median step, stick energy range) come from the per-chunk
+summaries the writer stored in the manifest (time range, time-step counts, IP
+range; see :mod:`ensemblelab.io.chunked`), so no pass over the data precedes the
+computation; only chunks without a summary (older stores) or, for the energy
+range, chunks that the probe opens only partly are read first. Then every chunk
+(whole trajectories, read by the task itself from the store, so on a cluster
+nothing large travels) is reduced to partial sums, the partial sums are added in
+a tree, and the in-memory finishing code turns them into the result. The TRPES
+and population tasks read only the snapshot columns and arrays they use
+(memory-mapped; never the geometries) without building a validated Ensemble, and
+compute the sticks with the formulas of :func:`.spectra.prepare_sticks` and the
+same kernels. Differences from the in-memory result come only from the order of
 floating-point additions (~1e-15 relative).
 
 * TRPES map: Taylor-moment histograms and alive weights are sums over sticks
@@ -27,7 +33,9 @@ floating-point additions (~1e-15 relative).
 Scheduling: ``client`` (a ``dask.distributed.Client``) runs the tasks on its
 cluster; otherwise ``scheduler`` (``"threads"``, ``"processes"``,
 ``"synchronous"``) or Dask's default (the active distributed client if there is
-one, else the local threaded scheduler).
+one, else the scheduler set with ``dask.config.set(scheduler=...)``, else the
+local threaded scheduler; numpy and the compiled deposit kernel release the GIL,
+so its threads run in parallel).
 """
 
 from __future__ import annotations
