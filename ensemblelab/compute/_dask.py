@@ -756,22 +756,17 @@ def populations(
     progress: bool = True,
 ) -> pd.DataFrame:
     """:func:`ensemblelab.compute.populations.populations` for a lazy ensemble (see there)."""
-    from scipy.stats import norm
 
     from . import _kernels_populations as _k
-    from .populations import _check_kind, _excluded_mask, _resolve_grid, _resolve_weights
+    from .populations import (
+        _check_arguments,
+        _excluded_mask,
+        _finish,
+        _resolve_grid,
+        _resolve_weights,
+    )
 
-    _check_kind(lz, kind)
-    if method not in ("wilson", "bootstrap"):
-        raise SchemaError(
-            f"The 'method' parameter of populations must be 'wilson' or 'bootstrap'; got "
-            f"{method!r}."
-        )
-    if not (isinstance(ci, float | int) and 0.0 < float(ci) < 1.0):
-        raise SchemaError(f"The 'ci' parameter of populations must be in (0, 1); got {ci!r}.")
-    if method == "bootstrap" and (int(n_boot) != n_boot or n_boot < 2):
-        raise SchemaError(f"The 'n_boot' parameter of populations must be an int >= 2; got "
-                          f"{n_boot!r}.")
+    _check_arguments(lz, kind=kind, method=method, ci=ci, n_boot=n_boot)
     w, wlabel = _resolve_weights(lz, weights)
     grid = _resolve_grid(lz, time_grid)
     excluded = _excluded_mask(lz, exclude)
@@ -784,50 +779,13 @@ def populations(
     (tot,) = _compute([_tree(_view_tasks(lz, _pop_chunk, opts), _add)], client=client,
                       scheduler=scheduler, progress=progress, desc="population chunks")
     num, w_alive, w2, n_alive = tot["num"], tot["w_alive"], tot["w2"], tot["n_alive"]
-    # ---- finishing: the same formulas as the in-memory populations()
-    with np.errstate(divide="ignore", invalid="ignore"):
-        pop = num / w_alive[:, None]
-        n_eff = np.where(w2 > 0, w_alive * w_alive / w2, 0.0)
-    if method == "wilson":
-        z = float(norm.ppf(0.5 + 0.5 * float(ci)))
-        lo, hi = _k.wilson_interval(pop, np.broadcast_to(n_eff[:, None], pop.shape), z)
-    else:
+    boot = None
+    if method == "bootstrap":
         with np.errstate(divide="ignore", invalid="ignore"):
             boot = tot["boot_num"].reshape(-1, n_times, n_states) / tot["boot_den"][:, :, None]
-        alpha = 0.5 * (1.0 - float(ci))
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore", RuntimeWarning)
-            lo, hi = np.nanquantile(boot, [alpha, 1.0 - alpha], axis=0)
-        dead = w_alive <= 0
-        lo[dead], hi[dead] = np.nan, np.nan
-    if np.any(n_alive == 0):
-        warnings.warn(
-            f"populations: no trajectory is alive at {int(np.sum(n_alive == 0))} of {n_times} "
-            "grid times; their populations are NaN.", EnsembleWarning, stacklevel=3)
-    keep = np.arange(n_states) if states is None else np.asarray(list(states), dtype=np.int64)
-    if keep.size and (keep.min() < 0 or keep.max() >= n_states):
-        raise SchemaError(f"The 'states' parameter of populations must hold indices in "
-                          f"[0, {n_states - 1}]; got {keep.tolist()}.")
-    labels = np.asarray(lz.state_labels, dtype=object)
-    frame = pd.DataFrame({
-        "time": np.repeat(grid, keep.size),
-        "state": np.tile(keep, n_times),
-        "label": np.tile(labels[keep], n_times),
-        "population": pop[:, keep].ravel(),
-        "lower": lo[:, keep].ravel(),
-        "upper": hi[:, keep].ravel(),
-        "n_alive": np.repeat(n_alive, keep.size),
-        "n_eff": np.repeat(n_eff, keep.size),
-    })
-    t_end = lz.trajectories["t_end"].to_numpy()
-    ids = lz.trajectories["traj"].to_numpy()
-    frame.attrs.update(
-        kind=kind, method=method, ci=float(ci), weights=wlabel,
-        n_boot=int(n_boot) if method == "bootstrap" else 0,
-        excluded=ids[excluded].tolist(),
-        ended_early=ids[(t_end < grid[-1]) & ~excluded].tolist(),
-    )
-    return frame
+    return _finish(lz, grid=grid, num=num, w_alive=w_alive, w2=w2, n_alive=n_alive, boot=boot,
+                   states=states, kind=kind, method=method, ci=ci, wlabel=wlabel, n_boot=n_boot,
+                   excluded=excluded, stacklevel=4)
 
 
 # ------------------------------------------------------------------------ trajectory flags

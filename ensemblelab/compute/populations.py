@@ -308,17 +308,7 @@ def populations(
         return _dask.populations(ens, kind=kind, weights=weights, ci=ci, method=method,
                                  time_grid=time_grid, n_boot=n_boot, random_state=random_state,
                                  exclude=exclude, states=states, client=client)
-    _check_kind(ens, kind)
-    if method not in ("wilson", "bootstrap"):
-        raise SchemaError(
-            f"The 'method' parameter of populations must be 'wilson' or 'bootstrap'; got "
-            f"{method!r}."
-        )
-    if not (isinstance(ci, float | int) and 0.0 < float(ci) < 1.0):
-        raise SchemaError(f"The 'ci' parameter of populations must be in (0, 1); got {ci!r}.")
-    if method == "bootstrap" and (int(n_boot) != n_boot or n_boot < 2):
-        raise SchemaError(f"The 'n_boot' parameter of populations must be an int >= 2; got "
-                          f"{n_boot!r}.")
+    _check_arguments(ens, kind=kind, method=method, ci=ci, n_boot=n_boot)
     w, wlabel = _resolve_weights(ens, weights)
     grid = _resolve_grid(ens, time_grid)
     excluded = _excluded_mask(ens, exclude)
@@ -350,15 +340,49 @@ def populations(
             cw = counts[:, sl] * wb[None, :]
             boot_num += cw @ vals.reshape(vals.shape[0], -1)
             boot_den += cw @ a
+    boot = None
+    if counts is not None:
+        with np.errstate(divide="ignore", invalid="ignore"):
+            boot = boot_num.reshape(-1, n_times, n_states) / boot_den[:, :, None]
+    return _finish(ens, grid=grid, num=num, w_alive=w_alive, w2=w2, n_alive=n_alive, boot=boot,
+                   states=states, kind=kind, method=method, ci=ci, wlabel=wlabel, n_boot=n_boot,
+                   excluded=excluded)
+
+
+def _check_arguments(ens: Any, *, kind: str, method: str, ci: Any, n_boot: Any) -> None:
+    """Validate the arguments shared by the in-memory and the lazy populations()."""
+    _check_kind(ens, kind)
+    if method not in ("wilson", "bootstrap"):
+        raise SchemaError(
+            f"The 'method' parameter of populations must be 'wilson' or 'bootstrap'; got "
+            f"{method!r}."
+        )
+    if not (isinstance(ci, float | int) and 0.0 < float(ci) < 1.0):
+        raise SchemaError(f"The 'ci' parameter of populations must be in (0, 1); got {ci!r}.")
+    if method == "bootstrap" and (int(n_boot) != n_boot or n_boot < 2):
+        raise SchemaError(f"The 'n_boot' parameter of populations must be an int >= 2; got "
+                          f"{n_boot!r}.")
+
+
+def _finish(ens: Any, *, grid: np.ndarray, num: np.ndarray, w_alive: np.ndarray,
+            w2: np.ndarray, n_alive: np.ndarray, boot: np.ndarray | None, states: Any,
+            kind: str, method: str, ci: float, wlabel: str, n_boot: int,
+            excluded: np.ndarray, stacklevel: int = 3) -> pd.DataFrame:
+    """Fractions, intervals and the tidy frame from the weighted sums over trajectories.
+
+    ``num`` (n_times, n_states) and ``w_alive``/``w2``/``n_alive`` (n_times,) are sums of
+    weight x value, weight, weight^2 and alive counts; ``boot`` (n_boot, n_times,
+    n_states) holds the bootstrap replicas of the fractions, or None for Wilson.
+    Shared by the in-memory and the per-chunk (Dask) paths.
+    """
+    n_times, n_states = num.shape
     with np.errstate(divide="ignore", invalid="ignore"):
         pop = num / w_alive[:, None]
         n_eff = np.where(w2 > 0, w_alive * w_alive / w2, 0.0)
-    if counts is None:
+    if boot is None:
         z = float(norm.ppf(0.5 + 0.5 * float(ci)))
         lo, hi = _k.wilson_interval(pop, np.broadcast_to(n_eff[:, None], pop.shape), z)
     else:
-        with np.errstate(divide="ignore", invalid="ignore"):
-            boot = boot_num.reshape(-1, n_times, n_states) / boot_den[:, :, None]
         alpha = 0.5 * (1.0 - float(ci))
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", RuntimeWarning)
@@ -369,7 +393,7 @@ def populations(
     if np.any(n_alive == 0):
         warnings.warn(
             f"populations: no trajectory is alive at {int(np.sum(n_alive == 0))} of {n_times} "
-            "grid times; their populations are NaN.", EnsembleWarning, stacklevel=2)
+            "grid times; their populations are NaN.", EnsembleWarning, stacklevel=stacklevel)
     keep = np.arange(n_states) if states is None else np.asarray(list(states), dtype=np.int64)
     if keep.size and (keep.min() < 0 or keep.max() >= n_states):
         raise SchemaError(f"The 'states' parameter of populations must hold indices in "
