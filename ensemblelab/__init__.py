@@ -38,6 +38,7 @@ _LAZY: dict[str, str] = {
     "compute_trpes": "ensemblelab.compute.spectra",
     "contributions": "ensemblelab.compute.spectra",
     "prepare_sticks": "ensemblelab.compute.spectra",
+    "region_intensity": "ensemblelab.compute.spectra",
     "doorway_weights": "ensemblelab.compute.spectra",
     "compare_maps": "ensemblelab.compute.compare",
     "load_measured_map": "ensemblelab.io.maps",
@@ -80,6 +81,7 @@ __all__ = [
     "compute_trpes",
     "contributions",
     "prepare_sticks",
+    "region_intensity",
     "doorway_weights",
     "compare_maps",
     # populations and kinetics

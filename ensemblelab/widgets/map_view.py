@@ -184,7 +184,7 @@ class MapView(View):
                                                     color="white")
         ax = bqplot.Axis(scale=self.x, label="kinetic energy / eV")
         ay = bqplot.Axis(scale=self.y, side="left", label="delay / fs")
-        ac = bqplot.ColorAxis(scale=self.c, side="right")
+        ac = bqplot.ColorAxis(scale=self.c, side="right", num_ticks=6, tick_format=".2g")
         self.figure = bqplot.Figure(
             marks=[self.heatmap, self.box], axes=[ax, ay, ac], interaction=self.brush,
             layout=widgets.Layout(width="520px", height="420px"),
@@ -216,13 +216,13 @@ class MapView(View):
         self.delay_cut = bqplot.Figure(
             marks=[self.delay_cut_line], layout=small, fig_margin=margin,
             title="delay cut",
-            axes=[bqplot.Axis(scale=self.cx, label="kinetic energy / eV"),
-                  bqplot.Axis(scale=self.cy, side="left", tick_format=".2g")])
+            axes=[bqplot.Axis(scale=self.cx, label="kinetic energy / eV", num_ticks=6),
+                  bqplot.Axis(scale=self.cy, side="left", tick_format=".2g", num_ticks=5)])
         self.energy_cut = bqplot.Figure(
             marks=[self.energy_cut_line], layout=small, fig_margin=margin,
             title="energy cut",
-            axes=[bqplot.Axis(scale=self.tx, label="delay / fs"),
-                  bqplot.Axis(scale=self.ty, side="left", tick_format=".2g")])
+            axes=[bqplot.Axis(scale=self.tx, label="delay / fs", num_ticks=6),
+                  bqplot.Axis(scale=self.ty, side="left", tick_format=".2g", num_ticks=5)])
 
         self.delay_cut.add_class("ensemblelab-delay-cut")
         self.energy_cut.add_class("ensemblelab-energy-cut")
