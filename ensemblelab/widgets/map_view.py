@@ -361,6 +361,8 @@ class MapView(View):
         if self.layer.value == "residual":
             m = max(abs(lo), abs(hi), 1e-300)
             lo, hi = -m, m
+        elif lo < 0 and abs(lo) < 1e-4 * abs(hi):
+            lo = 0.0  # numerical tails of the broadening kernel: not worth a colour
         with self.figure.hold_sync():
             self.c.scheme = "RdBu" if self.layer.value == "residual" else "viridis"
             self.c.min, self.c.max = lo, (hi if hi > lo else lo + 1.0)
