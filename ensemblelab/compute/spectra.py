@@ -280,7 +280,8 @@ class TRPESModel:
         n_fine = int(math.floor((e_hi - e_lo) / h + 0.5)) + 2
         progress = bool(self.info.get("progress", False))
         hist = _deposit(self.tbin, e, self.sticks.weight, n_time=self.n_time, e_lo=e_lo, h=h,
-                        n_fine=n_fine, order=self.order, tfrac=self.tfrac, progress=progress)
+                        n_fine=n_fine, order=self.order, tfrac=self.tfrac, progress=progress,
+                        time_sorted=True)
         hist_comp = None
         if self.comp is not None:
             src = self.comp_src
@@ -290,7 +291,8 @@ class TRPESModel:
             ww = self.sticks.weight if self.comp_weight is None else self.comp_weight
             hist_comp = _deposit(tb, ee, ww, n_time=self.n_time, e_lo=e_lo, h=h,
                                  n_fine=n_fine, order=self.order, comp=self.comp,
-                                 n_comp=len(self.labels), tfrac=tf, progress=progress)
+                                 n_comp=len(self.labels), tfrac=tf, progress=progress,
+                                 time_sorted=True)
         c.update(h=h, e_lo=e_lo, n_fine=n_fine, hist=hist, hist_comp=hist_comp)
         return hist, hist_comp, e_lo, h, n_fine
 
@@ -518,6 +520,10 @@ def prepare_sticks(
     ekin = probe.total_energy - ip
     is_open = ekin > 0
     snap, chan = np.nonzero(is_open)
+    # sticks are kept time-major (sorted by time bin, stable): the deposit kernel then
+    # reuses accumulator rows in cache (see _kernels_trpes.deposit_moments(time_sorted=))
+    by_time = np.argsort(tbin_snap[snap], kind="stable")
+    snap, chan = snap[by_time], chan[by_time]
     dyson = ens.active_dyson()
     sigma = np.asarray(cs(dyson[snap, chan], ekin[snap, chan], ip[snap, chan], chan,
                           probe.total_energy), dtype=float)
@@ -525,10 +531,14 @@ def prepare_sticks(
         raise SchemaError("the cross-section model must return finite values >= 0, one per "
                           "stick.")
     time = ens.snapshots["time"].to_numpy()
+    columns = {"snapshot": snap, "traj": ens.snapshots["traj"].to_numpy()[snap],
+               "time": time[snap], "state": active[snap], "channel": chan,
+               "energy": ekin[snap, chan], "weight": w_snap[snap] * sigma}
+    for name, arr in columns.items():  # made here, owned by nobody else: hand over
+        if arr.dtype == (np.float64 if name in ("time", "energy", "weight") else np.int64):
+            arr.setflags(write=False)
     sticks = StickSpectrum(
-        snapshot=snap, traj=ens.snapshots["traj"].to_numpy()[snap], time=time[snap],
-        state=active[snap], channel=chan, energy=ekin[snap, chan],
-        weight=w_snap[snap] * sigma,
+        **columns,
         info={"photon_energy": probe.photon_energy, "n_photons": probe.n_photons,
               "cross_section": _describe(cs), "weights": weights_used},
     )

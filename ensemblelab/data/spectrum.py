@@ -38,7 +38,10 @@ TRPES_FORMAT = "ensemblelab-trpes-map-v1"
 
 
 def _ro(a: Any, name: str, *, dtype: Any = np.float64, ndim: int | None = None) -> np.ndarray:
-    arr = np.array(a, dtype=dtype, copy=True)
+    """A read-only array; writable input is copied, so the caller's own array stays theirs."""
+    arr = np.asarray(a, dtype=dtype)
+    if arr.flags.writeable:
+        arr = arr.copy()
     if ndim is not None and arr.ndim != ndim:
         raise SchemaError(f"{name} must be a {ndim}-D array; got shape {arr.shape}.")
     arr.setflags(write=False)
