@@ -39,6 +39,7 @@ _LAZY: dict[str, str] = {
     "contributions": "ensemblelab.compute.spectra",
     "prepare_sticks": "ensemblelab.compute.spectra",
     "region_intensity": "ensemblelab.compute.spectra",
+    "ground_state_ionisation_fraction": "ensemblelab.compute.spectra",
     "doorway_weights": "ensemblelab.compute.spectra",
     "compare_maps": "ensemblelab.compute.compare",
     "load_measured_map": "ensemblelab.io.maps",
@@ -82,6 +83,7 @@ __all__ = [
     "contributions",
     "prepare_sticks",
     "region_intensity",
+    "ground_state_ionisation_fraction",
     "doorway_weights",
     "compare_maps",
     # populations and kinetics

@@ -11,6 +11,7 @@ from typing import Any
 _LAZY: dict[str, str] = {
     "prepare_sticks": "ensemblelab.compute.spectra",
     "region_intensity": "ensemblelab.compute.spectra",
+    "ground_state_ionisation_fraction": "ensemblelab.compute.spectra",
     "doorway_weights": "ensemblelab.compute.spectra",
     "compare_maps": "ensemblelab.compute.compare",
     "population_consistency": "ensemblelab.compute.populations",

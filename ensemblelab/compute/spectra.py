@@ -37,6 +37,7 @@ caches the moments so that a new probe width or resolution only re-broadens.
 from __future__ import annotations
 
 import math
+import warnings
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 from typing import Any
@@ -48,7 +49,7 @@ from scipy.special import ndtr
 
 from ..data.ensemble import Ensemble
 from ..data.spectrum import StickSpectrum, TRPESMap
-from ..errors import SchemaError
+from ..errors import EnsembleWarning, SchemaError
 from ..units import HARTREE_EV
 from . import _kernels_trpes as K
 from .cross_sections import CrossSection, _describe, resolve_cross_section
@@ -673,8 +674,48 @@ def compute_trpes(
                                    time_step=time_step, client=client)
     model = prepare_sticks(ens, probe=probe, pump=pump, cross_section=cross_section,
                            weights=weights, by=by, time_step=time_step, progress=progress)
+    fraction = ground_state_ionisation_fraction(ens, probe=probe)
+    if fraction > 0:
+        warnings.warn(
+            f"compute_trpes: the probe ({probe.n_photons} x {probe.photon_energy} eV) can ionise "
+            f"the ground state at {100 * fraction:.1f} % of the initial geometries, so a measured "
+            "pump-on minus pump-off map would also hold a negative ground-state depletion term "
+            "(method notes 1.5), which this map does not include. Hint: compare with measured "
+            "maps only above the ground-state band, or lower the probe photon energy.",
+            EnsembleWarning, stacklevel=2)
     return model.broaden(energies=energies, delays=delays, pump=pump, resolution=resolution,
                          convolve=convolve, normalise=normalise)
+
+
+def ground_state_ionisation_fraction(ens: Ensemble, *, probe: GaussianPulse) -> float:
+    """Weighted fraction of initial geometries at which the probe ionises the ground state.
+
+    At the first snapshot of each trajectory (its initial, Wigner-sampled geometry) the
+    ground state S0 is ionisable when ``n h-nu > E+_k - E_0`` for some cation state k.
+    A non-zero fraction means a pump-on minus pump-off experiment also sees a
+    ground-state depletion (bleach) term, absent from the doorway-window map.
+
+    Parameters
+    ----------
+    ens : Ensemble
+        Needs ``cation_energies``; without them the fraction is 0.
+    probe : GaussianPulse
+        The probe pulse (``n_photons * photon_energy`` is the total energy, eV).
+
+    Returns
+    -------
+    float
+        Fraction in [0, 1], weighted by the trajectory weights.
+    """
+    if ens.cation_energies is None or ens.n_snapshots == 0:
+        return 0.0
+    traj = ens.snapshots["traj"].to_numpy()
+    first = np.r_[0, np.flatnonzero(traj[1:] != traj[:-1]) + 1]
+    ip0 = ens.cation_energies[first] - ens.energies[first, 0][:, None]
+    open_ = np.any(probe.total_energy - ip0 > 0, axis=1)
+    w = ens.trajectories["weight"].to_numpy()
+    total = float(w.sum())
+    return float(w[open_].sum() / total) if total > 0 else 0.0
 
 
 # ---------------------------------------------------------------------- contributions

@@ -289,3 +289,26 @@ def test_trpes_input_not_modified():
     np.testing.assert_array_equal(ens.dyson, before[0])
     np.testing.assert_array_equal(ens.energies, before[1])
     assert ens.snapshots.equals(before[2])
+
+
+def test_trpes_warns_when_probe_ionises_ground_state():
+    # method notes 1.5 [D]: a ground-state depletion term exists only where n h-nu > IP_00;
+    # the toy ensemble has IP(S0 -> D0) = 8.0 eV at every geometry (ensemblelab.testing)
+    import warnings
+
+    from ensemblelab.compute.spectra import ground_state_ionisation_fraction
+    from ensemblelab.errors import EnsembleWarning
+    from ensemblelab.testing import TOY_TRUTH, make_toy_ensemble
+
+    ens = make_toy_ensemble(8, seed=2, t_max=20.0)
+    assert TOY_TRUTH["ip"][0] == 8.0
+    below = GaussianPulse(photon_energy=7.9, fwhm=30.0)
+    above = GaussianPulse(photon_energy=4.1, fwhm=30.0, n_photons=2)  # 8.2 eV in total
+    assert ground_state_ionisation_fraction(ens, probe=below) == 0.0
+    assert ground_state_ionisation_fraction(ens, probe=above) == 1.0
+    grid = dict(energies=np.linspace(0.0, 5.0, 11), delays=[0.0, 10.0], progress=False)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", EnsembleWarning)
+        compute_trpes(ens, probe=below, **grid)
+    with pytest.warns(EnsembleWarning, match=r"ionise the ground state at 100.0 %"):
+        compute_trpes(ens, probe=above, **grid)
