@@ -21,6 +21,8 @@ import time
 from pathlib import Path
 from typing import Any
 
+from .._atomic import atomic_file
+
 __all__ = ["register", "default_data_path", "write_notebook", "voila_command", "free_port",
            "wait_for_port", "stop_process_group"]
 
@@ -100,10 +102,8 @@ def write_notebook(folder: str | os.PathLike[str], data_path: str | os.PathLike[
     nb.metadata["kernelspec"] = {"name": "python3", "display_name": "Python 3",
                                  "language": "python"}
     path = Path(folder) / "ensemblelab_explorer.ipynb"
-    path.parent.mkdir(parents=True, exist_ok=True)
-    tmp = path.with_name(f".{path.name}.tmp")
-    nbformat.write(nb, str(tmp))
-    os.replace(tmp, path)
+    with atomic_file(path, "w", encoding="utf-8") as fh:
+        nbformat.write(nb, fh)
     return path
 
 

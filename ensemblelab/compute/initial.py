@@ -24,7 +24,6 @@ import gzip
 import io
 import math
 import os
-import tempfile
 import warnings
 from collections.abc import Sequence
 from dataclasses import dataclass, field
@@ -35,6 +34,7 @@ import numpy as np
 import numpy.typing as npt
 import pandas as pd
 
+from .._atomic import atomic_write_bytes
 from ..data.elements import masses_for
 from ..errors import NumericalWarning, SchemaError
 from ..units import (
@@ -566,19 +566,6 @@ def select_initial_conditions(
     return sel.reset_index(drop=True)
 
 
-def _atomic_write_bytes(path: Path, data: bytes) -> None:
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", dir=path.parent)
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            fh.write(data)
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
-
-
 def write_initial_conditions(
     path: str | os.PathLike,
     sample: WignerSample,
@@ -637,5 +624,5 @@ def write_initial_conditions(
         with gzip.GzipFile(filename="", mode="wb", fileobj=raw, mtime=0) as gz:
             gz.write(data)
         data = raw.getvalue()
-    _atomic_write_bytes(path, data)
+    atomic_write_bytes(path, data)
     return path

@@ -19,7 +19,6 @@ from __future__ import annotations
 import io as _io
 import json
 import os
-import tempfile
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -29,6 +28,7 @@ import numpy as np
 import numpy.typing as npt
 import pandas as pd
 
+from .._atomic import atomic_write_bytes
 from ..errors import ParseError, SchemaError
 
 __all__ = ["TRPESMap", "StickSpectrum", "TRPES_FORMAT"]
@@ -61,20 +61,6 @@ def _json_safe(value: Any) -> Any:
     if isinstance(value, float | int | str | bool) or value is None:
         return value
     return repr(value)
-
-
-def _atomic_write_bytes(path: Path, data: bytes) -> None:
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            fh.write(data)
-        os.chmod(tmp, 0o644)
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
 
 
 @dataclass(frozen=True, eq=False, repr=False)
@@ -257,7 +243,7 @@ class TRPESMap:
                 components=comps,
                 params=np.array(json.dumps(self.params)),
             )
-            _atomic_write_bytes(path, buf.getvalue())
+            atomic_write_bytes(path, buf.getvalue())
             return path
         lines = [
             f"# {TRPES_FORMAT}",
@@ -267,7 +253,7 @@ class TRPESMap:
         ]
         for d, row in zip(self.delays, self.intensity, strict=True):
             lines.append(repr(float(d)) + "," + ",".join(repr(float(v)) for v in row))
-        _atomic_write_bytes(path, ("\n".join(lines) + "\n").encode())
+        atomic_write_bytes(path, ("\n".join(lines) + "\n").encode())
         return path
 
     @classmethod

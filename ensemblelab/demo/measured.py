@@ -16,12 +16,12 @@ from __future__ import annotations
 
 import os
 import sys
-import tempfile
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
+from .._atomic import atomic_write_text
 from ..compute.pulses import GaussianPulse
 from ..compute.spectra import compute_trpes
 from ..data.spectrum import TRPESMap
@@ -103,17 +103,7 @@ def write_measured_map(path: str | os.PathLike[str] = DEFAULT_PATH, **overrides:
     """Write the invented measured map as a CSV grid (atomically)."""
     path = Path(path)
     text = measured_map_text(make_measured_map(**overrides))
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    try:
-        with os.fdopen(fd, "w") as fh:
-            fh.write(text)
-        os.chmod(tmp, 0o644)
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
+    atomic_write_text(path, text)
     return path
 
 

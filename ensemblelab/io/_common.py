@@ -19,6 +19,7 @@ from typing import Any
 import numpy as np
 
 from .. import units
+from .._atomic import atomic_file  # noqa: F401  (used by the io modules)
 from ..errors import EnsembleWarning, ParseError, StoreError
 
 __all__ = [
@@ -143,20 +144,6 @@ def decode_metadata(obj: Any) -> Any:
 def dumps_json(obj: Any) -> str:
     """JSON text of an already encoded object (strict: no NaN literals)."""
     return json.dumps(obj, indent=2, allow_nan=False, sort_keys=False) + "\n"
-
-
-@contextlib.contextmanager
-def atomic_file(path: Path, mode: str = "w") -> Iterator[Any]:
-    """Write `path` through a temporary file beside it and ``os.replace`` at the end."""
-    path = Path(path)
-    tmp = path.with_name(f".{path.name}.tmp-{uuid.uuid4().hex[:8]}")
-    try:
-        with open(tmp, mode) as fh:
-            yield fh
-        os.replace(tmp, path)
-    finally:
-        if tmp.exists():
-            tmp.unlink()
 
 
 @contextlib.contextmanager

@@ -16,7 +16,6 @@ from __future__ import annotations
 
 import io
 import os
-import tempfile
 from collections.abc import Sequence
 from pathlib import Path
 from typing import Literal
@@ -25,27 +24,11 @@ import numpy as np
 import numpy.typing as npt
 import pandas as pd
 
+from .._atomic import atomic_write_text
 from .._optional import import_optional
 from ..errors import SchemaError
 
 __all__ = ["write_xyz", "write_pdb", "write_structures"]
-
-
-def _atomic_write_text(path: Path, text: str, *, overwrite: bool) -> Path:
-    path = Path(path)
-    if path.exists() and not overwrite:
-        raise FileExistsError(f"{path} exists; pass overwrite=True to replace it.")
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8", newline="\n") as fh:
-            fh.write(text)
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
-    return path
 
 
 def _check(geometries: npt.ArrayLike, symbols: Sequence[str], info: pd.DataFrame | None
@@ -136,7 +119,7 @@ def write_xyz(
         for s, (x, y, z) in zip(sym, X[f], strict=True):
             buf.write(f"{s:<3s} {x:{width}.{precision}f} {y:{width}.{precision}f} "
                       f"{z:{width}.{precision}f}\n")
-    return _atomic_write_text(Path(path), buf.getvalue(), overwrite=overwrite)
+    return atomic_write_text(Path(path), buf.getvalue(), overwrite=overwrite)
 
 
 def write_pdb(
@@ -190,7 +173,7 @@ def write_pdb(
                 if chunk:
                     out.append(f"REMARK 250 {chunk}")
             model += 1
-    return _atomic_write_text(Path(path), "\n".join(out) + "\n", overwrite=overwrite)
+    return atomic_write_text(Path(path), "\n".join(out) + "\n", overwrite=overwrite)
 
 
 def write_structures(
@@ -239,5 +222,5 @@ def write_structures(
     table = info.reset_index(drop=True).copy()
     table.insert(0, "frame", np.arange(len(table)))
     table["file"] = out.name
-    _atomic_write_text(csv_path, table.to_csv(index=False), overwrite=overwrite)
+    atomic_write_text(csv_path, table.to_csv(index=False), overwrite=overwrite)
     return out, csv_path

@@ -8,7 +8,6 @@ PDF by the file suffix; written atomically).
 from __future__ import annotations
 
 import os
-import tempfile
 from pathlib import Path
 from typing import Any
 
@@ -16,6 +15,8 @@ import numpy as np
 import pandas as pd
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
+
+from .._atomic import atomic_file
 
 __all__ = [
     "plot_populations",
@@ -210,14 +211,6 @@ def savefig(fig: Figure, path: str | os.PathLike, *, dpi: int = 200, **kwargs: A
     if fmt is None:
         raise ValueError(f"savefig: the file suffix must be one of {sorted(_FORMATS)}; got "
                          f"{target.suffix!r} in {str(target)!r}.")
-    target.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent)
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            fig.savefig(fh, format=fmt, dpi=dpi, **kwargs)
-        os.replace(tmp, target)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
+    with atomic_file(target, "wb") as fh:
+        fig.savefig(fh, format=fmt, dpi=dpi, **kwargs)
     return target
