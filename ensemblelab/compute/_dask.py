@@ -639,8 +639,6 @@ def contributions(
     progress: bool = True,
 ) -> pd.DataFrame:
     """:func:`ensemblelab.compute.spectra.contributions` for a lazy ensemble (see there)."""
-    from .cross_sections import resolve_cross_section
-    from .pulses import GaussianPulse
 
     e1, e2 = (float(x) for x in energy_range)
     t1, t2 = (float(x) for x in delay_range)
@@ -650,21 +648,10 @@ def contributions(
     if by not in ("snapshot", "traj") and by not in lz.columns:
         raise SchemaError(f"The 'by' parameter must be 'snapshot', 'traj' or a column of "
                           f"ens.snapshots {lz.columns}. Got {by!r} instead.")
+    from .spectra import _settings_from_params
+
     p = trpes_map.params
-    try:
-        probe = GaussianPulse(**p["probe"])
-        pump = GaussianPulse(**p["pump"]) if p.get("pump") else None
-        cs = p.get("cross_section", {}).get("model", "dyson")
-    except (KeyError, TypeError) as exc:
-        raise SchemaError("trpes_map.params lacks the probe settings; pass a map made by "
-                          "compute_trpes.") from exc
-    if cs not in ("dyson", "hydrogenic", "anion-threshold"):
-        raise SchemaError(f"the map was made with a custom cross section ({cs!r}) that cannot "
-                          "be rebuilt from its parameters for a lazy ensemble.")
-    resolve_cross_section(cs)
-    w = p.get("weights", "doorway")
-    weights = ("doorway" if w in ("doorway", "ensemble") else
-               "uniform" if w == "uniform" else w.split(":", 1)[-1])
+    probe, pump, cs, weights = _settings_from_params(p)
     grid = getattr(trpes_map, "_lazy_grid", None)
     if not (isinstance(grid, dict) and grid.get("path") == str(lz.path)):
         opts = _trpes_setup(lz, probe=probe, pump=pump, cross_section=cs, weights=weights,
@@ -840,21 +827,9 @@ def _rmsd_chunk(path: str, index: int, ref: np.ndarray) -> dict[str, np.ndarray]
 
 
 def _thresholds(thresholds: Any) -> Any:
-    from .outliers import OutlierThresholds
+    from .outliers import resolve_thresholds
 
-    if thresholds is None:
-        return OutlierThresholds()
-    if isinstance(thresholds, OutlierThresholds):
-        return thresholds
-    if isinstance(thresholds, Mapping):
-        names = {f.name for f in dataclasses.fields(OutlierThresholds)}
-        unknown = set(thresholds) - names
-        if unknown:
-            raise SchemaError(f"thresholds has unknown field(s) {sorted(unknown)}; known: "
-                              f"{sorted(names)}.")
-        return dataclasses.replace(OutlierThresholds(), **dict(thresholds))
-    raise SchemaError(f"thresholds must be an OutlierThresholds or a mapping; got "
-                      f"{type(thresholds).__name__}.")
+    return resolve_thresholds(thresholds)
 
 
 def flag_trajectories(

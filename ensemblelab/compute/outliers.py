@@ -166,6 +166,30 @@ def _fmt(x: float) -> str:
     return f"{x:.3g}"
 
 
+def resolve_thresholds(thresholds: OutlierThresholds | Mapping[str, float] | None,
+                       ) -> OutlierThresholds:
+    """The defaults, an OutlierThresholds as given, or the defaults with some fields replaced.
+
+    Raises
+    ------
+    SchemaError
+        For an unknown field name or another type.
+    """
+    if thresholds is None:
+        return OutlierThresholds()
+    if isinstance(thresholds, OutlierThresholds):
+        return thresholds
+    if isinstance(thresholds, Mapping):
+        names = {f.name for f in dataclasses.fields(OutlierThresholds)}
+        unknown = set(thresholds) - names
+        if unknown:
+            raise SchemaError(f"thresholds has unknown field(s) {sorted(unknown)}; known: "
+                              f"{sorted(names)}.")
+        return dataclasses.replace(OutlierThresholds(), **dict(thresholds))
+    raise SchemaError(f"thresholds must be an OutlierThresholds or a mapping; got "
+                      f"{type(thresholds).__name__}.")
+
+
 def flag_trajectories(
     ens: Ensemble,
     *,
@@ -241,20 +265,7 @@ def flag_trajectories(
         return _dask.flag_trajectories(ens, thresholds=thresholds, multivariate=multivariate,
                                        random_state=random_state, chunk_size=chunk_size,
                                        client=client)
-    if thresholds is None:
-        th = OutlierThresholds()
-    elif isinstance(thresholds, OutlierThresholds):
-        th = thresholds
-    elif isinstance(thresholds, Mapping):
-        names = {f.name for f in dataclasses.fields(OutlierThresholds)}
-        unknown = set(thresholds) - names
-        if unknown:
-            raise SchemaError(f"thresholds has unknown field(s) {sorted(unknown)}; known: "
-                              f"{sorted(names)}.")
-        th = dataclasses.replace(OutlierThresholds(), **dict(thresholds))
-    else:
-        raise SchemaError(f"thresholds must be an OutlierThresholds or a mapping; got "
-                          f"{type(thresholds).__name__}.")
+    th = resolve_thresholds(thresholds)
 
     snaps = ens.snapshots
     n = ens.n_snapshots

@@ -724,7 +724,15 @@ def _model_for(ens: Ensemble, m: TRPESMap) -> TRPESModel:
     if isinstance(model, TRPESModel) and model.ens_id == id(ens) and \
             model.n_snapshots == ens.n_snapshots:
         return model
-    p = m.params
+    probe, pump, cs, weights = _settings_from_params(m.params)
+    return prepare_sticks(ens, probe=probe, pump=pump, cross_section=cs, weights=weights,
+                          time_step=m.params.get("time_step"), progress=False)
+
+
+def _settings_from_params(
+    p: dict[str, Any],
+) -> tuple[GaussianPulse, GaussianPulse | None, str, str]:
+    """(probe, pump, cross-section name, weights) that made a map, from its ``params``."""
     try:
         probe = GaussianPulse(**p["probe"])
         pump = GaussianPulse(**p["pump"]) if p.get("pump") else None
@@ -735,13 +743,13 @@ def _model_for(ens: Ensemble, m: TRPESMap) -> TRPESModel:
     if cs not in ("dyson", "hydrogenic", "anion-threshold"):
         raise SchemaError(
             f"the map was made with a custom cross section ({cs!r}) that cannot be rebuilt "
-            "from its parameters; pass the map object returned by compute_trpes for this ens."
+            "from its parameters; pass the map object returned by compute_trpes for this "
+            "ensemble (in memory)."
         )
     w = p.get("weights", "doorway")
     weights = ("doorway" if w in ("doorway", "ensemble") else
                "uniform" if w == "uniform" else w.split(":", 1)[-1])
-    return prepare_sticks(ens, probe=probe, pump=pump, cross_section=cs, weights=weights,
-                          time_step=p.get("time_step"), progress=False)
+    return probe, pump, cs, weights
 
 
 def _hat_integrals(times: np.ndarray, lo: float, hi: float, t_known: float) -> np.ndarray:
