@@ -687,7 +687,7 @@ def contributions(
 # ------------------------------------------------------------------------ populations
 def _pop_chunk(path: str, sub: Mapping[str, Any], opts: Mapping[str, Any]) -> dict[str, Any]:
     from . import _kernels_populations as _k
-    from .populations import _BLOCK, _values_block
+    from .populations import _weighted_sums
 
     kind = opts["kind"]
     fields = {"active": [], "amplitudes": ["amplitudes"], "diabatic": ["adt"]}[kind]
@@ -701,29 +701,7 @@ def _pop_chunk(path: str, sub: Mapping[str, Any], opts: Mapping[str, Any]) -> di
     counts = opts.get("counts")
     if counts is not None:
         counts = counts[:, lo:lo + n_traj]
-        boot_num = np.zeros((counts.shape[0], n_times * n_states))
-        boot_den = np.zeros((counts.shape[0], n_times))
-    num = np.zeros((n_times, n_states))
-    w_alive = np.zeros(n_times)
-    w2 = np.zeros(n_times)
-    n_alive = np.zeros(n_times, dtype=np.int64)
-    for s in range(0, n_traj, _BLOCK):
-        sl = slice(s, s + _BLOCK)
-        vals, alive = _values_block(ens, kind, idx_all[sl])
-        wb = w[sl]
-        a = alive.astype(np.float64)
-        num += np.tensordot(wb, vals, axes=(0, 0))
-        w_alive += wb @ a
-        w2 += (wb * wb) @ a
-        n_alive += alive.sum(axis=0)
-        if counts is not None:
-            cw = counts[:, sl] * wb[None, :]
-            boot_num += cw @ vals.reshape(vals.shape[0], -1)
-            boot_den += cw @ a
-    out = {"num": num, "w_alive": w_alive, "w2": w2, "n_alive": n_alive}
-    if counts is not None:
-        out.update(boot_num=boot_num, boot_den=boot_den)
-    return out
+    return _weighted_sums(ens, kind, idx_all, w, counts, n_times=n_times, n_states=n_states)
 
 
 def populations(

@@ -321,8 +321,30 @@ def populations(
     if method == "bootstrap":
         rng = np.random.default_rng(random_state)
         counts = _k.bootstrap_counts(n_traj, int(n_boot), rng)
-        boot_num = np.zeros((int(n_boot), n_times * n_states))
-        boot_den = np.zeros((int(n_boot), n_times))
+    sums = _weighted_sums(ens, kind, idx_all, w, counts, n_times=n_times, n_states=n_states)
+    num, w_alive, w2, n_alive = sums["num"], sums["w_alive"], sums["w2"], sums["n_alive"]
+    boot = None
+    if counts is not None:
+        with np.errstate(divide="ignore", invalid="ignore"):
+            boot = sums["boot_num"].reshape(-1, n_times, n_states) / sums["boot_den"][:, :, None]
+    return _finish(ens, grid=grid, num=num, w_alive=w_alive, w2=w2, n_alive=n_alive, boot=boot,
+                   states=states, kind=kind, method=method, ci=ci, wlabel=wlabel, n_boot=n_boot,
+                   excluded=excluded)
+
+
+def _weighted_sums(ens: Any, kind: str, idx_all: np.ndarray, w: np.ndarray,
+                   counts: np.ndarray | None, *, n_times: int, n_states: int) -> dict[str, Any]:
+    """Sums over trajectories of weight x value, weight, weight^2 and alive counts.
+
+    ``idx_all`` (n_traj, n_times) holds the snapshot row of each trajectory at each grid
+    time (-1: not alive); ``counts`` (n_boot, n_traj) the bootstrap multiplicities or
+    None. Blocks of trajectories keep memory bounded. Shared by the in-memory path and
+    the per-chunk Dask tasks.
+    """
+    n_traj = idx_all.shape[0]
+    if counts is not None:
+        boot_num = np.zeros((counts.shape[0], n_times * n_states))
+        boot_den = np.zeros((counts.shape[0], n_times))
     num = np.zeros((n_times, n_states))
     w_alive = np.zeros(n_times)
     w2 = np.zeros(n_times)
@@ -340,13 +362,10 @@ def populations(
             cw = counts[:, sl] * wb[None, :]
             boot_num += cw @ vals.reshape(vals.shape[0], -1)
             boot_den += cw @ a
-    boot = None
+    out = {"num": num, "w_alive": w_alive, "w2": w2, "n_alive": n_alive}
     if counts is not None:
-        with np.errstate(divide="ignore", invalid="ignore"):
-            boot = boot_num.reshape(-1, n_times, n_states) / boot_den[:, :, None]
-    return _finish(ens, grid=grid, num=num, w_alive=w_alive, w2=w2, n_alive=n_alive, boot=boot,
-                   states=states, kind=kind, method=method, ci=ci, wlabel=wlabel, n_boot=n_boot,
-                   excluded=excluded)
+        out.update(boot_num=boot_num, boot_den=boot_den)
+    return out
 
 
 def _check_arguments(ens: Any, *, kind: str, method: str, ci: Any, n_boot: Any) -> None:
