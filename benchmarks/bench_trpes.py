@@ -97,13 +97,11 @@ def streaming_read_threads(tbin, energy, weight, *, n_threads: int) -> float:
         return sum(pool.map(part, range(n_threads)))
 
 
-def fast_map(tbin, energy, weight, *, order: int = DEFAULT_ORDER, backend: str = "auto",
-             time_sorted: bool = False):
+def fast_map(tbin, energy, weight, *, order: int = DEFAULT_ORDER, backend: str = "auto"):
     h = FWHM / DEFAULT_BINS_PER_FWHM
     n_fine = int(E_MAX / h) + 2
     hist = K.deposit_moments(tbin, energy, weight, n_time=N_DELAYS, e_lo=0.0, h=h,
-                             n_fine=n_fine, order=order, backend=backend,
-                             time_sorted=time_sorted)
+                             n_fine=n_fine, order=order, backend=backend)
     e = np.linspace(0.0, E_MAX, N_ENERGIES)
     b = K.energy_matrices(e, e_lo=0.0, h=h, n_fine=n_fine, fwhm=FWHM, order=order)
     return K.assemble(hist, b, None)[0]
@@ -146,23 +144,12 @@ def bench_assembly(n: int, *, repeat: int, backend: str = "auto") -> dict[str, f
     tbin[:], energy[:], weight[:] = make_inputs_ordered(n)  # same bytes, another order
     t_read_o = _best(lambda: streaming_read(tbin, energy, weight), repeat)
     t_fast_o = _best(lambda: fast_map(tbin, energy, weight, backend=backend), repeat)
-    # the layout the product uses: sticks time-major, as prepare_sticks stores them (the
-    # same random sticks, sorted by time bin once when the sticks are made)
-    tbin[:], energy[:], weight[:] = make_inputs(n)
-    o = np.argsort(tbin, kind="stable")
-    tbin[:], energy[:], weight[:] = tbin[o], energy[o], weight[o]
-    del o
-    t_read_s = _best(lambda: streaming_read(tbin, energy, weight), repeat)
-    t_fast_s = _best(lambda: fast_map(tbin, energy, weight, backend=backend, time_sorted=True),
-                     repeat)
-    t_hist_s = _best(lambda: hist_filter_map(tbin, energy, weight), 1)
     tbin[:], energy[:], weight[:] = make_inputs(n)
     t_hist = _best(lambda: hist_filter_map(tbin, energy, weight), 1)
     t_naive = naive_time_per_stick(tbin, energy, weight) * n
     return {"n": n, "read": t_read, "read_threads": t_read_t, "n_threads": n_threads,
             "fast": t_fast, "fast3": t_fast3, "hist": t_hist, "naive_scaled": t_naive,
             "read_ordered": t_read_o, "fast_ordered": t_fast_o,
-            "read_sorted": t_read_s, "fast_sorted": t_fast_s, "hist_sorted": t_hist_s,
             "extra_rss_mb": rss1 - rss0}
 
 
@@ -223,15 +210,6 @@ def main(argv: list[str] | None = None) -> int:
     for n in sizes:
         r = bench_assembly(n, repeat=repeat if n <= 10**7 else 2, backend=args.backend)
         print(f"\nassembly from {n:.0e} contributions:")
-        print("  sticks time-major (the product's layout, as prepare_sticks keeps them):")
-        print(f"    throughput vs streaming read     : {r['read_sorted'] / r['fast_sorted']:.3f}"
-              " (goal >= 0.25)")
-        print(f"    speed-up vs histogram2d+filter   : {r['hist_sorted'] / r['fast_sorted']:.1f}x"
-              f" (goal >= 20x); map {r['fast_sorted'] * 1e3:.0f} ms, read "
-              f"{r['read_sorted'] * 1e3:.0f} ms")
-        print(f"    speed-up vs naive per-contribution: "
-              f"{r['naive_scaled'] / r['fast_sorted']:.0f}x (goal >= 500x)")
-        print("  sticks in random order (general kernel with prefetching):")
         print(f"  throughput vs streaming read       : {r['read'] / r['fast']:.3f} "
               f"(order 3: {r['read'] / r['fast3']:.3f}; goal >= 0.25)")
         print(f"  ... vs read in {r['n_threads']} thread(s) (kernel's): "

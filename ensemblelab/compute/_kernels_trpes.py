@@ -152,47 +152,6 @@ def _dep_range(tbin, energy, weight, comp, tfrac, acc, lo, hi, n_time, n_fine, n
     return bad if count_bad else 0
 
 
-def _dep_sorted(tbin, energy, weight, comp, acc, lo, hi, n_time, n_fine, n_comp, order,
-                shift, inv_h):  # pragma: no cover - numba
-    """Deposit sticks ``lo:hi`` whose time bins never decrease (no time split).
-
-    Consecutive sticks then share accumulator rows, which stay in cache, so no
-    prefetching is needed. Returns the number of sticks out of range, or -1 when a
-    time bin decreases (the caller then uses :func:`_dep_range`).
-    """
-    has_c = comp.shape[0] > 0
-    bad = 0
-    prev = -1
-    for i in range(lo, hi):
-        tb = tbin[i]
-        if tb < prev:
-            return -1
-        prev = tb
-        p = energy[i] * inv_h + shift  # (x - e_lo)/h + 1/2
-        c = comp[i] if has_c else 0
-        if not (p >= 0.0 and p < n_fine) or tb < 0 or tb >= n_time or c < 0 or c >= n_comp:
-            bad += 1
-            continue
-        b = int(p)  # p >= 0: truncation = floor = nearest bin centre
-        d = p - b - 0.5  # delta / h in [-1/2, 1/2)
-        row = ((c * n_time + tb) * n_fine + b) * order
-        v = weight[i]
-        if order == 6:  # the default order, unrolled (same products up to rounding)
-            d2 = d * d
-            v3 = v * d2 * d
-            acc[row] += v
-            acc[row + 1] += v * d
-            acc[row + 2] += v * d2
-            acc[row + 3] += v3
-            acc[row + 4] += v3 * d
-            acc[row + 5] += v3 * d2
-        else:
-            for k in range(order):
-                acc[row + k] += v
-                v *= d
-    return bad
-
-
 def _prefetch(arr, index):  # pragma: no cover - replaced by a numba intrinsic
     """Hint the CPU to fetch ``arr[index]`` into cache (no effect on results)."""
 
@@ -246,9 +205,8 @@ def _numba_kernel() -> Callable[..., int] | None:
                     _NUMBA["dep"] = None
                 else:
                     _prefetch = _make_prefetch(numba)  # a global of _dep_range
-                    jit = numba.njit(cache=True, nogil=True, boundscheck=False)
-                    _NUMBA["sorted"] = jit(_dep_sorted)
-                    _NUMBA["dep"] = jit(_dep_range)
+                    _NUMBA["dep"] = numba.njit(cache=True, nogil=True, boundscheck=False)(
+                        _dep_range)
     return _NUMBA["dep"]
 
 
@@ -265,50 +223,8 @@ def _default_threads(n: int) -> int:
     return max(1, min(cores, 8, n // MIN_STICKS_PER_THREAD))
 
 
-def _out_of_grid(bad: int, *, n_time: int, n_comp: int, e_lo: float, h: float,
-                 n_fine: int) -> ValueError:
-    return ValueError(
-        f"deposit_moments: {bad} stick(s) outside the grid (time bin in [0, {n_time}), "
-        f"component in [0, {n_comp}), energy in [{e_lo - h / 2}, {e_lo + (n_fine - 0.5) * h})"
-        "). Hint: size the fine grid from the stick energies.")
-
-
-def _deposit_sorted(tbin, energy, weight, comp, *, n_time, n_fine, order, n_comp, n_threads,
-                    shift, inv_h, e_lo, h) -> np.ndarray | None:
-    """Time-sorted sticks: threads take ranges of whole time bins into ONE accumulator.
-
-    Ranges are cut where the time bin changes, so no two threads write the same row
-    (rows are ``comp * n_time + tbin``). Returns None when the bins are not sorted.
-    """
-    kernel = _NUMBA["sorted"]
-    n = energy.shape[0]
-    acc = np.zeros(n_comp * n_time * n_fine * order)
-    cuts = [0]
-    for t in range(1, n_threads):
-        j = int(np.searchsorted(tbin, tbin[t * n // n_threads], side="left"))
-        if j > cuts[-1]:
-            cuts.append(j)
-    cuts.append(n)
-
-    def run(t: int) -> int:
-        return kernel(tbin, energy, weight, comp, acc, cuts[t], cuts[t + 1], n_time, n_fine,
-                      n_comp, order, shift, inv_h)
-
-    if len(cuts) == 2:
-        results = [run(0)]
-    else:
-        with ThreadPoolExecutor(len(cuts) - 1) as pool:
-            results = list(pool.map(run, range(len(cuts) - 1)))
-    if any(r < 0 for r in results):
-        return None  # not sorted after all: the general kernel handles it
-    bad = sum(results)
-    if bad:
-        raise _out_of_grid(bad, n_time=n_time, n_comp=n_comp, e_lo=e_lo, h=h, n_fine=n_fine)
-    return acc
-
-
 def _deposit_numba(kernel, tbin, energy, weight, comp, tfrac, *, n_time, e_lo, h, n_fine,
-                   order, n_comp, n_threads, split=None, time_sorted=False) -> np.ndarray:
+                   order, n_comp, n_threads, split=None) -> np.ndarray:
     size = n_comp * n_time * n_fine * order
     n = energy.shape[0]
     inv_h = 1.0 / h
@@ -323,12 +239,6 @@ def _deposit_numba(kernel, tbin, energy, weight, comp, tfrac, *, n_time, e_lo, h
     if comp.dtype.kind not in "iu":
         comp = comp.astype(np.int64)
     n_threads = _default_threads(n) if n_threads is None else max(1, min(int(n_threads), n))
-    if time_sorted and tfrac.shape[0] == 0 and n:
-        out = _deposit_sorted(tbin, energy, weight, comp, n_time=n_time, n_fine=n_fine,
-                              order=order, n_comp=n_comp, n_threads=n_threads, shift=shift,
-                              inv_h=inv_h, e_lo=e_lo, h=h)
-        if out is not None:
-            return out.reshape(n_comp, n_time, n_fine, order).transpose(3, 0, 1, 2)
     split = split or THREAD_SPLIT
     n_rows = n_comp * n_time
     if split == "rows":  # one shared accumulator; thread t owns a range of rows
@@ -354,7 +264,10 @@ def _deposit_numba(kernel, tbin, energy, weight, comp, tfrac, *, n_time, e_lo, h
         with ThreadPoolExecutor(n_threads) as pool:
             bad = sum(pool.map(run, range(n_threads)))
     if bad:
-        raise _out_of_grid(bad, n_time=n_time, n_comp=n_comp, e_lo=e_lo, h=h, n_fine=n_fine)
+        raise ValueError(
+            f"deposit_moments: {bad} stick(s) outside the grid (time bin in [0, {n_time}), "
+            f"component in [0, {n_comp}), energy in [{e_lo - h / 2}, {e_lo + (n_fine - 0.5) * h})"
+            "). Hint: size the fine grid from the stick energies.")
     if split == "rows":
         out = acc
     else:
@@ -381,7 +294,6 @@ def deposit_moments(
     chunk: int = DEFAULT_CHUNK,
     backend: str = "auto",
     n_threads: int | None = None,
-    time_sorted: bool = False,
 ) -> np.ndarray:
     """Deposit sticks into Taylor-moment histograms.
 
@@ -409,11 +321,6 @@ def deposit_moments(
     n_threads : int, optional
         Threads of the numba backend (default: the usable cores, at most 8, and one
         per ``MIN_STICKS_PER_THREAD`` sticks); each has its own accumulator.
-    time_sorted : bool
-        The caller keeps sticks sorted by time bin (as :func:`prepare_sticks` does): the
-        numba backend then uses a cache-friendly kernel with one shared accumulator
-        (checked on the fly: unsorted input falls back to the general kernel). No
-        effect with `tfrac` or the numpy backend.
 
     Returns
     -------
@@ -439,7 +346,7 @@ def deposit_moments(
         if kernel is not None:
             return _deposit_numba(kernel, tbin, energy, weight, comp, tfrac, n_time=n_time,
                                   e_lo=e_lo, h=h, n_fine=n_fine, order=order, n_comp=n_comp,
-                                  n_threads=n_threads, time_sorted=time_sorted)
+                                  n_threads=n_threads)
     size = n_comp * n_time * n_fine
     out = np.zeros((order, size))
     inv_h = 1.0 / h

@@ -281,8 +281,7 @@ class TRPESModel:
         n_fine = int(math.floor((e_hi - e_lo) / h + 0.5)) + 2
         progress = bool(self.info.get("progress", False))
         hist = _deposit(self.tbin, e, self.sticks.weight, n_time=self.n_time, e_lo=e_lo, h=h,
-                        n_fine=n_fine, order=self.order, tfrac=self.tfrac, progress=progress,
-                        time_sorted=True)
+                        n_fine=n_fine, order=self.order, tfrac=self.tfrac, progress=progress)
         hist_comp = None
         if self.comp is not None:
             src = self.comp_src
@@ -292,8 +291,7 @@ class TRPESModel:
             ww = self.sticks.weight if self.comp_weight is None else self.comp_weight
             hist_comp = _deposit(tb, ee, ww, n_time=self.n_time, e_lo=e_lo, h=h,
                                  n_fine=n_fine, order=self.order, comp=self.comp,
-                                 n_comp=len(self.labels), tfrac=tf, progress=progress,
-                                 time_sorted=True)
+                                 n_comp=len(self.labels), tfrac=tf, progress=progress)
         c.update(h=h, e_lo=e_lo, n_fine=n_fine, hist=hist, hist_comp=hist_comp)
         return hist, hist_comp, e_lo, h, n_fine
 
@@ -521,10 +519,6 @@ def prepare_sticks(
     ekin = probe.total_energy - ip
     is_open = ekin > 0
     snap, chan = np.nonzero(is_open)
-    # sticks are kept time-major (sorted by time bin, stable): the deposit kernel then
-    # reuses accumulator rows in cache (see _kernels_trpes.deposit_moments(time_sorted=))
-    by_time = np.argsort(tbin_snap[snap], kind="stable")
-    snap, chan = snap[by_time], chan[by_time]
     dyson = ens.active_dyson()
     sigma = np.asarray(cs(dyson[snap, chan], ekin[snap, chan], ip[snap, chan], chan,
                           probe.total_energy), dtype=float)

@@ -157,45 +157,6 @@ def test_kernel_numba_map_equals_naive_with_split_and_components():
     np.testing.assert_allclose(maps.sum(axis=0), total, rtol=0, atol=1e-12 * total.max())
 
 
-@pytest.mark.parametrize("n_comp", [1, 3])
-@pytest.mark.parametrize("n_threads", [1, 2, 5])
-@pytest.mark.parametrize("order", [6, 4])
-def test_kernel_time_sorted_deposit_equals_numpy(n_comp, n_threads, order):
-    # the time-major kernel (one shared accumulator, threads cut at time-bin changes)
-    # against the numpy backend: rounding only (computed independently, 1e-12)
-    pytest.importorskip("numba")
-    tb, x, w, _, comp = _sticks(6000, 8, n_time=9, n_comp=n_comp)
-    o = np.argsort(tb, kind="stable")
-    tb, x, w = tb[o], x[o], w[o]
-    comp = None if comp is None else comp[o]
-    kw = dict(n_time=9, e_lo=0.0, h=0.01, n_fine=302, order=order, n_comp=n_comp, comp=comp)
-    a = K.deposit_moments(tb, x, w, backend="numba", n_threads=n_threads, time_sorted=True,
-                          **kw)
-    b = K.deposit_moments(tb, x, w, backend="numpy", **kw)
-    np.testing.assert_allclose(a, b, rtol=0, atol=1e-12 * np.abs(b).max())
-
-
-def test_kernel_time_sorted_flag_on_unsorted_input_falls_back():
-    # a wrong promise must not corrupt the result: the kernel notices the first
-    # decreasing time bin and the general kernel runs instead (computed independently)
-    pytest.importorskip("numba")
-    tb, x, w, _, _ = _sticks(3000, 9)
-    kw = dict(n_time=7, e_lo=0.0, h=0.01, n_fine=302, order=6)
-    a = K.deposit_moments(tb, x, w, backend="numba", n_threads=2, time_sorted=True, **kw)
-    b = K.deposit_moments(tb, x, w, backend="numpy", **kw)
-    np.testing.assert_allclose(a, b, rtol=0, atol=1e-12 * np.abs(b).max())
-    o = np.argsort(tb, kind="stable")
-    with pytest.raises(ValueError, match="outside the grid"):
-        K.deposit_moments(tb[o], x[o] + 5.0, w[o], backend="numba", time_sorted=True, **kw)
-
-
-def test_prepare_sticks_keeps_sticks_time_major():
-    ens = random_ensemble(seed=3)
-    model = prepare_sticks(ens, probe=GaussianPulse(photon_energy=5.0, fwhm=30.0),
-                           progress=False)
-    assert np.all(np.diff(model.tbin) >= 0)
-
-
 def test_kernel_numba_rejects_sticks_outside_grid():
     pytest.importorskip("numba")
     tb, x, w, _, _ = _sticks(100, 6)
