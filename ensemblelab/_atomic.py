@@ -44,6 +44,8 @@ def atomic_file(path: str | os.PathLike[str], mode: str = "w", *, overwrite: boo
     try:
         with os.fdopen(fd, mode, **open_kwargs) as fh:
             yield fh
+            fh.flush()
+            os.fsync(fh.fileno())  # the data is on disk before the name points at it
         os.chmod(tmp, 0o644)  # mkstemp makes 0600; give the file ordinary permissions
         os.replace(tmp, target)
     except BaseException:

@@ -8,7 +8,6 @@ from __future__ import annotations
 
 import io as _io
 import os
-import tempfile
 from collections.abc import Callable
 from pathlib import Path
 from typing import Any
@@ -17,6 +16,7 @@ import ipywidgets as widgets
 import numpy as np
 import pandas as pd
 
+from .._atomic import atomic_write_bytes, atomic_write_text
 from ..data.ensemble import Ensemble
 from ._base import View
 from ._messages import MessageArea
@@ -28,24 +28,12 @@ __all__ = ["ExportPanel", "export_structures", "export_tables", "export_figures"
 
 def write_bytes_atomic(path: str | os.PathLike[str], data: bytes) -> Path:
     """Write `data` to `path` through a temporary file in the same folder."""
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            fh.write(data)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
-    return path
+    return atomic_write_bytes(path, data)
 
 
 def write_text_atomic(path: str | os.PathLike[str], text: str) -> Path:
     """Write `text` (UTF-8) to `path` atomically."""
-    return write_bytes_atomic(path, text.encode("utf-8"))
+    return atomic_write_text(path, text)
 
 
 def export_structures(model: SelectionModel, folder: str | os.PathLike[str], *,

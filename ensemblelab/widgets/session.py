@@ -20,10 +20,10 @@ from __future__ import annotations
 
 import json
 import os
-import tempfile
 from pathlib import Path
 from typing import Any
 
+from .._atomic import atomic_write_text
 from ..errors import SchemaError
 from ._selection import SelectionModel
 
@@ -75,19 +75,8 @@ def save_session(model: SelectionModel, path: str | os.PathLike[str], *,
     """Write the session of `model` to `path` atomically; returns the path."""
     state = session_state(model, map_params=map_params, data_name=data_name)
     path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
     text = json.dumps(state, indent=2, sort_keys=True, allow_nan=False)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8") as fh:
-            fh.write(text + "\n")
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
-    return path
+    return atomic_write_text(path, text + "\n")
 
 
 def load_session(path: str | os.PathLike[str]) -> dict[str, Any]:
