@@ -103,7 +103,7 @@ def fast_map(tbin, energy, weight, *, order: int = DEFAULT_ORDER, backend: str =
     hist = K.deposit_moments(tbin, energy, weight, n_time=N_DELAYS, e_lo=0.0, h=h,
                              n_fine=n_fine, order=order, backend=backend)
     e = np.linspace(0.0, E_MAX, N_ENERGIES)
-    b = K.energy_matrices(e, e_lo=0.0, h=h, n_fine=n_fine, fwhm=FWHM, order=order)
+    b = K.broadening_blocks(e, e_lo=0.0, h=h, n_fine=n_fine, fwhm=FWHM, order=order)
     return K.assemble(hist, b, None)[0]
 
 

@@ -56,6 +56,8 @@ __all__ = [
     "deposit_moments",
     "deposit_counts",
     "energy_matrices",
+    "broadening_blocks",
+    "BroadeningBlocks",
     "time_matrix",
     "assemble",
 ]
@@ -69,87 +71,83 @@ BACKENDS = ("auto", "numba", "numpy")
 #: fewest sticks per thread before a second thread is worth its accumulator
 MIN_STICKS_PER_THREAD = 1 << 19
 
-#: numba backend: sticks ahead whose accumulator cells are prefetched
-PREFETCH_AHEAD = 16
-
-#: numba backend with several threads: "rows" (each thread reads all sticks and owns a
-#: range of accumulator rows: one shared accumulator) or "sticks" (each thread takes a
-#: range of sticks into its own accumulator, summed at the end)
-THREAD_SPLIT = "sticks"
+#: numba backend: sticks ahead whose accumulator cells are prefetched (measured best of
+#: 8/16/32/64 on random-order sticks: 32)
+PREFETCH_AHEAD = 32
 
 
 def _dep_range(tbin, energy, weight, comp, tfrac, acc, lo, hi, n_time, n_fine, n_comp,
-               order, shift, inv_h, g_lo, g_hi, count_bad):  # pragma: no cover - numba
+               order, shift, inv_h):  # pragma: no cover - compiled by numba
     """Deposit sticks ``lo:hi`` into ``acc`` (flat, layout comp/time/fine/moment).
 
-    Only accumulator rows ``g = comp * n_time + tbin`` in ``[g_lo, g_hi)`` are written,
-    so threads owning disjoint row ranges can share one accumulator.
-    ``comp`` / ``tfrac`` of length 0 mean "no components" / "no time split".
-    Returns the number of sticks out of range when `count_bad` (skipped; the caller
-    raises), else 0.
+    `comp` / `tfrac` may be None ("no components" / "no time split"); numba compiles a
+    separate specialisation for each combination, so the common case (both None) runs
+    a loop with no per-stick branches beyond the range check. Returns the number of
+    sticks out of range (skipped; the caller raises).
     """
-    has_c = comp.shape[0] > 0
-    has_f = tfrac.shape[0] > 0
     row_t = n_fine * order
+    fn = float(n_fine)
     bad = 0
+    stop = hi - PREFETCH_AHEAD
     for i in range(lo, hi):
-        j = i + PREFETCH_AHEAD
-        if j < hi:  # prefetch the cells of stick j (any address is harmless)
+        if i < stop:  # prefetch the cells of stick j (any address is harmless)
+            j = i + PREFETCH_AHEAD
             pj = energy[j] * inv_h + shift
-            if not (pj >= 0.0 and pj < n_fine):
-                pj = 0.0
-            gj = (comp[j] if has_c else 0) * n_time + tbin[j]
-            rj = (gj * n_fine + int(pj)) * order
-            if g_lo <= gj < g_hi:
-                _prefetch(acc, rj)
-                _prefetch(acc, rj + order - 1)
-            if has_f and g_lo <= gj + 1 < g_hi:
-                _prefetch(acc, rj + row_t)
-                _prefetch(acc, rj + row_t + order - 1)
+            pj = pj if pj >= 0.0 else 0.0
+            pj = pj if pj < fn else 0.0  # also catches NaN
+            gj = tbin[j] if comp is None else comp[j] * n_time + tbin[j]
+            rj = np.uint64((gj * n_fine + np.int64(pj)) * order)
+            _prefetch(acc, rj)
+            _prefetch(acc, rj + np.uint64(order - 1))
+            if tfrac is not None:
+                _prefetch(acc, rj + np.uint64(row_t))
+                _prefetch(acc, rj + np.uint64(row_t + order - 1))
         p = energy[i] * inv_h + shift  # (x - e_lo)/h + 1/2
         tb = tbin[i]
-        c = comp[i] if has_c else 0
-        if not (p >= 0.0 and p < n_fine) or tb < 0 or tb >= n_time or c < 0 or c >= n_comp:
+        if comp is None:
+            ok = p >= 0.0 and p < fn and tb >= 0 and tb < n_time
+            g = tb
+        else:
+            c = comp[i]
+            ok = p >= 0.0 and p < fn and tb >= 0 and tb < n_time and c >= 0 and c < n_comp
+            g = c * n_time + tb
+        if not ok:
             bad += 1
             continue
-        g = c * n_time + tb
-        f = tfrac[i] if has_f else 0.0
-        own = g_lo <= g < g_hi
-        if not own and not (f > 0.0 and g_lo <= g + 1 < g_hi):
-            continue
-        b = int(p)  # p >= 0: truncation = floor = nearest bin centre
+        b = np.int64(p)  # p >= 0: truncation = floor = nearest bin centre
         d = p - b - 0.5  # delta / h in [-1/2, 1/2)
-        row = (g * n_fine + b) * order
+        row = np.uint64((g * n_fine + b) * order)
         v = weight[i]
-        if f > 0.0:
-            if tb + 1 >= n_time:
-                bad += 1
-                continue
-            v0 = v * (1.0 - f)
-            if own:
-                for k in range(order):
-                    acc[row + k] += v0
-                    v0 *= d
-            if g_lo <= g + 1 < g_hi:
+        if tfrac is not None:
+            f = tfrac[i]
+            if f > 0.0:
+                if tb + 1 >= n_time:
+                    bad += 1
+                    continue
+                v0 = v * (1.0 - f)
                 v1 = v * f
+                r1 = row + np.uint64(row_t)
                 for k in range(order):
-                    acc[row + row_t + k] += v1
+                    acc[row + np.uint64(k)] += v0
+                    acc[r1 + np.uint64(k)] += v1
+                    v0 *= d
                     v1 *= d
-        elif order == 6:  # the default order, unrolled (same products up to rounding)
+                continue
+        if order == 6:  # the default order, unrolled (same products up to rounding)
             d2 = d * d
             d3 = d2 * d
             v3 = v * d3
             acc[row] += v
-            acc[row + 1] += v * d
-            acc[row + 2] += v * d2
-            acc[row + 3] += v3
-            acc[row + 4] += v3 * d
-            acc[row + 5] += v3 * d2
+            acc[row + np.uint64(1)] += v * d
+            acc[row + np.uint64(2)] += v * d2
+            acc[row + np.uint64(3)] += v3
+            acc[row + np.uint64(4)] += v3 * d
+            acc[row + np.uint64(5)] += v3 * d2
         else:
             for k in range(order):
-                acc[row + k] += v
+                acc[row + np.uint64(k)] += v
                 v *= d
-    return bad if count_bad else 0
+    return bad
 
 
 def _prefetch(arr, index):  # pragma: no cover - replaced by a numba intrinsic
@@ -215,16 +213,21 @@ def numba_available() -> bool:
     return _numba_kernel() is not None
 
 
-def _default_threads(n: int) -> int:
+def _usable_cores() -> int:
+    """Cores this process may run on, at most 8."""
     try:
         cores = len(os.sched_getaffinity(0))
     except AttributeError:  # pragma: no cover - not on Linux
         cores = os.cpu_count() or 1
-    return max(1, min(cores, 8, n // MIN_STICKS_PER_THREAD))
+    return max(1, min(cores, 8))
+
+
+def _default_threads(n: int) -> int:
+    return max(1, min(_usable_cores(), n // MIN_STICKS_PER_THREAD))
 
 
 def _deposit_numba(kernel, tbin, energy, weight, comp, tfrac, *, n_time, e_lo, h, n_fine,
-                   order, n_comp, n_threads, split=None) -> np.ndarray:
+                   order, n_comp, n_threads) -> np.ndarray:
     size = n_comp * n_time * n_fine * order
     n = energy.shape[0]
     inv_h = 1.0 / h
@@ -232,31 +235,25 @@ def _deposit_numba(kernel, tbin, energy, weight, comp, tfrac, *, n_time, e_lo, h
     tbin = np.ascontiguousarray(tbin)
     energy = np.ascontiguousarray(energy, dtype=np.float64)
     weight = np.ascontiguousarray(weight, dtype=np.float64)
-    comp = (np.zeros(0, np.int64) if comp is None else np.ascontiguousarray(comp))
-    tfrac = (np.zeros(0) if tfrac is None else np.ascontiguousarray(tfrac, dtype=np.float64))
+    if comp is not None:
+        comp = np.ascontiguousarray(comp)
+        if comp.dtype.kind not in "iu":
+            comp = comp.astype(np.int64)
+    if tfrac is not None:
+        tfrac = np.ascontiguousarray(tfrac, dtype=np.float64)
     if tbin.dtype.kind not in "iu":
         tbin = tbin.astype(np.int64)
-    if comp.dtype.kind not in "iu":
-        comp = comp.astype(np.int64)
     n_threads = _default_threads(n) if n_threads is None else max(1, min(int(n_threads), n))
-    split = split or THREAD_SPLIT
-    n_rows = n_comp * n_time
-    if split == "rows":  # one shared accumulator; thread t owns a range of rows
-        n_threads = min(n_threads, n_rows)
-        acc = np.zeros(size)
-        cuts = [t * n_rows // n_threads for t in range(n_threads + 1)]
+    # thread t takes a contiguous range of sticks into its own accumulator
+    accs = [np.empty(size) for _ in range(n_threads)]
+    bounds = [t * n // n_threads for t in range(n_threads + 1)]
 
-        def run(t: int) -> int:
-            return kernel(tbin, energy, weight, comp, tfrac, acc, 0, n, n_time, n_fine,
-                          n_comp, order, shift, inv_h, cuts[t], cuts[t + 1], t == 0)
-    else:  # thread t takes a range of sticks into its own accumulator
-        accs = [np.zeros(size) for _ in range(n_threads)]
-        bounds = [t * n // n_threads for t in range(n_threads + 1)]
-
-        def run(t: int) -> int:
-            return kernel(tbin, energy, weight, comp, tfrac, accs[t], bounds[t],
-                          bounds[t + 1], n_time, n_fine, n_comp, order, shift, inv_h, 0,
-                          n_rows, True)
+    def run(t: int) -> int:
+        # zero in order (fresh pages fault in sequentially, several times cheaper than
+        # the kernel's random first touch), in the thread that will use the memory
+        accs[t].fill(0.0)
+        return kernel(tbin, energy, weight, comp, tfrac, accs[t], bounds[t], bounds[t + 1],
+                      n_time, n_fine, n_comp, order, shift, inv_h)
 
     if n_threads == 1:
         bad = run(0)
@@ -268,12 +265,9 @@ def _deposit_numba(kernel, tbin, energy, weight, comp, tfrac, *, n_time, e_lo, h
             f"deposit_moments: {bad} stick(s) outside the grid (time bin in [0, {n_time}), "
             f"component in [0, {n_comp}), energy in [{e_lo - h / 2}, {e_lo + (n_fine - 0.5) * h})"
             "). Hint: size the fine grid from the stick energies.")
-    if split == "rows":
-        out = acc
-    else:
-        out = accs[0]
-        for a in accs[1:]:
-            out += a
+    out = accs[0]
+    for a in accs[1:]:
+        out += a
     # a view with the documented axis order (moment, comp, time, fine bin)
     return out.reshape(n_comp, n_time, n_fine, order).transpose(3, 0, 1, 2)
 
@@ -510,53 +504,153 @@ def time_matrix(delays: np.ndarray, times: np.ndarray, *, sigma: float | None,
     return c
 
 
-#: output energies per block of the banded broadening in :func:`assemble`
+#: output energies per block of the banded broadening (see :func:`broadening_blocks`)
 ENERGY_BLOCK = 32
 
 #: broadening-matrix entries below this fraction of the largest are left out (banded)
 BAND_CUTOFF = 1e-16
 
+#: fewest (time bin x output energy) cells per thread before :func:`assemble` threads
+MIN_CELLS_PER_THREAD = 1 << 15
 
-def _energy_bands(bmat: np.ndarray, block: int) -> list[tuple[int, int, int, int]]:
-    """Blocks ``(j0, j1, lo, hi)``: output energies j0:j1 need fine bins lo:hi only.
 
-    Outside lo:hi every entry of ``bmat[:, :, j0:j1]`` is below ``BAND_CUTOFF`` times
-    the largest entry, so leaving them out changes a map by less than about
-    ``order * n_fine * BAND_CUTOFF`` of its peak (a Gaussian decays fast: for 8 bins
-    per FWHM the band is about 60 bins wide).
+class BroadeningBlocks(list):
+    """Banded energy broadening: a list of ``(j0, j1, lo, hi, mat)`` blocks.
+
+    Output energies ``j0:j1`` take fine bins ``lo:hi`` only; ``mat`` has shape
+    ``((hi - lo) * order, j1 - j0)``, rows ordered bin-major, moment-minor (the layout
+    of the compiled deposit's histograms), ``mat[(b - lo) * order + k, j - j0] =
+    B[k, b, j]`` of :func:`energy_matrices`. Attributes ``order``, ``n_fine`` and
+    ``n_energies`` describe the full matrix.
     """
-    mag = np.abs(bmat).max(axis=0)  # (n_fine, n_e)
-    big = mag > BAND_CUTOFF * (mag.max() if mag.size else 0.0)
-    out = []
-    for j0 in range(0, bmat.shape[2], block):
-        j1 = min(bmat.shape[2], j0 + block)
-        rows = np.flatnonzero(big[:, j0:j1].any(axis=1))
-        if rows.size:
-            out.append((j0, j1, int(rows[0]), int(rows[-1]) + 1))
+
+    order: int
+    n_fine: int
+    n_energies: int
+
+
+def _reach_bins(h: float, sa: float, order: int) -> int:
+    """Fine bins beyond which every broadening term is below ``BAND_CUTOFF`` of the peak.
+
+    Evaluates ``max_k |h^k a^(k/2) H_k(y) G(y) / k!|`` on the bin offsets (it is even
+    in y) and returns the last offset above the cutoff, plus one bin of margin.
+    """
+    step = h * sa  # y per fine bin
+    m = np.arange(0, int(math.ceil(12.0 / step)) + 2)
+    y = step * m
+    g = np.exp(-y * y)
+    mag = g.copy()
+    h_prev = np.ones_like(y)
+    h_cur = 2.0 * y
+    if order > 1:
+        mag = np.maximum(mag, np.abs(step * h_cur * g))
+    for k in range(2, order):
+        h_prev, h_cur = h_cur, 2.0 * y * h_cur - 2.0 * (k - 1) * h_prev
+        mag = np.maximum(mag, np.abs(step**k / math.factorial(k) * h_cur * g))
+    big = np.flatnonzero(mag > BAND_CUTOFF * mag.max())
+    return int(big[-1]) + 1
+
+
+def broadening_blocks(energies: np.ndarray, *, e_lo: float, h: float, n_fine: int,
+                      fwhm: float, order: int, truncate_below: float | None = 0.0,
+                      block: int = ENERGY_BLOCK) -> BroadeningBlocks:
+    """The broadening matrices of :func:`energy_matrices`, banded and in blocks.
+
+    Only the entries within reach of each block of output energies are evaluated
+    (entries further out are below ``BAND_CUTOFF`` of the largest, so leaving them out
+    changes a map by less than about ``order * n_fine * BAND_CUTOFF`` of its peak).
+
+    Parameters
+    ----------
+    energies : ndarray, shape (n_energies,)
+        Output kinetic energies (eV), any order.
+    e_lo, h, n_fine, fwhm, order, truncate_below
+        As in :func:`energy_matrices`.
+    block : int
+        Output energies per block.
+
+    Returns
+    -------
+    BroadeningBlocks
+        The blocks (see :class:`BroadeningBlocks`).
+    """
+    energies = np.asarray(energies, dtype=float)
+    a = FOUR_LN2 / fwhm**2
+    sa = math.sqrt(a)
+    reach = _reach_bins(h, sa, order)
+    out = BroadeningBlocks()
+    out.order, out.n_fine, out.n_energies = order, n_fine, energies.size
+    scale = h * sa
+    coef = [scale**k / math.factorial(k) for k in range(order)]
+    for j0 in range(0, energies.size, block):
+        j1 = min(energies.size, j0 + block)
+        e = energies[j0:j1]
+        lo = max(0, int(math.floor((float(e.min()) - e_lo) / h)) - reach)
+        hi = min(n_fine, int(math.ceil((float(e.max()) - e_lo) / h)) + reach + 1)
+        if hi <= lo:
+            continue
+        centres = e_lo + h * np.arange(lo, hi)
+        y = sa * (e[None, :] - centres[:, None])
+        g = (sa / math.sqrt(math.pi)) * np.exp(-y * y)
+        if truncate_below is not None:
+            g[:, e < truncate_below] = 0.0
+        mat = np.empty((hi - lo, order, j1 - j0))
+        mat[:, 0] = g
+        if order > 1:
+            h_prev = np.ones_like(y)
+            h_cur = 2.0 * y
+            mat[:, 1] = coef[1] * h_cur * g
+            for k in range(2, order):
+                h_prev, h_cur = h_cur, 2.0 * y * h_cur - 2.0 * (k - 1) * h_prev
+                mat[:, k] = coef[k] * h_cur * g
+        out.append((j0, j1, lo, hi, mat.reshape((hi - lo) * order, j1 - j0)))
     return out
 
 
-def assemble(hist: np.ndarray, bmat: np.ndarray, cmat: np.ndarray) -> np.ndarray:
+def _blocks_from_dense(bmat: np.ndarray, block: int) -> BroadeningBlocks:
+    """:class:`BroadeningBlocks` of a dense (order, n_fine, n_energies) matrix."""
+    order, n_fine, n_e = bmat.shape
+    mag = np.abs(bmat).max(axis=0)  # (n_fine, n_e)
+    big = mag > BAND_CUTOFF * (mag.max() if mag.size else 0.0)
+    out = BroadeningBlocks()
+    out.order, out.n_fine, out.n_energies = order, n_fine, n_e
+    for j0 in range(0, n_e, block):
+        j1 = min(n_e, j0 + block)
+        rows = np.flatnonzero(big[:, j0:j1].any(axis=1))
+        if rows.size:
+            lo, hi = int(rows[0]), int(rows[-1]) + 1
+            mat = np.ascontiguousarray(bmat[:, lo:hi, j0:j1].transpose(1, 0, 2))
+            out.append((j0, j1, lo, hi, mat.reshape((hi - lo) * order, j1 - j0)))
+    return out
+
+
+def assemble(hist: np.ndarray, bmat: np.ndarray | BroadeningBlocks, cmat: np.ndarray | None,
+             *, n_threads: int | None = None) -> np.ndarray:
     """Combine normalised moment histograms into maps.
 
-    The energy broadening is banded: each block of ``ENERGY_BLOCK`` output energies
-    uses only the fine bins where the broadening matrices are not negligible (see
-    :func:`_energy_bands`); the time matrix is applied afterwards.
+    The energy broadening is banded (see :func:`broadening_blocks`); the time matrix is
+    applied afterwards. The products run in threads (each with single-threaded BLAS:
+    many small products, where BLAS threads only cost), split over output energies.
 
     Parameters
     ----------
     hist : ndarray, shape (order, n_comp, n_time, n_fine)
         Moment histograms already divided by the alive weight per time bin.
-    bmat : ndarray, shape (order, n_fine, n_energies)
+    bmat : ndarray, shape (order, n_fine, n_energies), or BroadeningBlocks
+        Dense matrices (:func:`energy_matrices`) or their blocks.
     cmat : ndarray, shape (n_delays, n_time), or None
         None means the identity (maps on the internal time grid).
+    n_threads : int, optional
+        Threads (default: the usable cores, at most 8, fewer for small maps).
 
     Returns
     -------
     ndarray, shape (n_comp, n_delays, n_energies)
     """
+    blocks = bmat if isinstance(bmat, BroadeningBlocks) else _blocks_from_dense(bmat,
+                                                                                ENERGY_BLOCK)
     with _single_thread_blas():
-        return _assemble(hist, bmat, cmat)
+        return _assemble(hist, blocks, cmat, n_threads)
 
 
 _BLAS: dict[str, Any] = {}
@@ -578,23 +672,33 @@ def _single_thread_blas() -> Any:
     return contextlib.nullcontext() if ctl is None else ctl.limit(limits=1, user_api="blas")
 
 
-def _assemble(hist: np.ndarray, bmat: np.ndarray, cmat: np.ndarray | None) -> np.ndarray:
+def _assemble(hist: np.ndarray, blocks: BroadeningBlocks, cmat: np.ndarray | None,
+              n_threads: int | None) -> np.ndarray:
     order, n_comp, n_time, n_fine = hist.shape
-    n_e = bmat.shape[2]
-    bands = _energy_bands(bmat, ENERGY_BLOCK)
-    adjacent = hist.strides[0] < hist.strides[3]  # moments of a bin adjacent (numba layout)
-    if adjacent:
-        b2 = np.ascontiguousarray(bmat.transpose(1, 0, 2)).reshape(n_fine * order, n_e)
-    out = np.empty((n_comp, n_time if cmat is None else cmat.shape[0], n_e))
-    for c in range(n_comp):
-        if adjacent:  # one (n_time, n_fine * order) matrix, unit = `order` columns
-            pairs = [(np.moveaxis(hist[:, c], 0, -1).reshape(n_time, n_fine * order), b2,
-                      order)]
-        else:  # one (n_time, n_fine) matrix per moment
-            pairs = [(hist[k, c], bmat[k], 1) for k in range(order)]
-        e_map = np.zeros((n_time, n_e))
-        for h2, b, u in pairs:
-            for j0, j1, lo, hi in bands:
-                e_map[:, j0:j1] += h2[:, lo * u:hi * u] @ b[lo * u:hi * u, j0:j1]
-        out[c] = e_map if cmat is None else cmat @ e_map
+    if (order, n_fine) != (blocks.order, blocks.n_fine):
+        raise ValueError(f"assemble: histograms (order {order}, {n_fine} fine bins) do not "
+                         f"match the broadening ({blocks.order}, {blocks.n_fine}).")
+    n_e = blocks.n_energies
+    n_out = n_time if cmat is None else cmat.shape[0]
+    out = np.zeros((n_comp, n_out, n_e))
+    # one (n_time, n_fine * order) matrix per component (a view for the compiled
+    # deposit's layout, a copy for the numpy one)
+    h2 = [np.moveaxis(hist[:, c], 0, -1).reshape(n_time, n_fine * order)
+          for c in range(n_comp)]
+    if n_threads is None:
+        n_threads = max(1, min(_usable_cores(), len(blocks),
+                               (n_time * n_e * n_comp) // MIN_CELLS_PER_THREAD))
+    parts = [blocks[t::n_threads] for t in range(n_threads)]
+
+    def run(t: int) -> None:
+        for c in range(n_comp):
+            for j0, j1, lo, hi, mat in parts[t]:
+                e_blk = h2[c][:, lo * order:hi * order] @ mat
+                out[c, :, j0:j1] = e_blk if cmat is None else cmat @ e_blk
+
+    if n_threads == 1:
+        run(0)
+    else:
+        with ThreadPoolExecutor(n_threads) as pool:
+            list(pool.map(run, range(n_threads)))
     return out

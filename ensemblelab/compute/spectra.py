@@ -377,7 +377,7 @@ class TRPESModel:
             sigma = None
         cmat = self.time_weights(delays, sigma=sigma)
         cmat = cmat * norm[None, :]
-        bmat = K.energy_matrices(energies, e_lo=e_lo, h=h, n_fine=n_fine, fwhm=fwhm,
+        bmat = K.broadening_blocks(energies, e_lo=e_lo, h=h, n_fine=n_fine, fwhm=fwhm,
                                  order=self.order)
         total = K.assemble(hist, bmat, cmat)[0]
         components: dict[str, np.ndarray] = {}

@@ -118,11 +118,8 @@ def _sticks(n, seed, *, n_time=7, split=False, n_comp=1):
 @pytest.mark.parametrize("split", [False, True])
 @pytest.mark.parametrize("n_comp", [1, 3])
 @pytest.mark.parametrize("n_threads", [1, 3])
-@pytest.mark.parametrize("thread_split", ["sticks", "rows"])
-def test_kernel_numba_deposit_equals_numpy(split, n_comp, n_threads, thread_split,
-                                           monkeypatch):
+def test_kernel_numba_deposit_equals_numpy(split, n_comp, n_threads):
     pytest.importorskip("numba")
-    monkeypatch.setattr(K, "THREAD_SPLIT", thread_split)
     tb, x, w, tf, comp = _sticks(5000, 4, split=split, n_comp=n_comp)
     kw = dict(n_time=7, e_lo=0.0, h=0.01, n_fine=302, order=6, n_comp=n_comp, comp=comp,
               tfrac=tf)
@@ -214,3 +211,30 @@ def test_kernel_numba_backend_missing_raises(monkeypatch):
         K.deposit_moments(tb, x, w, backend="numba", **kw)
     # "auto" falls back to numpy
     assert K.deposit_moments(tb, x, w, **kw).shape == (2, 1, 7, 302)
+
+
+@pytest.mark.parametrize(("order", "bins"), [(6, 8.0), (8, 4.0), (3, 16.0)])
+def test_kernel_broadening_blocks_equal_dense_matrices(order, bins):
+    # the analytic band of each block holds every dense entry above the cutoff, and its
+    # values are the dense matrix's (same formula, evaluated on the band only; computed
+    # independently, 1e-13)
+    g = 0.05
+    h = g / bins
+    nf = int(3.2 / h) + 2
+    e = np.concatenate([np.linspace(-0.2, 3.0, 150), [1.234, 0.5]])  # last block unsorted
+    dense = K.energy_matrices(e, e_lo=0.1, h=h, n_fine=nf, fwhm=g, order=order)
+    blocks = K.broadening_blocks(e, e_lo=0.1, h=h, n_fine=nf, fwhm=g, order=order, block=16)
+    assert (blocks.order, blocks.n_fine, blocks.n_energies) == (order, nf, e.size)
+    rebuilt = np.zeros_like(dense)
+    for j0, j1, lo, hi, mat in blocks:
+        rebuilt[:, lo:hi, j0:j1] = mat.reshape(hi - lo, order, j1 - j0).transpose(1, 0, 2)
+    np.testing.assert_allclose(rebuilt, dense, rtol=0, atol=1e-16 * np.abs(dense).max())
+    tb, x, w, _, _ = _sticks(2000, 11)
+    hist = K.deposit_moments(tb, x, w, n_time=7, e_lo=0.1, h=h, n_fine=nf, order=order)
+    a = K.assemble(hist, blocks, None)
+    b = K.assemble(hist, dense, None)
+    c = K.assemble(hist, blocks, None, n_threads=3)
+    np.testing.assert_allclose(a, b, rtol=0, atol=1e-13 * np.abs(b).max())
+    np.testing.assert_array_equal(a, c)  # threads split blocks, not sums
+    with pytest.raises(ValueError, match="do not match"):
+        K.assemble(hist[:2], blocks, None)
