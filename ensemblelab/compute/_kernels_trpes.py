@@ -16,10 +16,14 @@ evaluating ``n_sticks x n_energies`` Gaussians we
 3. convolve along time with a matrix of the normalised cross-correlation.
 
 The truncation error of step 2 is bounded by the first omitted term,
-about ``(sqrt(2a) h/2)^order / sqrt(order!)`` relative to the peak height (for
-``h = Gamma/8``: order 2 -> 1e-2, order 4 -> 5e-5, order 6 -> 1e-7, order 8 ->
-3e-10). Cached moments can be re-broadened for any ``Gamma`` that keeps
-``h / Gamma`` small, which is what makes re-broadening fast.
+about ``(sqrt(2a) h/2)^order / sqrt(order!)`` relative to the peak height
+(:func:`truncation_bound`; for ``h = Gamma/8``: order 2 -> 1e-2, order 4 -> 1e-4,
+order 6 -> 4e-7; for ``h = Gamma/4``, the default, order 8 -> 2.8e-7). Cached
+moments can be re-broadened for any ``Gamma`` that keeps this bound small, which is
+what makes re-broadening fast. The default, 8 moments at 4 bins per FWHM, is as
+accurate as 6 moments at 8 bins but needs a third less memory, and a fine bin's 8
+float64 moments fill exactly one 64-byte cache line (the accumulator is aligned), so a
+stick touches one line instead of one or two.
 
 Step 1 has two interchangeable implementations (``backend``):
 
@@ -27,6 +31,9 @@ Step 1 has two interchangeable implementations (``backend``):
   installed): one compiled pass over the stick arrays per thread, depositing all
   ``order`` moments of a stick into a contiguous row of a per-thread accumulator laid
   out (component, time, fine bin, moment); no temporaries of size ``n_sticks``. The
+  pass is software-pipelined (each stick's cell is prefetched ``PREFETCH_AHEAD``
+  sticks before it is added, see :func:`_dep_range`) and, for 8 moments, adds a
+  stick with one 8-wide vector load/add/store. The
   threads are plain Python threads running GIL-free compiled code, so the kernel is
   safe to call from several threads at once (e.g. Dask workers). numba is imported on
   the first call only, never at ``import ensemblelab``.
@@ -55,6 +62,7 @@ __all__ = [
     "numba_available",
     "deposit_moments",
     "deposit_counts",
+    "truncation_bound",
     "energy_matrices",
     "broadening_blocks",
     "BroadeningBlocks",
@@ -71,9 +79,12 @@ BACKENDS = ("auto", "numba", "numpy")
 #: fewest sticks per thread before a second thread is worth its accumulator
 MIN_STICKS_PER_THREAD = 1 << 19
 
-#: numba backend: sticks ahead whose accumulator cells are prefetched (measured best of
-#: 8/16/32/64 on random-order sticks: 32)
-PREFETCH_AHEAD = 32
+#: numba backend: sticks ahead whose accumulator cells are prefetched (24 was slower,
+#: 32, 48 and 64 alike on 10^8 random-order sticks in benchmarks/bench_trpes.py)
+PREFETCH_AHEAD = 48
+
+#: numba backend: slots of the ring of prepared sticks (a power of two > PREFETCH_AHEAD)
+RING = 64
 
 
 def _dep_range(tbin, energy, weight, comp, tfrac, acc, lo, hi, n_time, n_fine, n_comp,
@@ -81,13 +92,72 @@ def _dep_range(tbin, energy, weight, comp, tfrac, acc, lo, hi, n_time, n_fine, n
     """Deposit sticks ``lo:hi`` into ``acc`` (flat, layout comp/time/fine/moment).
 
     `comp` / `tfrac` may be None ("no components" / "no time split"); numba compiles a
-    separate specialisation for each combination, so the common case (both None) runs
-    a loop with no per-stick branches beyond the range check. Returns the number of
-    sticks out of range (skipped; the caller raises).
+    separate specialisation for each combination. Without a time split the loop is
+    software-pipelined: stick ``i + PREFETCH_AHEAD`` is checked, its accumulator cell
+    computed and prefetched and the result parked in a small ring, while stick ``i``
+    (taken from the ring) is added, so the memory latency of the random access
+    overlaps the work. Returns the number of sticks out of range (they add nothing;
+    the caller raises).
     """
-    row_t = n_fine * order
     fn = float(n_fine)
+    # 8 moments on a 64-byte aligned accumulator: a bin is one cache line
+    two_lines = order != 8 or acc.ctypes.data % 64 != 0
     bad = 0
+    if tfrac is None:
+        ring_r = np.zeros(RING, np.uint64)
+        ring_d = np.zeros(RING)
+        ring_v = np.zeros(RING)
+        for it in range(lo, hi + PREFETCH_AHEAD):
+            if it < hi:  # prepare stick `it`
+                p = energy[it] * inv_h + shift  # (x - e_lo)/h + 1/2
+                tb = tbin[it]
+                v = weight[it]
+                if comp is None:
+                    c = 0
+                    ok = p >= 0.0 and p < fn and tb >= 0 and tb < n_time
+                else:
+                    c = comp[it]
+                    ok = (p >= 0.0 and p < fn and tb >= 0 and tb < n_time and c >= 0
+                          and c < n_comp)
+                if not ok:  # adds zero to cell 0 (the caller raises anyway)
+                    bad += 1
+                    p = 0.5
+                    tb = 0
+                    c = 0
+                    v = 0.0
+                b = np.int64(p)  # p >= 0: truncation = floor = nearest bin centre
+                r = np.uint64(((c * n_time + tb) * n_fine + b) * order)
+                slot = it & (RING - 1)
+                ring_r[slot] = r
+                ring_d[slot] = p - b - 0.5  # delta / h in [-1/2, 1/2)
+                ring_v[slot] = v
+                _prefetch(acc, r)
+                if two_lines:
+                    _prefetch(acc, r + np.uint64(order - 1))
+            i = it - PREFETCH_AHEAD
+            if i >= lo:  # add stick i
+                slot = i & (RING - 1)
+                row = ring_r[slot]
+                d = ring_d[slot]
+                v = ring_v[slot]
+                if order == 8:
+                    _add8(acc, row, v, d)
+                elif order == 6:
+                    d2 = d * d
+                    d3 = d2 * d
+                    v3 = v * d3
+                    acc[row] += v
+                    acc[row + np.uint64(1)] += v * d
+                    acc[row + np.uint64(2)] += v * d2
+                    acc[row + np.uint64(3)] += v3
+                    acc[row + np.uint64(4)] += v3 * d
+                    acc[row + np.uint64(5)] += v3 * d2
+                else:
+                    for k in range(order):
+                        acc[row + np.uint64(k)] += v
+                        v *= d
+        return bad
+    row_t = n_fine * order
     stop = hi - PREFETCH_AHEAD
     for i in range(lo, hi):
         if i < stop:  # prefetch the cells of stick j (any address is harmless)
@@ -98,11 +168,11 @@ def _dep_range(tbin, energy, weight, comp, tfrac, acc, lo, hi, n_time, n_fine, n
             gj = tbin[j] if comp is None else comp[j] * n_time + tbin[j]
             rj = np.uint64((gj * n_fine + np.int64(pj)) * order)
             _prefetch(acc, rj)
-            _prefetch(acc, rj + np.uint64(order - 1))
-            if tfrac is not None:
-                _prefetch(acc, rj + np.uint64(row_t))
+            _prefetch(acc, rj + np.uint64(row_t))
+            if two_lines:
+                _prefetch(acc, rj + np.uint64(order - 1))
                 _prefetch(acc, rj + np.uint64(row_t + order - 1))
-        p = energy[i] * inv_h + shift  # (x - e_lo)/h + 1/2
+        p = energy[i] * inv_h + shift
         tb = tbin[i]
         if comp is None:
             ok = p >= 0.0 and p < fn and tb >= 0 and tb < n_time
@@ -114,35 +184,23 @@ def _dep_range(tbin, energy, weight, comp, tfrac, acc, lo, hi, n_time, n_fine, n
         if not ok:
             bad += 1
             continue
-        b = np.int64(p)  # p >= 0: truncation = floor = nearest bin centre
-        d = p - b - 0.5  # delta / h in [-1/2, 1/2)
+        b = np.int64(p)
+        d = p - b - 0.5
         row = np.uint64((g * n_fine + b) * order)
         v = weight[i]
-        if tfrac is not None:
-            f = tfrac[i]
-            if f > 0.0:
-                if tb + 1 >= n_time:
-                    bad += 1
-                    continue
-                v0 = v * (1.0 - f)
-                v1 = v * f
-                r1 = row + np.uint64(row_t)
-                for k in range(order):
-                    acc[row + np.uint64(k)] += v0
-                    acc[r1 + np.uint64(k)] += v1
-                    v0 *= d
-                    v1 *= d
+        f = tfrac[i]
+        if f > 0.0:  # a fraction f to the next time bin
+            if tb + 1 >= n_time:
+                bad += 1
                 continue
-        if order == 6:  # the default order, unrolled (same products up to rounding)
-            d2 = d * d
-            d3 = d2 * d
-            v3 = v * d3
-            acc[row] += v
-            acc[row + np.uint64(1)] += v * d
-            acc[row + np.uint64(2)] += v * d2
-            acc[row + np.uint64(3)] += v3
-            acc[row + np.uint64(4)] += v3 * d
-            acc[row + np.uint64(5)] += v3 * d2
+            v0 = v * (1.0 - f)
+            v1 = v * f
+            r1 = row + np.uint64(row_t)
+            for k in range(order):
+                acc[row + np.uint64(k)] += v0
+                acc[r1 + np.uint64(k)] += v1
+                v0 *= d
+                v1 *= d
         else:
             for k in range(order):
                 acc[row + np.uint64(k)] += v
@@ -152,6 +210,73 @@ def _dep_range(tbin, energy, weight, comp, tfrac, acc, lo, hi, n_time, n_fine, n
 
 def _prefetch(arr, index):  # pragma: no cover - replaced by a numba intrinsic
     """Hint the CPU to fetch ``arr[index]`` into cache (no effect on results)."""
+
+
+def _add8_scalar(acc, row, v, d):  # pragma: no cover - compiled by numba
+    """``acc[row + k] += v d^k`` for k = 0..7 (the products of the vector version)."""
+    d2 = d * d
+    v1 = v * d
+    v2 = v * d2
+    v3 = v1 * d2
+    d4 = d2 * d2
+    acc[row] += v
+    acc[row + np.uint64(1)] += v1
+    acc[row + np.uint64(2)] += v2
+    acc[row + np.uint64(3)] += v3
+    acc[row + np.uint64(4)] += v * d4
+    acc[row + np.uint64(5)] += v1 * d4
+    acc[row + np.uint64(6)] += v2 * d4
+    acc[row + np.uint64(7)] += v3 * d4
+
+
+#: replaced by the vector intrinsic (or the compiled scalar version) on first use
+_add8 = _add8_scalar
+
+
+def _make_add8(numba):
+    """A numba intrinsic ``add8(acc, row, v, d)``: :func:`_add8_scalar` as one 8-wide
+    vector load, add and store (the same products, so the same numbers)."""
+    from llvmlite import ir
+    from numba.core import cgutils
+
+    @numba.extending.intrinsic
+    def add8(typingctx, arr, index, v, d):
+        sig = numba.types.void(arr, index, v, d)
+
+        def codegen(context, builder, signature, args):
+            aryty = signature.args[0]
+            ary = context.make_array(aryty)(context, builder, args[0])
+            ptr = cgutils.get_item_pointer(context, builder, aryty, ary, [args[1]],
+                                           wraparound=False)
+            i32 = ir.IntType(32)
+            v4t = ir.VectorType(ir.DoubleType(), 4)
+            v8t = ir.VectorType(ir.DoubleType(), 8)
+            vv, dd = args[2], args[3]
+            d2 = builder.fmul(dd, dd)
+            v1 = builder.fmul(vv, dd)
+            v2 = builder.fmul(vv, d2)
+            v3 = builder.fmul(v1, d2)
+            d4 = builder.fmul(d2, d2)
+            lo = ir.Constant(v4t, ir.Undefined)
+            for k, x in enumerate((vv, v1, v2, v3)):
+                lo = builder.insert_element(lo, x, ir.Constant(i32, k))
+            b4 = builder.insert_element(ir.Constant(v4t, ir.Undefined), d4, ir.Constant(i32, 0))
+            b4 = builder.shuffle_vector(b4, b4, ir.Constant(ir.VectorType(i32, 4), [0] * 4))
+            hi = builder.fmul(lo, b4)
+            full = builder.shuffle_vector(lo, hi, ir.Constant(ir.VectorType(i32, 8),
+                                                              list(range(8))))
+            if getattr(ptr.type, "is_opaque", False):
+                old = builder.load(ptr, align=8, typ=v8t)
+                vptr = ptr
+            else:
+                vptr = builder.bitcast(ptr, v8t.as_pointer())
+                old = builder.load(vptr, align=8)
+            builder.store(builder.fadd(old, full), vptr, align=8)
+            return context.get_dummy_value()
+
+        return sig, codegen
+
+    return add8
 
 
 _NUMBA_LOCK = threading.Lock()
@@ -191,9 +316,31 @@ def _make_prefetch(numba):
     return prefetch
 
 
+def _pick_add8(numba):
+    """The vector :func:`_add8` intrinsic if it compiles and agrees with the scalar one,
+    else the compiled scalar version (older or newer llvmlite, other CPUs)."""
+    scalar = numba.njit(nogil=True, boundscheck=False)(_add8_scalar)
+    try:
+        vec = _make_add8(numba)
+
+        @numba.njit(nogil=True, boundscheck=False)
+        def probe(acc, row, v, d):
+            vec(acc, row, v, d)
+
+        a = np.arange(10.0)
+        b = a.copy()
+        probe(a, np.uint64(1), 0.7, -0.3)
+        scalar(b, np.uint64(1), 0.7, -0.3)
+        if np.array_equal(a, b):
+            return vec
+    except Exception:  # pragma: no cover - depends on the numba/llvmlite build
+        pass
+    return scalar  # pragma: no cover
+
+
 def _numba_kernel() -> Callable[..., int] | None:
     """The compiled :func:`_dep_range`, or None when numba is not installed."""
-    global _prefetch
+    global _prefetch, _add8
     if "dep" not in _NUMBA:
         with _NUMBA_LOCK:
             if "dep" not in _NUMBA:
@@ -202,7 +349,8 @@ def _numba_kernel() -> Callable[..., int] | None:
                 except ImportError:
                     _NUMBA["dep"] = None
                 else:
-                    _prefetch = _make_prefetch(numba)  # a global of _dep_range
+                    _prefetch = _make_prefetch(numba)  # globals of _dep_range
+                    _add8 = _pick_add8(numba)
                     _NUMBA["dep"] = numba.njit(cache=True, nogil=True, boundscheck=False)(
                         _dep_range)
     return _NUMBA["dep"]
@@ -226,6 +374,45 @@ def _default_threads(n: int) -> int:
     return max(1, min(_usable_cores(), n // MIN_STICKS_PER_THREAD))
 
 
+def _empty_aligned(size: int, align: int = 64) -> np.ndarray:
+    """An uninitialised float64 array whose data start on an `align`-byte boundary.
+
+    With 8 moments per fine bin every bin is then exactly one cache line.
+    """
+    pad = align // 8
+    buf = np.empty(size + pad)
+    off = (-buf.ctypes.data % align) // 8
+    return buf[off:off + size]
+
+
+#: most bytes of scratch accumulators kept between calls of the numba backend
+SCRATCH_BYTES = 1 << 27
+
+_SCRATCH_LOCK = threading.Lock()
+_SCRATCH: list[np.ndarray] = []  # free per-thread accumulators, oldest first
+
+
+def _scratch_take(size: int, count: int) -> list[np.ndarray]:
+    """`count` aligned float64 arrays of `size` (reused when free ones fit; contents
+    undefined). Reusing them saves the page faults of fresh memory on every map."""
+    out: list[np.ndarray] = []
+    with _SCRATCH_LOCK:
+        keep = []
+        for a in _SCRATCH:  # (by identity: arrays do not compare as list items)
+            (out if len(out) < count and a.size == size else keep).append(a)
+        _SCRATCH[:] = keep
+    return out + [_empty_aligned(size) for _ in range(count - len(out))]
+
+
+def _scratch_give(arrays: list[np.ndarray]) -> None:
+    """Return arrays from :func:`_scratch_take`, keeping at most ``SCRATCH_BYTES``."""
+    with _SCRATCH_LOCK:
+        _SCRATCH.extend(arrays)
+        total = sum(a.nbytes for a in _SCRATCH)
+        while _SCRATCH and total > SCRATCH_BYTES:
+            total -= _SCRATCH.pop(0).nbytes
+
+
 def _deposit_numba(kernel, tbin, energy, weight, comp, tfrac, *, n_time, e_lo, h, n_fine,
                    order, n_comp, n_threads) -> np.ndarray:
     size = n_comp * n_time * n_fine * order
@@ -244,9 +431,9 @@ def _deposit_numba(kernel, tbin, energy, weight, comp, tfrac, *, n_time, e_lo, h
     if tbin.dtype.kind not in "iu":
         tbin = tbin.astype(np.int64)
     n_threads = _default_threads(n) if n_threads is None else max(1, min(int(n_threads), n))
-    # thread t takes a contiguous range of sticks into its own accumulator
-    accs = [np.empty(size) for _ in range(n_threads)]
     bounds = [t * n // n_threads for t in range(n_threads + 1)]
+    # thread 0's accumulator is the result; the others are scratch kept for the next call
+    accs = [_empty_aligned(size)] + _scratch_take(size, n_threads - 1)
 
     def run(t: int) -> int:
         # zero in order (fresh pages fault in sequentially, several times cheaper than
@@ -255,19 +442,29 @@ def _deposit_numba(kernel, tbin, energy, weight, comp, tfrac, *, n_time, e_lo, h
         return kernel(tbin, energy, weight, comp, tfrac, accs[t], bounds[t], bounds[t + 1],
                       n_time, n_fine, n_comp, order, shift, inv_h)
 
+    out = accs[0]
     if n_threads == 1:
         bad = run(0)
     else:
-        with ThreadPoolExecutor(n_threads) as pool:
-            bad = sum(pool.map(run, range(n_threads)))
+        try:
+            cuts = [t * size // n_threads for t in range(n_threads + 1)]
+
+            def run_sum(t: int) -> None:  # out = accs[0] + accs[1] + ..., in this order
+                sl = slice(cuts[t], cuts[t + 1])
+                for a in accs[1:]:
+                    out[sl] += a[sl]
+
+            with ThreadPoolExecutor(n_threads) as pool:
+                bad = sum(pool.map(run, range(n_threads)))
+                if not bad:
+                    list(pool.map(run_sum, range(n_threads)))
+        finally:
+            _scratch_give(accs[1:])
     if bad:
         raise ValueError(
             f"deposit_moments: {bad} stick(s) outside the grid (time bin in [0, {n_time}), "
             f"component in [0, {n_comp}), energy in [{e_lo - h / 2}, {e_lo + (n_fine - 0.5) * h})"
             "). Hint: size the fine grid from the stick energies.")
-    out = accs[0]
-    for a in accs[1:]:
-        out += a
     # a view with the documented axis order (moment, comp, time, fine bin)
     return out.reshape(n_comp, n_time, n_fine, order).transpose(3, 0, 1, 2)
 
@@ -383,6 +580,16 @@ def deposit_moments(
                 if k + 1 < order:
                     av *= pv
     return out.reshape(order, n_comp, n_time, n_fine)
+
+
+def truncation_bound(h: float, fwhm: float, order: int) -> float:
+    """Bound on the moment expansion's error relative to the peak height.
+
+    ``(sqrt(2a) h/2)^order / sqrt(order!)`` with ``a = 4 ln2 / fwhm^2``: the first
+    omitted Taylor term for a stick half a bin ``h`` from its bin centre.
+    """
+    x = math.sqrt(2.0 * FOUR_LN2) * h / (2.0 * fwhm)
+    return x**order / math.sqrt(math.factorial(order))
 
 
 def deposit_counts(tbin: np.ndarray, weight: np.ndarray, *, n_time: int,
@@ -508,7 +715,7 @@ def time_matrix(delays: np.ndarray, times: np.ndarray, *, sigma: float | None,
 ENERGY_BLOCK = 32
 
 #: broadening-matrix entries below this fraction of the largest are left out (banded)
-BAND_CUTOFF = 1e-16
+BAND_CUTOFF = 1e-13
 
 #: fewest (time bin x output energy) cells per thread before :func:`assemble` threads
 MIN_CELLS_PER_THREAD = 1 << 15
@@ -580,30 +787,44 @@ def broadening_blocks(energies: np.ndarray, *, e_lo: float, h: float, n_fine: in
     reach = _reach_bins(h, sa, order)
     out = BroadeningBlocks()
     out.order, out.n_fine, out.n_energies = order, n_fine, energies.size
-    scale = h * sa
-    coef = [scale**k / math.factorial(k) for k in range(order)]
+    spans = []
     for j0 in range(0, energies.size, block):
         j1 = min(energies.size, j0 + block)
         e = energies[j0:j1]
         lo = max(0, int(math.floor((float(e.min()) - e_lo) / h)) - reach)
         hi = min(n_fine, int(math.ceil((float(e.max()) - e_lo) / h)) + reach + 1)
-        if hi <= lo:
-            continue
-        centres = e_lo + h * np.arange(lo, hi)
-        y = sa * (e[None, :] - centres[:, None])
-        g = (sa / math.sqrt(math.pi)) * np.exp(-y * y)
-        if truncate_below is not None:
-            g[:, e < truncate_below] = 0.0
-        mat = np.empty((hi - lo, order, j1 - j0))
-        mat[:, 0] = g
-        if order > 1:
-            h_prev = np.ones_like(y)
-            h_cur = 2.0 * y
-            mat[:, 1] = coef[1] * h_cur * g
-            for k in range(2, order):
-                h_prev, h_cur = h_cur, 2.0 * y * h_cur - 2.0 * (k - 1) * h_prev
-                mat[:, k] = coef[k] * h_cur * g
-        out.append((j0, j1, lo, hi, mat.reshape((hi - lo) * order, j1 - j0)))
+        if hi > lo:
+            spans.append((j0, j1, lo, hi))
+    if not spans:
+        return out
+    # all blocks at once, padded to the widest band and the full block width
+    width = max(hi - lo for _, _, lo, hi in spans)
+    n_blk = len(spans)
+    e_pad = np.zeros((n_blk, block))
+    keep = np.zeros((n_blk, block), dtype=bool)
+    c_pad = np.zeros((n_blk, width))
+    for i, (j0, j1, lo, hi) in enumerate(spans):
+        e_pad[i, :j1 - j0] = energies[j0:j1]
+        keep[i, :j1 - j0] = True
+        c_pad[i] = e_lo + h * (lo + np.arange(width))
+    if truncate_below is not None:
+        keep &= e_pad >= truncate_below
+    y = sa * (e_pad[:, None, :] - c_pad[:, :, None])  # (n_blk, width, block)
+    g = np.where(keep[:, None, :], (sa / math.sqrt(math.pi)) * np.exp(-y * y), 0.0)
+    mats = np.empty((n_blk, width, order, block))
+    mats[:, :, 0] = g
+    if order > 1:
+        scale = h * sa
+        h_prev = np.ones_like(y)
+        h_cur = 2.0 * y
+        mats[:, :, 1] = scale * h_cur * g
+        for k in range(2, order):
+            h_prev, h_cur = h_cur, 2.0 * y * h_cur - 2.0 * (k - 1) * h_prev
+            mats[:, :, k] = (scale**k / math.factorial(k)) * h_cur * g
+    for i, (j0, j1, lo, hi) in enumerate(spans):
+        m = mats[i, :hi - lo, :, :j1 - j0]
+        out.append((j0, j1, lo, hi, np.ascontiguousarray(m).reshape((hi - lo) * order,
+                                                                     j1 - j0)))
     return out
 
 
