@@ -803,7 +803,7 @@ def broadening_blocks(energies: np.ndarray, *, e_lo: float, h: float, n_fine: in
     e_pad = np.zeros((n_blk, block))
     keep = np.zeros((n_blk, block), dtype=bool)
     c_pad = np.zeros((n_blk, width))
-    for i, (j0, j1, lo, hi) in enumerate(spans):
+    for i, (j0, j1, lo, _hi) in enumerate(spans):
         e_pad[i, :j1 - j0] = energies[j0:j1]
         keep[i, :j1 - j0] = True
         c_pad[i] = e_lo + h * (lo + np.arange(width))
