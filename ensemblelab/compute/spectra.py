@@ -433,7 +433,10 @@ def _deposit(tbin, energy, weight, *, progress: bool, **kw) -> np.ndarray:
         part = K.deposit_moments(tbin[sl], energy[sl], weight[sl],
                                  comp=None if comp is None else comp[sl],
                                  tfrac=None if tfrac is None else tfrac[sl], **kw)
-        out = part if out is None else out + part
+        if out is None:
+            out = part
+        else:
+            out += part  # in place: no fresh 600 x 300-map-sized array per block
     return out
 
 
