@@ -109,15 +109,16 @@ def _dep_range(tbin, energy, weight, comp, tfrac, acc, lo, hi, n_time, n_fine, n
         ring_d = np.zeros(RING)
         ring_v = np.zeros(RING)
         for it in range(lo, hi + PREFETCH_AHEAD):
-            if it < hi:  # prepare stick `it`
-                p = energy[it] * inv_h + shift  # (x - e_lo)/h + 1/2
-                tb = tbin[it]
-                v = weight[it]
+            if it < hi:  # prepare stick `it` (unsigned indices: no negative-index handling)
+                ui = np.uint64(it)
+                p = energy[ui] * inv_h + shift  # (x - e_lo)/h + 1/2
+                tb = tbin[ui]
+                v = weight[ui]
                 if comp is None:
                     c = 0
                     ok = p >= 0.0 and p < fn and tb >= 0 and tb < n_time
                 else:
-                    c = comp[it]
+                    c = comp[ui]
                     ok = (p >= 0.0 and p < fn and tb >= 0 and tb < n_time and c >= 0
                           and c < n_comp)
                 if not ok:  # adds zero to cell 0 (the caller raises anyway)
@@ -128,7 +129,7 @@ def _dep_range(tbin, energy, weight, comp, tfrac, acc, lo, hi, n_time, n_fine, n
                     v = 0.0
                 b = np.int64(p)  # p >= 0: truncation = floor = nearest bin centre
                 r = np.uint64(((c * n_time + tb) * n_fine + b) * order)
-                slot = it & (RING - 1)
+                slot = np.uint64(it & (RING - 1))
                 ring_r[slot] = r
                 ring_d[slot] = p - b - 0.5  # delta / h in [-1/2, 1/2)
                 ring_v[slot] = v
@@ -137,7 +138,7 @@ def _dep_range(tbin, energy, weight, comp, tfrac, acc, lo, hi, n_time, n_fine, n
                     _prefetch(acc, r + np.uint64(order - 1))
             i = it - PREFETCH_AHEAD
             if i >= lo:  # add stick i
-                slot = i & (RING - 1)
+                slot = np.uint64(i & (RING - 1))
                 row = ring_r[slot]
                 d = ring_d[slot]
                 v = ring_v[slot]
