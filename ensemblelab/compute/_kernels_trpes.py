@@ -548,6 +548,12 @@ def deposit_moments(
     ------
     ValueError
         (numba backend) a stick outside the grid (the numpy backend checks less).
+
+    Notes
+    -----
+    The numba backend takes its accumulators from a pool of freed ones and keeps at
+    most ``SCRATCH_BYTES`` (128 MB) of them between calls; the returned array's memory
+    re-enters the pool once nothing refers to it any more.
     """
     if backend not in BACKENDS:
         raise ValueError(f"backend must be one of {BACKENDS}; got {backend!r}.")
