@@ -279,3 +279,20 @@ def test_kernel_numba_reuses_freed_accumulators_only():
     d = K.deposit_moments(tb, x, w, **kw)
     np.testing.assert_array_equal(d, a_copy)  # same sticks, same threads: same sums
     assert not np.shares_memory(d, b) and not np.shares_memory(d, c)
+
+
+def test_kernel_numba_concurrent_calls_share_the_pool_safely():
+    # several callers at once (as Dask worker threads do) each get their own accumulators:
+    # every result equals the same call made alone (computed independently, exact)
+    pytest.importorskip("numba")
+    from concurrent.futures import ThreadPoolExecutor
+
+    inputs = [_sticks(30000, 20 + i) for i in range(6)]
+    kw = dict(n_time=7, e_lo=0.0, h=0.01, n_fine=302, order=8, backend="numba", n_threads=2)
+    alone = [K.deposit_moments(tb, x, w, **kw).copy() for tb, x, w, _, _ in inputs]
+    with ThreadPoolExecutor(4) as pool:
+        for _ in range(3):
+            together = list(pool.map(lambda s: K.deposit_moments(s[0], s[1], s[2], **kw),
+                                     inputs))
+            for a, b in zip(alone, together, strict=True):
+                np.testing.assert_array_equal(a, b)
