@@ -220,18 +220,15 @@ def bench_rebroaden_and_contributions(n_contrib: int, *, repeat: int) -> dict[st
 
 def model_map(model, energies: np.ndarray) -> np.ndarray:
     """Pure map of a prepared model's sticks (deposit, banded broadening, no time matrix)
-    on its internal time grid, with the kernel defaults; what :func:`fast_map` does for
+    on its internal time grid, on the model's fine grid; what :func:`fast_map` does for
     synthetic arrays."""
     fwhm = model.fwhm()
-    h = fwhm / DEFAULT_BINS_PER_FWHM
-    e = model.sticks.energy
-    e_lo = float(e.min())
-    n_fine = int(np.floor((float(e.max()) - e_lo) / h + 0.5)) + 2
-    hist = K.deposit_moments(model.tbin, e, model.sticks.weight, n_time=model.n_time,
-                             e_lo=e_lo, h=h, n_fine=n_fine, order=DEFAULT_ORDER,
-                             tfrac=model.tfrac)
+    e_lo, h, n_fine = model.fine_grid(fwhm)
+    hist = K.deposit_moments(model.tbin, model.sticks.energy, model.sticks.weight,
+                             n_time=model.n_time, e_lo=e_lo, h=h, n_fine=n_fine,
+                             order=model.order, tfrac=model.tfrac)
     b = K.broadening_blocks(energies, e_lo=e_lo, h=h, n_fine=n_fine, fwhm=fwhm,
-                            order=DEFAULT_ORDER)
+                            order=model.order)
     return K.assemble(hist, b, None)[0]
 
 

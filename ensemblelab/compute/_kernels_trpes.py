@@ -664,17 +664,21 @@ def energy_matrices(energies: np.ndarray, *, e_lo: float, h: float, n_fine: int,
     if truncate_below is not None:
         g[:, energies < truncate_below] = 0.0
     out = np.empty((order, n_fine, energies.size))
-    h_prev = np.ones_like(y)
-    out[0] = g
-    if order > 1:
-        h_cur = 2.0 * y
-        scale = h * sa
-        out[1] = scale * h_cur * g
-        for k in range(2, order):
-            h_next = 2.0 * y * h_cur - 2.0 * (k - 1) * h_prev
-            h_prev, h_cur = h_cur, h_next
-            out[k] = (scale**k / math.factorial(k)) * h_cur * g
+    for k, term in enumerate(_taylor_terms(y, h * sa, order)):
+        out[k] = term * g
     return out
+
+
+def _taylor_terms(y: np.ndarray, scale: float, order: int):
+    """Yield ``scale^k H_k(y) / k!`` for k = 0 .. order-1 (physicists' Hermite polynomials
+    by their three-term recurrence); times ``G(y)`` these are the broadening terms."""
+    h_prev = np.ones_like(y)
+    yield h_prev
+    h_cur = 2.0 * y
+    for k in range(1, order):
+        if k > 1:
+            h_prev, h_cur = h_cur, 2.0 * y * h_cur - 2.0 * (k - 1) * h_prev
+        yield (scale**k / math.factorial(k)) * h_cur
 
 
 def time_matrix(delays: np.ndarray, times: np.ndarray, *, sigma: float | None,
@@ -777,14 +781,7 @@ def _reach_bins(h: float, sa: float, order: int) -> int:
     m = np.arange(0, int(math.ceil(12.0 / step)) + 2)
     y = step * m
     g = np.exp(-y * y)
-    mag = g.copy()
-    h_prev = np.ones_like(y)
-    h_cur = 2.0 * y
-    if order > 1:
-        mag = np.maximum(mag, np.abs(step * h_cur * g))
-    for k in range(2, order):
-        h_prev, h_cur = h_cur, 2.0 * y * h_cur - 2.0 * (k - 1) * h_prev
-        mag = np.maximum(mag, np.abs(step**k / math.factorial(k) * h_cur * g))
+    mag = np.max([np.abs(term * g) for term in _taylor_terms(y, step, order)], axis=0)
     big = np.flatnonzero(mag > BAND_CUTOFF * mag.max())
     return int(big[-1]) + 1
 
@@ -843,15 +840,8 @@ def broadening_blocks(energies: np.ndarray, *, e_lo: float, h: float, n_fine: in
     y = sa * (e_pad[:, None, :] - c_pad[:, :, None])  # (n_blk, width, block)
     g = np.where(keep[:, None, :], (sa / math.sqrt(math.pi)) * np.exp(-y * y), 0.0)
     mats = np.empty((n_blk, width, order, block))
-    mats[:, :, 0] = g
-    if order > 1:
-        scale = h * sa
-        h_prev = np.ones_like(y)
-        h_cur = 2.0 * y
-        mats[:, :, 1] = scale * h_cur * g
-        for k in range(2, order):
-            h_prev, h_cur = h_cur, 2.0 * y * h_cur - 2.0 * (k - 1) * h_prev
-            mats[:, :, k] = (scale**k / math.factorial(k)) * h_cur * g
+    for k, term in enumerate(_taylor_terms(y, h * sa, order)):
+        mats[:, :, k] = term * g
     for i, (j0, j1, lo, hi) in enumerate(spans):
         m = mats[i, :hi - lo, :, :j1 - j0]
         out.append((j0, j1, lo, hi, np.ascontiguousarray(m).reshape((hi - lo) * order,

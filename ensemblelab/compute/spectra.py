@@ -274,17 +274,26 @@ class TRPESModel:
         probe = probe or self.probe
         return math.hypot(probe.effective_spectral_fwhm, resolution)
 
+    def fine_grid(self, fwhm: float) -> tuple[float, float, int]:
+        """Fine energy grid of the moment histograms for a stick FWHM (eV).
+
+        Returns ``(e_lo, h, n_fine)``: first bin centre (eV), spacing ``fwhm /
+        bins_per_fwhm`` (eV) and number of bins, covering all stick energies.
+        """
+        h = fwhm / self.bins_per_fwhm
+        e = self.sticks.energy
+        e_lo = float(e.min()) if e.size else 0.0
+        e_hi = float(e.max()) if e.size else 0.0
+        return e_lo, h, int(math.floor((e_hi - e_lo) / h + 0.5)) + 2
+
     def _moments(self, fwhm: float) -> tuple[np.ndarray, np.ndarray | None, float, float, int]:
         c = self._cache
         if "h" in c and K.truncation_bound(c["h"], fwhm, self.order) <= max(
                 REUSE_TOLERANCE, K.truncation_bound(fwhm / self.bins_per_fwhm, fwhm,
                                                     self.order)):
             return c["hist"], c["hist_comp"], c["e_lo"], c["h"], c["n_fine"]
-        h = fwhm / self.bins_per_fwhm
         e = self.sticks.energy
-        e_lo = float(e.min()) if e.size else 0.0
-        e_hi = float(e.max()) if e.size else 0.0
-        n_fine = int(math.floor((e_hi - e_lo) / h + 0.5)) + 2
+        e_lo, h, n_fine = self.fine_grid(fwhm)
         progress = bool(self.info.get("progress", False))
         hist = _deposit(self.tbin, e, self.sticks.weight, n_time=self.n_time, e_lo=e_lo, h=h,
                         n_fine=n_fine, order=self.order, tfrac=self.tfrac, progress=progress)
@@ -436,7 +445,7 @@ def _deposit(tbin, energy, weight, *, progress: bool, **kw) -> np.ndarray:
         if out is None:
             out = part
         else:
-            out += part  # in place: no fresh 600 x 300-map-sized array per block
+            out += part  # in place: no fresh histogram-sized array per block
     return out
 
 

@@ -218,9 +218,9 @@ def test_kernel_numba_backend_missing_raises(monkeypatch):
 
 @pytest.mark.parametrize(("order", "bins"), [(6, 8.0), (8, 4.0), (3, 16.0)])
 def test_kernel_broadening_blocks_equal_dense_matrices(order, bins):
-    # the analytic band of each block holds every dense entry above the cutoff, and its
-    # values are the dense matrix's (same formula, evaluated on the band only; computed
-    # independently, 1e-13)
+    # the analytic band of each block holds every dense entry above BAND_CUTOFF, and its
+    # values are the dense matrix's (the same formula evaluated on the band only:
+    # rounding, 1e-15 of the largest; computed independently, not published)
     g = 0.05
     h = g / bins
     nf = int(3.2 / h) + 2
