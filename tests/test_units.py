@@ -1,8 +1,8 @@
 """Unit constants and conversion factors of ensemblelab.units.
 
 Reference: CODATA 2022 via scipy.constants (compared at rel 1e-12), and the literal
-values of method-notes section 9 (CODATA 2022 via scipy 1.17.1 [C]; valid for CODATA
-2018 too at rel 1e-8).
+values of method-notes section 9 (CODATA 2022 via scipy 1.17.1, computed independently
+(not published); valid for CODATA 2018 too at rel 1e-8).
 """
 
 from __future__ import annotations

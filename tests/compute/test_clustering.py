@@ -30,7 +30,8 @@ def planted():
 
 
 def test_wilson_interval_matches_method_notes():
-    # method notes 7.5 [C] (= scipy binomtest): 7/50 -> [0.069508, 0.261862]; 0/20 -> [0, 0.161125]
+    # method notes 7.5 computed independently (not published) (= scipy binomtest): 7/50 ->
+    # [0.069508, 0.261862]; 0/20 -> [0, 0.161125]
     lo, hi = wilson_interval(np.array([7 / 50, 0.0]), np.array([50, 20]))
     np.testing.assert_allclose(lo, [0.069508, 0.0], atol=1e-6)
     np.testing.assert_allclose(hi, [0.261862, 0.161125], atol=1e-6)

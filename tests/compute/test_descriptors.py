@@ -19,7 +19,7 @@ from ensemblelab.compute.descriptors import (
 )
 from ensemblelab.units import BOHR_ANGSTROM
 
-# method notes section 8 [C]: water geometry (Angstrom)
+# method notes section 8 computed independently (not published): water geometry (Angstrom)
 WATER = np.array([[0, 0, 0.1173], [0, 0.7572, -0.4692], [0, -0.7572, -0.4692]])
 H2 = np.array([[0.0, 0, 0], [0.74, 0, 0]])
 
@@ -52,7 +52,8 @@ def test_width_error_is_clear():
 
 
 def test_coulomb_h2_bohr_and_angstrom():
-    # method notes section 8 [C]: H2 r = 0.74 A -> (1.2151043, -0.2151043) in bohr,
+    # method notes section 8 computed independently (not published): H2 r = 0.74 A -> (1.2151043,
+    # -0.2151043) in bohr,
     # (1.8513514, -0.8513514) with r in Angstrom; tol 1e-7
     X = flatten(H2[None])
     np.testing.assert_allclose(CoulombEigenvalues(atomic_numbers=[1, 1]).fit_transform(X)[0],
@@ -63,7 +64,8 @@ def test_coulomb_h2_bohr_and_angstrom():
 
 
 def test_coulomb_water():
-    # method notes section 8 [C]: eigenvalues 74.050481, 0.315644, 0.150570 (bohr);
+    # method notes section 8 computed independently (not published): eigenvalues 74.050481,
+    # 0.315644, 0.150570 (bohr);
     # C_OO = 0.5 * 8^2.4 = 73.516695; tol 1e-6
     F = CoulombEigenvalues(atomic_numbers=[8, 1, 1]).fit_transform(flatten(WATER[None]))
     np.testing.assert_allclose(F[0], [74.050481, 0.315644, 0.150570], atol=1e-6)
@@ -71,7 +73,8 @@ def test_coulomb_water():
 
 
 def test_sorted_inverse_distances_water():
-    # method notes section 8 [C]: sorted 1/r = (1.044086, 1.044086, 0.660328) 1/A; tol 1e-6
+    # method notes section 8 computed independently (not published): sorted 1/r = (1.044086,
+    # 1.044086, 0.660328) 1/A; tol 1e-6
     F = InverseDistances(sort="global").fit_transform(flatten(WATER[None]))
     np.testing.assert_allclose(F[0], [1.044086, 1.044086, 0.660328], atol=1e-6)
 

@@ -24,7 +24,8 @@ from ensemblelab.errors import NumericalWarning
 
 
 def test_loewdin_table_value():
-    # method notes 4.6, [C]: A = [[0.965363, 0.260909], [-0.260909, 0.965363]] (1e-6),
+    # method notes 4.6, computed independently (not published): A = [[0.965363, 0.260909],
+    # [-0.260909, 0.965363]] (1e-6),
     # a rotation by -15.1240 deg, equal to S (S^T S)^(-1/2)
     s = np.array([[0.9, 0.3], [-0.2, 0.95]])
     a = loewdin(s)
@@ -34,7 +35,8 @@ def test_loewdin_table_value():
 
 
 def test_loewdin_near_swap():
-    # method notes 4.6, [C]: S = [[0.05, 0.99], [0.98, -0.06]] -> T (1e-6)
+    # method notes 4.6, computed independently (not published): S = [[0.05, 0.99], [0.98, -0.06]] ->
+    # T (1e-6)
     t = loewdin(np.array([[0.05, 0.99], [0.98, -0.06]]))
     np.testing.assert_allclose(t, [[0.055751, 0.998445], [0.998445, -0.055751]], atol=1e-6)
 
@@ -49,7 +51,8 @@ def test_loewdin_warns_on_small_singular_value():
 
 
 def test_local_diabatisation_rotating_states_with_random_signs():
-    # method notes 4.6, [C]: theta 0 -> 60 deg in 100 steps, random signs per state and step
+    # method notes 4.6, computed independently (not published): theta 0 -> 60 deg in 100 steps,
+    # random signs per state and step
     # -> |A|^2 = [[0.25, 0.75], [0.75, 0.25]] at the end (1e-10)
     rng = np.random.default_rng(0)
     thetas = np.radians(np.linspace(0.0, 60.0, 101))
@@ -80,7 +83,8 @@ def test_local_diabatisation_survives_state_swap():
 
 
 def test_gmh_table_values():
-    # method notes 4.6 row 1, [C] (1e-7): theta 22.5 deg, |H_ab| 0.1767767 eV,
+    # method notes 4.6 row 1, computed independently (not published) (1e-7): theta 22.5 deg, |H_ab|
+    # 0.1767767 eV,
     # d_mu_ab 2.8284271, |E_a - E_1| 0.0732233 eV, H^d
     r = gmh_two_state(e1=0.5, e2=0.0, dmu=2.0, mu12=1.0)
     assert math.degrees(r.theta) == pytest.approx(22.5, abs=1e-7)
@@ -99,7 +103,8 @@ def test_gmh_table_values():
 
 
 def test_boys_vs_gmh_non_collinear():
-    # method notes 4.6 row 2, [C] (1e-5): theta_Boys 15.85874 deg; theta_GMH 13.28253 deg;
+    # method notes 4.6 row 2, computed independently (not published) (1e-5): theta_Boys 15.85874
+    # deg; theta_GMH 13.28253 deg;
     # |H_ab|/dE = 0.2236068
     mu = np.zeros((2, 2, 3))
     mu[0, 0] = [1.0, 0.0, 0.0]
@@ -116,7 +121,8 @@ def test_boys_vs_gmh_non_collinear():
 
 
 def test_boys_three_states_beats_random_rotations():
-    # method notes 4.6 last row, [C]: the objective never decreases per sweep and the
+    # method notes 4.6 last row, computed independently (not published): the objective never
+    # decreases per sweep and the
     # converged value is >= the best of 2e4 random rotations
     rng = np.random.default_rng(5)
     m = rng.normal(size=(3, 3, 3))

@@ -2,7 +2,8 @@
 
 Reference values: method notes section 6. The "FSSH" probabilities there were
 computed independently (not published) with another implementation of the
-same algorithm; the analytic thresholds and gaps are derived [D].
+same algorithm; the analytic thresholds and gaps are derived and computed
+independently (not published).
 """
 
 from __future__ import annotations
@@ -48,13 +49,16 @@ def _tol(p, n):
 
 # ------------------------------------------------------------------ models
 def test_models_analytic_gaps_and_crossings():
-    # [D] method notes section 6: gap at x = 0 of model I is 2C = 0.01 E_h
+    # derived and computed independently (not published) method notes section 6: gap at x = 0 of
+    # model I is 2C = 0.01 E_h
     e, _ = adiabatic_states(SingleAvoidedCrossing().diabatic(np.zeros((1, 1))))
     assert e[0, 1] - e[0, 0] == pytest.approx(0.01, rel=1e-12)
-    # [D] model III right-asymptote gap 2 sqrt(A^2 + 4 B^2) = 0.4000018
+    # derived and computed independently (not published) model III right-asymptote gap 2 sqrt(A^2 +
+    # 4 B^2) = 0.4000018
     e, _ = adiabatic_states(ExtendedCoupling().diabatic(np.array([[40.0]])))
     assert e[0, 1] - e[0, 0] == pytest.approx(0.4000018, abs=1e-7)
-    # [D] model II diabatic crossings at x = +-sqrt(ln(A/E0)/B) = +-1.573380
+    # derived and computed independently (not published) model II diabatic crossings at x =
+    # +-sqrt(ln(A/E0)/B) = +-1.573380
     v = DualAvoidedCrossing().diabatic(np.array([[1.573380], [-1.573380]]))
     np.testing.assert_allclose(v[:, 0, 0] - v[:, 1, 1], 0.0, atol=1e-7)
 
@@ -170,7 +174,8 @@ def test_run_fssh_validates_arguments():
 
 # ------------------------------------------------------------------ analytic trajectory
 def test_single_state_linear_coupling_matches_analytic_solution():
-    # [D] method notes section 6: q(t) = -(kappa/omega)(1 - cos(omega t / hbar)),
+    # derived and computed independently (not published) method notes section 6: q(t) =
+    # -(kappa/omega)(1 - cos(omega t / hbar)),
     # period 2 pi hbar / omega = 41.3567 fs for omega = 0.1 eV
     from ensemblelab.units import HBAR_EV_FS
 
@@ -226,7 +231,8 @@ def test_fssh_scattering_probabilities(model, k, decoherence, ref):
 @pytest.mark.parametrize(("model", "k"), [(SingleAvoidedCrossing(), 8.5),
                                           (ExtendedCoupling(), 25.0)])
 def test_no_upper_transmission_below_threshold(model, k):
-    # [D] thresholds sqrt(2M 2A) = 8.944 (I) and sqrt(2M(sqrt(A^2+4B^2)+A)) = 28.327 (III);
+    # derived and computed independently (not published) thresholds sqrt(2M 2A) = 8.944 (I) and
+    # sqrt(2M(sqrt(A^2+4B^2)+A)) = 28.327 (III);
     # energy conservation forbids it at any step size, so a coarse step and a start closer
     # to the coupling region keep the test fast (the start only changes the phase history)
     _, probs = _scatter(model, k, 100, seed=2, x0=-6.0 if k < 10 else -12.0, dt_au=1.0)

@@ -24,7 +24,8 @@ from ensemblelab.units import AMU_ME, HARTREE_CM1, HARTREE_EV
 
 # ------------------------------------------------------------------ Wigner: exact values
 def test_thermal_factor_values():
-    # method notes section 5 [C]: alpha(300 K) for 100, 500, 1000, 3000 cm^-1
+    # method notes section 5 computed independently (not published): alpha(300 K) for 100, 500,
+    # 1000, 3000 cm^-1
     alpha = thermal_factor([100.0, 500.0, 1000.0, 3000.0], 300.0)
     np.testing.assert_allclose(alpha, [4.249836, 1.199985, 1.016664, 1.0000011], rtol=1e-6)
     np.testing.assert_array_equal(thermal_factor([100.0], 0.0), [1.0])
@@ -33,7 +34,8 @@ def test_thermal_factor_values():
 
 
 def test_wigner_widths_are_exact():
-    # method notes section 5 [C]: omega = 1000 cm^-1 -> sigma_Q = 10.475558, sigma_P = 4.7730154e-2;
+    # method notes section 5 computed independently (not published): omega = 1000 cm^-1 -> sigma_Q =
+    # 10.475558, sigma_P = 4.7730154e-2;
     # at 300 K sigma_Q = 10.562482 (rel 1e-6). The same seed gives the same normal deviates.
     omega = 1000.0 / HARTREE_CM1
     assert omega == pytest.approx(4.5563353e-3, rel=1e-7)
@@ -47,7 +49,8 @@ def test_wigner_widths_are_exact():
 
 
 def test_wigner_cartesian_widths_one_dimension():
-    # method notes section 5 [C]: m = 1 amu, 1000 cm^-1: sigma_x = 0.1298369 Angstrom,
+    # method notes section 5 computed independently (not published): m = 1 amu, 1000 cm^-1: sigma_x
+    # = 0.1298369 Angstrom,
     # sigma_v = 1.1179253e-3 a0/t_au = 1.1179253e-3 * 21.876912622 Angstrom/fs (section 9)
     s = sample_wigner(frequencies=[1000.0], normal_modes=[[[1.0, 0, 0]]],
                       equilibrium=[[0.0, 0, 0]], masses=[1.0], n_samples=4, random_state=0)
@@ -60,7 +63,7 @@ def test_wigner_cartesian_widths_one_dimension():
 
 
 def test_wigner_moments_ground_and_thermal():
-    # analytic HO moments (5.1) [M]; statistical tolerances of method notes section 5:
+    # analytic HO moments (5.1) from memory; statistical tolerances of method notes section 5:
     # <E>/(hbar omega/2) = 1 +- 0.0067 and var(Q) 2 omega / hbar = 1 +- 0.0095 for N = 2e5
     n = 200_000
     omega = 1000.0 / HARTREE_CM1
@@ -72,7 +75,8 @@ def test_wigner_moments_ground_and_thermal():
         assert np.var(q) * 2 * omega / alpha == pytest.approx(1.0, abs=0.0095)
         assert np.var(p) * 2 / (omega * alpha) == pytest.approx(1.0, abs=0.0095)
         assert abs(np.mean(q)) < 5 * np.sqrt(alpha / (2 * omega) / n)
-    # mean thermal energy of a 1000 cm^-1 mode at 300 K: 0.0630252 eV; ZPE 0.0619921 eV [C]
+    # mean thermal energy of a 1000 cm^-1 mode at 300 K: 0.0630252 eV; ZPE 0.0619921 eV computed
+    # independently (not published)
     assert 0.5 * omega * HARTREE_EV == pytest.approx(0.0619921, rel=1e-6)
     alpha_300 = thermal_factor([1000.0], 300.0)[0]
     assert 0.5 * omega * alpha_300 * HARTREE_EV == pytest.approx(0.0630252, rel=1e-6)
@@ -99,7 +103,7 @@ def test_normal_modes_from_hessian_recovers_frequencies(linear):
     x, symbols = _triatomic(linear)
     m3 = np.repeat(masses_for(symbols) * AMU_ME, 3)
     rigid = _rigid_basis(x / BOHR_ANGSTROM, m3)
-    assert rigid.shape[1] == (5 if linear else 6)  # rigid-body count [M]
+    assert rigid.shape[1] == (5 if linear else 6)  # rigid-body count from memory
     full, _, _ = np.linalg.svd(np.eye(9) - rigid @ rigid.T)
     comp = full[:, : 9 - rigid.shape[1]]
     wanted = np.linspace(600.0, 3800.0, comp.shape[1])
@@ -131,7 +135,7 @@ def test_sample_from_hessian_reports_imaginary_modes_and_kinetic_energy():
     assert s.soft_modes["reason"].tolist() == ["imaginary"]
     assert s.soft_modes["frequency"].iloc[0] == pytest.approx(-300.0, rel=1e-9)
     np.testing.assert_allclose(s.frequencies, [1600.0, 3700.0], rtol=1e-9)
-    # Cartesian kinetic energy 1/2 v^T M v equals 1/2 P^T P (method notes section 5) [M]
+    # Cartesian kinetic energy 1/2 v^T M v equals 1/2 P^T P (method notes section 5) from memory
     from ensemblelab.units import AU_TIME_FS
 
     v_au = s.velocities.reshape(50, -1) / (BOHR_ANGSTROM / AU_TIME_FS)
@@ -155,7 +159,8 @@ def _worked_table():
 
 
 def test_doorway_worked_example():
-    # method notes section 1.6 [C]: Gamma_pu = 0.091248 eV, w = (0.0357934, 8.20699e-7),
+    # method notes section 1.6 computed independently (not published): Gamma_pu = 0.091248 eV, w =
+    # (0.0357934, 8.20699e-7),
     # fraction on state 1 = 0.999977 (rel 1e-5)
     w = doorway_weights(_worked_table(), photon_energy=4.1, fwhm=20.0)
     np.testing.assert_allclose(w["weight"], [0.0357934, 8.20699e-7], rtol=1e-5)
@@ -167,8 +172,9 @@ def test_doorway_worked_example():
 
 
 def test_doorway_oscillator_strength_form_has_one_over_de():
-    # f = (2/3) dE |mu|^2 (a.u.) [M]; the f form must give the same weights as the mu2 form,
-    # and differ from a naive f * I by the energy ratio 4.3/4.0 = 1.075 [D]
+    # f = (2/3) dE |mu|^2 (a.u.) from memory; the f form must give the same weights as the mu2 form,
+    # and differ from a naive f * I by the energy ratio 4.3/4.0 = 1.075 derived and computed
+    # independently (not published)
     t = _worked_table()
     f = 2.0 / 3.0 * (t["excitation_energy"] / HARTREE_EV) * t["mu2"]
     tf = t.drop(columns="mu2").assign(oscillator_strength=f)

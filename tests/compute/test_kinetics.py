@@ -29,14 +29,16 @@ FWHM_PER_SIGMA = 2 * math.sqrt(2 * math.log(2))  # Gaussian FWHM / sigma, from m
 
 # ------------------------------------------------------------------ IRF convolution (7.2)
 def test_irf_exp_unit_sigma_tau_at_t0():
-    # method notes 7.5: sigma = tau = 1 at t = t0 -> 0.5 e^0.5 erfc(1/sqrt 2) = 0.2615783 [C]
+    # method notes 7.5: sigma = tau = 1 at t = t0 -> 0.5 e^0.5 erfc(1/sqrt 2) = 0.2615783 computed
+    # independently (not published)
     got = float(K.irf_exp(np.array(0.0), 1.0, 1.0))
     assert got == pytest.approx(0.5 * math.exp(0.5) * erfc(1 / math.sqrt(2)), abs=1e-14)
     assert got == pytest.approx(0.2615783, abs=1e-7)
 
 
 def test_irf_exp_method_notes_values_tau100_fwhm50():
-    # method notes 7.5 / 2.4 [C]: tau = 100 fs, FWHM = 50 fs at t = -50, 0, 50, 200 fs
+    # method notes 7.5 / 2.4 computed independently (not published): tau = 100 fs, FWHM = 50 fs at t
+    # = -50, 0, 50, 200 fs
     got = exp_decay([-50.0, 0.0, 50.0, 200.0], tau=100.0, irf_fwhm=50.0)
     np.testing.assert_allclose(got, [0.008646, 0.425407, 0.610385, 0.138421], atol=1e-6)
 
@@ -74,7 +76,8 @@ def test_irf_exp_no_overflow_for_extreme_arguments():
 
 
 def test_irf_step_half_at_time_zero():
-    # method notes 2.4: unit step convolved (any sigma) at 0 -> 0.5 [D]
+    # method notes 2.4: unit step convolved (any sigma) at 0 -> 0.5 derived and computed
+    # independently (not published)
     assert float(K.irf_step(np.array(0.0), 7.3)) == pytest.approx(0.5, abs=1e-12)
 
 
@@ -92,7 +95,8 @@ def test_irf_texp_matches_quadrature():
 
 # ------------------------------------------------------------------ sequential model
 def test_sequential_method_notes_values():
-    # method notes 7.5 [C]: tau1 = 50, tau2 = 200 fs; t* = 92.41962 fs, B_max = 4^(-1/3)
+    # method notes 7.5 computed independently (not published): tau1 = 50, tau2 = 200 fs; t* =
+    # 92.41962 fs, B_max = 4^(-1/3)
     tmax, bmax = sequential_maximum(50.0, 200.0)
     assert tmax == pytest.approx(92.41962, abs=1e-5)
     assert bmax == pytest.approx(4 ** (-1 / 3), abs=1e-12)

@@ -25,7 +25,8 @@ def _one_snapshot(ip: float = 4.0, dyson: float = 1.0) -> Ensemble:
 
 
 def test_trpes_single_stick_window_values():
-    # method notes 1.6 row 1, [C]: peak at 1.000 eV, Gamma 0.060832 eV, height 15.4432 eV^-1,
+    # method notes 1.6 row 1, computed independently (not published): peak at 1.000 eV, Gamma
+    # 0.060832 eV, height 15.4432 eV^-1,
     # W(1.03 eV) = 7.86834 eV^-1 (1e-6 rel, analytic)
     e = np.array([1.0, 1.03])
     m = compute_trpes(_one_snapshot(), probe=PROBE, energies=e, delays=[0.0], convolve=False,
@@ -57,7 +58,8 @@ def test_trpes_closed_channel_and_truncation_below_zero():
 
 
 def test_trpes_doorway_factor_table():
-    # method notes 1.6 row 2, [C]: w = (0.0357934, 8.20699e-7); fraction 0.999977 (1e-5 rel)
+    # method notes 1.6 row 2, computed independently (not published): w = (0.0357934, 8.20699e-7);
+    # fraction 0.999977 (1e-5 rel)
     pump = GaussianPulse(photon_energy=4.1, fwhm=20.0)
     assert pump.spectral_fwhm == pytest.approx(0.091248, rel=1e-5)
     w = doorway_factor([4.0, 4.3], pump=pump, transition_dipole=[1.0, 0.5])
@@ -66,7 +68,8 @@ def test_trpes_doorway_factor_table():
 
 
 def test_trpes_doorway_oscillator_form_includes_inverse_gap():
-    # method notes 1.6 row 3, [D]: |mu|^2 = 3 f / (2 dE); f without 1/dE is wrong by 4.3/4.0
+    # method notes 1.6 row 3, derived and computed independently (not published):
+    # |mu|^2 = 3 f / (2 dE); f without 1/dE is wrong by 4.3/4.0
     pump = GaussianPulse(photon_energy=4.1, fwhm=20.0)
     de = np.array([4.0, 4.3])
     f = np.array([0.2, 0.2])
@@ -103,7 +106,8 @@ def _analytic_17(e, tau_d):
     return (0.9 * g15 - 0.8 * g05) * y1 + 0.8 * g05 * yinf
 
 
-TABLE_17 = {  # method notes 1.7, [C]: tau -> (S(1.5 eV), S(0.5 eV)) in eV^-1
+# method notes 1.7, computed independently (not published): tau -> (S(1.5 eV), S(0.5 eV)) in eV^-1
+TABLE_17 = {
     -30.0: (0.6197, 0.0415), 0.0: (6.0533, 0.7966), 100.0: (5.1968, 7.7352),
     300.0: (0.7033, 11.7294),
 }
@@ -127,7 +131,8 @@ def test_trpes_end_to_end_stratified_ensemble():
         exp_05, exp_15 = _analytic_17(np.array([0.5, 1.5]), tau)
         assert m.intensity[i, 1] == pytest.approx(exp_15, rel=3e-3)
         assert m.intensity[i, 0] == pytest.approx(exp_05, rel=3e-3)
-    assert m.params["sigma_cc"] == pytest.approx(18.01684, abs=1e-5)  # method notes 1.7 [C]
+    # sigma_cc: method notes 1.7, computed independently (not published)
+    assert m.params["sigma_cc"] == pytest.approx(18.01684, abs=1e-5)
     np.testing.assert_array_equal(m.alive, 4000.0)
 
 
@@ -150,7 +155,8 @@ def test_trpes_end_to_end_random_toy_ensemble():
 
 
 def test_trpes_area_sum_rule_without_truncation():
-    # method notes 1.6 row 4, [D]: int S dE = sum_n w m sum_k sigma / sum_n w m (1e-12)
+    # method notes 1.6 row 4, derived and computed independently (not published):
+    # int S dE = sum_n w m sum_k sigma / sum_n w m (1e-12)
     ens = random_ensemble(5, seed=3)
     probe = GaussianPulse(photon_energy=9.0, fwhm=30.0)  # all channels open, far above 0 eV
     model = prepare_sticks(ens, probe=probe, weights="uniform", progress=False)
@@ -165,7 +171,8 @@ def test_trpes_area_sum_rule_without_truncation():
 @pytest.mark.parametrize("by", ["neutral", "cation", "pair", "diabatic"])
 @pytest.mark.parametrize("convolve", [True, False])
 def test_trpes_decompositions_sum_to_total(by, convolve):
-    # method notes 1.4 and 4.1, [D]: exact additive decompositions (1e-12)
+    # method notes 1.4 and 4.1, derived and computed independently (not published): exact additive
+    # decompositions (1e-12)
     ens = random_ensemble(6, seed=1)
     kw = dict(probe=PROBE, pump=PUMP, energies=np.linspace(0, 4, 161),
               delays=np.arange(-40, 90, 5.0), convolve=convolve, progress=False)
@@ -192,7 +199,8 @@ def test_trpes_neutral_components_select_states():
 
 
 def test_trpes_doubling_dyson_doubles_map():
-    # method notes 3, [D]: 2x Dyson norms -> 2x map at every point (1e-12)
+    # method notes 3, derived and computed independently (not published): 2x Dyson norms -> 2x map
+    # at every point (1e-12)
     ens = random_ensemble(5, seed=4)
     kw = dict(probe=PROBE, pump=PUMP, energies=np.linspace(0, 4, 121),
               delays=np.arange(-30, 80, 5.0), progress=False)
@@ -257,7 +265,8 @@ def test_trpes_two_photon_probe_width_and_position():
     probe2 = GaussianPulse(photon_energy=2.5, fwhm=30.0, n_photons=2)
     m = compute_trpes(_one_snapshot(), probe=probe2, energies=[1.0], delays=[0.0],
                       convolve=False, progress=False)
-    # Gamma^(2) = 0.086029 eV: method notes 2.4 [D]; peak at 2 * 2.5 - 4.0 = 1.0 eV
+    # Gamma^(2) = 0.086029 eV: method notes 2.4 derived and computed independently (not published);
+    # peak at 2 * 2.5 - 4.0 = 1.0 eV
     assert m.params["fwhm_energy"] == pytest.approx(0.086029, abs=1e-6)
     assert m.intensity[0, 0] == pytest.approx(float(gaussian(1.0, 1.0, 0.0860290)), rel=1e-5)
 
@@ -292,7 +301,8 @@ def test_trpes_input_not_modified():
 
 
 def test_trpes_warns_when_probe_ionises_ground_state():
-    # method notes 1.5 [D]: a ground-state depletion term exists only where n h-nu > IP_00;
+    # method notes 1.5 derived and computed independently (not published): a ground-state depletion
+    # term exists only where n h-nu > IP_00;
     # the toy ensemble has IP(S0 -> D0) = 8.0 eV at every geometry (ensemblelab.testing)
     import warnings
 
