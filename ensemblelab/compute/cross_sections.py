@@ -37,6 +37,7 @@ __all__ = [
     "AnionThresholdLaw",
     "hydrogenic_factor",
     "resolve_cross_section",
+    "cross_section_from_description",
 ]
 
 
@@ -133,8 +134,16 @@ class DysonTimes(CrossSection):
             fac = np.interp(energy, e, v)
         return np.asarray(dyson, dtype=float) * fac
 
-    def describe(self) -> dict[str, Any]:  # noqa: D102
-        return {"model": self.name, "factor": "callable" if callable(self.factor) else "table"}
+    def describe(self) -> dict[str, Any]:
+        """Name and factor; tables are stored in full (energies, values per channel or
+        for ``"all"``) so that :func:`cross_section_from_description` can rebuild them."""
+        f = self.factor
+        if callable(f):
+            return {"model": self.name, "factor": "callable"}
+        tables = f if isinstance(f, Mapping) else {"all": f}
+        return {"model": self.name, "factor": "table",
+                "tables": {str(k): [np.asarray(x, dtype=float).tolist() for x in tab]
+                           for k, tab in tables.items()}}
 
 
 def hydrogenic_factor(energy: npt.ArrayLike, ip: npt.ArrayLike, *,
@@ -235,6 +244,50 @@ _NAMED: dict[str, Callable[[], CrossSection]] = {
     "hydrogenic": HydrogenicPWA,
     "anion-threshold": AnionThresholdLaw,
 }
+
+
+def cross_section_from_description(desc: Mapping[str, Any]) -> CrossSection:
+    """Rebuild a cross-section model from its :meth:`CrossSection.describe` dictionary
+    (as stored in ``TRPESMap.params["cross_section"]``), parameters included.
+
+    Parameters
+    ----------
+    desc : mapping
+        ``{"model": name, ...}``: ``zeta`` (bohr^-1 or None) for ``"hydrogenic"``,
+        ``l`` for ``"anion-threshold"``, ``tables`` for a tabulated ``"dyson-times"``.
+
+    Returns
+    -------
+    CrossSection
+
+    Raises
+    ------
+    SchemaError
+        For a user function or a custom class (code cannot be stored in parameters)
+        and for an unknown or malformed description.
+    """
+    name = desc.get("model", "dyson") if isinstance(desc, Mapping) else None
+    try:
+        if name == "dyson":
+            return DysonNorm()
+        if name == "hydrogenic":
+            z = desc.get("zeta")
+            return HydrogenicPWA(zeta=None if z is None else float(z))
+        if name == "anion-threshold":
+            return AnionThresholdLaw(l=int(desc.get("l", 1)))
+        if name == "dyson-times" and desc.get("factor") == "table":
+            tabs = desc["tables"]
+            if set(tabs) == {"all"}:
+                return DysonTimes(tuple(tabs["all"]))
+            return DysonTimes({int(k): tuple(v) for k, v in tabs.items()})
+    except (KeyError, TypeError, ValueError) as exc:
+        raise SchemaError(f"cross-section description {dict(desc)!r} is malformed ({exc}). "
+                          "Hint: pass the map object returned by compute_trpes.") from exc
+    raise SchemaError(
+        f"the cross section {name!r} cannot be rebuilt from stored parameters (a user "
+        "function or custom model holds code). Hint: pass the map object returned by "
+        "compute_trpes for this ensemble (in memory), or use a table for DysonTimes."
+    )
 
 
 def resolve_cross_section(spec: str | CrossSection | Callable[..., Any]) -> CrossSection:

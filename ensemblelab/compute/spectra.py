@@ -52,7 +52,12 @@ from ..data.spectrum import StickSpectrum, TRPESMap
 from ..errors import EnsembleWarning, SchemaError
 from ..units import HARTREE_EV
 from . import _kernels_trpes as K
-from .cross_sections import CrossSection, _describe, resolve_cross_section
+from .cross_sections import (
+    CrossSection,
+    _describe,
+    cross_section_from_description,
+    resolve_cross_section,
+)
 from .pulses import FWHM_TO_SIGMA, GaussianPulse, cross_correlation_sigma
 
 __all__ = [
@@ -743,21 +748,16 @@ def _model_for(ens: Ensemble, m: TRPESMap) -> TRPESModel:
 
 def _settings_from_params(
     p: dict[str, Any],
-) -> tuple[GaussianPulse, GaussianPulse | None, str, str]:
-    """(probe, pump, cross-section name, weights) that made a map, from its ``params``."""
+) -> tuple[GaussianPulse, GaussianPulse | None, CrossSection, str]:
+    """(probe, pump, cross-section model, weights) that made a map, from its ``params``
+    (the model with its parameters: exponent, partial wave, tables)."""
     try:
         probe = GaussianPulse(**p["probe"])
         pump = GaussianPulse(**p["pump"]) if p.get("pump") else None
-        cs = p.get("cross_section", {}).get("model", "dyson")
     except (KeyError, TypeError) as exc:
         raise SchemaError("trpes_map.params lacks the probe settings; pass a map made by "
                           "compute_trpes.") from exc
-    if cs not in ("dyson", "hydrogenic", "anion-threshold"):
-        raise SchemaError(
-            f"the map was made with a custom cross section ({cs!r}) that cannot be rebuilt "
-            "from its parameters; pass the map object returned by compute_trpes for this "
-            "ensemble (in memory)."
-        )
+    cs = cross_section_from_description(p.get("cross_section") or {"model": "dyson"})
     w = p.get("weights", "doorway")
     weights = ("doorway" if w in ("doorway", "ensemble") else
                "uniform" if w == "uniform" else w.split(":", 1)[-1])

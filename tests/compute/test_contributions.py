@@ -99,6 +99,45 @@ def test_contributions_rebuilds_from_params(ens_and_map):
     np.testing.assert_allclose(a["intensity"].to_numpy(), b["intensity"].to_numpy(), rtol=1e-12)
 
 
+@pytest.mark.parametrize("which", ["hydrogenic-zeta", "anion-s-wave", "table-per-channel",
+                                   "table-all"])
+def test_contributions_rebuild_keeps_cross_section_parameters(ens_and_map, which, tmp_path):
+    # a map saved to disk and loaded back has no cached model; the rebuilt sticks must use
+    # the same cross section *with its parameters* (a default exponent or partial wave gives
+    # other numbers: computed independently (not published), e.g. zeta = 2 vs sqrt(2 IP))
+    from ensemblelab.compute.cross_sections import AnionThresholdLaw, DysonTimes, HydrogenicPWA
+    from ensemblelab.data.spectrum import TRPESMap
+
+    ens, _ = ens_and_map
+    cs = {"hydrogenic-zeta": HydrogenicPWA(zeta=2.0),
+          "anion-s-wave": AnionThresholdLaw(l=0),
+          "table-per-channel": DysonTimes({k: ([0.0, 1.0, 4.0], [0.2 + k, 1.0, 0.5])
+                                           for k in range(3)}),
+          "table-all": DysonTimes(([0.0, 4.0], [1.0, 0.1]))}[which]
+    m = compute_trpes(ens, probe=PROBE, pump=PUMP, energies=np.linspace(0.0, 4.0, 201),
+                      delays=np.arange(-20.0, 60.0, 1.0), cross_section=cs, progress=False)
+    m.save(tmp_path / "m.npz")
+    loaded = TRPESMap.load(tmp_path / "m.npz")
+    kw = dict(energy_range=(0.3, 2.5), delay_range=(0.0, 40.0))
+    a = contributions(ens, m, **kw)
+    b = contributions(ens, loaded, **kw)
+    assert a.attrs["total"] > 0
+    assert b.attrs["total"] == pytest.approx(a.attrs["total"], rel=1e-12)
+    np.testing.assert_allclose(b["intensity"].to_numpy(), a["intensity"].to_numpy(),
+                               rtol=1e-12, atol=0)
+
+
+def test_contributions_rebuild_refuses_a_user_function(ens_and_map):
+    ens, _ = ens_and_map
+    m = compute_trpes(ens, probe=PROBE, pump=PUMP, energies=np.linspace(0.0, 4.0, 101),
+                      delays=np.arange(-20.0, 60.0, 2.0), progress=False,
+                      cross_section=lambda e, ch: 1.0 + 0.0 * e)
+    fresh = type(m)(energies=m.energies, delays=m.delays, intensity=m.intensity,
+                    alive=m.alive, params=m.params)
+    with pytest.raises(SchemaError, match="cannot be rebuilt"):
+        contributions(ens, fresh, energy_range=(0.5, 2.0), delay_range=(0.0, 30.0))
+
+
 def test_contributions_top_keeps_strongest_rows_and_region_total():
     # the top-N view must be the head of the full sorted table (computed independently
     # from the full table, not published)
