@@ -368,6 +368,7 @@ def _trpes_chunk(path: str, index: int, opts: Mapping[str, Any]) -> dict[str, An
     start, dt, n_time = opts["start"], opts["dt"], opts["n_time"]
     j, frac = _bins(ens.snapshots["time"].to_numpy(), start, dt)
     alive = K.deposit_counts(j, w_traj[ens.traj_index], n_time=n_time, tfrac=frac)
+    count = K.deposit_counts(j, np.ones(j.size), n_time=n_time, tfrac=frac)
     sticks = model.sticks
     tb = j[sticks.snapshot]
     tf = None if frac is None else frac[sticks.snapshot]
@@ -382,7 +383,7 @@ def _trpes_chunk(path: str, index: int, opts: Mapping[str, Any]) -> dict[str, An
             tb if src is None else tb[src], sticks.energy if src is None else sticks.energy[src],
             ww, comp=model.comp, n_comp=len(model.labels),
             tfrac=None if tf is None else (tf if src is None else tf[src]), **grid)
-    return {"alive": alive, "hist": hist, "hist_comp": hist_comp,
+    return {"alive": alive, "alive_count": count, "hist": hist, "hist_comp": hist_comp,
             "n_sticks": np.int64(sticks.n_sticks), "total_weight": np.array(float(w_traj.sum()))}
 
 
@@ -409,6 +410,7 @@ def _trpes_chunk_fast(path: str, sub: Mapping[str, Any], opts: Mapping[str, Any]
     start, dt, n_time = opts["start"], opts["dt"], opts["n_time"]
     j, frac = _bins(view.snapshots["time"].to_numpy(), start, dt)
     alive = K.deposit_counts(j, w_snap, n_time=n_time, tfrac=frac)
+    count = K.deposit_counts(j, np.ones(j.size), n_time=n_time, tfrac=frac)
     active = view.snapshots["active"].to_numpy()
     e_neutral = view.energies[np.arange(view.n_snapshots), active]
     ip = view.cation_energies - e_neutral[:, None]
@@ -436,7 +438,7 @@ def _trpes_chunk_fast(path: str, sub: Mapping[str, Any], opts: Mapping[str, Any]
                 "pair": lambda: active[snap] * n_cat + chan}[by]()
         hist_comp = K.deposit_moments(tb, energy, weight, comp=comp, n_comp=opts["n_comp"],
                                       **grid)
-    return {"alive": alive, "hist": hist, "hist_comp": hist_comp,
+    return {"alive": alive, "alive_count": count, "hist": hist, "hist_comp": hist_comp,
             "n_sticks": np.int64(snap.size), "total_weight": np.array(float(w_traj.sum()))}
 
 
@@ -568,7 +570,8 @@ def compute_trpes(
     model = TRPESModel(
         sticks=sticks, probe=probe, by=by, labels=labels, grid_start=opts["start"],
         time_step=opts["dt"], n_time=opts["n_time"], alive=wsum["alive"],
-        total_weight=float(wsum["total_weight"]), t_known=float(opts["t_known"]),
+        alive_count=wsum.get("alive_count"), total_weight=float(wsum["total_weight"]),
+        t_known=float(opts["t_known"]),
         tbin=empty.astype(np.int64), tfrac=None,
         info={"cross_section": _describe(cs), "weights": weights_used, "n_sticks": n_sticks,
               "n_snapshots": lz.n_snapshots, "n_trajectories": lz.n_trajectories,

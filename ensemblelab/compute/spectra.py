@@ -265,6 +265,7 @@ class TRPESModel:
     info: dict[str, Any] = field(default_factory=dict)
     order: int = DEFAULT_ORDER
     bins_per_fwhm: float = DEFAULT_BINS_PER_FWHM
+    alive_count: np.ndarray | None = None  # trajectories alive per grid time (unweighted)
     ens_id: int = 0
     n_snapshots: int = 0
     _cache: dict[str, Any] = field(default_factory=dict)
@@ -404,8 +405,10 @@ class TRPESModel:
         if hist_comp is not None:
             comps = K.assemble(hist_comp, bmat, cmat)
             components = {lab: comps[i] for i, lab in enumerate(self.labels)}
-        alive = np.interp(np.clip(delays, self.grid_start, None), self.times, self.alive,
-                          right=0.0)
+        t_clip = np.clip(delays, self.grid_start, None)
+        alive = np.interp(t_clip, self.times, self.alive, right=0.0)
+        count = (None if self.alive_count is None else
+                 np.interp(t_clip, self.times, self.alive_count, right=0.0))
         params = dict(self.info)
         params.pop("progress", None)
         params.update(
@@ -427,7 +430,7 @@ class TRPESModel:
             energy_truncation="point-sampled; no signal below 0 eV (area below 0 discarded)",
         )
         m = TRPESMap(energies=energies, delays=delays, intensity=total, components=components,
-                     alive=alive, params=params)
+                     alive=alive, alive_count=count, params=params)
         object.__setattr__(m, "_model", self)
         return m
 
@@ -535,6 +538,7 @@ def prepare_sticks(
     w_snap = w_traj[tix]
     start, dt, tbin_snap, tfrac_snap, n_time = _time_grid(ens, time_step)
     alive = K.deposit_counts(tbin_snap, w_snap, n_time=n_time, tfrac=tfrac_snap)
+    alive_count = K.deposit_counts(tbin_snap, np.ones(n), n_time=n_time, tfrac=tfrac_snap)
     active = ens.snapshots["active"].to_numpy()
     rows = np.arange(n)
     e_neutral = ens.energies[rows, active]
@@ -595,7 +599,7 @@ def prepare_sticks(
         comp_weight = sticks.weight[comp_src] * frac[comp_src, comp]
     model = TRPESModel(
         sticks=sticks, probe=probe, by=by, labels=labels, grid_start=start, time_step=dt,
-        n_time=n_time, alive=alive, total_weight=float(w_traj.sum()),
+        n_time=n_time, alive=alive, alive_count=alive_count, total_weight=float(w_traj.sum()),
         t_known=float(time.max()) if n else 0.0,
         tbin=tbin_snap[snap], tfrac=None if tfrac_snap is None else tfrac_snap[snap],
         comp=comp, comp_src=comp_src, comp_weight=comp_weight,

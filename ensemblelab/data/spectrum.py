@@ -80,7 +80,11 @@ class TRPESMap:
         labels such as ``"S1"``, ``"D0"``, ``"S1->D0"``.
     alive : ndarray, shape (n_delays,)
         Alive trajectory weight (count for unit weights) behind each delay of the
-        pure signal, interpolated to the delay grid.
+        pure signal, interpolated to the delay grid: the normaliser of
+        ``normalise="alive"``.
+    alive_count : ndarray, shape (n_delays,)
+        Number of trajectories alive at each delay of the pure signal (whatever their
+        weights), interpolated to the delay grid; NaN where unknown.
     params : dict
         The parameters used (JSON-serialisable).
 
@@ -101,6 +105,7 @@ class TRPESMap:
     components: dict[str, np.ndarray] = field(default_factory=dict)
     alive: np.ndarray | None = None
     params: dict[str, Any] = field(default_factory=dict)
+    alive_count: np.ndarray | None = None
 
     def __post_init__(self) -> None:
         set_ = object.__setattr__
@@ -128,11 +133,17 @@ class TRPESMap:
         if alive.shape != (d.size,):
             raise SchemaError(f"alive must have shape (n_delays={d.size},); got {alive.shape}.")
         alive = _ro(alive, "alive")
+        count = (np.full(d.size, np.nan) if self.alive_count is None
+                 else _ro(self.alive_count, "alive_count", ndim=1))
+        if count.shape != (d.size,):
+            raise SchemaError(f"alive_count must have shape (n_delays={d.size},); got "
+                              f"{count.shape}.")
         set_(self, "energies", e)
         set_(self, "delays", d)
         set_(self, "intensity", inten)
         set_(self, "components", comps)
         set_(self, "alive", alive)
+        set_(self, "alive_count", count)
         set_(self, "params", _json_safe(dict(self.params)))
 
     # ------------------------------------------------------------------ basics
@@ -176,8 +187,9 @@ class TRPESMap:
         -------
         DataFrame
             Columns ``component`` (``"total"`` then each component label),
-            ``delay`` (fs), ``energy`` (eV), ``intensity`` (eV^-1) and ``alive``;
-            one row per (component, delay, energy), delay-major.
+            ``delay`` (fs), ``energy`` (eV), ``intensity`` (eV^-1), ``alive``
+            (weight) and ``alive_count``; one row per (component, delay, energy),
+            delay-major.
         """
         blocks = [("total", self.intensity)]
         if components:
@@ -186,9 +198,11 @@ class TRPESMap:
         delay = np.repeat(self.delays, ne)
         energy = np.tile(self.energies, nd)
         alive = np.repeat(self.alive, ne)
+        count = np.repeat(self.alive_count, ne)
         frames = [
             pd.DataFrame({"component": label, "delay": delay, "energy": energy,
-                          "intensity": arr.reshape(-1), "alive": alive})
+                          "intensity": arr.reshape(-1), "alive": alive,
+                          "alive_count": count})
             for label, arr in blocks
         ]
         out = pd.concat(frames, ignore_index=True)
@@ -200,13 +214,14 @@ class TRPESMap:
         """Write the map atomically as ``.npz`` (everything) or ``.csv`` (total only).
 
         NPZ keys: ``format``, ``energies``, ``delays``, ``intensity``, ``alive``,
-        ``component_labels`` (unicode array), ``components`` (n_components,
+        ``alive_count``, ``component_labels`` (unicode array), ``components`` (n_components,
         n_delays, n_energies) and ``params`` (a JSON string). Written without
         pickles, read back with ``allow_pickle=False``.
 
         CSV: comment lines ``# ensemblelab-trpes-map-v1``, ``# params: {json}``,
-        ``# alive: v1,v2,...``; then a grid whose first row is ``delay_fs`` followed
-        by the kinetic energies (eV) and whose first column holds the delays (fs).
+        ``# alive: v1,v2,...``, ``# alive_count: n1,n2,...``; then a grid whose first
+        row is ``delay_fs`` followed by the kinetic energies (eV) and whose first column
+        holds the delays (fs).
         The same grid layout is read by :func:`ensemblelab.io.maps.load_measured_map`.
 
         Parameters
@@ -239,6 +254,7 @@ class TRPESMap:
                 delays=self.delays,
                 intensity=self.intensity,
                 alive=self.alive,
+                alive_count=self.alive_count,
                 component_labels=np.array(labels, dtype=np.str_),
                 components=comps,
                 params=np.array(json.dumps(self.params)),
@@ -249,6 +265,7 @@ class TRPESMap:
             f"# {TRPES_FORMAT}",
             f"# params: {json.dumps(self.params)}",
             "# alive: " + ",".join(repr(float(a)) for a in self.alive),
+            "# alive_count: " + ",".join(repr(float(a)) for a in self.alive_count),
             "delay_fs," + ",".join(repr(float(e)) for e in self.energies),
         ]
         for d, row in zip(self.delays, self.intensity, strict=True):
@@ -283,10 +300,11 @@ class TRPESMap:
             return cls(energies=data["energies"], delays=data["delays"],
                        intensity=data["intensity"],
                        components={lab: comps[i] for i, lab in enumerate(labels)},
-                       alive=data.get("alive"), params=params)
+                       alive=data.get("alive"), alive_count=data.get("alive_count"),
+                       params=params)
         text = path.read_text()
         params: dict[str, Any] = {}
-        alive = None
+        alive = count = None
         rows: list[list[float]] = []
         header: list[float] | None = None
         for lineno, line in enumerate(text.splitlines(), start=1):
@@ -299,6 +317,9 @@ class TRPESMap:
                     params = json.loads(body[len("params:"):])
                 elif body.startswith("alive:"):
                     alive = [float(x) for x in body[len("alive:"):].split(",") if x.strip()]
+                elif body.startswith("alive_count:"):
+                    count = [float(x) for x in body[len("alive_count:"):].split(",")
+                             if x.strip()]
                 continue
             cells = s.split(",")
             try:
@@ -312,7 +333,8 @@ class TRPESMap:
             raise ParseError("no grid found", path=path, hint="expected a header row of energies")
         grid = np.array(rows)
         return cls(energies=np.array(header), delays=grid[:, 0], intensity=grid[:, 1:],
-                   alive=None if alive is None else np.array(alive), params=params)
+                   alive=None if alive is None else np.array(alive),
+                   alive_count=None if count is None else np.array(count), params=params)
 
     # ------------------------------------------------------------------ display
     def __repr__(self) -> str:

@@ -114,8 +114,12 @@ def test_demo_measured_map_regenerates_identically_and_is_found():
 
     committed = Path(DEFAULT_PATH)
     assert committed.is_file()
-    regenerated = measured_map_text(make_measured_map())
+    made = make_measured_map()
+    regenerated = measured_map_text(made)
     assert regenerated == committed.read_text()
+    # labelled as invented in the file itself and in the generated map's parameters
+    assert committed.read_text().startswith("# INVENTED demo data, not a measurement")
+    assert made.params["invented"] is True
     meas = load_measured_map(committed)
     # the unperturbed demo model, compared with the invented measurement: the fit finds the
     # injected time zero (+8 fs) and the 0.1 eV lower band positions (computed

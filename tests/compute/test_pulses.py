@@ -97,3 +97,19 @@ def test_pulse_rejects_bad_fwhm(bad):
 def test_pulse_rejects_bad_n_photons():
     with pytest.raises(SchemaError, match="n_photons"):
         GaussianPulse(photon_energy=5.0, fwhm=30.0, n_photons=0)
+
+
+def test_cross_correlation_with_a_two_photon_probe():
+    # an n-photon probe acts with intensity^n: its temporal FWHM shrinks by sqrt(n), so
+    # T_cc = sqrt(T_pu^2 + T_pr^2 / n) = sqrt(30^2 + 40^2 / 2) = 41.231056 fs (method notes
+    # 2.2; derived and computed independently (not published))
+    pump = GaussianPulse(photon_energy=4.0, fwhm=30.0)
+    probe = GaussianPulse(photon_energy=2.5, fwhm=40.0, n_photons=2)
+    assert cross_correlation_fwhm(pump, probe) == pytest.approx(41.231056, abs=1e-6)
+    one = GaussianPulse(photon_energy=5.0, fwhm=40.0)
+    assert cross_correlation_fwhm(pump, one) == pytest.approx(50.0, abs=1e-12)
+    d = np.linspace(-300.0, 300.0, 60001)
+    g = cross_correlation(pump, probe, d)
+    assert np.trapezoid(g, d) == pytest.approx(1.0, abs=1e-9)
+    half = d[g >= g.max() / 2]
+    assert half[-1] - half[0] == pytest.approx(41.231056, abs=0.02)

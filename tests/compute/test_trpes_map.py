@@ -14,7 +14,8 @@ def _map():
     return TRPESMap(energies=np.linspace(0, 3, 7), delays=np.array([-10.0, 0.0, 25.5]),
                     intensity=rng.uniform(size=(3, 7)),
                     components={"S1": rng.uniform(size=(3, 7)), "S2": rng.uniform(size=(3, 7))},
-                    alive=np.array([5.0, 5.0, 4.0]), params={"probe": {"fwhm": 30.0}})
+                    alive=np.array([5.0, 5.0, 4.0]), alive_count=np.array([6.0, 6.0, 4.5]),
+                    params={"probe": {"fwhm": 30.0}})
 
 
 def test_trpes_map_arrays_are_read_only():
@@ -33,6 +34,7 @@ def test_trpes_map_round_trip(tmp_path, suffix):
     np.testing.assert_array_equal(back.energies, m.energies)
     np.testing.assert_array_equal(back.delays, m.delays)
     np.testing.assert_array_equal(back.alive, m.alive)
+    np.testing.assert_array_equal(back.alive_count, m.alive_count)
     assert back.params == m.params
     if suffix == ".npz":
         assert set(back.components) == {"S1", "S2"}
@@ -44,7 +46,8 @@ def test_trpes_map_round_trip(tmp_path, suffix):
 def test_trpes_map_to_frame_is_tidy():
     m = _map()
     df = m.to_frame()
-    assert list(df.columns) == ["component", "delay", "energy", "intensity", "alive"]
+    assert list(df.columns) == ["component", "delay", "energy", "intensity", "alive",
+                                "alive_count"]
     assert len(df) == 3 * 3 * 7
     total = df[df.component == "total"].pivot(index="delay", columns="energy",
                                               values="intensity")
