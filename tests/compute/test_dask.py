@@ -59,6 +59,8 @@ def test_lazy_trpes_equals_in_memory(pair, by):
     got = compute_trpes(lazy, by=by, **KW)
     _close(got.intensity, ref.intensity)
     _close(got.alive, ref.alive)
+    assert np.all(np.isfinite(ref.alive_count))
+    _close(got.alive_count, ref.alive_count)
     assert sorted(got.components) == sorted(ref.components)
     for k in ref.components:
         _close(got.components[k], ref.components[k])
