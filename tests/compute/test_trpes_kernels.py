@@ -298,3 +298,35 @@ def test_kernel_numba_concurrent_calls_share_the_pool_safely():
                                      inputs))
             for a, b in zip(alone, together, strict=True):
                 np.testing.assert_array_equal(a, b)
+
+
+@pytest.mark.parametrize("backend", ["numpy", "numba"])
+def test_deposit_memory_does_not_grow_with_the_number_of_sticks(backend):
+    # bounded (chunked) memory: the extra peak allocation of a deposit is the accumulator
+    # plus chunk buffers, the same for 4x more sticks (common practice: a streaming
+    # reduction holds O(chunk), not O(n))
+    import tracemalloc
+
+    if backend == "numba" and not K.numba_available():
+        pytest.skip("numba not installed")
+    n_time, n_fine, order = 200, 150, 8
+    peaks = []
+    for n in (500_000, 2_000_000):
+        rng = np.random.default_rng(0)
+        tb = rng.integers(0, n_time, n)
+        e = rng.uniform(0.1, 0.9 * n_fine * 0.01, n)
+        w = rng.uniform(0.0, 1.0, n)
+        K.deposit_moments(tb[:1000], e[:1000], w[:1000], n_time=n_time, e_lo=0.0, h=0.01,
+                          n_fine=n_fine, order=order, backend=backend)  # compile, fill pool
+        K._scratch_give([])
+        tracemalloc.start()
+        hist = K.deposit_moments(tb, e, w, n_time=n_time, e_lo=0.0, h=0.01, n_fine=n_fine,
+                                 order=order, backend=backend)
+        peaks.append(tracemalloc.get_traced_memory()[1])
+        tracemalloc.stop()
+        del hist
+    acc = n_time * n_fine * order * 8
+    input_bytes = 2_000_000 * 24
+    per_thread = K._usable_cores() * acc  # more sticks may start more threads
+    assert peaks[1] - peaks[0] < 0.05 * input_bytes + per_thread, (peaks, acc)
+    assert peaks[1] < 2 * acc + per_thread + 0.25 * input_bytes, (peaks, acc)
