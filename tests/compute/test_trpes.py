@@ -10,7 +10,7 @@ import pytest
 from scipy.special import erfcx
 from test_trpes_fixtures import random_ensemble, stratified_decay
 
-from ensemblelab.compute.pulses import GaussianPulse, gaussian
+from ensemblelab.compute.pulses import GaussianPulse, cross_correlation_fwhm, gaussian
 from ensemblelab.compute.spectra import compute_trpes, doorway_factor, prepare_sticks
 from ensemblelab.data.ensemble import Ensemble
 from ensemblelab.errors import SchemaError
@@ -132,7 +132,10 @@ def test_trpes_end_to_end_stratified_ensemble():
         exp_05, exp_15 = _analytic_17(np.array([0.5, 1.5]), tau)
         assert m.intensity[i, 1] == pytest.approx(exp_15, rel=3e-3)
         assert m.intensity[i, 0] == pytest.approx(exp_05, rel=3e-3)
-    # sigma_cc: method notes 1.7, computed independently (not published)
+    # T_cc and sigma_cc: method notes 1.7, computed independently (not published)
+    assert cross_correlation_fwhm(GaussianPulse(**m.params["pump"]),
+                                  GaussianPulse(**m.params["probe"])) == pytest.approx(
+        42.42641, abs=1e-5)
     assert m.params["sigma_cc"] == pytest.approx(18.01684, abs=1e-5)
     np.testing.assert_array_equal(m.alive, 4000.0)
 
