@@ -16,7 +16,9 @@ character of adiabatic state i on diabat alpha is ``A[i, alpha]**2``.
   ``4 theta = atan2(2 a.b, a.a - b.b)`` (a = mu11 - mu22, b = 2 mu12), the generalised
   Mulliken-Hush angle when mu12 is parallel to mu11 - mu22 (:func:`gmh_two_state`).
 * :func:`ensemble_adt` -- ADT matrices for every snapshot of an Ensemble from its
-  ``overlaps`` (step or reference kind), ready for ``ens.replace(adt=...)``.
+  ``overlaps`` (step or reference kind) or from dipole matrices (Boys, with the state
+  order and signs kept continuous along each trajectory), ready for
+  ``ens.replace(adt=...)``.
 """
 
 from __future__ import annotations
@@ -262,34 +264,52 @@ def diabatic_hamiltonian(energies: npt.ArrayLike, adt: npt.ArrayLike) -> np.ndar
 
 
 def ensemble_adt(ens: Ensemble, *, kind: str = "step",
-                 warn_below: float = SMALL_SINGULAR_VALUE) -> np.ndarray:
-    """ADT matrices for every snapshot of `ens` from ``ens.overlaps``.
+                 warn_below: float = SMALL_SINGULAR_VALUE,
+                 dipoles: npt.ArrayLike | None = None, progress: bool = True) -> np.ndarray:
+    """ADT matrices for every snapshot of `ens`, from ``ens.overlaps`` or dipole matrices.
 
     Parameters
     ----------
     ens : Ensemble
-        With ``overlaps`` (n_snapshots, n_states, n_states).
-    kind : {"step", "reference"}
+        With ``overlaps`` (n_snapshots, n_states, n_states) for the overlap kinds.
+    kind : {"step", "reference", "boys"}
         ``"step"``: overlaps with the previous step of the same trajectory (row 0 of
         each trajectory ignored; local diabatisation from the identity).
         ``"reference"``: overlaps with fixed reference-geometry states (Loewdin per
         snapshot).
+        ``"boys"``: Boys localisation of `dipoles` per snapshot. The order of the
+        Boys states (free in each snapshot) is kept along each trajectory: at its
+        first snapshot each diabat takes the place of the adiabatic state it resembles
+        most, later the place of the previous snapshot's diabat with the nearest state
+        dipole (a linear assignment; diabatic dipoles vary smoothly, adiabatic states
+        need not). Signs are a convention (each column's largest element positive):
+        dipoles alone cannot fix them, and the diabatic characters ``A**2`` that
+        ``compute_trpes(by="diabatic")`` uses do not depend on them.
     warn_below : float
         See :func:`loewdin`.
+    dipoles : array_like, shape (n_snapshots, n_states, n_states, 3), optional
+        Adiabatic dipole matrices (state dipoles on the diagonal, transition dipoles
+        off it; any consistent unit) for ``kind="boys"``.
+    progress : bool
+        Progress bar for ``kind="boys"`` (one Jacobi localisation per snapshot).
 
     Returns
     -------
     ndarray, shape (n_snapshots, n_states, n_states)
         Use as ``ens.replace(adt=...)``.
     """
+    if kind == "boys":
+        return _ensemble_boys(ens, dipoles, progress=progress)
     if ens.overlaps is None:
         raise SchemaError("ens has no overlaps; the ADT cannot be built from overlaps. Hint: "
-                          "use boys_rotation with dipole matrices instead.")
+                          "use ensemble_adt(ens, kind='boys', dipoles=...) with dipole "
+                          "matrices instead.")
     o = ens.overlaps
     if kind == "reference":
         return loewdin(o, warn_below=warn_below)
     if kind != "step":
-        raise SchemaError(f"The 'kind' parameter must be 'step' or 'reference'. Got {kind!r}.")
+        raise SchemaError(f"The 'kind' parameter must be 'step', 'reference' or 'boys'. Got "
+                          f"{kind!r}.")
     t = loewdin(o, warn_below=warn_below)
     traj = ens.snapshots["traj"].to_numpy()
     out = np.empty_like(o)
@@ -299,4 +319,54 @@ def ensemble_adt(ens: Ensemble, *, kind: str = "step",
             out[k] = np.eye(n)
         else:
             out[k] = t[k].T @ out[k - 1]
+    return out
+
+
+def _boys_order(prev_dip: np.ndarray | None, r: np.ndarray, mu: np.ndarray) -> np.ndarray:
+    """Columns of the Boys rotation `r` of dipole matrix `mu`, ordered to follow
+    `prev_dip` (the previous snapshot's diabatic state dipoles, shape (n, 3)) by a
+    linear assignment on their distances, or, without one, each diabat on the
+    adiabatic state it resembles most; then signed so that each column's largest
+    element is positive."""
+    from scipy.optimize import linear_sum_assignment
+
+    if prev_dip is None:
+        cost = -np.abs(r)  # cost[i, beta]: diabat beta on adiabatic state i
+    else:
+        dip = np.einsum("ib,ijx,jb->bx", r, mu, r)
+        cost = ((prev_dip[:, None, :] - dip[None, :, :]) ** 2).sum(axis=2)
+    rows, cols = linear_sum_assignment(cost)
+    out = r[:, cols[np.argsort(rows)]]
+    big = out[np.argmax(np.abs(out), axis=0), np.arange(out.shape[1])]
+    return out * np.where(big < 0, -1.0, 1.0)
+
+
+def _ensemble_boys(ens: Ensemble, dipoles: npt.ArrayLike | None, *,
+                   progress: bool) -> np.ndarray:
+    from tqdm.auto import tqdm
+
+    if dipoles is None:
+        raise SchemaError("kind='boys' needs dipoles, shape (n_snapshots, n_states, n_states, "
+                          "3). Hint: pass the adiabatic dipole matrices of every snapshot.")
+    mu = np.asarray(dipoles, dtype=float)
+    n, ns = ens.n_snapshots, ens.n_states
+    if mu.shape != (n, ns, ns, 3):
+        raise SchemaError(f"dipoles must have shape (n_snapshots, n_states, n_states, 3) = "
+                          f"{(n, ns, ns, 3)}; got {mu.shape}.")
+    if not np.all(np.isfinite(mu)):
+        bad = int(np.flatnonzero(~np.isfinite(mu).reshape(n, -1).all(axis=1))[0])
+        raise SchemaError(f"dipoles of snapshot {bad} are not finite. Hint: fix or drop that "
+                          "snapshot first.")
+    traj = ens.snapshots["traj"].to_numpy()
+    out = np.empty((n, ns, ns))
+    prev = None
+    for k in tqdm(range(n), desc="Boys localisation", disable=not progress or n < 2000):
+        try:
+            r, _ = boys_rotation(mu[k])
+        except SchemaError as exc:
+            raise SchemaError(f"dipoles of snapshot {k}: {exc}") from exc
+        if k == 0 or traj[k] != traj[k - 1]:
+            prev = None
+        out[k] = _boys_order(prev, r, mu[k])
+        prev = np.einsum("ib,ijx,jb->bx", out[k], mu[k], out[k])
     return out

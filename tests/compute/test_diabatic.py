@@ -20,7 +20,7 @@ from ensemblelab.compute.diabatic import (
     propagate_adt,
 )
 from ensemblelab.data.ensemble import Ensemble
-from ensemblelab.errors import NumericalWarning
+from ensemblelab.errors import NumericalWarning, SchemaError
 
 
 def test_loewdin_table_value():
@@ -389,3 +389,37 @@ def test_boys_and_gmh_reproduce_demo_model_two_state_block(demo_adt):
         assert g.coupling == pytest.approx(abs(hd[k, 0, 1]), abs=1e-10)
         np.testing.assert_allclose(np.sort(np.diag(g.hamiltonian)), np.sort(np.diag(hd[k])),
                                    atol=1e-10)
+
+
+def test_ensemble_boys_adt_follows_the_demo_model_along_each_trajectory(demo_adt):
+    # ensemble_adt(kind="boys") localises every snapshot and keeps the order of the Boys
+    # states along each trajectory: with the invented diagonal diabatic dipoles above,
+    # each trajectory's diabatic characters must be (U(t) P)**2 with ONE permutation P for
+    # all its snapshots, and each column's largest element is positive (the documented
+    # sign convention) (derived and computed independently (not published), 1e-9).
+    from ensemblelab.compute.diabatic import ensemble_adt
+
+    ens, u = demo_adt
+    mu_d = np.zeros((3, 3, 3))
+    mu_d[np.arange(3), np.arange(3)] = _DEMO_DIABATIC_DIPOLES
+    mu = np.stack([_adiabatic_dipoles(u[k], mu_d) for k in range(u.shape[0])])
+    a = ensemble_adt(ens, kind="boys", dipoles=mu, progress=False)
+    traj = ens.snapshots["traj"].to_numpy()
+    for t in np.unique(traj):
+        rows = np.flatnonzero(traj == t)
+        p = np.round(np.abs(u[rows[0]].T @ a[rows[0]]))
+        assert sorted(p.argmax(axis=0)) == [0, 1, 2]  # a permutation
+        np.testing.assert_allclose(a[rows] ** 2, (u[rows] @ p) ** 2, atol=1e-9)
+        np.testing.assert_allclose(np.abs(a[rows]), np.abs(u[rows] @ p), atol=1e-9)
+    big = np.take_along_axis(a, np.abs(a).argmax(axis=1)[:, None, :], axis=1)
+    assert np.all(big > 0)
+    # without the ordering step the Boys order jumps between snapshots (so the check
+    # above can fail): the raw characters are not (U(t) P)**2 for one P
+    rows = np.flatnonzero(traj == traj[0])
+    raw = np.stack([boys_rotation(mu[k])[0] for k in rows])
+    p0 = np.round(np.abs(u[rows[0]].T @ raw[0]))
+    assert np.abs(raw**2 - (u[rows] @ p0) ** 2).max() > 0.5
+    with pytest.raises(SchemaError, match="dipoles"):
+        ensemble_adt(ens, kind="boys")
+    with pytest.raises(SchemaError, match="shape"):
+        ensemble_adt(ens, kind="boys", dipoles=mu[:, :2, :2])
