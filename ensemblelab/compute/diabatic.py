@@ -310,12 +310,16 @@ def ensemble_adt(ens: Ensemble, *, kind: str = "step",
     if kind != "step":
         raise SchemaError(f"The 'kind' parameter must be 'step', 'reference' or 'boys'. Got "
                           f"{kind!r}.")
-    t = loewdin(o, warn_below=warn_below)
     traj = ens.snapshots["traj"].to_numpy()
+    first = np.ones(traj.size, dtype=bool)
+    first[1:] = traj[1:] != traj[:-1]
+    t = np.empty_like(o)
+    if np.any(~first):  # a trajectory's first row has no previous step: not used
+        t[~first] = loewdin(o[~first], warn_below=warn_below)
     out = np.empty_like(o)
     n = o.shape[1]
     for k in range(o.shape[0]):
-        if k == 0 or traj[k] != traj[k - 1]:
+        if first[k]:
             out[k] = np.eye(n)
         else:
             out[k] = t[k].T @ out[k - 1]

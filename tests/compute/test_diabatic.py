@@ -155,6 +155,13 @@ def test_ensemble_adt_from_step_and_reference_overlaps():
                 symbols=["H"], energies=np.zeros((n_steps, n)))
     ens = Ensemble.from_arrays(overlaps=step, **base)
     np.testing.assert_allclose(ensemble_adt(ens), exact, atol=1e-12)
+    # a trajectory's first row has no previous step: zeros there are ignored, not warned on
+    step0 = step.copy()
+    step0[0] = 0.0
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        got = ensemble_adt(Ensemble.from_arrays(overlaps=step0, **base))
+    np.testing.assert_allclose(got, exact, atol=1e-12)
     ref = Ensemble.from_arrays(overlaps=exact * 0.9, **base)  # scaled: Loewdin removes it
     np.testing.assert_allclose(ensemble_adt(ref, kind="reference"), exact, atol=1e-12)
 
