@@ -17,8 +17,7 @@ character of adiabatic state i on diabat alpha is ``A[i, alpha]**2``.
   Mulliken-Hush angle when mu12 is parallel to mu11 - mu22 (:func:`gmh_two_state`).
 * :func:`ensemble_adt` -- ADT matrices for every snapshot of an Ensemble from its
   ``overlaps`` (step or reference kind) or from dipole matrices (Boys, with the state
-  order and signs kept continuous along each trajectory), ready for
-  ``ens.replace(adt=...)``.
+  order kept along each trajectory), ready for ``ens.replace(adt=...)``.
 """
 
 from __future__ import annotations
@@ -310,9 +309,7 @@ def ensemble_adt(ens: Ensemble, *, kind: str = "step",
     if kind != "step":
         raise SchemaError(f"The 'kind' parameter must be 'step', 'reference' or 'boys'. Got "
                           f"{kind!r}.")
-    traj = ens.snapshots["traj"].to_numpy()
-    first = np.ones(traj.size, dtype=bool)
-    first[1:] = traj[1:] != traj[:-1]
+    first = _first_rows(ens)
     t = np.empty_like(o)
     if np.any(~first):  # a trajectory's first row has no previous step: not used
         t[~first] = loewdin(o[~first], warn_below=warn_below)
@@ -326,23 +323,33 @@ def ensemble_adt(ens: Ensemble, *, kind: str = "step",
     return out
 
 
-def _boys_order(prev_dip: np.ndarray | None, r: np.ndarray, mu: np.ndarray) -> np.ndarray:
+def _first_rows(ens: Ensemble) -> np.ndarray:
+    """(n_snapshots,) bool: the snapshot starts its trajectory."""
+    traj = ens.snapshots["traj"].to_numpy()
+    first = np.ones(traj.size, dtype=bool)
+    first[1:] = traj[1:] != traj[:-1]
+    return first
+
+
+def _boys_order(prev_dip: np.ndarray | None, r: np.ndarray, mu: np.ndarray
+                ) -> tuple[np.ndarray, np.ndarray]:
     """Columns of the Boys rotation `r` of dipole matrix `mu`, ordered to follow
     `prev_dip` (the previous snapshot's diabatic state dipoles, shape (n, 3)) by a
     linear assignment on their distances, or, without one, each diabat on the
     adiabatic state it resembles most; then signed so that each column's largest
-    element is positive."""
+    element is positive. Returns the ordered rotation and its state dipoles (n, 3)."""
     from scipy.optimize import linear_sum_assignment
 
+    dip = np.einsum("ib,ijx,jb->bx", r, mu, r)  # sign-independent
     if prev_dip is None:
         cost = -np.abs(r)  # cost[i, beta]: diabat beta on adiabatic state i
     else:
-        dip = np.einsum("ib,ijx,jb->bx", r, mu, r)
         cost = ((prev_dip[:, None, :] - dip[None, :, :]) ** 2).sum(axis=2)
     rows, cols = linear_sum_assignment(cost)
-    out = r[:, cols[np.argsort(rows)]]
+    pick = cols[np.argsort(rows)]
+    out = r[:, pick]
     big = out[np.argmax(np.abs(out), axis=0), np.arange(out.shape[1])]
-    return out * np.where(big < 0, -1.0, 1.0)
+    return out * np.where(big < 0, -1.0, 1.0), dip[pick]
 
 
 def _ensemble_boys(ens: Ensemble, dipoles: npt.ArrayLike | None, *,
@@ -361,7 +368,7 @@ def _ensemble_boys(ens: Ensemble, dipoles: npt.ArrayLike | None, *,
         bad = int(np.flatnonzero(~np.isfinite(mu).reshape(n, -1).all(axis=1))[0])
         raise SchemaError(f"dipoles of snapshot {bad} are not finite. Hint: fix or drop that "
                           "snapshot first.")
-    traj = ens.snapshots["traj"].to_numpy()
+    first = _first_rows(ens)
     out = np.empty((n, ns, ns))
     prev = None
     for k in tqdm(range(n), desc="Boys localisation", disable=not progress or n < 2000):
@@ -369,8 +376,5 @@ def _ensemble_boys(ens: Ensemble, dipoles: npt.ArrayLike | None, *,
             r, _ = boys_rotation(mu[k])
         except SchemaError as exc:
             raise SchemaError(f"dipoles of snapshot {k}: {exc}") from exc
-        if k == 0 or traj[k] != traj[k - 1]:
-            prev = None
-        out[k] = _boys_order(prev, r, mu[k])
-        prev = np.einsum("ib,ijx,jb->bx", out[k], mu[k], out[k])
+        out[k], prev = _boys_order(None if first[k] else prev, r, mu[k])
     return out

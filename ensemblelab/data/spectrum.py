@@ -48,6 +48,14 @@ def _ro(a: Any, name: str, *, dtype: Any = np.float64, ndim: int | None = None) 
     return arr
 
 
+def _per_delay(a: Any, name: str, n_delays: int) -> np.ndarray:
+    """A read-only (n_delays,) array of `a`, or NaN (unknown) when `a` is None."""
+    arr = _ro(np.full(n_delays, np.nan) if a is None else a, name, ndim=1)
+    if arr.shape != (n_delays,):
+        raise SchemaError(f"{name} must have shape (n_delays={n_delays},); got {arr.shape}.")
+    return arr
+
+
 def _json_safe(value: Any) -> Any:
     """Turn numpy scalars/arrays and tuples into JSON-friendly values (recursively)."""
     if isinstance(value, Mapping):
@@ -128,16 +136,8 @@ class TRPESMap:
                     f"components[{label!r}] must have shape {shape} like intensity; got {c.shape}."
                 )
             comps[str(label)] = c
-        alive = (np.full(d.size, np.nan) if self.alive is None
-                 else _ro(self.alive, "alive", ndim=1))
-        if alive.shape != (d.size,):
-            raise SchemaError(f"alive must have shape (n_delays={d.size},); got {alive.shape}.")
-        alive = _ro(alive, "alive")
-        count = (np.full(d.size, np.nan) if self.alive_count is None
-                 else _ro(self.alive_count, "alive_count", ndim=1))
-        if count.shape != (d.size,):
-            raise SchemaError(f"alive_count must have shape (n_delays={d.size},); got "
-                              f"{count.shape}.")
+        alive = _per_delay(self.alive, "alive", d.size)
+        count = _per_delay(self.alive_count, "alive_count", d.size)
         set_(self, "energies", e)
         set_(self, "delays", d)
         set_(self, "intensity", inten)

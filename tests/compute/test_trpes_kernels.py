@@ -318,7 +318,6 @@ def test_deposit_memory_does_not_grow_with_the_number_of_sticks(backend):
         w = rng.uniform(0.0, 1.0, n)
         K.deposit_moments(tb[:1000], e[:1000], w[:1000], n_time=n_time, e_lo=0.0, h=0.01,
                           n_fine=n_fine, order=order, backend=backend)  # compile, fill pool
-        K._scratch_give([])
         tracemalloc.start()
         hist = K.deposit_moments(tb, e, w, n_time=n_time, e_lo=0.0, h=0.01, n_fine=n_fine,
                                  order=order, backend=backend)

@@ -20,7 +20,12 @@ def _map():
 
 def test_trpes_map_arrays_are_read_only():
     m = _map()
-    for arr in (m.energies, m.delays, m.intensity, m.alive, m.components["S1"]):
+    for arr in (m.energies, m.delays, m.intensity, m.alive, m.alive_count, m.components["S1"]):
+        with pytest.raises(ValueError):
+            arr[0] = 1.0
+    bare = m.replace(alive=None, alive_count=None)  # unknown: NaN, read-only too
+    for arr in (bare.alive, bare.alive_count):
+        assert np.all(np.isnan(arr))
         with pytest.raises(ValueError):
             arr[0] = 1.0
 
