@@ -19,8 +19,8 @@ import time
 
 import numpy as np
 
-from ensemblelab.compute._reference_fssh import run_fssh_reference
 from ensemblelab.compute.dynamics import run_fssh
+from ensemblelab.compute.dynamics._reference_fssh import run_fssh_reference
 from ensemblelab.demo import DEFAULT_SCENARIO, make_ensemble
 from ensemblelab.demo import _sample_initial as sample_initial
 

@@ -69,7 +69,7 @@ def _scaled(box: tuple, trpes: Any) -> tuple[tuple[float, float], tuple[float, f
 def measure(app: Any, *, repeats: int = 1) -> dict[str, float]:
     """Median brush latency (ms) of an Explorer, of bare region_intensity() and of the
     full contributions() table (ms)."""
-    from ensemblelab.compute.spectra import contributions, region_intensity
+    from ensemblelab.compute.spectroscopy.spectra import contributions, region_intensity
 
     model = app.model
     trpes = model.trpes_map

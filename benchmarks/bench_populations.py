@@ -22,10 +22,10 @@ import time
 
 import numpy as np
 
-from ensemblelab.compute import _kernels_populations as K
-from ensemblelab.compute import _reference_populations as R
-from ensemblelab.compute.kinetics import fit_kinetics
-from ensemblelab.compute.populations import population_arrays, populations
+from ensemblelab.compute.kinetics import _kernels_populations as K
+from ensemblelab.compute.kinetics import _reference_populations as R
+from ensemblelab.compute.kinetics.populations import population_arrays, populations
+from ensemblelab.compute.kinetics.rates import fit_kinetics
 from ensemblelab.data.ensemble import Ensemble
 
 

@@ -47,9 +47,9 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from ensemblelab.compute.populations import populations
-from ensemblelab.compute.pulses import GaussianPulse
-from ensemblelab.compute.spectra import compute_trpes
+from ensemblelab.compute.kinetics.populations import populations
+from ensemblelab.compute.spectroscopy.pulses import GaussianPulse
+from ensemblelab.compute.spectroscopy.spectra import compute_trpes
 from ensemblelab.data.ensemble import Ensemble
 from ensemblelab.io import load
 from ensemblelab.io.chunked import ChunkedStoreWriter

@@ -20,9 +20,9 @@ import tracemalloc
 import numpy as np
 import pandas as pd
 
-from ensemblelab.compute._reference_geometry import kabsch_rmsd_loop
-from ensemblelab.compute.clustering import cluster_snapshots
-from ensemblelab.compute.geometry import rmsd
+from ensemblelab.compute.structures._reference_geometry import kabsch_rmsd_loop
+from ensemblelab.compute.structures.clustering import cluster_snapshots
+from ensemblelab.compute.structures.geometry import rmsd
 from ensemblelab.data.ensemble import Ensemble
 
 

@@ -32,10 +32,10 @@ from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
 
-from ensemblelab.compute import _kernels_trpes as K
-from ensemblelab.compute import _reference_trpes as R
-from ensemblelab.compute.pulses import GaussianPulse
-from ensemblelab.compute.spectra import (
+from ensemblelab.compute.spectroscopy import _kernels_trpes as K
+from ensemblelab.compute.spectroscopy import _reference_trpes as R
+from ensemblelab.compute.spectroscopy.pulses import GaussianPulse
+from ensemblelab.compute.spectroscopy.spectra import (
     DEFAULT_BINS_PER_FWHM,
     DEFAULT_ORDER,
     compute_trpes,

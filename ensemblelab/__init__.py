@@ -13,6 +13,8 @@ from __future__ import annotations
 import importlib
 from typing import Any
 
+from ._exports import lazy_exports
+from .compute import DOMAINS
 from .data import Ensemble
 from .errors import (
     EnsembleWarning,
@@ -26,40 +28,16 @@ from .errors import (
 
 __version__ = "0.1.0"
 
-#: public name -> module that defines it (imported on first access)
-_LAZY: dict[str, str] = {
-    # io
+#: names of the layers below the compute domains, imported on first use
+_IO_AND_DATA: dict[str, str] = {
     "load": "ensemblelab.io",
     "save": "ensemblelab.io",
-    # spectroscopy
-    "GaussianPulse": "ensemblelab.compute.pulses",
+    "load_measured_map": "ensemblelab.io.maps",
     "TRPESMap": "ensemblelab.data.spectrum",
     "StickSpectrum": "ensemblelab.data.spectrum",
-    "compute_trpes": "ensemblelab.compute.spectra",
-    "contributions": "ensemblelab.compute.spectra",
-    "prepare_sticks": "ensemblelab.compute.spectra",
-    "region_intensity": "ensemblelab.compute.spectra",
-    "ground_state_ionisation_fraction": "ensemblelab.compute.spectra",
-    "doorway_weights": "ensemblelab.compute.spectra",
-    "compare_maps": "ensemblelab.compute.compare",
-    "load_measured_map": "ensemblelab.io.maps",
-    # populations and kinetics
-    "populations": "ensemblelab.compute.populations",
-    "population_consistency": "ensemblelab.compute.populations",
-    "fit_kinetics": "ensemblelab.compute.kinetics",
-    "fit_global": "ensemblelab.compute.global_fit",
-    # structures
-    "cluster_snapshots": "ensemblelab.compute.clustering",
-    "cluster_hops": "ensemblelab.compute.clustering",
-    "flag_trajectories": "ensemblelab.compute.outliers",
-    "OutlierThresholds": "ensemblelab.compute.outliers",
-    "kabsch_align": "ensemblelab.compute.geometry",
-    "rmsd": "ensemblelab.compute.geometry",
-    "align_ensemble": "ensemblelab.compute.geometry",
-    "cluster_representatives": "ensemblelab.compute.representatives",
-    "band_representatives": "ensemblelab.compute.representatives",
-    "time_window_representatives": "ensemblelab.compute.representatives",
 }
+
+_COMPUTE, _compute_getattr, _ = lazy_exports("ensemblelab", DOMAINS, globals())
 
 __all__ = [
     "__version__",
@@ -71,48 +49,19 @@ __all__ = [
     "StoreError",
     "UnitWarning",
     "UnknownFormatError",
-    # io
-    "load",
-    "save",
-    "load_measured_map",
-    # spectroscopy
-    "GaussianPulse",
-    "TRPESMap",
-    "StickSpectrum",
-    "compute_trpes",
-    "contributions",
-    "prepare_sticks",
-    "region_intensity",
-    "ground_state_ionisation_fraction",
-    "doorway_weights",
-    "compare_maps",
-    # populations and kinetics
-    "populations",
-    "population_consistency",
-    "fit_kinetics",
-    "fit_global",
-    # structures
-    "cluster_snapshots",
-    "cluster_hops",
-    "flag_trajectories",
-    "OutlierThresholds",
-    "kabsch_align",
-    "rmsd",
-    "align_ensemble",
-    "cluster_representatives",
-    "band_representatives",
-    "time_window_representatives",
+    *_IO_AND_DATA,
+    *_COMPUTE,
 ]
 
 
 def __getattr__(name: str) -> Any:
-    if name in _LAZY:
-        value = getattr(importlib.import_module(_LAZY[name]), name)
+    if name in _IO_AND_DATA:
+        value = getattr(importlib.import_module(_IO_AND_DATA[name]), name)
         globals()[name] = value
         return value
     if name in ("demo", "io", "compute", "data", "units", "testing", "plotting"):
         return importlib.import_module(f"ensemblelab.{name}")
-    raise AttributeError(f"module 'ensemblelab' has no attribute {name!r}")
+    return _compute_getattr(name)
 
 
 def __dir__() -> list[str]:

@@ -101,13 +101,13 @@ def build_report(
     Path
         ``out/index.html``.
     """
-    from .compute.clustering import cluster_snapshots
-    from .compute.kinetics import fit_kinetics
-    from .compute.outliers import flag_trajectories
-    from .compute.populations import populations
-    from .compute.pulses import GaussianPulse
-    from .compute.representatives import cluster_representatives
-    from .compute.spectra import compute_trpes
+    from .compute.kinetics.populations import populations
+    from .compute.kinetics.rates import fit_kinetics
+    from .compute.spectroscopy.pulses import GaussianPulse
+    from .compute.spectroscopy.spectra import compute_trpes
+    from .compute.structures.clustering import cluster_snapshots
+    from .compute.structures.outliers import flag_trajectories
+    from .compute.structures.representatives import cluster_representatives
 
     out = Path(out)
     if out.exists() and not overwrite:

@@ -11,9 +11,9 @@ import numpy as np
 import pytest
 from matplotlib.collections import PolyCollection, QuadMesh
 
-from ensemblelab.compute.global_fit import decay_profiles, fit_global
-from ensemblelab.compute.kinetics import fit_kinetics
-from ensemblelab.compute.populations import populations
+from ensemblelab.compute.kinetics.global_fit import decay_profiles, fit_global
+from ensemblelab.compute.kinetics.populations import populations
+from ensemblelab.compute.kinetics.rates import fit_kinetics
 from ensemblelab.plotting.populations import (
     plot_das,
     plot_global_fit,

@@ -5,9 +5,9 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from ensemblelab.compute.compare import compare_maps
-from ensemblelab.compute.pulses import GaussianPulse
-from ensemblelab.compute.spectra import compute_trpes
+from ensemblelab.compute.spectroscopy.compare import compare_maps
+from ensemblelab.compute.spectroscopy.pulses import GaussianPulse
+from ensemblelab.compute.spectroscopy.spectra import compute_trpes
 from ensemblelab.plotting.spectra import (
     plot_components,
     plot_cuts,

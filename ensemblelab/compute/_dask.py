@@ -56,7 +56,7 @@ from ..errors import EnsembleWarning, SchemaError
 if TYPE_CHECKING:
     from ..data.spectrum import TRPESMap
     from ..io.lazy import LazyEnsemble
-    from .pulses import GaussianPulse
+    from .spectroscopy.pulses import GaussianPulse
 
 __all__ = ["is_lazy", "compute_trpes", "contributions", "populations", "flag_trajectories",
            "median_step"]
@@ -350,7 +350,7 @@ def _merge_range(a: dict[str, float], b: dict[str, float]) -> dict[str, float]:
 def _chunk_sticks(path: str, index: int, opts: Mapping[str, Any]) -> tuple[Any, Any, np.ndarray]:
     """(chunk ensemble, its TRPESModel, weight of each trajectory of the chunk)."""
     from ..io.chunked import load_chunk
-    from .spectra import prepare_sticks, trajectory_weights
+    from .spectroscopy.spectra import prepare_sticks, trajectory_weights
 
     ens = load_chunk(path, index, fields=_trpes_fields(opts["by"]))
     model = prepare_sticks(ens, probe=opts["probe"], pump=opts["pump"],
@@ -362,7 +362,7 @@ def _chunk_sticks(path: str, index: int, opts: Mapping[str, Any]) -> tuple[Any, 
 
 
 def _trpes_chunk(path: str, index: int, opts: Mapping[str, Any]) -> dict[str, Any]:
-    from . import _kernels_trpes as K
+    from .spectroscopy import _kernels_trpes as K
 
     ens, model, w_traj = _chunk_sticks(path, index, opts)
     start, dt, n_time = opts["start"], opts["dt"], opts["n_time"]
@@ -396,9 +396,9 @@ def _trpes_chunk_fast(path: str, sub: Mapping[str, Any], opts: Mapping[str, Any]
     open cation channel, energy ``E_probe - (E_cation - E_active)``, weight
     ``w_traj * sigma``. Used for ``by`` in (None, "neutral", "cation", "pair").
     """
-    from . import _kernels_trpes as K
-    from .cross_sections import resolve_cross_section
-    from .spectra import trajectory_weights
+    from .spectroscopy import _kernels_trpes as K
+    from .spectroscopy.cross_sections import resolve_cross_section
+    from .spectroscopy.spectra import trajectory_weights
 
     names = ["energies", "cation_energies", "dyson"]
     if opts["weights"] == "doorway" and opts["pump"] is not None:
@@ -446,7 +446,7 @@ def _weights_word(lz: LazyEnsemble, weights: str, pump: Any) -> str:
     """``params["weights"]`` of the map (as ``trajectory_weights`` names it), from the manifest."""
     import types
 
-    from .spectra import trajectory_weights
+    from .spectroscopy.spectra import trajectory_weights
 
     if weights == "doorway" and pump is not None and lz.has("excitation_energies") and (
             lz.has("transition_dipoles") or lz.has("oscillator_strengths")):
@@ -461,7 +461,7 @@ def _weights_word(lz: LazyEnsemble, weights: str, pump: Any) -> str:
 def _trpes_setup(lz: LazyEnsemble, *, probe: Any, pump: Any, cross_section: Any, weights: str,
                  by: str | None, time_step: float | None, client: Any, scheduler: Any
                  ) -> dict[str, Any]:
-    from .spectra import _BY, _check_nonneg, _check_pulse
+    from .spectroscopy.spectra import _BY, _check_nonneg, _check_pulse
 
     probe = _check_pulse(probe, "probe")
     pump = _check_pulse(pump, "pump", optional=True)
@@ -490,8 +490,8 @@ def _trpes_setup(lz: LazyEnsemble, *, probe: Any, pump: Any, cross_section: Any,
 def _weights_chunk(path: str, index: int, opts: Mapping[str, Any]) -> dict[str, Any]:
     """Alive weight on the grid and total trajectory weight of one chunk."""
     from ..io.chunked import load_chunk
-    from . import _kernels_trpes as K
-    from .spectra import trajectory_weights
+    from .spectroscopy import _kernels_trpes as K
+    from .spectroscopy.spectra import trajectory_weights
 
     ens = load_chunk(path, index, fields=["excitation_energies", "transition_dipoles",
                                           "oscillator_strengths"])
@@ -520,10 +520,10 @@ def compute_trpes(
     client: Any = None,
     scheduler: Any = None,
 ) -> TRPESMap:
-    """:func:`ensemblelab.compute.spectra.compute_trpes` for a lazy ensemble (see there)."""
+    """:func:`~ensemblelab.compute_trpes` for a lazy ensemble (see there)."""
     from ..data.spectrum import StickSpectrum
-    from .cross_sections import _describe, resolve_cross_section
-    from .spectra import (
+    from .spectroscopy.cross_sections import _describe, resolve_cross_section
+    from .spectroscopy.spectra import (
         DEFAULT_BINS_PER_FWHM,
         DEFAULT_ORDER,
         TRPESModel,
@@ -610,7 +610,7 @@ def _contrib_chunk(path: str, index: int, opts: Mapping[str, Any]) -> pd.DataFra
     """The in-memory ``contributions`` of one chunk, on the ensemble's time grid."""
     import types
 
-    from .spectra import contributions as contributions_in_memory
+    from .spectroscopy.spectra import contributions as contributions_in_memory
 
     ens, model, _ = _chunk_sticks(path, index, opts)
     j, frac = _bins(ens.snapshots["time"].to_numpy(), opts["start"], opts["dt"])
@@ -641,7 +641,7 @@ def contributions(
     scheduler: Any = None,
     progress: bool = True,
 ) -> pd.DataFrame:
-    """:func:`ensemblelab.compute.spectra.contributions` for a lazy ensemble (see there)."""
+    """:func:`~ensemblelab.contributions` for a lazy ensemble (see there)."""
 
     e1, e2 = (float(x) for x in energy_range)
     t1, t2 = (float(x) for x in delay_range)
@@ -651,7 +651,7 @@ def contributions(
     if by not in ("snapshot", "traj") and by not in lz.columns:
         raise SchemaError(f"The 'by' parameter must be 'snapshot', 'traj' or a column of "
                           f"ens.snapshots {lz.columns}. Got {by!r} instead.")
-    from .spectra import _settings_from_params
+    from .spectroscopy.spectra import _settings_from_params
 
     p = trpes_map.params
     probe, pump, cs, weights = _settings_from_params(p)
@@ -689,8 +689,8 @@ def contributions(
 
 # ------------------------------------------------------------------------ populations
 def _pop_chunk(path: str, sub: Mapping[str, Any], opts: Mapping[str, Any]) -> dict[str, Any]:
-    from . import _kernels_populations as _k
-    from .populations import _weighted_sums
+    from .kinetics import _kernels_populations as _k
+    from .kinetics.populations import _weighted_sums
 
     kind = opts["kind"]
     fields = {"active": [], "amplitudes": ["amplitudes"], "diabatic": ["adt"]}[kind]
@@ -723,10 +723,10 @@ def populations(
     scheduler: Any = None,
     progress: bool = True,
 ) -> pd.DataFrame:
-    """:func:`ensemblelab.compute.populations.populations` for a lazy ensemble (see there)."""
+    """:func:`~ensemblelab.populations` for a lazy ensemble (see there)."""
 
-    from . import _kernels_populations as _k
-    from .populations import (
+    from .kinetics import _kernels_populations as _k
+    from .kinetics.populations import (
         _check_arguments,
         _excluded_mask,
         _finish,
@@ -759,7 +759,7 @@ def populations(
 # ------------------------------------------------------------------------ trajectory flags
 def _flags_chunk(path: str, index: int, opts: Mapping[str, Any]) -> dict[str, Any]:
     from ..io.chunked import load_chunk
-    from .outliers import flag_trajectories as flag_in_memory
+    from .structures.outliers import flag_trajectories as flag_in_memory
 
     ens = load_chunk(path, index)
     table = flag_in_memory(ens, thresholds=opts["th"], multivariate=False,
@@ -794,7 +794,7 @@ def _gather_chunk(path: str, index: int, positions: np.ndarray) -> np.ndarray:
 
 def _rmsd_chunk(path: str, index: int, ref: np.ndarray) -> dict[str, np.ndarray]:
     from ..io.chunked import load_chunk
-    from .geometry import rmsd
+    from .structures.geometry import rmsd
 
     ens = load_chunk(path, index, fields=["geometries"])
     finite = np.isfinite(ens.geometries).all(axis=(1, 2))
@@ -808,7 +808,7 @@ def _rmsd_chunk(path: str, index: int, ref: np.ndarray) -> dict[str, np.ndarray]
 
 
 def _thresholds(thresholds: Any) -> Any:
-    from .outliers import resolve_thresholds
+    from .structures.outliers import resolve_thresholds
 
     return resolve_thresholds(thresholds)
 
@@ -824,7 +824,7 @@ def flag_trajectories(
     scheduler: Any = None,
     progress: bool = True,
 ) -> pd.DataFrame:
-    """:func:`ensemblelab.compute.outliers.flag_trajectories` for a lazy ensemble (see there).
+    """:func:`~ensemblelab.flag_trajectories` for a lazy ensemble (see there).
 
     The rule-based checks run per chunk with the ensemble-wide expected end time
     and tolerance. One caveat: the missing-steps rule uses the median step of
@@ -880,7 +880,7 @@ def _multivariate_lazy(lz: LazyEnsemble, parts: Sequence[Mapping[str, Any]],
     from sklearn.ensemble import IsolationForest
     from sklearn.preprocessing import RobustScaler
 
-    from .geometry import mean_structure
+    from .structures.geometry import mean_structure
 
     dask = _dask()
     n_fin = np.array([p["n_finite"] for p in parts], dtype=np.int64)

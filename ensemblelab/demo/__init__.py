@@ -20,9 +20,9 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from ..compute._kernels_fssh import adiabatic_states
+from ..compute.dynamics._kernels_fssh import adiabatic_states
 from ..compute.dynamics.fssh import run_fssh
-from ..compute.initial import sample_normal_modes, select_initial_conditions
+from ..compute.dynamics.initial import sample_normal_modes, select_initial_conditions
 from ..data.ensemble import Ensemble
 from ..errors import SchemaError
 from ..units import HARTREE_EV

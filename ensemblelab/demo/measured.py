@@ -22,8 +22,8 @@ from typing import Any
 import numpy as np
 
 from .._atomic import atomic_write_text
-from ..compute.pulses import GaussianPulse
-from ..compute.spectra import compute_trpes
+from ..compute.spectroscopy.pulses import GaussianPulse
+from ..compute.spectroscopy.spectra import compute_trpes
 from ..data.spectrum import TRPESMap
 from .scenario import DEFAULT_SCENARIO
 

@@ -52,7 +52,7 @@ def plot_populations(
     Parameters
     ----------
     frame : DataFrame
-        Output of :func:`ensemblelab.compute.populations.populations`
+        Output of :func:`ensemblelab.compute.kinetics.populations.populations`
         (``time, state, population`` and optionally ``lower, upper, label``).
     fit : KineticsResult, optional
         Fitted curves are drawn dashed over the fitted states.
@@ -98,7 +98,7 @@ def plot_populations(
 
 
 def plot_das(result: Any, *, ax: Any = None, title: str | None = None) -> Figure:
-    """Decay-associated spectra of a :class:`~ensemblelab.compute.global_fit.GlobalFitResult`.
+    """Decay-associated spectra of a :class:`~ensemblelab.GlobalFitResult`.
 
     Returns
     -------

@@ -38,7 +38,7 @@ def plot_cluster_summary(result: Any, *, ax: Axes | None = None) -> Axes:
     Parameters
     ----------
     result : ClusterResult
-        From :func:`ensemblelab.compute.clustering.cluster_snapshots`.
+        From :func:`ensemblelab.compute.structures.clustering.cluster_snapshots`.
     ax : matplotlib Axes, optional
 
     Returns
@@ -87,7 +87,7 @@ def plot_flags(table: pd.DataFrame, *, ax: Axes | None = None) -> Axes:
     Parameters
     ----------
     table : DataFrame
-        From :func:`ensemblelab.compute.outliers.flag_trajectories`.
+        From :func:`ensemblelab.compute.structures.outliers.flag_trajectories`.
     ax : matplotlib Axes, optional
 
     Returns

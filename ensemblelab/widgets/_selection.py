@@ -53,7 +53,7 @@ class SelectionModel(HasTraits):
     band : DataFrame or None
         The strongest contributing snapshots of the selected band (at most
         :attr:`band_rows` rows, strongest first; the columns of
-        :func:`ensemblelab.compute.spectra.contributions` with ``by="snapshot"``
+        :func:`ensemblelab.compute.spectroscopy.spectra.contributions` with ``by="snapshot"``
         plus ``cluster`` and ``weight``). Shares are fractions of the whole band.
         ``attrs``: ``total`` (band intensity), ``n_snapshots`` (all contributing
         ones), ``complete`` (the table holds every contributing snapshot).
@@ -241,7 +241,7 @@ class SelectionModel(HasTraits):
     ) -> pd.DataFrame:
         """Select a band of the current map and find what contributes to it.
 
-        Calls :func:`ensemblelab.compute.spectra.region_intensity` on :attr:`current`
+        Calls :func:`ensemblelab.compute.spectroscopy.spectra.region_intensity` on :attr:`current`
         and :attr:`trpes_map` (every snapshot's band intensity, unsorted), keeps the
         :attr:`band_rows` strongest snapshots as :attr:`band` and the array for exact
         grouping (:meth:`group_table`), then updates :attr:`energy_range`,
@@ -395,7 +395,7 @@ class SelectionModel(HasTraits):
         """Every contributing snapshot of the band, strongest first (computed on demand).
 
         The whole per-snapshot table of
-        :func:`ensemblelab.compute.spectra.contributions` with ``cluster`` and
+        :func:`ensemblelab.compute.spectroscopy.spectra.contributions` with ``cluster`` and
         ``weight`` columns: millions of rows on a large ensemble, so this is for
         export, not for every brush. Returns :attr:`band` itself when it is already
         complete (or was set by hand), None without a band.
@@ -404,7 +404,7 @@ class SelectionModel(HasTraits):
         data = self._live_band()
         if band is None or data is None or bool(band.attrs.get("complete", False)):
             return band
-        from ..compute.spectra import contributions
+        from ..compute.spectroscopy.spectra import contributions
 
         table = contributions(self.current, self.trpes_map, energy_range=data.energy_range,
                               delay_range=data.delay_range, by="snapshot")
@@ -521,7 +521,7 @@ class SelectionModel(HasTraits):
     def _band_table(
         self, energy_range: tuple[float, float], delay_range: tuple[float, float]
     ) -> pd.DataFrame:
-        from ..compute.spectra import region_intensity
+        from ..compute.spectroscopy.spectra import region_intensity
 
         cur = self.current
         x = region_intensity(cur, self.trpes_map, energy_range=energy_range,

@@ -39,7 +39,7 @@ class Explorer:
         Keyword arguments of :class:`PopulationView` and :class:`StructureView`.
     clusters : "auto", array_like, False or None
         Cluster label per snapshot; ``"auto"`` (default) runs
-        :func:`ensemblelab.compute.clustering.cluster_snapshots`; False: none.
+        :func:`ensemblelab.compute.structures.clustering.cluster_snapshots`; False: none.
     cluster_kwargs : dict, optional
         Keyword arguments of ``cluster_snapshots`` (default ``n_clusters=3``).
     flags : DataFrame, optional
@@ -146,7 +146,7 @@ class Explorer:
             if clusters != "auto":
                 raise ValueError(f"clusters must be 'auto', labels or False; got {clusters!r}.")
             try:
-                from ..compute.clustering import cluster_snapshots
+                from ..compute.structures.clustering import cluster_snapshots
 
                 options = {"n_clusters": 3, **dict(kwargs or {})}
                 result = cluster_snapshots(self.model.ens, **options)

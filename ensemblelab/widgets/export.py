@@ -70,7 +70,7 @@ def export_structures(model: SelectionModel, folder: str | os.PathLike[str], *,
     rows = model.rows(ids)
     xyz = np.asarray(model.ens.geometries[rows], dtype=np.float64)
     if align and len(ids) > 1:
-        from ..compute.geometry import kabsch_align
+        from ..compute.structures.geometry import kabsch_align
 
         xyz = kabsch_align(xyz, reference=xyz[0], weights="mass",
                            masses=model.ens.masses).aligned

@@ -77,7 +77,7 @@ class MapView(View):
     measured : TRPESMap, optional
         A measured map; shown on request with the residual.
     trpes_kwargs : dict, optional
-        Further keyword arguments of :func:`ensemblelab.compute.spectra.compute_trpes`
+        Further keyword arguments of :func:`ensemblelab.compute.spectroscopy.spectra.compute_trpes`
         (``weights``, ``cross_section``, ``normalise``).
     debounce : float
         Seconds of quiet after a control change before recomputing.
@@ -252,7 +252,7 @@ class MapView(View):
     # ------------------------------------------------------------------ compute
     def pulses(self) -> tuple[Any, Any]:
         """The probe and pump pulses set by the controls (pump None when its FWHM is 0)."""
-        from ..compute.pulses import GaussianPulse
+        from ..compute.spectroscopy.pulses import GaussianPulse
 
         probe = GaussianPulse(photon_energy=float(self.photon_energy.value),
                               fwhm=float(self.probe_fwhm.value),
@@ -278,7 +278,7 @@ class MapView(View):
 
     def recompute(self) -> Any:
         """Compute the map of ``model.current`` with the current controls; returns it."""
-        from ..compute.spectra import compute_trpes
+        from ..compute.spectroscopy.spectra import compute_trpes
 
         probe, pump = self.pulses()
         energies, delays = self.grids()
@@ -337,7 +337,7 @@ class MapView(View):
         cached = getattr(self, "_comparison", None)
         if cached is not None and cached[0] is trpes:
             return cached[1]
-        from ..compute.compare import compare_maps
+        from ..compute.spectroscopy.compare import compare_maps
 
         result = compare_maps(trpes, self.measured)
         self._comparison = (trpes, result)

@@ -22,7 +22,7 @@ _MAX_TIMES = 600
 
 
 class PopulationView(View):
-    """Populations against time (from :func:`ensemblelab.compute.populations.populations`).
+    """Populations against time (from :func:`ensemblelab.compute.kinetics.populations.populations`).
 
     Observes ``model.excluded`` (recompute, debounced), ``model.delay_range``
     (shaded) and ``model.time`` (cursor); a click on the plot writes
@@ -35,7 +35,7 @@ class PopulationView(View):
     kind : {"active", "amplitudes", "diabatic"}
         Population kind.
     fit : {"none", "single", "sequential", "parallel"}
-        Kinetic model fitted with :func:`ensemblelab.compute.kinetics.fit_kinetics`
+        Kinetic model fitted with :func:`ensemblelab.compute.kinetics.rates.fit_kinetics`
         (``"sequential"``/``"parallel"`` need `fit_states`).
     fit_states : sequence of int, optional
         States in the roles A, B[, C] of the kinetic model.
@@ -166,7 +166,7 @@ class PopulationView(View):
 
     def recompute(self) -> pd.DataFrame:
         """Recompute populations (and the fit) of ``model.current``; returns the table."""
-        from ..compute.populations import populations
+        from ..compute.kinetics.populations import populations
 
         ens = self.model.current
         with busy(self.status, "computing populations ..."):
@@ -180,7 +180,7 @@ class PopulationView(View):
         return table
 
     def _fit(self, table: pd.DataFrame) -> Any:
-        from ..compute.kinetics import fit_kinetics
+        from ..compute.kinetics.rates import fit_kinetics
 
         kwargs: dict[str, Any] = {"model": self.fit.value, "n_boot": 0}
         if self.fit_states is not None:

@@ -27,7 +27,7 @@ class QualityView(View):
     model : SelectionModel or Ensemble
         Shared selection state.
     flags : DataFrame, optional
-        A table from :func:`ensemblelab.compute.outliers.flag_trajectories`
+        A table from :func:`ensemblelab.compute.structures.outliers.flag_trajectories`
         (``traj, flagged, reason, first_bad_time, score``); computed from
         ``model.ens`` when neither this nor ``model.flags`` is given.
     flag_kwargs : dict, optional
@@ -52,7 +52,7 @@ class QualityView(View):
         if flags is not None:
             self.model.flags = flags
         elif self.model.flags is None:
-            from ..compute.outliers import flag_trajectories
+            from ..compute.structures.outliers import flag_trajectories
 
             self.model.flags = flag_trajectories(self.model.ens, **dict(flag_kwargs or {}))
         self.rows = widgets.SelectMultiple(options=[], rows=8,

@@ -176,7 +176,7 @@ class StructureView(View):
         rows = self.model.rows(ids)
         xyz = np.asarray(self.model.ens.geometries[rows], dtype=np.float64)
         if self.align.value and len(ids) > 1:
-            from ..compute.geometry import kabsch_align
+            from ..compute.structures.geometry import kabsch_align
 
             result = kabsch_align(xyz, reference=xyz[0], weights="mass",
                                   masses=self.model.ens.masses)

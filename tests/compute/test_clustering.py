@@ -10,8 +10,12 @@ import pytest
 from sklearn.cluster import AgglomerativeClustering, KMeans
 from sklearn.metrics import adjusted_rand_score
 
-from ensemblelab.compute.clustering import cluster_hops, cluster_snapshots, wilson_interval
-from ensemblelab.compute.descriptors import InternalCoordinates
+from ensemblelab.compute.structures.clustering import (
+    cluster_hops,
+    cluster_snapshots,
+    wilson_interval,
+)
+from ensemblelab.compute.structures.descriptors import InternalCoordinates
 from ensemblelab.errors import SchemaError
 
 sys.path.insert(0, str(Path(__file__).parent))
@@ -124,7 +128,7 @@ def test_plotting_smoke(planted, tmp_path):
     import matplotlib
 
     matplotlib.use("Agg")
-    from ensemblelab.compute.outliers import flag_trajectories
+    from ensemblelab.compute.structures.outliers import flag_trajectories
     from ensemblelab.plotting.structures import (
         plot_cluster_summary,
         plot_cluster_time_profile,

@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from ensemblelab.compute.compare import compare_maps, resample_map
+from ensemblelab.compute.spectroscopy.compare import compare_maps, resample_map
 from ensemblelab.data.spectrum import TRPESMap
 from ensemblelab.errors import ParseError
 from ensemblelab.io.maps import load_measured_map
@@ -101,8 +101,8 @@ def test_demo_measured_map_regenerates_identically_and_is_found():
     # the committed invented map is reproduced bit for bit from the demo scenario
     from pathlib import Path
 
-    from ensemblelab.compute.pulses import GaussianPulse
-    from ensemblelab.compute.spectra import compute_trpes
+    from ensemblelab.compute.spectroscopy.pulses import GaussianPulse
+    from ensemblelab.compute.spectroscopy.spectra import compute_trpes
     from ensemblelab.demo import make_ensemble
     from ensemblelab.demo.measured import (
         DEFAULT_PATH,

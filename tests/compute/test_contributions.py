@@ -6,8 +6,8 @@ import numpy as np
 import pytest
 from test_trpes_fixtures import random_ensemble
 
-from ensemblelab.compute.pulses import GaussianPulse
-from ensemblelab.compute.spectra import compute_trpes, contributions
+from ensemblelab.compute.spectroscopy.pulses import GaussianPulse
+from ensemblelab.compute.spectroscopy.spectra import compute_trpes, contributions
 from ensemblelab.errors import SchemaError
 
 PROBE = GaussianPulse(photon_energy=5.0, fwhm=30.0)
@@ -105,7 +105,11 @@ def test_contributions_rebuild_keeps_cross_section_parameters(ens_and_map, which
     # a map saved to disk and loaded back has no cached model; the rebuilt sticks must use
     # the same cross section *with its parameters* (a default exponent or partial wave gives
     # other numbers: computed independently (not published), e.g. zeta = 2 vs sqrt(2 IP))
-    from ensemblelab.compute.cross_sections import AnionThresholdLaw, DysonTimes, HydrogenicPWA
+    from ensemblelab.compute.spectroscopy.cross_sections import (
+        AnionThresholdLaw,
+        DysonTimes,
+        HydrogenicPWA,
+    )
     from ensemblelab.data.spectrum import TRPESMap
 
     ens, _ = ens_and_map
@@ -158,7 +162,7 @@ def test_contributions_top_keeps_strongest_rows_and_region_total():
 
 
 def test_region_intensity_is_the_unsorted_contributions_column(ens_and_map):
-    from ensemblelab.compute.spectra import region_intensity
+    from ensemblelab.compute.spectroscopy.spectra import region_intensity
 
     ens, m = ens_and_map
     kw = dict(energy_range=(0.5, 2.5), delay_range=(10.0, 40.0))
@@ -179,7 +183,7 @@ def test_region_intensity_is_the_unsorted_contributions_column(ens_and_map):
 def test_region_intensity_adds_over_adjacent_windows(ens_and_map, split):
     # integrals over adjacent windows add up (analytic); a narrow and a wide window
     # take different error-function paths (one or two terms per edge)
-    from ensemblelab.compute.spectra import region_intensity
+    from ensemblelab.compute.spectroscopy.spectra import region_intensity
 
     ens, m = ens_and_map
     whole = region_intensity(ens, m, energy_range=(0.5, 3.5), delay_range=(-20.0, 50.0))

@@ -7,7 +7,7 @@ import pytest
 from scipy.optimize import minimize_scalar
 from test_trpes_fixtures import random_ensemble
 
-from ensemblelab.compute.cross_sections import (
+from ensemblelab.compute.spectroscopy.cross_sections import (
     AnionThresholdLaw,
     DysonNorm,
     DysonTimes,
@@ -15,8 +15,8 @@ from ensemblelab.compute.cross_sections import (
     hydrogenic_factor,
     resolve_cross_section,
 )
-from ensemblelab.compute.pulses import GaussianPulse
-from ensemblelab.compute.spectra import compute_trpes
+from ensemblelab.compute.spectroscopy.pulses import GaussianPulse
+from ensemblelab.compute.spectroscopy.spectra import compute_trpes
 from ensemblelab.errors import SchemaError
 from ensemblelab.units import HARTREE_EV
 

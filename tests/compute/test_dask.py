@@ -11,10 +11,10 @@ import pandas as pd
 import pytest
 
 from ensemblelab import load
-from ensemblelab.compute.outliers import flag_trajectories
-from ensemblelab.compute.populations import populations
-from ensemblelab.compute.pulses import GaussianPulse
-from ensemblelab.compute.spectra import compute_trpes, contributions
+from ensemblelab.compute.kinetics.populations import populations
+from ensemblelab.compute.spectroscopy.pulses import GaussianPulse
+from ensemblelab.compute.spectroscopy.spectra import compute_trpes, contributions
+from ensemblelab.compute.structures.outliers import flag_trajectories
 from ensemblelab.io.chunked import save_chunked
 from ensemblelab.testing import make_toy_ensemble
 

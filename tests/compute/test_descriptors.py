@@ -8,9 +8,9 @@ from scipy.spatial.transform import Rotation
 from sklearn.pipeline import make_pipeline
 from sklearn.utils.estimator_checks import parametrize_with_checks
 
-from ensemblelab.compute import _kernels_geometry as K
-from ensemblelab.compute import _reference_geometry as REF
-from ensemblelab.compute.descriptors import (
+from ensemblelab.compute.structures import _kernels_geometry as K
+from ensemblelab.compute.structures import _reference_geometry as REF
+from ensemblelab.compute.structures.descriptors import (
     AlignedCartesian,
     CoulombEigenvalues,
     InternalCoordinates,

@@ -10,7 +10,7 @@ import pytest
 from scipy.linalg import sqrtm
 from scipy.stats import special_ortho_group
 
-from ensemblelab.compute.diabatic import (
+from ensemblelab.compute.spectroscopy.diabatic import (
     boys_objective,
     boys_rotation,
     diabatic_hamiltonian,
@@ -404,7 +404,7 @@ def test_ensemble_boys_adt_follows_the_demo_model_along_each_trajectory(demo_adt
     # each trajectory's diabatic characters must be (U(t) P)**2 with ONE permutation P for
     # all its snapshots, and each column's largest element is positive (the documented
     # sign convention) (derived and computed independently (not published), 1e-9).
-    from ensemblelab.compute.diabatic import ensemble_adt
+    from ensemblelab.compute.spectroscopy.diabatic import ensemble_adt
 
     ens, u = demo_adt
     mu_d = np.zeros((3, 3, 3))

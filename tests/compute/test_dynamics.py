@@ -11,8 +11,6 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from ensemblelab.compute._kernels_fssh import _eigh2, adiabatic_states
-from ensemblelab.compute._reference_fssh import run_fssh_reference
 from ensemblelab.compute.dynamics import (
     DualAvoidedCrossing,
     ExtendedCoupling,
@@ -21,6 +19,8 @@ from ensemblelab.compute.dynamics import (
     check_model,
     run_fssh,
 )
+from ensemblelab.compute.dynamics._kernels_fssh import _eigh2, adiabatic_states
+from ensemblelab.compute.dynamics._reference_fssh import run_fssh_reference
 from ensemblelab.errors import SchemaError
 from ensemblelab.units import AU_TIME_FS, HARTREE_EV
 

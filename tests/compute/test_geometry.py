@@ -6,9 +6,9 @@ import numpy as np
 import pytest
 from scipy.spatial.transform import Rotation
 
-from ensemblelab.compute import _kernels_geometry as K
-from ensemblelab.compute import _reference_geometry as REF
-from ensemblelab.compute.geometry import (
+from ensemblelab.compute.structures import _kernels_geometry as K
+from ensemblelab.compute.structures import _reference_geometry as REF
+from ensemblelab.compute.structures.geometry import (
     align_ensemble,
     connectivity,
     kabsch_align,

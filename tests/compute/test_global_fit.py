@@ -7,8 +7,8 @@ import math
 import numpy as np
 import pytest
 
-from ensemblelab.compute import _kernels_populations as K
-from ensemblelab.compute.global_fit import GlobalFitResult, decay_profiles, fit_global
+from ensemblelab.compute.kinetics import _kernels_populations as K
+from ensemblelab.compute.kinetics.global_fit import GlobalFitResult, decay_profiles, fit_global
 from ensemblelab.errors import SchemaError
 
 LN2 = math.log(2.0)

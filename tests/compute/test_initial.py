@@ -8,7 +8,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from ensemblelab.compute.initial import (
+from ensemblelab.compute.dynamics.initial import (
     doorway_weights,
     normal_modes_from_hessian,
     sample_normal_modes,
@@ -96,7 +96,7 @@ def _triatomic(linear: bool):
 @pytest.mark.parametrize("linear", [False, True])
 def test_normal_modes_from_hessian_recovers_frequencies(linear):
     """Build a Hessian from chosen frequencies in the vibrational subspace and recover them."""
-    from ensemblelab.compute.initial import _rigid_basis
+    from ensemblelab.compute.dynamics.initial import _rigid_basis
     from ensemblelab.data.elements import masses_for
     from ensemblelab.units import BOHR_ANGSTROM
 
@@ -117,7 +117,7 @@ def test_normal_modes_from_hessian_recovers_frequencies(linear):
 
 
 def test_sample_from_hessian_reports_imaginary_modes_and_kinetic_energy():
-    from ensemblelab.compute.initial import _rigid_basis
+    from ensemblelab.compute.dynamics.initial import _rigid_basis
     from ensemblelab.data.elements import masses_for
     from ensemblelab.units import BOHR_ANGSTROM
 
@@ -187,7 +187,7 @@ def test_doorway_oscillator_strength_form_has_one_over_de():
 
 
 def test_doorway_accepts_pulse_objects_and_validates():
-    from ensemblelab.compute.pulses import GaussianPulse
+    from ensemblelab.compute.spectroscopy.pulses import GaussianPulse
 
     w1 = doorway_weights(_worked_table(), pump=GaussianPulse(photon_energy=4.1, fwhm=20.0))
     w2 = doorway_weights(_worked_table(), photon_energy=4.1, fwhm=20.0)

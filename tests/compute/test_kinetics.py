@@ -9,9 +9,10 @@ import pytest
 from scipy.signal import fftconvolve
 from scipy.special import erfc
 
-from ensemblelab.compute import _kernels_populations as K
-from ensemblelab.compute import _reference_populations as R
-from ensemblelab.compute.kinetics import (
+from ensemblelab.compute.kinetics import _kernels_populations as K
+from ensemblelab.compute.kinetics import _reference_populations as R
+from ensemblelab.compute.kinetics.populations import populations
+from ensemblelab.compute.kinetics.rates import (
     KineticsResult,
     exp_decay,
     fit_kinetics,
@@ -20,7 +21,6 @@ from ensemblelab.compute.kinetics import (
     sequential_maximum,
     single_exponential,
 )
-from ensemblelab.compute.populations import populations
 from ensemblelab.errors import SchemaError
 from ensemblelab.testing import TOY_TRUTH, make_toy_ensemble
 
@@ -197,7 +197,7 @@ def test_batched_refit_equals_loop_of_scipy_fits():
     ens = make_toy_ensemble(80, seed=5, t_max=300.0, dt=3.0)
     res = fit_kinetics(ens, model="sequential", states=("S2", "S1", "S0"), n_boot=0)
     prob = res._problem
-    from ensemblelab.compute.populations import population_arrays
+    from ensemblelab.compute.kinetics.populations import population_arrays
 
     arr = population_arrays(ens)
     counts = K.bootstrap_counts(80, 6, np.random.default_rng(0))

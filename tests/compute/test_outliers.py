@@ -9,7 +9,11 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from ensemblelab.compute.outliers import OutlierThresholds, flag_trajectories, kinetic_energy
+from ensemblelab.compute.structures.outliers import (
+    OutlierThresholds,
+    flag_trajectories,
+    kinetic_energy,
+)
 from ensemblelab.errors import SchemaError
 
 sys.path.insert(0, str(Path(__file__).parent))

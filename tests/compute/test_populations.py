@@ -7,9 +7,9 @@ import pandas as pd
 import pytest
 from scipy.stats import binomtest
 
-from ensemblelab.compute import _kernels_populations as K
-from ensemblelab.compute import _reference_populations as R
-from ensemblelab.compute.populations import (
+from ensemblelab.compute.kinetics import _kernels_populations as K
+from ensemblelab.compute.kinetics import _reference_populations as R
+from ensemblelab.compute.kinetics.populations import (
     population_arrays,
     population_consistency,
     populations,

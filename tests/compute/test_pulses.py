@@ -9,7 +9,7 @@ import pytest
 from scipy import constants as sc
 from scipy.integrate import quad
 
-from ensemblelab.compute.pulses import (
+from ensemblelab.compute.spectroscopy.pulses import (
     GaussianPulse,
     cross_correlation,
     cross_correlation_fwhm,

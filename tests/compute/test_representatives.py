@@ -9,9 +9,9 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from ensemblelab.compute.clustering import cluster_snapshots
-from ensemblelab.compute.geometry import rmsd
-from ensemblelab.compute.representatives import (
+from ensemblelab.compute.structures.clustering import cluster_snapshots
+from ensemblelab.compute.structures.geometry import rmsd
+from ensemblelab.compute.structures.representatives import (
     _pick,
     band_representatives,
     cluster_representatives,

@@ -10,8 +10,8 @@ import pytest
 from scipy.special import erfcx
 from test_trpes_fixtures import random_ensemble, stratified_decay
 
-from ensemblelab.compute.pulses import GaussianPulse, cross_correlation_fwhm, gaussian
-from ensemblelab.compute.spectra import compute_trpes, doorway_factor, prepare_sticks
+from ensemblelab.compute.spectroscopy.pulses import GaussianPulse, cross_correlation_fwhm, gaussian
+from ensemblelab.compute.spectroscopy.spectra import compute_trpes, doorway_factor, prepare_sticks
 from ensemblelab.data.ensemble import Ensemble
 from ensemblelab.errors import SchemaError
 
@@ -316,7 +316,7 @@ def test_trpes_warns_when_probe_ionises_ground_state():
     # the toy ensemble has IP(S0 -> D0) = 8.0 eV at every geometry (ensemblelab.testing)
     import warnings
 
-    from ensemblelab.compute.spectra import ground_state_ionisation_fraction
+    from ensemblelab.compute.spectroscopy.spectra import ground_state_ionisation_fraction
     from ensemblelab.errors import EnsembleWarning
     from ensemblelab.testing import TOY_TRUTH, make_toy_ensemble
 

@@ -6,10 +6,10 @@ import numpy as np
 import pytest
 from test_trpes_fixtures import random_ensemble
 
-from ensemblelab.compute import _kernels_trpes as K
-from ensemblelab.compute import _reference_trpes as R
-from ensemblelab.compute.pulses import GaussianPulse, cross_correlation_sigma
-from ensemblelab.compute.spectra import prepare_sticks
+from ensemblelab.compute.spectroscopy import _kernels_trpes as K
+from ensemblelab.compute.spectroscopy import _reference_trpes as R
+from ensemblelab.compute.spectroscopy.pulses import GaussianPulse, cross_correlation_sigma
+from ensemblelab.compute.spectroscopy.spectra import prepare_sticks
 
 PROBE = GaussianPulse(photon_energy=5.0, fwhm=30.0)
 PUMP = GaussianPulse(photon_energy=4.0, fwhm=30.0)
@@ -196,7 +196,7 @@ def test_kernel_numpy_backend_without_numba_and_lazy_import():
     import subprocess
     import sys
 
-    code = ("import sys, ensemblelab, ensemblelab.compute.spectra; "
+    code = ("import sys, ensemblelab, ensemblelab.compute.spectroscopy.spectra; "
             "assert 'numba' not in sys.modules")
     subprocess.run([sys.executable, "-c", code], check=True)
     tb, x, w, _, _ = _sticks(200, 9)

@@ -9,9 +9,9 @@ import pytest
 from scipy.stats import special_ortho_group
 from test_trpes_fixtures import random_ensemble
 
-from ensemblelab.compute.cross_sections import AnionThresholdLaw, HydrogenicPWA
-from ensemblelab.compute.pulses import GaussianPulse
-from ensemblelab.compute.spectra import compute_trpes, prepare_sticks
+from ensemblelab.compute.spectroscopy.cross_sections import AnionThresholdLaw, HydrogenicPWA
+from ensemblelab.compute.spectroscopy.pulses import GaussianPulse
+from ensemblelab.compute.spectroscopy.spectra import compute_trpes, prepare_sticks
 from ensemblelab.data.ensemble import Ensemble
 from ensemblelab.units import HARTREE_EV
 

@@ -11,8 +11,8 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from ensemblelab.compute.pulses import GaussianPulse
-from ensemblelab.compute.spectra import compute_trpes, contributions
+from ensemblelab.compute.spectroscopy.pulses import GaussianPulse
+from ensemblelab.compute.spectroscopy.spectra import compute_trpes, contributions
 from ensemblelab.widgets import SelectionModel, SelectionTable
 from ensemblelab.widgets._selection import _strongest
 from ensemblelab.widgets.export import export_tables

@@ -1,7 +1,7 @@
 """Vectorised fewest-switches surface hopping (FSSH) on model Hamiltonians.
 
 The driver :func:`run_fssh` advances a whole ensemble at once with the array
-kernels of :mod:`ensemblelab.compute._kernels_fssh` (scheme described there):
+kernels of :mod:`ensemblelab.compute.dynamics._kernels_fssh` (scheme described there):
 velocity Verlet on the active adiabatic surface, unitary electronic propagation
 (second-order product of exact exponentials of the diabatic matrix),
 fewest-switches hops from state overlaps, momentum rescaling along the
@@ -27,7 +27,7 @@ import numpy.typing as npt
 from ...data.ensemble import Ensemble
 from ...errors import SchemaError
 from ...units import AU_TIME_FS, HARTREE_EV
-from .. import _kernels_fssh as K
+from . import _kernels_fssh as K
 from .models import check_model
 
 __all__ = ["run_fssh", "FSSHResult"]

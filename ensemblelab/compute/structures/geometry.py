@@ -19,12 +19,12 @@ from typing import TYPE_CHECKING, Literal
 import numpy as np
 import numpy.typing as npt
 
-from ..data.elements import masses_for, normalise_symbol
-from ..errors import SchemaError
+from ...data.elements import masses_for, normalise_symbol
+from ...errors import SchemaError
 from . import _kernels_geometry as _k
 
 if TYPE_CHECKING:
-    from ..data.ensemble import Ensemble
+    from ...data.ensemble import Ensemble
 
 __all__ = [
     "AlignmentResult",

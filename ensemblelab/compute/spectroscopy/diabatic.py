@@ -29,8 +29,8 @@ from dataclasses import dataclass
 import numpy as np
 import numpy.typing as npt
 
-from ..data.ensemble import Ensemble
-from ..errors import NumericalWarning, SchemaError
+from ...data.ensemble import Ensemble
+from ...errors import NumericalWarning, SchemaError
 
 __all__ = [
     "loewdin",

@@ -34,10 +34,10 @@ import numpy as np
 import numpy.typing as npt
 import pandas as pd
 
-from .._atomic import atomic_write_bytes
-from ..data.elements import masses_for
-from ..errors import NumericalWarning, SchemaError
-from ..units import (
+from ..._atomic import atomic_write_bytes
+from ...data.elements import masses_for
+from ...errors import NumericalWarning, SchemaError
+from ...units import (
     AMU_ME,
     AU_TIME_FS,
     BOHR_ANGSTROM,

@@ -40,11 +40,11 @@ import numpy.typing as npt
 import pandas as pd
 from scipy.stats import norm
 
-from ..errors import EnsembleWarning, SchemaError
+from ...errors import EnsembleWarning, SchemaError
 from . import _kernels_populations as _k
 
 if TYPE_CHECKING:
-    from ..data.ensemble import Ensemble
+    from ...data.ensemble import Ensemble
 
 __all__ = [
     "populations",
@@ -302,7 +302,7 @@ def populations(
     >>> bool((pop.groupby("time")["population"].sum() - 1).abs().max() < 1e-12)
     True
     """
-    from . import _dask
+    from .. import _dask
 
     if _dask.is_lazy(ens):  # chunked store: per-chunk weighted counts with Dask
         return _dask.populations(ens, kind=kind, weights=weights, ci=ci, method=method,

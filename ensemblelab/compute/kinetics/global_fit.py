@@ -22,7 +22,8 @@ A sequential target model (``model="sequential"``) interprets the same
 exponentials as a chain A -> B -> ... (fastest lifetime first; with
 ``include_infinite`` ending in a non-decaying species) and returns the
 species-associated spectra ``SAS = (B^T)^{-1} DAS`` with B the chain's
-coefficient matrix (see :func:`ensemblelab.compute._kernels_populations.sequential_coefficients`).
+coefficient matrix (see
+:func:`~ensemblelab.compute.kinetics._kernels_populations.sequential_coefficients`).
 """
 
 from __future__ import annotations
@@ -40,9 +41,9 @@ import pandas as pd
 from scipy.optimize import least_squares
 from scipy.stats import norm
 
-from ..errors import NumericalWarning, SchemaError
+from ...errors import NumericalWarning, SchemaError
 from . import _kernels_populations as _k
-from .kinetics import fwhm_to_sigma
+from .rates import fwhm_to_sigma
 
 __all__ = ["fit_global", "GlobalFitResult", "decay_profiles"]
 

@@ -18,8 +18,8 @@ from dataclasses import dataclass
 import numpy as np
 import numpy.typing as npt
 
-from ..errors import SchemaError
-from ..units import FOUR_LN2, HBAR_EV_FS
+from ...errors import SchemaError
+from ...units import FOUR_LN2, HBAR_EV_FS
 
 __all__ = [
     "GaussianPulse",

@@ -26,11 +26,11 @@ import numpy as np
 import numpy.typing as npt
 import pandas as pd
 
-from ..errors import SchemaError
+from ...errors import SchemaError
 from .clustering import ClusterResult, _build_featuriser
 
 if TYPE_CHECKING:
-    from ..data.ensemble import Ensemble
+    from ...data.ensemble import Ensemble
 
 __all__ = [
     "Representatives",
@@ -75,7 +75,7 @@ class Representatives:
         -------
         (structure_path, csv_path)
         """
-        from ..io.structures import write_structures
+        from ...io.structures import write_structures
 
         cols = ["group", "kind", "weight", "snapshot", "traj", "time", "active", "size"]
         info = self.table[[c for c in cols if c in self.table.columns]]
@@ -217,7 +217,7 @@ def cluster_representatives(
     ----------
     ens : Ensemble
     clusters : ClusterResult, array_like (n_snapshots,) or str
-        Cluster labels: a result of :func:`~ensemblelab.compute.clustering.cluster_snapshots`
+        Cluster labels: a result of :func:`~ensemblelab.cluster_snapshots`
         (its features are reused), labels aligned to the snapshots, or a column name.
     kind : {"medoid", "mode", "both"}
     features : str or transformer
@@ -241,7 +241,7 @@ def cluster_representatives(
     Examples
     --------
     >>> from ensemblelab.testing import make_toy_ensemble
-    >>> from ensemblelab.compute.clustering import cluster_snapshots
+    >>> from ensemblelab.compute.structures.clustering import cluster_snapshots
     >>> ens = make_toy_ensemble(10, t_max=40.0)
     >>> reps = cluster_representatives(ens, cluster_snapshots(ens, n_clusters=2))
     >>> reps.geometries.shape
@@ -344,7 +344,7 @@ def band_representatives(
     contributions : DataFrame or mapping band name -> DataFrame
         Any table with columns ``snapshot`` (ids of ``ens.snapshots``) and ``share``
         (its share of the band intensity), such as
-        ``ensemblelab.compute.spectra.contributions(ens, map, by="snapshot", ...)``.
+        ``ensemblelab.compute.spectroscopy.spectra.contributions(ens, map, by="snapshot", ...)``.
     coverage : float in (0, 1]
         Keep the largest-share snapshots that together hold this fraction of the
         band's share; the representative is the share-weighted medoid (or mode) of

@@ -32,8 +32,8 @@ from sklearn.base import BaseEstimator, TransformerMixin
 from sklearn.utils._param_validation import Interval, StrOptions
 from sklearn.utils.validation import check_is_fitted, validate_data
 
-from ..data.elements import atomic_numbers_for
-from ..units import BOHR_ANGSTROM
+from ...data.elements import atomic_numbers_for
+from ...units import BOHR_ANGSTROM
 from . import _kernels_geometry as _k
 
 __all__ = [
@@ -71,7 +71,7 @@ class _GeometryTransformer(TransformerMixin, BaseEstimator):
             raise ValueError(
                 f"{type(self).__name__} expects flattened geometries with n_features = "
                 f"3 * n_atoms; got n_features={n_features}, which is not a multiple of 3. "
-                "Hint: use ensemblelab.compute.descriptors.flatten(geometries)."
+                "Hint: use ensemblelab.compute.structures.descriptors.flatten(geometries)."
             )
         return n_features // 3
 

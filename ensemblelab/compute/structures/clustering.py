@@ -1,7 +1,7 @@
 """Clustering snapshots by structure (and active state), and clustering hopping geometries.
 
 :func:`cluster_snapshots` featurises geometries (any transformer from
-:mod:`ensemblelab.compute.descriptors`, or your own features), optionally splits
+:mod:`ensemblelab.compute.structures.descriptors`, or your own features), optionally splits
 the snapshots by active state, and clusters each group with any scikit-learn
 clustering estimator. Defaults scale from 10^3 to 10^6 snapshots:
 
@@ -28,12 +28,12 @@ import numpy.typing as npt
 import pandas as pd
 from sklearn.base import BaseEstimator, TransformerMixin, clone
 
-from ..data.elements import atomic_numbers_for
-from ..errors import SchemaError
+from ...data.elements import atomic_numbers_for
+from ...errors import SchemaError
 from .descriptors import AlignedCartesian, CoulombEigenvalues, InverseDistances
 
 if TYPE_CHECKING:
-    from ..data.ensemble import Ensemble
+    from ...data.ensemble import Ensemble
 
 __all__ = [
     "ClusterResult",

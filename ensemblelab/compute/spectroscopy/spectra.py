@@ -29,7 +29,7 @@ Method (method notes sections 1-4):
   (neutral, cation) pair or (neutral diabat, cation diabat) pair (eq. 4.1) whose sum
   is the total map.
 
-The fast path (:mod:`ensemblelab.compute._kernels_trpes`) deposits Taylor moments
+The fast path (:mod:`ensemblelab.compute.spectroscopy._kernels_trpes`) deposits Taylor moments
 of the sticks on a fine energy grid and broadens them exactly; :class:`TRPESModel`
 caches the moments so that a new probe width or resolution only re-broadens.
 """
@@ -47,10 +47,10 @@ import numpy.typing as npt
 import pandas as pd
 from scipy.special import ndtr
 
-from ..data.ensemble import Ensemble
-from ..data.spectrum import StickSpectrum, TRPESMap
-from ..errors import EnsembleWarning, SchemaError
-from ..units import HARTREE_EV
+from ...data.ensemble import Ensemble
+from ...data.spectrum import StickSpectrum, TRPESMap
+from ...errors import EnsembleWarning, SchemaError
+from ...units import HARTREE_EV
 from . import _kernels_trpes as K
 from .cross_sections import (
     CrossSection,
@@ -114,7 +114,7 @@ def doorway_factor(excitation_energy: npt.ArrayLike, *, pump: GaussianPulse,
 
     Examples
     --------
-    >>> from ensemblelab.compute.pulses import GaussianPulse
+    >>> from ensemblelab.compute.spectroscopy.pulses import GaussianPulse
     >>> w = doorway_factor([4.0, 4.3], pump=GaussianPulse(photon_energy=4.1, fwhm=20.0),
     ...                    transition_dipole=[1.0, 0.5])
     >>> [float(f"{x:.6g}") for x in w]
@@ -502,7 +502,7 @@ def prepare_sticks(
     pump : GaussianPulse, optional
         Used for doorway weights.
     cross_section : str, CrossSection or callable
-        See :func:`ensemblelab.compute.cross_sections.resolve_cross_section`.
+        See :func:`ensemblelab.compute.spectroscopy.cross_sections.resolve_cross_section`.
     weights : {"doorway", "uniform"} or str
         See :func:`trajectory_weights`.
     by : {None, "neutral", "cation", "pair", "diabatic"}
@@ -580,7 +580,8 @@ def prepare_sticks(
         if ens.adt is None:
             raise SchemaError(
                 "by='diabatic' needs ens.adt (adiabatic-to-diabatic matrices). Hint: build "
-                "them with ensemblelab.compute.diabatic (Loewdin, local diabatisation or Boys) "
+                "them with ensemblelab.compute.spectroscopy.ensemble_adt (Loewdin, local "
+                "diabatisation or Boys) "
                 "and ens.replace(adt=...)."
             )
         fa = ens.adt[sticks.snapshot, sticks.state, :] ** 2  # (n_sticks, n_states)
@@ -651,7 +652,7 @@ def compute_trpes(
         True: convolve with the pump-probe cross-correlation (signal at negative
         delays). False: the pure doorway-window signal.
     cross_section : {"dyson", "hydrogenic", "anion-threshold"}, CrossSection or callable
-        Cross-section model (see :mod:`ensemblelab.compute.cross_sections`).
+        Cross-section model (see :mod:`ensemblelab.compute.spectroscopy.cross_sections`).
     weights : {"doorway", "uniform"} or str
         Trajectory weights (see :func:`trajectory_weights`).
     normalise : {"alive", "initial"}
@@ -677,7 +678,7 @@ def compute_trpes(
     --------
     >>> import numpy as np
     >>> from ensemblelab.testing import make_toy_ensemble
-    >>> from ensemblelab.compute.pulses import GaussianPulse
+    >>> from ensemblelab.compute.spectroscopy.pulses import GaussianPulse
     >>> ens = make_toy_ensemble(20, seed=1)
     >>> m = compute_trpes(ens, probe=GaussianPulse(photon_energy=5.0, fwhm=30.0),
     ...                   energies=np.linspace(0, 2, 201), delays=np.arange(-50, 201, 10.0),
@@ -685,7 +686,7 @@ def compute_trpes(
     >>> m.shape, sorted(m.components)
     ((26, 201), ['S0', 'S1', 'S2'])
     """
-    from . import _dask
+    from .. import _dask
 
     if _dask.is_lazy(ens):  # chunked store: reduce chunk by chunk with Dask
         return _dask.compute_trpes(ens, probe=probe, pump=pump, energies=energies, delays=delays,
@@ -849,7 +850,7 @@ def region_intensity(
     ndarray of float, shape (n_snapshots,)
         Region intensity per snapshot row in fs (eV^-1 eV fs), all >= 0.
     """
-    from . import _dask
+    from .. import _dask
 
     if _dask.is_lazy(ens):
         raise SchemaError("region_intensity needs an in-memory ensemble; for a lazy "
@@ -906,7 +907,7 @@ def contributions(
         group key column, ``intensity``, ``share`` and ``n_snapshots``.
         ``attrs["total"]`` holds the region total.
     """
-    from . import _dask
+    from .. import _dask
 
     if _dask.is_lazy(ens):  # chunked store: per-chunk contributions with Dask
         return _dask.contributions(ens, trpes_map, energy_range=energy_range,

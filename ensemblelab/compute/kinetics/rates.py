@@ -42,11 +42,11 @@ import pandas as pd
 from scipy.optimize import least_squares
 from scipy.stats import norm
 
-from ..errors import NumericalWarning, SchemaError
+from ...errors import NumericalWarning, SchemaError
 from . import _kernels_populations as _k
 
 if TYPE_CHECKING:
-    from ..data.ensemble import Ensemble
+    from ...data.ensemble import Ensemble
 
 __all__ = [
     "fit_kinetics",
@@ -464,7 +464,7 @@ def fit_kinetics(
     data : Ensemble or DataFrame
         The ensemble (bootstrap intervals: refit per resample of trajectories),
         or a populations frame (``time, state, population``) from
-        :func:`~ensemblelab.compute.populations.populations`.
+        :func:`~ensemblelab.compute.kinetics.populations.populations`.
     model : {"single", "sequential", "parallel"}
         See the module docstring.
     states : sequence of int or str, optional
@@ -507,7 +507,7 @@ def fit_kinetics(
     >>> bool(lo < res.params["tau"] < hi)
     True
     """
-    from ..data.ensemble import Ensemble
+    from ...data.ensemble import Ensemble
     from .populations import population_arrays
 
     if model not in KINETIC_MODELS:

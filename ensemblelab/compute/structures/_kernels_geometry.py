@@ -1,8 +1,9 @@
 """Array-level geometry kernels (private): batched Kabsch and QCP, descriptors, connectivity.
 
 Every function assumes valid input (shapes checked by the public wrappers in
-:mod:`ensemblelab.compute.geometry` and :mod:`ensemblelab.compute.descriptors`).
-Naive per-frame twins live in :mod:`ensemblelab.compute._reference_geometry`.
+:mod:`ensemblelab.compute.structures.geometry` and
+:mod:`ensemblelab.compute.structures.descriptors`).
+Naive per-frame twins live in :mod:`ensemblelab.compute.structures._reference_geometry`.
 
 Conventions: ``P`` is the mobile set, ``Q`` the reference, both (n_frames, n_atoms, 3)
 (``Q`` may also be (n_atoms, 3)); ``w`` are per-atom weights (n_atoms,). The rotation

@@ -18,11 +18,11 @@ import numpy as np
 import pandas as pd
 from scipy import constants as _sc
 
-from ..errors import SchemaError
+from ...errors import SchemaError
 from . import _kernels_geometry as _k
 
 if TYPE_CHECKING:
-    from ..data.ensemble import Ensemble
+    from ...data.ensemble import Ensemble
 
 __all__ = ["OutlierThresholds", "BROKEN_KINDS", "WARNING_KINDS", "flag_trajectories",
            "kinetic_energy"]
@@ -259,7 +259,7 @@ def flag_trajectories(
     True
     >>> clean = ens.without(table[table.flagged])
     """
-    from . import _dask
+    from .. import _dask
 
     if _dask.is_lazy(ens):  # chunked store: per-chunk checks with Dask
         return _dask.flag_trajectories(ens, thresholds=thresholds, multivariate=multivariate,

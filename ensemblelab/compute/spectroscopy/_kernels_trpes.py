@@ -55,7 +55,7 @@ from typing import Any
 
 import numpy as np
 
-from ..units import FOUR_LN2
+from ...units import FOUR_LN2
 
 __all__ = [
     "DEFAULT_CHUNK",
@@ -560,7 +560,7 @@ def deposit_moments(
     if backend != "numpy":
         kernel = _numba_kernel()
         if kernel is None and backend == "numba":
-            from ..errors import MissingDependencyError
+            from ...errors import MissingDependencyError
 
             raise MissingDependencyError(
                 "numba is required for the compiled TRPES deposit kernel; install with pip "

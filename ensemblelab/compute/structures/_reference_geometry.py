@@ -1,4 +1,4 @@
-"""Naive reference twins of :mod:`ensemblelab.compute._kernels_geometry` (private).
+"""Naive reference twins of :mod:`ensemblelab.compute.structures._kernels_geometry` (private).
 
 Straightforward per-frame / per-pair Python loops with ``np.linalg.svd`` and
 ``math``; slow on purpose and used only by tests and benchmarks to check the

@@ -26,8 +26,8 @@ from typing import Any
 import numpy as np
 import numpy.typing as npt
 
-from ..errors import SchemaError
-from ..units import HARTREE_EV
+from ...errors import SchemaError
+from ...units import HARTREE_EV
 
 __all__ = [
     "CrossSection",

@@ -1,6 +1,6 @@
 """Naive per-trajectory twin of the vectorised FSSH engine (private; for tests and benchmarks).
 
-The same algorithm as :mod:`ensemblelab.compute._kernels_fssh`, written as a
+The same algorithm as :mod:`ensemblelab.compute.dynamics._kernels_fssh`, written as a
 plain Python loop over trajectories and steps with ``numpy.linalg.eigh`` on one
 matrix at a time. Random numbers are drawn exactly as the vectorised driver
 draws them (one row of ``n_traj`` uniforms per step), so both give the same
@@ -13,7 +13,7 @@ from typing import Any
 
 import numpy as np
 
-from ..units import AU_TIME_FS, HARTREE_EV
+from ...units import AU_TIME_FS, HARTREE_EV
 
 __all__ = ["run_fssh_reference"]
 

@@ -1,4 +1,5 @@
-"""Naive reference twins of :mod:`ensemblelab.compute._kernels_trpes` (slow; for tests).
+"""Naive reference twins of :mod:`~ensemblelab.compute.spectroscopy._kernels_trpes`
+(slow; for tests).
 
 Every contribution is evaluated as its own Gaussian at every output energy, and
 the temporal convolution is an explicit loop over delays.
@@ -10,7 +11,7 @@ import math
 
 import numpy as np
 
-from ..units import FOUR_LN2
+from ...units import FOUR_LN2
 
 __all__ = ["pure_map_naive", "convolve_naive", "trpes_naive"]
 
@@ -68,7 +69,7 @@ def convolve_naive(pure, times, delays, *, sigma, t_known, cutoff=8.0, launch_ha
 
 
 def trpes_naive(model, *, energies, delays, fwhm, sigma, normalise="alive"):
-    """A whole map from a :class:`~ensemblelab.compute.spectra.TRPESModel`, naively."""
+    """A whole map from a :class:`~ensemblelab.compute.spectroscopy.spectra.TRPESModel`, naively."""
     s = model.sticks
     pure = pure_map_naive(model.tbin, model.tfrac, s.energy, s.weight, n_time=model.n_time,
                           energies=np.asarray(energies, float), fwhm=fwhm)

@@ -24,8 +24,8 @@ import numpy as np
 from scipy.interpolate import RegularGridInterpolator
 from scipy.optimize import minimize
 
-from ..data.spectrum import TRPESMap
-from ..errors import SchemaError
+from ...data.spectrum import TRPESMap
+from ...errors import SchemaError
 
 __all__ = ["compare_maps", "MapComparison", "resample_map"]
 
