@@ -4,14 +4,21 @@
 temporary sibling folder, then moved into place)::
 
     index.html                      the page (relative links to everything below)
-    figures/trpes_map.png           the total map
+    figures/trpes_map.png           the total map (single column, 300 dpi)
     figures/trpes_by_state.png      its decomposition by neutral state (shared colour scale)
     figures/populations.png         populations with intervals and the kinetic fit
     tables/trpes_map.csv            tidy map (delay, energy, intensity, components)
     tables/populations.csv, tables/kinetics.csv, tables/flags.csv,
     tables/clusters.csv, tables/representatives.csv
-    structures/representatives.xyz  one aligned medoid per cluster (cluster and weight in
-                                    each comment line)
+    structures/representatives.xyz  one aligned medoid per cluster (cluster and
+                                    cluster_fraction in each comment line)
+
+The map starts from the same pulses as the explorer: the ensemble's suggested
+probe and pump (``metadata["suggested_probe"]``, ``["suggested_pump"]``) unless
+given, and the page states them. Every number with an interval carries the
+interval's method and level. A section that cannot be computed (for example every
+trajectory is flagged, or the map's grid is empty) is replaced by a note saying
+why; the rest of the report is still written.
 
 Uses matplotlib without pyplot (no display needed) and never imports the widget stack.
 """
@@ -23,6 +30,8 @@ import os
 import shutil
 import tempfile
 import warnings
+from collections import Counter
+from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import Any
 
@@ -31,15 +40,131 @@ import pandas as pd
 
 from .data.ensemble import Ensemble
 from .errors import StoreError
-from .plotting.spectra import plot_components, plot_map
+from .plotting.populations import savefig, scheme_name
+from .plotting.spectra import plot_components, plot_map, resolve_energy_range
 
-__all__ = ["build_report"]
+__all__ = ["build_report", "hill_formula", "report_pulses"]
+
+#: Bootstrap resamples of the kinetic fits (percentile intervals over trajectories).
+N_BOOT = 1000
+#: Interval level of every interval on the page.
+CI = 0.95
+#: Width (CSS pixels) at which single- and double-column figures are shown.
+_IMG_WIDTH = {"single": 495, "double": 1050}
+
+
+class _Missing(Exception):
+    """A section cannot be computed; the message says why (shown on the page)."""
+
+
+def hill_formula(symbols: Sequence[str]) -> str:
+    """Chemical formula in Hill order: C first, H second, then alphabetical.
+
+    Without carbon every element (H included) is alphabetical; counts of one are
+    omitted (Hill system, common practice).
+
+    Parameters
+    ----------
+    symbols : sequence of str
+        Element symbols, one per atom.
+
+    Returns
+    -------
+    str
+
+    Examples
+    --------
+    >>> hill_formula(["C", "C", "H", "C", "O", "H", "N", "H", "H", "C", "N"])
+    'C4H4N2O'
+    >>> hill_formula(["O", "H", "H"])
+    'H2O'
+    """
+    counts = Counter(str(s).strip().capitalize() for s in symbols)
+    if "C" in counts:
+        order = ["C"] + (["H"] if "H" in counts else []) + sorted(
+            k for k in counts if k not in ("C", "H"))
+    else:
+        order = sorted(counts)
+    return "".join(f"{el}{counts[el] if counts[el] > 1 else ''}" for el in order)
+
+
+def report_pulses(ens: Ensemble, *, photon_energy: float | None = None,
+                  probe_fwhm: float | None = None, pump_fwhm: float | None = None,
+                  pump_photon_energy: float | None = None) -> dict[str, Any]:
+    """The pulses of the report's map: given values, else the ensemble's suggested pulses.
+
+    The same defaults as the explorer's map view: probe photon energy and FWHM from
+    ``metadata["suggested_probe"]``, pump FWHM and photon energy from
+    ``metadata["suggested_pump"]``; 5 eV and 30 fs when the metadata has none. A pump
+    without a photon energy takes the probe's.
+
+    Parameters
+    ----------
+    ens : Ensemble
+    photon_energy, probe_fwhm, pump_fwhm, pump_photon_energy : float, optional
+        Override (eV, fs); ``pump_fwhm=0`` means no pump.
+
+    Returns
+    -------
+    dict
+        ``photon_energy``, ``probe_fwhm``, ``pump_fwhm``, ``pump_photon_energy`` and
+        ``source`` (which values came from where, as text).
+    """
+    meta = ens.metadata or {}
+    probe_meta = meta.get("suggested_probe") or {}
+    pump_meta = meta.get("suggested_pump") or {}
+    picked: dict[str, Any] = {}
+    origin: dict[str, str] = {}
+    for key, given, table, field, fallback in (
+            ("photon_energy", photon_energy, probe_meta, "photon_energy", 5.0),
+            ("probe_fwhm", probe_fwhm, probe_meta, "fwhm", 30.0),
+            ("pump_fwhm", pump_fwhm, pump_meta, "fwhm", 30.0),
+            ("pump_photon_energy", pump_photon_energy, pump_meta, "photon_energy", None)):
+        if given is not None:
+            picked[key], origin[key] = float(given), "given"
+        elif table.get(field) is not None:
+            picked[key], origin[key] = float(table[field]), "suggested"
+        else:
+            picked[key], origin[key] = fallback, "default"
+    if picked["pump_photon_energy"] is None:
+        picked["pump_photon_energy"] = picked["photon_energy"]
+        origin["pump_photon_energy"] = "probe's"
+    kinds = set(origin.values())
+    if kinds <= {"suggested"}:
+        source = "the ensemble's suggested pulses (metadata suggested_probe, suggested_pump)"
+    elif kinds <= {"given"}:
+        source = "as given"
+    else:
+        source = "; ".join(f"{k.replace('_', ' ')}: {v}" for k, v in origin.items())
+        source += (" (suggested = the ensemble's metadata suggested_probe/suggested_pump, "
+                   "default = the package default without a suggestion)")
+    picked["source"] = source
+    return picked
+
+
+def _default_energies(photon_energy: float) -> np.ndarray:
+    # the explorer's default grid (widgets map view): 0 .. h nu, 241 points
+    return np.linspace(0.0, float(photon_energy), 241)
+
+
+def _default_delays(ens: Ensemble, fwhm_cc: float) -> np.ndarray:
+    # the explorer's default grid: 1.5 cross-correlation FWHM before the first time
+    t = ens.snapshots["time"].to_numpy()
+    t = t[np.isfinite(t)]
+    if t.size == 0:
+        raise _Missing("the ensemble has no finite snapshot times, so the delay grid is "
+                       "empty.")
+    return np.linspace(float(t.min()) - 1.5 * fwhm_cc, float(t.max()), 161)
 
 
 def _png(fig: Any, path: Path) -> Path:
     path.parent.mkdir(parents=True, exist_ok=True)
-    fig.savefig(path, format="png", dpi=110)
-    return path
+    return savefig(fig, path)  # 300 dpi (common practice for print)
+
+
+def _img(rel: str, alt: str, width: str = "single") -> str:
+    return (f"<img src='{rel}' alt='{html.escape(alt)}' "
+            f"style='width:{_IMG_WIDTH[width]}px'>")
 
 
 def _csv(table: pd.DataFrame, path: Path) -> Path:
@@ -57,22 +182,90 @@ def _table_html(table: pd.DataFrame, *, max_rows: int = 30) -> str:
     return text
 
 
+def _missing(title: str, reason: str) -> str:
+    return (f"<h2>{html.escape(title)}</h2><p class='missing'><b>Section missing:</b> "
+            f"{html.escape(reason)}</p>")
+
+
+def _section(title: str, build: Callable[[], str], notes: list[str]) -> str:
+    """Run a section builder; on a data problem, a note saying why it is missing."""
+    try:
+        return build()
+    except _Missing as exc:
+        reason = str(exc)
+    except (ValueError, ArithmeticError, RuntimeError) as exc:
+        reason = f"it could not be computed ({type(exc).__name__}: {exc})"
+    notes.append(f"{title}: section missing; {reason}")
+    return _missing(title, reason)
+
+
+def _interval_text(ci: float, method: str) -> str:
+    return f"{int(round(ci * 100))} % {method}"
+
+
+def _fit_table(fits: list[Any], names: dict[int, str]) -> pd.DataFrame:
+    """One row per fitted parameter: scheme, value, interval and how it was obtained."""
+    rows = []
+    for fit in fits:
+        for r in fit.summary.itertuples():
+            rows.append({
+                "scheme": scheme_name(fit, names), "parameter": r.parameter,
+                "value": r.value, "lower": r.lower, "upper": r.upper, "unit": r.unit,
+                "fixed": bool(r.fixed), "rms_residual": float(fit.rmse),
+                "interval": "fixed" if r.fixed else _interval_text(fit.ci,
+                                                                  fit.interval_method),
+            })
+    return pd.DataFrame(rows)
+
+
+def _fit_html(table: pd.DataFrame) -> str:
+    shown = []
+    for r in table.itertuples():
+        if r.fixed:
+            value = f"{r.value:.4g} {r.unit} (fixed)"
+        elif np.isfinite(r.lower) and np.isfinite(r.upper):
+            value = f"{r.value:.4g} {r.unit} [{r.lower:.4g}, {r.upper:.4g}]"
+        else:
+            value = f"{r.value:.4g} {r.unit} (no interval)"
+        shown.append({"scheme": r.scheme, "parameter": r.parameter,
+                      "value [interval]": value, "interval": r.interval,
+                      "rms residual": r.rms_residual})
+    return _table_html(pd.DataFrame(shown))
+
+
+def _sequential_states(pop: pd.DataFrame) -> list[int] | None:
+    """A -> B -> C for a sequential fit: the state populated first, then the others by
+    the time their population peaks (None with fewer than three states)."""
+    states = sorted(int(s) for s in pop["state"].unique())
+    if len(states) < 3:
+        return None
+    first_t = pop["time"].min()
+    start = pop[pop["time"] == first_t].set_index("state")["population"]
+    a = int(start.idxmax())
+    peaks = {s: float(pop.loc[pop["state"] == s].sort_values("population")["time"].iloc[-1])
+             for s in states if s != a}
+    rest = sorted(peaks, key=lambda s: (peaks[s], -s))
+    return [a, *rest[:2]]
+
+
 def build_report(
     ens: Ensemble,
     out: str | os.PathLike[str],
     *,
-    photon_energy: float = 5.0,
-    probe_fwhm: float = 30.0,
-    pump_fwhm: float = 30.0,
+    photon_energy: float | None = None,
+    probe_fwhm: float | None = None,
+    pump_fwhm: float | None = None,
     energies: Any = None,
     delays: Any = None,
+    energy_range: Any = "signal",
     n_clusters: int = 3,
     exclude_flagged: bool = True,
+    n_boot: int = N_BOOT,
     title: str = "ensemblelab report",
     source: str | None = None,
     overwrite: bool = False,
 ) -> Path:
-    """Write an HTML report (map, decompositions, populations and fit, flags, clusters,
+    """Write an HTML report (map, decompositions, populations and fits, flags, clusters,
     representative structures) into the folder `out`.
 
     Parameters
@@ -81,14 +274,22 @@ def build_report(
         The ensemble (never modified).
     out : path
         Output folder; it must not exist unless `overwrite`.
-    photon_energy, probe_fwhm, pump_fwhm : float
-        Probe photon energy (eV) and intensity FWHM of probe and pump (fs).
+    photon_energy, probe_fwhm, pump_fwhm : float, optional
+        Probe photon energy (eV) and intensity FWHM of probe and pump (fs); default
+        the ensemble's suggested pulses, as in the explorer (see :func:`report_pulses`).
     energies, delays : array_like, optional
-        Map grids (eV, fs); default 0 .. photon_energy and the trajectory times.
+        Map grids (eV, fs); default as in the explorer: 0 .. photon energy (241
+        points) and 1.5 cross-correlation FWHM before the first time to the last
+        (161 points).
+    energy_range : "signal", "full" or (float, float)
+        Kinetic-energy range of the map figures: where the map exceeds 1 % of its
+        maximum (padded), the whole grid, or explicit limits in eV.
     n_clusters : int
         Clusters per active state.
     exclude_flagged : bool
         Compute map, populations and clusters without the flagged trajectories.
+    n_boot : int
+        Bootstrap resamples of the kinetic fits (0: covariance intervals, stated).
     title : str
         Page title.
     source : str, optional
@@ -108,6 +309,8 @@ def build_report(
     from .compute.structures.clustering import cluster_snapshots
     from .compute.structures.outliers import flag_trajectories
     from .compute.structures.representatives import cluster_representatives
+    from .io.structures import write_structures
+    from .plotting.populations import plot_populations
 
     out = Path(out)
     if out.exists() and not overwrite:
@@ -115,105 +318,184 @@ def build_report(
     out.parent.mkdir(parents=True, exist_ok=True)
     tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.", dir=out.parent))
     notes: list[str] = []
+    pulses = report_pulses(ens, photon_energy=photon_energy, probe_fwhm=probe_fwhm,
+                           pump_fwhm=pump_fwhm)
+    names = {i: str(lab) for i, lab in enumerate(ens.state_labels)}
     try:
         sections: list[str] = []
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
             # ---------------------------------------------------------- quality
-            flags = flag_trajectories(ens)
-            _csv(flags, tmp / "tables" / "flags.csv")
-            flagged = flags.loc[flags["flagged"].astype(bool)] if "flagged" in flags else flags
-            clean = ens.without(flagged["traj"].tolist()) if exclude_flagged and len(
-                flagged) else ens
-            used = (f"{clean.n_trajectories} of {ens.n_trajectories} trajectories"
-                    + (" (flagged ones left out)" if clean is not ens else ""))
+            state: dict[str, Any] = {"clean": ens, "flagged": pd.DataFrame(),
+                                     "used": f"all {ens.n_trajectories} trajectories"}
+
+            def quality() -> str:
+                flags = flag_trajectories(ens)
+                _csv(flags, tmp / "tables" / "flags.csv")
+                flagged = flags.loc[flags["flagged"].astype(bool)] if "flagged" in flags \
+                    else flags
+                state["flagged"] = flagged
+                if exclude_flagged and len(flagged):
+                    clean = ens.without(flagged["traj"].tolist())
+                    state["clean"] = clean
+                    state["used"] = (f"{clean.n_trajectories} of {ens.n_trajectories} "
+                                     "trajectories (flagged ones left out)")
+                cols = [c for c in ("traj", "reason", "first_bad_time", "score") if c in flags]
+                return (f"<h2>Flagged trajectories</h2><p>{len(flagged)} of "
+                        f"{ens.n_trajectories} flagged.</p>"
+                        + (_table_html(flagged[cols]) if len(flagged) else "")
+                        + "<p><a href='tables/flags.csv'>tables/flags.csv</a></p>")
+
+            quality_html = _section("Flagged trajectories", quality, notes)
+
+            def need_trajectories() -> Ensemble:
+                clean = state["clean"]
+                if clean.n_trajectories == 0:
+                    raise _Missing(
+                        f"every trajectory is flagged ({len(state['flagged'])} of "
+                        f"{ens.n_trajectories}), so none is left to compute it from; see "
+                        "'Flagged trajectories', or build the report with "
+                        "exclude_flagged=False to include them.")
+                return clean
 
             # ---------------------------------------------------------- map
-            probe = GaussianPulse(photon_energy=photon_energy, fwhm=probe_fwhm)
-            pump = GaussianPulse(photon_energy=photon_energy, fwhm=pump_fwhm) \
-                if pump_fwhm > 0 else None
-            t = clean.snapshots["time"].to_numpy()
-            t = t[np.isfinite(t)]
-            e_grid = (np.linspace(0.0, photon_energy, 251) if energies is None
-                      else np.asarray(energies, float))
-            d_grid = (np.linspace(float(t.min()) - 1.5 * np.hypot(probe_fwhm, pump_fwhm),
-                                  float(t.max()), 161) if delays is None
-                      else np.asarray(delays, float))
-            trpes = compute_trpes(clean, probe=probe, pump=pump, energies=e_grid,
-                                  delays=d_grid, by="neutral", progress=False)
-            _png(plot_map(trpes, title="TRPES map (total)"),
-                 tmp / "figures" / "trpes_map.png")
-            _png(plot_components(trpes, include_total=False),
-                 tmp / "figures" / "trpes_by_state.png")
-            _csv(trpes.to_frame(), tmp / "tables" / "trpes_map.csv")
-            sections.append(
-                "<h2>Time-resolved photoelectron spectrum</h2>"
-                f"<p>Probe {photon_energy:g} eV, probe FWHM {probe_fwhm:g} fs, pump FWHM "
-                f"{pump_fwhm:g} fs; {used}.</p>"
-                "<img src='figures/trpes_map.png' alt='TRPES map'>"
-                "<h3>Decomposition by neutral state</h3>"
-                "<img src='figures/trpes_by_state.png' alt='decomposition by state'>"
-                "<p><a href='tables/trpes_map.csv'>tables/trpes_map.csv</a></p>")
+            def trpes_section() -> str:
+                clean = need_trajectories()
+                hv, p_fwhm, q_fwhm = (pulses["photon_energy"], pulses["probe_fwhm"],
+                                      pulses["pump_fwhm"])
+                probe = GaussianPulse(photon_energy=hv, fwhm=p_fwhm)
+                pump = GaussianPulse(photon_energy=pulses["pump_photon_energy"],
+                                     fwhm=q_fwhm) if q_fwhm > 0 else None
+                e_grid = (_default_energies(hv) if energies is None
+                          else np.asarray(energies, float))
+                d_grid = (_default_delays(clean, float(np.hypot(p_fwhm, q_fwhm)))
+                          if delays is None else np.asarray(delays, float))
+                if e_grid.size == 0 or d_grid.size == 0:
+                    raise _Missing(f"the map's grid is empty ({e_grid.size} kinetic energies "
+                                   f"x {d_grid.size} delays); pass non-empty energies and "
+                                   "delays.")
+                trpes = compute_trpes(clean, probe=probe, pump=pump, energies=e_grid,
+                                      delays=d_grid, by="neutral", progress=False,
+                                      **({} if pump is not None else {"weights": "uniform"}))
+                if not np.any(np.isfinite(trpes.intensity) & (trpes.intensity != 0)):
+                    raise _Missing("the map has no signal on its grid (every cell is zero or "
+                                   "undefined); check the photon energy and the grids.")
+                _png(plot_map(trpes, energy_range=energy_range),
+                     tmp / "figures" / "trpes_map.png")
+                _png(plot_components(trpes, include_total=False, energy_range=energy_range),
+                     tmp / "figures" / "trpes_by_state.png")
+                _csv(trpes.to_frame(), tmp / "tables" / "trpes_map.csv")
+                lo, hi = resolve_energy_range(trpes, energy_range)
+                shown = ("where the map exceeds 1 % of its maximum (padded)"
+                         if isinstance(energy_range, str) and energy_range == "signal"
+                         else "as chosen")
+                pump_text = (f"pump {pulses['pump_photon_energy']:g} eV, FWHM {q_fwhm:g} fs"
+                             if pump is not None else "no pump (uniform weights)")
+                return (
+                    "<h2>Time-resolved photoelectron spectrum</h2>"
+                    f"<p>Probe {hv:g} eV, FWHM {p_fwhm:g} fs; {pump_text}: "
+                    f"{html.escape(pulses['source'])}. Computed from "
+                    f"{html.escape(state['used'])}. The figures show kinetic energies "
+                    f"{max(lo, float(e_grid[0])):.2g}-{min(hi, float(e_grid[-1])):.2g} eV "
+                    f"({shown}); the grid runs {e_grid[0]:g}-{e_grid[-1]:g} eV (CSV).</p>"
+                    + _img("figures/trpes_map.png", "TRPES map")
+                    + "<h3>Decomposition by neutral state</h3>"
+                    + _img("figures/trpes_by_state.png", "decomposition by state", "double")
+                    + "<p><a href='tables/trpes_map.csv'>tables/trpes_map.csv</a></p>")
+
+            sections.append(_section("Time-resolved photoelectron spectrum", trpes_section,
+                                     notes))
 
             # ---------------------------------------------------------- populations
-            from .plotting.populations import plot_populations
+            def population_section() -> str:
+                clean = need_trajectories()
+                pop = populations(clean, ci=CI)
+                _csv(pop, tmp / "tables" / "populations.csv")
+                fits = []
+                boot = {"n_boot": n_boot} if n_boot > 0 else {"n_boot": 0}
+                try:
+                    fits.append(fit_kinetics(clean, model="single", ci=CI, **boot))
+                except (ValueError, ArithmeticError, RuntimeError) as exc:
+                    notes.append(f"single-exponential fit failed: {exc}")
+                seq = _sequential_states(pop)
+                if seq is not None:
+                    try:
+                        fits.append(fit_kinetics(clean, model="sequential", states=seq,
+                                                 ci=CI, **boot))
+                    except (ValueError, ArithmeticError, RuntimeError) as exc:
+                        notes.append(f"sequential fit failed: {exc}")
+                shown_fit = fits[0] if fits else None  # the first scheme that fitted
+                _png(plot_populations(pop, fit=shown_fit), tmp / "figures" / "populations.png")
+                method = str(pop.attrs.get("method", "wilson"))
+                pop_iv = _interval_text(float(pop.attrs.get("ci", CI)),
+                                        "Wilson score intervals (Kish effective size)"
+                                        if method == "wilson" else f"{method} intervals")
+                text = ("<h2>Populations</h2>"
+                        + _img("figures/populations.png", "populations")
+                        + f"<p>Computed from {html.escape(state['used'])}; bands: "
+                        f"{html.escape(pop_iv)}"
+                        + (f"; dashed: {html.escape(scheme_name(shown_fit, names))} fit"
+                           if shown_fit is not None else "")
+                        + ". <a href='tables/populations.csv'>tables/populations.csv</a></p>")
+                if fits:
+                    table = _fit_table(fits, names)
+                    _csv(table, tmp / "tables" / "kinetics.csv")
+                    text += ("<h3>Kinetic fits</h3><p>Each value with its interval; the "
+                             "interval column gives its level and method.</p>"
+                             + _fit_html(table)
+                             + "<p><a href='tables/kinetics.csv'>tables/kinetics.csv</a></p>")
+                return text
 
-            pop = populations(clean)
-            _csv(pop, tmp / "tables" / "populations.csv")
-            fit = None
-            try:
-                fit = fit_kinetics(pop, model="single", n_boot=0)
-            except Exception as exc:  # noqa: BLE001 - reported on the page
-                notes.append(f"kinetic fit failed: {exc}")
-            fig = plot_populations(pop, fit=fit, title="populations")
-            _png(fig, tmp / "figures" / "populations.png")
-            text = ("<h2>Populations</h2><img src='figures/populations.png' "
-                    "alt='populations'><p><a href='tables/populations.csv'>"
-                    "tables/populations.csv</a></p>")
-            if fit is not None:
-                _csv(fit.summary, tmp / "tables" / "kinetics.csv")
-                text += ("<h3>Kinetic fit</h3>" + f"<p>{html.escape(fit.interval_method)}</p>"
-                         + _table_html(fit.summary))
-            sections.append(text)
-
-            # ---------------------------------------------------------- flags
-            cols = [c for c in ("traj", "reason", "first_bad_time", "score") if c in flags]
-            sections.append(
-                f"<h2>Flagged trajectories</h2><p>{len(flagged)} of {ens.n_trajectories} "
-                "flagged.</p>" + (_table_html(flagged[cols]) if len(flagged) else "")
-                + "<p><a href='tables/flags.csv'>tables/flags.csv</a></p>")
+            sections.append(_section("Populations", population_section, notes))
+            sections.append(quality_html)
 
             # ---------------------------------------------------------- clusters
-            clusters = cluster_snapshots(clean, n_clusters=n_clusters)
-            _csv(clusters.summary, tmp / "tables" / "clusters.csv")
-            keep = [c for c in ("cluster", "size", "fraction", "lower", "upper",
-                                "n_trajectories", "time_median", "silhouette")
-                    if c in clusters.summary]
-            reps = cluster_representatives(clean, clusters)
-            _, rep_csv = reps.write(tmp / "structures" / "representatives.xyz",
-                                      format="xyz", overwrite=True)
-            rep_csv_target = tmp / "tables" / "representatives.csv"
-            shutil.move(str(rep_csv), rep_csv_target)
-            rkeep = [c for c in ("group", "snapshot", "traj", "time", "active", "weight",
-                                 "rmsd_to_reference") if c in reps.table]
-            sections.append(
-                "<h2>Clusters (by structure within each active state)</h2>"
-                + _table_html(clusters.summary[keep])
-                + "<p><a href='tables/clusters.csv'>tables/clusters.csv</a></p>"
-                "<h2>Representative structures</h2><p>The medoid of every cluster, aligned "
-                "to a common frame: <a href='structures/representatives.xyz'>"
-                "structures/representatives.xyz</a>.</p>" + _table_html(reps.table[rkeep]))
+            def cluster_section() -> str:
+                clean = need_trajectories()
+                clusters = cluster_snapshots(clean, n_clusters=n_clusters)
+                summary = clusters.summary.copy()
+                if {"lower", "upper"} <= set(summary.columns):
+                    summary["interval"] = _interval_text(
+                        CI, "Wilson score interval (Kish effective size)")
+                _csv(summary, tmp / "tables" / "clusters.csv")
+                keep = [c for c in ("cluster", "size", "fraction", "lower", "upper", "interval",
+                                    "n_trajectories", "time_median", "silhouette")
+                        if c in summary]
+                reps = cluster_representatives(clean, clusters)
+                table = reps.table.rename(columns={"weight": "cluster_fraction"})
+                info_cols = [c for c in ("group", "kind", "cluster_fraction", "snapshot", "traj",
+                                         "time", "active", "size") if c in table]
+                _, rep_csv = write_structures(tmp / "structures" / "representatives.xyz",
+                                              reps.geometries, reps.symbols, table[info_cols],
+                                              format="xyz", overwrite=True)
+                rep_csv_target = tmp / "tables" / "representatives.csv"
+                shutil.move(str(rep_csv), rep_csv_target)
+                rkeep = [c for c in ("group", "snapshot", "traj", "time", "active",
+                                     "cluster_fraction", "rmsd_to_reference") if c in table]
+                return (
+                    "<h2>Clusters (by structure within each active state)</h2>"
+                    + _table_html(summary[keep])
+                    + "<p><a href='tables/clusters.csv'>tables/clusters.csv</a></p>"
+                    "<h2>Representative structures</h2><p>The medoid of every cluster, "
+                    "aligned to a common frame: <a href='structures/representatives.xyz'>"
+                    "structures/representatives.xyz</a>. cluster_fraction: the fraction of "
+                    "snapshots in the medoid's cluster.</p>" + _table_html(table[rkeep]))
+
+            sections.append(_section("Clusters", cluster_section, notes))
         notes += sorted({f"{w.category.__name__}: {w.message}" for w in caught})
 
+        summary_rows = [(k, f"{ens.n_atoms} ({hill_formula(ens.symbols)})" if k == "atoms"
+                         else v) for k, v in ens._summary_rows()]
         head = (f"<h1>{html.escape(title)}</h1>"
                 + (f"<p>Data: {html.escape(source)}</p>" if source else "")
-                + _table_html(pd.DataFrame(ens._summary_rows(), columns=["", "value"])))
+                + _table_html(pd.DataFrame(summary_rows, columns=["", "value"])))
         if notes:
             head += "<h3>Notes</h3><ul>" + "".join(
                 f"<li>{html.escape(n)}</li>" for n in notes) + "</ul>"
         style = ("body{font-family:sans-serif;max-width:1100px;margin:auto} "
                  "img{max-width:100%} table{border-collapse:collapse;font-size:13px} "
-                 "td,th{padding:2px 8px;border-bottom:1px solid #ddd}")
+                 "td,th{padding:2px 8px;border-bottom:1px solid #ddd} "
+                 ".missing{background:#fff4e5;padding:6px 10px}")
         page = ("<!DOCTYPE html><html><head><meta charset='utf-8'>"
                 f"<title>{html.escape(title)}</title><style>{style}</style></head><body>"
                 + head + "".join(sections) + "</body></html>")

@@ -21,9 +21,12 @@ def register(subparsers: Any) -> None:
     p.add_argument("path", nargs="?", default=None, help="ensemble (default: the demo data)")
     p.add_argument("--out", required=True, help="output folder (must not exist)")
     p.add_argument("--overwrite", action="store_true", help="replace an existing output folder")
-    p.add_argument("--photon-energy", type=float, default=5.0, help="probe photon energy / eV")
-    p.add_argument("--probe-fwhm", type=float, default=30.0, help="probe FWHM / fs")
-    p.add_argument("--pump-fwhm", type=float, default=30.0, help="pump FWHM / fs")
+    p.add_argument("--photon-energy", type=float, default=None,
+                   help="probe photon energy / eV (default: the ensemble's suggested probe)")
+    p.add_argument("--probe-fwhm", type=float, default=None,
+                   help="probe FWHM / fs (default: the ensemble's suggested probe)")
+    p.add_argument("--pump-fwhm", type=float, default=None,
+                   help="pump FWHM / fs (default: the ensemble's suggested pump)")
     p.add_argument("--clusters", type=int, default=3, help="clusters per active state")
     p.add_argument("--nonfinite", choices=("keep", "raise"), default="keep",
                    help="NaN/inf values in the data: keep (flagged) or refuse")

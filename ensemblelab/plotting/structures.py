@@ -1,4 +1,8 @@
-"""Static matplotlib figures for clusters, hop clusters and flagged trajectories."""
+"""Static matplotlib figures for clusters, hop clusters and flagged trajectories.
+
+Headless (Agg canvas, no pyplot), sized for a journal column (common practice);
+export with :func:`ensemblelab.plotting.populations.savefig`.
+"""
 
 from __future__ import annotations
 
@@ -6,6 +10,8 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import pandas as pd
+
+from ._style import TIME, legend_fontsize, new_figure, round_ticks
 
 if TYPE_CHECKING:
     from matplotlib.axes import Axes
@@ -16,10 +22,7 @@ __all__ = ["plot_cluster_summary", "plot_cluster_time_profile", "plot_flags", "p
 def _axes(ax: Axes | None) -> Axes:
     if ax is not None:
         return ax
-    import matplotlib.pyplot as plt
-
-    _, ax = plt.subplots(figsize=(6, 3.5))
-    return ax
+    return new_figure("single", aspect=0.75).add_subplot()
 
 
 def _bars(ax: Axes, names: list[str], frac: np.ndarray, lo: np.ndarray, hi: np.ndarray,
@@ -29,6 +32,8 @@ def _bars(ax: Axes, names: list[str], frac: np.ndarray, lo: np.ndarray, hi: np.n
     ax.bar(x, frac, yerr=err, capsize=3, color="0.55", edgecolor="0.2")
     ax.set_xticks(x, names, rotation=45, ha="right")
     ax.set_ylabel(ylabel)
+    round_ticks(ax)
+    ax.set_xticks(x, names, rotation=45, ha="right")
     return ax
 
 
@@ -74,10 +79,12 @@ def plot_cluster_time_profile(result: Any, *, bins: int = 20, ax: Axes | None = 
     ax = _axes(ax)
     prof: pd.DataFrame = result.time_profile(bins=bins)
     ax.stackplot(prof.index.to_numpy(), prof.to_numpy().T, labels=[str(c) for c in prof.columns])
-    ax.set_xlabel("time / fs")
+    ax.set_xlabel(TIME)
     ax.set_ylabel("fraction")
     ax.set_ylim(0, 1)
-    ax.legend(fontsize="small", loc="upper left", bbox_to_anchor=(1.0, 1.0))
+    round_ticks(ax)
+    ax.legend(fontsize=legend_fontsize(), loc="upper left", bbox_to_anchor=(1.0, 1.0),
+              frameon=False)
     return ax
 
 
@@ -102,4 +109,5 @@ def plot_flags(table: pd.DataFrame, *, ax: Axes | None = None) -> Axes:
     else:
         ax.barh(counts.index.tolist(), counts.to_numpy(), color="0.55", edgecolor="0.2")
     ax.set_xlabel(f"trajectories (of {len(table)})")
+    ax.xaxis.get_major_locator().set_params(integer=True)
     return ax

@@ -133,45 +133,33 @@ def export_figures(model: SelectionModel, folder: str | os.PathLike[str], *,
     """
     if fmt not in ("png", "svg"):
         raise ValueError(f"fmt must be 'png' or 'svg'; got {fmt!r}.")
-    from matplotlib.figure import Figure
+    # publication figures (column width, 300 dpi, rasterised map cells): ensemblelab.plotting
+    from ..plotting.populations import plot_populations
+    from ..plotting.spectra import plot_map
 
     folder = Path(folder)
     out = []
     if model.trpes_map is not None:
-        fig = Figure(figsize=(5.0, 4.0), dpi=120)
-        ax = fig.add_subplot()
-        trpes = model.trpes_map
-        mesh = ax.pcolormesh(trpes.energies, trpes.delays, np.nan_to_num(trpes.intensity),
-                             shading="auto", cmap="viridis")
-        fig.colorbar(mesh, ax=ax, label="intensity / eV$^{-1}$")
+        fig = plot_map(model.trpes_map)
+        ax = fig.axes[0]
         if model.energy_range is not None and model.delay_range is not None:
             (e0, e1), (d0, d1) = model.energy_range, model.delay_range
             ax.plot([e0, e1, e1, e0, e0], [d0, d0, d1, d1, d0], "w--", lw=1.5)
-        ax.set_xlabel("kinetic energy / eV")
-        ax.set_ylabel("delay / fs")
-        fig.tight_layout()
         out.append(_save(fig, folder / f"trpes_map.{fmt}", fmt))
     if populations is not None and len(populations):
-        fig = Figure(figsize=(5.0, 3.5), dpi=120)
-        ax = fig.add_subplot()
-        for state, part in populations.groupby("state"):
-            label = model.ens.state_labels[int(state)]
-            line, = ax.plot(part["time"], part["population"], label=label)
-            ax.fill_between(part["time"], part["lower"], part["upper"], alpha=0.2,
-                            color=line.get_color(), lw=0)
+        if "label" not in populations:
+            populations = populations.assign(label=[model.ens.state_labels[int(s)]
+                                                    for s in populations["state"]])
+        fig = plot_populations(populations, band_alpha=0.2)
         if model.delay_range is not None:
-            ax.axvspan(*model.delay_range, color="0.7", alpha=0.3)
-        ax.set_xlabel("time / fs")
-        ax.set_ylabel("population")
-        ax.legend()
-        fig.tight_layout()
+            fig.axes[0].axvspan(*model.delay_range, color="0.7", alpha=0.3)
         out.append(_save(fig, folder / f"populations.{fmt}", fmt))
     return out
 
 
 def _save(fig: Any, path: Path, fmt: str) -> Path:
     buf = _io.BytesIO()
-    fig.savefig(buf, format=fmt)
+    fig.savefig(buf, format=fmt, dpi=300)  # >= 300 dpi for print (common practice)
     return write_bytes_atomic(path, buf.getvalue())
 
 

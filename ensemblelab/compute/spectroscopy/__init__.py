@@ -27,6 +27,7 @@ from .diabatic import (
     loewdin,
     propagate_adt,
 )
+from .extent import signal_extent
 from .pulses import GaussianPulse, cross_correlation, cross_correlation_fwhm
 from .spectra import (
     TRPESModel,
@@ -70,4 +71,5 @@ __all__ = [
     "compare_maps",
     "MapComparison",
     "resample_map",
+    "signal_extent",
 ]
