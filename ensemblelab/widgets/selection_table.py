@@ -9,6 +9,7 @@ import ipywidgets as widgets
 import numpy as np
 import pandas as pd
 
+from ..compute.bands import group_band
 from ..data.ensemble import Ensemble
 from ._base import View
 from ._messages import MessageArea
@@ -18,60 +19,6 @@ __all__ = ["SelectionTable", "group_band"]
 
 _GROUP_LABELS = {"cluster": "cluster", "state": "state", "traj": "trajectory"}
 _N_ROWS = 25
-
-
-def group_band(band: pd.DataFrame, by: str, *, state_labels: Any = None,
-               cluster_names: dict[str, str] | None = None) -> pd.DataFrame:
-    """Sum the per-snapshot contributions of a band over groups.
-
-    Parameters
-    ----------
-    band : DataFrame
-        ``SelectionModel.band``: one row per contributing snapshot with
-        ``share``, ``intensity`` and the grouping columns.
-    by : {"cluster", "state", "traj"}
-        Grouping (``"state"`` groups by the active state).
-    state_labels : sequence of str, optional
-        Names of the neutral states, for the ``label`` column.
-    cluster_names : dict, optional
-        Display name of each cluster code (keys: the code as a string).
-
-    Returns
-    -------
-    DataFrame
-        ``key`` (group value), ``label``, ``share`` (sums to the band's covered
-        share), ``intensity``, ``n_snapshots``, ``n_trajectories``; largest
-        share first.
-    """
-    column = {"cluster": "cluster", "state": "active", "traj": "traj"}[by]
-    grouped = band.groupby(column, sort=False)
-    out = pd.DataFrame({
-        "share": grouped["share"].sum(),
-        "intensity": grouped["intensity"].sum() if "intensity" in band else np.nan,
-        "n_snapshots": grouped.size(),
-        "n_trajectories": grouped["traj"].nunique(),
-    })
-    out.index.name = "key"
-    out = out.reset_index().sort_values("share", ascending=False, kind="stable")
-    return _labelled(out.reset_index(drop=True), by, state_labels=state_labels,
-                     cluster_names=cluster_names)
-
-
-def _labelled(out: pd.DataFrame, by: str, *, state_labels: Any = None,
-              cluster_names: dict[str, str] | None = None) -> pd.DataFrame:
-    """Insert the display ``label`` of each group key (column 1) of a grouped table."""
-    if by == "state" and state_labels is not None:
-        labels = [state_labels[int(k)] for k in out["key"]]
-    elif by == "cluster":
-        names = cluster_names or {}
-        labels = ["unclustered" if int(k) < 0 else f"cluster {names.get(str(int(k)), int(k))}"
-                  for k in out["key"]]
-    elif by == "state":
-        labels = [f"state {int(k)}" for k in out["key"]]
-    else:
-        labels = [f"trajectory {int(k)}" for k in out["key"]]
-    out.insert(1, "label", labels)
-    return out.reset_index(drop=True)
 
 
 class SelectionTable(View):
@@ -92,7 +39,7 @@ class SelectionTable(View):
     Attributes
     ----------
     table : DataFrame or None
-        The grouped contributions shown (see :func:`group_band`).
+        The grouped contributions shown (see :func:`ensemblelab.compute.bands.group_band`).
     rows : ipywidgets.Select
         One option per group; choosing one selects its snapshots.
     summary : ipywidgets.HTML
