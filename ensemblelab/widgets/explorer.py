@@ -262,9 +262,9 @@ class Explorer:
                                ("decomposition", v.decomposition)):
                     if key in params and w.value != params[key]:
                         w.value = params[key]
-            v._recompute_later.flush()
+            v.flush()
         apply_session(self.model, state)
         if self.map_view is not None:
-            self.map_view._recompute_later.flush()
+            self.map_view.flush()
         self.messages.info(f"session restored from {target}")
         return state

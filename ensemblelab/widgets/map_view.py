@@ -264,6 +264,10 @@ class MapView(View):
             pump = GaussianPulse(photon_energy=float(hv), fwhm=float(self.pump_fwhm.value))
         return probe, pump
 
+    def flush(self) -> None:
+        """Run a pending (debounced) recomputation now."""
+        self._recompute_later.flush()
+
     def grids(self) -> tuple[np.ndarray, np.ndarray]:
         """Kinetic-energy grid (eV) and delay grid (fs) of the map."""
         probe, pump = self.pulses()

@@ -1,9 +1,12 @@
 """The explorer end to end in the kernel: brush a band, check every linked view.
 
-The toy ensemble (ensemblelab.testing; method notes section 1.7 scenario,
-computed independently (not published)): S2 ionises to D0 at IP 3.5 eV and S1
-at IP 4.5 eV, so with a 5.0 eV probe the S2 band sits at 1.5 eV and the S1
-band at 0.5 eV kinetic energy; the S2 -> S1 lifetime is 100 fs.
+The toy ensemble (ensemblelab.testing, an invented scenario; computed independently
+(not published)): S2 ionises to D0 at IP 3.5 eV and S1 at IP 4.5 eV, so with a 5.0 eV
+probe the S2 band sits at 1.5 eV and the S1 band at 0.5 eV kinetic energy; the
+S2 -> S1 lifetime is 100 fs.
+
+Each test builds its own Explorer (function scope): no test sees what another did, so
+the order they run in does not matter.
 """
 
 from __future__ import annotations
@@ -21,11 +24,10 @@ MAP = {"photon_energy": 5.0, "probe_fwhm": 30.0, "pump_fwhm": 30.0,
        "energies": np.linspace(0.0, 2.5, 126), "delays": np.arange(-60.0, 201.0, 5.0)}
 
 
-@pytest.fixture(scope="module")
-def app(toy, tmp_path_factory):
-    folder = tmp_path_factory.mktemp("explorer")
-    return Explorer(toy, map_kwargs=MAP, debounce=0, data_path=folder / "toy_store",
-                    export_folder=folder / "export", restore=False)
+@pytest.fixture
+def app(toy, tmp_path):
+    return Explorer(toy, map_kwargs=MAP, debounce=0, data_path=tmp_path / "toy_store",
+                    export_folder=tmp_path / "export", restore=False)
 
 
 def test_explorer_builds_every_view_without_errors(app):
@@ -81,6 +83,8 @@ def test_explorer_choosing_a_table_row_shows_its_structures(app):
 
 
 def test_explorer_exclusion_changes_map_and_populations(app):
+    app.brush((1.35, 1.65), (0.0, 60.0))
+    assert set(app.model.band["traj"]) & {0, 1, 2, 3, 4, 5}
     before = np.array(app.model.trpes_map.intensity)
     n_map, n_pop = app.map_view.n_computed, app.population_view.n_computed
     app.model.exclude([0, 1, 2, 3, 4, 5])
