@@ -18,7 +18,8 @@ def test_mapview_brush_selects_band_only_when_released(model):
     assert model.energy_range == (1.3, 1.7) and model.delay_range == (0.0, 50.0)
     assert model.band is not None and len(model.selected) > 0
     # cuts: the spectrum over the selected delays peaks at the S2 band, 1.5 eV
-    # (5.0 eV probe - 3.5 eV IP; ensemblelab.testing / method notes 1.7)
+    # (5.0 eV probe - 3.5 eV IP; the invented toy of ensemblelab.testing, computed
+    # independently (not published))
     spectrum, trace = view.cuts()
     assert GRID["energies"][np.argmax(spectrum)] == pytest.approx(1.5, abs=0.03)
     assert trace.shape == GRID["delays"].shape
