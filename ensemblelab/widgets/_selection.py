@@ -12,7 +12,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 from traitlets import Any as AnyTrait
-from traitlets import Dict, HasTraits, Instance, Int, Tuple, Unicode, observe, validate
+from traitlets import Dict, Float, HasTraits, Instance, Int, Tuple, Unicode, observe, validate
 
 from ..compute.bands import BAND_GROUPS, BandAnalysis, SnapshotGroups, analyse_band, group_band
 from ..data.ensemble import Ensemble
@@ -89,6 +89,10 @@ class SelectionModel(HasTraits):
         At most this many snapshot ids go to :attr:`selected`.
     band_rows : int
         At most this many strongest snapshots are kept in :attr:`band`.
+    min_signal_fraction : float
+        A band holding less than this fraction of the map's integrated intensity
+        (default 0.1 %) has no signal: :attr:`band` is then empty (``attrs["no_signal"]``)
+        and nothing is selected.
     """
 
     ens = Instance(Ensemble)
@@ -110,6 +114,7 @@ class SelectionModel(HasTraits):
     group_by = Unicode("cluster")
     max_selected = Int(200)
     band_rows = Int(1000)
+    min_signal_fraction = Float(1e-3)
 
     def __init__(self, ens: Ensemble, **traits: Any) -> None:
         if not isinstance(ens, Ensemble):
@@ -265,7 +270,11 @@ class SelectionModel(HasTraits):
         d_rng = _range(delay_range, "delay_range")
         analysis = analyse_band(self.current, self.trpes_map, energy_range=e_rng,
                                 delay_range=d_rng, groups=self._groups())
-        band = self._decorate(analysis.table(max(self.band_rows, self.max_selected)))
+        fraction = _signal_fraction(analysis.total, self.trpes_map)
+        no_signal = fraction < self.min_signal_fraction
+        band = self._decorate(analysis.table(
+            0 if no_signal else max(self.band_rows, self.max_selected)))
+        band.attrs.update(signal_fraction=fraction, no_signal=no_signal)
         self._analysis, self._analysis_band, self._analysis_for = analysis, band, self.current
         with self.hold_trait_notifications():
             self.energy_range = e_rng
@@ -434,3 +443,12 @@ class SelectionModel(HasTraits):
             if column not in table.columns:
                 table[column] = self.ens.snapshots[column].to_numpy()[rows]
         return table
+
+
+def _signal_fraction(band_total: float, trpes_map: Any) -> float:
+    """The band's intensity as a fraction of the map's (both integrated over eV and fs)."""
+    values = np.nan_to_num(np.asarray(trpes_map.intensity, float))
+    e = np.asarray(trpes_map.energies, float)
+    d = np.asarray(trpes_map.delays, float)
+    whole = float(np.trapezoid(np.trapezoid(values, e, axis=1), d)) if values.size else 0.0
+    return float(band_total / whole) if whole > 0 else 0.0

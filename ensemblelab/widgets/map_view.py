@@ -431,8 +431,11 @@ class MapView(View):
             with self.figure.hold_sync():
                 self.brush.selected_x = np.array(e, dtype=float)
                 self.brush.selected_y = np.array(d, dtype=float)
+        band = self.model.band
+        empty = band is not None and bool(band.attrs.get("no_signal", False))
         self.band_label.value = (
-            f"band: {e[0]:.2f}–{e[1]:.2f} eV, {d[0]:.0f}–{d[1]:.0f} fs")
+            f"band: {e[0]:.2f}–{e[1]:.2f} eV, {d[0]:.0f}–{d[1]:.0f} fs"
+            + (" · <i>no signal here</i>" if empty else ""))
 
     def cuts(self) -> tuple[np.ndarray, np.ndarray]:
         """Spectrum averaged over the selected delays and trace averaged over the energies.

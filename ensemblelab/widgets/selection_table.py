@@ -14,6 +14,7 @@ from ..data.ensemble import Ensemble
 from ._base import View
 from ._messages import MessageArea
 from ._selection import SelectionModel
+from ._util import format_percent
 
 __all__ = ["SelectionTable", "group_band"]
 
@@ -98,8 +99,16 @@ class SelectionTable(View):
                 self.table = None
                 self.rows.options = []
                 self.html.value = ""
-                self.summary.value = ("<i>No band selected.</i>" if band is None else
-                                      "<i>Nothing contributes to this band.</i>")
+                if band is None:
+                    self.summary.value = "<i>No band selected.</i>"
+                elif band.attrs.get("no_signal"):
+                    self.summary.value = (
+                        "<i class='ensemblelab-no-signal'>No signal here: this band holds "
+                        f"{format_percent(band.attrs.get('signal_fraction', 0.0))} of the "
+                        f"map's intensity (below "
+                        f"{format_percent(self.model.min_signal_fraction)}).</i>")
+                else:
+                    self.summary.value = "<i>Nothing contributes to this band.</i>"
                 return
             table = self.model.group_table(self.model.group_by)
             self.table = table
@@ -113,7 +122,7 @@ class SelectionTable(View):
                 f"{info['total']:.4g}")
             shown = table.head(_N_ROWS)
             self.rows.options = [
-                (f"{r.label:<16s} {100 * r.share:6.1f} %  ({r.n_snapshots} snapshots, "
+                (f"{r.label:<16s} {format_percent(r.share):>8s}  ({r.n_snapshots} snapshots, "
                  f"{r.n_trajectories} traj.)", _plain(r.key))
                 for r in shown.itertuples()
             ]
@@ -121,7 +130,7 @@ class SelectionTable(View):
             head = "".join(f"<th>{h}</th>" for h in (
                 _GROUP_LABELS[self.model.group_by], "share", "snapshots", "trajectories"))
             body = "".join(
-                f"<tr><td>{html.escape(r.label)}</td><td>{100 * r.share:.1f} %</td>"
+                f"<tr><td>{html.escape(r.label)}</td><td>{format_percent(r.share)}</td>"
                 f"<td>{r.n_snapshots}</td><td>{r.n_trajectories}</td></tr>"
                 for r in shown.itertuples())
             self.html.value = f"<table style='font-size:12px'><tr>{head}</tr>{body}</table>"

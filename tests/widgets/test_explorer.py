@@ -175,3 +175,22 @@ def test_explorer_exports_structures_figures_tables(app, tmp_path):
     assert by_state["share"].sum() == pytest.approx(1.0, abs=1e-9)
     assert {"populations.csv", "band_snapshots.csv", "trpes_map.csv"} <= {
         p.name for p in Path(tmp_path).iterdir()}
+
+
+def test_explorer_empty_brush_says_no_signal_and_shows_nothing(app):
+    # far above both toy bands (1.5 and 0.5 eV; see the module docstring) and late
+    app.brush((2.2, 2.5), (150.0, 200.0))
+    model = app.model
+    band = model.band
+    assert band is not None and band.empty and band.attrs["no_signal"]
+    assert band.attrs["signal_fraction"] < model.min_signal_fraction  # stated: 0.1 %
+    assert model.selected == ()
+    assert "No signal here" in app.selection_table.summary.value
+    assert "below 0.1 %" in app.selection_table.summary.value
+    assert app.selection_table.rows.options == ()
+    assert app.structure_view.shown_ids == ()
+    assert "no signal here" in app.map_view.band_label.value
+    # a band on the S2 signal is not empty
+    app.brush((1.35, 1.65), (0.0, 60.0))
+    assert not model.band.attrs["no_signal"] and model.band.attrs["signal_fraction"] > 0.01
+    assert app.messages.errors == []
