@@ -194,3 +194,31 @@ def test_explorer_empty_brush_says_no_signal_and_shows_nothing(app):
     app.brush((1.35, 1.65), (0.0, 60.0))
     assert not model.band.attrs["no_signal"] and model.band.attrs["signal_fraction"] > 0.01
     assert app.messages.errors == []
+
+
+def test_explorer_header_counts_after_exclusion_and_show_switches_tabs(app, toy):
+    assert f"{toy.n_trajectories} trajectories" in app.header.value
+    assert "excluded" not in app.header.value
+    n_map, n_pop = app.map_view.n_computed, app.population_view.n_computed
+    app.model.exclude([3, 5])
+    n_left = toy.n_trajectories - 2
+    assert f"{n_left} trajectories" in app.header.value
+    assert f"2 of {toy.n_trajectories} excluded (trajectories 3, 5)" in app.header.value
+    # every view uses the same exclusion state: the map and the populations are of
+    # the remaining trajectories
+    assert app.model.current.n_trajectories == n_left
+    assert (app.map_view.n_computed, app.population_view.n_computed) == (n_map + 1, n_pop + 1)
+    assert "<b class='ensemblelab-n-excluded'>2</b> excluded: 3, 5" in \
+        app.quality_view.summary.value
+    app.model.restore([3, 5])
+    assert "excluded" not in app.header.value
+    # "show trajectory" in the quality tab switches to the trajectory tab
+    app.tabs.selected_index = 1
+    qv = app.quality_view
+    key = 7
+    qv.rows.options = [(f"trajectory {key}", key)]  # as if flagged
+    qv.rows.value = (key,)
+    qv.show_button.click()
+    assert app.tabs.selected_index == 0
+    assert app.model.trajectory == key and app.trajectory_view.shown == key
+    assert app.messages.errors == []
