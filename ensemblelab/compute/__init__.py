@@ -10,7 +10,9 @@ this package re-exports (imported on first use, see :mod:`ensemblelab._exports`)
 - :mod:`~ensemblelab.compute.structures`: alignment, descriptors, clustering,
   representatives, quality flags;
 - :mod:`~ensemblelab.compute.dynamics`: initial conditions, model Hamiltonians,
-  surface hopping.
+  surface hopping;
+- :mod:`~ensemblelab.compute.bands`: what makes a band of a map (strongest snapshots,
+  groups, shares).
 """
 
 from __future__ import annotations
@@ -22,6 +24,7 @@ DOMAINS = (
     "ensemblelab.compute.kinetics",
     "ensemblelab.compute.structures",
     "ensemblelab.compute.dynamics",
+    "ensemblelab.compute.bands",
 )
 
 __all__, __getattr__, __dir__ = lazy_exports("ensemblelab.compute", DOMAINS, globals())

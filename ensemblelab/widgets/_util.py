@@ -9,7 +9,7 @@ from typing import Any
 
 import ipywidgets as widgets
 
-__all__ = ["Debouncer", "busy", "trait_default"]
+__all__ = ["Debouncer", "busy", "format_percent", "trait_default"]
 
 
 class Debouncer:
@@ -87,3 +87,22 @@ def busy(label: widgets.HTML, text: str) -> Iterator[None]:
 def trait_default(value: Any, default: Any) -> Any:
     """`value` unless it is None."""
     return default if value is None else value
+
+
+def format_percent(fraction: float | None) -> str:
+    """A fraction as a percentage with sensible digits: ``"86.7 %"``, ``"< 0.1 %"``.
+
+    One decimal from 0.1 % up (``"100.0 %"`` for the whole); below that two
+    significant digits down to 0.001 %, then ``"< 0.001 %"``; exactly 0 is ``"0 %"``;
+    None or NaN is ``"-"``.
+    """
+    if fraction is None or fraction != fraction:
+        return "-"
+    p = 100.0 * float(fraction)
+    if p == 0.0:
+        return "0 %"
+    if abs(p) >= 0.1:
+        return f"{p:.1f} %"
+    if abs(p) >= 0.001:
+        return f"{p:.2g} %"
+    return "< 0.001 %" if p > 0 else "> -0.001 %"

@@ -64,6 +64,11 @@ class Explorer:
     map_view, population_view, structure_view, selection_table, trajectory_view,
     quality_view, export : the views (None where one failed to build; see :attr:`messages`)
     widget : ipywidgets.VBox
+    header : ipywidgets.HTML
+        Trajectories and snapshots used by every view (after exclusions), and the
+        excluded trajectories.
+    tabs : ipywidgets.Tab
+        Trajectory, quality and export tabs.
     last_update_ms : float or None
         In-kernel time of the last band selection, from the brush event to every
         view updated.
@@ -180,11 +185,34 @@ class Explorer:
             return view.widget
         return widgets.HTML(f"<i>The {html.escape(name)} is unavailable (see the messages).</i>")
 
+    def header_text(self) -> str:
+        """The header: trajectories and snapshots used by every view, and the exclusions."""
+        ens, cur = self.model.ens, self.model.current
+        excluded = self.model.excluded
+        text = (f"{cur.n_trajectories} trajectories, {cur.n_snapshots} snapshots, "
+                f"{ens.n_atoms} atoms")
+        if excluded:
+            listed = ", ".join(str(t) for t in excluded[:12]) + (" ..." if len(excluded) > 12
+                                                                 else "")
+            text += (f" · {len(excluded)} of {ens.n_trajectories} excluded "
+                     f"(trajectories {listed})")
+        return text
+
+    def _on_excluded_change(self, change: dict | None = None) -> None:
+        self.header.value = (f"<span class='ensemblelab-header-counts'>"
+                             f"{html.escape(self.header_text())}</span>")
+
+    def _show_trajectory(self, traj: int) -> None:
+        """Bring the trajectory tab forward (the quality view's "show trajectory")."""
+        self.tabs.selected_index = 0
+
     def _layout(self) -> widgets.VBox:
-        title = widgets.HTML(
-            f"<h3 style='margin:4px 0'>ensemblelab explorer</h3>"
-            f"<span>{self.model.ens.n_trajectories} trajectories, "
-            f"{self.model.ens.n_snapshots} snapshots, {self.model.ens.n_atoms} atoms</span>")
+        self.header = widgets.HTML()
+        self.header.add_class("ensemblelab-header")
+        self._on_excluded_change()
+        self.model.observe(self.messages.guard(self._on_excluded_change), names="excluded")
+        title = widgets.VBox([widgets.HTML("<h3 style='margin:4px 0'>ensemblelab explorer</h3>"),
+                              self.header])
         top = widgets.HBox([self._panel(self.map_view, "map view"),
                             self._panel(self.structure_view, "structure view")])
         middle = widgets.HBox([
@@ -193,11 +221,14 @@ class Explorer:
             widgets.VBox([self._panel(self.population_view, "population view")],
                          layout=widgets.Layout(width="60%")),
         ])
-        tabs = widgets.Tab(children=[self._panel(self.trajectory_view, "trajectory view"),
+        self.tabs = tabs = widgets.Tab(children=[
+            self._panel(self.trajectory_view, "trajectory view"),
                                      self._panel(self.quality_view, "quality view"),
                                      self._panel(self.export, "export")])
         for i, name in enumerate(("trajectory", "quality", "export")):
             tabs.set_title(i, name)
+        if self.quality_view is not None:
+            self.quality_view.on_show(self._show_trajectory)
         head = widgets.HTML("<b>messages</b>")
         return widgets.VBox([title, top, middle, tabs, head, self.messages.widget])
 
@@ -262,9 +293,9 @@ class Explorer:
                                ("decomposition", v.decomposition)):
                     if key in params and w.value != params[key]:
                         w.value = params[key]
-            v._recompute_later.flush()
+            v.flush()
         apply_session(self.model, state)
         if self.map_view is not None:
-            self.map_view._recompute_later.flush()
+            self.map_view.flush()
         self.messages.info(f"session restored from {target}")
         return state

@@ -189,7 +189,7 @@ class MapView(View):
             marks=[self.heatmap, self.box], axes=[ax, ay, ac], interaction=self.brush,
             layout=widgets.Layout(width="520px", height="420px"),
             fig_margin={"top": 20, "bottom": 45, "left": 60, "right": 70},
-            padding_x=0, padding_y=0,
+            padding_x=0, padding_y=0, display_toolbar=False,  # no toolbar over the map
         )
         self.figure.add_class("ensemblelab-map")
 
@@ -197,6 +197,7 @@ class MapView(View):
         self.grid = widgets.GridBox(layout=widgets.Layout(
             grid_template_columns="repeat(3, 240px)", grid_gap="2px"))
         self._small_scale = bqplot.ColorScale(scheme="viridis")
+        self._small_maps: list[tuple[bqplot.Figure, bqplot.HeatMap]] = []  # reused
 
         # cuts
         self.cx = bqplot.LinearScale()
@@ -263,6 +264,10 @@ class MapView(View):
                 float(self.photon_energy.value)
             pump = GaussianPulse(photon_energy=float(hv), fwhm=float(self.pump_fwhm.value))
         return probe, pump
+
+    def flush(self) -> None:
+        """Run a pending (debounced) recomputation now."""
+        self._recompute_later.flush()
 
     def grids(self) -> tuple[np.ndarray, np.ndarray]:
         """Kinetic-energy grid (eV) and delay grid (fs) of the map."""
@@ -369,8 +374,10 @@ class MapView(View):
             self.heatmap.x = energies
             self.heatmap.y = delays
             self.heatmap.color = np.nan_to_num(values)
-            self.x.min, self.x.max = float(energies[0]), float(energies[-1])
-            self.y.min, self.y.max = float(delays[0]), float(delays[-1])
+            # one set of axes for every layer: the simulated map's grid
+            e_sim, d_sim = np.asarray(trpes.energies, float), np.asarray(trpes.delays, float)
+            self.x.min, self.x.max = float(e_sim[0]), float(e_sim[-1])
+            self.y.min, self.y.max = float(d_sim[0]), float(d_sim[-1])
         self._draw_grid(trpes)
         self._draw_box()
         self._draw_cuts()
@@ -386,30 +393,49 @@ class MapView(View):
         lo = float(finite.min()) if finite.size else 0.0
         hi = float(finite.max()) if finite.size else 1.0
         self._small_scale.min, self._small_scale.max = lo, (hi if hi > lo else lo + 1.0)
-        figs = []
-        for name, values in zip(names, stack, strict=True):
+        e = np.asarray(trpes.energies, float)
+        d = np.asarray(trpes.delays, float)
+        for i, (name, values) in enumerate(zip(names, stack, strict=True)):
+            fig, hm = self._small_map(i)
+            with fig.hold_sync():
+                hm.x, hm.y, hm.color = e, d, np.nan_to_num(values)
+                fig.title = str(name)
+        self.grid.children = tuple(fig for fig, _ in self._small_maps[: len(names)])
+
+    def _small_map(self, i: int) -> tuple[bqplot.Figure, bqplot.HeatMap]:
+        """The `i`-th small map of the decomposition grid (made once, then reused)."""
+        while len(self._small_maps) <= i:
             xs, ys = bqplot.LinearScale(), bqplot.LinearScale()
-            hm = _heatmap(xs, ys, self._small_scale, np.asarray(trpes.energies, float),
-                          np.asarray(trpes.delays, float), np.nan_to_num(values))
+            e0 = np.linspace(0, 1, 3)
+            hm = _heatmap(xs, ys, self._small_scale, e0, e0, np.zeros((3, 3)))
             fig = bqplot.Figure(
-                marks=[hm], title=str(name), padding_x=0, padding_y=0,
+                marks=[hm], padding_x=0, padding_y=0, display_toolbar=False,
                 axes=[bqplot.Axis(scale=xs, num_ticks=3),
                       bqplot.Axis(scale=ys, side="left", num_ticks=3)],
                 layout=widgets.Layout(width="238px", height="200px"),
                 fig_margin={"top": 25, "bottom": 25, "left": 40, "right": 8})
-            figs.append(fig)
-        self.grid.children = tuple(figs)
+            self._small_maps.append((fig, hm))
+        return self._small_maps[i]
 
     def _draw_box(self) -> None:
         e, d = self.model.energy_range, self.model.delay_range
         if e is None or d is None:
             self.box.x, self.box.y = np.zeros(0), np.zeros(0)
+            if not self.brush.brushing:
+                self.brush.selected_x, self.brush.selected_y = None, None
             self.band_label.value = "<i>Drag a box over a band to see what makes it.</i>"
             return
         self.box.x = np.array([e[0], e[1], e[1], e[0], e[0]])
         self.box.y = np.array([d[0], d[0], d[1], d[1], d[0]])
+        if not self.brush.brushing:  # the brush moves with the data (no ghost box)
+            with self.figure.hold_sync():
+                self.brush.selected_x = np.array(e, dtype=float)
+                self.brush.selected_y = np.array(d, dtype=float)
+        band = self.model.band
+        empty = band is not None and bool(band.attrs.get("no_signal", False))
         self.band_label.value = (
-            f"band: {e[0]:.2f}–{e[1]:.2f} eV, {d[0]:.0f}–{d[1]:.0f} fs")
+            f"band: {e[0]:.2f}–{e[1]:.2f} eV, {d[0]:.0f}–{d[1]:.0f} fs"
+            + (" · <i>no signal here</i>" if empty else ""))
 
     def cuts(self) -> tuple[np.ndarray, np.ndarray]:
         """Spectrum averaged over the selected delays and trace averaged over the energies.
@@ -445,14 +471,18 @@ class MapView(View):
                 me, md = np.asarray(m.energies, float), np.asarray(m.delays, float)
                 values = np.nan_to_num(np.asarray(m.intensity, float)) / max(result.scale,
                                                                                1e-300)
-                cut_e = values[_mask(md, self.model.delay_range)].mean(axis=0)
-                cut_d = values[:, _mask(me, self.model.energy_range)].mean(axis=1)
                 ie = (e >= me.min()) & (e <= me.max())
                 idl = (d >= md.min()) & (d <= md.max())
                 if ie.sum() >= 2 and idl.sum() >= 2:
                     e, d = e[ie], d[idl]
-                    ys = [spectrum[ie], np.interp(e, me, cut_e)]
-                    yt = [trace[idl], np.interp(d, md, cut_d)]
+                    ys, yt = [spectrum[ie]], [trace[idl]]
+                    # a selection outside the measured grid: no measured cut (not its edge)
+                    if not _outside(md, self.model.delay_range):
+                        cut_e = values[_mask(md, self.model.delay_range)].mean(axis=0)
+                        ys.append(np.interp(e, me, cut_e))
+                    if not _outside(me, self.model.energy_range):
+                        cut_d = values[:, _mask(me, self.model.energy_range)].mean(axis=1)
+                        yt.append(np.interp(d, md, cut_d))
         with self.delay_cut.hold_sync(), self.energy_cut.hold_sync():
             self.delay_cut_line.x = e
             self.delay_cut_line.y = np.vstack(ys)
@@ -467,3 +497,8 @@ def _mask(grid: np.ndarray, rng: tuple[float, float] | None) -> np.ndarray:
     if not m.any():
         m[np.argmin(np.abs(grid - 0.5 * (rng[0] + rng[1])))] = True
     return m
+
+
+def _outside(grid: np.ndarray, rng: tuple[float, float] | None) -> bool:
+    """True when the range `rng` does not overlap the span of `grid`."""
+    return rng is not None and (rng[1] < grid.min() or rng[0] > grid.max())

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import html
 from typing import Any
 
 import bqplot
@@ -65,6 +66,10 @@ class PopulationView(View):
         The populations shown.
     fit_result : KineticsResult or None
         The last fit.
+    fit_roles : list of ipywidgets.Dropdown
+        The states in the roles A, B, C (shown for the two- and three-state models).
+    fit_label : ipywidgets.HTML
+        Each fitted time constant with the states it belongs to.
     """
 
     title = "population view"
@@ -90,7 +95,7 @@ class PopulationView(View):
             kinds.append("diabatic")
         if kind not in kinds:
             raise ValueError(f"kind must be one of {kinds} for this ensemble; got {kind!r}.")
-        self.fit_states = fit_states
+        self._fit_problem = ""
         self.irf_fwhm = irf_fwhm
         self.time_grid = None if time_grid is None else np.asarray(time_grid, float)
         self.table: pd.DataFrame | None = None
@@ -102,6 +107,19 @@ class PopulationView(View):
         self.fit = widgets.Dropdown(options=["none", "single", "sequential", "parallel"],
                                     value=fit, description="fit",
                                     layout=widgets.Layout(width="180px"))
+        labels = list(ens.state_labels)
+        roles = self.default_fit_states() if fit_states is None else \
+            [self._state_index(v) for v in fit_states]
+        self.fit_roles = [
+            widgets.Dropdown(options=([("-", -1)] if i > 0 else []) +
+                             [(str(lab), k) for k, lab in enumerate(labels)],
+                             value=roles[i] if i < len(roles) else -1,
+                             description=name, layout=widgets.Layout(width="120px"),
+                             style={"description_width": "18px"})
+            for i, name in enumerate(("A", "B", "C")) if i < max(len(labels), 2)
+        ]
+        self.roles_box = widgets.HBox(self.fit_roles)
+        self.roles_box.add_class("ensemblelab-fit-states")
         self.status = widgets.HTML()
         self.fit_label = widgets.HTML()
         self.fit_label.add_class("ensemblelab-fit-label")
@@ -144,12 +162,14 @@ class PopulationView(View):
         self._recompute_later = Debouncer(self._guard(self.recompute), delay=debounce)
         self.kind.observe(lambda change: self._recompute_later(), names="value")
         self.fit.observe(lambda change: self._recompute_later(), names="value")
+        for w in self.fit_roles:
+            w.observe(lambda change: self._recompute_later(), names="value")
         self.selector.observe(self._guard(self._on_selector_change), names="selected")
         self._observe(lambda change: self._recompute_later(), "excluded")
         self._observe(self._on_delay_range_change, "delay_range")
         self._observe(self._on_time_change, "time")
-        self._finish(widgets.HBox([self.kind, self.fit, self.status]), self.figure,
-                     self.fit_label)
+        self._finish(widgets.HBox([self.kind, self.fit, self.roles_box, self.status]),
+                     self.figure, self.fit_label)
         self.recompute()
         self._on_delay_range_change()
 
@@ -173,25 +193,80 @@ class PopulationView(View):
             table = populations(ens, kind=self.kind.value, time_grid=self._grid())
             self.table = table
             self.fit_result = None
+            self._fit_problem = ""
+            self.roles_box.layout.display = "none" if self.fit.value in ("none", "single") \
+                else "flex"
             if self.fit.value != "none":
                 self.fit_result = self._fit(table)
         self.n_computed += 1
         self._draw()
         return table
 
+    def default_fit_states(self) -> list[int]:
+        """States in the roles A, B, C by default: the most populated state at the start,
+        then the others from the highest to the lowest (a cascade down the ladder)."""
+        ens = self.model.current
+        n_states = ens.n_states
+        snap = ens.snapshots
+        t = snap["time"].to_numpy()
+        first = snap["active"].to_numpy()[t == np.nanmin(t)] if t.size else np.zeros(0, int)
+        start = int(np.bincount(first, minlength=n_states).argmax()) if first.size else \
+            n_states - 1
+        return [start] + [k for k in range(n_states - 1, -1, -1) if k != start][:2]
+
+    def _state_index(self, value: Any) -> int:
+        labels = list(self.model.ens.state_labels)
+        if isinstance(value, str) and value in labels:
+            return labels.index(value)
+        k = int(value)
+        if not 0 <= k < len(labels):
+            raise ValueError(f"fit_states: state {value!r} is not one of {labels} "
+                             f"(indices 0-{len(labels) - 1}).")
+        return k
+
+    @property
+    def fit_states(self) -> list[int]:
+        """The states chosen for the roles A, B[, C] of the kinetic model."""
+        return [int(w.value) for w in self.fit_roles if w.value is not None and w.value >= 0]
+
+    @fit_states.setter
+    def fit_states(self, states: Any) -> None:
+        if states is None or not hasattr(self, "fit_roles"):
+            return
+        roles = [self._state_index(v) for v in states]
+        for i, w in enumerate(self.fit_roles):
+            w.value = roles[i] if i < len(roles) else -1
+
     def _fit(self, table: pd.DataFrame) -> Any:
         from ..compute.kinetics.rates import fit_kinetics
 
         kwargs: dict[str, Any] = {"model": self.fit.value, "n_boot": 0}
-        if self.fit_states is not None:
-            kwargs["states"] = self.fit_states
-        elif self.fit.value != "single":
-            raise ValueError(
-                f"the {self.fit.value!r} model needs fit_states (states in the roles A, B, C); "
-                "pass PopulationView(..., fit_states=[2, 1, 0]).")
+        if self.fit.value != "single":
+            states = self.fit_states
+            if len(set(states)) != len(states) or len(states) < 2:
+                self._fit_problem = (f"choose different states for A, B{', C' * (len(states) > 2)}"
+                                     f" of the {self.fit.value} model")
+                return None
+            kwargs["states"] = states
         if self.irf_fwhm:
             kwargs["irf_fwhm"] = float(self.irf_fwhm)
         return fit_kinetics(table, **kwargs)
+
+    def fit_text(self) -> str:
+        """The fit as text: each time constant with the states it belongs to."""
+        res = self.fit_result
+        if res is None:
+            return self._fit_problem
+        names = [str(self.model.ens.state_labels[k]) for k in res.states]
+        a, rest = names[0], names[1:]
+        where = {"tau": f"{a} decay" if res.model == "single" else f"{a} → {', '.join(rest)}",
+                 "tau1": f"{a} → {rest[0]}" if rest else a,
+                 "tau2": f"{rest[0]} → {rest[1]}" if len(rest) > 1 else
+                 (f"{rest[0]} decay" if rest else "")}
+        parts = [f"{k} ({where.get(k, k)}) = {v:.1f} fs" for k, v in res.time_constants.items()]
+        if res.model == "parallel" and "branching" in res.params and rest:
+            parts.append(f"branching to {rest[0]} = {100 * res.params['branching']:.1f} %")
+        return f"{res.model} fit: " + ", ".join(parts)
 
     # ------------------------------------------------------------------ drawing
     def _draw(self) -> None:
@@ -220,12 +295,11 @@ class PopulationView(View):
                 self.fit_lines.x = fitted.index.to_numpy(float)
                 self.fit_lines.y = fitted.to_numpy(float).T
                 self.fit_lines.visible = True
-                taus = ", ".join(f"{k} = {v:.1f} fs"
-                                 for k, v in self.fit_result.time_constants.items())
-                self.fit_label.value = f"{self.fit_result.model} fit: {taus}"
+                self.fit_label.value = html.escape(self.fit_text())
             else:
                 self.fit_lines.visible = False
-                self.fit_label.value = ""
+                self.fit_label.value = (f"<i>{html.escape(self._fit_problem)}</i>"
+                                        if self._fit_problem else "")
 
     # ------------------------------------------------------------------ handlers
     def _on_delay_range_change(self, change: dict | None = None) -> None:

@@ -55,6 +55,7 @@ class QualityView(View):
             from ..compute.structures.outliers import flag_trajectories
 
             self.model.flags = flag_trajectories(self.model.ens, **dict(flag_kwargs or {}))
+        self._show_callbacks: list[Any] = []
         self.rows = widgets.SelectMultiple(options=[], rows=8,
                                            layout=widgets.Layout(width="100%"))
         self.rows.add_class("ensemblelab-quality-rows")
@@ -101,9 +102,16 @@ class QualityView(View):
         """Restore excluded trajectories (ids)."""
         self.model.restore([int(t) for t in trajs])
 
+    def on_show(self, callback: Any) -> None:
+        """Register ``callback(traj)``, called after "show trajectory" set ``model.trajectory``."""
+        self._show_callbacks.append(callback)
+
     def _on_show_click(self, button: Any) -> None:
         if self.rows.value:
-            self.model.trajectory = int(self.rows.value[0])
+            traj = int(self.rows.value[0])
+            self.model.trajectory = traj
+            for callback in self._show_callbacks:
+                callback(traj)
 
     def _on_excluded_change(self, change: dict) -> None:
         self._render()

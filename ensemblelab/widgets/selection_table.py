@@ -9,69 +9,17 @@ import ipywidgets as widgets
 import numpy as np
 import pandas as pd
 
+from ..compute.bands import group_band
 from ..data.ensemble import Ensemble
 from ._base import View
 from ._messages import MessageArea
 from ._selection import SelectionModel
+from ._util import format_percent
 
 __all__ = ["SelectionTable", "group_band"]
 
 _GROUP_LABELS = {"cluster": "cluster", "state": "state", "traj": "trajectory"}
 _N_ROWS = 25
-
-
-def group_band(band: pd.DataFrame, by: str, *, state_labels: Any = None,
-               cluster_names: dict[str, str] | None = None) -> pd.DataFrame:
-    """Sum the per-snapshot contributions of a band over groups.
-
-    Parameters
-    ----------
-    band : DataFrame
-        ``SelectionModel.band``: one row per contributing snapshot with
-        ``share``, ``intensity`` and the grouping columns.
-    by : {"cluster", "state", "traj"}
-        Grouping (``"state"`` groups by the active state).
-    state_labels : sequence of str, optional
-        Names of the neutral states, for the ``label`` column.
-    cluster_names : dict, optional
-        Display name of each cluster code (keys: the code as a string).
-
-    Returns
-    -------
-    DataFrame
-        ``key`` (group value), ``label``, ``share`` (sums to the band's covered
-        share), ``intensity``, ``n_snapshots``, ``n_trajectories``; largest
-        share first.
-    """
-    column = {"cluster": "cluster", "state": "active", "traj": "traj"}[by]
-    grouped = band.groupby(column, sort=False)
-    out = pd.DataFrame({
-        "share": grouped["share"].sum(),
-        "intensity": grouped["intensity"].sum() if "intensity" in band else np.nan,
-        "n_snapshots": grouped.size(),
-        "n_trajectories": grouped["traj"].nunique(),
-    })
-    out.index.name = "key"
-    out = out.reset_index().sort_values("share", ascending=False, kind="stable")
-    return _labelled(out.reset_index(drop=True), by, state_labels=state_labels,
-                     cluster_names=cluster_names)
-
-
-def _labelled(out: pd.DataFrame, by: str, *, state_labels: Any = None,
-              cluster_names: dict[str, str] | None = None) -> pd.DataFrame:
-    """Insert the display ``label`` of each group key (column 1) of a grouped table."""
-    if by == "state" and state_labels is not None:
-        labels = [state_labels[int(k)] for k in out["key"]]
-    elif by == "cluster":
-        names = cluster_names or {}
-        labels = ["unclustered" if int(k) < 0 else f"cluster {names.get(str(int(k)), int(k))}"
-                  for k in out["key"]]
-    elif by == "state":
-        labels = [f"state {int(k)}" for k in out["key"]]
-    else:
-        labels = [f"trajectory {int(k)}" for k in out["key"]]
-    out.insert(1, "label", labels)
-    return out.reset_index(drop=True)
 
 
 class SelectionTable(View):
@@ -92,7 +40,7 @@ class SelectionTable(View):
     Attributes
     ----------
     table : DataFrame or None
-        The grouped contributions shown (see :func:`group_band`).
+        The grouped contributions shown (see :func:`ensemblelab.compute.bands.group_band`).
     rows : ipywidgets.Select
         One option per group; choosing one selects its snapshots.
     summary : ipywidgets.HTML
@@ -151,8 +99,16 @@ class SelectionTable(View):
                 self.table = None
                 self.rows.options = []
                 self.html.value = ""
-                self.summary.value = ("<i>No band selected.</i>" if band is None else
-                                      "<i>Nothing contributes to this band.</i>")
+                if band is None:
+                    self.summary.value = "<i>No band selected.</i>"
+                elif band.attrs.get("no_signal"):
+                    self.summary.value = (
+                        "<i class='ensemblelab-no-signal'>No signal here: this band holds "
+                        f"{format_percent(band.attrs.get('signal_fraction', 0.0))} of the "
+                        f"map's intensity (below "
+                        f"{format_percent(self.model.min_signal_fraction)}).</i>")
+                else:
+                    self.summary.value = "<i>Nothing contributes to this band.</i>"
                 return
             table = self.model.group_table(self.model.group_by)
             self.table = table
@@ -166,7 +122,7 @@ class SelectionTable(View):
                 f"{info['total']:.4g}")
             shown = table.head(_N_ROWS)
             self.rows.options = [
-                (f"{r.label:<16s} {100 * r.share:6.1f} %  ({r.n_snapshots} snapshots, "
+                (f"{r.label:<16s} {format_percent(r.share):>8s}  ({r.n_snapshots} snapshots, "
                  f"{r.n_trajectories} traj.)", _plain(r.key))
                 for r in shown.itertuples()
             ]
@@ -174,7 +130,7 @@ class SelectionTable(View):
             head = "".join(f"<th>{h}</th>" for h in (
                 _GROUP_LABELS[self.model.group_by], "share", "snapshots", "trajectories"))
             body = "".join(
-                f"<tr><td>{html.escape(r.label)}</td><td>{100 * r.share:.1f} %</td>"
+                f"<tr><td>{html.escape(r.label)}</td><td>{format_percent(r.share)}</td>"
                 f"<td>{r.n_snapshots}</td><td>{r.n_trajectories}</td></tr>"
                 for r in shown.itertuples())
             self.html.value = f"<table style='font-size:12px'><tr>{head}</tr>{body}</table>"

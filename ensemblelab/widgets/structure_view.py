@@ -14,6 +14,7 @@ from ._base import View
 from ._messages import MessageArea
 from ._ngl import EnsembleStructure
 from ._selection import SelectionModel
+from ._util import format_percent
 
 __all__ = ["StructureView"]
 
@@ -264,7 +265,7 @@ def _cells(i: int, info: dict[str, Any]) -> list[Any]:
     share = info.get("share")
     return [i, info["traj"], f"{info['time']:.1f}", info["state"],
             info["cluster_name"], f"{info['weight']:.3g}",
-            "-" if share is None else f"{100 * share:.2g} %"]
+            format_percent(share)]
 
 
 def _caption_line(info: dict[str, Any]) -> str:
@@ -272,5 +273,5 @@ def _caption_line(info: dict[str, Any]) -> str:
     text = (f"trajectory {info['traj']} · t = {info['time']:.1f} fs · state {info['state']} · "
             f"cluster {cluster} · weight {info['weight']:.3g}")
     if info.get("share") is not None:
-        text += f" · share {100 * info['share']:.2g} %"
+        text += f" · share {format_percent(info['share'])}"
     return f"<b class='ensemblelab-caption-line'>{html.escape(text)}</b>"

@@ -14,7 +14,6 @@ import pytest
 from ensemblelab.compute.spectroscopy.pulses import GaussianPulse
 from ensemblelab.compute.spectroscopy.spectra import compute_trpes, contributions
 from ensemblelab.widgets import SelectionModel, SelectionTable
-from ensemblelab.widgets._selection import _strongest
 from ensemblelab.widgets.export import export_tables
 
 BAND = {"energy_range": (0.2, 1.8), "delay_range": (0.0, 150.0)}
@@ -160,20 +159,6 @@ def test_band_follows_exclusions_and_new_clusters(small_band, toy, trpes):
     model.clusters = np.zeros(toy.n_snapshots, dtype=int)
     table = model.group_table("cluster")
     assert list(table["key"]) == [0] and table["share"].iloc[0] == pytest.approx(1.0)
-
-
-@pytest.mark.parametrize("n", [50, 300_000])
-def test_strongest_matches_a_stable_sort(n):
-    rng = np.random.default_rng(3)
-    x = np.round(rng.exponential(size=n), 2)  # many ties
-    x[rng.integers(0, n, n // 3)] = 0.0
-    for k in (1, 7, 40):
-        got = _strongest(x, k)
-        ref = np.argsort(-x, kind="stable")[:k]  # computed independently (not published)
-        np.testing.assert_array_equal(x[got], x[ref])
-        assert np.all(np.diff(got[x[got] == x[got][-1]]) > 0)  # ties in row order
-    assert _strongest(x, 0).size == 0
-    np.testing.assert_array_equal(_strongest(x, n + 5), np.argsort(-x, kind="stable"))
 
 
 def test_share_beyond_the_kept_rows_with_exclusions(small_band, toy, trpes):

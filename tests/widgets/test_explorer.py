@@ -1,9 +1,12 @@
 """The explorer end to end in the kernel: brush a band, check every linked view.
 
-The toy ensemble (ensemblelab.testing; method notes section 1.7 scenario,
-computed independently (not published)): S2 ionises to D0 at IP 3.5 eV and S1
-at IP 4.5 eV, so with a 5.0 eV probe the S2 band sits at 1.5 eV and the S1
-band at 0.5 eV kinetic energy; the S2 -> S1 lifetime is 100 fs.
+The toy ensemble (ensemblelab.testing, an invented scenario; computed independently
+(not published)): S2 ionises to D0 at IP 3.5 eV and S1 at IP 4.5 eV, so with a 5.0 eV
+probe the S2 band sits at 1.5 eV and the S1 band at 0.5 eV kinetic energy; the
+S2 -> S1 lifetime is 100 fs.
+
+Each test builds its own Explorer (function scope): no test sees what another did, so
+the order they run in does not matter.
 """
 
 from __future__ import annotations
@@ -21,11 +24,10 @@ MAP = {"photon_energy": 5.0, "probe_fwhm": 30.0, "pump_fwhm": 30.0,
        "energies": np.linspace(0.0, 2.5, 126), "delays": np.arange(-60.0, 201.0, 5.0)}
 
 
-@pytest.fixture(scope="module")
-def app(toy, tmp_path_factory):
-    folder = tmp_path_factory.mktemp("explorer")
-    return Explorer(toy, map_kwargs=MAP, debounce=0, data_path=folder / "toy_store",
-                    export_folder=folder / "export", restore=False)
+@pytest.fixture
+def app(toy, tmp_path):
+    return Explorer(toy, map_kwargs=MAP, debounce=0, data_path=tmp_path / "toy_store",
+                    export_folder=tmp_path / "export", restore=False)
 
 
 def test_explorer_builds_every_view_without_errors(app):
@@ -81,6 +83,8 @@ def test_explorer_choosing_a_table_row_shows_its_structures(app):
 
 
 def test_explorer_exclusion_changes_map_and_populations(app):
+    app.brush((1.35, 1.65), (0.0, 60.0))
+    assert set(app.model.band["traj"]) & {0, 1, 2, 3, 4, 5}
     before = np.array(app.model.trpes_map.intensity)
     n_map, n_pop = app.map_view.n_computed, app.population_view.n_computed
     app.model.exclude([0, 1, 2, 3, 4, 5])
@@ -171,3 +175,50 @@ def test_explorer_exports_structures_figures_tables(app, tmp_path):
     assert by_state["share"].sum() == pytest.approx(1.0, abs=1e-9)
     assert {"populations.csv", "band_snapshots.csv", "trpes_map.csv"} <= {
         p.name for p in Path(tmp_path).iterdir()}
+
+
+def test_explorer_empty_brush_says_no_signal_and_shows_nothing(app):
+    # far above both toy bands (1.5 and 0.5 eV; see the module docstring) and late
+    app.brush((2.2, 2.5), (150.0, 200.0))
+    model = app.model
+    band = model.band
+    assert band is not None and band.empty and band.attrs["no_signal"]
+    assert band.attrs["signal_fraction"] < model.min_signal_fraction  # stated: 0.1 %
+    assert model.selected == ()
+    assert "No signal here" in app.selection_table.summary.value
+    assert "below 0.1 %" in app.selection_table.summary.value
+    assert app.selection_table.rows.options == ()
+    assert app.structure_view.shown_ids == ()
+    assert "no signal here" in app.map_view.band_label.value
+    # a band on the S2 signal is not empty
+    app.brush((1.35, 1.65), (0.0, 60.0))
+    assert not model.band.attrs["no_signal"] and model.band.attrs["signal_fraction"] > 0.01
+    assert app.messages.errors == []
+
+
+def test_explorer_header_counts_after_exclusion_and_show_switches_tabs(app, toy):
+    assert f"{toy.n_trajectories} trajectories" in app.header.value
+    assert "excluded" not in app.header.value
+    n_map, n_pop = app.map_view.n_computed, app.population_view.n_computed
+    app.model.exclude([3, 5])
+    n_left = toy.n_trajectories - 2
+    assert f"{n_left} trajectories" in app.header.value
+    assert f"2 of {toy.n_trajectories} excluded (trajectories 3, 5)" in app.header.value
+    # every view uses the same exclusion state: the map and the populations are of
+    # the remaining trajectories
+    assert app.model.current.n_trajectories == n_left
+    assert (app.map_view.n_computed, app.population_view.n_computed) == (n_map + 1, n_pop + 1)
+    assert "<b class='ensemblelab-n-excluded'>2</b> excluded: 3, 5" in \
+        app.quality_view.summary.value
+    app.model.restore([3, 5])
+    assert "excluded" not in app.header.value
+    # "show trajectory" in the quality tab switches to the trajectory tab
+    app.tabs.selected_index = 1
+    qv = app.quality_view
+    key = 7
+    qv.rows.options = [(f"trajectory {key}", key)]  # as if flagged
+    qv.rows.value = (key,)
+    qv.show_button.click()
+    assert app.tabs.selected_index == 0
+    assert app.model.trajectory == key and app.trajectory_view.shown == key
+    assert app.messages.errors == []

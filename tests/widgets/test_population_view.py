@@ -44,3 +44,37 @@ def test_populationview_recomputes_after_exclusion(model, toy):
     at = view.table.query("time == 50.0 and state == 2")["population"].iloc[0]
     assert at == 1.0
     assert not before.equals(view.table)
+
+
+def test_populationview_sequential_fit_states_chosen_in_the_view(model, toy):
+    # the browser picks "sequential" in the fit menu: no fit_states were passed
+    view = PopulationView(model, fit="none", debounce=0)
+    # default roles: S2 (every toy trajectory starts there, ensemblelab.testing), then
+    # the others from the top down: S2 -> S1 -> S0
+    assert view.fit_states == [2, 1, 0]
+    assert view.roles_box.layout.display == "none"
+    view.fit.value = "sequential"
+    assert view.messages.errors == []
+    assert view.roles_box.layout.display == "flex"
+    res = view.fit_result
+    assert res.model == "sequential" and tuple(res.states) == (2, 1, 0)
+    label = view.fit_label.value
+    assert "tau1 (S2 → S1)" in label and "tau2 (S1 → S0)" in label
+    # the toy S2 lifetime is 100 fs (ensemblelab.testing ground truth); 24 trajectories
+    assert 50.0 < res.time_constants["tau1"] < 200.0
+    # a two-state chain: C left empty in the menu
+    view.fit_roles[2].value = -1
+    assert tuple(view.fit_result.states) == (2, 1)
+    # the same state twice: said once in the fit label, no error in the messages
+    view.fit_roles[1].value = 2
+    assert view.fit_result is None and "different states" in view.fit_label.value
+    assert view.messages.errors == []
+    view.fit.value = "single"
+    assert view.fit_label.value.startswith("single fit: tau (S2 decay)")
+
+
+def test_populationview_fit_states_by_label(model):
+    view = PopulationView(model, fit="sequential", fit_states=["S2", "S1"], debounce=0)
+    assert tuple(view.fit_result.states) == (2, 1)
+    assert "tau1 (S2 → S1)" in view.fit_label.value
+    assert [w.value for w in view.fit_roles] == [2, 1, -1]

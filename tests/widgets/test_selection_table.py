@@ -46,3 +46,15 @@ def test_selectiontable_lists_groups_and_row_choice_selects(model, toy):
     view.rows.value = int(top)  # the user chooses the first row
     expected = band.loc[band["traj"] == top, "snapshot"].tolist()
     assert list(model.selected) == expected and model.trajectory == int(top)
+
+
+def test_format_percent_has_sensible_digits():
+    from ensemblelab.widgets._util import format_percent
+
+    # expected strings: common practice for percentages in tables
+    assert format_percent(0.8671) == "86.7 %"
+    assert format_percent(1.0) == "100.0 %"
+    assert format_percent(0.00067) == "0.067 %"
+    assert format_percent(6.7e-19) == "< 0.001 %"
+    assert format_percent(0.0) == "0 %"
+    assert format_percent(None) == "-" and format_percent(float("nan")) == "-"
