@@ -103,8 +103,8 @@ def build_report(
     """
     from .compute.kinetics.populations import populations
     from .compute.kinetics.rates import fit_kinetics
+    from .compute.spectroscopy import compute_trpes
     from .compute.spectroscopy.pulses import GaussianPulse
-    from .compute.spectroscopy.spectra import compute_trpes
     from .compute.structures.clustering import cluster_snapshots
     from .compute.structures.outliers import flag_trajectories
     from .compute.structures.representatives import cluster_representatives
@@ -139,8 +139,8 @@ def build_report(
             d_grid = (np.linspace(float(t.min()) - 1.5 * np.hypot(probe_fwhm, pump_fwhm),
                                   float(t.max()), 161) if delays is None
                       else np.asarray(delays, float))
-            trpes = compute_trpes(clean, probe=probe, pump=pump, energies=e_grid,
-                                  delays=d_grid, by="neutral", progress=False)
+            trpes = compute_trpes(clean, probe=probe, pump=pump, kinetic_energies=e_grid,
+                                  delays=d_grid, decompose="neutral", progress=False)
             _png(plot_map(trpes, title="TRPES map (total)"),
                  tmp / "figures" / "trpes_map.png")
             _png(plot_components(trpes, include_total=False),

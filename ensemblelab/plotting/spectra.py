@@ -29,7 +29,8 @@ def _figure(figsize: tuple[float, float]) -> Figure:
 
 
 def _mesh(ax: Any, m: TRPESMap, data: np.ndarray, **kw: Any):
-    return ax.pcolormesh(m.energies, m.delays, data, shading="nearest", rasterized=True, **kw)
+    return ax.pcolormesh(m.kinetic_energies, m.delays, data, shading="nearest", rasterized=True,
+                         **kw)
 
 
 def plot_map(m: TRPESMap, *, component: str | None = None, ax: Any = None, cmap: str = "viridis",
@@ -110,22 +111,23 @@ def plot_cuts(m: TRPESMap, *, delays: Sequence[float] = (), energies: Sequence[f
         k += 1
         for d in delays:
             i = int(np.argmin(np.abs(m.delays - d)))
-            ax.plot(m.energies, m.intensity[i], label=f"{m.delays[i]:g} fs")
+            ax.plot(m.kinetic_energies, m.intensity[i], label=f"{m.delays[i]:g} fs")
             if components:
                 for lab, arr in m.components.items():
-                    ax.plot(m.energies, arr[i], lw=0.8, ls="--", label=f"{lab} @ {m.delays[i]:g}")
+                    ax.plot(m.kinetic_energies, arr[i], lw=0.8, ls="--",
+                            label=f"{lab} @ {m.delays[i]:g}")
         ax.set_xlabel("kinetic energy (eV)")
         ax.set_ylabel("intensity (eV$^{-1}$)")
         ax.legend(fontsize="small")
     if len(energies):
         ax = axes[k]
         for e in energies:
-            j = int(np.argmin(np.abs(m.energies - e)))
-            ax.plot(m.delays, m.intensity[:, j], label=f"{m.energies[j]:.3g} eV")
+            j = int(np.argmin(np.abs(m.kinetic_energies - e)))
+            ax.plot(m.delays, m.intensity[:, j], label=f"{m.kinetic_energies[j]:.3g} eV")
             if components:
                 for lab, arr in m.components.items():
                     ax.plot(m.delays, arr[:, j], lw=0.8, ls="--",
-                            label=f"{lab} @ {m.energies[j]:.3g}")
+                            label=f"{lab} @ {m.kinetic_energies[j]:.3g}")
         ax.set_xlabel("delay (fs)")
         ax.set_ylabel("intensity (eV$^{-1}$)")
         ax.legend(fontsize="small")

@@ -53,7 +53,7 @@ class SelectionModel(HasTraits):
     band : DataFrame or None
         The strongest contributing snapshots of the selected band (at most
         :attr:`band_rows` rows, strongest first; the columns of
-        :func:`ensemblelab.compute.spectroscopy.spectra.contributions` with ``by="snapshot"``
+        :func:`ensemblelab.compute.spectroscopy.contributions` with ``by="snapshot"``
         plus ``cluster`` and ``weight``). Shares are fractions of the whole band.
         ``attrs``: ``total`` (band intensity), ``n_snapshots`` (all contributing
         ones), ``complete`` (the table holds every contributing snapshot).
@@ -116,6 +116,7 @@ class SelectionModel(HasTraits):
         super().__init__(ens=ens, **traits)
         self._current_key: tuple[int, ...] | None = None
         self._current: Ensemble | None = None
+        self._stick_models: tuple[Any, Any, Any] | None = None
         ids = ens.snapshots["snapshot"].to_numpy()
         self._identity_ids = bool(np.array_equal(ids, np.arange(ids.size)))
         self._row_of = pd.Index(ids)
@@ -163,6 +164,24 @@ class SelectionModel(HasTraits):
                 f"clusters must have shape (n_snapshots={self.ens.n_snapshots},); got {arr.shape}."
             )
         return arr
+
+    def remember_stick_model(self, trpes_map: Any, model: Any) -> None:
+        """Keep the stick model of `trpes_map` (made from :attr:`current`) for band queries."""
+        self._stick_models = (trpes_map, self.current, model)
+
+    def stick_model(self) -> Any:
+        """The stick model of :attr:`trpes_map` for :attr:`current` (built once per map).
+
+        An explicit cache on this (mutable) model, valid while both stay the same
+        objects; the map itself carries no model.
+        """
+        from ..compute.spectroscopy import model_for_map
+
+        cached = getattr(self, "_stick_models", None)
+        if cached is None or cached[0] is not self.trpes_map or cached[1] is not self.current:
+            cached = (self.trpes_map, self.current, model_for_map(self.current, self.trpes_map))
+            self._stick_models = cached
+        return cached[2]
 
     @observe("trpes_map")
     def _on_trpes_map_change(self, change: Any) -> None:
@@ -241,7 +260,7 @@ class SelectionModel(HasTraits):
     ) -> pd.DataFrame:
         """Select a band of the current map and find what contributes to it.
 
-        Calls :func:`ensemblelab.compute.spectroscopy.spectra.region_intensity` on :attr:`current`
+        Calls :func:`ensemblelab.compute.spectroscopy.region_intensity` on :attr:`current`
         and :attr:`trpes_map` (every snapshot's band intensity, unsorted), keeps the
         :attr:`band_rows` strongest snapshots as :attr:`band` and the array for exact
         grouping (:meth:`group_table`), then updates :attr:`energy_range`,
@@ -395,7 +414,7 @@ class SelectionModel(HasTraits):
         """Every contributing snapshot of the band, strongest first (computed on demand).
 
         The whole per-snapshot table of
-        :func:`ensemblelab.compute.spectroscopy.spectra.contributions` with ``cluster`` and
+        :func:`ensemblelab.compute.spectroscopy.contributions` with ``cluster`` and
         ``weight`` columns: millions of rows on a large ensemble, so this is for
         export, not for every brush. Returns :attr:`band` itself when it is already
         complete (or was set by hand), None without a band.
@@ -404,10 +423,11 @@ class SelectionModel(HasTraits):
         data = self._live_band()
         if band is None or data is None or bool(band.attrs.get("complete", False)):
             return band
-        from ..compute.spectroscopy.spectra import contributions
+        from ..compute.spectroscopy import contributions
 
         table = contributions(self.current, self.trpes_map, energy_range=data.energy_range,
-                              delay_range=data.delay_range, by="snapshot")
+                              delay_range=data.delay_range, group_by="snapshot",
+                              model=self.stick_model())
         return self._decorate(table.reset_index(drop=True))
 
     def exclude(self, trajs: Iterable[int]) -> None:
@@ -521,11 +541,11 @@ class SelectionModel(HasTraits):
     def _band_table(
         self, energy_range: tuple[float, float], delay_range: tuple[float, float]
     ) -> pd.DataFrame:
-        from ..compute.spectroscopy.spectra import region_intensity
+        from ..compute.spectroscopy import region_intensity
 
         cur = self.current
         x = region_intensity(cur, self.trpes_map, energy_range=energy_range,
-                             delay_range=delay_range)
+                             delay_range=delay_range, model=self.stick_model())
         mask = x > 0
         n_snapshots = int(np.count_nonzero(mask))
         total = float(x.sum())

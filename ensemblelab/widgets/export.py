@@ -141,7 +141,7 @@ def export_figures(model: SelectionModel, folder: str | os.PathLike[str], *,
         fig = Figure(figsize=(5.0, 4.0), dpi=120)
         ax = fig.add_subplot()
         trpes = model.trpes_map
-        mesh = ax.pcolormesh(trpes.energies, trpes.delays, np.nan_to_num(trpes.intensity),
+        mesh = ax.pcolormesh(trpes.kinetic_energies, trpes.delays, np.nan_to_num(trpes.intensity),
                              shading="auto", cmap="viridis")
         fig.colorbar(mesh, ax=ax, label="intensity / eV$^{-1}$")
         if model.energy_range is not None and model.delay_range is not None:

@@ -17,7 +17,7 @@ from ._util import Debouncer, busy
 
 __all__ = ["MapView", "DECOMPOSITIONS"]
 
-#: decomposition menu: label -> ``by`` argument of compute_trpes
+#: decomposition menu: label -> ``decompose`` argument of compute_trpes
 DECOMPOSITIONS = {
     "total": None,
     "neutral state": "neutral",
@@ -77,7 +77,7 @@ class MapView(View):
     measured : TRPESMap, optional
         A measured map; shown on request with the residual.
     trpes_kwargs : dict, optional
-        Further keyword arguments of :func:`ensemblelab.compute.spectroscopy.spectra.compute_trpes`
+        Further keyword arguments of :func:`ensemblelab.compute.spectroscopy.compute_trpes`
         (``weights``, ``cross_section``, ``normalise``).
     debounce : float
         Seconds of quiet after a control change before recomputing.
@@ -278,7 +278,7 @@ class MapView(View):
 
     def recompute(self) -> Any:
         """Compute the map of ``model.current`` with the current controls; returns it."""
-        from ..compute.spectroscopy.spectra import compute_trpes
+        from ..compute.spectroscopy import compute_trpes
 
         probe, pump = self.pulses()
         energies, delays = self.grids()
@@ -289,14 +289,16 @@ class MapView(View):
         with busy(self.status, "computing the map ..."), \
                 warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
-            trpes = compute_trpes(
-                self.model.current, probe=probe, pump=pump, energies=energies, delays=delays,
-                resolution=float(self.resolution.value),
-                convolve=bool(self.convolve.value), by=by, progress=False, **kwargs,
+            trpes, sticks = compute_trpes(
+                self.model.current, probe=probe, pump=pump, kinetic_energies=energies,
+                delays=delays, resolution=float(self.resolution.value),
+                convolve=bool(self.convolve.value), decompose=by, progress=False,
+                return_model=True, **kwargs,
             )
         for w in caught:
             self.messages.warning(f"map: {w.message}")
         self.n_computed += 1
+        self.model.remember_stick_model(trpes, sticks)
         self.model.trpes_map = trpes
         return trpes
 
@@ -353,7 +355,7 @@ class MapView(View):
     def _draw(self, trpes: Any) -> None:
         shown = self._layer(trpes)
         values = np.asarray(shown.intensity, dtype=float)
-        energies = np.asarray(shown.energies, float)
+        energies = np.asarray(shown.kinetic_energies, float)
         delays = np.asarray(shown.delays, float)
         finite = values[np.isfinite(values)]
         lo = float(finite.min()) if finite.size else 0.0
@@ -389,7 +391,7 @@ class MapView(View):
         figs = []
         for name, values in zip(names, stack, strict=True):
             xs, ys = bqplot.LinearScale(), bqplot.LinearScale()
-            hm = _heatmap(xs, ys, self._small_scale, np.asarray(trpes.energies, float),
+            hm = _heatmap(xs, ys, self._small_scale, np.asarray(trpes.kinetic_energies, float),
                           np.asarray(trpes.delays, float), np.nan_to_num(values))
             fig = bqplot.Figure(
                 marks=[hm], title=str(name), padding_x=0, padding_y=0,
@@ -423,7 +425,7 @@ class MapView(View):
         trpes = self.model.trpes_map
         values = np.asarray(trpes.intensity, float)
         d_mask = _mask(np.asarray(trpes.delays, float), self.model.delay_range)
-        e_mask = _mask(np.asarray(trpes.energies, float), self.model.energy_range)
+        e_mask = _mask(np.asarray(trpes.kinetic_energies, float), self.model.energy_range)
         return values[d_mask].mean(axis=0), values[:, e_mask].mean(axis=1)
 
     def _draw_cuts(self) -> None:
@@ -431,7 +433,7 @@ class MapView(View):
         if trpes is None:
             return
         spectrum, trace = self.cuts()
-        e = np.asarray(trpes.energies, float)
+        e = np.asarray(trpes.kinetic_energies, float)
         d = np.asarray(trpes.delays, float)
         ys, yt = [spectrum], [trace]
         if self.measured is not None:
@@ -442,7 +444,7 @@ class MapView(View):
             else:
                 # the measured cuts, on the simulated scale, drawn where both grids overlap
                 m = result.measured
-                me, md = np.asarray(m.energies, float), np.asarray(m.delays, float)
+                me, md = np.asarray(m.kinetic_energies, float), np.asarray(m.delays, float)
                 values = np.nan_to_num(np.asarray(m.intensity, float)) / max(result.scale,
                                                                                1e-300)
                 cut_e = values[_mask(md, self.model.delay_range)].mean(axis=0)

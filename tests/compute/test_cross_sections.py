@@ -7,6 +7,7 @@ import pytest
 from scipy.optimize import minimize_scalar
 from test_trpes_fixtures import random_ensemble
 
+from ensemblelab.compute.spectroscopy import compute_trpes
 from ensemblelab.compute.spectroscopy.cross_sections import (
     AnionThresholdLaw,
     DysonNorm,
@@ -16,7 +17,6 @@ from ensemblelab.compute.spectroscopy.cross_sections import (
     resolve_cross_section,
 )
 from ensemblelab.compute.spectroscopy.pulses import GaussianPulse
-from ensemblelab.compute.spectroscopy.spectra import compute_trpes
 from ensemblelab.errors import SchemaError
 from ensemblelab.units import HARTREE_EV
 

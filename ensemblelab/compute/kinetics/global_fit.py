@@ -199,7 +199,8 @@ def _as_arrays(trpes_map: Any, energies, delays, intensity):
                 f"TRPESMap); {type(trpes_map).__name__} lacks {missing}. Hint: or pass "
                 "energies=, delays=, intensity= arrays."
             )
-        energies, delays, intensity = trpes_map.energies, trpes_map.delays, trpes_map.intensity
+        energies, delays = trpes_map.kinetic_energies, trpes_map.delays
+        intensity = trpes_map.intensity
     if energies is None or delays is None or intensity is None:
         raise SchemaError("fit_global needs a map, or all of energies=, delays=, intensity=.")
     e = np.asarray(energies, dtype=np.float64).ravel()

@@ -15,6 +15,7 @@ kernels are ``_kernels_deposit`` and ``_kernels_broadening`` with their naive tw
 from __future__ import annotations
 
 from .compare import MapComparison, compare_maps, resample_map
+from .contributions import contributions, model_for_map, region_intensity
 from .cross_sections import (
     AnionThresholdLaw,
     CrossSection,
@@ -33,7 +34,6 @@ from .diabatic import (
     loewdin,
     propagate_adt,
 )
-from .contributions import contributions, region_intensity
 from .maps import compute_trpes
 from .model import TRPESModel
 from .pulses import GaussianPulse, cross_correlation, cross_correlation_fwhm
@@ -52,6 +52,7 @@ __all__ = [
     "compute_trpes",
     "contributions",
     "region_intensity",
+    "model_for_map",
     "prepare_sticks",
     "TRPESModel",
     "ground_state_ionisation_fraction",

@@ -31,7 +31,7 @@ from .pulses import FWHM_TO_SIGMA
 from .sticks import block_sticks, prepare_sticks
 from .weights import trajectory_weights
 
-__all__ = ["contributions", "region_intensity", "contributions_partial"]
+__all__ = ["contributions", "region_intensity", "contributions_partial", "model_for_map"]
 
 
 def _alive_partial(block: Any, span: BlockSpan, opts: dict[str, Any]) -> dict[str, Any]:
@@ -91,6 +91,30 @@ def _hat_integrals(times: np.ndarray, lo: float, hi: float, t_known: float) -> n
         return out
     out = dt * (prim((hi - times) / dt) - prim((lo - times) / dt))
     return out
+
+
+def model_for_map(ens: Ensemble | BlockSource, trpes_map: TRPESMap, *, client: Any = None,
+                  scheduler: Any = None) -> TRPESModel:
+    """The stick model of a map, rebuilt from its ``params`` (what made it).
+
+    For an in-memory ensemble the model holds the sticks (hold it and pass it as
+    ``model=`` to :func:`contributions` / :func:`region_intensity` to skip recomputing
+    them); for a lazy ensemble it holds the time grid and alive weights.
+
+    Parameters
+    ----------
+    ens : Ensemble or LazyEnsemble
+        The ensemble the map was computed from.
+    trpes_map : TRPESMap
+        A map from :func:`~.maps.compute_trpes`.
+    client, scheduler
+        For a lazy ensemble (see :func:`contributions`).
+
+    Returns
+    -------
+    TRPESModel
+    """
+    return _model_for(ens, trpes_map, None, client=client, scheduler=scheduler)
 
 
 def _delay_weights(model: TRPESModel, p: dict[str, Any], t1: float, t2: float) -> np.ndarray:
