@@ -9,6 +9,7 @@ from test_trpes_fixtures import random_ensemble
 from ensemblelab.compute.spectroscopy import compute_trpes, contributions
 from ensemblelab.compute.spectroscopy.pulses import GaussianPulse
 from ensemblelab.errors import SchemaError
+from ensemblelab.io.maps import load_map, save_map
 
 PROBE = GaussianPulse(photon_energy=5.0, fwhm=30.0)
 PUMP = GaussianPulse(photon_energy=4.0, fwhm=30.0)
@@ -85,7 +86,7 @@ def test_contributions_reject_bad_ranges(ens_and_map):
     ens, m = ens_and_map
     with pytest.raises(SchemaError, match="low < high"):
         contributions(ens, m, energy_range=(2.0, 1.0), delay_range=(0.0, 10.0))
-    with pytest.raises(SchemaError, match="'by' parameter"):
+    with pytest.raises(SchemaError, match="'group_by' parameter"):
         contributions(ens, m, energy_range=(1.0, 2.0), delay_range=(0.0, 10.0), group_by="nope")
 
 
@@ -110,7 +111,6 @@ def test_contributions_rebuild_keeps_cross_section_parameters(ens_and_map, which
         DysonTimes,
         HydrogenicPWA,
     )
-    from ensemblelab.data.spectrum import TRPESMap
 
     ens, _ = ens_and_map
     cs = {"hydrogenic-zeta": HydrogenicPWA(zeta=2.0),
@@ -120,8 +120,8 @@ def test_contributions_rebuild_keeps_cross_section_parameters(ens_and_map, which
           "table-all": DysonTimes(([0.0, 4.0], [1.0, 0.1]))}[which]
     m = compute_trpes(ens, probe=PROBE, pump=PUMP, kinetic_energies=np.linspace(0.0, 4.0, 201),
                       delays=np.arange(-20.0, 60.0, 1.0), cross_section=cs, progress=False)
-    m.save(tmp_path / "m.npz")
-    loaded = TRPESMap.load(tmp_path / "m.npz")
+    save_map(m, tmp_path / "m.npz")
+    loaded = load_map(tmp_path / "m.npz")
     kw = dict(energy_range=(0.3, 2.5), delay_range=(0.0, 40.0))
     a = contributions(ens, m, **kw)
     b = contributions(ens, loaded, **kw)

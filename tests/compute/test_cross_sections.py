@@ -82,7 +82,7 @@ def test_resolve_names():
 
 def test_cross_section_factor_scales_map():
     ens = random_ensemble(4, seed=12)
-    kw = dict(probe=PROBE, energies=np.linspace(0, 4, 81), delays=np.arange(0, 40, 4.0),
+    kw = dict(probe=PROBE, kinetic_energies=np.linspace(0, 4, 81), delays=np.arange(0, 40, 4.0),
               convolve=False, progress=False)
     base = compute_trpes(ens, **kw)
     tripled = compute_trpes(ens, cross_section=DysonTimes(lambda e, ch: np.full_like(e, 3.0)),

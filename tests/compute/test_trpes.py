@@ -184,7 +184,7 @@ def test_trpes_decompositions_sum_to_total(by, convolve):
     # method notes 1.4 and 4.1, derived and computed independently (not published): exact additive
     # decompositions (1e-12)
     ens = random_ensemble(6, seed=1)
-    kw = dict(probe=PROBE, pump=PUMP, energies=np.linspace(0, 4, 161),
+    kw = dict(probe=PROBE, pump=PUMP, kinetic_energies=np.linspace(0, 4, 161),
               delays=np.arange(-40, 90, 5.0), convolve=convolve, progress=False)
     total = compute_trpes(ens, **kw)
     dec = compute_trpes(ens, decompose=by, **kw)
@@ -198,7 +198,7 @@ def test_trpes_decompositions_sum_to_total(by, convolve):
 
 def test_trpes_neutral_components_select_states():
     ens = random_ensemble(6, seed=2)
-    kw = dict(probe=PROBE, energies=np.linspace(0, 4, 81), delays=np.arange(0, 60, 4.0),
+    kw = dict(probe=PROBE, kinetic_energies=np.linspace(0, 4, 81), delays=np.arange(0, 60, 4.0),
               convolve=False, progress=False)
     dec = compute_trpes(ens, decompose="neutral", **kw)
     # S0 component = full map of an ensemble whose S1/S2 Dyson norms are zero
@@ -212,7 +212,7 @@ def test_trpes_doubling_dyson_doubles_map():
     # method notes 3, derived and computed independently (not published): 2x Dyson norms -> 2x map
     # at every point (1e-12)
     ens = random_ensemble(5, seed=4)
-    kw = dict(probe=PROBE, pump=PUMP, energies=np.linspace(0, 4, 121),
+    kw = dict(probe=PROBE, pump=PUMP, kinetic_energies=np.linspace(0, 4, 121),
               delays=np.arange(-30, 80, 5.0), progress=False)
     a = compute_trpes(ens, **kw)
     b = compute_trpes(ens.replace(dyson=2 * ens.dyson), **kw)
@@ -229,7 +229,7 @@ def test_trpes_permuting_trajectories_changes_nothing():
         active=frame["active"].to_numpy()[::-1], geometries=ens.geometries[::-1],
         symbols=ens.symbols, energies=ens.energies[::-1],
         cation_energies=ens.cation_energies[::-1], dyson=ens.dyson[::-1])
-    kw = dict(probe=PROBE, pump=PUMP, energies=np.linspace(0, 4, 121),
+    kw = dict(probe=PROBE, pump=PUMP, kinetic_energies=np.linspace(0, 4, 121),
               delays=np.arange(-30, 80, 5.0), progress=False)
     a = compute_trpes(ens, **kw)
     b = compute_trpes(shuffled, **kw)
@@ -238,7 +238,7 @@ def test_trpes_permuting_trajectories_changes_nothing():
 
 def test_trpes_alive_normalisation_and_initial():
     ens = random_ensemble(6, seed=6, ragged=True)
-    kw = dict(probe=PROBE, energies=np.linspace(0, 4, 81), delays=np.arange(0, 80, 2.0),
+    kw = dict(probe=PROBE, kinetic_energies=np.linspace(0, 4, 81), delays=np.arange(0, 80, 2.0),
               convolve=False, progress=False, weights="uniform")
     alive = compute_trpes(ens, normalise="alive", **kw)
     initial = compute_trpes(ens, normalise="initial", **kw)
@@ -253,7 +253,7 @@ def test_trpes_alive_normalisation_and_initial():
 
 def test_trpes_negative_delays_only_with_convolution():
     ens = random_ensemble(4, seed=7)
-    kw = dict(probe=PROBE, pump=PUMP, energies=np.linspace(0, 4, 41),
+    kw = dict(probe=PROBE, pump=PUMP, kinetic_energies=np.linspace(0, 4, 41),
               delays=np.array([-60.0, -20.0, 0.0, 20.0]), progress=False)
     conv = compute_trpes(ens, **kw)
     pure = compute_trpes(ens, convolve=False, **kw)
@@ -283,7 +283,7 @@ def test_trpes_two_photon_probe_width_and_position():
 
 def test_trpes_rejects_bad_arguments():
     ens = random_ensemble(2)
-    with pytest.raises(SchemaError, match="'by' parameter"):
+    with pytest.raises(SchemaError, match="'decompose' parameter"):
         compute_trpes(ens, probe=PROBE, kinetic_energies=[1.0], delays=[0.0], decompose="spin")
     with pytest.raises(SchemaError, match="'normalise' parameter"):
         compute_trpes(ens, probe=PROBE, kinetic_energies=[1.0], delays=[0.0], normalise="max",
@@ -326,7 +326,7 @@ def test_trpes_warns_when_probe_ionises_ground_state():
     above = GaussianPulse(photon_energy=4.1, fwhm=30.0, n_photons=2)  # 8.2 eV in total
     assert ground_state_ionisation_fraction(ens, probe=below) == 0.0
     assert ground_state_ionisation_fraction(ens, probe=above) == 1.0
-    grid = dict(energies=np.linspace(0.0, 5.0, 11), delays=[0.0, 10.0], progress=False)
+    grid = dict(kinetic_energies=np.linspace(0.0, 5.0, 11), delays=[0.0, 10.0], progress=False)
     with warnings.catch_warnings():
         warnings.simplefilter("error", EnsembleWarning)
         compute_trpes(ens, probe=below, **grid)

@@ -7,6 +7,7 @@ import pytest
 
 from ensemblelab.data.spectrum import StickSpectrum, TRPESMap
 from ensemblelab.errors import ParseError, SchemaError
+from ensemblelab.io.maps import load_map, save_map
 
 
 def _map():
@@ -34,8 +35,8 @@ def test_trpes_map_arrays_are_read_only():
 @pytest.mark.parametrize("suffix", [".npz", ".csv"])
 def test_trpes_map_round_trip(tmp_path, suffix):
     m = _map()
-    path = m.save(tmp_path / f"map{suffix}")
-    back = TRPESMap.load(path)
+    path = save_map(m, tmp_path / f"map{suffix}")
+    back = load_map(path)
     np.testing.assert_array_equal(back.intensity, m.intensity)  # repr() floats: exact
     np.testing.assert_array_equal(back.kinetic_energies, m.kinetic_energies)
     np.testing.assert_array_equal(back.delays, m.delays)
@@ -68,7 +69,7 @@ def test_trpes_map_rejects_bad_shapes(tmp_path):
     bad = tmp_path / "bad.csv"
     bad.write_text("delay_fs,0.0,1.0\n0.0,abc,1\n")
     with pytest.raises(ParseError, match="line 2"):
-        TRPESMap.load(bad)
+        load_map(bad)
 
 
 def test_stick_spectrum_frame_and_checks():

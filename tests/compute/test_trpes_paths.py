@@ -17,7 +17,7 @@ from ensemblelab.units import HARTREE_EV
 
 PROBE = GaussianPulse(photon_energy=5.0, fwhm=30.0)
 PUMP = GaussianPulse(photon_energy=4.0, fwhm=30.0)
-GRID = dict(energies=np.linspace(0.0, 4.0, 161), delays=np.arange(-40.0, 90.0, 2.5))
+GRID = dict(kinetic_energies=np.linspace(0.0, 4.0, 161), delays=np.arange(-40.0, 90.0, 2.5))
 
 pytestmark = pytest.mark.filterwarnings("ignore:compute_trpes. the probe")
 
@@ -77,7 +77,7 @@ def test_alive_count_is_unweighted_and_alive_is_the_weight_sum():
     ens = _rebuild(ens, np.arange(7), trajectories=tr)
     delays = np.arange(0.0, 80.0, 2.0)  # the ensemble's own time grid
     m = compute_trpes(ens, probe=PROBE, weights="w", convolve=False, progress=False,
-                      kinetic_energies=GRID["energies"], delays=delays)
+                      kinetic_energies=GRID["kinetic_energies"], delays=delays)
     t_end = ens.snapshots.groupby("traj")["time"].max().to_numpy()
     alive_mask = t_end[None, :] >= delays[:, None] - 1e-9  # (n_delays, n_traj)
     np.testing.assert_array_equal(m.alive_count, alive_mask.sum(axis=1))

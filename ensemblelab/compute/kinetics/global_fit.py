@@ -192,10 +192,11 @@ class GlobalFitResult:
 
 def _as_arrays(trpes_map: Any, energies, delays, intensity):
     if trpes_map is not None:
-        missing = [a for a in ("energies", "delays", "intensity") if not hasattr(trpes_map, a)]
+        missing = [a for a in ("kinetic_energies", "delays", "intensity")
+                   if not hasattr(trpes_map, a)]
         if missing:
             raise SchemaError(
-                f"fit_global needs a map with attributes energies, delays, intensity (a "
+                f"fit_global needs a map with attributes kinetic_energies, delays, intensity (a "
                 f"TRPESMap); {type(trpes_map).__name__} lacks {missing}. Hint: or pass "
                 "energies=, delays=, intensity= arrays."
             )
