@@ -29,6 +29,7 @@ import numpy.typing as npt
 import pandas as pd
 
 from .._optional import import_optional
+from ..data.blocks import BlockSpan
 from ..data.ensemble import SNAPSHOT_ARRAYS, TRAJECTORY_ARRAYS, Ensemble
 from ..errors import SchemaError, StoreError
 from ._common import decode_metadata
@@ -177,14 +178,12 @@ class LazyEnsemble:
         return name in self._entries
 
     # ------------------------------------------------------------------ block source
-    def spans(self) -> list[Any]:
-        """One :class:`~ensemblelab.compute.engine.BlockSpan` per chunk (from the manifest).
+    def spans(self) -> list[BlockSpan]:
+        """One :class:`~ensemblelab.data.blocks.BlockSpan` per chunk (from the manifest).
 
         A span's ``summary`` holds the chunk's stored summaries (time range, time-step
         counts, IP range) so that computations need no pass to find them.
         """
-        from ..compute.engine import BlockSpan
-
         keys = ("t_min", "t_max", "dt_values", "dt_counts", "ip_min", "ip_max")
         return [BlockSpan(index=i, traj_start=int(c["traj_row_start"]),
                           n_trajectories=int(c["n_trajectories"]),
