@@ -53,7 +53,7 @@ class SelectionModel(HasTraits):
     band : DataFrame or None
         The strongest contributing snapshots of the selected band (at most
         :attr:`band_rows` rows, strongest first; the columns of
-        :func:`ensemblelab.compute.spectroscopy.contributions` with ``by="snapshot"``
+        :func:`ensemblelab.compute.spectroscopy.contributions` with ``group_by="snapshot"``
         plus ``cluster`` and ``weight``). Shares are fractions of the whole band.
         ``attrs``: ``total`` (band intensity), ``n_snapshots`` (all contributing
         ones), ``complete`` (the table holds every contributing snapshot).

@@ -23,7 +23,7 @@ __all__ = ["doorway_factor", "doorway_weights", "trajectory_weights", "weights_w
 def doorway_factor(excitation_energy: npt.ArrayLike, *, pump: GaussianPulse,
                    transition_dipole: npt.ArrayLike | None = None,
                    oscillator_strength: npt.ArrayLike | None = None) -> np.ndarray:
-    """Doorway weight ``|mu_0i|^2 I_pump(h nu - dE_0i)`` (eq. 1.2, 1.3).
+    """Doorway weight ``|mu_0i|^2 I_pump(h nu - dE_0i)`` (the paper in the module docstring).
 
     Parameters
     ----------
@@ -64,7 +64,7 @@ def doorway_factor(excitation_energy: npt.ArrayLike, *, pump: GaussianPulse,
 
 
 def doorway_weights(ens: Any, *, pump: GaussianPulse) -> np.ndarray:
-    """Doorway weight of each trajectory from its initial excitation (eq. 1.2).
+    """Doorway weight of each trajectory from its initial excitation.
 
     Uses ``ens.excitation_energies`` and ``ens.transition_dipoles`` (preferred) or
     ``ens.oscillator_strengths`` at the trajectory's ``initial_state``; multiplies

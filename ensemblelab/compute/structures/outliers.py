@@ -44,7 +44,7 @@ _AMU_A2_FS2_EV = _sc.physical_constants["atomic mass constant"][0] * 1e10 / _sc.
 class OutlierThresholds:
     """User-tunable thresholds of :func:`flag_trajectories`.
 
-    Every default is common practice (method notes, section 8), not a law; tune
+    Every default is common practice, not a law; tune
     them to your electronic-structure method and time step.
 
     Attributes
