@@ -12,7 +12,7 @@ Figures printed (medians over several brushes at different boxes):
 * the same as a ratio to a peer measured in the same run: one bare
   ``region_intensity()`` call for the same box (the per-snapshot band intensities,
   the compute floor of a band selection), so the ratio says what the views add on top;
-* for reference, one full ``contributions(by="snapshot")`` call (sorted table of every
+* for reference, one full ``contributions(group_by="snapshot")`` call (sorted table of every
   contributing snapshot), which the brush no longer builds.
 
 The browser round trip (brush -> table updated in the page) is measured and printed by
@@ -61,7 +61,7 @@ def synthetic_ensemble(n_contributions: int, *, n_cation: int = 4, steps: int = 
 
 def _scaled(box: tuple, trpes: Any) -> tuple[tuple[float, float], tuple[float, float]]:
     (fe0, fe1), (fd0, fd1) = box
-    e, d = np.asarray(trpes.energies), np.asarray(trpes.delays)
+    e, d = np.asarray(trpes.kinetic_energies), np.asarray(trpes.delays)
     return ((e[0] + fe0 * (e[-1] - e[0]), e[0] + fe1 * (e[-1] - e[0])),
             (d[0] + fd0 * (d[-1] - d[0]), d[0] + fd1 * (d[-1] - d[0])))
 
@@ -69,7 +69,7 @@ def _scaled(box: tuple, trpes: Any) -> tuple[tuple[float, float], tuple[float, f
 def measure(app: Any, *, repeats: int = 1) -> dict[str, float]:
     """Median brush latency (ms) of an Explorer, of bare region_intensity() and of the
     full contributions() table (ms)."""
-    from ensemblelab.compute.spectroscopy.spectra import contributions, region_intensity
+    from ensemblelab.compute.spectroscopy import contributions, region_intensity
 
     model = app.model
     trpes = model.trpes_map
@@ -83,7 +83,7 @@ def measure(app: Any, *, repeats: int = 1) -> dict[str, float]:
             bare.append(1e3 * (time.perf_counter() - t0))
             t0 = time.perf_counter()
             contributions(model.current, trpes, energy_range=e_rng, delay_range=d_rng,
-                          by="snapshot")
+                          group_by="snapshot")
             table.append(1e3 * (time.perf_counter() - t0))
             brush.append(app.brush(e_rng, d_rng))
     assert app.messages.errors == [], app.messages.errors

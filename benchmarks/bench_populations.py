@@ -51,7 +51,7 @@ def run(n_traj: int = 1000, n_steps: int = 2000, n_boot: int = 1000, n_loop: int
     out: dict[str, float] = {}
 
     t0 = time.perf_counter()
-    populations(ens, method="bootstrap", n_boot=n_boot, random_state=0)
+    populations(ens, interval="bootstrap", n_boot=n_boot, random_state=0)
     out["populations_bootstrap_s"] = time.perf_counter() - t0
 
     t0 = time.perf_counter()
@@ -88,7 +88,7 @@ def run(n_traj: int = 1000, n_steps: int = 2000, n_boot: int = 1000, n_loop: int
     out["ratio_populations"] = out["loop_populations_scaled_s"] / out["populations_bootstrap_s"]
     if verbose:
         print(f"ensemble: {n_traj} trajectories x {n_steps} steps, {n_boot} resamples")
-        print(f"populations(method='bootstrap')            {out['populations_bootstrap_s']:.2f} s")
+        print(f"populations(interval='bootstrap')         {out['populations_bootstrap_s']:.2f} s")
         print(f"fit_kinetics(sequential, bootstrap refits) {out['fit_with_bootstrap_s']:.2f} s "
               f"(tau1 {out['fit_tau1']:.1f} fs, tau2 {out['fit_tau2']:.1f} fs, "
               f"{int(out['n_failed'])} failed refits)")

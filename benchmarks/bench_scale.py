@@ -48,8 +48,8 @@ import numpy as np
 import pandas as pd
 
 from ensemblelab.compute.kinetics.populations import populations
+from ensemblelab.compute.spectroscopy import compute_trpes
 from ensemblelab.compute.spectroscopy.pulses import GaussianPulse
-from ensemblelab.compute.spectroscopy.spectra import compute_trpes
 from ensemblelab.data.ensemble import Ensemble
 from ensemblelab.io import load
 from ensemblelab.io.chunked import ChunkedStoreWriter
@@ -118,7 +118,7 @@ def _warm_up(path: Path) -> None:
 
     ens = load_chunk(path, 0, fields=["cation_energies", "dyson"])
     ens = ens.select(ens.trajectories["traj"].to_numpy()[:2])
-    compute_trpes(ens, probe=PROBE, energies=ENERGIES, delays=_delays(50.0), progress=False)
+    compute_trpes(ens, probe=PROBE, kinetic_energies=ENERGIES, delays=_delays(50.0), progress=False)
 
 
 def lazy_run(path: Path, *, progress: bool = True, serial: bool = False) -> dict[str, float]:
@@ -133,7 +133,7 @@ def lazy_run(path: Path, *, progress: bool = True, serial: bool = False) -> dict
     lz = load(path, lazy=True)
     delays = _delays(float(lz.trajectories["t_end"].max()))
     t0 = time.perf_counter()
-    m = compute_trpes(lz, probe=PROBE, energies=ENERGIES, delays=delays, progress=progress)
+    m = compute_trpes(lz, probe=PROBE, kinetic_energies=ENERGIES, delays=delays, progress=progress)
     t_map = time.perf_counter() - t0
     t0 = time.perf_counter()
     pop = populations(lz)
@@ -144,7 +144,7 @@ def lazy_run(path: Path, *, progress: bool = True, serial: bool = False) -> dict
     if serial:
         with dask.config.set(scheduler="synchronous"):
             t0 = time.perf_counter()
-            m1 = compute_trpes(load(path, lazy=True), probe=PROBE, energies=ENERGIES,
+            m1 = compute_trpes(load(path, lazy=True), probe=PROBE, kinetic_energies=ENERGIES,
                                delays=delays, progress=False)
             out["t_map_serial"] = time.perf_counter() - t0
         scale = float(np.abs(m.intensity).max())
@@ -189,7 +189,7 @@ def memory_run(path: Path, *, n_subset: int) -> dict[str, float]:
     t_load = time.perf_counter() - t0
     delays = _delays(float(ens.trajectories["t_end"].max()))
     t0 = time.perf_counter()
-    m = compute_trpes(ens, probe=PROBE, energies=ENERGIES, delays=delays, progress=False)
+    m = compute_trpes(ens, probe=PROBE, kinetic_energies=ENERGIES, delays=delays, progress=False)
     t_map = time.perf_counter() - t0
     t0 = time.perf_counter()
     populations(ens)

@@ -32,15 +32,12 @@ from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
 
-from ensemblelab.compute.spectroscopy import _kernels_trpes as K
+from ensemblelab.compute.spectroscopy import _kernels_broadening as KB
+from ensemblelab.compute.spectroscopy import _kernels_deposit as KD
 from ensemblelab.compute.spectroscopy import _reference_trpes as R
+from ensemblelab.compute.spectroscopy import compute_trpes, contributions
+from ensemblelab.compute.spectroscopy._checks import DEFAULT_BINS_PER_FWHM, DEFAULT_ORDER
 from ensemblelab.compute.spectroscopy.pulses import GaussianPulse
-from ensemblelab.compute.spectroscopy.spectra import (
-    DEFAULT_BINS_PER_FWHM,
-    DEFAULT_ORDER,
-    compute_trpes,
-    contributions,
-)
 
 N_DELAYS, N_ENERGIES = 600, 300
 FWHM = 0.060832  # eV, a 30 fs probe
@@ -114,11 +111,11 @@ def streaming_read_threads(tbin, energy, weight, *, n_threads: int) -> float:
 def fast_map(tbin, energy, weight, *, order: int = DEFAULT_ORDER, backend: str = "auto"):
     h = FWHM / DEFAULT_BINS_PER_FWHM
     n_fine = int(E_MAX / h) + 2
-    hist = K.deposit_moments(tbin, energy, weight, n_time=N_DELAYS, e_lo=0.0, h=h,
+    hist = KD.deposit_moments(tbin, energy, weight, n_time=N_DELAYS, e_lo=0.0, h=h,
                              n_fine=n_fine, order=order, backend=backend)
     e = np.linspace(0.0, E_MAX, N_ENERGIES)
-    b = K.broadening_blocks(e, e_lo=0.0, h=h, n_fine=n_fine, fwhm=FWHM, order=order)
-    return K.assemble(hist, b, None)[0]
+    b = KB.broadening_blocks(e, e_lo=0.0, h=h, n_fine=n_fine, fwhm=FWHM, order=order)
+    return KB.assemble(hist, b, None)[0]
 
 
 def hist_filter_map(tbin, energy, weight):
@@ -147,7 +144,7 @@ def warm_up(backend: str = "auto") -> float:
 
 def bench_assembly(n: int, *, repeat: int, backend: str = "auto") -> dict[str, float]:
     tbin, energy, weight = make_inputs(n)
-    n_threads = K._default_threads(n) if backend != "numpy" and K.numba_available() else 1
+    n_threads = KD._default_threads(n) if backend != "numpy" and KD.numba_available() else 1
     rss0 = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
     fast_map(tbin, energy, weight, backend=backend)  # first touch of this size's buffers
     rss1 = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
@@ -197,15 +194,14 @@ def bench_rebroaden_and_contributions(n_contrib: int, *, repeat: int) -> dict[st
     energies = np.linspace(0.0, 4.0, N_ENERGIES)
     delays = np.linspace(-100.0, 500.0, N_DELAYS)
     t0 = time.perf_counter()
-    m = compute_trpes(ens, probe=probe, pump=pump, energies=energies, delays=delays,
-                      progress=False)
+    m, model = compute_trpes(ens, probe=probe, pump=pump, kinetic_energies=energies,
+                             delays=delays, progress=False, return_model=True)
     t_first = time.perf_counter() - t0
-    model = m._model  # cached sticks and moments
-    n_sticks = model.sticks.n_sticks
+    n_sticks = model.sticks.n_sticks  # the model holds the sticks and their moments
     probe2 = GaussianPulse(photon_energy=7.0, fwhm=40.0)
-    t_re = _best(lambda: model.broaden(energies=energies, delays=delays, probe=probe2, pump=pump,
-                                       resolution=0.05), repeat)
-    kw = dict(energy_range=(1.0, 1.6), delay_range=(50.0, 150.0))
+    t_re = _best(lambda: model.broaden(kinetic_energies=energies, delays=delays, probe=probe2,
+                                       pump=pump, resolution=0.05), repeat)
+    kw = dict(energy_range=(1.0, 1.6), delay_range=(50.0, 150.0), model=model)
     contributions(ens, m, **kw)  # first call sorts the sticks once (cached)
     t_c = _best(lambda: contributions(ens, m, **kw), repeat)
     # map assembly from exactly the arrays prepare_sticks made (its order and dtypes;
@@ -224,23 +220,23 @@ def model_map(model, energies: np.ndarray) -> np.ndarray:
     synthetic arrays."""
     fwhm = model.fwhm()
     e_lo, h, n_fine = model.fine_grid(fwhm)
-    hist = K.deposit_moments(model.tbin, model.sticks.energy, model.sticks.weight,
+    hist = KD.deposit_moments(model.tbin, model.sticks.energy, model.sticks.weight,
                              n_time=model.n_time, e_lo=e_lo, h=h, n_fine=n_fine,
                              order=model.order, tfrac=model.tfrac)
-    b = K.broadening_blocks(energies, e_lo=e_lo, h=h, n_fine=n_fine, fwhm=fwhm,
+    b = KB.broadening_blocks(energies, e_lo=e_lo, h=h, n_fine=n_fine, fwhm=fwhm,
                             order=model.order)
-    return K.assemble(hist, b, None)[0]
+    return KB.assemble(hist, b, None)[0]
 
 
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--quick", action="store_true", help="tiny sizes (smoke run)")
     ap.add_argument("--sizes", nargs="*", type=float, default=None)
-    ap.add_argument("--backend", choices=K.BACKENDS, default="auto")
+    ap.add_argument("--backend", choices=KD.BACKENDS, default="auto")
     args = ap.parse_args(argv)
     sizes = [int(s) for s in (args.sizes or ([2e4] if args.quick else [1e7, 1e8]))]
     repeat = 1 if args.quick else 3
-    compiled = args.backend != "numpy" and K.numba_available()
+    compiled = args.backend != "numpy" and KD.numba_available()
     t_warm = warm_up(args.backend)
     print(f"TRPES benchmark (map {N_DELAYS} x {N_ENERGIES}; fast kernel order "
           f"{DEFAULT_ORDER}, {DEFAULT_BINS_PER_FWHM:g} bins per FWHM; deposit backend "

@@ -33,6 +33,8 @@ _IO_AND_DATA: dict[str, str] = {
     "load": "ensemblelab.io",
     "save": "ensemblelab.io",
     "load_measured_map": "ensemblelab.io.maps",
+    "save_map": "ensemblelab.io.maps",
+    "load_map": "ensemblelab.io.maps",
     "TRPESMap": "ensemblelab.data.spectrum",
     "StickSpectrum": "ensemblelab.data.spectrum",
 }

@@ -374,8 +374,8 @@ def build_report(
                     raise _Missing(f"the map's grid is empty ({e_grid.size} kinetic energies "
                                    f"x {d_grid.size} delays); pass non-empty energies and "
                                    "delays.")
-                trpes = compute_trpes(clean, probe=probe, pump=pump, energies=e_grid,
-                                      delays=d_grid, by="neutral", progress=False,
+                trpes = compute_trpes(clean, probe=probe, pump=pump, kinetic_energies=e_grid,
+                                      delays=d_grid, decompose="neutral", progress=False,
                                       **({} if pump is not None else {"weights": "uniform"}))
                 if not np.any(np.isfinite(trpes.intensity) & (trpes.intensity != 0)):
                     raise _Missing("the map has no signal on its grid (every cell is zero or "

@@ -5,9 +5,9 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
+from ensemblelab.compute.spectroscopy import compute_trpes
 from ensemblelab.compute.spectroscopy.compare import compare_maps
 from ensemblelab.compute.spectroscopy.pulses import GaussianPulse
-from ensemblelab.compute.spectroscopy.spectra import compute_trpes
 from ensemblelab.plotting.spectra import (
     plot_components,
     plot_cuts,
@@ -23,8 +23,8 @@ def toy_map():
     ens = make_toy_ensemble(20, seed=2, t_max=200.0, dt=2.0)
     return compute_trpes(ens, probe=GaussianPulse(photon_energy=5.0, fwhm=30.0),
                          pump=GaussianPulse(photon_energy=4.0, fwhm=30.0),
-                         energies=np.linspace(0, 2, 81), delays=np.arange(-50, 200, 5.0),
-                         by="neutral", progress=False)
+                         kinetic_energies=np.linspace(0, 2, 81), delays=np.arange(-50, 200, 5.0),
+                         decompose="neutral", progress=False)
 
 
 @pytest.mark.parametrize("suffix", [".png", ".svg", ".pdf"])

@@ -7,7 +7,7 @@ Two kinds of object, kept apart on purpose:
   weight. It is never resampled or broadened.
 * :class:`TRPESMap` holds a *broadened* map on a (delay, kinetic energy) grid,
   with additive components (by state, channel, ...), the alive weight per delay
-  and the parameters that made it.
+  and the parameters that made it (files: :mod:`ensemblelab.io.maps`).
 
 Both are immutable (frozen dataclasses with read-only arrays). Units: kinetic
 energies in eV, delays and times in fs, intensities in eV^-1 (per unit kinetic
@@ -16,25 +16,17 @@ energy, normalised as chosen when the map was made).
 
 from __future__ import annotations
 
-import io as _io
-import json
-import os
 from collections.abc import Mapping
 from dataclasses import dataclass, field
-from pathlib import Path
 from typing import Any
 
 import numpy as np
 import numpy.typing as npt
 import pandas as pd
 
-from .._atomic import atomic_write_bytes
-from ..errors import ParseError, SchemaError
+from ..errors import SchemaError
 
-__all__ = ["TRPESMap", "StickSpectrum", "TRPES_FORMAT"]
-
-#: tag written into saved maps (npz key ``format`` / first CSV comment line)
-TRPES_FORMAT = "ensemblelab-trpes-map-v1"
+__all__ = ["TRPESMap", "StickSpectrum"]
 
 
 def _ro(a: Any, name: str, *, dtype: Any = np.float64, ndim: int | None = None) -> np.ndarray:
@@ -71,13 +63,13 @@ def _json_safe(value: Any) -> Any:
     return repr(value)
 
 
-@dataclass(frozen=True, eq=False, repr=False)
+@dataclass(frozen=True, eq=False, repr=False, slots=True)
 class TRPESMap:
     """A broadened time-resolved photoelectron map (immutable).
 
     Attributes
     ----------
-    energies : ndarray, shape (n_energies,)
+    kinetic_energies : ndarray, shape (n_energies,)
         Photoelectron kinetic energies in eV (increasing).
     delays : ndarray, shape (n_delays,)
         Pump-probe delays in fs (increasing).
@@ -96,10 +88,14 @@ class TRPESMap:
     params : dict
         The parameters used (JSON-serialisable).
 
+    A map carries nothing besides these fields (``slots``): the stick model that made
+    it is a separate object (``compute_trpes(..., return_model=True)``). Files:
+    :func:`ensemblelab.io.maps.save_map` and :func:`ensemblelab.io.maps.load_map`.
+
     Examples
     --------
     >>> import numpy as np
-    >>> m = TRPESMap(energies=np.linspace(0, 2, 5), delays=np.array([0.0, 10.0]),
+    >>> m = TRPESMap(kinetic_energies=np.linspace(0, 2, 5), delays=np.array([0.0, 10.0]),
     ...              intensity=np.ones((2, 5)), alive=np.array([3.0, 3.0]))
     >>> m.shape
     (2, 5)
@@ -107,7 +103,7 @@ class TRPESMap:
     10
     """
 
-    energies: np.ndarray
+    kinetic_energies: np.ndarray
     delays: np.ndarray
     intensity: np.ndarray
     components: dict[str, np.ndarray] = field(default_factory=dict)
@@ -117,7 +113,7 @@ class TRPESMap:
 
     def __post_init__(self) -> None:
         set_ = object.__setattr__
-        e = _ro(self.energies, "energies", ndim=1)
+        e = _ro(self.kinetic_energies, "kinetic_energies", ndim=1)
         d = _ro(self.delays, "delays", ndim=1)
         inten = _ro(self.intensity, "intensity", ndim=2)
         shape = (d.size, e.size)
@@ -125,7 +121,7 @@ class TRPESMap:
             raise SchemaError(
                 f"intensity must have shape (n_delays, n_energies) = {shape}; got {inten.shape}."
             )
-        for name, arr in (("energies", e), ("delays", d)):
+        for name, arr in (("kinetic_energies", e), ("delays", d)):
             if arr.size > 1 and np.any(np.diff(arr) <= 0):
                 raise SchemaError(f"{name} must increase strictly; got {arr[:5]!r}...")
         comps: dict[str, np.ndarray] = {}
@@ -138,7 +134,7 @@ class TRPESMap:
             comps[str(label)] = c
         alive = _per_delay(self.alive, "alive", d.size)
         count = _per_delay(self.alive_count, "alive_count", d.size)
-        set_(self, "energies", e)
+        set_(self, "kinetic_energies", e)
         set_(self, "delays", d)
         set_(self, "intensity", inten)
         set_(self, "components", comps)
@@ -160,7 +156,7 @@ class TRPESMap:
     @property
     def n_energies(self) -> int:
         """Number of kinetic energies."""
-        return self.energies.size
+        return self.kinetic_energies.size
 
     def component_sum(self) -> np.ndarray:
         """Sum of all components, shape (n_delays, n_energies) (zeros if there are none)."""
@@ -196,7 +192,7 @@ class TRPESMap:
             blocks += list(self.components.items())
         nd, ne = self.shape
         delay = np.repeat(self.delays, ne)
-        energy = np.tile(self.energies, nd)
+        energy = np.tile(self.kinetic_energies, nd)
         alive = np.repeat(self.alive, ne)
         count = np.repeat(self.alive_count, ne)
         frames = [
@@ -209,140 +205,14 @@ class TRPESMap:
         out["component"] = out["component"].astype(str)
         return out
 
-    # ------------------------------------------------------------------ files
-    def save(self, path: str | os.PathLike[str], *, overwrite: bool = True) -> Path:
-        """Write the map atomically as ``.npz`` (everything) or ``.csv`` (total only).
-
-        NPZ keys: ``format``, ``energies``, ``delays``, ``intensity``, ``alive``,
-        ``alive_count``, ``component_labels`` (unicode array), ``components`` (n_components,
-        n_delays, n_energies) and ``params`` (a JSON string). Written without
-        pickles, read back with ``allow_pickle=False``.
-
-        CSV: comment lines ``# ensemblelab-trpes-map-v1``, ``# params: {json}``,
-        ``# alive: v1,v2,...``, ``# alive_count: n1,n2,...``; then a grid whose first
-        row is ``delay_fs`` followed by the kinetic energies (eV) and whose first column
-        holds the delays (fs).
-        The same grid layout is read by :func:`ensemblelab.io.maps.load_measured_map`.
-
-        Parameters
-        ----------
-        path : path-like
-            Target file; the suffix (``.npz`` or ``.csv``) picks the format.
-        overwrite : bool, default True
-            Refuse to replace an existing file when False.
-
-        Returns
-        -------
-        Path
-            The written file.
-        """
-        path = Path(path)
-        suffix = path.suffix.lower()
-        if suffix not in (".npz", ".csv"):
-            raise ValueError(f"path must end in .npz or .csv; got {path.name!r}.")
-        if path.exists() and not overwrite:
-            raise FileExistsError(f"{path} exists; pass overwrite=True to replace it.")
-        if suffix == ".npz":
-            labels = list(self.components)
-            comps = (np.stack([self.components[k] for k in labels]) if labels
-                     else np.zeros((0, *self.shape)))
-            buf = _io.BytesIO()
-            np.savez_compressed(
-                buf,
-                format=np.array(TRPES_FORMAT),
-                energies=self.energies,
-                delays=self.delays,
-                intensity=self.intensity,
-                alive=self.alive,
-                alive_count=self.alive_count,
-                component_labels=np.array(labels, dtype=np.str_),
-                components=comps,
-                params=np.array(json.dumps(self.params)),
-            )
-            atomic_write_bytes(path, buf.getvalue())
-            return path
-        lines = [
-            f"# {TRPES_FORMAT}",
-            f"# params: {json.dumps(self.params)}",
-            "# alive: " + ",".join(repr(float(a)) for a in self.alive),
-            "# alive_count: " + ",".join(repr(float(a)) for a in self.alive_count),
-            "delay_fs," + ",".join(repr(float(e)) for e in self.energies),
-        ]
-        for d, row in zip(self.delays, self.intensity, strict=True):
-            lines.append(repr(float(d)) + "," + ",".join(repr(float(v)) for v in row))
-        atomic_write_bytes(path, ("\n".join(lines) + "\n").encode())
-        return path
-
-    @classmethod
-    def load(cls, path: str | os.PathLike[str]) -> TRPESMap:
-        """Read a map written by :meth:`save` (``.npz`` or ``.csv``).
-
-        Raises
-        ------
-        ParseError
-            When the file is not a saved TRPES map.
-        """
-        path = Path(path)
-        if path.suffix.lower() == ".npz":
-            try:
-                with np.load(path, allow_pickle=False) as z:
-                    data = {k: z[k] for k in z.files}
-            except (OSError, ValueError) as exc:
-                raise ParseError(f"not a readable npz file ({exc})", path=path) from exc
-            need = ("energies", "delays", "intensity")
-            missing = [k for k in need if k not in data]
-            if missing:
-                raise ParseError(f"missing array(s) {missing}; found {sorted(data)}", path=path,
-                                 hint="save maps with TRPESMap.save(...).")
-            labels = [str(x) for x in data.get("component_labels", np.array([], dtype=str))]
-            comps = data.get("components", np.zeros((0,)))
-            params = json.loads(str(data["params"])) if "params" in data else {}
-            return cls(energies=data["energies"], delays=data["delays"],
-                       intensity=data["intensity"],
-                       components={lab: comps[i] for i, lab in enumerate(labels)},
-                       alive=data.get("alive"), alive_count=data.get("alive_count"),
-                       params=params)
-        text = path.read_text()
-        params: dict[str, Any] = {}
-        alive = count = None
-        rows: list[list[float]] = []
-        header: list[float] | None = None
-        for lineno, line in enumerate(text.splitlines(), start=1):
-            s = line.strip()
-            if not s:
-                continue
-            if s.startswith("#"):
-                body = s[1:].strip()
-                if body.startswith("params:"):
-                    params = json.loads(body[len("params:"):])
-                elif body.startswith("alive:"):
-                    alive = [float(x) for x in body[len("alive:"):].split(",") if x.strip()]
-                elif body.startswith("alive_count:"):
-                    count = [float(x) for x in body[len("alive_count:"):].split(",")
-                             if x.strip()]
-                continue
-            cells = s.split(",")
-            try:
-                if header is None:
-                    header = [float(x) for x in cells[1:]]
-                else:
-                    rows.append([float(x) for x in cells])
-            except ValueError as exc:
-                raise ParseError(f"non-numeric cell ({exc})", path=path, line=lineno) from exc
-        if header is None or not rows:
-            raise ParseError("no grid found", path=path, hint="expected a header row of energies")
-        grid = np.array(rows)
-        return cls(energies=np.array(header), delays=grid[:, 0], intensity=grid[:, 1:],
-                   alive=None if alive is None else np.array(alive),
-                   alive_count=None if count is None else np.array(count), params=params)
-
     # ------------------------------------------------------------------ display
     def __repr__(self) -> str:
         comps = ", ".join(self.components) or "-"
         return (
             f"<ensemblelab.TRPESMap {self.n_delays} delays x {self.n_energies} energies; "
             f"delay {self.delays[0]:.6g}..{self.delays[-1]:.6g} fs, energy "
-            f"{self.energies[0]:.6g}..{self.energies[-1]:.6g} eV; components: {comps}>"
+            f"{self.kinetic_energies[0]:.6g}..{self.kinetic_energies[-1]:.6g} eV; components: "
+            f"{comps}>"
             if self.n_delays and self.n_energies else "<ensemblelab.TRPESMap (empty)>"
         )
 

@@ -22,8 +22,8 @@ from typing import Any
 import numpy as np
 
 from .._atomic import atomic_write_text
+from ..compute.spectroscopy import compute_trpes
 from ..compute.spectroscopy.pulses import GaussianPulse
-from ..compute.spectroscopy.spectra import compute_trpes
 from ..data.spectrum import TRPESMap
 from .scenario import DEFAULT_SCENARIO
 
@@ -74,13 +74,13 @@ def make_measured_map(**overrides: Any) -> TRPESMap:
     pump = GaussianPulse(photon_energy=sc.pump_energy, fwhm=sc.pump_fwhm)
     energies = np.linspace(*s["energies"][:2], int(s["energies"][2]))
     delays = np.linspace(*s["delays"][:2], int(s["delays"][2]))
-    m = compute_trpes(ens, probe=probe, pump=pump, energies=energies,
+    m = compute_trpes(ens, probe=probe, pump=pump, kinetic_energies=energies,
                       delays=delays - s["time_zero"], resolution=s["resolution"],
                       progress=False)
     rng = np.random.default_rng(int(s["seed"]))
     inten = m.intensity + s["noise"] * float(m.intensity.max()) * rng.standard_normal(m.shape)
     inten = np.array([[float(f"{v:.{int(s['digits'])}g}") for v in row] for row in inten])
-    return TRPESMap(energies=energies, delays=delays, intensity=inten,
+    return TRPESMap(kinetic_energies=energies, delays=delays, intensity=inten,
                     params={"invented": True, "settings": s,
                             "note": "invented measurement: perturbed demo model plus noise"})
 
@@ -92,7 +92,7 @@ def measured_map_text(m: TRPESMap, *, digits: int = MEASURED_SETTINGS["digits"])
         "# scenario with cation states +0.1 eV and a 30 % stronger bright/twisting-state",
         "# coupling, time zero +8 fs, 0.08 eV resolution and 2 % Gaussian noise.",
         "# Made by ensemblelab.demo.measured. Rows: delay (fs); columns: kinetic energy (eV).",
-        "delay_fs," + ",".join(f"{e:.6g}" for e in m.energies),
+        "delay_fs," + ",".join(f"{e:.6g}" for e in m.kinetic_energies),
     ]
     for d, row in zip(m.delays, m.intensity, strict=True):
         lines.append(f"{d:.6g}," + ",".join(f"{v:.{digits}g}" for v in row))

@@ -19,7 +19,7 @@ if TYPE_CHECKING:
     from ..data.ensemble import Ensemble
 
 __all__ = ["load", "save", "write_extxyz", "load_extxyz", "load_table", "load_store",
-           "save_store", "detect_format"]
+           "save_store", "detect_format", "save_map", "load_map", "load_measured_map"]
 
 
 def load(
@@ -123,6 +123,9 @@ def __getattr__(name: str) -> Any:
         "load_table": ("table", "load_table"),
         "load_store": ("store", "load_store"),
         "save_store": ("store", "save_store"),
+        "save_map": ("maps", "save_map"),
+        "load_map": ("maps", "load_map"),
+        "load_measured_map": ("maps", "load_measured_map"),
     }
     if name in lazy:
         import importlib

@@ -9,14 +9,16 @@ by ``import ensemblelab``.
 Use :meth:`LazyEnsemble.select` (trajectory ids) or :meth:`LazyEnsemble.compute`
 for an in-memory :class:`~ensemblelab.Ensemble`, and
 :meth:`LazyEnsemble.iter_chunks` to walk the chunks as in-memory ensembles of
-whole trajectories. ``compute_trpes``, ``contributions``, ``populations`` and
-``flag_trajectories`` accept a LazyEnsemble and reduce chunk by chunk
-(:mod:`ensemblelab.compute._dask`).
+whole trajectories. A LazyEnsemble is a block source of the reduction engine
+(:mod:`ensemblelab.compute.engine`: :meth:`LazyEnsemble.spans`,
+:meth:`LazyEnsemble.block_loaders`), so ``compute_trpes``, ``contributions``,
+``populations`` and ``flag_trajectories`` accept one and reduce chunk by chunk.
 """
 
 from __future__ import annotations
 
 import copy as _copy
+import functools
 import html
 from collections.abc import Iterable, Iterator
 from pathlib import Path
@@ -27,6 +29,7 @@ import numpy.typing as npt
 import pandas as pd
 
 from .._optional import import_optional
+from ..data.blocks import BlockSpan
 from ..data.ensemble import SNAPSHOT_ARRAYS, TRAJECTORY_ARRAYS, Ensemble
 from ..errors import SchemaError, StoreError
 from ._common import decode_metadata
@@ -35,12 +38,16 @@ from .chunked import (
     iter_chunk_indices,
     load_chunk,
     load_chunk_array,
+    read_chunk_fields,
     read_chunk_table,
     read_chunk_times,
     read_chunked_manifest,
 )
 
-__all__ = ["LazyEnsemble", "open_lazy", "is_lazy"]
+__all__ = ["LazyEnsemble", "ChunkBlock", "open_lazy", "is_lazy", "read_block"]
+
+#: snapshot columns every block carries
+BLOCK_COLUMNS = ("traj", "time", "active")
 
 
 def is_lazy(obj: object) -> bool:
@@ -169,6 +176,31 @@ class LazyEnsemble:
     def has(self, name: str) -> bool:
         """Whether the store holds array `name` (e.g. ``"dyson"``)."""
         return name in self._entries
+
+    # ------------------------------------------------------------------ block source
+    def spans(self) -> list[BlockSpan]:
+        """One :class:`~ensemblelab.data.blocks.BlockSpan` per chunk (from the manifest).
+
+        A span's ``summary`` holds the chunk's stored summaries (time range, time-step
+        counts, IP range) so that computations need no pass to find them.
+        """
+        keys = ("t_min", "t_max", "dt_values", "dt_counts", "ip_min", "ip_max")
+        return [BlockSpan(index=i, traj_start=int(c["traj_row_start"]),
+                          n_trajectories=int(c["n_trajectories"]),
+                          n_snapshots=int(c["n_snapshots"]),
+                          summary={k: c[k] for k in keys if k in c})
+                for i, c in enumerate(self._manifest["chunks"])]
+
+    def block_loaders(self, fields: Iterable[str] | None = None,
+                      columns: Iterable[str] | None = None) -> list[Any]:
+        """One picklable loader per chunk (see :func:`read_block`); each reads its chunk."""
+        m = self._manifest
+        flds = None if fields is None else tuple(fields)
+        cols = tuple(dict.fromkeys([*BLOCK_COLUMNS, *(columns or ())]))
+        return [functools.partial(read_block, str(self.path),
+                                  {"arrays": m["arrays"], "chunks": [m["chunks"][i]]}, i,
+                                  flds, cols)
+                for i in range(self.n_chunks)]
 
     def __len__(self) -> int:
         return self.n_snapshots
@@ -330,6 +362,74 @@ class LazyEnsemble:
             for k, v in self._summary_rows()
         )
         return f"<div><strong>ensemblelab.LazyEnsemble</strong><table>{cells}</table></div>"
+
+
+class ChunkBlock:
+    """Some fields of one chunk, read without building a validated Ensemble.
+
+    A block of the reduction engine: it has the attributes of
+    :class:`~ensemblelab.Ensemble` a partial reads (``snapshots`` with the columns
+    read, ``trajectories``, ``n_snapshots``, ``n_trajectories``, ``n_states``,
+    ``traj_index`` and the arrays read as float64, memory-mapped where stored as
+    float64; arrays not read or not stored are None). Geometries are read only
+    when asked for.
+    """
+
+    _ARRAYS = ("geometries", "energies", *SNAPSHOT_ARRAYS, *TRAJECTORY_ARRAYS)
+
+    def __init__(self, path: str, sub: dict[str, Any], names: Iterable[str],
+                 columns: Iterable[str] = BLOCK_COLUMNS) -> None:
+        frame, trajs, arrays = read_chunk_fields(path, sub, 0, names, columns=columns)
+        self.snapshots = frame
+        self.trajectories = trajs
+        self.n_snapshots = len(frame)
+        self.n_trajectories = len(trajs)
+        entries = {e["name"]: e for e in sub["arrays"]}
+        self.n_states = int(entries["energies"]["tail"][0])
+        self.n_cation = int(entries["cation_energies"]["tail"][0]) \
+            if "cation_energies" in entries else 0
+        for name in self._ARRAYS:
+            arr = arrays.get(name)
+            if arr is not None and arr.dtype != np.float64:
+                arr = arr.astype(np.float64)
+            setattr(self, name, arr)
+        self.traj_index = np.searchsorted(trajs["traj"].to_numpy(), frame["traj"].to_numpy())
+        if "active" in frame.columns and self.n_snapshots:
+            active = frame["active"].to_numpy()
+            if active.min() < 0 or active.max() >= self.n_states:
+                raise StoreError(f"{path}: chunk {sub['chunks'][0]['dir']} has active states "
+                                 f"outside [0, {self.n_states - 1}]. Hint: the store is "
+                                 "corrupt; convert the original files again.")
+
+    def active_dyson(self) -> np.ndarray | None:
+        """As :meth:`Ensemble.active_dyson`."""
+        if self.dyson is None or self.dyson.ndim == 2:
+            return self.dyson
+        active = self.snapshots["active"].to_numpy()
+        return self.dyson[np.arange(self.n_snapshots), active]
+
+
+def read_block(path: str, sub: dict[str, Any], index: int, fields: Iterable[str] | None,
+               columns: Iterable[str] = BLOCK_COLUMNS) -> Ensemble | ChunkBlock:
+    """Chunk `index` as a block: a whole Ensemble (``fields=None``) or a :class:`ChunkBlock`.
+
+    Parameters
+    ----------
+    path : str
+        The store folder.
+    sub : dict
+        The part of the manifest the chunk needs (``arrays`` and its one ``chunks``
+        record), so that a task does not parse the manifest again.
+    index : int
+        Chunk number (for the whole-Ensemble read).
+    fields : iterable of str or None
+        Arrays to read; None reads the whole chunk as a validated Ensemble.
+    columns : iterable of str
+        Snapshot columns to read (with ``fields``).
+    """
+    if fields is None:
+        return load_chunk(path, index)
+    return ChunkBlock(path, sub, fields, columns)
 
 
 def _column(path: str, index: int, name: str) -> np.ndarray:

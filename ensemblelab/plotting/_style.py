@@ -117,9 +117,8 @@ def intensity_label(trpes_map: Any) -> str:
 
 
 def kinetic_energies(trpes_map: Any) -> Any:
-    """The kinetic-energy axis of a map (eV), under its newer name when present."""
-    values = getattr(trpes_map, "kinetic_energies", None)
-    return trpes_map.energies if values is None else values
+    """The kinetic-energy axis of a map (eV)."""
+    return trpes_map.kinetic_energies
 
 
 def short_label(label: str) -> str:

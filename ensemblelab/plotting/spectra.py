@@ -144,7 +144,7 @@ def plot_components(m: TRPESMap, *, labels: Sequence[str] | None = None, ncols: 
     Parameters
     ----------
     m : TRPESMap
-        With components (``compute_trpes(..., by=...)``).
+        With components (``compute_trpes(..., decompose=...)``).
     labels : sequence of str, optional
         Components to show (default all).
     ncols : int
@@ -164,7 +164,7 @@ def plot_components(m: TRPESMap, *, labels: Sequence[str] | None = None, ncols: 
     labels = list(labels if labels is not None else m.components)
     panels = (["total"] if include_total else []) + labels
     if not panels:
-        raise ValueError("the map has no components; compute it with by=...")
+        raise ValueError("the map has no components; compute it with decompose=...")
     arrays = [m.intensity if p == "total" else m.components[p] for p in panels]
     vmax = max(float(np.nanmax(a)) for a in arrays)
     vmin = min(0.0, min(float(np.nanmin(a)) for a in arrays))

@@ -122,6 +122,7 @@ class SelectionModel(HasTraits):
         super().__init__(ens=ens, **traits)
         self._current_key: tuple[int, ...] | None = None
         self._current: Ensemble | None = None
+        self._stick_models: tuple[Any, Any, Any] | None = None
         ids = ens.snapshots["snapshot"].to_numpy()
         self._identity_ids = bool(np.array_equal(ids, np.arange(ids.size)))
         self._row_of = pd.Index(ids)
@@ -168,6 +169,24 @@ class SelectionModel(HasTraits):
                 f"clusters must have shape (n_snapshots={self.ens.n_snapshots},); got {arr.shape}."
             )
         return arr
+
+    def remember_stick_model(self, trpes_map: Any, model: Any) -> None:
+        """Keep the stick model of `trpes_map` (made from :attr:`current`) for band queries."""
+        self._stick_models = (trpes_map, self.current, model)
+
+    def stick_model(self) -> Any:
+        """The stick model of :attr:`trpes_map` for :attr:`current` (built once per map).
+
+        An explicit cache on this (mutable) model, valid while both stay the same
+        objects; the map itself carries no model.
+        """
+        from ..compute.spectroscopy import model_for_map
+
+        cached = getattr(self, "_stick_models", None)
+        if cached is None or cached[0] is not self.trpes_map or cached[1] is not self.current:
+            cached = (self.trpes_map, self.current, model_for_map(self.current, self.trpes_map))
+            self._stick_models = cached
+        return cached[2]
 
     @observe("trpes_map")
     def _on_trpes_map_change(self, change: Any) -> None:
@@ -269,7 +288,8 @@ class SelectionModel(HasTraits):
         e_rng = _range(energy_range, "energy_range")
         d_rng = _range(delay_range, "delay_range")
         analysis = analyse_band(self.current, self.trpes_map, energy_range=e_rng,
-                                delay_range=d_rng, groups=self._groups())
+                                delay_range=d_rng, groups=self._groups(),
+                                model=self.stick_model())
         fraction = _signal_fraction(analysis.total, self.trpes_map)
         no_signal = fraction < self.min_signal_fraction
         band = self._decorate(analysis.table(
@@ -448,7 +468,7 @@ class SelectionModel(HasTraits):
 def _signal_fraction(band_total: float, trpes_map: Any) -> float:
     """The band's intensity as a fraction of the map's (both integrated over eV and fs)."""
     values = np.nan_to_num(np.asarray(trpes_map.intensity, float))
-    e = np.asarray(trpes_map.energies, float)
+    e = np.asarray(trpes_map.kinetic_energies, float)
     d = np.asarray(trpes_map.delays, float)
     whole = float(np.trapezoid(np.trapezoid(values, e, axis=1), d)) if values.size else 0.0
     return float(band_total / whole) if whole > 0 else 0.0

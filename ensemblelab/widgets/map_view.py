@@ -17,7 +17,7 @@ from ._util import Debouncer, busy
 
 __all__ = ["MapView", "DECOMPOSITIONS"]
 
-#: decomposition menu: label -> ``by`` argument of compute_trpes
+#: decomposition menu: label -> ``decompose`` argument of compute_trpes
 DECOMPOSITIONS = {
     "total": None,
     "neutral state": "neutral",
@@ -77,7 +77,7 @@ class MapView(View):
     measured : TRPESMap, optional
         A measured map; shown on request with the residual.
     trpes_kwargs : dict, optional
-        Further keyword arguments of :func:`ensemblelab.compute.spectroscopy.spectra.compute_trpes`
+        Further keyword arguments of :func:`ensemblelab.compute.spectroscopy.compute_trpes`
         (``weights``, ``cross_section``, ``normalise``).
     debounce : float
         Seconds of quiet after a control change before recomputing.
@@ -283,7 +283,7 @@ class MapView(View):
 
     def recompute(self) -> Any:
         """Compute the map of ``model.current`` with the current controls; returns it."""
-        from ..compute.spectroscopy.spectra import compute_trpes
+        from ..compute.spectroscopy import compute_trpes
 
         probe, pump = self.pulses()
         energies, delays = self.grids()
@@ -294,14 +294,16 @@ class MapView(View):
         with busy(self.status, "computing the map ..."), \
                 warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
-            trpes = compute_trpes(
-                self.model.current, probe=probe, pump=pump, energies=energies, delays=delays,
-                resolution=float(self.resolution.value),
-                convolve=bool(self.convolve.value), by=by, progress=False, **kwargs,
+            trpes, sticks = compute_trpes(
+                self.model.current, probe=probe, pump=pump, kinetic_energies=energies,
+                delays=delays, resolution=float(self.resolution.value),
+                convolve=bool(self.convolve.value), decompose=by, progress=False,
+                return_model=True, **kwargs,
             )
         for w in caught:
             self.messages.warning(f"map: {w.message}")
         self.n_computed += 1
+        self.model.remember_stick_model(trpes, sticks)
         self.model.trpes_map = trpes
         return trpes
 
@@ -358,7 +360,7 @@ class MapView(View):
     def _draw(self, trpes: Any) -> None:
         shown = self._layer(trpes)
         values = np.asarray(shown.intensity, dtype=float)
-        energies = np.asarray(shown.energies, float)
+        energies = np.asarray(shown.kinetic_energies, float)
         delays = np.asarray(shown.delays, float)
         finite = values[np.isfinite(values)]
         lo = float(finite.min()) if finite.size else 0.0
@@ -375,7 +377,7 @@ class MapView(View):
             self.heatmap.y = delays
             self.heatmap.color = np.nan_to_num(values)
             # one set of axes for every layer: the simulated map's grid
-            e_sim, d_sim = np.asarray(trpes.energies, float), np.asarray(trpes.delays, float)
+            e_sim, d_sim = np.asarray(trpes.kinetic_energies, float), np.asarray(trpes.delays, float)
             self.x.min, self.x.max = float(e_sim[0]), float(e_sim[-1])
             self.y.min, self.y.max = float(d_sim[0]), float(d_sim[-1])
         self._draw_grid(trpes)
@@ -393,7 +395,7 @@ class MapView(View):
         lo = float(finite.min()) if finite.size else 0.0
         hi = float(finite.max()) if finite.size else 1.0
         self._small_scale.min, self._small_scale.max = lo, (hi if hi > lo else lo + 1.0)
-        e = np.asarray(trpes.energies, float)
+        e = np.asarray(trpes.kinetic_energies, float)
         d = np.asarray(trpes.delays, float)
         for i, (name, values) in enumerate(zip(names, stack, strict=True)):
             fig, hm = self._small_map(i)
@@ -449,7 +451,7 @@ class MapView(View):
         trpes = self.model.trpes_map
         values = np.asarray(trpes.intensity, float)
         d_mask = _mask(np.asarray(trpes.delays, float), self.model.delay_range)
-        e_mask = _mask(np.asarray(trpes.energies, float), self.model.energy_range)
+        e_mask = _mask(np.asarray(trpes.kinetic_energies, float), self.model.energy_range)
         return values[d_mask].mean(axis=0), values[:, e_mask].mean(axis=1)
 
     def _draw_cuts(self) -> None:
@@ -457,7 +459,7 @@ class MapView(View):
         if trpes is None:
             return
         spectrum, trace = self.cuts()
-        e = np.asarray(trpes.energies, float)
+        e = np.asarray(trpes.kinetic_energies, float)
         d = np.asarray(trpes.delays, float)
         ys, yt = [spectrum], [trace]
         if self.measured is not None:
@@ -468,7 +470,7 @@ class MapView(View):
             else:
                 # the measured cuts, on the simulated scale, drawn where both grids overlap
                 m = result.measured
-                me, md = np.asarray(m.energies, float), np.asarray(m.delays, float)
+                me, md = np.asarray(m.kinetic_energies, float), np.asarray(m.delays, float)
                 values = np.nan_to_num(np.asarray(m.intensity, float)) / max(result.scale,
                                                                                1e-300)
                 ie = (e >= me.min()) & (e <= me.max())

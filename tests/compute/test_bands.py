@@ -123,8 +123,8 @@ def test_analyse_band_matches_contributions(ens, labels):
 
     m = compute_trpes(ens, probe=GaussianPulse(photon_energy=5.0, fwhm=30.0),
                       pump=GaussianPulse(photon_energy=4.0, fwhm=30.0),
-                      energies=np.linspace(0.0, 2.5, 101), delays=np.arange(-40.0, 161.0, 5.0),
-                      progress=False)
+                      kinetic_energies=np.linspace(0.0, 2.5, 101),
+                      delays=np.arange(-40.0, 161.0, 5.0), progress=False)
     band = analyse_band(ens, m, clusters=labels, **RANGES)
     ref = contributions(ens, m, **RANGES)  # per snapshot, strongest first, zeros dropped
     table = band.table()

@@ -30,7 +30,7 @@ def test_load_measured_csv_grid(tmp_path):
     path.write_text("\n".join(lines) + "\n")
     before = path.read_bytes()
     m = load_measured_map(path)
-    np.testing.assert_array_equal(m.energies, e)
+    np.testing.assert_array_equal(m.kinetic_energies, e)
     np.testing.assert_array_equal(m.delays, d)
     np.testing.assert_array_equal(m.intensity, inten)
     assert path.read_bytes() == before  # input not modified
@@ -62,11 +62,11 @@ def test_load_measured_csv_errors(tmp_path, text, match):
 def test_compare_recovers_scale_shift_and_time_zero():
     e = np.linspace(0.0, 2.0, 201)
     d = np.arange(-100.0, 300.0, 2.0)
-    sim = TRPESMap(energies=e, delays=d, intensity=_analytic_map(e, d))
+    sim = TRPESMap(kinetic_energies=e, delays=d, intensity=_analytic_map(e, d))
     # measurement: 3x scale, band 0.1 eV higher, time zero 12 fs later, coarser grid
     em = np.linspace(0.1, 1.9, 91)
     dm = np.arange(-80.0, 280.0, 4.0)
-    meas = TRPESMap(energies=em, delays=dm,
+    meas = TRPESMap(kinetic_energies=em, delays=dm,
                     intensity=_analytic_map(em, dm, e0=1.1, t0=12.0, scale=3.0))
     res = compare_maps(sim, meas, fit_energy_shift=True, fit_time_zero=True)
     assert res.energy_shift == pytest.approx(0.1, abs=2e-3)
@@ -80,7 +80,7 @@ def test_compare_recovers_scale_shift_and_time_zero():
 def test_compare_identical_maps_score_one():
     e = np.linspace(0.0, 2.0, 51)
     d = np.arange(-50.0, 200.0, 5.0)
-    sim = TRPESMap(energies=e, delays=d, intensity=_analytic_map(e, d))
+    sim = TRPESMap(kinetic_energies=e, delays=d, intensity=_analytic_map(e, d))
     res = compare_maps(sim, sim.replace(intensity=2 * sim.intensity))
     assert res.scale == pytest.approx(2.0, rel=1e-12)
     assert res.cosine == pytest.approx(1.0, abs=1e-12)
@@ -91,7 +91,7 @@ def test_compare_identical_maps_score_one():
 def test_resample_map_is_exact_for_bilinear_data():
     e = np.linspace(0, 1, 11)
     d = np.linspace(0, 10, 6)
-    m = TRPESMap(energies=e, delays=d, intensity=np.add.outer(2 * d, 3 * e))
+    m = TRPESMap(kinetic_energies=e, delays=d, intensity=np.add.outer(2 * d, 3 * e))
     out = resample_map(m, energies=np.array([0.25, 0.55]), delays=np.array([1.0, 7.5]))
     np.testing.assert_allclose(out, np.add.outer(2 * np.array([1.0, 7.5]),
                                                  3 * np.array([0.25, 0.55])), rtol=1e-12)
@@ -101,8 +101,8 @@ def test_demo_measured_map_regenerates_identically_and_is_found():
     # the committed invented map is reproduced bit for bit from the demo scenario
     from pathlib import Path
 
+    from ensemblelab.compute.spectroscopy import compute_trpes
     from ensemblelab.compute.spectroscopy.pulses import GaussianPulse
-    from ensemblelab.compute.spectroscopy.spectra import compute_trpes
     from ensemblelab.demo import make_ensemble
     from ensemblelab.demo.measured import (
         DEFAULT_PATH,
@@ -129,7 +129,8 @@ def test_demo_measured_map_regenerates_identically_and_is_found():
     sim = compute_trpes(ens, probe=GaussianPulse(photon_energy=sc.probe_energy,
                                                  fwhm=sc.probe_fwhm),
                         pump=GaussianPulse(photon_energy=sc.pump_energy, fwhm=sc.pump_fwhm),
-                        energies=np.linspace(0, 3, 121), delays=np.arange(-120.0, 420.0, 5.0),
+                        kinetic_energies=np.linspace(0, 3, 121),
+                        delays=np.arange(-120.0, 420.0, 5.0),
                         resolution=MEASURED_SETTINGS["resolution"], progress=False)
     res = compare_maps(sim, meas, fit_energy_shift=True, fit_time_zero=True)
     assert res.energy_shift == pytest.approx(-0.1, abs=0.03)

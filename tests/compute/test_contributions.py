@@ -6,9 +6,10 @@ import numpy as np
 import pytest
 from test_trpes_fixtures import random_ensemble
 
+from ensemblelab.compute.spectroscopy import compute_trpes, contributions
 from ensemblelab.compute.spectroscopy.pulses import GaussianPulse
-from ensemblelab.compute.spectroscopy.spectra import compute_trpes, contributions
 from ensemblelab.errors import SchemaError
+from ensemblelab.io.maps import load_map, save_map
 
 PROBE = GaussianPulse(photon_energy=5.0, fwhm=30.0)
 PUMP = GaussianPulse(photon_energy=4.0, fwhm=30.0)
@@ -19,12 +20,12 @@ def ens_and_map():
     ens = random_ensemble(6, seed=21, n_steps=60, dt=1.0)
     e = np.linspace(0.0, 4.0, 801)
     d = np.arange(-60.0, 80.0, 0.5)
-    m = compute_trpes(ens, probe=PROBE, pump=PUMP, energies=e, delays=d, progress=False)
+    m = compute_trpes(ens, probe=PROBE, pump=PUMP, kinetic_energies=e, delays=d, progress=False)
     return ens, m
 
 
 def _region_integral(m, er, dr):
-    e, d = m.energies, m.delays
+    e, d = m.kinetic_energies, m.delays
     se = (e >= er[0]) & (e <= er[1])
     sd = (d >= dr[0]) & (d <= dr[1])
     sub = m.intensity[np.ix_(sd, se)]
@@ -57,11 +58,11 @@ def test_contributions_by_traj_and_column_group_the_snapshots(ens_and_map):
     ens, m = ens_and_map
     kw = dict(energy_range=(0.5, 2.5), delay_range=(10.0, 40.0))
     snap = contributions(ens, m, **kw)
-    per_traj = contributions(ens, m, by="traj", **kw)
+    per_traj = contributions(ens, m, group_by="traj", **kw)
     expected = snap.groupby("traj")["intensity"].sum()
     got = per_traj.set_index("traj")["intensity"]
     np.testing.assert_allclose(got.loc[expected.index], expected, rtol=1e-12)
-    by_state = contributions(ens, m, by="active", **kw)
+    by_state = contributions(ens, m, group_by="active", **kw)
     assert by_state["share"].sum() == pytest.approx(1.0, abs=1e-12)
 
 
@@ -72,7 +73,7 @@ def test_contributions_single_snapshot_analytic():
                                geometries=np.zeros((2, 1, 3)), symbols=["H"],
                                energies=[[0.0, 0.0], [0.0, 0.0]], cation_energies=[[4.0], [9.0]],
                                dyson=[[1.0], [1.0]])
-    m = compute_trpes(ens, probe=PROBE, energies=np.linspace(0, 2, 11), delays=[0.0, 1.0],
+    m = compute_trpes(ens, probe=PROBE, kinetic_energies=np.linspace(0, 2, 11), delays=[0.0, 1.0],
                       convolve=False, progress=False)
     df = contributions(ens, m, energy_range=(0.0, 2.0), delay_range=(0.0, 1.0))
     # only snapshot 0 has an open channel; its hat over [0, 1] integrates to 1/2 fs and its
@@ -85,13 +86,13 @@ def test_contributions_reject_bad_ranges(ens_and_map):
     ens, m = ens_and_map
     with pytest.raises(SchemaError, match="low < high"):
         contributions(ens, m, energy_range=(2.0, 1.0), delay_range=(0.0, 10.0))
-    with pytest.raises(SchemaError, match="'by' parameter"):
-        contributions(ens, m, energy_range=(1.0, 2.0), delay_range=(0.0, 10.0), by="nope")
+    with pytest.raises(SchemaError, match="'group_by' parameter"):
+        contributions(ens, m, energy_range=(1.0, 2.0), delay_range=(0.0, 10.0), group_by="nope")
 
 
 def test_contributions_rebuilds_from_params(ens_and_map):
     ens, m = ens_and_map
-    fresh = type(m)(energies=m.energies, delays=m.delays, intensity=m.intensity,
+    fresh = type(m)(kinetic_energies=m.kinetic_energies, delays=m.delays, intensity=m.intensity,
                     alive=m.alive, params=m.params)  # no cached model
     kw = dict(energy_range=(0.5, 2.5), delay_range=(10.0, 40.0))
     a = contributions(ens, m, **kw)
@@ -110,7 +111,6 @@ def test_contributions_rebuild_keeps_cross_section_parameters(ens_and_map, which
         DysonTimes,
         HydrogenicPWA,
     )
-    from ensemblelab.data.spectrum import TRPESMap
 
     ens, _ = ens_and_map
     cs = {"hydrogenic-zeta": HydrogenicPWA(zeta=2.0),
@@ -118,10 +118,10 @@ def test_contributions_rebuild_keeps_cross_section_parameters(ens_and_map, which
           "table-per-channel": DysonTimes({k: ([0.0, 1.0, 4.0], [0.2 + k, 1.0, 0.5])
                                            for k in range(3)}),
           "table-all": DysonTimes(([0.0, 4.0], [1.0, 0.1]))}[which]
-    m = compute_trpes(ens, probe=PROBE, pump=PUMP, energies=np.linspace(0.0, 4.0, 201),
+    m = compute_trpes(ens, probe=PROBE, pump=PUMP, kinetic_energies=np.linspace(0.0, 4.0, 201),
                       delays=np.arange(-20.0, 60.0, 1.0), cross_section=cs, progress=False)
-    m.save(tmp_path / "m.npz")
-    loaded = TRPESMap.load(tmp_path / "m.npz")
+    save_map(m, tmp_path / "m.npz")
+    loaded = load_map(tmp_path / "m.npz")
     kw = dict(energy_range=(0.3, 2.5), delay_range=(0.0, 40.0))
     a = contributions(ens, m, **kw)
     b = contributions(ens, loaded, **kw)
@@ -133,10 +133,10 @@ def test_contributions_rebuild_keeps_cross_section_parameters(ens_and_map, which
 
 def test_contributions_rebuild_refuses_a_user_function(ens_and_map):
     ens, _ = ens_and_map
-    m = compute_trpes(ens, probe=PROBE, pump=PUMP, energies=np.linspace(0.0, 4.0, 101),
+    m = compute_trpes(ens, probe=PROBE, pump=PUMP, kinetic_energies=np.linspace(0.0, 4.0, 101),
                       delays=np.arange(-20.0, 60.0, 2.0), progress=False,
                       cross_section=lambda e, ch: 1.0 + 0.0 * e)
-    fresh = type(m)(energies=m.energies, delays=m.delays, intensity=m.intensity,
+    fresh = type(m)(kinetic_energies=m.kinetic_energies, delays=m.delays, intensity=m.intensity,
                     alive=m.alive, params=m.params)
     with pytest.raises(SchemaError, match="cannot be rebuilt"):
         contributions(ens, fresh, energy_range=(0.5, 2.0), delay_range=(0.0, 30.0))
@@ -150,7 +150,8 @@ def test_contributions_top_keeps_strongest_rows_and_region_total():
 
     ens = make_toy_ensemble(30, seed=4, t_max=200.0)
     m = compute_trpes(ens, probe=GaussianPulse(photon_energy=5.0, fwhm=30.0),
-                      energies=np.linspace(0.0, 2.0, 81), delays=np.arange(-40.0, 201.0, 5.0),
+                      kinetic_energies=np.linspace(0.0, 2.0, 81),
+                      delays=np.arange(-40.0, 201.0, 5.0),
                       progress=False)
     full = contributions(ens, m, energy_range=(0.3, 1.7), delay_range=(20.0, 120.0))
     head = contributions(ens, m, energy_range=(0.3, 1.7), delay_range=(20.0, 120.0), top=25)
@@ -162,7 +163,7 @@ def test_contributions_top_keeps_strongest_rows_and_region_total():
 
 
 def test_region_intensity_is_the_unsorted_contributions_column(ens_and_map):
-    from ensemblelab.compute.spectroscopy.spectra import region_intensity
+    from ensemblelab.compute.spectroscopy import region_intensity
 
     ens, m = ens_and_map
     kw = dict(energy_range=(0.5, 2.5), delay_range=(10.0, 40.0))
@@ -183,7 +184,7 @@ def test_region_intensity_is_the_unsorted_contributions_column(ens_and_map):
 def test_region_intensity_adds_over_adjacent_windows(ens_and_map, split):
     # integrals over adjacent windows add up (analytic); a narrow and a wide window
     # take different error-function paths (one or two terms per edge)
-    from ensemblelab.compute.spectroscopy.spectra import region_intensity
+    from ensemblelab.compute.spectroscopy import region_intensity
 
     ens, m = ens_and_map
     whole = region_intensity(ens, m, energy_range=(0.5, 3.5), delay_range=(-20.0, 50.0))

@@ -7,6 +7,7 @@ import pytest
 from scipy.optimize import minimize_scalar
 from test_trpes_fixtures import random_ensemble
 
+from ensemblelab.compute.spectroscopy import compute_trpes
 from ensemblelab.compute.spectroscopy.cross_sections import (
     AnionThresholdLaw,
     DysonNorm,
@@ -16,7 +17,6 @@ from ensemblelab.compute.spectroscopy.cross_sections import (
     resolve_cross_section,
 )
 from ensemblelab.compute.spectroscopy.pulses import GaussianPulse
-from ensemblelab.compute.spectroscopy.spectra import compute_trpes
 from ensemblelab.errors import SchemaError
 from ensemblelab.units import HARTREE_EV
 
@@ -82,7 +82,7 @@ def test_resolve_names():
 
 def test_cross_section_factor_scales_map():
     ens = random_ensemble(4, seed=12)
-    kw = dict(probe=PROBE, energies=np.linspace(0, 4, 81), delays=np.arange(0, 40, 4.0),
+    kw = dict(probe=PROBE, kinetic_energies=np.linspace(0, 4, 81), delays=np.arange(0, 40, 4.0),
               convolve=False, progress=False)
     base = compute_trpes(ens, **kw)
     tripled = compute_trpes(ens, cross_section=DysonTimes(lambda e, ch: np.full_like(e, 3.0)),

@@ -12,8 +12,8 @@ import pytest
 
 from ensemblelab import load
 from ensemblelab.compute.kinetics.populations import populations
+from ensemblelab.compute.spectroscopy import compute_trpes, contributions
 from ensemblelab.compute.spectroscopy.pulses import GaussianPulse
-from ensemblelab.compute.spectroscopy.spectra import compute_trpes, contributions
 from ensemblelab.compute.structures.outliers import flag_trajectories
 from ensemblelab.io.chunked import save_chunked
 from ensemblelab.testing import make_toy_ensemble
@@ -23,7 +23,7 @@ RTOL = 1e-12  # the issue's tolerance for lazy vs in-memory
 
 KW = {"probe": GaussianPulse(photon_energy=5.0, fwhm=30.0),
       "pump": GaussianPulse(photon_energy=4.0, fwhm=20.0),
-      "energies": np.linspace(0.0, 2.0, 81), "delays": np.arange(-40.0, 121.0, 8.0),
+      "kinetic_energies": np.linspace(0.0, 2.0, 81), "delays": np.arange(-40.0, 121.0, 8.0),
       "progress": False}
 
 
@@ -55,8 +55,8 @@ def _close(a, b):
 @pytest.mark.parametrize("by", [None, "neutral", "pair"])
 def test_lazy_trpes_equals_in_memory(pair, by):
     ens, lazy = pair
-    ref = compute_trpes(ens, by=by, **KW)
-    got = compute_trpes(lazy, by=by, **KW)
+    ref = compute_trpes(ens, decompose=by, **KW)
+    got = compute_trpes(lazy, decompose=by, **KW)
     _close(got.intensity, ref.intensity)
     _close(got.alive, ref.alive)
     assert np.all(np.isfinite(ref.alive_count))
@@ -74,8 +74,8 @@ def test_lazy_trpes_with_partly_closed_channels(pair, photon):
     # are partly open and the stick energy range is read from the chunks, not the manifest
     ens, lazy = pair
     kw = {**KW, "probe": GaussianPulse(photon_energy=photon, fwhm=30.0)}
-    ref = compute_trpes(ens, by="cation", **kw)
-    got = compute_trpes(lazy, by="cation", **kw)
+    ref = compute_trpes(ens, decompose="cation", **kw)
+    got = compute_trpes(lazy, decompose="cation", **kw)
     _close(got.intensity, ref.intensity)
     assert got.params == ref.params
     assert 0 < got.params["n_sticks"] < ens.n_snapshots  # some channels closed, some open
@@ -103,17 +103,15 @@ def test_lazy_trpes_without_manifest_summaries(pair, tmp_path):
 
 @pytest.mark.parametrize("scheduler", ["threads", "synchronous"])
 def test_lazy_trpes_schedulers(pair, scheduler):
-    from ensemblelab.compute import _dask
-
     ens, lazy = pair
-    got = _dask.compute_trpes(lazy, scheduler=scheduler, **KW)
+    got = compute_trpes(lazy, scheduler=scheduler, **KW)
     _close(got.intensity, compute_trpes(ens, **KW).intensity)
 
 
 @pytest.mark.parametrize("by", ["snapshot", "traj", "active"])
 def test_lazy_contributions_equal_in_memory(pair, by):
     ens, lazy = pair
-    region = {"energy_range": (0.4, 1.6), "delay_range": (0.0, 60.0), "by": by}
+    region = {"energy_range": (0.4, 1.6), "delay_range": (0.0, 60.0), "group_by": by}
     ref = contributions(ens, compute_trpes(ens, **KW), **region)
     got = contributions(lazy, compute_trpes(lazy, **KW), **region)
     assert len(ref) > 0
@@ -124,7 +122,7 @@ def test_lazy_contributions_equal_in_memory(pair, by):
 def test_lazy_contributions_of_an_in_memory_map(pair):
     ens, lazy = pair
     m = compute_trpes(ens, **KW)  # the map does not know the lazy ensemble: grid is rebuilt
-    region = {"energy_range": (0.4, 1.6), "delay_range": (0.0, 60.0), "by": "traj"}
+    region = {"energy_range": (0.4, 1.6), "delay_range": (0.0, 60.0), "group_by": "traj"}
     pd.testing.assert_frame_equal(contributions(lazy, m, **region),
                                   contributions(ens, m, **region), rtol=RTOL)
 
@@ -135,8 +133,8 @@ def test_lazy_populations_equal_in_memory(pair, kind, method):
     ens, lazy = pair
     if kind == "diabatic" and ens.adt is None:
         pytest.skip("no ADT matrices")
-    ref = populations(ens, kind=kind, method=method, n_boot=40)
-    got = populations(lazy, kind=kind, method=method, n_boot=40)
+    ref = populations(ens, kind=kind, interval=method, n_boot=40)
+    got = populations(lazy, kind=kind, interval=method, n_boot=40)
     pd.testing.assert_frame_equal(got, ref, rtol=RTOL)
     assert got.attrs == ref.attrs
 

@@ -39,7 +39,7 @@ class _MapLike:
     """Any object with energies/delays/intensity works (duck typing)."""
 
     def __init__(self, e, d, s):
-        self.energies, self.delays, self.intensity = e, d, s
+        self.kinetic_energies, self.delays, self.intensity = e, d, s
 
 
 def test_scenario_map_reproduces_method_notes_values():
@@ -177,6 +177,6 @@ def test_fit_global_accepts_trpes_map():
     e = np.linspace(0.0, 2.0, 41)
     d = np.arange(-50.0, 400.0, 5.0)
     s, _, _ = scenario_map(e, d)
-    m = TRPESMap(energies=e, delays=d, intensity=s, alive=np.ones(d.size))
+    m = TRPESMap(kinetic_energies=e, delays=d, intensity=s, alive=np.ones(d.size))
     res = fit_global(m, irf_fwhm=T_CC)
     assert res.lifetimes[0] == pytest.approx(100.0, rel=1e-6)

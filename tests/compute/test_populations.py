@@ -160,8 +160,8 @@ def test_bootstrap_counts_are_multinomial_with_n_draws():
 def test_populations_bootstrap_reproducible_and_close_to_wilson():
     ens = make_toy_ensemble(200, seed=11)
     grid = [0.0, 50.0, 100.0, 200.0]
-    b1 = populations(ens, method="bootstrap", n_boot=2000, random_state=3, time_grid=grid)
-    b2 = populations(ens, method="bootstrap", n_boot=2000, random_state=3, time_grid=grid)
+    b1 = populations(ens, interval="bootstrap", n_boot=2000, random_state=3, time_grid=grid)
+    b2 = populations(ens, interval="bootstrap", n_boot=2000, random_state=3, time_grid=grid)
     pd.testing.assert_frame_equal(b1, b2)
     w = populations(ens, time_grid=grid)
     mid = (b1.time == 100.0) & (b1.state == 2)
@@ -207,7 +207,7 @@ def test_populations_errors_name_the_argument():
 def test_populations_input_not_modified():
     ens = make_toy_ensemble(10, seed=1)
     before = ens.snapshots.copy()
-    populations(ens, method="bootstrap", n_boot=20)
+    populations(ens, interval="bootstrap", n_boot=20)
     pd.testing.assert_frame_equal(ens.snapshots, before)
 
 

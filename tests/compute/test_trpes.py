@@ -10,8 +10,8 @@ import pytest
 from scipy.special import erfcx
 from test_trpes_fixtures import random_ensemble, stratified_decay
 
+from ensemblelab.compute.spectroscopy import compute_trpes, doorway_factor, prepare_sticks
 from ensemblelab.compute.spectroscopy.pulses import GaussianPulse, cross_correlation_fwhm, gaussian
-from ensemblelab.compute.spectroscopy.spectra import compute_trpes, doorway_factor, prepare_sticks
 from ensemblelab.data.ensemble import Ensemble
 from ensemblelab.errors import SchemaError
 
@@ -30,14 +30,14 @@ def test_trpes_single_stick_window_values():
     # 0.060832 eV, height 15.4432 eV^-1,
     # W(1.03 eV) = 7.86834 eV^-1 (1e-6 rel, analytic)
     e = np.array([1.0, 1.03])
-    m = compute_trpes(_one_snapshot(), probe=PROBE, energies=e, delays=[0.0], convolve=False,
-                      progress=False)
+    m = compute_trpes(_one_snapshot(), probe=PROBE, kinetic_energies=e, delays=[0.0],
+                      convolve=False, progress=False)
     assert m.params["fwhm_energy"] == pytest.approx(0.060832, abs=1e-6)
     assert m.intensity[0, 0] == pytest.approx(15.4432, rel=1e-5)
     assert m.intensity[0, 1] == pytest.approx(7.86834, rel=1e-6)
     # integral = 1 on a 1 meV grid (tolerance 1e-3, method notes 1.6)
     grid = np.arange(0.0, 2.0, 0.001)
-    m2 = compute_trpes(_one_snapshot(), probe=PROBE, energies=grid, delays=[0.0],
+    m2 = compute_trpes(_one_snapshot(), probe=PROBE, kinetic_energies=grid, delays=[0.0],
                        convolve=False, progress=False)
     assert np.trapezoid(m2.intensity[0], grid) == pytest.approx(1.0, abs=1e-3)
     assert grid[np.argmax(m2.intensity[0])] == pytest.approx(1.0, abs=1e-12)
@@ -46,11 +46,11 @@ def test_trpes_single_stick_window_values():
 def test_trpes_closed_channel_and_truncation_below_zero():
     # IP above the photon energy: closed channel, no signal at all (method notes 1.3)
     e = np.linspace(-0.5, 2.0, 251)
-    closed = compute_trpes(_one_snapshot(ip=5.2), probe=PROBE, energies=e, delays=[0.0],
+    closed = compute_trpes(_one_snapshot(ip=5.2), probe=PROBE, kinetic_energies=e, delays=[0.0],
                            convolve=False, progress=False)
     assert np.all(closed.intensity == 0.0)
     # open just above threshold: no tail below 0 eV, the part of the area below 0 is lost
-    near = compute_trpes(_one_snapshot(ip=4.99), probe=PROBE, energies=e, delays=[0.0],
+    near = compute_trpes(_one_snapshot(ip=4.99), probe=PROBE, kinetic_energies=e, delays=[0.0],
                          convolve=False, progress=False)
     assert np.all(near.intensity[0, e < 0] == 0.0)
     assert near.intensity[0, e >= 0].max() > 0
@@ -126,7 +126,7 @@ def test_trpes_end_to_end_stratified_ensemble():
     # dt = 1 fs; deviation from the infinite-N values ~1/N + O(dt^2) -> 3e-3 relative
     ens = stratified_decay(4000)
     delays = np.array(sorted(TABLE_17))
-    m = compute_trpes(ens, probe=PROBE, pump=PUMP, energies=[0.5, 1.5], delays=delays,
+    m = compute_trpes(ens, probe=PROBE, pump=PUMP, kinetic_energies=[0.5, 1.5], delays=delays,
                       weights="uniform", progress=False)
     for i, tau in enumerate(delays):
         exp_05, exp_15 = _analytic_17(np.array([0.5, 1.5]), tau)
@@ -149,7 +149,7 @@ def test_trpes_end_to_end_random_toy_ensemble():
     n = 1500
     ens = make_toy_ensemble(n, seed=11, t_max=500.0)
     delays = np.array([0.0, 100.0, 300.0])
-    m = compute_trpes(ens, probe=PROBE, pump=PUMP, energies=[0.5, 1.5], delays=delays,
+    m = compute_trpes(ens, probe=PROBE, pump=PUMP, kinetic_energies=[0.5, 1.5], delays=delays,
                       weights="uniform", progress=False)
     tol = 3 / math.sqrt(n)
     for i, tau in enumerate(delays):
@@ -165,7 +165,7 @@ def test_trpes_area_sum_rule_without_truncation():
     probe = GaussianPulse(photon_energy=9.0, fwhm=30.0)  # all channels open, far above 0 eV
     model = prepare_sticks(ens, probe=probe, weights="uniform", progress=False)
     e = np.linspace(-1.0, 12.0, 13001)
-    m = model.broaden(energies=e, delays=model.times, convolve=False)
+    m = model.broaden(kinetic_energies=e, delays=model.times, convolve=False)
     area = np.trapezoid(m.intensity, e, axis=1)
     # expected straight from the ensemble: at each time, the mean over the trajectories
     # alive then of the summed squared Dyson norms of the active state (unit weights)
@@ -184,10 +184,10 @@ def test_trpes_decompositions_sum_to_total(by, convolve):
     # method notes 1.4 and 4.1, derived and computed independently (not published): exact additive
     # decompositions (1e-12)
     ens = random_ensemble(6, seed=1)
-    kw = dict(probe=PROBE, pump=PUMP, energies=np.linspace(0, 4, 161),
+    kw = dict(probe=PROBE, pump=PUMP, kinetic_energies=np.linspace(0, 4, 161),
               delays=np.arange(-40, 90, 5.0), convolve=convolve, progress=False)
     total = compute_trpes(ens, **kw)
-    dec = compute_trpes(ens, by=by, **kw)
+    dec = compute_trpes(ens, decompose=by, **kw)
     np.testing.assert_allclose(dec.intensity, total.intensity, rtol=0, atol=1e-13)
     scale = np.abs(total.intensity).max()
     assert scale > 0
@@ -198,9 +198,9 @@ def test_trpes_decompositions_sum_to_total(by, convolve):
 
 def test_trpes_neutral_components_select_states():
     ens = random_ensemble(6, seed=2)
-    kw = dict(probe=PROBE, energies=np.linspace(0, 4, 81), delays=np.arange(0, 60, 4.0),
+    kw = dict(probe=PROBE, kinetic_energies=np.linspace(0, 4, 81), delays=np.arange(0, 60, 4.0),
               convolve=False, progress=False)
-    dec = compute_trpes(ens, by="neutral", **kw)
+    dec = compute_trpes(ens, decompose="neutral", **kw)
     # S0 component = full map of an ensemble whose S1/S2 Dyson norms are zero
     dy = np.array(ens.dyson)
     dy[:, 1:, :] = 0.0
@@ -212,7 +212,7 @@ def test_trpes_doubling_dyson_doubles_map():
     # method notes 3, derived and computed independently (not published): 2x Dyson norms -> 2x map
     # at every point (1e-12)
     ens = random_ensemble(5, seed=4)
-    kw = dict(probe=PROBE, pump=PUMP, energies=np.linspace(0, 4, 121),
+    kw = dict(probe=PROBE, pump=PUMP, kinetic_energies=np.linspace(0, 4, 121),
               delays=np.arange(-30, 80, 5.0), progress=False)
     a = compute_trpes(ens, **kw)
     b = compute_trpes(ens.replace(dyson=2 * ens.dyson), **kw)
@@ -229,7 +229,7 @@ def test_trpes_permuting_trajectories_changes_nothing():
         active=frame["active"].to_numpy()[::-1], geometries=ens.geometries[::-1],
         symbols=ens.symbols, energies=ens.energies[::-1],
         cation_energies=ens.cation_energies[::-1], dyson=ens.dyson[::-1])
-    kw = dict(probe=PROBE, pump=PUMP, energies=np.linspace(0, 4, 121),
+    kw = dict(probe=PROBE, pump=PUMP, kinetic_energies=np.linspace(0, 4, 121),
               delays=np.arange(-30, 80, 5.0), progress=False)
     a = compute_trpes(ens, **kw)
     b = compute_trpes(shuffled, **kw)
@@ -238,7 +238,7 @@ def test_trpes_permuting_trajectories_changes_nothing():
 
 def test_trpes_alive_normalisation_and_initial():
     ens = random_ensemble(6, seed=6, ragged=True)
-    kw = dict(probe=PROBE, energies=np.linspace(0, 4, 81), delays=np.arange(0, 80, 2.0),
+    kw = dict(probe=PROBE, kinetic_energies=np.linspace(0, 4, 81), delays=np.arange(0, 80, 2.0),
               convolve=False, progress=False, weights="uniform")
     alive = compute_trpes(ens, normalise="alive", **kw)
     initial = compute_trpes(ens, normalise="initial", **kw)
@@ -253,7 +253,7 @@ def test_trpes_alive_normalisation_and_initial():
 
 def test_trpes_negative_delays_only_with_convolution():
     ens = random_ensemble(4, seed=7)
-    kw = dict(probe=PROBE, pump=PUMP, energies=np.linspace(0, 4, 41),
+    kw = dict(probe=PROBE, pump=PUMP, kinetic_energies=np.linspace(0, 4, 41),
               delays=np.array([-60.0, -20.0, 0.0, 20.0]), progress=False)
     conv = compute_trpes(ens, **kw)
     pure = compute_trpes(ens, convolve=False, **kw)
@@ -263,7 +263,7 @@ def test_trpes_negative_delays_only_with_convolution():
 
 
 def test_trpes_resolution_adds_in_quadrature():
-    m = compute_trpes(_one_snapshot(), probe=PROBE, energies=[1.0], delays=[0.0],
+    m = compute_trpes(_one_snapshot(), probe=PROBE, kinetic_energies=[1.0], delays=[0.0],
                       convolve=False, resolution=0.08, progress=False)
     g = math.hypot(PROBE.spectral_fwhm, 0.08)
     assert m.params["fwhm_energy"] == pytest.approx(g, rel=1e-14)
@@ -273,7 +273,7 @@ def test_trpes_resolution_adds_in_quadrature():
 
 def test_trpes_two_photon_probe_width_and_position():
     probe2 = GaussianPulse(photon_energy=2.5, fwhm=30.0, n_photons=2)
-    m = compute_trpes(_one_snapshot(), probe=probe2, energies=[1.0], delays=[0.0],
+    m = compute_trpes(_one_snapshot(), probe=probe2, kinetic_energies=[1.0], delays=[0.0],
                       convolve=False, progress=False)
     # Gamma^(2) = 0.086029 eV: method notes 2.4 derived and computed independently (not published);
     # peak at 2 * 2.5 - 4.0 = 1.0 eV
@@ -283,28 +283,28 @@ def test_trpes_two_photon_probe_width_and_position():
 
 def test_trpes_rejects_bad_arguments():
     ens = random_ensemble(2)
-    with pytest.raises(SchemaError, match="'by' parameter"):
-        compute_trpes(ens, probe=PROBE, energies=[1.0], delays=[0.0], by="spin")
+    with pytest.raises(SchemaError, match="'decompose' parameter"):
+        compute_trpes(ens, probe=PROBE, kinetic_energies=[1.0], delays=[0.0], decompose="spin")
     with pytest.raises(SchemaError, match="'normalise' parameter"):
-        compute_trpes(ens, probe=PROBE, energies=[1.0], delays=[0.0], normalise="max",
+        compute_trpes(ens, probe=PROBE, kinetic_energies=[1.0], delays=[0.0], normalise="max",
                       progress=False)
     with pytest.raises(SchemaError, match="'weights' parameter"):
-        compute_trpes(ens, probe=PROBE, energies=[1.0], delays=[0.0], weights="nope")
+        compute_trpes(ens, probe=PROBE, kinetic_energies=[1.0], delays=[0.0], weights="nope")
     with pytest.raises(SchemaError, match="'delays' parameter must increase"):
-        compute_trpes(ens, probe=PROBE, energies=[1.0], delays=[1.0, 0.0], progress=False)
+        compute_trpes(ens, probe=PROBE, kinetic_energies=[1.0], delays=[1.0, 0.0], progress=False)
     with pytest.raises(SchemaError, match="'resolution' parameter"):
-        compute_trpes(ens, probe=PROBE, energies=[1.0], delays=[0.0], resolution=-1.0,
+        compute_trpes(ens, probe=PROBE, kinetic_energies=[1.0], delays=[0.0], resolution=-1.0,
                       progress=False)
     bare = ens.replace(dyson=None)
     with pytest.raises(SchemaError, match="cation_energies and ens.dyson"):
-        compute_trpes(bare, probe=PROBE, energies=[1.0], delays=[0.0])
+        compute_trpes(bare, probe=PROBE, kinetic_energies=[1.0], delays=[0.0])
 
 
 def test_trpes_input_not_modified():
     ens = random_ensemble(3, seed=8)
     before = ens.dyson.copy(), ens.energies.copy(), ens.snapshots.copy()
-    compute_trpes(ens, probe=PROBE, energies=[1.0, 2.0], delays=[0.0, 5.0], by="pair",
-                  progress=False)
+    compute_trpes(ens, probe=PROBE, kinetic_energies=[1.0, 2.0], delays=[0.0, 5.0],
+                  decompose="pair", progress=False)
     np.testing.assert_array_equal(ens.dyson, before[0])
     np.testing.assert_array_equal(ens.energies, before[1])
     assert ens.snapshots.equals(before[2])
@@ -316,7 +316,7 @@ def test_trpes_warns_when_probe_ionises_ground_state():
     # the toy ensemble has IP(S0 -> D0) = 8.0 eV at every geometry (ensemblelab.testing)
     import warnings
 
-    from ensemblelab.compute.spectroscopy.spectra import ground_state_ionisation_fraction
+    from ensemblelab.compute.spectroscopy import ground_state_ionisation_fraction
     from ensemblelab.errors import EnsembleWarning
     from ensemblelab.testing import TOY_TRUTH, make_toy_ensemble
 
@@ -326,7 +326,7 @@ def test_trpes_warns_when_probe_ionises_ground_state():
     above = GaussianPulse(photon_energy=4.1, fwhm=30.0, n_photons=2)  # 8.2 eV in total
     assert ground_state_ionisation_fraction(ens, probe=below) == 0.0
     assert ground_state_ionisation_fraction(ens, probe=above) == 1.0
-    grid = dict(energies=np.linspace(0.0, 5.0, 11), delays=[0.0, 10.0], progress=False)
+    grid = dict(kinetic_energies=np.linspace(0.0, 5.0, 11), delays=[0.0, 10.0], progress=False)
     with warnings.catch_warnings():
         warnings.simplefilter("error", EnsembleWarning)
         compute_trpes(ens, probe=below, **grid)

@@ -9,15 +9,15 @@ import pytest
 from scipy.stats import special_ortho_group
 from test_trpes_fixtures import random_ensemble
 
+from ensemblelab.compute.spectroscopy import compute_trpes, prepare_sticks
 from ensemblelab.compute.spectroscopy.cross_sections import AnionThresholdLaw, HydrogenicPWA
 from ensemblelab.compute.spectroscopy.pulses import GaussianPulse
-from ensemblelab.compute.spectroscopy.spectra import compute_trpes, prepare_sticks
 from ensemblelab.data.ensemble import Ensemble
 from ensemblelab.units import HARTREE_EV
 
 PROBE = GaussianPulse(photon_energy=5.0, fwhm=30.0)
 PUMP = GaussianPulse(photon_energy=4.0, fwhm=30.0)
-GRID = dict(energies=np.linspace(0.0, 4.0, 161), delays=np.arange(-40.0, 90.0, 2.5))
+GRID = dict(kinetic_energies=np.linspace(0.0, 4.0, 161), delays=np.arange(-40.0, 90.0, 2.5))
 
 pytestmark = pytest.mark.filterwarnings("ignore:compute_trpes. the probe")
 
@@ -50,9 +50,9 @@ def test_weight_column_equals_duplicated_trajectories():
     weighted = _rebuild(ens, np.arange(5), trajectories=tr)
     copies = _rebuild(ens, np.repeat(np.arange(5), mult))
     for by in (None, "pair"):
-        a = compute_trpes(weighted, probe=PROBE, pump=PUMP, weights="mult", by=by,
+        a = compute_trpes(weighted, probe=PROBE, pump=PUMP, weights="mult", decompose=by,
                           progress=False, **GRID)
-        b = compute_trpes(copies, probe=PROBE, pump=PUMP, weights="uniform", by=by,
+        b = compute_trpes(copies, probe=PROBE, pump=PUMP, weights="uniform", decompose=by,
                           progress=False, **GRID)
         assert a.params["weights"] == "column:mult"
         scale = np.abs(b.intensity).max()
@@ -77,7 +77,7 @@ def test_alive_count_is_unweighted_and_alive_is_the_weight_sum():
     ens = _rebuild(ens, np.arange(7), trajectories=tr)
     delays = np.arange(0.0, 80.0, 2.0)  # the ensemble's own time grid
     m = compute_trpes(ens, probe=PROBE, weights="w", convolve=False, progress=False,
-                      energies=GRID["energies"], delays=delays)
+                      kinetic_energies=GRID["kinetic_energies"], delays=delays)
     t_end = ens.snapshots.groupby("traj")["time"].max().to_numpy()
     alive_mask = t_end[None, :] >= delays[:, None] - 1e-9  # (n_delays, n_traj)
     np.testing.assert_array_equal(m.alive_count, alive_mask.sum(axis=1))
@@ -155,9 +155,9 @@ def test_hydrogenic_cross_section_reaches_the_sticks_with_stick_energies():
     w = model.sticks.weight[np.argsort(model.sticks.energy)]
     assert w[0] / w[1] == pytest.approx(0.176137, abs=1e-5)
     m = compute_trpes(ens, probe=probe, cross_section=HydrogenicPWA(zeta=1.0), weights="uniform",
-                      energies=np.linspace(0.0, 1.5, 3001), delays=[0.0], convolve=False,
+                      kinetic_energies=np.linspace(0.0, 1.5, 3001), delays=[0.0], convolve=False,
                       progress=False)
-    e = m.energies
+    e = m.kinetic_energies
     lo = np.trapezoid(np.where(e < 0.68, m.intensity[0], 0.0), e)
     hi = np.trapezoid(np.where(e >= 0.68, m.intensity[0], 0.0), e)
     assert lo / hi == pytest.approx(0.176137, rel=1e-4)  # band areas keep the ratio
@@ -193,8 +193,8 @@ def test_diabatic_components_follow_the_squared_adt_of_the_pair_map(convolve):
     ens = ens.replace(adt=np.broadcast_to(u, (n, 3, 3)).copy(),
                       adt_cation=np.broadcast_to(v, (n, 2, 2)).copy())
     kw = dict(probe=PROBE, pump=PUMP, convolve=convolve, progress=False, **GRID)
-    pair = compute_trpes(ens, by="pair", **kw)
-    dia = compute_trpes(ens, by="diabatic", **kw)
+    pair = compute_trpes(ens, decompose="pair", **kw)
+    dia = compute_trpes(ens, decompose="diabatic", **kw)
     p = np.stack(list(pair.components.values())).reshape(3, 2, *pair.shape)  # (i, k, ...)
     d = np.stack(list(dia.components.values())).reshape(3, 2, *dia.shape)  # (a, b, ...)
     expected = np.einsum("ia,kb,ik...->ab...", u**2, v**2, p)

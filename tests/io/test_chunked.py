@@ -148,7 +148,7 @@ def test_convert_extxyz_folder_streams_to_the_eager_result(tmp_path, toy):
 
 def test_import_does_not_import_dask():
     code = ("import sys, ensemblelab, ensemblelab.io, ensemblelab.io.lazy, "
-            "ensemblelab.io.chunked, ensemblelab.compute._dask; "
+            "ensemblelab.io.chunked, ensemblelab.compute.engine; "
             "print('dask' in sys.modules)")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
                          check=True)

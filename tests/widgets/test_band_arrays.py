@@ -1,8 +1,8 @@
 """The band of a SelectionModel keeps only the strongest snapshots, its groups stay exact.
 
 Every check value is computed independently (not published): the full per-snapshot
-table of ``contributions(by="snapshot")``, grouped with pandas, and
-``contributions(by=<column>)`` (its own bincount grouping) on the same ensemble.
+table of ``contributions(group_by="snapshot")``, grouped with pandas, and
+``contributions(group_by=<column>)`` (its own bincount grouping) on the same ensemble.
 """
 
 from __future__ import annotations
@@ -11,8 +11,8 @@ import numpy as np
 import pandas as pd
 import pytest
 
+from ensemblelab.compute.spectroscopy import compute_trpes, contributions
 from ensemblelab.compute.spectroscopy.pulses import GaussianPulse
-from ensemblelab.compute.spectroscopy.spectra import compute_trpes, contributions
 from ensemblelab.widgets import SelectionModel, SelectionTable
 from ensemblelab.widgets.export import export_tables
 
@@ -23,7 +23,7 @@ BAND = {"energy_range": (0.2, 1.8), "delay_range": (0.0, 150.0)}
 def trpes(toy):
     return compute_trpes(toy, probe=GaussianPulse(photon_energy=5.0, fwhm=30.0),
                          pump=GaussianPulse(photon_energy=4.0, fwhm=30.0),
-                         energies=np.linspace(0.0, 2.5, 126),
+                         kinetic_energies=np.linspace(0.0, 2.5, 126),
                          delays=np.arange(-60.0, 201.0, 5.0), progress=False)
 
 
@@ -39,7 +39,7 @@ def small_band(toy, trpes):
 
 
 def _full(ens, trpes, labels=None):
-    full = contributions(ens, trpes, by="snapshot", **BAND)
+    full = contributions(ens, trpes, group_by="snapshot", **BAND)
     if labels is not None:
         rows = pd.Index(ens.snapshots["snapshot"]).get_indexer(full["snapshot"])
         full["cluster"] = labels[rows]
@@ -80,7 +80,7 @@ def test_group_table_is_exact_over_all_contributing_snapshots(small_band, toy, t
     np.testing.assert_array_equal(got["n_trajectories"], g["traj"].nunique().sort_index())
     # reference 2: contributions' own grouping (the cluster column put on the ensemble)
     ens = toy.assign(cluster=labels) if by == "cluster" else toy
-    ref = contributions(ens, trpes, by=column, **BAND).set_index(column).sort_index()
+    ref = contributions(ens, trpes, group_by=column, **BAND).set_index(column).sort_index()
     np.testing.assert_allclose(got["intensity"], ref["intensity"], rtol=1e-12)
     np.testing.assert_array_equal(got["n_snapshots"], ref["n_snapshots"])
     assert model.group_table(by)["share"].is_monotonic_decreasing
@@ -147,10 +147,10 @@ def test_band_follows_exclusions_and_new_clusters(small_band, toy, trpes):
     model.trpes_map = compute_trpes(model.current, probe=GaussianPulse(photon_energy=5.0,
                                                                        fwhm=30.0),
                                     pump=GaussianPulse(photon_energy=4.0, fwhm=30.0),
-                                    energies=trpes.energies, delays=trpes.delays,
+                                    kinetic_energies=trpes.kinetic_energies, delays=trpes.delays,
                                     progress=False)
     cur = model.current
-    full = contributions(cur, model.trpes_map, by="traj", **BAND)
+    full = contributions(cur, model.trpes_map, group_by="traj", **BAND)
     got = model.group_table("traj").set_index("key").sort_index()
     assert not set(got.index) & {0, 1, 2}
     np.testing.assert_allclose(got["intensity"], full.set_index("traj").sort_index()
@@ -166,9 +166,9 @@ def test_share_beyond_the_kept_rows_with_exclusions(small_band, toy, trpes):
     model.exclude([4])
     model.trpes_map = compute_trpes(model.current, probe=GaussianPulse(photon_energy=5.0,
                                                                        fwhm=30.0),
-                                    energies=trpes.energies, delays=trpes.delays,
+                                    kinetic_energies=trpes.kinetic_energies, delays=trpes.delays,
                                     progress=False)
-    full = contributions(model.current, model.trpes_map, by="snapshot", **BAND)
+    full = contributions(model.current, model.trpes_map, group_by="snapshot", **BAND)
     row = full.iloc[len(full) // 2]
     assert model.snapshot_info(int(row["snapshot"]))["share"] == pytest.approx(
         float(row["share"]), rel=1e-12)

@@ -406,6 +406,7 @@ def analyse_band(
     delay_range: Sequence[float],
     clusters: npt.ArrayLike | None = None,
     groups: SnapshotGroups | None = None,
+    model: Any = None,
 ) -> BandAnalysis:
     """Find what makes one band of a map: per-snapshot intensities, groups, shares.
 
@@ -424,6 +425,9 @@ def analyse_band(
     groups : SnapshotGroups, optional
         Group keys of `ens` from an earlier call (``result.groups``): reused, so a
         second band of the same ensemble skips them (`clusters` is then ignored).
+    model : TRPESModel, optional
+        The stick model the map was made with (``compute_trpes(..., return_model=True)``);
+        without it the model is rebuilt from the map's parameters.
 
     Returns
     -------
@@ -441,7 +445,7 @@ def analyse_band(
     >>> band.group_table("state")[["label", "share"]].to_numpy().tolist()
     [['S2', 1.0]]
     """
-    from ..spectroscopy.spectra import region_intensity
+    from ..spectroscopy.contributions import region_intensity
 
     e_rng = _check_range(energy_range, "energy_range")
     d_rng = _check_range(delay_range, "delay_range")
@@ -451,7 +455,7 @@ def analyse_band(
         raise SchemaError(f"The 'groups' parameter of analyse_band holds "
                           f"{groups.n_snapshots} rows; ens has {ens.n_snapshots}. Hint: "
                           "pass the groups of the same ensemble (or none).")
-    x = region_intensity(ens, trpes_map, energy_range=e_rng, delay_range=d_rng)
+    x = region_intensity(ens, trpes_map, energy_range=e_rng, delay_range=d_rng, model=model)
     return BandAnalysis.from_intensity(groups, x, energy_range=e_rng, delay_range=d_rng)
 
 

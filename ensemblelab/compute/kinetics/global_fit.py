@@ -192,14 +192,16 @@ class GlobalFitResult:
 
 def _as_arrays(trpes_map: Any, energies, delays, intensity):
     if trpes_map is not None:
-        missing = [a for a in ("energies", "delays", "intensity") if not hasattr(trpes_map, a)]
+        missing = [a for a in ("kinetic_energies", "delays", "intensity")
+                   if not hasattr(trpes_map, a)]
         if missing:
             raise SchemaError(
-                f"fit_global needs a map with attributes energies, delays, intensity (a "
+                f"fit_global needs a map with attributes kinetic_energies, delays, intensity (a "
                 f"TRPESMap); {type(trpes_map).__name__} lacks {missing}. Hint: or pass "
                 "energies=, delays=, intensity= arrays."
             )
-        energies, delays, intensity = trpes_map.energies, trpes_map.delays, trpes_map.intensity
+        energies, delays = trpes_map.kinetic_energies, trpes_map.delays
+        intensity = trpes_map.intensity
     if energies is None or delays is None or intensity is None:
         raise SchemaError("fit_global needs a map, or all of energies=, delays=, intensity=.")
     e = np.asarray(energies, dtype=np.float64).ravel()

@@ -1,6 +1,6 @@
 """Electronic-state populations of an ensemble, with honest intervals.
 
-Three kinds of population (method notes section 7.1):
+Three kinds of population:
 
 * ``"active"`` (classical): the weighted fraction of alive trajectories whose
   active state is i, ``P_i(t) = sum_n w_n delta(a_n(t), i) / sum_n w_n``.
@@ -19,13 +19,17 @@ Otherwise each trajectory is sampled at its *nearest previous* step (the last
 snapshot with ``time <= t``), which never looks into the future of a trajectory
 and keeps the active state piecewise constant as surface hopping defines it.
 
-Intervals. ``method="wilson"`` uses the Wilson score interval (7.1) with the
+Intervals. ``interval="wilson"`` uses the Wilson score interval (7.1) with the
 weighted fraction and ``n_eff`` (exact for unweighted active-state fractions;
 for the fractional kinds ``"amplitudes"``/``"diabatic"`` it is the usual
 approximation that treats the mean as a proportion -- prefer the bootstrap
-there). ``method="bootstrap"`` resamples whole trajectories with replacement
+there). ``interval="bootstrap"`` resamples whole trajectories with replacement
 (``n_boot`` resamples, seeded by `random_state`) and reports percentiles; the
 resampling is done for all resamples at once by matrix products.
+
+:func:`populations` is one reduction of :mod:`ensemblelab.compute.engine`: each block of
+whole trajectories (the in-memory ensemble, or one chunk of a chunked store) gives its
+weighted sums (:func:`population_partial`), which add up; intervals come last.
 """
 
 from __future__ import annotations
@@ -41,6 +45,7 @@ import pandas as pd
 from scipy.stats import norm
 
 from ...errors import EnsembleWarning, SchemaError
+from ..engine import BlockSpan, add, as_source, reduce
 from . import _kernels_populations as _k
 
 if TYPE_CHECKING:
@@ -52,6 +57,7 @@ __all__ = [
     "population_consistency",
     "PopulationArrays",
     "POPULATION_KINDS",
+    "population_partial",
 ]
 
 #: the kinds of population :func:`populations` computes
@@ -145,17 +151,18 @@ def _resolve_grid(ens: Ensemble, time_grid: npt.ArrayLike | None) -> np.ndarray:
     return grid
 
 
-def _check_kind(ens: Ensemble, kind: str) -> None:
+def _check_kind(ens: Any, kind: str) -> None:
     if kind not in POPULATION_KINDS:
         raise SchemaError(
             f"The 'kind' parameter of populations must be one of {POPULATION_KINDS}; got {kind!r}."
         )
-    if kind == "amplitudes" and ens.amplitudes is None:
+    src = as_source(ens)
+    if kind == "amplitudes" and not src.has("amplitudes"):
         raise SchemaError(
             "populations(kind='amplitudes') needs ens.amplitudes (|c_i|^2 per snapshot); this "
             "ensemble has none. Hint: use kind='active'."
         )
-    if kind == "diabatic" and ens.adt is None:
+    if kind == "diabatic" and not src.has("adt"):
         raise SchemaError(
             "populations(kind='diabatic') needs ens.adt (adiabatic-to-diabatic matrices); this "
             "ensemble has none. Hint: compute them first or use kind='active'."
@@ -241,19 +248,22 @@ def populations(
     kind: str = "active",
     weights: str | npt.ArrayLike | None = None,
     ci: float = 0.95,
-    method: str = "wilson",
+    interval: str = "wilson",
     time_grid: npt.ArrayLike | None = None,
     n_boot: int = 1000,
     random_state: int | np.random.Generator | None = 0,
     exclude: Iterable[int] | pd.DataFrame | None = None,
     states: Sequence[int] | None = None,
     client: Any = None,
+    scheduler: Any = None,
+    progress: bool = False,
 ) -> pd.DataFrame:
     """Populations of the electronic states against time, with intervals.
 
     Parameters
     ----------
-    ens : Ensemble
+    ens : Ensemble or LazyEnsemble
+        A lazy (chunked) ensemble is reduced chunk by chunk with Dask.
     kind : {"active", "amplitudes", "diabatic"}
         Classical (active-state) fractions, mean ``|c_i|^2``, or mean diabatic
         character ``U[a, d]^2`` of the active state (see the module docstring).
@@ -262,14 +272,14 @@ def populations(
         names a column of ``ens.trajectories``; an array is aligned to its rows.
     ci : float in (0, 1)
         Confidence level of the interval.
-    method : {"wilson", "bootstrap"}
+    interval : {"wilson", "bootstrap"}
         Wilson score interval with the Kish effective size, or percentile
         bootstrap over whole trajectories.
     time_grid : array_like, optional
         Times in fs (strictly increasing). Default: the ensemble's unique
         snapshot times. Trajectories are sampled at their nearest previous step.
     n_boot : int
-        Bootstrap resamples (``method="bootstrap"``).
+        Number of bootstrap resamples (``interval="bootstrap"``).
     random_state : int, Generator or None
         Seed of the bootstrap.
     exclude : iterable of int or DataFrame, optional
@@ -280,6 +290,10 @@ def populations(
     client : dask.distributed.Client, optional
         For a lazy ensemble (``load(path, lazy=True)``): run the per-chunk sums on
         this cluster (default: Dask's default scheduler).
+    scheduler : str, optional
+        For a lazy ensemble without a client: the Dask scheduler.
+    progress : bool
+        Progress bar over the chunks of a lazy ensemble.
 
     Returns
     -------
@@ -289,7 +303,7 @@ def populations(
         trajectories with positive weight), ``n_eff`` (Kish effective size;
         equals ``n_alive`` for equal weights). Where nothing is alive the
         population and interval are NaN. ``frame.attrs`` records ``kind``,
-        ``method``, ``ci``, ``weights``, ``n_boot``, ``excluded`` (ids) and
+        ``interval``, ``ci``, ``weights``, ``n_boot``, ``excluded`` (ids) and
         ``ended_early`` (ids of trajectories ending before the last time).
 
     Examples
@@ -302,34 +316,46 @@ def populations(
     >>> bool((pop.groupby("time")["population"].sum() - 1).abs().max() < 1e-12)
     True
     """
-    from .. import _dask
-
-    if _dask.is_lazy(ens):  # chunked store: per-chunk weighted counts with Dask
-        return _dask.populations(ens, kind=kind, weights=weights, ci=ci, method=method,
-                                 time_grid=time_grid, n_boot=n_boot, random_state=random_state,
-                                 exclude=exclude, states=states, client=client)
-    _check_arguments(ens, kind=kind, method=method, ci=ci, n_boot=n_boot)
-    w, wlabel = _resolve_weights(ens, weights)
-    grid = _resolve_grid(ens, time_grid)
-    excluded = _excluded_mask(ens, exclude)
+    source = as_source(ens)
+    _check_arguments(source, kind=kind, interval=interval, ci=ci, n_boot=n_boot)
+    w, wlabel = _resolve_weights(source, weights)
+    grid = _resolve_grid(source, time_grid)
+    excluded = _excluded_mask(source, exclude)
     w = np.where(excluded, 0.0, w)
-    n_traj, n_states, n_times = ens.n_trajectories, ens.n_states, grid.size
-    idx_all = _k.sample_on_grid(ens.traj_index, ens.snapshots["time"].to_numpy(), n_traj, grid)
-    idx_all[w <= 0] = -1
-
-    counts = None
-    if method == "bootstrap":
+    n_traj, n_states, n_times = source.n_trajectories, source.n_states, grid.size
+    opts: dict[str, Any] = {"kind": kind, "grid": grid, "w": w, "n_states": n_states}
+    if interval == "bootstrap":
         rng = np.random.default_rng(random_state)
-        counts = _k.bootstrap_counts(n_traj, int(n_boot), rng)
-    sums = _weighted_sums(ens, kind, idx_all, w, counts, n_times=n_times, n_states=n_states)
-    num, w_alive, w2, n_alive = sums["num"], sums["w_alive"], sums["w2"], sums["n_alive"]
+        opts["counts"] = _k.bootstrap_counts(n_traj, int(n_boot), rng)
+    fields = {"active": [], "amplitudes": ["amplitudes"], "diabatic": ["adt"]}[kind]
+    sums = reduce(source, population_partial, add, args=(opts,), fields=fields, client=client,
+                  scheduler=scheduler, progress=progress, desc="population blocks")
     boot = None
-    if counts is not None:
+    if interval == "bootstrap":
         with np.errstate(divide="ignore", invalid="ignore"):
             boot = sums["boot_num"].reshape(-1, n_times, n_states) / sums["boot_den"][:, :, None]
-    return _finish(ens, grid=grid, num=num, w_alive=w_alive, w2=w2, n_alive=n_alive, boot=boot,
-                   states=states, kind=kind, method=method, ci=ci, wlabel=wlabel, n_boot=n_boot,
-                   excluded=excluded)
+    return _finish(source, grid=grid, num=sums["num"], w_alive=sums["w_alive"], w2=sums["w2"],
+                   n_alive=sums["n_alive"], boot=boot, states=states, kind=kind,
+                   interval=interval, ci=ci, wlabel=wlabel, n_boot=n_boot, excluded=excluded)
+
+
+def population_partial(block: Any, span: BlockSpan, opts: dict[str, Any]) -> dict[str, Any]:
+    """Weighted sums of one block of whole trajectories (a reduction partial).
+
+    ``opts`` holds ``kind``, the time ``grid``, the weights ``w`` of all trajectories
+    (the block's are ``w[span.traj_start:...]``), ``n_states`` and, for the bootstrap,
+    the resample ``counts`` (n_boot, n_trajectories).
+    """
+    lo, n_traj = span.traj_start, block.n_trajectories
+    grid = opts["grid"]
+    w = opts["w"][lo:lo + n_traj]
+    idx = _k.sample_on_grid(block.traj_index, block.snapshots["time"].to_numpy(), n_traj, grid)
+    idx[w <= 0] = -1
+    counts = opts.get("counts")
+    if counts is not None:
+        counts = counts[:, lo:lo + n_traj]
+    return _weighted_sums(block, opts["kind"], idx, w, counts, n_times=grid.size,
+                          n_states=opts["n_states"])
 
 
 def _weighted_sums(ens: Any, kind: str, idx_all: np.ndarray, w: np.ndarray,
@@ -338,8 +364,7 @@ def _weighted_sums(ens: Any, kind: str, idx_all: np.ndarray, w: np.ndarray,
 
     ``idx_all`` (n_traj, n_times) holds the snapshot row of each trajectory at each grid
     time (-1: not alive); ``counts`` (n_boot, n_traj) the bootstrap multiplicities or
-    None. Blocks of trajectories keep memory bounded. Shared by the in-memory path and
-    the per-chunk Dask tasks.
+    None. Blocks of trajectories keep memory bounded.
     """
     n_traj = idx_all.shape[0]
     if counts is not None:
@@ -368,31 +393,30 @@ def _weighted_sums(ens: Any, kind: str, idx_all: np.ndarray, w: np.ndarray,
     return out
 
 
-def _check_arguments(ens: Any, *, kind: str, method: str, ci: Any, n_boot: Any) -> None:
-    """Validate the arguments shared by the in-memory and the lazy populations()."""
+def _check_arguments(ens: Any, *, kind: str, interval: str, ci: Any, n_boot: Any) -> None:
+    """Validate the arguments of populations()."""
     _check_kind(ens, kind)
-    if method not in ("wilson", "bootstrap"):
+    if interval not in ("wilson", "bootstrap"):
         raise SchemaError(
-            f"The 'method' parameter of populations must be 'wilson' or 'bootstrap'; got "
-            f"{method!r}."
+            f"The 'interval' parameter of populations must be 'wilson' or 'bootstrap'; got "
+            f"{interval!r}."
         )
     if not (isinstance(ci, float | int) and 0.0 < float(ci) < 1.0):
         raise SchemaError(f"The 'ci' parameter of populations must be in (0, 1); got {ci!r}.")
-    if method == "bootstrap" and (int(n_boot) != n_boot or n_boot < 2):
+    if interval == "bootstrap" and (int(n_boot) != n_boot or n_boot < 2):
         raise SchemaError(f"The 'n_boot' parameter of populations must be an int >= 2; got "
                           f"{n_boot!r}.")
 
 
 def _finish(ens: Any, *, grid: np.ndarray, num: np.ndarray, w_alive: np.ndarray,
             w2: np.ndarray, n_alive: np.ndarray, boot: np.ndarray | None, states: Any,
-            kind: str, method: str, ci: float, wlabel: str, n_boot: int,
+            kind: str, interval: str, ci: float, wlabel: str, n_boot: int,
             excluded: np.ndarray, stacklevel: int = 3) -> pd.DataFrame:
     """Fractions, intervals and the tidy frame from the weighted sums over trajectories.
 
     ``num`` (n_times, n_states) and ``w_alive``/``w2``/``n_alive`` (n_times,) are sums of
     weight x value, weight, weight^2 and alive counts; ``boot`` (n_boot, n_times,
     n_states) holds the bootstrap replicas of the fractions, or None for Wilson.
-    Shared by the in-memory and the per-chunk (Dask) paths.
     """
     n_times, n_states = num.shape
     with np.errstate(divide="ignore", invalid="ignore"):
@@ -433,8 +457,8 @@ def _finish(ens: Any, *, grid: np.ndarray, num: np.ndarray, w_alive: np.ndarray,
     t_end = ens.trajectories["t_end"].to_numpy()
     ids = ens.trajectories["traj"].to_numpy()
     frame.attrs.update(
-        kind=kind, method=method, ci=float(ci), weights=wlabel,
-        n_boot=int(n_boot) if method == "bootstrap" else 0,
+        kind=kind, interval=interval, ci=float(ci), weights=wlabel,
+        n_boot=int(n_boot) if interval == "bootstrap" else 0,
         excluded=ids[excluded].tolist(),
         ended_early=ids[(t_end < grid[-1]) & ~excluded].tolist(),
     )
@@ -448,7 +472,8 @@ def population_consistency(ens: Ensemble) -> pd.DataFrame:
     ``(1/2) sum_i | delta(a, i) - |c_i|^2 |`` (0 when the trajectory sits on the
     state that carries all the amplitude, up to 1). In fewest-switches surface
     hopping the *ensemble* fractions of active states should track the mean
-    amplitudes (method notes 7.1, a consistency diagnostic); trajectories whose
+    amplitudes (a consistency diagnostic; J. Chem. Phys. 1990, "Molecular dynamics with
+    electronic transitions"); trajectories whose
     gap stays large for long are the ones that break it (frustrated hops,
     decoherence problems).
 

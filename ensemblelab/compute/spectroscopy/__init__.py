@@ -4,11 +4,18 @@ contributions of snapshots to a region, diabatic decomposition and map compariso
 The time-resolved photoelectron spectrum is simulated in the classical doorway-window
 picture (J. Chem. Phys. 2004, "Classical doorway-window approximation for time-resolved
 pump-probe spectra"); see :func:`compute_trpes`.
+
+Modules: :mod:`.weights` (doorway and trajectory weights), :mod:`.sticks` (the sticks of
+a block of trajectories), :mod:`.model` (moment histograms and broadening),
+:mod:`.maps` (:func:`compute_trpes`), :mod:`.contributions` (region shares); the array
+kernels are ``_kernels_deposit`` and ``_kernels_broadening`` with their naive twins in
+``_reference_trpes``.
 """
 
 from __future__ import annotations
 
 from .compare import MapComparison, compare_maps, resample_map
+from .contributions import contributions, model_for_map, region_intensity
 from .cross_sections import (
     AnionThresholdLaw,
     CrossSection,
@@ -28,16 +35,14 @@ from .diabatic import (
     propagate_adt,
 )
 from .extent import signal_extent
+from .maps import compute_trpes
+from .model import TRPESModel
 from .pulses import GaussianPulse, cross_correlation, cross_correlation_fwhm
-from .spectra import (
-    TRPESModel,
-    compute_trpes,
-    contributions,
+from .sticks import prepare_sticks
+from .weights import (
     doorway_factor,
     doorway_weights,
     ground_state_ionisation_fraction,
-    prepare_sticks,
-    region_intensity,
     trajectory_weights,
 )
 
@@ -48,6 +53,7 @@ __all__ = [
     "compute_trpes",
     "contributions",
     "region_intensity",
+    "model_for_map",
     "prepare_sticks",
     "TRPESModel",
     "ground_state_ionisation_fraction",

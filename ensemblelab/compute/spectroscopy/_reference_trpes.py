@@ -1,4 +1,5 @@
-"""Naive reference twins of :mod:`~ensemblelab.compute.spectroscopy._kernels_trpes`
+"""Naive reference twins of :mod:`~ensemblelab.compute.spectroscopy._kernels_deposit` and
+:mod:`~ensemblelab.compute.spectroscopy._kernels_broadening`
 (slow; for tests).
 
 Every contribution is evaluated as its own Gaussian at every output energy, and
@@ -69,7 +70,7 @@ def convolve_naive(pure, times, delays, *, sigma, t_known, cutoff=8.0, launch_ha
 
 
 def trpes_naive(model, *, energies, delays, fwhm, sigma, normalise="alive"):
-    """A whole map from a :class:`~ensemblelab.compute.spectroscopy.spectra.TRPESModel`, naively."""
+    """A whole map from a :class:`~ensemblelab.compute.spectroscopy.model.TRPESModel`, naively."""
     s = model.sticks
     pure = pure_map_naive(model.tbin, model.tfrac, s.energy, s.weight, n_time=model.n_time,
                           energies=np.asarray(energies, float), fwhm=fwhm)

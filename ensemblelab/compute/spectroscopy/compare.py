@@ -41,7 +41,7 @@ def resample_map(m: TRPESMap, *, energies: np.ndarray, delays: np.ndarray,
     """
     if m.n_delays < 2 or m.n_energies < 2:
         raise SchemaError("maps need at least 2 delays and 2 energies to be resampled.")
-    f = RegularGridInterpolator((m.delays, m.energies), m.intensity, method="linear",
+    f = RegularGridInterpolator((m.delays, m.kinetic_energies), m.intensity, method="linear",
                                 bounds_error=False, fill_value=0.0)
     dd, ee = np.meshgrid(np.asarray(delays) - time_zero, np.asarray(energies) - energy_shift,
                          indexing="ij")
@@ -90,13 +90,13 @@ def compare_maps(simulated: TRPESMap, measured: TRPESMap, *, fit_energy_shift: b
     -------
     MapComparison
     """
-    se = (simulated.energies >= measured.energies[0]) & (simulated.energies <=
-                                                         measured.energies[-1])
+    e_sim, e_meas = simulated.kinetic_energies, measured.kinetic_energies
+    se = (e_sim >= e_meas[0]) & (e_sim <= e_meas[-1])
     sd = (simulated.delays >= measured.delays[0]) & (simulated.delays <= measured.delays[-1])
     if se.sum() < 2 or sd.sum() < 2:
         raise SchemaError("the measured and simulated maps do not overlap on at least 2 x 2 "
                           "grid points; check units (eV, fs) and ranges.")
-    energies, delays = simulated.energies[se], simulated.delays[sd]
+    energies, delays = simulated.kinetic_energies[se], simulated.delays[sd]
     meas = resample_map(measured, energies=energies, delays=delays)
 
     def model_at(shift: float, t0: float) -> np.ndarray:
@@ -145,10 +145,10 @@ def compare_maps(simulated: TRPESMap, measured: TRPESMap, *, fit_energy_shift: b
               "r2": r2}
     return MapComparison(
         scale=scale, energy_shift=shift, time_zero=t0, cosine=cosine, r2=r2,
-        measured=TRPESMap(energies=energies, delays=delays, intensity=meas,
+        measured=TRPESMap(kinetic_energies=energies, delays=delays, intensity=meas,
                           params={"role": "measured (resampled)", **params}),
-        model=TRPESMap(energies=energies, delays=delays, intensity=model,
+        model=TRPESMap(kinetic_energies=energies, delays=delays, intensity=model,
                        params={"role": "model", **params}),
-        residual=TRPESMap(energies=energies, delays=delays, intensity=resid,
+        residual=TRPESMap(kinetic_energies=energies, delays=delays, intensity=resid,
                           params={"role": "residual", **params}),
     )

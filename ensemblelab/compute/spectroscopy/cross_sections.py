@@ -38,6 +38,7 @@ __all__ = [
     "hydrogenic_factor",
     "resolve_cross_section",
     "cross_section_from_description",
+    "describe_cross_section",
 ]
 
 
@@ -326,7 +327,8 @@ def resolve_cross_section(spec: str | CrossSection | Callable[..., Any]) -> Cros
     )
 
 
-def _describe(cs: CrossSection) -> dict[str, Any]:
+def describe_cross_section(cs: CrossSection) -> dict[str, Any]:
+    """``cs.describe()`` with non-finite floats as None (JSON-safe map params)."""
     d = cs.describe()
     return {k: (v if not isinstance(v, float) or math.isfinite(v) else None)
             for k, v in d.items()}

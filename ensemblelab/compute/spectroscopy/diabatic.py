@@ -283,7 +283,7 @@ def ensemble_adt(ens: Ensemble, *, kind: str = "step",
         dipole (a linear assignment; diabatic dipoles vary smoothly, adiabatic states
         need not). Signs are a convention (each column's largest element positive):
         dipoles alone cannot fix them, and the diabatic characters ``A**2`` that
-        ``compute_trpes(by="diabatic")`` uses do not depend on them.
+        ``compute_trpes(decompose="diabatic")`` uses do not depend on them.
     warn_below : float
         See :func:`loewdin`.
     dipoles : array_like, shape (n_snapshots, n_states, n_states, 3), optional

@@ -10,6 +10,7 @@ features). Nothing is deleted: drop the flagged trajectories with
 from __future__ import annotations
 
 import dataclasses
+import warnings
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, Any
@@ -18,14 +19,16 @@ import numpy as np
 import pandas as pd
 from scipy import constants as _sc
 
-from ...errors import SchemaError
+from ...errors import EnsembleWarning, SchemaError
+from ..engine import BlockSpan, as_source, reduce, time_statistics
 from . import _kernels_geometry as _k
+from ._outlier_score import multivariate_score
 
 if TYPE_CHECKING:
     from ...data.ensemble import Ensemble
 
 __all__ = ["OutlierThresholds", "BROKEN_KINDS", "WARNING_KINDS", "flag_trajectories",
-           "kinetic_energy"]
+           "kinetic_energy", "flags_partial"]
 
 #: flag kinds that mark a trajectory as broken (``flagged=True``) by default
 BROKEN_KINDS = ("nonfinite", "missing_steps", "early_end", "energy_drift", "energy_jump",
@@ -41,7 +44,7 @@ _AMU_A2_FS2_EV = _sc.physical_constants["atomic mass constant"][0] * 1e10 / _sc.
 class OutlierThresholds:
     """User-tunable thresholds of :func:`flag_trajectories`.
 
-    Every default is common practice (method notes, section 8), not a law; tune
+    Every default is common practice, not a law; tune
     them to your electronic-structure method and time step.
 
     Attributes
@@ -198,6 +201,8 @@ def flag_trajectories(
     random_state: int = 0,
     chunk_size: int = 65536,
     client: Any = None,
+    scheduler: Any = None,
+    progress: bool = False,
 ) -> pd.DataFrame:
     """Flag broken and unusual trajectories, with a readable reason for every flag.
 
@@ -223,9 +228,17 @@ def flag_trajectories(
     ``e_kin``, else plus the kinetic energy from velocities; without any, the energy
     checks are skipped.
 
+    :func:`flag_trajectories` is one reduction of :mod:`ensemblelab.compute.engine`: the
+    rule-based checks are per trajectory (a trajectory never straddles blocks), run
+    per block (:func:`flags_partial`) with the ensemble-wide median step, expected end
+    time and tolerance; the isolation forest is fitted once on the per-trajectory
+    features of all blocks. One caveat for a chunked store: the missing-steps rule uses
+    the median step of each chunk's own trajectories; when that differs from the
+    ensemble median an EnsembleWarning says so (regular time steps give equal medians).
+
     Parameters
     ----------
-    ens : Ensemble
+    ens : Ensemble or LazyEnsemble
     thresholds : OutlierThresholds or mapping, optional
         Overrides of the defaults (a mapping updates only the named fields).
     multivariate : bool
@@ -237,6 +250,10 @@ def flag_trajectories(
     client : dask.distributed.Client, optional
         For a lazy ensemble (``load(path, lazy=True)``): run the per-chunk checks on
         this cluster (default: Dask's default scheduler).
+    scheduler : str, optional
+        For a lazy ensemble without a client: the Dask scheduler.
+    progress : bool
+        Progress bar over the chunks of a lazy ensemble.
 
     Returns
     -------
@@ -259,14 +276,54 @@ def flag_trajectories(
     True
     >>> clean = ens.without(table[table.flagged])
     """
-    from .. import _dask
-
-    if _dask.is_lazy(ens):  # chunked store: per-chunk checks with Dask
-        return _dask.flag_trajectories(ens, thresholds=thresholds, multivariate=multivariate,
-                                       random_state=random_state, chunk_size=chunk_size,
-                                       client=client)
+    source = as_source(ens)
     th = resolve_thresholds(thresholds)
+    dt_med = time_statistics(source, client=client, scheduler=scheduler)["median_step"]
+    t_end_all = source.trajectories["t_end"].to_numpy(dtype=np.float64)
+    t_ref = th.expected_t_end if th.expected_t_end is not None else (
+        float(t_end_all.max()) if source.n_trajectories else 0.0)
+    tol = th.end_tolerance if th.end_tolerance is not None else (
+        1.5 * dt_med if np.isfinite(dt_med) else 0.0)
+    opts = {"th": dataclasses.replace(th, expected_t_end=t_ref, end_tolerance=tol),
+            "chunk_size": chunk_size}
+    parts = reduce(source, flags_partial, None, args=(opts,), fields=None, client=client,
+                   scheduler=scheduler, progress=progress, desc="flag blocks")
+    meds = np.array([p["local_median"] for p in parts])
+    differs = np.isfinite(meds) & np.isfinite(dt_med) & (meds != dt_med)
+    if np.any(differs):
+        warnings.warn(
+            f"flag_trajectories: the median time step of {int(differs.sum())} chunk(s) differs "
+            f"from the ensemble median ({dt_med:.6g} fs); their missing-steps check used the "
+            "chunk's own median.", EnsembleWarning, stacklevel=2)
+    table = pd.concat([p["table"] for p in parts], ignore_index=True)
+    n_traj = len(table)
+    if multivariate and n_traj >= 8:
+        score, unusual = multivariate_score(source, parts, table, th.contamination,
+                                            random_state, client=client, scheduler=scheduler)
+        table["score"], table["unusual"] = score, unusual
+        flags, reason = table["flags"].tolist(), table["reason"].tolist()
+        flagged = table["flagged"].to_numpy().copy()
+        n_flags = table["n_flags"].to_numpy().copy()
+        for r in np.flatnonzero(unusual):
+            text = (f"unusual trajectory (isolation-forest score {score[r]:.3g}, among the "
+                    f"{th.contamination:.0%} most atypical)")
+            flags[r] = f"{flags[r]};unusual" if flags[r] else "unusual"
+            reason[r] = f"{reason[r]}; {text}" if reason[r] else text
+            n_flags[r] += 1
+            if "unusual" in th.broken_kinds:
+                flagged[r] = True
+        table["flags"], table["reason"] = flags, reason
+        table["flagged"], table["n_flags"] = flagged, n_flags
+    return table
 
+
+def flags_partial(block: Any, span: BlockSpan, opts: Mapping[str, Any]) -> dict[str, Any]:
+    """Rule-based flags and the per-trajectory features of one block (a reduction partial).
+
+    ``opts`` holds the thresholds ``th`` (with the ensemble-wide ``expected_t_end`` and
+    ``end_tolerance`` filled in) and ``chunk_size``; ``block`` is a whole Ensemble.
+    """
+    ens, th = block, opts["th"]
     snaps = ens.snapshots
     n = ens.n_snapshots
     trajs = ens.trajectories
@@ -388,18 +445,10 @@ def flag_trajectories(
 
     # ---- bond topology (covalent radii), chunked over snapshots
     if ens.n_atoms > 1 and n:
-        _topology(ens, th, tix, time, flags, chunk_size)
+        _topology(ens, th, tix, time, flags, opts["chunk_size"])
 
-    # ---- multivariate score
     score = np.full(n_traj, np.nan)
     unusual = np.zeros(n_traj, dtype=bool)
-    if multivariate and n_traj >= 8:
-        score, unusual = _multivariate(ens, tix, starts, max_drift, max_jump, n_hops,
-                                       max_hop_gap, t_end, th, random_state)
-        for r in np.flatnonzero(unusual):
-            flags.add(int(r), "unusual", np.nan,
-                      f"unusual trajectory (isolation-forest score {score[r]:.3g}, among the "
-                      f"{th.contamination:.0%} most atypical)")
 
     # ---- assemble
     order = {k: i for i, k in enumerate(BROKEN_KINDS + WARNING_KINDS)}
@@ -414,7 +463,7 @@ def flag_trajectories(
         first_bad.append(min(times) if times else np.nan)
         flagged.append(bool(broken))
         n_flags.append(len(kinds))
-    return pd.DataFrame({
+    table = pd.DataFrame({
         "traj": trajs["traj"].to_numpy(),
         "flagged": np.asarray(flagged, dtype=bool),
         "flags": out_flags,
@@ -429,6 +478,12 @@ def flag_trajectories(
         "max_norm_error": max_norm,
         "t_end": t_end,
     })
+    e_act = ens.energies[np.arange(n), active]
+    e_act = np.where(np.isfinite(e_act), e_act, np.nan)
+    e_mean = pd.Series(e_act).groupby(tix).mean().reindex(range(n_traj)).to_numpy()
+    return {"table": table, "n_hops": n_hops,
+            "n_finite": int(np.isfinite(ens.geometries).all(axis=(1, 2)).sum()),
+            "e_mean": e_mean, "local_median": dt_med}
 
 
 def _topology(ens: Ensemble, th: OutlierThresholds, tix: np.ndarray, time: np.ndarray,
@@ -484,42 +539,3 @@ def _topology(ens: Ensemble, th: OutlierThresholds, tix: np.ndarray, time: np.nd
                       f"bond {a_}-{b_} ({sym[a_]}-{sym[b_]}) {word} at {_fmt(t)} fs "
                       f"({dist[word][loc]:.2f} Angstrom, {r0_of[traj_row, pp]:.2f} Angstrom "
                       "at t=0)")
-
-
-def _multivariate(ens: Ensemble, tix: np.ndarray, starts: np.ndarray, max_drift: np.ndarray,
-                  max_jump: np.ndarray, n_hops: np.ndarray, max_hop_gap: np.ndarray,
-                  t_end: np.ndarray, th: OutlierThresholds, random_state: int
-                  ) -> tuple[np.ndarray, np.ndarray]:
-    from sklearn.ensemble import IsolationForest
-    from sklearn.preprocessing import RobustScaler
-
-    from .geometry import mean_structure, rmsd
-
-    n = ens.n_snapshots
-    finite = np.isfinite(ens.geometries).all(axis=(1, 2))
-    rng = np.random.default_rng(random_state)
-    fin_rows = np.flatnonzero(finite)
-    sub = fin_rows if fin_rows.size <= 5000 else np.sort(rng.choice(fin_rows, 5000, False))
-    feats = [max_drift, max_jump, n_hops, max_hop_gap, t_end]
-    if sub.size:
-        ref, _ = mean_structure(ens.geometries[sub], max_iter=10, tol=1e-6)
-        rm = np.full(n, np.nan)
-        rm[fin_rows] = rmsd(ens.geometries[fin_rows], ref)
-        df = pd.DataFrame({"t": tix, "r": rm})
-        g = df.groupby("t")["r"]
-        feats += [g.mean().reindex(range(len(t_end))).to_numpy(),
-                  g.max().reindex(range(len(t_end))).to_numpy()]
-    e_act = ens.energies[np.arange(n), ens.snapshots["active"].to_numpy()]
-    e_act = np.where(np.isfinite(e_act), e_act, np.nan)
-    feats.append(pd.Series(e_act).groupby(tix).mean().reindex(range(len(t_end))).to_numpy())
-    F = np.column_stack(feats).astype(np.float64)
-    keep = np.isfinite(F).any(axis=0) & (np.nanstd(F, axis=0) > 0)
-    F = F[:, keep]
-    if F.shape[1] == 0:
-        return np.full(len(t_end), np.nan), np.zeros(len(t_end), bool)
-    med = np.nanmedian(F, axis=0)
-    F = np.where(np.isfinite(F), F, med)
-    F = RobustScaler().fit_transform(F)
-    forest = IsolationForest(n_estimators=200, contamination=th.contamination,
-                             random_state=random_state).fit(F)
-    return -forest.score_samples(F), forest.predict(F) == -1

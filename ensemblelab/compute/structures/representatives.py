@@ -344,7 +344,7 @@ def band_representatives(
     contributions : DataFrame or mapping band name -> DataFrame
         Any table with columns ``snapshot`` (ids of ``ens.snapshots``) and ``share``
         (its share of the band intensity), such as
-        ``ensemblelab.compute.spectroscopy.spectra.contributions(ens, map, by="snapshot", ...)``.
+        ``ensemblelab.compute.spectroscopy.contributions(ens, map, group_by="snapshot", ...)``.
     coverage : float in (0, 1]
         Keep the largest-share snapshots that together hold this fraction of the
         band's share; the representative is the share-weighted medoid (or mode) of
