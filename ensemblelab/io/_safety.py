@@ -42,7 +42,7 @@ MAX_VALUE_CHARS = 2 * 2**20
 #: most bytes one trajectory file may hold (after gzip decompression): 2 GiB
 MAX_FILE_BYTES = 2 * 2**30
 #: a ``.gz`` file may expand to at most this many times its size on disk ...
-MAX_GZIP_RATIO = 200
+MAX_GZIP_RATIO = 100
 #: ... once it is larger than this (64 MiB): small files may compress very well
 GZIP_RATIO_FLOOR = 64 * 2**20
 #: most elements (over all arrays) a store manifest may declare: 2**36 (512 GiB of float64)
