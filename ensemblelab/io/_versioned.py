@@ -105,6 +105,8 @@ def foreign_entries(root: Path, manifest: Mapping[str, Any] | None = None) -> li
     found: list[str] = []
     for top in sorted(os.listdir(root)):
         p = root / top
+        if not os.path.lexists(p):  # removed meanwhile (a reader never removes; be tolerant)
+            continue
         if p.is_symlink():
             found.append(top)
             continue
@@ -194,7 +196,7 @@ class StoreTransaction:
         self.committed = False
 
     # -- checks
-    def _check_existing(self, target: Path) -> dict[str, Any]:
+    def _check_existing(self, target: Path, *, locked: bool = True) -> dict[str, Any]:
         if not target.is_dir() or target.is_symlink():
             what = "a symbolic link" if target.is_symlink() else "a file"
             raise StoreError(f"{target}: exists and is {what}, not a {self.kind} folder. Hint: "
@@ -207,7 +209,7 @@ class StoreTransaction:
         if not self.overwrite:
             raise StoreError(f"{target}: a {self.kind} already exists. Hint: pass "
                              "overwrite=True (--overwrite) to replace it.")
-        foreign = foreign_entries(target, manifest)
+        foreign = foreign_entries(target, manifest) if locked else []
         if foreign:
             shown = ", ".join(repr(f) for f in foreign[:5]) + (" ..." if len(foreign) > 5
                                                                else "")
@@ -225,7 +227,7 @@ class StoreTransaction:
         target.parent.mkdir(parents=True, exist_ok=True)
         _clean_stale_siblings(target)
         if target.exists() or target.is_symlink():
-            self._check_existing(target)
+            self._check_existing(target, locked=False)  # a store, and overwrite allowed
             self._stack.enter_context(writer_lock(target / LOCK_NAME, store=target))
             manifest = self._check_existing(target)  # again, now that we hold the lock
             self._clean_unreferenced(target, manifest)
@@ -307,7 +309,7 @@ class StoreTransaction:
         """Another process created the store while we wrote ours: replace it if allowed."""
         assert self._staging is not None
         target = self.target
-        manifest = self._check_existing(target)
+        self._check_existing(target, locked=False)
         with writer_lock(target / LOCK_NAME, store=target):
             manifest = self._check_existing(target)
             os.rename(self._staging / self.version, target / self.version)
