@@ -66,8 +66,10 @@ def excerpt(text: Any, limit: int = 40) -> str:
     bidirectional and other invisible characters appear as escapes), with
     ``...`` when cut.
     """
-    s = str(text)
-    return repr(s[:limit]) + ("..." if len(s) > limit else "")
+    if not isinstance(text, str):
+        s = repr(text)
+        return s[:limit] + ("..." if len(s) > limit else "")
+    return repr(text[:limit]) + ("..." if len(text) > limit else "")
 
 
 def find_forbidden_char(text: str) -> tuple[int, str] | None:
