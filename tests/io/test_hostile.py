@@ -369,3 +369,19 @@ def test_load_chunk_refuses_a_linked_chunk_file(tmp_path):
     (chunk / "energies.npy").symlink_to(outside)
     with pytest.raises(StoreError, match="leaves the store"):
         load_chunk(path, 0)
+
+
+def test_limits_can_be_raised_for_genuine_files(tmp_path):
+    from ensemblelab.io import limits
+
+    path = _xyz(tmp_path / "traj_0.xyz", COMMENT + " label=" + "c" * 500)
+    before = limits.set_limits(MAX_VALUE_CHARS=100)
+    try:
+        with pytest.raises(ParseError, match="MAX_VALUE_CHARS"):
+            load_extxyz(path, progress=False)
+        limits.set_limits(MAX_VALUE_CHARS=1000)
+        assert load_extxyz(path, progress=False).snapshots["label"].iloc[0] == "c" * 500
+    finally:
+        limits.set_limits(**before)
+    with pytest.raises(ValueError, match="unknown limit"):
+        limits.set_limits(MAX_NOTHING=1)
