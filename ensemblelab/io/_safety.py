@@ -164,6 +164,13 @@ def read_bounded(fh: IO[bytes], *, path: Path, compressed_size: int | None,
             cap = ratio_cap
             reason = (f"{MAX_GZIP_RATIO} times its compressed size of {compressed_size} bytes "
                       f"(MAX_GZIP_RATIO; a likely decompression bomb)")
+    if compressed_size is None:  # a plain file: its size is known, read it in one piece
+        with contextlib.suppress(OSError, AttributeError, ValueError):
+            if os.fstat(fh.fileno()).st_size <= cap:
+                data = fh.read(cap + 1)
+                if len(data) <= cap:
+                    return data
+                fh.seek(0)
     parts: list[bytes] = []
     total = 0
     while True:
