@@ -12,7 +12,8 @@ from collections.abc import Iterator
 from pathlib import Path
 from typing import IO, Any
 
-__all__ = ["atomic_file", "atomic_write_bytes", "atomic_write_text"]
+__all__ = ["atomic_file", "atomic_write_bytes", "atomic_write_text", "exchange_paths",
+           "replace_folder"]
 
 
 @contextlib.contextmanager
@@ -68,3 +69,61 @@ def atomic_write_text(path: str | os.PathLike[str], text: str, *, overwrite: boo
     with atomic_file(path, "w", overwrite=overwrite, encoding=encoding, newline="\n") as fh:
         fh.write(text)
     return Path(path)
+
+
+_RENAME_EXCHANGE = 2  # linux/fs.h
+_AT_FDCWD = -100
+
+
+def exchange_paths(a: str | os.PathLike[str], b: str | os.PathLike[str]) -> bool:
+    """Swap the names `a` and `b` atomically (Linux ``renameat2(RENAME_EXCHANGE)``).
+
+    Returns
+    -------
+    bool
+        True when swapped; False when the system offers no atomic exchange (the
+        caller then falls back to two renames). Other failures raise OSError.
+    """
+    import ctypes
+    import ctypes.util
+    import errno
+    import sys
+
+    if not sys.platform.startswith("linux"):
+        return False
+    try:
+        libc = ctypes.CDLL(ctypes.util.find_library("c") or "libc.so.6", use_errno=True)
+        fn = libc.renameat2
+    except (OSError, AttributeError):
+        return False
+    fn.argtypes = [ctypes.c_int, ctypes.c_char_p, ctypes.c_int, ctypes.c_char_p, ctypes.c_uint]
+    rc = fn(_AT_FDCWD, os.fsencode(a), _AT_FDCWD, os.fsencode(b), _RENAME_EXCHANGE)
+    if rc == 0:
+        return True
+    err = ctypes.get_errno()
+    if err in (errno.ENOSYS, errno.EINVAL, errno.ENOTSUP):
+        return False
+    raise OSError(err, os.strerror(err), os.fspath(b))
+
+
+def replace_folder(new: str | os.PathLike[str], target: str | os.PathLike[str]) -> Path | None:
+    """Put the folder `new` at `target`; returns where the previous folder now is (or None).
+
+    With an atomic exchange (Linux) `target` names either the old or the new
+    folder at every instant; elsewhere the old folder is renamed aside first (a
+    short window without a folder). The caller deletes the returned old folder.
+    """
+    new, target = Path(new), Path(target)
+    if not target.exists():
+        os.replace(new, target)
+        return None
+    if exchange_paths(new, target):
+        return new  # `new` now names the previous folder
+    old = target.with_name(f".{target.name}.old-{os.getpid()}-{id(new):x}")
+    os.replace(target, old)
+    try:
+        os.replace(new, target)
+    except BaseException:
+        os.replace(old, target)
+        raise
+    return old

@@ -26,6 +26,7 @@ Uses matplotlib without pyplot (no display needed) and never imports the widget 
 from __future__ import annotations
 
 import html
+import json
 import os
 import shutil
 import tempfile
@@ -38,6 +39,8 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from ._atomic import atomic_write_text, replace_folder
+from ._csv import neutralise_csv_text, to_csv_text
 from .data.ensemble import Ensemble
 from .errors import StoreError
 from .plotting.populations import savefig, scheme_name
@@ -169,8 +172,60 @@ def _img(rel: str, alt: str, width: str = "single") -> str:
 
 def _csv(table: pd.DataFrame, path: Path) -> Path:
     path.parent.mkdir(parents=True, exist_ok=True)
-    table.to_csv(path, index=False)
+    path.write_text(to_csv_text(table), encoding="utf-8")  # formula-like cells neutralised
     return path
+
+
+#: marker file inside a report folder: what ensemblelab wrote there (JSON list of files)
+REPORT_MARKER = ".ensemblelab-report.json"
+
+
+def _files_below(folder: Path) -> list[str]:
+    out = []
+    for dirpath, dirnames, filenames in os.walk(folder, followlinks=False):
+        d = Path(dirpath)
+        out += [str((d / n).relative_to(folder)) for n in filenames]
+        out += [str((d / n).relative_to(folder)) for n in dirnames if (d / n).is_symlink()]
+    return sorted(out)
+
+
+def _check_replaceable(out: Path, ens: Ensemble, source: str | None) -> None:
+    """Refuse to replace anything but a report folder that ensemblelab wrote.
+
+    Never the input (or a folder holding or inside it), never a folder without the
+    report marker, never one holding files the marker does not list.
+    """
+    real = out.resolve()
+    inputs = [Path(s["path"]) for s in ens.metadata.get("sources", [])
+              if isinstance(s, dict) and isinstance(s.get("path"), str)]
+    if source:
+        inputs.append(Path(source))
+    for src in inputs:
+        try:
+            r = src.resolve()
+        except (OSError, RuntimeError):
+            continue
+        if r == real or real in r.parents or r in real.parents:
+            raise StoreError(f"{out}: refusing to write the report there: it is, holds or lies "
+                             f"inside the input data ({src}). Hint: choose another --out folder.")
+    if not out.exists():
+        return
+    if not out.is_dir() or out.is_symlink():
+        raise StoreError(f"{out}: exists and is not a report folder. Hint: choose another path.")
+    marker = out / REPORT_MARKER
+    try:
+        listed = json.loads(marker.read_text(encoding="utf-8"))["files"]
+        if not isinstance(listed, list):
+            raise TypeError
+    except (OSError, ValueError, KeyError, TypeError):
+        raise StoreError(f"{out}: refusing to overwrite a folder that ensemblelab did not write "
+                         f"as a report (no valid {REPORT_MARKER}). Hint: choose a new --out "
+                         "folder or remove this one yourself.") from None
+    foreign = sorted(set(_files_below(out)) - set(listed) - {REPORT_MARKER})
+    if foreign:
+        raise StoreError(f"{out}: refusing to overwrite: the report folder holds "
+                         f"{len(foreign)} file(s) ensemblelab did not write ({foreign[:5]}). "
+                         "Hint: move them out, or choose another --out folder.")
 
 
 def _table_html(table: pd.DataFrame, *, max_rows: int = 30) -> str:
@@ -305,7 +360,7 @@ def build_report(
     from .compute.kinetics.populations import populations
     from .compute.kinetics.rates import fit_kinetics
     from .compute.spectroscopy.pulses import GaussianPulse
-    from .compute.spectroscopy.spectra import compute_trpes
+    from .compute.spectroscopy import compute_trpes
     from .compute.structures.clustering import cluster_snapshots
     from .compute.structures.outliers import flag_trajectories
     from .compute.structures.representatives import cluster_representatives
@@ -313,6 +368,7 @@ def build_report(
     from .plotting.populations import plot_populations
 
     out = Path(out)
+    _check_replaceable(out, ens, source)
     if out.exists() and not overwrite:
         raise StoreError(f"{out} exists; pass overwrite=True (--overwrite) to replace it.")
     out.parent.mkdir(parents=True, exist_ok=True)
@@ -469,7 +525,9 @@ def build_report(
                                               reps.geometries, reps.symbols, table[info_cols],
                                               format="xyz", overwrite=True)
                 rep_csv_target = tmp / "tables" / "representatives.csv"
-                shutil.move(str(rep_csv), rep_csv_target)
+                rep_csv_target.write_text(neutralise_csv_text(Path(rep_csv).read_text(
+                    encoding="utf-8")), encoding="utf-8")
+                Path(rep_csv).unlink()
                 rkeep = [c for c in ("group", "snapshot", "traj", "time", "active",
                                      "cluster_fraction", "rmsd_to_reference") if c in table]
                 return (
@@ -500,14 +558,15 @@ def build_report(
                 f"<title>{html.escape(title)}</title><style>{style}</style></head><body>"
                 + head + "".join(sections) + "</body></html>")
         (tmp / "index.html").write_text(page, encoding="utf-8")
-        # move into place
+        atomic_write_text(tmp / REPORT_MARKER, json.dumps(
+            {"format": "ensemblelab-report", "files": _files_below(tmp)}, indent=1))
+        # move into place: swapped atomically where the system can (the old report, checked
+        # above to hold only what ensemblelab wrote, is deleted afterwards)
         if out.exists():
-            old = Path(tempfile.mkdtemp(prefix=f".{out.name}.old.", dir=out.parent))
-            os.replace(out, old / out.name)
-            os.replace(tmp, out)
+            _check_replaceable(out, ens, source)  # again, just before replacing
+        old = replace_folder(tmp, out)
+        if old is not None:
             shutil.rmtree(old, ignore_errors=True)
-        else:
-            os.replace(tmp, out)
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
         raise

@@ -10,6 +10,7 @@ from __future__ import annotations
 import argparse
 import importlib
 import importlib.util
+import os
 import sys
 from collections.abc import Sequence
 
@@ -49,9 +50,27 @@ def main(argv: Sequence[str] | None = None) -> int:
 
     try:
         return int(args.func(args) or 0)
-    except EnsembleError as exc:  # user-facing: the message already says where and why
-        print(f"ensemblelab {args.command}: error: {exc}", file=sys.stderr)
+    except KeyboardInterrupt:
+        print(f"ensemblelab {args.command}: interrupted", file=sys.stderr)
+        return 130
+    except (EnsembleError, OSError, ValueError, MemoryError, RecursionError) as exc:
+        # user errors (a missing path, a corrupt or hostile file, a refused write): one
+        # line, never a traceback; ENSEMBLELAB_DEBUG=1 shows the traceback for developers
+        if os.environ.get("ENSEMBLELAB_DEBUG"):
+            raise
+        print(f"ensemblelab {args.command}: error: {_message(exc)}", file=sys.stderr)
         return 1
+
+
+def _message(exc: BaseException, limit: int = 2000) -> str:
+    """The error text for the terminal: bounded, without control characters."""
+    text = str(exc) or type(exc).__name__
+    if isinstance(exc, FileNotFoundError) and exc.filename is not None:
+        text = f"{exc.filename}: no such file or folder."
+    elif isinstance(exc, MemoryError):
+        text = "not enough memory. Hint: use a chunked store (convert --chunked)."
+    text = "".join(c if c.isprintable() or c == "\n" else repr(c)[1:-1] for c in text)
+    return text if len(text) <= limit else text[:limit] + " ..."
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -5,6 +5,15 @@ data path from a JSON literal written into its first cell (no code is built
 from user input). Default PATH: the shipped demo data (``demo_data/`` in the
 source tree), or, when the package is installed elsewhere, a copy regenerated
 into the user cache folder.
+
+Safety: the server listens on 127.0.0.1 only and needs a random token (printed in
+the URL, ``?token=...``; it travels in a 0600 configuration file, never on a
+command line other users could read); requests whose ``Host`` is not a loopback
+name (DNS rebinding) or whose ``Origin`` does not match are refused
+(``--allow-host NAME`` adds a name); kernels of closed or idle pages are culled
+after ``--idle-timeout`` seconds and at most ``--max-kernels`` pages run at once;
+exports go to one folder chosen at start (``--exports``, default
+``<data>.exports/`` beside the data) and never outside it.
 """
 
 from __future__ import annotations
@@ -12,6 +21,7 @@ from __future__ import annotations
 import argparse
 import json
 import os
+import secrets
 import signal
 import socket
 import subprocess
@@ -24,7 +34,11 @@ from typing import Any
 from .._atomic import atomic_file
 
 __all__ = ["register", "default_data_path", "write_notebook", "voila_command", "free_port",
-           "wait_for_port", "stop_process_group"]
+           "wait_for_port", "stop_process_group", "write_server_config", "default_exports",
+           "LOOPBACK_NAMES"]
+
+#: host names accepted in the Host header besides loopback addresses
+LOOPBACK_NAMES = ("localhost",)
 
 #: front-end extensions Voila need not load (one of them raises a harmless runtime error)
 DENYLIST = ("@jupyter-notebook/lab-extension", "@voila-dashboards/jupyterlab-preview",
@@ -46,6 +60,16 @@ def register(subparsers: Any) -> None:
                         "the quality view flags those trajectories)")
     p.add_argument("--notebook-dir", default=None,
                    help="where to write the generated notebook (default: a temporary folder)")
+    p.add_argument("--exports", default=None,
+                   help="the only folder the export panel may write to (default: "
+                        "<data>.exports beside the data)")
+    p.add_argument("--allow-host", action="append", default=[], metavar="NAME",
+                   help="also accept this Host name (default: loopback names only)")
+    p.add_argument("--idle-timeout", type=int, default=1800,
+                   help="seconds after which the kernel of an idle or closed page is culled "
+                        "(default 1800)")
+    p.add_argument("--max-kernels", type=int, default=4,
+                   help="most explorer pages (kernels) served at once (default 4)")
     p.set_defaults(func=run)
 
 
@@ -107,6 +131,52 @@ def write_notebook(folder: str | os.PathLike[str], data_path: str | os.PathLike[
     return path
 
 
+def default_exports(data: Path, *, demo: bool) -> Path:
+    """``<data>.exports`` beside the data; for the shipped demo, in the user cache folder."""
+    if demo:
+        cache = Path(os.environ.get("XDG_CACHE_HOME", Path.home() / ".cache")) / "ensemblelab"
+        return cache / "demo.exports"
+    data = Path(data).resolve()
+    return data.with_name(data.name + ".exports")
+
+
+def write_server_config(folder: str | os.PathLike[str], *, token: str,
+                        allow_hosts: list[str] | tuple[str, ...] = (),
+                        idle_timeout: int = 1800, max_kernels: int = 4) -> Path:
+    """Write ``voila.json`` (mode 0600) with the token, host checks, culling and kernel cap.
+
+    Voila reads it from its working folder. Returns its path.
+    """
+    if idle_timeout < 1 or max_kernels < 1:
+        raise ValueError("--idle-timeout and --max-kernels must be >= 1.")
+    config = {
+        "Voila": {
+            "token": token,
+            "tornado_settings": {
+                "allow_remote_access": False,  # check the Host header: loopback names only
+                "local_hostnames": [*LOOPBACK_NAMES, *allow_hosts],
+                "allow_origin": "",  # websockets and API calls: Origin must match Host
+            },
+        },
+        "VoilaConfiguration": {
+            "multi_kernel_manager_class": "ensemblelab.cli._voila_kernels.CappedKernelManager",
+        },
+        "CappedKernelManager": {"max_kernels": int(max_kernels)},
+        "MappingKernelManager": {
+            "cull_idle_timeout": int(idle_timeout),
+            "cull_interval": max(1, min(60, int(idle_timeout) // 2)),
+            "cull_connected": True,  # an open but idle page is culled too
+            "cull_busy": False,
+        },
+    }
+    path = Path(folder) / "voila.json"
+    fd = os.open(path, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o600)
+    with os.fdopen(fd, "w", encoding="utf-8") as fh:
+        os.fchmod(fh.fileno(), 0o600)
+        json.dump(config, fh)
+    return path
+
+
 def free_port() -> int:
     """A TCP port free on 127.0.0.1 now."""
     with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
@@ -163,7 +233,15 @@ def run(args: argparse.Namespace) -> int:
                                  "ensemble, or nothing for the demo data.")
     folder = Path(args.notebook_dir) if args.notebook_dir else Path(
         tempfile.mkdtemp(prefix="ensemblelab-explore-"))
-    notebook = write_notebook(folder, data, nonfinite=args.nonfinite)
+    folder.mkdir(parents=True, exist_ok=True)
+    exports = (Path(args.exports).expanduser() if args.exports
+               else default_exports(data, demo=args.path is None)).resolve()
+    exports.mkdir(parents=True, exist_ok=True)
+    notebook = write_notebook(folder, data, nonfinite=args.nonfinite,
+                              explorer={"export_folder": str(exports)})
+    token = secrets.token_hex(24)
+    write_server_config(folder, token=token, allow_hosts=list(args.allow_host),
+                        idle_timeout=args.idle_timeout, max_kernels=args.max_kernels)
     port = int(args.port) or free_port()
     proc = subprocess.Popen(voila_command(notebook, port), cwd=str(folder),
                             start_new_session=True)
@@ -177,7 +255,9 @@ def run(args: argparse.Namespace) -> int:
             print("ensemblelab explore: error: the Voila server did not start "
                   f"(exit status {proc.poll()}).", file=sys.stderr)
             return 1
-        print(f"ensemblelab explorer of {data} at http://127.0.0.1:{port}/", flush=True)
+        print(f"ensemblelab explorer of {data} at http://127.0.0.1:{port}/?token={token}",
+              flush=True)
+        print(f"(exports go to {exports})", flush=True)
         print("(first render takes a few seconds; press Ctrl-C to stop)", flush=True)
         return int(proc.wait() or 0)
     except KeyboardInterrupt:

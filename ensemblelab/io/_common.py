@@ -19,7 +19,10 @@ from typing import Any
 import numpy as np
 
 from .. import units
-from .._atomic import atomic_file  # noqa: F401  (used by the io modules)
+from .._atomic import (
+    atomic_file,  # noqa: F401  (used by the io modules)
+    replace_folder,
+)
 from ..errors import EnsembleWarning, ParseError, StoreError
 
 __all__ = [
@@ -163,9 +166,11 @@ def atomic_folder(target: Path, *, overwrite: bool, is_ours: Any, kind: str) -> 
 
     Notes
     -----
-    The previous folder is renamed aside, the new one renamed in, and only then
-    the old one deleted, so an exception at any point leaves either the old or
-    the new complete folder at `target`, never a half-written one.
+    The new folder is swapped with the previous one atomically (Linux
+    ``renameat2(RENAME_EXCHANGE)``; elsewhere the old one is renamed aside first), and
+    only then the old one deleted, so an exception at any point leaves either the old
+    or the new complete folder at `target`, never a half-written one. Native stores
+    use the versioned, locked writer of :mod:`ensemblelab.io._versioned` instead.
     """
     target = Path(target)
     if target.is_dir() and not any(target.iterdir()):
@@ -190,17 +195,12 @@ def atomic_folder(target: Path, *, overwrite: bool, is_ours: Any, kind: str) -> 
     tmp.mkdir()
     try:
         yield tmp
-        if target.exists():
-            old = target.with_name(f".{target.name}.old-{token}")
-            os.replace(target, old)
-            try:
-                os.replace(tmp, target)
-            except BaseException:
-                os.replace(old, target)
-                raise
+        if target.exists() and not is_ours(target):  # checked again just before replacing
+            raise StoreError(f"{target}: changed while writing and is no longer a {kind}; "
+                             "refusing to replace it. Hint: write to another path.")
+        old = replace_folder(tmp, target)  # an atomic exchange where the system offers one
+        if old is not None:
             shutil.rmtree(old, ignore_errors=True)
-        else:
-            os.replace(tmp, target)
     finally:
         if tmp.exists():
             shutil.rmtree(tmp, ignore_errors=True)

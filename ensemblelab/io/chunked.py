@@ -58,19 +58,22 @@ one of these keys as optional (a store without them is read with a pass over
 the chunks).
 
 Arrays keep the dtype they were written with (for example float32 geometries)
-and are read with ``allow_pickle=False``. The whole store is written in a
-temporary folder beside the target and renamed into place by
-:meth:`ChunkedStoreWriter.close`; an interrupted write leaves no store (and any
-previous store at the target intact).
+and are read with ``allow_pickle=False``. The chunk folders and the trajectory
+table of one save live in a version folder ``v-<hex>/`` that the manifest names
+(``"dir": "v-1a2b3c4d5e6f/chunks/c000000"``; stores written before keep them at
+the top level). :meth:`ChunkedStoreWriter.close` switches ``manifest.json``
+atomically under a writer lock (see :mod:`ensemblelab.io._versioned`); an
+interrupted write leaves the previous store (or nothing) at the target. Reading
+is in :mod:`ensemblelab.io._chunked_read` (re-exported here), which validates the
+manifest and confines every file to the store.
 """
 
 from __future__ import annotations
 
 import contextlib
 import copy as _copy
-import functools
 import json
-from collections.abc import Iterable, Iterator, Mapping
+from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
 
@@ -78,14 +81,27 @@ import numpy as np
 import pandas as pd
 
 from ..data.ensemble import (
-    REQUIRED_COLUMNS,
     SCHEMA_VERSION,
     SNAPSHOT_ARRAYS,
     TRAJECTORY_ARRAYS,
     Ensemble,
 )
 from ..errors import SchemaError, StoreError
-from ._common import atomic_folder, decode_metadata, dumps_json, encode_metadata
+from ._chunked_read import (  # noqa: F401  (re-exported: public import paths)
+    _fake_geometries,
+    _load_npy,
+    _read_parquet,
+    is_chunked_store,
+    iter_chunk_indices,
+    load_chunk,
+    load_chunk_array,
+    read_chunk_fields,
+    read_chunk_table,
+    read_chunk_times,
+    read_chunked_manifest,
+)
+from ._common import decode_metadata, dumps_json, encode_metadata
+from ._versioned import StoreTransaction, store_transaction
 
 __all__ = [
     "ChunkedStoreWriter",
@@ -104,29 +120,6 @@ _FORMAT = "ensemblelab-store"
 _SNAP_NAMES = ("geometries", "energies", *SNAPSHOT_ARRAYS)
 _TIMES = "times.npy"  # per chunk: its sorted distinct snapshot times (fs)
 _MAX_DT_VALUES = 256  # most distinct time steps a chunk record lists
-
-
-def is_chunked_store(path: str | Path) -> bool:
-    """True when `path` is a native store folder with ``layout = "chunked"``."""
-    manifest = Path(path) / _MANIFEST
-    if not manifest.is_file():
-        return False
-    try:
-        data = json.loads(manifest.read_text())
-    except (json.JSONDecodeError, UnicodeDecodeError, OSError):
-        return False
-    return isinstance(data, dict) and data.get("format") == _FORMAT and \
-        data.get("layout") == "chunked"
-
-
-def _is_store_folder(path: Path) -> bool:
-    manifest = Path(path) / _MANIFEST
-    if not manifest.is_file():
-        return False
-    try:
-        return json.loads(manifest.read_text()).get("format") == _FORMAT
-    except (json.JSONDecodeError, UnicodeDecodeError, AttributeError, OSError):
-        return False
 
 
 def _chunk_stats(ens: Ensemble, arrays: Mapping[str, np.ndarray]) -> dict[str, Any]:
@@ -156,11 +149,6 @@ def _chunk_stats(ens: Ensemble, arrays: Mapping[str, np.ndarray]) -> dict[str, A
         out["ip_min"] = float(ip.min()) if ip.size else None
         out["ip_max"] = float(ip.max()) if ip.size else None
     return out
-
-
-def _fake_geometries(n: int, n_atoms: int) -> np.ndarray:
-    """A read-only zero array of shape (n, n_atoms, 3) that takes no memory."""
-    return np.broadcast_to(np.zeros((1, 1, 3)), (n, n_atoms, 3))
 
 
 # ----------------------------------------------------------------------------- writing
@@ -209,9 +197,9 @@ class ChunkedStoreWriter:
         self.renumber = bool(renumber)
         self._meta = None if metadata is None else encode_metadata(metadata)
         self._stack = contextlib.ExitStack()
-        self._tmp: Path | None = self._stack.enter_context(
-            atomic_folder(self.path, overwrite=overwrite, is_ours=_is_store_folder,
-                          kind="native store"))
+        self._txn: StoreTransaction = self._stack.enter_context(
+            store_transaction(self.path, overwrite=overwrite, kind="native store"))
+        self._tmp: Path | None = self._txn.folder
         (self._tmp / "chunks").mkdir()
         self._buffer: list[Ensemble] = []
         self._buffered = 0
@@ -298,7 +286,7 @@ class ChunkedStoreWriter:
             self.abort()
             raise
         self._closed = True
-        self._stack.close()  # renames the temporary folder into place
+        self._stack.close()  # releases the writer lock
         return self.path
 
     def abort(self) -> None:
@@ -410,7 +398,7 @@ class ChunkedStoreWriter:
         times = np.unique(time)
         np.save(folder / _TIMES, times, allow_pickle=False)
         record = {
-            "dir": f"chunks/{name}",
+            "dir": self._txn.rel(f"chunks/{name}"),
             "n_snapshots": int(n),
             "n_trajectories": int(len(ids)),
             "row_start": int(self._rows),
@@ -447,13 +435,13 @@ class ChunkedStoreWriter:
             "masses": self._schema["masses"],
             "state_labels": self._schema["state_labels"],
             "cation_labels": self._schema["cation_labels"],
-            "tables": {"trajectories": "trajectories.parquet"},
+            "tables": {"trajectories": self._txn.rel("trajectories.parquet")},
             "arrays": self._schema["arrays"],
             "columns": self._schema["columns"],
             "chunks": self._chunks,
             "metadata": meta,
         }
-        (self._tmp / _MANIFEST).write_text(dumps_json(manifest))
+        self._txn.commit(manifest, dumps_json)
 
 
 class _Abort(Exception):
@@ -518,241 +506,6 @@ def save_chunked(ens: Ensemble, path: str | Path, *,
         for s in range(0, len(ids), chunk_size):
             w.write_chunk(ens.select(ids[s:s + chunk_size]) if len(ids) > chunk_size else ens)
     return Path(path)
-
-
-# ----------------------------------------------------------------------------- reading
-@functools.lru_cache(maxsize=32)
-def _manifest_cached(path: str, mtime_ns: int) -> str:
-    return (Path(path) / _MANIFEST).read_text()
-
-
-def read_chunked_manifest(path: str | Path) -> dict[str, Any]:
-    """Read and check the manifest of a chunked store.
-
-    Raises
-    ------
-    StoreError
-        Missing or invalid manifest, another layout, a future schema or missing keys.
-    """
-    path = Path(path)
-    mpath = path / _MANIFEST
-    if not mpath.is_file():
-        raise StoreError(f"{path}: not a native store (no {_MANIFEST}). Hint: write one with "
-                         "ensemblelab convert --chunked or ChunkedStoreWriter.")
-    try:
-        manifest = json.loads(_manifest_cached(str(path.resolve()), mpath.stat().st_mtime_ns))
-    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
-        raise StoreError(f"{mpath}: the manifest is not valid JSON ({exc}). Hint: the store is "
-                         "corrupt; convert the original files again.") from exc
-    if not isinstance(manifest, dict) or manifest.get("format") != _FORMAT:
-        raise StoreError(f"{mpath}: expected format {_FORMAT!r}. Hint: this folder was not "
-                         "written by ensemblelab.")
-    if manifest.get("layout") != "chunked":
-        raise StoreError(f"{mpath}: layout {manifest.get('layout')!r} is not 'chunked'. Hint: "
-                         "open it with ensemblelab.load(path) (eager).")
-    version = manifest.get("schema_version")
-    if not isinstance(version, int) or version > SCHEMA_VERSION:
-        raise StoreError(f"{mpath}: schema_version {version!r} is not one this ensemblelab "
-                         f"reads (<= {SCHEMA_VERSION}). Hint: upgrade ensemblelab.")
-    required = ("n_snapshots", "n_trajectories", "symbols", "masses", "arrays", "columns",
-                "chunks", "tables")
-    missing = [k for k in required if k not in manifest]
-    if missing:
-        raise StoreError(f"{mpath}: the manifest lacks key(s) {missing}. Hint: the store is "
-                         "corrupt; convert the original files again.")
-    return manifest
-
-
-def _load_npy(file: Path, entry: Mapping[str, Any], rows: int, mmap: bool) -> np.ndarray:
-    if not file.is_file():
-        raise StoreError(f"{file}: array file of {entry['name']} is missing. Hint: the store is "
-                         "incomplete; convert the original files again.")
-    try:
-        arr = np.load(file, mmap_mode="r" if mmap else None, allow_pickle=False)
-    except (ValueError, OSError, EOFError) as exc:
-        raise StoreError(f"{file}: cannot read the array ({exc}). Hint: the file is corrupt; "
-                         "convert the original files again.") from exc
-    want = (rows, *entry["tail"])
-    if arr.shape != want or arr.dtype != np.dtype(entry["dtype"]):
-        raise StoreError(f"{file}: expected {entry['name']} of shape {want} and dtype "
-                         f"{np.dtype(entry['dtype'])}, found {arr.shape} {arr.dtype}. Hint: the "
-                         "store is inconsistent; convert the original files again.")
-    if not mmap:
-        arr.setflags(write=False)
-    return arr
-
-
-def load_chunk_array(path: str | Path, index: int, name: str, *, mmap: bool = False
-                     ) -> np.ndarray:
-    """One stored array of chunk `index`, in its stored dtype."""
-    path = Path(path)
-    manifest = read_chunked_manifest(path)
-    chunk = manifest["chunks"][index]
-    entry = next((e for e in manifest["arrays"] if e["name"] == name), None)
-    if entry is None:
-        raise KeyError(f"the store has no array {name!r}.")
-    rows = chunk["n_trajectories"] if entry["per"] == "trajectory" else chunk["n_snapshots"]
-    return _load_npy(path / chunk["dir"] / f"{name}.npy", entry, rows, mmap)
-
-
-def read_chunk_fields(path: str | Path, manifest: Mapping[str, Any], index: int,
-                      names: Iterable[str], *, columns: Iterable[str] = ("traj", "time",
-                                                                        "active"),
-                      mmap: bool = True) -> tuple[pd.DataFrame, pd.DataFrame, dict[str, Any]]:
-    """Only some arrays and snapshot columns of chunk `index`, without building an Ensemble.
-
-    For computations that touch a few fields of every chunk: nothing else is read
-    (no geometries) and the arrays are memory-mapped. Shapes and dtypes are checked
-    against `manifest`; the deeper checks of :class:`~ensemblelab.Ensemble` are not
-    made (use :func:`load_chunk` for a validated chunk).
-
-    Parameters
-    ----------
-    path : str or Path
-        The store folder.
-    manifest : mapping
-        Its manifest (:func:`read_chunked_manifest`), passed in so that a task
-        does not parse it again.
-    index : int
-        Chunk number (0-based).
-    names : iterable of str
-        Arrays to read; names the store does not hold are returned as None.
-    columns : iterable of str
-        Snapshot columns to read.
-    mmap : bool
-        Memory-map the arrays (read-only) instead of reading them.
-
-    Returns
-    -------
-    snapshots : pandas.DataFrame
-        The requested columns, one row per snapshot of the chunk.
-    trajectories : pandas.DataFrame
-        The chunk's rows of the trajectory table.
-    arrays : dict of str to ndarray or None
-        In their stored dtype.
-    """
-    path = Path(path)
-    chunks = manifest["chunks"]
-    if not 0 <= int(index) < len(chunks):
-        raise IndexError(f"chunk index {index} out of range [0, {len(chunks)}).")
-    chunk = chunks[int(index)]
-    entries = {e["name"]: e for e in manifest["arrays"]}
-    folder = path / chunk["dir"]
-    frame = _read_parquet(folder / "snapshots.parquet", list(columns))
-    trajs = _read_parquet(folder / "trajectories.parquet", None)
-    if len(frame) != chunk["n_snapshots"] or len(trajs) != chunk["n_trajectories"]:
-        raise StoreError(f"{folder}: {len(frame)} snapshot and {len(trajs)} trajectory rows, "
-                         f"the manifest says {chunk['n_snapshots']} and "
-                         f"{chunk['n_trajectories']}. Hint: the store is inconsistent; "
-                         "convert the original files again.")
-    arrays: dict[str, Any] = {}
-    for name in names:
-        entry = entries.get(name)
-        if entry is None:
-            arrays[name] = None
-            continue
-        rows = chunk["n_trajectories"] if entry["per"] == "trajectory" else chunk["n_snapshots"]
-        arrays[name] = _load_npy(folder / f"{name}.npy", entry, rows, mmap)
-    return frame, trajs, arrays
-
-
-def read_chunk_times(path: str | Path, manifest: Mapping[str, Any], index: int) -> np.ndarray:
-    """Sorted distinct snapshot times (fs) of chunk `index` (``times.npy`` when present)."""
-    path = Path(path)
-    chunk = manifest["chunks"][int(index)]
-    file = path / chunk["dir"] / _TIMES
-    if "n_times" in chunk and file.is_file():
-        entry = {"name": "times", "dtype": "<f8", "tail": []}
-        return _load_npy(file, entry, chunk["n_times"], False)
-    frame = _read_parquet(path / chunk["dir"] / "snapshots.parquet", ["time"])
-    return np.unique(frame["time"].to_numpy(dtype=np.float64))
-
-
-def _read_parquet(file: Path, columns: list[str] | None) -> pd.DataFrame:
-    try:
-        return pd.read_parquet(file, columns=columns)
-    except Exception as exc:  # pyarrow raises its own error types
-        raise StoreError(f"{file}: cannot read the Parquet table ({exc}). Hint: the store is "
-                         "incomplete or corrupt; convert the original files again.") from exc
-
-
-def read_chunk_table(path: str | Path, index: int, table: str = "snapshots",
-                     columns: list[str] | None = None) -> pd.DataFrame:
-    """The snapshot (or trajectory) table of chunk `index`."""
-    path = Path(path)
-    manifest = read_chunked_manifest(path)
-    file = path / manifest["chunks"][index]["dir"] / f"{table}.parquet"
-    try:
-        return pd.read_parquet(file, columns=columns)
-    except Exception as exc:  # pyarrow raises its own error types
-        raise StoreError(f"{file}: cannot read the Parquet table ({exc}). Hint: the store is "
-                         "incomplete or corrupt; convert the original files again.") from exc
-
-
-def load_chunk(path: str | Path, index: int, *, fields: Iterable[str] | None = None,
-               columns: Iterable[str] | None = None, mmap: bool = False) -> Ensemble:
-    """Chunk `index` of a chunked store as an in-memory Ensemble of whole trajectories.
-
-    Parameters
-    ----------
-    path : str or Path
-        The store folder.
-    index : int
-        Chunk number (0-based).
-    fields : iterable of str, optional
-        Arrays to read (default all). ``energies`` is always read; without
-        ``geometries`` the chunk holds read-only zero placeholders of the right
-        shape (for computations that do not need coordinates).
-    columns : iterable of str, optional
-        Extra snapshot columns to read besides the required ones (default all).
-    mmap : bool
-        Memory-map the arrays instead of reading them (float64 arrays only are
-        then used without a copy).
-
-    Returns
-    -------
-    Ensemble
-    """
-    path = Path(path)
-    manifest = read_chunked_manifest(path)
-    chunks = manifest["chunks"]
-    if not 0 <= int(index) < len(chunks):
-        raise IndexError(f"chunk index {index} out of range [0, {len(chunks)}).")
-    chunk = chunks[int(index)]
-    wanted = None if fields is None else {"energies", *fields}
-    if wanted is not None and wanted & {"dyson", "adt_cation"}:
-        wanted.add("cation_energies")  # they need it to be valid
-    cols = None
-    if columns is not None:
-        extra = [c for c in manifest["columns"] if c in set(columns)]
-        cols = [*REQUIRED_COLUMNS, *[c for c in extra if c not in REQUIRED_COLUMNS]]
-    frame = read_chunk_table(path, index, "snapshots", cols)
-    trajs = read_chunk_table(path, index, "trajectories")
-    arrays: dict[str, Any] = {}
-    for entry in manifest["arrays"]:
-        name = entry["name"]
-        if wanted is not None and name not in wanted:
-            continue
-        rows = chunk["n_trajectories"] if entry["per"] == "trajectory" else chunk["n_snapshots"]
-        arrays[name] = _load_npy(path / chunk["dir"] / f"{name}.npy", entry, rows, mmap)
-    if "geometries" not in arrays:
-        arrays["geometries"] = _fake_geometries(chunk["n_snapshots"], len(manifest["symbols"]))
-    metadata = decode_metadata(manifest.get("metadata", {}))
-    try:
-        return Ensemble(
-            snapshots=frame,
-            trajectories=trajs.drop(columns=["n_steps", "t_end"], errors="ignore"),
-            symbols=tuple(manifest["symbols"]),
-            masses=np.asarray(manifest["masses"], dtype=np.float64),
-            state_labels=tuple(manifest.get("state_labels", ())),
-            cation_labels=tuple(manifest.get("cation_labels", ()))
-            if "cation_energies" in arrays else (),
-            metadata=metadata,
-            **arrays,
-        )
-    except SchemaError as exc:
-        raise StoreError(f"{path}: chunk {index} is inconsistent ({exc}). Hint: convert the "
-                         "original files again.") from exc
 
 
 # ----------------------------------------------------------------------------- converting
@@ -840,12 +593,3 @@ def convert_extxyz_chunked(
         writer.flush()
         writer._meta = encode_metadata({**metadata, "sources": sources})
     return Path(target)
-
-
-def iter_chunk_indices(manifest: Mapping[str, Any], traj_ids: np.ndarray) -> Iterator[int]:
-    """Chunks that hold any of the (sorted) trajectory ids."""
-    for i, chunk in enumerate(manifest["chunks"]):
-        lo = np.searchsorted(traj_ids, chunk["traj_first"], side="left")
-        hi = np.searchsorted(traj_ids, chunk["traj_last"], side="right")
-        if hi > lo:
-            yield i

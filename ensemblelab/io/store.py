@@ -39,9 +39,14 @@ become lists, and a dict whose keys are all integers (for example
 
 Arrays are written with :func:`numpy.save` and read with
 ``allow_pickle=False``; ``mmap_mode="r"`` maps them instead of reading them.
-Saving writes a temporary folder beside the target and renames it into place;
-replacing a store renames the old one aside first, so an interrupted save
-leaves the previous store intact.
+The data files of one save live in a version folder ``v-<hex>/`` that the
+manifest names (``"file": "v-1a2b3c4d5e6f/energies.npy"``); a store written
+before this layout (files at the top level) loads the same way. Saving takes
+a writer lock, writes the new version and switches ``manifest.json``
+atomically, so the path holds the old or the new store at every instant, and an
+interrupted save leaves the previous store intact (see
+:mod:`ensemblelab.io._versioned`). Every manifest field is validated and every
+file it names must lie inside the store (:mod:`ensemblelab.io._manifest`).
 """
 
 from __future__ import annotations
@@ -55,7 +60,10 @@ import pandas as pd
 
 from ..data.ensemble import SCHEMA_VERSION, SNAPSHOT_ARRAYS, TRAJECTORY_ARRAYS, Ensemble
 from ..errors import SchemaError, StoreError
-from ._common import atomic_folder, decode_metadata, dumps_json, encode_metadata
+from ._common import decode_metadata, dumps_json, encode_metadata
+from ._manifest import check_common, check_single, load_manifest_json
+from ._safety import confined
+from ._versioned import read_consistent, store_transaction
 
 __all__ = ["save_store", "load_store", "is_store", "read_manifest", "STORE_FORMAT", "LAYOUTS"]
 
@@ -73,7 +81,7 @@ def is_store(path: str | Path) -> bool:
         return False
     try:
         return json.loads(manifest.read_text()).get("format") == STORE_FORMAT
-    except (json.JSONDecodeError, UnicodeDecodeError, AttributeError):
+    except (ValueError, AttributeError, RecursionError, OSError):
         return False
 
 
@@ -106,15 +114,16 @@ def save_store(ens: Ensemble, path: str | Path, *, overwrite: bool = False) -> P
     meta = encode_metadata(ens.metadata)  # fail before touching the disk
     arrays = []
     names = ["geometries", "energies", *SNAPSHOT_ARRAYS, *TRAJECTORY_ARRAYS]
-    with atomic_folder(path, overwrite=overwrite, is_ours=is_store, kind="native store") as tmp:
+    with store_transaction(path, overwrite=overwrite, kind="native store") as txn:
+        tmp = txn.folder
         for name in names:
             arr = getattr(ens, name)
             if arr is None:
                 continue
             arr = np.ascontiguousarray(arr)
             np.save(tmp / f"{name}.npy", arr, allow_pickle=False)
-            arrays.append({"name": name, "file": f"{name}.npy", "dtype": arr.dtype.str,
-                           "shape": list(arr.shape)})
+            arrays.append({"name": name, "file": txn.rel(f"{name}.npy"),
+                           "dtype": arr.dtype.str, "shape": list(arr.shape)})
         try:
             ens.snapshots.to_parquet(tmp / "snapshots.parquet", index=False)
             ens.trajectories.drop(columns=["n_steps", "t_end"]).to_parquet(
@@ -136,11 +145,12 @@ def save_store(ens: Ensemble, path: str | Path, *, overwrite: bool = False) -> P
             "masses": [float(m) for m in ens.masses],
             "state_labels": list(ens.state_labels),
             "cation_labels": list(ens.cation_labels),
-            "tables": {"snapshots": "snapshots.parquet", "trajectories": "trajectories.parquet"},
+            "tables": {"snapshots": txn.rel("snapshots.parquet"),
+                       "trajectories": txn.rel("trajectories.parquet")},
             "arrays": arrays,
             "metadata": meta,
         }
-        (tmp / _MANIFEST).write_text(dumps_json(manifest))
+        txn.commit(manifest, dumps_json)
     return path
 
 
@@ -157,48 +167,28 @@ def read_manifest(path: str | Path) -> dict[str, Any]:
     if not mpath.is_file():
         raise StoreError(f"{path}: not a native store (no {_MANIFEST}). Hint: save one with "
                          "ensemblelab.save(ens, path), or load the original files.")
-    try:
-        manifest = json.loads(mpath.read_text())
-    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
-        raise StoreError(f"{mpath}: the manifest is not valid JSON ({exc}). Hint: the store is "
-                         "corrupt; convert the original files again.") from exc
-    if not isinstance(manifest, dict) or manifest.get("format") != STORE_FORMAT:
-        found = manifest.get("format") if isinstance(manifest, dict) else type(manifest).__name__
-        raise StoreError(f"{mpath}: expected format {STORE_FORMAT!r}, found {found!r}. Hint: "
-                         "this folder was not written by ensemblelab.save.")
-    version = manifest.get("schema_version")
-    if not isinstance(version, int):
-        raise StoreError(f"{mpath}: schema_version must be an integer, found {version!r}. Hint: "
-                         "the store is corrupt; convert the original files again.")
-    if version > SCHEMA_VERSION:
-        raise StoreError(
-            f"{mpath}: the store has schema_version {version}, newer than this ensemblelab "
-            f"understands ({SCHEMA_VERSION}). Hint: upgrade ensemblelab to read it."
-        )
-    layout = manifest.get("layout", "single")
-    if layout not in LAYOUTS:
-        raise StoreError(f"{mpath}: unknown store layout {layout!r}; this version reads "
-                         f"{list(LAYOUTS)}. Hint: upgrade ensemblelab.")
-    required = ("n_snapshots", "n_trajectories", "symbols", "masses", "arrays", "tables")
-    missing = [k for k in required if k not in manifest]
-    if missing:
-        raise StoreError(f"{mpath}: the manifest lacks key(s) {missing}. Hint: the store is "
-                         "corrupt; convert the original files again.")
-    return manifest
+    manifest = check_common(load_manifest_json(mpath), mpath, layouts=LAYOUTS)
+    return check_single(manifest, path, mpath)
 
 
 def _load_array(path: Path, entry: dict[str, Any], mmap_mode: str | None) -> np.ndarray:
-    file = path / str(entry.get("file", ""))
+    file = confined(path, entry.get("file"), what=f"array {entry.get('name')!r}")
     if not file.is_file():
         raise StoreError(f"{path}: array file {file.name!r} ({entry.get('name')}) is missing. "
                          "Hint: the store is incomplete; convert the original files again.")
+    want_shape = tuple(entry.get("shape", ()))
+    want_dtype = np.dtype(entry.get("dtype", "<f8"))
+    need = int(np.prod(want_shape, dtype=np.int64)) * want_dtype.itemsize
+    if file.stat().st_size < need:
+        raise StoreError(f"{file}: the file holds {file.stat().st_size} bytes, too few for "
+                         f"{entry.get('name')} of shape {want_shape} and dtype {want_dtype} "
+                         f"({need} bytes). Hint: the file is truncated; convert the original "
+                         "files again.")
     try:
         arr = np.load(file, mmap_mode=mmap_mode, allow_pickle=False)
-    except (ValueError, OSError, EOFError) as exc:
+    except (ValueError, OSError, EOFError, MemoryError) as exc:
         raise StoreError(f"{file}: cannot read the array ({exc}). Hint: the file is corrupt; "
                          "convert the original files again.") from exc
-    want_shape = tuple(entry.get("shape", ()))
-    want_dtype = np.dtype(entry.get("dtype", arr.dtype.str))
     if arr.shape != want_shape or arr.dtype != want_dtype:
         raise StoreError(
             f"{file}: expected {entry.get('name')} of shape {want_shape} and dtype {want_dtype}, "
@@ -236,6 +226,10 @@ def load_store(path: str | Path, *, mmap_mode: str | None = None,
     if mmap_mode not in (None, "r"):
         raise ValueError(f"The 'mmap_mode' parameter must be None or 'r'; got {mmap_mode!r}.")
     path = Path(path)
+    return read_consistent(path, lambda: _load_store_once(path, mmap_mode))
+
+
+def _load_store_once(path: Path, mmap_mode: str | None) -> Ensemble:
     manifest = read_manifest(path)
     n, n_traj = manifest["n_snapshots"], manifest["n_trajectories"]
     arrays: dict[str, np.ndarray] = {}
@@ -257,7 +251,8 @@ def load_store(path: str | Path, *, mmap_mode: str | None = None,
                              "corrupt; convert the original files again.")
     tables = {}
     for key in ("snapshots", "trajectories"):
-        file = path / str(manifest["tables"].get(key, f"{key}.parquet"))
+        file = confined(path, manifest["tables"].get(key, f"{key}.parquet"),
+                        what=f"table {key!r}")
         if not file.is_file():
             raise StoreError(f"{path}: table {file.name!r} is missing. Hint: the store is "
                              "incomplete; convert the original files again.")
@@ -269,7 +264,11 @@ def load_store(path: str | Path, *, mmap_mode: str | None = None,
     if len(tables["snapshots"]) != n:
         raise StoreError(f"{path}: snapshots.parquet has {len(tables['snapshots'])} rows, "
                          f"expected {n}. Hint: the store is inconsistent.")
-    metadata = decode_metadata(manifest.get("metadata", {}))
+    try:
+        metadata = decode_metadata(manifest.get("metadata", {}))
+    except (TypeError, ValueError, AttributeError, RecursionError) as exc:
+        raise StoreError(f"{path}: the manifest's metadata cannot be decoded ({exc}). Hint: the "
+                         "store is corrupt; convert the original files again.") from exc
     sources = list(metadata.get("sources", []))
     record = {"path": str(path), "format": STORE_FORMAT}
     if not sources or sources[-1] != record:

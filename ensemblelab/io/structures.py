@@ -25,6 +25,7 @@ import numpy.typing as npt
 import pandas as pd
 
 from .._atomic import atomic_write_text
+from .._csv import to_csv_text
 from .._optional import import_optional
 from ..errors import SchemaError
 
@@ -222,5 +223,5 @@ def write_structures(
     table = info.reset_index(drop=True).copy()
     table.insert(0, "frame", np.arange(len(table)))
     table["file"] = out.name
-    atomic_write_text(csv_path, table.to_csv(index=False), overwrite=overwrite)
+    atomic_write_text(csv_path, to_csv_text(table), overwrite=overwrite)
     return out, csv_path

@@ -46,6 +46,7 @@ import numpy as np
 import pandas as pd
 
 from .. import units
+from .._csv import restore_frame, to_csv_text
 from ..data.ensemble import Ensemble
 from ..errors import ParseError, SchemaError, UnitWarning
 from ._common import atomic_file, check_nonfinite_option, file_source, report_nonfinite
@@ -68,7 +69,7 @@ def _read(path: Path) -> pd.DataFrame:
     try:
         if path.name.lower().endswith((".parquet", ".pq")):
             return pd.read_parquet(path)
-        return pd.read_csv(path)
+        return restore_frame(pd.read_csv(path))  # text cells neutralised by write_table
     except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError) as exc:
         raise ParseError(f"cannot parse the table ({exc}).", path=path,
                          hint="a CSV with a header row, or a Parquet file, is expected.") from exc
@@ -374,7 +375,7 @@ def write_table(ens: Ensemble, path: str | Path, *, geometries: bool = True) -> 
         if parquet:
             out.to_parquet(fh, index=False)
         else:
-            fh.write(out.to_csv(index=False).encode())
+            fh.write(to_csv_text(out).encode())  # formula-like text cells neutralised
     stem = _stem(path)
     if geometries and ens.n_atoms:
         atom = "".join(f"{s} %r %r %r\n" for s in ens.symbols)

@@ -82,12 +82,8 @@ with :mod:`ensemblelab.units` (CODATA via scipy.constants).
 
 from __future__ import annotations
 
-import gzip
-import io
 import json
-import re
 import warnings
-from collections.abc import Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -100,11 +96,8 @@ from ..data.elements import masses_for
 from ..data.ensemble import Ensemble
 from ..errors import ParseError, SchemaError, UnitWarning
 from ._common import (
-    atomic_folder,
     check_nonfinite_option,
     decode_metadata,
-    dumps_json,
-    encode_metadata,
     file_source,
     parse_floats,
     report_nonfinite,
@@ -113,28 +106,35 @@ from ._common import (
 
 __all__ = ["load_extxyz", "write_extxyz", "find_trajectory_files", "ARRAY_KEYS", "HEADER_KEYS"]
 
-#: per-frame keys holding a block of numbers -> (Ensemble field, energy-like)
-ARRAY_KEYS: dict[str, bool] = {
-    "energies": True,
-    "cation_energies": True,
-    "dyson": False,
-    "amplitudes": False,
-    "adt": False,
-    "adt_cation": False,
-    "overlaps": False,
-}
-#: keys read from the first frame of a file only
-HEADER_KEYS = ("energy_unit", "time_unit", "length_unit", "state_labels", "cation_labels",
-               "dyson_shape", "masses", "state_base")
-#: scalar keys with a meaning of their own
-_SCALAR_ENERGY_KEYS = ("e_kin", "e_tot")
-_RESERVED = {"time", "active", "step", "snapshot", *ARRAY_KEYS, *HEADER_KEYS}
-
-_PAIR_RE = re.compile(r'([A-Za-z_][\w.\-]*)=(?:"([^"]*)"|(\S*))')
-_FIRST_TOKEN_RE = re.compile(r"^[ \t]*(\S+)", re.MULTILINE)
-_NOT_INT_RE = re.compile(r"[^0-9+\- \t]")
-_TRAJ_ID_RE = re.compile(r"(\d+)$")
-_SUFFIXES = (".xyz.gz", ".xyz")
+from ._extxyz_comment import (  # noqa: E402,F401  (the key vocabulary lives with the parser)
+    _PAIR_RE,
+    _RESERVED,
+    _SCALAR_ENERGY_KEYS,
+    _SUFFIXES,
+    _TRAJ_ID_RE,
+    ARRAY_KEYS,
+    HEADER_KEYS,
+    _loc,
+    _parse_comments,
+    check_comment_lengths,
+    check_values,
+)
+from ._safety import MAX_MANIFEST_BYTES, check_no_symlink_escape, excerpt  # noqa: E402
+from ._xyz_fields import (  # noqa: E402,F401
+    _NOT_INT_RE,
+    _all_numbers,
+    _atom_block,
+    _check_same,
+    _integers,
+    _looks_like_hartree,
+    _numbers,
+    _read_text,
+    _read_trajectories_csv,
+    _split_frames,
+    _Stack,
+    _user_column,
+)
+from ._xyz_write import _write_trajectories_csv, write_extxyz  # noqa: E402,F401
 
 
 # ---------------------------------------------------------------------------------- files
@@ -162,6 +162,8 @@ def find_trajectory_files(folder: Path) -> list[tuple[int, Path]]:
     folder = Path(folder)
     files = sorted(p for p in folder.iterdir()
                    if p.is_file() and p.name.endswith(_SUFFIXES) and not p.name.startswith("."))
+    for p in files:  # a link to a file outside the folder is refused, not followed
+        check_no_symlink_escape(folder, p, what="trajectory file")
     matches = [_TRAJ_ID_RE.search(_stem(p)) for p in files]
     if files and all(matches):
         ids = [int(m.group(1)) for m in matches]  # type: ignore[union-attr]
@@ -176,24 +178,6 @@ def find_trajectory_files(folder: Path) -> list[tuple[int, Path]]:
             seen[i] = p
         return sorted(seen.items())
     return list(enumerate(files))
-
-
-def _read_text(path: Path) -> str:
-    try:
-        if path.name.endswith(".gz"):
-            with gzip.open(path, "rb") as fh:
-                raw = fh.read()
-        else:
-            raw = path.read_bytes()
-    except (OSError, EOFError) as exc:  # gzip.BadGzipFile is an OSError
-        raise ParseError(f"cannot read the file ({exc}).", path=path,
-                         hint="check that the file is complete; re-copy a truncated .gz.") from exc
-    try:
-        text = raw.decode("utf-8")
-    except UnicodeDecodeError as exc:
-        raise ParseError(f"the file is not UTF-8 text ({exc}).", path=path,
-                         hint="extended-XYZ files are plain text; is this a binary file?") from exc
-    return text.replace("\r\n", "\n") if "\r" in text else text
 
 
 # ---------------------------------------------------------------------------------- parsing
@@ -216,325 +200,12 @@ class _FileData:
     extra: dict[str, Any] = field(default_factory=dict)
 
 
-def _loc(n_atoms: int, frame: int, offset: int = 1) -> int:
-    """1-based line number of line `offset` (0 = count, 1 = comment, 2.. atoms) of a frame."""
-    return frame * (n_atoms + 2) + offset + 1
-
-
 def _parse_header_int(value: str, *, path: Path, key: str) -> int:
     try:
         return int(value)
     except ValueError:
         raise ParseError(f"expected an integer, found {value!r}.", path=path, frame=0, line=2,
                          field=key, hint="see the header keys in ensemblelab.io.xyz.") from None
-
-
-def _split_frames(text: str, path: Path) -> tuple[int, int, list[str]]:
-    lines = text.split("\n")
-    while lines and not lines[-1].strip():
-        lines.pop()
-    if not lines:
-        raise ParseError("the file is empty; expected XYZ frames (atom count, comment, atoms).",
-                         path=path, hint="remove the empty file or re-export the trajectory.")
-    first = lines[0].strip()
-    try:
-        n_atoms = int(first)
-        if n_atoms < 1:
-            raise ValueError
-    except ValueError:
-        raise ParseError(
-            f"expected the number of atoms (a positive integer) on the first line, found "
-            f"{first[:40]!r}.", path=path, line=1, frame=0, field="atom count",
-            hint="an XYZ frame starts with the atom count, then a comment line, then atoms.",
-        ) from None
-    size = n_atoms + 2
-    counts = lines[0::size]
-    if any(c.strip() != first for c in counts):
-        f = next(i for i, c in enumerate(counts) if c.strip() != first)
-        found = counts[f].strip()
-        try:
-            other = int(found)
-        except ValueError:
-            other = None
-        if other is not None:
-            raise ParseError(
-                f"the number of atoms changes: frame 0 has {n_atoms}, this frame declares "
-                f"{other}.", path=path, frame=f, line=f * size + 1, field="atom count",
-                hint="every frame of every trajectory must hold the same atoms in the same order.",
-            )
-        raise ParseError(
-            f"expected the atom-count line {n_atoms} here, found {found[:40]!r}: frame {f - 1} "
-            f"holds more or fewer atom lines than its atom-count line ({n_atoms}) says.",
-            path=path, frame=f, line=f * size + 1, field="atom count",
-            hint="fix the atom lines of the previous frame or its atom-count line.",
-        )
-    n_frames, rest = divmod(len(lines), size)
-    if rest:
-        raise ParseError(
-            f"the file ends inside frame {n_frames}: expected {size} lines ({n_atoms} atoms "
-            f"+ 2), found {rest}.", path=path, frame=n_frames, line=n_frames * size + 1,
-            field="atom lines",
-            hint="the run probably stopped while writing; delete the incomplete last frame.",
-        )
-    return n_atoms, n_frames, lines
-
-
-_NAN_TOKENS = ["nan", "NaN", "NAN", "-nan", "+nan", "-NaN", "+NaN"]
-
-
-def _read_table(text: str, ncol: int, *, symbols: bool = False) -> pd.DataFrame | None:
-    """Parse whitespace-separated columns with pandas' C tokenizer; None when anything is odd."""
-    dtype: dict[int, Any] = {j: np.float64 for j in range(int(symbols), ncol)}
-    if symbols:
-        dtype[0] = object
-    try:
-        return pd.read_csv(io.StringIO(text), sep=r"\s+", header=None, engine="c",
-                           names=list(range(ncol)), dtype=dtype, keep_default_na=False,
-                           na_values={j: _NAN_TOKENS for j in range(int(symbols), ncol)},
-                           skip_blank_lines=False)
-    except (ValueError, pd.errors.ParserError, pd.errors.EmptyDataError):
-        return None
-
-
-def _atom_block(lines: list[str], n_atoms: int, n_frames: int, path: Path
-                ) -> tuple[list[str], np.ndarray, np.ndarray | None]:
-    size = n_atoms + 2
-    table = np.array(lines, dtype=object).reshape(n_frames, size)
-    atoms = table[:, 2:].ravel()
-    ncol = len(atoms[0].split())
-    if ncol not in (4, 7):
-        raise ParseError(
-            f"expected an atom line 'El x y z' (4 columns) or 'El x y z vx vy vz' (7 columns), "
-            f"found {ncol} column(s): {atoms[0][:60]!r}.",
-            path=path, frame=0, line=3, field="atom line",
-            hint="one atom per line: element symbol, then Cartesian coordinates.",
-        )
-    df = _read_table("\n".join(atoms), ncol, symbols=True)
-    numeric = None
-    if df is not None and len(df) == atoms.size:
-        numeric = df.iloc[:, 1:].to_numpy(np.float64)
-        if np.isnan(numeric).any() and parse_floats(
-                " ".join(" ".join(a.split()[1:]) for a in atoms), atoms.size * (ncol - 1)) is None:
-            numeric = None  # a NaN that is not a literal nan: a missing or odd field
-    if numeric is None:
-        _locate_atom_error(atoms, n_atoms, ncol, path)
-        raise ParseError("could not parse the atom lines.", path=path, field="atom line")
-    sym = df.iloc[:, 0].to_numpy(dtype=object).reshape(n_frames, n_atoms)
-    ref = [str(x) for x in sym[0]]
-    same = sym == sym[0]
-    if not same.all():
-        f, a = (int(i) for i in np.argwhere(~same)[0])
-        raise ParseError(
-            f"the elements change: atom {a} is {ref[a]} in frame 0 but {sym[f, a]} here.",
-            path=path, frame=f, line=_loc(n_atoms, f, 2 + a), field="element",
-            hint="every frame of every trajectory must hold the same atoms in the same order.",
-        )
-    numeric = numeric.reshape(n_frames, n_atoms, ncol - 1)
-    if ncol == 7:
-        return ref, numeric[:, :, :3].copy(), numeric[:, :, 3:].copy()
-    return ref, numeric, None
-
-
-def _locate_atom_error(atoms: np.ndarray, n_atoms: int, ncol: int, path: Path) -> None:
-    for k, line in enumerate(atoms):
-        tokens = line.split()
-        f, a = divmod(k, n_atoms)
-        where = {"path": path, "frame": f, "line": _loc(n_atoms, f, 2 + a)}
-        if len(tokens) != ncol:
-            raise ParseError(
-                f"expected {ncol} columns like the first atom line, found {len(tokens)}: "
-                f"{line[:60]!r}.", field="atom line",
-                hint="every atom line needs the element and 3 (or 6 with velocities) numbers.",
-                **where,
-            )
-        for j, tok in enumerate(tokens[1:]):
-            try:
-                float(tok)
-            except ValueError:
-                name = ("x", "y", "z", "vx", "vy", "vz")[j]
-                raise ParseError(
-                    f"expected a number for coordinate {name}, found {tok!r}.",
-                    field=f"atom {a} {name}", hint="coordinates must be plain decimal numbers.",
-                    **where,
-                ) from None
-
-
-def _fast_values(comments: Sequence[str]) -> list[tuple[str, ...]] | None:
-    """Values of frames 1.. when they all share the key sequence of frame 1, else None.
-
-    One anchored regex built from frame 1 is applied to all comment lines at
-    once, so a frame with a missing, extra or re-ordered key does not match and
-    the caller falls back to the frame-by-frame path (which names the frame).
-    """
-    if len(comments) < 2:
-        return []
-    parts = []
-    for m in _PAIR_RE.finditer(comments[1]):
-        quoted = m.group(2) is not None
-        parts.append(re.escape(m.group(1)) + "=" + ('"([^"\n]*)"' if quoted else r'([^\s"]*)'))
-    if len(parts) < 2:
-        return None
-    pattern = re.compile(r"^[ \t]*" + r"[ \t]+".join(parts) + r"[ \t]*$", re.MULTILINE)
-    rows = pattern.findall("\n".join(comments[1:]))
-    if len(rows) != len(comments) - 1:
-        return None
-    return rows
-
-
-def _parse_comments(comments: Sequence[str], n_atoms: int, path: Path
-                    ) -> tuple[dict[str, str], list[str], dict[str, list[str]]]:
-    """Return (header, per-frame keys in order, key -> values of every frame)."""
-    pairs0 = _PAIR_RE.findall(comments[0])
-    header = {k: (q or p) for k, q, p in pairs0 if k in HEADER_KEYS}
-    keys = [k for k, _, _ in pairs0 if k not in HEADER_KEYS]
-    if len(set(keys)) != len(keys):
-        dup = next(k for k in keys if keys.count(k) > 1)
-        raise ParseError(f"the key {dup!r} appears twice in the comment line.", path=path,
-                         frame=0, line=2, field=dup, hint="give each key once per frame.")
-    for req in ("time", "active", "energies"):
-        if req not in keys:
-            raise ParseError(
-                f"missing required key {req}=...; found keys {keys}.",
-                path=path, frame=0, line=2, field=req,
-                hint="every frame's comment line needs time=, active= and energies=\"...\" "
-                     "(see the key table in ensemblelab.io.xyz).",
-            )
-    values: dict[str, list[str]] = {k: [(q or p) for kk, q, p in pairs0 if kk == k][:1]
-                                    for k in keys}
-    keyset = set(keys)
-    rows = _fast_values(comments)
-    if rows is not None and len(comments) > 1:
-        keys1 = [m.group(1) for m in _PAIR_RE.finditer(comments[1])]
-        if set(keys1) - set(HEADER_KEYS) == keyset and len(keys1) == len(set(keys1)):
-            columns = list(zip(*rows, strict=True))
-            for k, col in zip(keys1, columns, strict=True):
-                if k in keyset:
-                    values[k].extend(col)
-            return header, keys, values
-    for f, line in enumerate(comments[1:], start=1):
-        d = {k: (q or p) for k, q, p in _PAIR_RE.findall(line) if k not in HEADER_KEYS}
-        if d.keys() != keyset:
-            missing = sorted(keyset - d.keys())
-            extra = sorted(d.keys() - keyset)
-            what = f"missing key(s) {missing}" if missing else f"unexpected key(s) {extra}"
-            raise ParseError(
-                f"{what} compared with frame 0 (keys {keys}).", path=path, frame=f,
-                line=_loc(n_atoms, f, 1), field=(missing or extra)[0],
-                hint="every frame of a file must carry the same keys.",
-            )
-        for k in keys:
-            values[k].append(d[k])
-    return header, keys, values
-
-
-def _all_numbers(values: dict[str, list[str]], keys: list[str]) -> dict[str, np.ndarray]:
-    """Parse every numeric key of every frame with one C-tokenizer call (empty dict on trouble)."""
-    keys = [k for k in keys if parse_floats(values[k][0]) is not None and values[k][0].strip()]
-    if not keys or len(values[keys[0]]) < 50:
-        return {}
-    widths = [len(values[k][0].split()) for k in keys]
-    text = "\n".join(map(" ".join, zip(*(values[k] for k in keys), strict=True)))
-    df = _read_table(text, sum(widths))
-    if df is None or len(df) != len(values[keys[0]]):
-        return {}
-    arr = df.to_numpy(np.float64)
-    if np.isnan(arr).any():
-        return {}
-    out, j = {}, 0
-    for k, w in zip(keys, widths, strict=True):
-        out[k] = arr[:, j:j + w]
-        j += w
-    return out
-
-
-def _numbers(vals: list[str], key: str, n_atoms: int, path: Path,
-             pre: dict[str, np.ndarray] | None = None) -> np.ndarray:
-    """Parse the values of one key of every frame to a (n_frames, m) float array."""
-    if pre and key in pre:
-        return pre[key].copy()
-    m = len(vals[0].split())
-    if m == 0:
-        raise ParseError(f"expected at least one number, found {vals[0]!r}.", path=path, frame=0,
-                         line=2, field=key, hint='write e.g. energies="0.0 3.1 4.2".')
-    if len(vals) * m > 4000:
-        df = _read_table("\n".join(vals), m)
-        if df is not None and len(df) == len(vals):
-            arr = df.to_numpy(np.float64)
-            if not np.isnan(arr).any():
-                return arr
-    arr = parse_floats(" ".join(vals), len(vals) * m)
-    if arr is not None:
-        return arr.reshape(len(vals), m)
-    for f, v in enumerate(vals):
-        tokens = v.split()
-        where = {"path": path, "frame": f, "line": _loc(n_atoms, f, 1), "field": key}
-        if len(tokens) != m:
-            raise ParseError(
-                f"inconsistent shape: frame 0 has {m} value(s), this frame has {len(tokens)}.",
-                hint="the number of states must not change along a trajectory.", **where,
-            )
-        for tok in tokens:
-            try:
-                float(tok)
-            except ValueError:
-                raise ParseError(f"expected a number, found {tok!r}.",
-                                 hint="write plain decimal numbers (nan and inf are read as "
-                                      "non-finite).", **where) from None
-    raise ParseError(f"could not parse the values of {key!r}.", **{"path": path, "field": key})
-
-
-def _integers(vals: list[str], key: str, n_atoms: int, path: Path,
-              pre: dict[str, np.ndarray] | None = None) -> np.ndarray:
-    arr = _numbers(vals, key, n_atoms, path, pre)
-    if arr.shape[1] != 1:
-        raise ParseError(f"expected one integer, found {arr.shape[1]} values {vals[0]!r}.",
-                         path=path, frame=0, line=2, field=key, hint=f"write {key}=<integer>.")
-    arr = arr[:, 0]
-    bad = ~np.isfinite(arr) | (arr != np.round(arr))
-    if bad.any():
-        f = int(np.flatnonzero(bad)[0])
-        raise ParseError(f"expected an integer, found {vals[f]!r}.", path=path, frame=f,
-                         line=_loc(n_atoms, f, 1), field=key, hint=f"write {key}=<integer>.")
-    return arr.astype(np.int64)
-
-
-def _user_column(vals: list[str], key: str, pre: dict[str, np.ndarray] | None = None) -> Any:
-    joined = " ".join(vals)
-    if pre and key in pre and pre[key].shape[1] == 1:
-        arr = pre[key][:, 0].copy()
-        return arr.astype(np.int64) if not _NOT_INT_RE.search(joined) else arr
-    if any(not v or len(v.split()) != 1 for v in vals):
-        return np.array(vals, dtype=object)
-    arr = parse_floats(joined, len(vals))
-    if arr is None:
-        if set(vals) <= {"True", "False"}:
-            return np.array([v == "True" for v in vals])
-        return np.array(vals, dtype=object)
-    if not _NOT_INT_RE.search(joined):
-        return arr.astype(np.int64)
-    return arr
-
-
-def _looks_like_hartree(energies: np.ndarray, cation: np.ndarray | None) -> str | None:
-    """Why energies declared in eV look like hartree, or None.
-
-    Excited-state manifolds probed in photochemistry span at least about 1 eV
-    (a UV-visible photon is 1.5-10 eV), and vertical ionisation energies of
-    molecules are about 5-15 eV. In hartree the same numbers are 0.05-0.4 and
-    0.2-0.55. So with two or more states we flag a median spread of the neutral
-    energies (max - min over states, per frame) between 0.02 and 0.75, or a
-    median vertical ionisation energy (lowest cation minus lowest neutral)
-    between 0.1 and 0.75. Common practice thresholds, not a law.
-    """
-    if energies.shape[1] >= 2 and energies.size:
-        spread = float(np.nanmedian(np.ptp(energies, axis=1)))
-        if 0.02 < spread < 0.75:
-            return f"the median spread of the neutral state energies is {spread:.3g} eV"
-    if cation is not None and cation.size:
-        ip = float(np.nanmedian(cation.min(axis=1) - energies.min(axis=1)))
-        if 0.1 < ip < 0.75:
-            return f"the median vertical ionisation energy is {ip:.3g} eV"
-    return None
 
 
 def _parse_file(path: Path, *, energy_unit: str | None, time_unit: str | None,
@@ -545,8 +216,10 @@ def _parse_file(path: Path, *, energy_unit: str | None, time_unit: str | None,
     size = n_atoms + 2
     symbols, geoms, vel = _atom_block(lines, n_atoms, n_frames, path)
     comments = lines[1::size][:n_frames]
+    check_comment_lengths(comments, n_atoms, path)
     del lines
     header, keys, values = _parse_comments(comments, n_atoms, path)
+    check_values(keys, values, n_atoms, path)
     pre = _all_numbers(values, keys)
 
     e_unit = resolve_unit("energy", header.get("energy_unit"), energy_unit, path=path)
@@ -703,127 +376,6 @@ def _parse_file(path: Path, *, energy_unit: str | None, time_unit: str | None,
                      suspicious=suspicious)
 
 
-# ---------------------------------------------------------------------------------- stacking
-class _Stack:
-    """Concatenate per-file arrays into one preallocated buffer (bounded peak memory)."""
-
-    def __init__(self, estimate: int) -> None:
-        self.estimate = max(int(estimate), 1)
-        self.buf: np.ndarray | None = None
-        self.n = 0
-
-    def add(self, a: np.ndarray) -> None:
-        if self.buf is None:
-            self.buf = np.empty((max(self.estimate, len(a)), *a.shape[1:]), dtype=a.dtype)
-        elif self.n + len(a) > len(self.buf):
-            grown = np.empty((max(self.n + len(a), int(len(self.buf) * 1.5)), *a.shape[1:]),
-                             dtype=self.buf.dtype)
-            grown[: self.n] = self.buf[: self.n]
-            self.buf = grown
-        self.buf[self.n:self.n + len(a)] = a
-        self.n += len(a)
-
-    def result(self) -> np.ndarray | None:
-        if self.buf is None:
-            return None
-        if self.n < 0.75 * len(self.buf):
-            return self.buf[: self.n].copy()
-        return self.buf[: self.n]
-
-
-def _check_same(first: _FileData, other: _FileData) -> None:
-    if other.symbols != first.symbols:
-        a = next((i for i, (x, y) in enumerate(zip(first.symbols, other.symbols, strict=False))
-                  if x != y), min(len(first.symbols), len(other.symbols)))
-        raise ParseError(
-            f"the atoms differ from {first.path.name}: expected {len(first.symbols)} atoms "
-            f"starting {' '.join(first.symbols[:8])}, found {len(other.symbols)} starting "
-            f"{' '.join(other.symbols[:8])} (first difference at atom {a}).",
-            path=other.path, frame=0, field="element",
-            hint="all trajectories of an ensemble must hold the same atoms in the same order.",
-        )
-    for name in set(first.arrays) | set(other.arrays):
-        a, b = first.arrays.get(name), other.arrays.get(name)
-        if a is None or b is None:
-            where = first.path.name if b is None else other.path.name
-            raise ParseError(
-                f"{name} is present in {where} but missing here." if b is None else
-                f"{name} is present here but missing in {first.path.name}.",
-                path=other.path, frame=0, line=2, field=name,
-                hint="every trajectory must carry the same per-frame arrays.",
-            )
-        if a.shape[1:] != b.shape[1:]:
-            raise ParseError(
-                f"inconsistent shape: {first.path.name} has {name} of shape {a.shape[1:]} per "
-                f"frame, this file {b.shape[1:]}.", path=other.path, frame=0, line=2, field=name,
-                hint="the number of states must be the same in every trajectory.",
-            )
-    if (first.velocities is None) != (other.velocities is None):
-        raise ParseError(
-            "velocities (atom lines with 7 columns) are present in some files only; "
-            f"{first.path.name} {'has' if first.velocities is not None else 'has no'} velocities.",
-            path=other.path, frame=0, line=3, field="velocities",
-            hint="write velocities for every trajectory or for none.",
-        )
-    for key in ("state_labels", "cation_labels", "masses"):
-        if first.header.get(key) != other.header.get(key):
-            raise ParseError(
-                f"header key {key} differs from {first.path.name}: expected "
-                f"{first.header.get(key)!r}, found {other.header.get(key)!r}.",
-                path=other.path, frame=0, line=2, field=key,
-                hint="labels and masses must agree between trajectories.",
-            )
-
-
-def _read_trajectories_csv(path: Path, ids: np.ndarray, *, energy_unit: str | None,
-                           state_base: int) -> tuple[pd.DataFrame, dict[str, np.ndarray]]:
-    try:
-        table = pd.read_csv(path)
-    except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError) as exc:
-        raise ParseError(f"cannot parse the CSV table ({exc}).", path=path,
-                         hint="a comma-separated table with a header row is expected.") from exc
-    if "traj" not in table.columns:
-        raise ParseError(f"missing required column 'traj'; found {list(table.columns)}.",
-                         path=path, line=1, field="traj",
-                         hint="the first row must name the columns, one of them 'traj'.")
-    if table["traj"].duplicated().any():
-        dup = int(table.loc[table["traj"].duplicated(), "traj"].iloc[0])
-        raise ParseError(f"trajectory {dup} appears twice.", path=path, field="traj",
-                         hint="one row per trajectory.")
-    table = table[table["traj"].isin(ids)].sort_values("traj", kind="stable")
-    table = table.reset_index(drop=True)
-    arrays: dict[str, np.ndarray] = {}
-    e_fac = units.energy_factor(resolve_unit("energy", None, energy_unit, path=path))
-    for prefix, name, fac in (("exc", "excitation_energies", e_fac),
-                              ("f", "oscillator_strengths", 1.0)):
-        cols = sorted((int(m.group(1)), c) for c in table.columns
-                      if (m := re.fullmatch(rf"{prefix}_(\d+)", str(c))))
-        if cols:
-            idx = [i for i, _ in cols]
-            if idx != list(range(len(idx))):
-                raise ParseError(f"columns {prefix}_<i> must be numbered 0..n_states-1; found "
-                                 f"{[c for _, c in cols]}.", path=path, line=1,
-                                 field=f"{prefix}_*", hint="include column 0 (it is 0).")
-            arrays[name] = table[[c for _, c in cols]].to_numpy(np.float64) * fac
-            table = table.drop(columns=[c for _, c in cols])
-    tdm = sorted((int(m.group(1)), "xyz".index(m.group(2)), c) for c in table.columns
-                 if (m := re.fullmatch(r"tdm_(\d+)_([xyz])", str(c))))
-    if tdm:
-        n = max(i for i, _, _ in tdm) + 1
-        if len(tdm) != 3 * n:
-            raise ParseError("transition dipole columns tdm_<i>_<x|y|z> are incomplete.",
-                             path=path, line=1, field="tdm_*",
-                             hint="give x, y and z for every state 0..n_states-1.")
-        arr = np.zeros((len(table), n, 3))
-        for i, j, c in tdm:
-            arr[:, i, j] = table[c].to_numpy(np.float64)
-        arrays["transition_dipoles"] = arr
-        table = table.drop(columns=[c for _, _, c in tdm])
-    if state_base and "initial_state" in table.columns:
-        table["initial_state"] = table["initial_state"] - state_base
-    return table, arrays
-
-
 def load_extxyz(
     path: str | Path,
     *,
@@ -959,14 +511,20 @@ def load_extxyz(
     if folder is not None:
         meta_path = folder / "metadata.json"
         if meta_path.is_file():
+            check_no_symlink_escape(folder, meta_path, what="metadata file")
             try:
+                if meta_path.stat().st_size > MAX_MANIFEST_BYTES:
+                    raise ValueError(f"larger than {MAX_MANIFEST_BYTES} bytes")
                 metadata = decode_metadata(json.loads(meta_path.read_text()))
-            except (json.JSONDecodeError, UnicodeDecodeError) as exc:
-                raise ParseError(f"invalid JSON ({exc}).", path=meta_path,
+                if not isinstance(metadata, dict):
+                    raise ValueError(f"a JSON {type(metadata).__name__}, not an object")
+            except (ValueError, RecursionError, TypeError) as exc:
+                raise ParseError(f"invalid metadata ({excerpt(exc, 80)}).", path=meta_path,
                                  hint="fix or delete metadata.json (it is optional).") from exc
             sources = [*metadata.pop("sources", []), *sources]
         csv_path = folder / "trajectories.csv"
         if csv_path.is_file():
+            check_no_symlink_escape(folder, csv_path, what="trajectory table")
             base = state_base if state_base is not None else int(header.get("state_base", 0))
             trajectories, traj_arrays = _read_trajectories_csv(
                 csv_path, ids_all, energy_unit=energy_unit, state_base=base)
@@ -1018,188 +576,3 @@ def load_extxyz(
     except SchemaError as exc:
         raise SchemaError(f"{path}: {exc}") from exc
 
-
-# ---------------------------------------------------------------------------------- writing
-def _is_extxyz_folder(path: Path) -> bool:
-    names = [p.name for p in path.iterdir()]
-    return bool(names) and all(
-        n.endswith(_SUFFIXES) or n in ("trajectories.csv", "metadata.json") for n in names
-    ) and any(n.endswith(_SUFFIXES) for n in names)
-
-
-def _quote(value: str, key: str) -> str:
-    if '"' in value or "\n" in value:
-        raise SchemaError(f"column {key!r} holds text with a quote or newline: {value[:40]!r}; "
-                          "it cannot be written to an XYZ comment line.")
-    return f'"{value}"' if (not value or any(c.isspace() for c in value) or "=" in value) \
-        else value
-
-
-def write_extxyz(
-    ens: Ensemble,
-    folder: str | Path,
-    *,
-    compress: bool = False,
-    precision: int | None = None,
-    overwrite: bool = False,
-    progress: bool = False,
-) -> Path:
-    """Write `ens` in the open extended-XYZ folder layout, atomically.
-
-    Parameters
-    ----------
-    ens : Ensemble
-        The ensemble.
-    folder : str or Path
-        Target folder (created; written to a temporary folder beside it first).
-    compress : bool
-        Write ``traj_<id>.xyz.gz`` instead of ``traj_<id>.xyz``.
-    precision : int, optional
-        Significant digits of floating-point numbers; default None writes the
-        shortest representation that reads back exactly.
-    overwrite : bool
-        Replace an existing folder written in this layout.
-    progress : bool
-        Show a progress bar over trajectories.
-
-    Returns
-    -------
-    Path
-        The folder.
-
-    Notes
-    -----
-    Units in the files: fs, eV, Angstrom, Angstrom/fs. Every file states them in
-    its first comment line. ``trajectories.csv`` and ``metadata.json`` are
-    written beside the trajectory files.
-    """
-    from tqdm.auto import tqdm
-
-    folder = Path(folder)
-    F = "%r" if precision is None else f"%.{int(precision)}g"
-    frame = ens.snapshots
-    extra_cols = [c for c in frame.columns if c not in ("snapshot", "traj", "step", "time",
-                                                        "active")]
-    for c in extra_cols:
-        if c in _RESERVED or not re.fullmatch(r"[A-Za-z_][\w.\-]*", c):
-            raise SchemaError(f"column name {c!r} cannot be written as an XYZ comment key.")
-    write_snapshot = not np.array_equal(frame["snapshot"].to_numpy(), np.arange(len(frame)))
-    masses_default = np.array_equal(ens.masses, masses_for(ens.symbols)) \
-        if all(_known(s) for s in ens.symbols) else False
-
-    header = [
-        "energy_unit=eV", "time_unit=fs", "length_unit=Angstrom",
-        f'state_labels="{" ".join(ens.state_labels)}"',
-    ]
-    if ens.cation_labels:
-        header.append(f'cation_labels="{" ".join(ens.cation_labels)}"')
-    if ens.dyson is not None and ens.dyson.ndim == 3:
-        header.append(f'dyson_shape="{ens.n_states} {ens.n_cation}"')
-    if not masses_default:
-        header.append('masses="' + " ".join(repr(float(m)) for m in ens.masses) + '"')
-    for lab in (*ens.state_labels, *ens.cation_labels):
-        if not lab or any(ch.isspace() or ch == '"' for ch in lab):
-            raise SchemaError(f"state label {lab!r} cannot be written (no spaces or quotes).")
-
-    # one template and one object table per snapshot: "%" formatting does all the work
-    parts: list[str] = ["time=" + F]
-    blocks: list[np.ndarray] = [frame["time"].to_numpy()[:, None]]
-    parts.append("step=%d")
-    blocks.append(frame["step"].to_numpy()[:, None])
-    if write_snapshot:
-        parts.append("snapshot=%d")
-        blocks.append(frame["snapshot"].to_numpy()[:, None])
-    parts.append("active=%d")
-    blocks.append(frame["active"].to_numpy()[:, None])
-    for key in ARRAY_KEYS:
-        arr = getattr(ens, key)
-        if arr is None:
-            continue
-        flat = arr.reshape(len(frame), -1)
-        parts.append(f'{key}="' + " ".join([F] * flat.shape[1]) + '"')
-        blocks.append(flat)
-    for c in extra_cols:
-        values = frame[c].to_numpy()
-        if values.dtype == bool:
-            parts.append(f"{c}=%s")
-            blocks.append(np.where(values, "True", "False").astype(object)[:, None])
-        elif np.issubdtype(values.dtype, np.integer):
-            parts.append(f"{c}=%d")
-            blocks.append(values[:, None])
-        elif np.issubdtype(values.dtype, np.floating):
-            parts.append(f"{c}={F}")
-            blocks.append(values[:, None])
-        else:
-            parts.append(f"{c}=%s")
-            blocks.append(np.array([_quote(str(v), c) for v in values], dtype=object)[:, None])
-    width = sum(b.shape[1] for b in blocks)
-    table = np.empty((len(frame), width), dtype=object)
-    j = 0
-    for b in blocks:
-        table[:, j:j + b.shape[1]] = b
-        j += b.shape[1]
-    comment_tpl = " ".join(parts)
-    first_tpl = " ".join(header) + " " + comment_tpl
-    atoms = ens.geometries
-    if ens.velocities is not None:
-        atoms = np.concatenate([atoms, ens.velocities], axis=2)
-    per_atom = atoms.shape[2]
-    atom_tpl = "".join(f"{s} " + " ".join([F] * per_atom) + "\n" for s in ens.symbols)
-    coords = atoms.reshape(len(frame), -1)
-    count_line = f"{ens.n_atoms}\n"
-
-    traj = frame["traj"].to_numpy()
-    bounds = np.r_[0, np.flatnonzero(np.diff(traj)) + 1, len(traj)]
-    suffix = ".xyz.gz" if compress else ".xyz"
-    with atomic_folder(folder, overwrite=overwrite, is_ours=_is_extxyz_folder,
-                       kind="extended-XYZ ensemble folder") as tmp:
-        for a, b in tqdm(list(zip(bounds[:-1], bounds[1:], strict=True)), desc="writing",
-                         unit="traj", disable=not progress, leave=False):
-            rows = table[a:b].tolist()
-            xyz = coords[a:b].tolist()
-            out = io.StringIO()
-            for k, (row, pos) in enumerate(zip(rows, xyz, strict=True)):
-                out.write(count_line)
-                out.write((first_tpl if k == 0 else comment_tpl) % tuple(row))
-                out.write("\n")
-                out.write(atom_tpl % tuple(pos))
-            data = out.getvalue().encode("utf-8")
-            target = tmp / f"traj_{int(traj[a])}{suffix}"
-            if compress:
-                with open(target, "wb") as raw, gzip.GzipFile(
-                        filename="", mode="wb", fileobj=raw, compresslevel=6, mtime=0) as gz:
-                    gz.write(data)
-            else:
-                target.write_bytes(data)
-        _write_trajectories_csv(ens, tmp / "trajectories.csv")
-        meta = {k: v for k, v in ens.metadata.items() if k not in ("units", "schema_version")}
-        (tmp / "metadata.json").write_text(dumps_json(encode_metadata(meta)))
-    return folder
-
-
-def _known(symbol: str) -> bool:
-    try:
-        masses_for([symbol])
-    except SchemaError:
-        return False
-    return True
-
-
-def _write_trajectories_csv(ens: Ensemble, path: Any) -> None:
-    table = ens.trajectories.drop(columns=["n_steps", "t_end"])
-    extra = {}
-    if ens.excitation_energies is not None:
-        for i in range(ens.excitation_energies.shape[1]):
-            extra[f"exc_{i}"] = ens.excitation_energies[:, i]
-    if ens.oscillator_strengths is not None:
-        for i in range(ens.oscillator_strengths.shape[1]):
-            extra[f"f_{i}"] = ens.oscillator_strengths[:, i]
-    if ens.transition_dipoles is not None:
-        for i in range(ens.transition_dipoles.shape[1]):
-            for j, ax in enumerate("xyz"):
-                extra[f"tdm_{i}_{ax}"] = ens.transition_dipoles[:, i, j]
-    clash = set(extra) & set(table.columns)
-    if clash:
-        raise SchemaError(f"trajectories column(s) {sorted(clash)} clash with reserved names.")
-    table = pd.concat([table, pd.DataFrame(extra, index=table.index)], axis=1)
-    table.to_csv(path, index=False)

@@ -1,7 +1,11 @@
 """Export what is selected: structures (XYZ, PDB), figures (PNG, SVG), tables (CSV).
 
 Every file is written atomically (temporary file + ``os.replace``) into an
-export folder; nothing is ever written into the data.
+export folder; nothing is ever written into the data. The panel's folder field
+is confined to the export folder chosen at start (a relative sub-folder, or an
+absolute path inside it): anything that resolves outside it, through ``..`` or a
+symbolic link, is refused with a message. CSV tables are written with
+formula-like text cells neutralised (:mod:`ensemblelab._csv`).
 """
 
 from __future__ import annotations
@@ -17,13 +21,14 @@ import numpy as np
 import pandas as pd
 
 from .._atomic import atomic_write_bytes, atomic_write_text
+from .._csv import to_csv_text
 from ..data.ensemble import Ensemble
 from ._base import View
 from ._messages import MessageArea
 from ._selection import SelectionModel
 
-__all__ = ["ExportPanel", "export_structures", "export_tables", "export_figures",
-           "write_text_atomic", "write_bytes_atomic"]
+__all__ = ["ExportPanel", "confined_export_folder", "export_structures", "export_tables",
+           "export_figures", "write_text_atomic", "write_bytes_atomic"]
 
 
 def write_bytes_atomic(path: str | os.PathLike[str], data: bytes) -> Path:
@@ -34,6 +39,24 @@ def write_bytes_atomic(path: str | os.PathLike[str], data: bytes) -> Path:
 def write_text_atomic(path: str | os.PathLike[str], text: str) -> Path:
     """Write `text` (UTF-8) to `path` atomically."""
     return atomic_write_text(path, text)
+
+
+def confined_export_folder(root: str | os.PathLike[str], value: str) -> Path:
+    """The folder `value` (relative to `root`, or absolute) if it lies inside `root`.
+
+    Raises
+    ------
+    ValueError
+        When it resolves (through ``..`` or a symbolic link) to a place outside `root`.
+    """
+    base = Path(root).expanduser().resolve()
+    text = str(value).strip()
+    target = Path(text).expanduser() if text else base
+    target = (target if target.is_absolute() else base / target).resolve()
+    if target != base and base not in target.parents:
+        raise ValueError(f"export folder {value!r} is outside the export folder {base}; "
+                         "refused. Hint: give a sub-folder name (or leave the field as it is).")
+    return target
 
 
 def export_structures(model: SelectionModel, folder: str | os.PathLike[str], *,
@@ -117,7 +140,7 @@ def export_tables(model: SelectionModel, folder: str | os.PathLike[str], *,
     tables.update(extra or {})
     for stem, table in tables.items():
         buf = _io.StringIO()
-        table.to_csv(buf, index=False)
+        buf.write(to_csv_text(table))
         out.append(write_text_atomic(folder / f"{stem}.csv", buf.getvalue()))
     return out
 
@@ -171,7 +194,7 @@ class ExportPanel(View):
     model : SelectionModel or Ensemble
         Shared selection state.
     folder : path, optional
-        Export folder (default ``./ensemblelab-export``).
+        Export folder (default ``./ensemblelab-export``); every export stays inside it.
     populations : callable, optional
         Returns the populations table to draw and save (the explorer passes it).
     save_session, restore_session : callable, optional
@@ -197,20 +220,21 @@ class ExportPanel(View):
         self._populations = populations
         self.written: list[Path] = []
         default = Path(folder) if folder is not None else Path.cwd() / "ensemblelab-export"
-        self.folder = widgets.Text(value=str(default), description="folder",
+        self.root = default.expanduser().resolve()
+        self.folder = widgets.Text(value=str(self.root), description="folder",
                                    layout=widgets.Layout(width="420px"))
         buttons = []
         actions: list[tuple[str, Callable[[], Any]]] = [
-            ("structures XYZ", lambda: [export_structures(self.model, self.folder.value,
+            ("structures XYZ", lambda: [export_structures(self.model, self._dest(),
                                                           fmt="xyz")]),
-            ("structures PDB", lambda: [export_structures(self.model, self.folder.value,
+            ("structures PDB", lambda: [export_structures(self.model, self._dest(),
                                                           fmt="pdb")]),
-            ("figures PNG", lambda: export_figures(self.model, self.folder.value, fmt="png",
+            ("figures PNG", lambda: export_figures(self.model, self._dest(), fmt="png",
                                                    populations=self._pop())),
-            ("figures SVG", lambda: export_figures(self.model, self.folder.value, fmt="svg",
+            ("figures SVG", lambda: export_figures(self.model, self._dest(), fmt="svg",
                                                    populations=self._pop())),
             ("tables CSV", lambda: export_tables(
-                self.model, self.folder.value,
+                self.model, self._dest(),
                 extra={"populations": p} if (p := self._pop()) is not None else None)),
         ]
         if save_session is not None:
@@ -227,6 +251,10 @@ class ExportPanel(View):
         self.result = widgets.HTML()
         self._finish(self.folder, widgets.HBox(buttons[:5]), widgets.HBox(buttons[5:]),
                      self.result)
+
+    def _dest(self) -> Path:
+        """The folder typed in the field, confined to :attr:`root`."""
+        return confined_export_folder(self.root, self.folder.value)
 
     def _pop(self) -> pd.DataFrame | None:
         return None if self._populations is None else self._populations()

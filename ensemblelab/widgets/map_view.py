@@ -377,7 +377,8 @@ class MapView(View):
             self.heatmap.y = delays
             self.heatmap.color = np.nan_to_num(values)
             # one set of axes for every layer: the simulated map's grid
-            e_sim, d_sim = np.asarray(trpes.kinetic_energies, float), np.asarray(trpes.delays, float)
+            e_sim = np.asarray(trpes.kinetic_energies, float)
+            d_sim = np.asarray(trpes.delays, float)
             self.x.min, self.x.max = float(e_sim[0]), float(e_sim[-1])
             self.y.min, self.y.max = float(d_sim[0]), float(d_sim[-1])
         self._draw_grid(trpes)

@@ -24,7 +24,6 @@ from pathlib import Path
 from typing import Any
 
 from .._atomic import atomic_write_text
-from ..errors import SchemaError
 from ._selection import SelectionModel
 
 __all__ = ["session_path_for", "session_state", "save_session", "load_session",
@@ -80,24 +79,18 @@ def save_session(model: SelectionModel, path: str | os.PathLike[str], *,
 
 
 def load_session(path: str | os.PathLike[str]) -> dict[str, Any]:
-    """Read and check a session file; returns its dictionary."""
-    path = Path(path)
-    try:
-        state = json.loads(path.read_text(encoding="utf-8"))
-    except json.JSONDecodeError as exc:
-        raise SchemaError(f"{path}: not a JSON session file ({exc}).") from exc
-    if not isinstance(state, dict) or state.get("format") != SESSION_FORMAT:
-        raise SchemaError(
-            f"{path}: 'format' must be {SESSION_FORMAT!r}; got "
-            f"{state.get('format') if isinstance(state, dict) else type(state).__name__!r}.")
-    if int(state.get("version", 0)) > SESSION_VERSION:
-        raise SchemaError(
-            f"{path}: session version {state.get('version')} is newer than this ensemblelab "
-            f"understands ({SESSION_VERSION}); upgrade ensemblelab.")
-    for key, kind in (("excluded", list), ("selection", dict), ("labels", dict)):
-        if not isinstance(state.get(key, kind()), kind):
-            raise SchemaError(f"{path}: {key!r} must be a JSON {kind.__name__}.")
-    return state
+    """Read and check a session file; returns its dictionary.
+
+    Raises
+    ------
+    SchemaError
+        When the file is too large, too deeply nested, not JSON, or any field has
+        the wrong type (see :mod:`ensemblelab.widgets._session_check`); nothing is
+        applied then.
+    """
+    from ._session_check import read_session_file
+
+    return read_session_file(Path(path), format_name=SESSION_FORMAT, version=SESSION_VERSION)
 
 
 def apply_session(model: SelectionModel, state: dict[str, Any]) -> None:

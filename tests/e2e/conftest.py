@@ -34,14 +34,16 @@ def _chromium() -> str:
 
 @pytest.fixture(scope="module")
 def explore_server(tmp_path_factory):
-    """``ensemblelab explore`` on the demo data; yields (url, seconds until the URL printed)."""
+    """``ensemblelab explore`` on the demo data; yields (url with its token, seconds until the
+    URL printed)."""
     from ensemblelab.cli._explore import free_port, stop_process_group
 
     data = os.environ.get("ENSEMBLELAB_E2E_DATA")  # default: the shipped demo data
     folder = tmp_path_factory.mktemp("explore")
     port = free_port()
     cmd = [sys.executable, "-m", "ensemblelab", "explore", "--port", str(port),
-           "--notebook-dir", str(folder)] + ([data] if data else [])
+           "--notebook-dir", str(folder), "--exports", str(folder / "exports")] + (
+        [data] if data else [])
     env = dict(os.environ)
     env["JUPYTER_RUNTIME_DIR"] = str(folder / "runtime")
     env["JUPYTER_CONFIG_DIR"] = str(folder / "config")
@@ -62,7 +64,7 @@ def explore_server(tmp_path_factory):
     try:
         if not found.wait(timeout=180):
             pytest.fail(f"ensemblelab explore printed no URL: {lines!r}, status {proc.poll()}")
-        url = re.search(r"http://127\.0\.0\.1:\d+/", "".join(lines)).group(0)
+        url = re.search(r"http://127\.0\.0\.1:\d+/\?token=[0-9a-f]{32,}", "".join(lines)).group(0)
         yield url, time.monotonic() - start
     finally:
         stop_process_group(proc)

@@ -114,3 +114,24 @@ def test_browser_excluding_a_flagged_trajectory_changes_the_map(browser_page):
 def test_browser_console_has_no_unexpected_errors(browser_page):
     assert "error" not in browser_page.locator(".ensemblelab-messages").inner_text().lower()
     assert unexpected(browser_page.errors) == []
+
+
+def test_browser_server_refuses_requests_without_its_token(explore_server):
+    import http.client
+    import urllib.parse
+
+    url, _ = explore_server
+    parts = urllib.parse.urlparse(url)
+    assert parts.query.startswith("token=")  # the printed URL carries the token
+    for path in ("/", "/?token=wrong"):
+        conn = http.client.HTTPConnection("127.0.0.1", parts.port, timeout=60)
+        conn.request("GET", path)
+        resp = conn.getresponse()
+        body = resp.read()
+        conn.close()
+        # expected: no page without the token, only the login redirect (common practice of
+        # Jupyter servers: 302 to /login for a page, 403 for an API call)
+        assert resp.status in (302, 403), (path, resp.status)
+        assert b"ensemblelab" not in body
+        if resp.status == 302:
+            assert resp.getheader("Location", "").startswith("/login")

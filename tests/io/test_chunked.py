@@ -131,7 +131,8 @@ def test_overwrite_keeps_old_store_until_done(tmp_path, toy):
 
 def test_corrupt_chunk_is_a_store_error(tmp_path, toy):
     path = save_chunked(toy, tmp_path / "s.ens", chunk_size=4)
-    (path / "chunks" / "c000001" / "energies.npy").write_bytes(b"not an array")
+    chunk = read_chunked_manifest(path)["chunks"][1]["dir"]
+    (path / chunk / "energies.npy").write_bytes(b"not an array")
     with pytest.raises(StoreError, match="cannot read the array"):
         load_chunk(path, 1)
 
@@ -205,6 +206,6 @@ def test_read_chunk_fields_reads_only_what_is_asked(tmp_path, toy):
     assert arrays["velocities"] is None  # not in the store
     assert set(arrays) == {"energies", "velocities"}  # geometries never read
     np.testing.assert_array_equal(trajs["traj"].to_numpy(), ref.trajectories["traj"].to_numpy())
-    (path / "chunks" / "c000001" / "energies.npy").write_bytes(b"broken")
+    (path / manifest["chunks"][1]["dir"] / "energies.npy").write_bytes(b"broken")
     with pytest.raises(StoreError, match="cannot read the array"):
         read_chunk_fields(path, manifest, 1, ["energies"])

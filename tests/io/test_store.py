@@ -111,7 +111,7 @@ def test_store_refuses_to_overwrite_foreign_folder(tmp_path):
 def test_store_interrupted_save_leaves_previous_store_intact(tmp_path, monkeypatch):
     old = make_toy_ensemble(3)
     path = save(old, tmp_path / "s")
-    before = {p.name: p.read_bytes() for p in path.iterdir()}
+    before = {str(p.relative_to(path)): p.read_bytes() for p in path.rglob('*') if p.is_file()}
     real_save = np.save
     calls = []
 
@@ -126,7 +126,8 @@ def test_store_interrupted_save_leaves_previous_store_intact(tmp_path, monkeypat
         save(make_toy_ensemble(5, seed=9), path, overwrite=True)
     monkeypatch.undo()
     assert len(calls) == 2  # really failed mid-write, after the first array
-    assert {p.name: p.read_bytes() for p in path.iterdir()} == before
+    assert {str(p.relative_to(path)): p.read_bytes() for p in path.rglob('*')
+            if p.is_file()} == before
     assert_ensemble_equal(load(path), old)
     assert sorted(p.name for p in tmp_path.iterdir()) == ["s"]
 
@@ -143,10 +144,12 @@ def test_store_interrupted_first_save_leaves_nothing(tmp_path, monkeypatch):
 
 def test_store_loader_does_not_modify_store(tmp_path):
     path = save(make_toy_ensemble(3), tmp_path / "s")
-    before = {p.name: (p.read_bytes(), p.stat().st_mtime_ns) for p in path.iterdir()}
+    before = {str(p.relative_to(path)): (p.read_bytes(), p.stat().st_mtime_ns)
+              for p in path.rglob('*') if p.is_file()}
     load(path)
     load(path, mmap_mode="r")
-    assert {p.name: (p.read_bytes(), p.stat().st_mtime_ns) for p in path.iterdir()} == before
+    assert {str(p.relative_to(path)): (p.read_bytes(), p.stat().st_mtime_ns)
+            for p in path.rglob('*') if p.is_file()} == before
 
 
 def test_store_rejects_unit_arguments(tmp_path):

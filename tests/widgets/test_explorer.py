@@ -153,28 +153,29 @@ def test_explorer_session_round_trip_beside_the_data(app, toy, tmp_path):
     assert after == digest  # the data files were never written
 
 
-def test_explorer_exports_structures_figures_tables(app, tmp_path):
+def test_explorer_exports_structures_figures_tables(app):
     app.brush((1.35, 1.65), (0.0, 60.0))
-    app.export.folder.value = str(tmp_path)
+    out = app.export.root / "band"  # exports stay inside the folder chosen at start
+    app.export.folder.value = "band"
     app.export.click("structures XYZ")
     app.export.click("structures PDB")
     app.export.click("figures PNG")
     app.export.click("figures SVG")
     app.export.click("tables CSV")
     assert app.messages.errors == [], app.messages.errors
-    xyz = (tmp_path / "selection.xyz").read_text().splitlines()
+    xyz = (out / "selection.xyz").read_text().splitlines()
     n_atoms = app.model.ens.n_atoms
     assert int(xyz[0]) == n_atoms
     assert len(xyz) == len(app.model.selected) * (n_atoms + 2)  # XYZ layout (common practice)
-    assert (tmp_path / "selection.pdb").read_text().count("MODEL") >= len(app.model.selected)
-    assert (tmp_path / "trpes_map.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"  # PNG magic
-    assert b"<svg" in (tmp_path / "populations.svg").read_bytes()[:2000]
+    assert (out / "selection.pdb").read_text().count("MODEL") >= len(app.model.selected)
+    assert (out / "trpes_map.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"  # PNG magic
+    assert b"<svg" in (out / "populations.svg").read_bytes()[:2000]
     import pandas as pd
 
-    by_state = pd.read_csv(tmp_path / "band_by_state.csv")
+    by_state = pd.read_csv(out / "band_by_state.csv")
     assert by_state["share"].sum() == pytest.approx(1.0, abs=1e-9)
     assert {"populations.csv", "band_snapshots.csv", "trpes_map.csv"} <= {
-        p.name for p in Path(tmp_path).iterdir()}
+        p.name for p in Path(out).iterdir()}
 
 
 def test_explorer_empty_brush_says_no_signal_and_shows_nothing(app):
