@@ -162,7 +162,7 @@ def build_report(
             _csv(pop, tmp / "tables" / "populations.csv")
             fit = None
             try:
-                fit = fit_kinetics(pop, model="single", n_boot=0)
+                fit = fit_kinetics(pop, scheme="single", interval="covariance")
             except Exception as exc:  # noqa: BLE001 - reported on the page
                 notes.append(f"kinetic fit failed: {exc}")
             fig = plot_populations(pop, fit=fit, title="populations")

@@ -34,8 +34,8 @@ from typing import Any
 import numpy as np
 
 from ..compute.dynamics._kernels_fssh import adiabatic_states
-from ..compute.dynamics.initial import sample_normal_modes
 from ..compute.dynamics.models import TorsionVibronicModel
+from ..compute.dynamics.wigner import sample_normal_modes
 from ..data.elements import masses_for
 from ..units import AMU_ME, AU_TIME_FS, BOHR_ANGSTROM, HARTREE_CM1
 

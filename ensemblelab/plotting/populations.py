@@ -125,7 +125,7 @@ def plot_sas(result: Any, *, ax: Any = None, title: str | None = None) -> Figure
     Figure
     """
     if result.sas is None:
-        raise ValueError("plot_sas needs fit_global(model='sequential').")
+        raise ValueError("plot_sas needs fit_global(scheme='sequential').")
     fig, ax = _new_axes(ax)
     for i, sp in enumerate(result.species):
         ax.plot(result.energies, result.sas[i], label=f"species {sp}")

@@ -35,7 +35,7 @@ class PopulationView(View):
     kind : {"active", "amplitudes", "diabatic"}
         Population kind.
     fit : {"none", "single", "sequential", "parallel"}
-        Kinetic model fitted with :func:`ensemblelab.compute.kinetics.rates.fit_kinetics`
+        Kinetic scheme fitted with :func:`ensemblelab.compute.kinetics.rates.fit_kinetics`
         (``"sequential"``/``"parallel"`` need `fit_states`).
     fit_states : sequence of int, optional
         States in the roles A, B[, C] of the kinetic model.
@@ -182,7 +182,7 @@ class PopulationView(View):
     def _fit(self, table: pd.DataFrame) -> Any:
         from ..compute.kinetics.rates import fit_kinetics
 
-        kwargs: dict[str, Any] = {"model": self.fit.value, "n_boot": 0}
+        kwargs: dict[str, Any] = {"scheme": self.fit.value, "interval": "covariance"}
         if self.fit_states is not None:
             kwargs["states"] = self.fit_states
         elif self.fit.value != "single":
@@ -222,7 +222,7 @@ class PopulationView(View):
                 self.fit_lines.visible = True
                 taus = ", ".join(f"{k} = {v:.1f} fs"
                                  for k, v in self.fit_result.time_constants.items())
-                self.fit_label.value = f"{self.fit_result.model} fit: {taus}"
+                self.fit_label.value = f"{self.fit_result.scheme} fit: {taus}"
             else:
                 self.fit_lines.visible = False
                 self.fit_label.value = ""

@@ -90,7 +90,7 @@ def test_fit_global_sequential_sas_match_method_notes_transform():
     a, b, c = K.sequential_profiles(d, 50.0, 200.0, sigma)
     s = np.outer(a, sas[0]) + np.outer(b, sas[1]) + np.outer(c, sas[2])
     res = fit_global(energies=e, delays=d, intensity=s, n_components=2, irf_fwhm=T_CC,
-                     model="sequential")
+                     scheme="sequential")
     np.testing.assert_allclose(res.lifetimes, [50.0, 200.0], rtol=1e-6)
     np.testing.assert_allclose(res.sas, sas, atol=1e-7)
     k1, k2 = 1 / 50.0, 1 / 200.0
@@ -134,6 +134,10 @@ def test_fit_global_noisy_interval_and_free_irf():
                       interval="bootstrap", n_boot=30)
     assert boot.lifetime_lower[0] < 100.0 < boot.lifetime_upper[0]
     assert "bootstrap" in boot.interval_method and "tau_1" in str(boot)
+    bare = fit_global(energies=e, delays=d, intensity=noisy, irf_fwhm=T_CC, interval=None)
+    assert bare.lifetimes[0] == res.lifetimes[0]  # the interval choice leaves the fit alone
+    assert bare.interval_method == "none" and np.isnan(bare.lifetime_lower).all()
+    assert bare.scheme == "parallel"
 
 
 def test_fit_global_wald_interval_coverage_on_noisy_maps():
@@ -165,8 +169,12 @@ def test_fit_global_drops_nonfinite_rows_and_validates():
     assert res.lifetimes[0] == pytest.approx(40.0, rel=1e-6)
     with pytest.raises(SchemaError, match="energies, delays, intensity"):
         fit_global(object())
-    with pytest.raises(SchemaError, match="'model' parameter"):
-        fit_global(energies=e, delays=d, intensity=s, model="target")
+    with pytest.raises(SchemaError, match="'interval' parameter"):
+        fit_global(energies=e, delays=d, intensity=s, interval="wald")
+    with pytest.raises(SchemaError, match="'n_boot' parameter"):
+        fit_global(energies=e, delays=d, intensity=s, interval="bootstrap", n_boot=0)
+    with pytest.raises(SchemaError, match="'scheme' parameter"):
+        fit_global(energies=e, delays=d, intensity=s, scheme="target")
     with pytest.raises(SchemaError, match="shape"):
         fit_global(energies=e, delays=d, intensity=s[:, :3])
 

@@ -9,14 +9,16 @@ import pandas as pd
 import pytest
 
 from ensemblelab.compute.dynamics.initial import (
-    doorway_weights,
+    doorway_table,
+    select_initial_conditions,
+    write_initial_conditions,
+)
+from ensemblelab.compute.dynamics.wigner import (
     normal_modes_from_hessian,
     sample_normal_modes,
     sample_wigner,
     sample_wigner_from_hessian,
-    select_initial_conditions,
     thermal_factor,
-    write_initial_conditions,
 )
 from ensemblelab.errors import NumericalWarning, SchemaError
 from ensemblelab.units import AMU_ME, HARTREE_CM1, HARTREE_EV
@@ -96,7 +98,7 @@ def _triatomic(linear: bool):
 @pytest.mark.parametrize("linear", [False, True])
 def test_normal_modes_from_hessian_recovers_frequencies(linear):
     """Build a Hessian from chosen frequencies in the vibrational subspace and recover them."""
-    from ensemblelab.compute.dynamics.initial import _rigid_basis
+    from ensemblelab.compute.dynamics.wigner import _rigid_basis
     from ensemblelab.data.elements import masses_for
     from ensemblelab.units import BOHR_ANGSTROM
 
@@ -117,7 +119,7 @@ def test_normal_modes_from_hessian_recovers_frequencies(linear):
 
 
 def test_sample_from_hessian_reports_imaginary_modes_and_kinetic_energy():
-    from ensemblelab.compute.dynamics.initial import _rigid_basis
+    from ensemblelab.compute.dynamics.wigner import _rigid_basis
     from ensemblelab.data.elements import masses_for
     from ensemblelab.units import BOHR_ANGSTROM
 
@@ -162,7 +164,7 @@ def test_doorway_worked_example():
     # method notes section 1.6 computed independently (not published): Gamma_pu = 0.091248 eV, w =
     # (0.0357934, 8.20699e-7),
     # fraction on state 1 = 0.999977 (rel 1e-5)
-    w = doorway_weights(_worked_table(), photon_energy=4.1, fwhm=20.0)
+    w = doorway_table(_worked_table(), photon_energy=4.1, fwhm=20.0)
     np.testing.assert_allclose(w["weight"], [0.0357934, 8.20699e-7], rtol=1e-5)
     frac = w["weight"].iloc[0] / w["weight"].sum()
     assert frac == pytest.approx(0.999977, rel=1e-5)
@@ -178,8 +180,8 @@ def test_doorway_oscillator_strength_form_has_one_over_de():
     t = _worked_table()
     f = 2.0 / 3.0 * (t["excitation_energy"] / HARTREE_EV) * t["mu2"]
     tf = t.drop(columns="mu2").assign(oscillator_strength=f)
-    w_mu = doorway_weights(t, photon_energy=4.1, fwhm=20.0)["weight"].to_numpy()
-    w_f = doorway_weights(tf, photon_energy=4.1, fwhm=20.0)
+    w_mu = doorway_table(t, photon_energy=4.1, fwhm=20.0)["weight"].to_numpy()
+    w_f = doorway_table(tf, photon_energy=4.1, fwhm=20.0)
     np.testing.assert_allclose(w_f["weight"], w_mu, rtol=1e-12)
     naive = f.to_numpy() * w_f["spectral"].to_numpy()
     ratio = (naive[1] / naive[0]) / (w_mu[1] / w_mu[0])
@@ -189,16 +191,16 @@ def test_doorway_oscillator_strength_form_has_one_over_de():
 def test_doorway_accepts_pulse_objects_and_validates():
     from ensemblelab.compute.spectroscopy.pulses import GaussianPulse
 
-    w1 = doorway_weights(_worked_table(), pump=GaussianPulse(photon_energy=4.1, fwhm=20.0))
-    w2 = doorway_weights(_worked_table(), photon_energy=4.1, fwhm=20.0)
+    w1 = doorway_table(_worked_table(), pump=GaussianPulse(photon_energy=4.1, fwhm=20.0))
+    w2 = doorway_table(_worked_table(), photon_energy=4.1, fwhm=20.0)
     np.testing.assert_array_equal(w1["weight"], w2["weight"])
     with pytest.raises(SchemaError, match="mu2"):
-        doorway_weights(_worked_table().drop(columns="mu2"), photon_energy=4.1, fwhm=20.0)
+        doorway_table(_worked_table().drop(columns="mu2"), photon_energy=4.1, fwhm=20.0)
     with pytest.raises(SchemaError, match="photon_energy"):
-        doorway_weights(_worked_table(), fwhm=20.0)
+        doorway_table(_worked_table(), fwhm=20.0)
     t = _worked_table()
     before = t.copy()
-    doorway_weights(t, photon_energy=4.1, fwhm=20.0)
+    doorway_table(t, photon_energy=4.1, fwhm=20.0)
     pd.testing.assert_frame_equal(t, before)  # input not modified
 
 
@@ -209,7 +211,7 @@ def test_rejection_sampling_follows_the_weights():
     de = rng.uniform(3.8, 4.4, size=n)
     t = pd.DataFrame({"sample": np.arange(n), "state": 1, "excitation_energy": de, "mu2": 1.0})
     sel = select_initial_conditions(t, photon_energy=4.1, fwhm=20.0, random_state=4)
-    w = doorway_weights(t, photon_energy=4.1, fwhm=20.0)["weight"].to_numpy()
+    w = doorway_table(t, photon_energy=4.1, fwhm=20.0)["weight"].to_numpy()
     p = w / w.max()
     expected = p.sum()
     assert abs(len(sel) - expected) < 5 * np.sqrt(np.sum(p * (1 - p)))
