@@ -27,7 +27,8 @@ import numpy.typing as npt
 import pandas as pd
 
 from ...errors import SchemaError
-from .clustering import ClusterResult, _build_featuriser
+from ._featurise import _build_featuriser
+from .clustering import ClusterResult
 
 if TYPE_CHECKING:
     from ...data.ensemble import Ensemble
