@@ -19,7 +19,7 @@ from ensemblelab.compute.structures.descriptors import (
 )
 from ensemblelab.units import BOHR_ANGSTROM
 
-# method notes section 8 computed independently (not published): water geometry (Angstrom)
+# computed independently (not published): water geometry (Angstrom)
 WATER = np.array([[0, 0, 0.1173], [0, 0.7572, -0.4692], [0, -0.7572, -0.4692]])
 H2 = np.array([[0.0, 0, 0], [0.74, 0, 0]])
 
@@ -196,7 +196,7 @@ def test_width_error_is_clear():
 
 
 def test_coulomb_h2_bohr_and_angstrom():
-    # method notes section 8 computed independently (not published): H2 r = 0.74 A -> (1.2151043,
+    # computed independently (not published): H2 r = 0.74 A -> (1.2151043,
     # -0.2151043) in bohr,
     # (1.8513514, -0.8513514) with r in Angstrom; tol 1e-7
     X = flatten(H2[None])
@@ -208,7 +208,7 @@ def test_coulomb_h2_bohr_and_angstrom():
 
 
 def test_coulomb_water():
-    # method notes section 8 computed independently (not published): eigenvalues 74.050481,
+    # computed independently (not published): eigenvalues 74.050481,
     # 0.315644, 0.150570 (bohr);
     # C_OO = 0.5 * 8^2.4 = 73.516695; tol 1e-6
     F = CoulombEigenvalues(atomic_numbers=[8, 1, 1]).fit_transform(flatten(WATER[None]))
@@ -217,14 +217,14 @@ def test_coulomb_water():
 
 
 def test_sorted_inverse_distances_water():
-    # method notes section 8 computed independently (not published): sorted 1/r = (1.044086,
+    # computed independently (not published): sorted 1/r = (1.044086,
     # 1.044086, 0.660328) 1/A; tol 1e-6
     F = InverseDistances(sort="global").fit_transform(flatten(WATER[None]))
     np.testing.assert_allclose(F[0], [1.044086, 1.044086, 0.660328], atol=1e-6)
 
 
 def test_sorted_descriptors_permutation_invariant():
-    # method notes section 8: any permutation of identical atoms leaves sorted vectors
+    # any permutation of identical atoms leaves sorted vectors
     # unchanged (exact)
     rng = np.random.default_rng(0)
     sym = ["C", "C", "O", "H", "H", "H"]

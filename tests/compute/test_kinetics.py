@@ -26,17 +26,17 @@ from ensemblelab.testing import TOY_TRUTH, make_toy_ensemble
 FWHM_PER_SIGMA = 2 * math.sqrt(2 * math.log(2))  # Gaussian FWHM / sigma, from memory
 
 
-# ------------------------------------------------------------------ IRF convolution (7.2)
+# ------------------------------------------------------------------ IRF convolution
 def test_irf_exp_unit_sigma_tau_at_t0():
-    # method notes 7.5: sigma = tau = 1 at t = t0 -> 0.5 e^0.5 erfc(1/sqrt 2) = 0.2615783 computed
+    # sigma = tau = 1 at t = t0 -> 0.5 e^0.5 erfc(1/sqrt 2) = 0.2615783 computed
     # independently (not published)
     got = float(K.irf_exp(np.array(0.0), 1.0, 1.0))
     assert got == pytest.approx(0.5 * math.exp(0.5) * erfc(1 / math.sqrt(2)), abs=1e-14)
     assert got == pytest.approx(0.2615783, abs=1e-7)
 
 
-def test_irf_exp_method_notes_values_tau100_fwhm50():
-    # method notes 7.5 / 2.4 computed independently (not published): tau = 100 fs, FWHM = 50 fs at t
+def test_irf_exp_values_tau100_fwhm50():
+    # computed independently (not published): tau = 100 fs, FWHM = 50 fs at t
     # = -50, 0, 50, 200 fs
     got = exp_decay([-50.0, 0.0, 50.0, 200.0], tau=100.0, irf_fwhm=50.0)
     np.testing.assert_allclose(got, [0.008646, 0.425407, 0.610385, 0.138421], atol=1e-6)
@@ -49,7 +49,7 @@ def test_irf_exp_against_quadrature_and_discrete_convolution():
     closed = exp_decay(ts, tau=tau, irf_fwhm=fwhm)
     quad = [R.irf_exp_quad(t, tau, sigma) for t in ts]  # scipy.integrate.quad
     np.testing.assert_allclose(closed, quad, rtol=1e-9, atol=1e-13)
-    # scipy.signal.fftconvolve on a fine grid (dt = 0.01 fs): method notes 2.4 discrete tol 5e-4
+    # scipy.signal.fftconvolve on a fine grid (dt = 0.01 fs): discrete tol 5e-4
     dt = 0.01
     grid = np.arange(-200.0, 400.0 + dt / 2, dt)
     f = np.where(grid >= 0, np.exp(-np.clip(grid, 0, None) / tau), 0.0)
@@ -75,7 +75,7 @@ def test_irf_exp_no_overflow_for_extreme_arguments():
 
 
 def test_irf_step_half_at_time_zero():
-    # method notes 2.4: unit step convolved (any sigma) at 0 -> 0.5 derived and computed
+    # unit step convolved (any sigma) at 0 -> 0.5 derived and computed
     # independently (not published)
     assert float(K.irf_step(np.array(0.0), 7.3)) == pytest.approx(0.5, abs=1e-12)
 
@@ -93,8 +93,8 @@ def test_irf_texp_matches_quadrature():
 
 
 # ------------------------------------------------------------------ sequential model
-def test_sequential_method_notes_values():
-    # method notes 7.5 computed independently (not published): tau1 = 50, tau2 = 200 fs; t* =
+def test_sequential_values():
+    # computed independently (not published): tau1 = 50, tau2 = 200 fs; t* =
     # 92.41962 fs, B_max = 4^(-1/3)
     tmax, bmax = sequential_maximum(50.0, 200.0)
     assert tmax == pytest.approx(92.41962, abs=1e-5)
@@ -108,7 +108,7 @@ def test_sequential_method_notes_values():
 
 
 def test_sequential_equal_rates_and_against_ode():
-    # k1 = k2: B = k t e^{-k t}, maximum 1/e at t = tau (method notes 7.2, from memory)
+    # k1 = k2: B = k t e^{-k t}, maximum 1/e at t = tau (from memory)
     t = np.array([0.0, 40.0, 80.0, 200.0])
     abc = sequential(t, tau1=80.0, tau2=80.0)
     np.testing.assert_allclose(abc[:, 1], t / 80.0 * np.exp(-t / 80.0), atol=1e-14)
@@ -154,7 +154,7 @@ def test_fit_kinetics_recovers_noiseless_curves_exactly():
     res = fit_kinetics(frame, scheme="sequential", states=(2, 1, 0), interval="covariance")
     assert res.params["tau1"] == pytest.approx(50.0, rel=1e-7)
     assert res.params["tau2"] == pytest.approx(200.0, rel=1e-7)
-    assert res.params["t_max_B"] == pytest.approx(92.41962, abs=1e-4)  # method notes 7.5
+    assert res.params["t_max_B"] == pytest.approx(92.41962, abs=1e-4)  # computed independently
     assert "covariance" in res.interval_method
     par = parallel(t, tau=80.0, branching=0.3)
     frame2 = frame.assign(population=par.ravel())

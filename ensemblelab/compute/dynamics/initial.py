@@ -146,8 +146,8 @@ def select_initial_conditions(
     method : {"rejection", "weights"}
         ``"rejection"``: accept pair (n, i) if ``xi < w_ni / w_max`` (xi uniform);
         accepted pairs get weight 1. ``"weights"``: keep every pair with
-        ``w_ni > epsilon * w_max`` and carry ``w_ni / w_max`` as its weight (method
-        notes section 1.2; epsilon = 1e-3 is common practice).
+        ``w_ni > epsilon * w_max`` and carry ``w_ni / w_max`` as its weight
+        (epsilon = 1e-3 is common practice).
     epsilon : float
         Threshold of the weights method.
     n_select : int, optional

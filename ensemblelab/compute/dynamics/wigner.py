@@ -357,7 +357,7 @@ def sample_wigner_from_hessian(
 
     Imaginary modes and modes softer than `soft_threshold` are not sampled; they
     are listed in ``WignerSample.soft_modes`` and reported by a NumericalWarning
-    (common practice: exclude them, method notes section 5).
+    (common practice: exclude them).
 
     Parameters
     ----------

@@ -48,7 +48,7 @@ Z_95 = 1.959963984540054  # two-sided 95 % normal quantile (scipy.stats.norm.ppf
 
 def wilson_interval(p: npt.ArrayLike, n: npt.ArrayLike, *, z: float = Z_95
                     ) -> tuple[np.ndarray, np.ndarray]:
-    """Wilson score interval for a fraction `p` out of `n` (method notes eq. 7.1).
+    """Wilson score interval for a fraction `p` out of `n` (J. Amer. Stat. Assoc. 22, 209 (1927)).
 
     For weighted data pass the weighted fraction and the Kish effective size.
 

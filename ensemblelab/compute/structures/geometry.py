@@ -4,7 +4,7 @@ All functions work on arrays of shape (n_frames, n_atoms, 3) in Angstrom and are
 vectorised over frames (batched SVD / einsum), processed in chunks so memory
 stays bounded. :func:`align_ensemble` applies them to an :class:`~ensemblelab.Ensemble`.
 
-Methods (see the method notes, section 8): Kabsch [Acta Cryst. A32, 922 (1976);
+Methods: Kabsch [Acta Cryst. A32, 922 (1976);
 correction A34, 827 (1978)] and the quaternion characteristic polynomial (QCP)
 [Acta Cryst. A61, 478 (2005), "Rapid calculation of RMSDs using a quaternion-based
 characteristic polynomial"]. Both exclude reflections unless ``allow_reflection=True``.
