@@ -246,23 +246,23 @@ def validate_fields(raw: Mapping[str, Any]) -> dict[str, Any]:
     trajs["t_end"] = time[last] if n else np.zeros(0)
     cols = ["traj", "weight", "initial_state", "n_steps", "t_end"]
     trajs = trajs[cols + [c for c in trajs.columns if c not in cols]]
-    for name, arr in traj_arrays.items():
-        if arr is None:
+    for name, tarr in traj_arrays.items():
+        if tarr is None:
             continue
-        if arr.shape[0] != len(ids):
+        if tarr.shape[0] != len(ids):
             if missing_rows.any():
                 raise SchemaError(
-                    f"{name} has {arr.shape[0]} rows but the trajectories table does not "
+                    f"{name} has {tarr.shape[0]} rows but the trajectories table does not "
                     f"cover all {len(ids)} trajectories."
                 )
             raise SchemaError(
-                f"{name} must have n_trajectories={len(ids)} rows; got shape {arr.shape}."
+                f"{name} must have n_trajectories={len(ids)} rows; got shape {tarr.shape}."
             )
         want = (len(ids), n_states) if name != "transition_dipoles" else (len(ids), n_states, 3)
-        if arr.shape != want:
-            raise SchemaError(f"{name} must have shape {want}; got {arr.shape}.")
-        arr.setflags(write=False)
-        out[name] = arr
+        if tarr.shape != want:
+            raise SchemaError(f"{name} must have shape {want}; got {tarr.shape}.")
+        tarr.setflags(write=False)
+        out[name] = tarr
 
     state_labels = tuple(raw["state_labels"]) or tuple(f"S{i}" for i in range(n_states))
     if len(state_labels) != n_states:
@@ -282,7 +282,7 @@ def validate_fields(raw: Mapping[str, Any]) -> dict[str, Any]:
     meta.setdefault("schema_version", SCHEMA_VERSION)
     meta.setdefault("sources", [])
 
-    frame.flags.allows_duplicate_labels = True
+    frame.flags.allows_duplicate_labels = True  # type: ignore[attr-defined]
     out["snapshots"] = frame
     out["trajectories"] = trajs.reset_index(drop=True)
     out["geometries"] = geoms

@@ -316,7 +316,7 @@ class Ensemble:
             raise TypeError("select() takes a boolean mask or trajectory ids, never a string.")
         if isinstance(mask, pd.Series):
             mask = mask.to_numpy()
-        arr = np.asarray(list(mask) if not isinstance(mask, np.ndarray) else mask)
+        arr = np.asarray(mask if isinstance(mask, np.ndarray) else list(mask))  # type: ignore[arg-type]
         if arr.dtype == bool:
             if arr.shape != (self.n_snapshots,):
                 raise SchemaError(

@@ -104,8 +104,9 @@ class DemoScenario:
 
     def perturbed(self, **changes: Any) -> DemoScenario:
         """A copy with some parameters changed (``dataclasses.replace``)."""
-        return dataclasses.replace(self, **{k: _t(v) if isinstance(v, (list, tuple)) else v
-                                            for k, v in changes.items()})
+        new: dict[str, Any] = {k: _t(v) if isinstance(v, (list, tuple)) else v
+                               for k, v in changes.items()}
+        return dataclasses.replace(self, **new)
 
     def as_dict(self) -> dict[str, Any]:
         """Plain-JSON view of the parameters (for metadata)."""

@@ -92,6 +92,7 @@ def plot_components(m: TRPESMap, *, labels: Sequence[str] | None = None, ncols: 
             ax.set_ylabel("delay (fs)")
         if i // ncols == nrows - 1:
             ax.set_xlabel("kinetic energy (eV)")
+    assert mesh is not None
     fig.colorbar(mesh, ax=axes, label="intensity (eV$^{-1}$), shared scale")
     return fig
 

@@ -105,7 +105,7 @@ def doorway_table(
     out = table.loc[table["state"] != 0].copy().reset_index(drop=True)
     de = out["excitation_energy"].to_numpy(float)
     if "mu2" in out.columns:
-        mu2 = out["mu2"].to_numpy(float)
+        mu2: np.ndarray = out["mu2"].to_numpy(float)
     elif "oscillator_strength" in out.columns:
         if np.any(de <= 0):
             raise SchemaError("excitation_energy must be > 0 eV to convert oscillator strengths.")
@@ -229,6 +229,7 @@ def write_initial_conditions(
     buf = io.StringIO()
     fmt = f"{{:.{precision}f}}"
     n_atoms = len(sample.symbols)
+    row: Any
     for row in selection.itertuples(index=False):
         n = int(row.sample)
         extra = [f"sample={n}", f"state={int(row.state)}",

@@ -234,7 +234,7 @@ def sample_wigner(
         )
     if symbols is None and masses is None:
         raise SchemaError("pass symbols or masses (amu) of the atoms.")
-    m_amu = masses_for(list(symbols)) if masses is None else np.asarray(masses, dtype=float)
+    m_amu = masses_for(list(symbols or ())) if masses is None else np.asarray(masses, dtype=float)
     if m_amu.shape != (n_atoms,):
         raise SchemaError(f"masses must have shape (n_atoms={n_atoms},); got {m_amu.shape}.")
     symbols_t = tuple(symbols) if symbols is not None else tuple("X" * n_atoms)
@@ -329,7 +329,7 @@ def normal_modes_from_hessian(
         )
     if symbols is None and masses is None:
         raise SchemaError("pass symbols or masses (amu) of the atoms.")
-    m_amu = masses_for(list(symbols)) if masses is None else np.asarray(masses, dtype=float)
+    m_amu = masses_for(list(symbols or ())) if masses is None else np.asarray(masses, dtype=float)
     m3 = np.repeat(m_amu * AMU_ME, 3)
     hmw = 0.5 * (h + h.T) / np.sqrt(np.outer(m3, m3))
     rigid = _rigid_basis(x_eq / BOHR_ANGSTROM, m3)

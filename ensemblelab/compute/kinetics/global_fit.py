@@ -179,6 +179,7 @@ class GlobalFitResult:
                  f"{int(round(self.ci * 100))}% intervals: {self.interval_method}",
                  f"rms residual {self.rmse:.3g} on {self.delays.size} delays x "
                  f"{self.energies.size} energies"]
+        r: Any
         for r in self.summary.itertuples():
             iv = "fixed" if r.fixed else ("-" if not np.isfinite(r.lower)
                                           else f"[{r.lower:.4g}, {r.upper:.4g}]")
@@ -417,7 +418,7 @@ def fit_global(
     elif x.size and interval == "bootstrap":
         rng = np.random.default_rng(random_state)
         fit_map = y @ das
-        vals = []
+        refits: list[np.ndarray] = []
         for _ in range(int(n_boot)):
             rows = rng.integers(0, d.size, size=d.size)
             s_b = fit_map + r[rows]
@@ -430,9 +431,9 @@ def fit_global(
 
             sol = least_squares(resid_b, x, method="trf", xtol=1e-10, ftol=1e-10, gtol=1e-10)
             tb, sg, t_z = unpack(sol.x)
-            vals.append(np.r_[np.sort(tb), [sg * _FWHM_PER_SIGMA] if fit_sigma else [],
+            refits.append(np.r_[np.sort(tb), [sg * _FWHM_PER_SIGMA] if fit_sigma else [],
                               [t_z] if not fix_t0 else []])
-        vals = np.asarray(vals)
+        vals = np.asarray(refits)
         lo, hi = np.quantile(vals, [alpha, 1 - alpha], axis=0)
         method = (f"bootstrap ({int(n_boot)} refits; residual rows resampled with replacement, "
                   "percentile)")

@@ -21,7 +21,7 @@ from __future__ import annotations
 import html
 import math
 import warnings
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, Any
 
@@ -132,6 +132,7 @@ class KineticsResult:
                  f"{int(round(self.ci * 100))}% intervals: {self.interval_method}",
                  f"rms residual {self.rmse:.3g}"]
         rows = [("parameter", "value", "interval", "unit")]
+        r: Any
         for r in self.summary.itertuples():
             iv = "fixed" if r.fixed else (
                 "-" if not np.isfinite(r.lower) else f"[{r.lower:.4g}, {r.upper:.4g}]")
@@ -228,7 +229,7 @@ def _starts(scheme: str, t: np.ndarray, y: np.ndarray, t0: float, latency: bool,
     return [{"tau": tau * f, "branching": phi} for f in (0.5, 1.0, 2.0)]
 
 
-def _derived(scheme: str, p: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
+def _derived(scheme: str, p: Mapping[str, Any]) -> dict[str, np.ndarray]:
     if scheme == "parallel":
         with np.errstate(divide="ignore"):
             return {"tau_B": p["tau"] / p["branching"], "tau_C": p["tau"] / (1 - p["branching"])}
@@ -354,13 +355,14 @@ def fit_kinetics(
         series = {s: mean[:, s] for s in range(mean.shape[1])}
         labels = dict(enumerate(arrays.labels))
     else:
+        assert frame is not None
         t_all, series, labels = _pivot(frame)
     if interval == "bootstrap" and arrays is None:
         raise SchemaError("fit_kinetics(interval='bootstrap') resamples trajectories, so it "
                           "needs the ensemble: pass it as data or as ens=. Hint: "
                           "interval='covariance' gives (too narrow) intervals from a frame "
                           "alone, interval=None none.")
-    sel = np.ones(t_all.size, dtype=bool)
+    sel: np.ndarray = np.ones(t_all.size, dtype=bool)
     if time_range is not None:
         sel = (t_all >= time_range[0]) & (t_all <= time_range[1])
     sel &= t_all >= (t0 if irf_fwhm is None else -np.inf)
@@ -464,14 +466,14 @@ def fit_kinetics(
     else:
         method = "none"
 
-    rows = []
+    rows: list[tuple[str, float, float, float, str, bool]] = []
     for name in spec.params:
         if name in fixed:
             rows.append((name, fixed[name], math.nan, math.nan, _UNIT[name], True))
         else:
             rows.append((name, nat[name], lower[name], upper[name], _UNIT[name], False))
-    for name, v in derived.items():
-        rows.append((name, v, lower[name], upper[name], _UNIT[name], False))
+    for name, dv in derived.items():
+        rows.append((name, dv, lower[name], upper[name], _UNIT[name], False))
     summary = pd.DataFrame(rows, columns=["parameter", "value", "lower", "upper", "unit",
                                           "fixed"])
     roles = spec.roles[: len(st)]

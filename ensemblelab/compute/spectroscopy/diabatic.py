@@ -25,6 +25,7 @@ from __future__ import annotations
 import math
 import warnings
 from dataclasses import dataclass
+from typing import cast
 
 import numpy as np
 import numpy.typing as npt
@@ -307,7 +308,7 @@ def ensemble_adt(ens: Ensemble, *, kind: str = "step",
                           "matrices instead.")
     o = ens.overlaps
     if kind == "reference":
-        return loewdin(o, warn_below=warn_below)
+        return cast(np.ndarray, loewdin(o, warn_below=warn_below))
     if kind != "step":
         raise SchemaError(f"The 'kind' parameter must be 'step', 'reference' or 'boys'. Got "
                           f"{kind!r}.")

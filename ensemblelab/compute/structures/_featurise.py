@@ -5,7 +5,7 @@ from __future__ import annotations
 
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING, Any, TypeAlias
 
 import numpy as np
 import numpy.typing as npt
@@ -20,7 +20,7 @@ if TYPE_CHECKING:
 
 __all__ = ["FeaturesLike", "make_featuriser"]
 
-FeaturesLike = str | TransformerMixin | npt.ArrayLike | Sequence[str]
+FeaturesLike: TypeAlias = str | TransformerMixin | npt.ArrayLike | Sequence[str]
 
 
 # ---------------------------------------------------------------------- featurisation
@@ -101,6 +101,7 @@ class _Featuriser:
     def __call__(self, rows: np.ndarray) -> np.ndarray:
         F = np.asarray(self.transformer.transform(self.source(rows)), dtype=np.float64)
         if self.standardise:
+            assert self.mean_ is not None and self.scale_ is not None
             F = (F - self.mean_) / self.scale_
         return F
 
@@ -110,7 +111,7 @@ def _build_featuriser(ens: Ensemble, features: FeaturesLike, standardise: bool,
     G = ens.geometries if geometries is None else geometries
     n = G.shape[0]
     if isinstance(features, str) or isinstance(features, TransformerMixin):
-        tr = make_featuriser(features, ens.symbols, ens.masses)  # type: ignore[arg-type]
+        tr = make_featuriser(features, ens.symbols, ens.masses)
 
         def source(rows: np.ndarray) -> np.ndarray:
             return G[rows].reshape(len(rows), -1)
@@ -128,9 +129,9 @@ def _build_featuriser(ens: Ensemble, features: FeaturesLike, standardise: bool,
         fz = _Featuriser(lambda rows: arr[rows], _ColumnFeatures(), standardise)
         fz.names = list(features)
         return fz
-    arr = np.asarray(features, dtype=np.float64)
-    if arr.ndim != 2 or arr.shape[0] != n:
+    arr2: np.ndarray = np.asarray(features, dtype=np.float64)
+    if arr2.ndim != 2 or arr2.shape[0] != n:
         raise SchemaError(
-            f"a features array must have shape (n_rows={n}, n_features); got {arr.shape}."
+            f"a features array must have shape (n_rows={n}, n_features); got {arr2.shape}."
         )
-    return _Featuriser(lambda rows: arr[rows], _ColumnFeatures(), standardise)
+    return _Featuriser(lambda rows: arr2[rows], _ColumnFeatures(), standardise)

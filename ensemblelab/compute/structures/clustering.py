@@ -102,7 +102,7 @@ def _fit_group(rows: np.ndarray, fz: _Featuriser, est: BaseEstimator, k: int,
         return np.zeros(0, np.int64), None
     if n < 2:
         return np.zeros(n, np.int64), None
-    fit_pos = np.arange(n)
+    fit_pos: np.ndarray = np.arange(n)
     if n > max_fit:
         fit_pos = np.sort(rng.choice(n, size=max_fit, replace=False))
     Ffit = fz(rows[fit_pos])
@@ -342,7 +342,7 @@ def cluster_snapshots(
         raise SchemaError(f"max_fit_samples must be >= 2; got {max_fit_samples}.")
     rng = np.random.default_rng(random_state)
     fz = _build_featuriser(ens, features, standardise)
-    fit_rows = np.arange(n)
+    fit_rows: np.ndarray = np.arange(n)
     if n > max_fit_samples:
         fit_rows = np.sort(rng.choice(n, size=max_fit_samples, replace=False))
     fz.fit(fit_rows)
@@ -376,7 +376,7 @@ def cluster_snapshots(
         local, _ = _fit_group(rows, fz, est, k, max_fit_samples, chunk_size, rng, assign)
         prefix = f"{ens.state_labels[state]}:" if state >= 0 else ""
         # silhouette and medoids on a subsample of the group
-        sub = np.arange(len(rows))
+        sub: np.ndarray = np.arange(len(rows))
         if len(sub) > silhouette_samples:
             sub = np.sort(rng.choice(len(rows), size=silhouette_samples, replace=False))
         Fsub = fz(rows[sub])
@@ -402,6 +402,7 @@ def cluster_snapshots(
             for s in range(0, len(members), chunk_size):
                 Fm = fz(members[s:s + chunk_size])
                 acc = Fm.sum(0) if acc is None or acc.shape != Fm.shape[1:] else acc + Fm.sum(0)
+            assert acc is not None
             mean_rows.append(pd.Series(acc / len(members), name=name))
             rows_summary.append({
                 "cluster": name, "code": this_code, "state": state, "size": len(members),
@@ -418,8 +419,8 @@ def cluster_snapshots(
     sw = weights
     n_eff = sw.sum() ** 2 / np.sum(sw**2) if np.sum(sw**2) > 0 else n
     lo, hi = wilson_interval(summary["fraction"].to_numpy(), np.full(len(summary), n_eff))
-    summary.insert(summary.columns.get_loc("fraction") + 1, "lower", lo)
-    summary.insert(summary.columns.get_loc("lower") + 1, "upper", hi)
+    summary.insert(list(summary.columns).index("fraction") + 1, "lower", lo)
+    summary.insert(list(summary.columns).index("lower") + 1, "upper", hi)
     mean_features = pd.DataFrame(mean_rows)
     if fz.names and mean_features.shape[1] == len(fz.names):
         mean_features.columns = fz.names
@@ -529,6 +530,6 @@ def cluster_hops(
         })
     counts = pd.DataFrame(rows_out)
     lo, hi = wilson_interval(counts["fraction"].to_numpy(), np.full(len(counts), n_eff))
-    counts.insert(counts.columns.get_loc("fraction") + 1, "lower", lo)
-    counts.insert(counts.columns.get_loc("lower") + 1, "upper", hi)
+    counts.insert(list(counts.columns).index("fraction") + 1, "lower", lo)
+    counts.insert(list(counts.columns).index("lower") + 1, "upper", hi)
     return HopClusterResult(hops=hops, geometries=G, counts=counts, labels=labels.astype(str))

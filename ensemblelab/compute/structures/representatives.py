@@ -150,7 +150,7 @@ def _select(
         fit_rows = np.flatnonzero(finite)
         if fit_rows.size > 20000:
             fit_rows = np.sort(rng.choice(fit_rows, 20000, replace=False))
-        fz = _build_featuriser(ens, features, True).fit(fit_rows)  # type: ignore[arg-type]
+        fz = _build_featuriser(ens, features, True).fit(fit_rows)
     kinds = ["medoid", "mode"] if kind == "both" else [kind]
     recs = []
     picked = []
