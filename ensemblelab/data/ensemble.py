@@ -68,7 +68,9 @@ class Ensemble:
         One row per (trajectory, step): ``snapshot`` (stable id, survives
         slicing), ``traj``, ``step``, ``time`` (fs), ``active`` (0-based neutral
         state), plus optional scalars such as ``e_kin``, ``e_tot`` (eV) and any
-        user columns.
+        user columns. Every access returns a shallow copy-on-write copy (cheap: the
+        column buffers are shared and read-only), so writing into it never changes
+        the ensemble; the same holds for :attr:`trajectories`.
     geometries : ndarray, shape (n_snapshots, n_atoms, 3)
         Cartesian coordinates in Angstrom.
     energies : ndarray, shape (n_snapshots, n_states)
