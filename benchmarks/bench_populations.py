@@ -55,7 +55,8 @@ def run(n_traj: int = 1000, n_steps: int = 2000, n_boot: int = 1000, n_loop: int
     out["populations_bootstrap_s"] = time.perf_counter() - t0
 
     t0 = time.perf_counter()
-    res = fit_kinetics(ens, model="sequential", states=(2, 1, 0), n_boot=n_boot,
+    res = fit_kinetics(ens, scheme="sequential", states=(2, 1, 0), interval="bootstrap",
+                       n_boot=n_boot,
                        random_state=0)
     out["fit_with_bootstrap_s"] = time.perf_counter() - t0
     out["fit_tau1"], out["fit_tau2"] = res.params["tau1"], res.params["tau2"]

@@ -41,6 +41,7 @@ def declared_names(package: str) -> list[str]:
         targets = node.targets if isinstance(node, ast.Assign) else (
             [node.target] if isinstance(node, ast.AnnAssign) else [])
         if any(isinstance(t, ast.Name) and t.id == "__all__" for t in targets):
+            assert isinstance(node, ast.Assign | ast.AnnAssign) and node.value is not None
             value = ast.literal_eval(node.value)  # a literal list by convention
             return [str(v) for v in value]
     raise ImportError(f"{init} declares no literal __all__")

@@ -359,8 +359,8 @@ def build_report(
     """
     from .compute.kinetics.populations import populations
     from .compute.kinetics.rates import fit_kinetics
-    from .compute.spectroscopy.pulses import GaussianPulse
     from .compute.spectroscopy import compute_trpes
+    from .compute.spectroscopy.pulses import GaussianPulse
     from .compute.structures.clustering import cluster_snapshots
     from .compute.structures.outliers import flag_trajectories
     from .compute.structures.representatives import cluster_representatives
@@ -468,21 +468,22 @@ def build_report(
                 pop = populations(clean, ci=CI)
                 _csv(pop, tmp / "tables" / "populations.csv")
                 fits = []
-                boot = {"n_boot": n_boot} if n_boot > 0 else {"n_boot": 0}
+                boot: dict[str, Any] = ({"interval": "bootstrap", "n_boot": n_boot}
+                                        if n_boot > 0 else {"interval": "covariance"})
                 try:
-                    fits.append(fit_kinetics(clean, model="single", ci=CI, **boot))
+                    fits.append(fit_kinetics(clean, scheme="single", ci=CI, **boot))
                 except (ValueError, ArithmeticError, RuntimeError) as exc:
                     notes.append(f"single-exponential fit failed: {exc}")
                 seq = _sequential_states(pop)
                 if seq is not None:
                     try:
-                        fits.append(fit_kinetics(clean, model="sequential", states=seq,
+                        fits.append(fit_kinetics(clean, scheme="sequential", states=seq,
                                                  ci=CI, **boot))
                     except (ValueError, ArithmeticError, RuntimeError) as exc:
                         notes.append(f"sequential fit failed: {exc}")
                 shown_fit = fits[0] if fits else None  # the first scheme that fitted
                 _png(plot_populations(pop, fit=shown_fit), tmp / "figures" / "populations.png")
-                method = str(pop.attrs.get("method", "wilson"))
+                method = str(pop.attrs.get("interval", "wilson"))
                 pop_iv = _interval_text(float(pop.attrs.get("ci", CI)),
                                         "Wilson score intervals (Kish effective size)"
                                         if method == "wilson" else f"{method} intervals")

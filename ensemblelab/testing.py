@@ -36,7 +36,7 @@ def make_toy_ensemble(
     from an exponential distribution with lifetime `tau`; it stays on S1. There
     is one cation state D0 with vertical ionisation energies IP(S2) = 3.5 eV,
     IP(S1) = 4.5 eV and squared Dyson norms 0.9 (S2) and 0.8 (S1), the
-    end-to-end check of the method notes (section 1.7).
+    end-to-end check of the doorway-window map (analytic in the limit of many trajectories).
 
     Parameters
     ----------

@@ -12,6 +12,8 @@ if ! command -v chromium >/dev/null 2>&1; then
   fi
 fi
 .venv/bin/python -m ruff check ensemblelab tests benchmarks
+# static types of the package ([tool.mypy] in pyproject.toml, with pandas-stubs)
+.venv/bin/python -m mypy
 set +e
 .venv/bin/python -m pytest "$@"
 status=$?

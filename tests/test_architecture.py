@@ -7,6 +7,7 @@ After the lazy-import test pattern of a well-known labelled-array library
 from __future__ import annotations
 
 import ast
+import re
 import subprocess
 import sys
 from pathlib import Path
@@ -34,7 +35,8 @@ def test_import_does_not_pull_widget_stack(module):
     assert out.stdout.strip() == "", f"importing {module} imported {out.stdout.strip()}"
 
 
-def _imports(path: Path) -> list[str]:
+def _imports(path: Path, package: Path = PACKAGE) -> list[str]:
+    """Absolute names imported by `path`, a file inside the `package` folder."""
     tree = ast.parse(path.read_text(), filename=str(path))
     names = []
     for node in ast.walk(tree):
@@ -42,7 +44,7 @@ def _imports(path: Path) -> list[str]:
             names += [a.name for a in node.names]
         elif isinstance(node, ast.ImportFrom):
             if node.level:  # relative: resolve against the file's package
-                pkg = path.relative_to(PACKAGE.parent).with_suffix("").parts[: -node.level]
+                pkg = path.relative_to(package.parent).with_suffix("").parts[: -node.level]
                 base = ".".join(pkg)
                 names.append(f"{base}.{node.module}" if node.module else base)
             else:
@@ -60,25 +62,32 @@ FORBIDDEN = {
 }
 
 
+def _upward_imports(package: Path, layer: str) -> list[str]:
+    offenders = []
+    for path in sorted((package / layer).rglob("*.py")):
+        for name in _imports(path, package):
+            if any(name == bad or name.startswith(bad + ".") for bad in FORBIDDEN[layer]):
+                offenders.append(f"{path.relative_to(package)} imports {name}")
+    return offenders
+
+
 @pytest.mark.parametrize("layer", sorted(FORBIDDEN))
 def test_layer_never_imports_upwards(layer):
-    offenders = []
-    for path in sorted((PACKAGE / layer).rglob("*.py")):
-        for name in _imports(path):
-            if any(name == bad or name.startswith(bad + ".") for bad in FORBIDDEN[layer]):
-                offenders.append(f"{path.relative_to(PACKAGE)} imports {name}")
+    offenders = _upward_imports(PACKAGE, layer)
     assert not offenders, "\n".join(offenders)
 
 
 def test_architecture_scan_can_fail(tmp_path):
-    # the scanner itself must see a forbidden import (guards against a vacuous pass)
-    fake = PACKAGE / "compute" / "_arch_probe_tmp.py"
-    fake.write_text("import bqplot\n")
-    try:
-        names = _imports(fake)
-    finally:
-        fake.unlink()
-    assert "bqplot" in names
+    # the scanner itself must see forbidden imports, absolute and relative (guards against a
+    # vacuous pass); the probe package lives in tmp_path, never in the package tree
+    fake_pkg = tmp_path / "ensemblelab"
+    (fake_pkg / "compute" / "kinetics").mkdir(parents=True)
+    (fake_pkg / "compute" / "_probe.py").write_text("import bqplot\n")
+    (fake_pkg / "compute" / "kinetics" / "_probe.py").write_text(
+        "from ...widgets import explorer\n")
+    offenders = _upward_imports(fake_pkg, "compute")
+    assert offenders == ["compute/_probe.py imports bqplot",
+                         "compute/kinetics/_probe.py imports ensemblelab.widgets"]
 
 
 def test_no_pickle_or_eval_in_package():
@@ -105,3 +114,40 @@ def test_public_api_resolves():
     for mod in (ensemblelab, ensemblelab.compute):
         for name in mod.__all__:
             assert getattr(mod, name) is not None, name
+
+
+# Files still citing the unpublished method document: other engineers are replacing those
+# citations concurrently; the lead empties this set after merging their branches.
+NOT_YET = {
+    "ensemblelab/compute/kinetics/populations.py",
+    "ensemblelab/compute/spectroscopy/spectra.py",
+    "ensemblelab/compute/structures/outliers.py",
+    "tests/compute/test_outliers.py",
+    "tests/compute/test_populations.py",
+    "tests/compute/test_trpes.py",
+    "tests/compute/test_trpes_fixtures.py",
+    "tests/compute/test_trpes_kernels.py",
+    "tests/compute/test_trpes_paths.py",
+    "tests/io/test_xyz.py",
+    "tests/test_cli.py",
+    "tests/widgets/test_explorer.py",
+    "tests/widgets/test_map_view.py",
+}
+_PHRASE = "method " + "notes"  # split so that this file does not match itself
+
+
+def test_no_citation_of_documents_outside_the_repository():
+    root = PACKAGE.parent
+    offenders = []
+    for folder in ("ensemblelab", "tests", "benchmarks"):
+        for path in sorted((root / folder).rglob("*")):
+            if path.suffix not in (".py", ".md", ".txt", ".toml", ".cfg") or not path.is_file():
+                continue
+            rel = path.relative_to(root).as_posix()
+            if rel in NOT_YET:
+                continue
+            text = path.read_text(encoding="utf-8", errors="replace").lower()
+            text = re.sub(r"[\s#]+", " ", text)  # a phrase wrapped over comment lines too
+            if any(_PHRASE.replace(" ", sep) in text for sep in " -_"):
+                offenders.append(rel)
+    assert not offenders, f"cite the published source instead in: {offenders}"

@@ -36,13 +36,13 @@ def global_result():
                      np.exp(-((e - 0.6) / 0.2) ** 2)])
     s = decay_profiles(d, [40.0, 150.0], irf_fwhm=40.0) @ das
     return fit_global(energies=e, delays=d, intensity=s, n_components=2, irf_fwhm=40.0,
-                      model="sequential")
+                      scheme="sequential")
 
 
 def test_plot_populations_bands_and_fit(tmp_path):
     ens = make_toy_ensemble(60, seed=2)
     pop = populations(ens)
-    fit = fit_kinetics(ens, n_boot=50)
+    fit = fit_kinetics(ens, interval="bootstrap", n_boot=50)
     fig = plot_populations(pop, fit=fit)
     ax = fig.axes[0]
     bands = [c for c in ax.collections if isinstance(c, PolyCollection)]

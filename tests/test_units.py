@@ -1,8 +1,8 @@
 """Unit constants and conversion factors of ensemblelab.units.
 
-Reference: CODATA 2022 via scipy.constants (compared at rel 1e-12), and the literal
-values of method-notes section 9 (CODATA 2022 via scipy 1.17.1, computed independently
-(not published); valid for CODATA 2018 too at rel 1e-8).
+Reference: CODATA 2022 via scipy.constants (compared at rel 1e-12), and literal
+values (CODATA 2022 via scipy 1.17.1, computed independently (not published); valid for
+CODATA 2018 too at rel 1e-8).
 """
 
 from __future__ import annotations
@@ -37,7 +37,7 @@ def test_units_constants_match_scipy_codata(value, reference):
 @pytest.mark.parametrize(
     ("value", "literal"),
     [
-        # method-notes section 9 literals, CODATA 2022 via scipy.constants
+        # literals, CODATA 2022 via scipy.constants (computed independently, not published)
         (units.HBAR_EV_FS, 0.6582119569509),
         (units.HARTREE_EV, 27.211386245981),
         (units.BOHR_ANGSTROM, 0.529177210544),
@@ -51,13 +51,13 @@ def test_units_constants_match_scipy_codata(value, reference):
         (units.FOUR_LN2 * units.HBAR_EV_FS, 1.8249510),
     ],
 )
-def test_units_constants_match_method_notes_literals(value, literal):
+def test_units_constants_match_codata_2022_literals(value, literal):
     assert value == pytest.approx(literal, rel=1e-8 if literal != 1.8249510 else 1e-7)
 
 
 def test_units_amu_in_electron_masses():
     # CODATA 2022 via scipy.constants: m_u/m_e and 1/(m_e in u) differ by ~2.5e-12 relative
-    # because of rounding in the tabulated values (method-notes section 9), so rel 1e-11
+    # because of rounding in the tabulated values, so rel 1e-11
     assert units.AMU_ME == pytest.approx(1.0 / PC["electron mass in u"][0], rel=1e-11)
     assert units.AMU_ME == pytest.approx(PC["proton-electron mass ratio"][0]
                                          / PC["proton mass in u"][0], rel=1e-11)
@@ -73,16 +73,16 @@ def test_units_energy_factors():
     # 1 eV = 96.485... kJ/mol (Faraday constant / 1000, CODATA 2022 via scipy.constants)
     assert 1 / units.energy_factor("kJ/mol") == pytest.approx(sc.physical_constants[
         "Faraday constant"][0] / 1e3, rel=1e-12)
-    # 1 hartree = 219474.63136314 cm-1 (method-notes section 9)
+    # 1 hartree = 219474.63136314 cm-1 (CODATA 2022 via scipy.constants)
     assert units.HARTREE_EV / units.energy_factor("cm-1") == pytest.approx(219474.63136314,
                                                                            rel=1e-8)
 
 
 def test_units_time_and_length_factors():
     assert units.time_factor("ps") == 1000.0 and units.time_factor("as") == 1e-3
-    assert units.time_factor("au") == pytest.approx(0.024188843265864, rel=1e-8)  # section 9
+    assert units.time_factor("au") == pytest.approx(0.024188843265864, rel=1e-8)  # CODATA 2022
     assert units.length_factor("nm") == 10.0 and units.length_factor("pm") == 0.01
-    assert units.length_factor("bohr") == pytest.approx(0.529177210544, rel=1e-8)  # section 9
+    assert units.length_factor("bohr") == pytest.approx(0.529177210544, rel=1e-8)  # CODATA 2022
 
 
 @pytest.mark.parametrize("func", [units.energy_factor, units.time_factor, units.length_factor])

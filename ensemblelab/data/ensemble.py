@@ -17,56 +17,39 @@ import numpy.typing as npt
 import pandas as pd
 
 from ..errors import SchemaError
-from .elements import masses_for
+from ._construct import fields_from_arrays
+from ._schema import (
+    REQUIRED_COLUMNS,
+    SCHEMA_VERSION,
+    SNAPSHOT_ARRAYS,
+    TRAJECTORY_ARRAYS,
+    validate_fields,
+)
 
 __all__ = ["Ensemble", "SCHEMA_VERSION", "SNAPSHOT_ARRAYS", "TRAJECTORY_ARRAYS", "REQUIRED_COLUMNS"]
 
-#: version of the data model (and of the native store written from it)
-SCHEMA_VERSION = 1
+class _ReadOnlyFrame:
+    """A data descriptor for the frame fields of :class:`Ensemble`.
 
-#: columns every snapshot frame has, in this order
-REQUIRED_COLUMNS = ("snapshot", "traj", "step", "time", "active")
+    The validated frame is stored once; every attribute access hands out a shallow
+    copy. Under pandas copy-on-write a shallow copy shares the column buffers (so
+    access costs microseconds, not a copy of the data), writing into it copies the
+    touched column first, and its ``to_numpy()`` arrays are read-only views: nothing
+    done to what ``ens.snapshots`` returns can change the ensemble.
+    """
 
-#: optional per-snapshot arrays: name -> (description, unit)
-SNAPSHOT_ARRAYS: dict[str, tuple[str, str]] = {
-    "cation_energies": ("(n_snapshots, n_cation) cation state energies, common zero", "eV"),
-    "dyson": (
-        "(n_snapshots, n_cation) squared Dyson norms of the active state, or "
-        "(n_snapshots, n_states, n_cation) for every neutral state",
-        "1",
-    ),
-    "amplitudes": ("(n_snapshots, n_states) electronic populations |c_i|^2", "1"),
-    "adt": ("(n_snapshots, n_states, n_states) adiabatic-to-diabatic matrices U, "
-            "adiabatic i = sum_d U[i, d] diabatic d", "1"),
-    "adt_cation": ("(n_snapshots, n_cation, n_cation) cation adiabatic-to-diabatic matrices", "1"),
-    "overlaps": ("(n_snapshots, n_states, n_states) overlaps <i(t-dt)|j(t)> with the previous "
-                 "step (row 0 of a trajectory: identity), or with reference states", "1"),
-    "velocities": ("(n_snapshots, n_atoms, 3) nuclear velocities", "Angstrom/fs"),
-}
+    def __init__(self, name: str) -> None:
+        self._name = name
+        self._slot = f"_{name}_frame"
 
-#: optional per-trajectory arrays (aligned to the rows of ``trajectories``)
-TRAJECTORY_ARRAYS: dict[str, tuple[str, str]] = {
-    "excitation_energies": ("(n_trajectories, n_states) E_i - E_0 at t = 0 (column 0 is 0)", "eV"),
-    "oscillator_strengths": ("(n_trajectories, n_states) f_0i at t = 0 (column 0 is 0)", "1"),
-    "transition_dipoles": ("(n_trajectories, n_states, 3) mu_0i at t = 0", "e*bohr"),
-}
+    def __get__(self, obj: object, owner: type | None = None) -> Any:
+        if obj is None:
+            return self
+        return obj.__dict__[self._slot].copy(deep=False)
 
-
-def _freeze(a: Any, name: str, *, dtype: Any = np.float64, copy_: bool = True) -> np.ndarray:
-    """Return a read-only float array; writable input is copied so the caller keeps theirs."""
-    arr = np.asarray(a, dtype=dtype)
-    if arr.flags.writeable:
-        arr = arr.copy()
-        arr.setflags(write=False)
-    return arr
-
-
-def _check_ndim(arr: np.ndarray, name: str, ndim: int | tuple[int, ...], shape_doc: str) -> None:
-    ndims = (ndim,) if isinstance(ndim, int) else ndim
-    if arr.ndim not in ndims:
-        raise SchemaError(
-            f"{name} must have shape {shape_doc}; got an array of shape {arr.shape}."
-        )
+    def __set__(self, obj: object, value: Any) -> None:
+        # reached only through object.__setattr__ (the dataclass is frozen)
+        obj.__dict__[self._slot] = value
 
 
 @dataclass(frozen=True, eq=False, repr=False)
@@ -85,7 +68,9 @@ class Ensemble:
         One row per (trajectory, step): ``snapshot`` (stable id, survives
         slicing), ``traj``, ``step``, ``time`` (fs), ``active`` (0-based neutral
         state), plus optional scalars such as ``e_kin``, ``e_tot`` (eV) and any
-        user columns.
+        user columns. Every access returns a shallow copy-on-write copy (cheap: the
+        column buffers are shared and read-only), so writing into it never changes
+        the ensemble; the same holds for :attr:`trajectories`.
     geometries : ndarray, shape (n_snapshots, n_atoms, 3)
         Cartesian coordinates in Angstrom.
     energies : ndarray, shape (n_snapshots, n_states)
@@ -212,327 +197,22 @@ class Ensemble:
         >>> ens.n_trajectories, ens.n_snapshots, ens.n_states
         (2, 3, 2)
         """
-        traj_a = np.asarray(traj)
-        time_a = np.asarray(time, dtype=np.float64)
-        active_a = np.asarray(active)
-        n = traj_a.shape[0] if traj_a.ndim == 1 else -1
-        for name, a in (("traj", traj_a), ("time", time_a), ("active", active_a)):
-            if a.ndim != 1 or a.shape[0] != n:
-                raise SchemaError(
-                    f"{name} must be a 1-D array of length n_snapshots={n}; got shape {a.shape}."
-                )
-        for name, a in (("traj", traj_a), ("active", active_a)):
-            if a.size and not np.issubdtype(a.dtype, np.integer):
-                if not np.all(np.isfinite(a.astype(float))) or np.any(a != np.round(a)):
-                    raise SchemaError(f"{name} must hold integers; got values like {a[:3]!r}.")
-        traj_a = traj_a.astype(np.int64)
-        active_a = active_a.astype(np.int64)
-        order = np.lexsort((time_a, traj_a))
-        identity = bool(np.all(order == np.arange(n)))
-
-        def take(a: Any, name: str, dtype: Any = np.float64) -> np.ndarray | None:
-            if a is None:
-                return None
-            arr = np.asarray(a, dtype=dtype)
-            if arr.ndim == 0 or arr.shape[0] != n:
-                raise SchemaError(
-                    f"{name} must have n_snapshots={n} rows (one per snapshot); got shape "
-                    f"{arr.shape}."
-                )
-            if identity:
-                # a view: marking it read-only leaves the caller's own array as it was
-                return np.array(arr, copy=True) if copy else arr.view()
-            return arr[order]
-
-        frame = pd.DataFrame(
-            {
-                "snapshot": np.arange(n, dtype=np.int64),
-                "traj": traj_a[order],
-                "step": np.zeros(n, dtype=np.int64),
-                "time": time_a[order],
-                "active": active_a[order],
-            }
-        )
-        if step is None:
-            frame["step"] = frame.groupby("traj", sort=False).cumcount().to_numpy(np.int64)
-        else:
-            frame["step"] = take(step, "step", np.int64)
-        for name, values in (columns or {}).items():
-            if name in REQUIRED_COLUMNS:
-                raise SchemaError(f"column {name!r} is reserved; pass it as its own argument.")
-            col = take(values, f"column {name!r}", None)
-            frame[name] = col
-        symbols_t = tuple(str(s) for s in symbols)
-        masses_a = masses_for(symbols_t) if masses is None else np.asarray(masses, float)
-
-        traj_ids = np.unique(traj_a)
-        if trajectories is None:
-            trajectories = pd.DataFrame({"traj": traj_ids})
-        ens_kwargs: dict[str, Any] = {
-            name: take(value, name)
-            for name, value in (
-                ("cation_energies", cation_energies),
-                ("dyson", dyson),
-                ("amplitudes", amplitudes),
-                ("adt", adt),
-                ("adt_cation", adt_cation),
-                ("overlaps", overlaps),
-                ("velocities", velocities),
-            )
-        }
-        for name, value in (
-            ("excitation_energies", excitation_energies),
-            ("oscillator_strengths", oscillator_strengths),
-            ("transition_dipoles", transition_dipoles),
-        ):
-            ens_kwargs[name] = None if value is None else np.asarray(value, float)
-        geoms = take(geometries, "geometries")
-        ens_e = take(energies, "energies")
-        meta = _copy.deepcopy(dict(metadata or {}))
-        for arr in (geoms, ens_e, *ens_kwargs.values()):
-            if arr is not None:
-                arr.setflags(write=False)  # freshly made here: hand over without a second copy
-        return cls._build(
-            frame, geoms, ens_e, symbols_t, masses_a, trajectories,
-            state_labels, cation_labels, meta, ens_kwargs,
-        )
-
-    @classmethod
-    def _build(
-        cls,
-        frame: pd.DataFrame,
-        geometries: np.ndarray,
-        energies: np.ndarray,
-        symbols: tuple[str, ...],
-        masses: np.ndarray,
-        trajectories: pd.DataFrame,
-        state_labels: Sequence[str] | None,
-        cation_labels: Sequence[str] | None,
-        metadata: dict[str, Any],
-        arrays: Mapping[str, np.ndarray | None],
-    ) -> Ensemble:
-        return cls(
-            snapshots=frame,
-            geometries=geometries,
-            energies=energies,
-            symbols=symbols,
-            masses=masses,
-            trajectories=trajectories,
-            state_labels=tuple(state_labels) if state_labels else (),
-            cation_labels=tuple(cation_labels) if cation_labels else (),
-            metadata=metadata,
-            **arrays,
-        )
+        return cls(**fields_from_arrays(
+            traj=traj, time=time, active=active, geometries=geometries, symbols=symbols,
+            energies=energies, step=step, masses=masses, trajectories=trajectories,
+            cation_energies=cation_energies, dyson=dyson, amplitudes=amplitudes, adt=adt,
+            adt_cation=adt_cation, overlaps=overlaps, velocities=velocities,
+            excitation_energies=excitation_energies,
+            oscillator_strengths=oscillator_strengths,
+            transition_dipoles=transition_dipoles, state_labels=state_labels,
+            cation_labels=cation_labels, metadata=metadata, columns=columns, copy=copy,
+        ))
 
     # ------------------------------------------------------------------ validation
     def _validate(self) -> None:
-        set_ = object.__setattr__
-        frame = self.snapshots
-        if not isinstance(frame, pd.DataFrame):
-            raise SchemaError(f"snapshots must be a pandas DataFrame; got {type(frame).__name__}.")
-        frame = frame.reset_index(drop=True).copy()
-        missing = [c for c in REQUIRED_COLUMNS if c not in frame.columns]
-        if "snapshot" in missing:
-            frame.insert(0, "snapshot", np.arange(len(frame), dtype=np.int64))
-            missing.remove("snapshot")
-        if missing:
-            raise SchemaError(
-                f"snapshots is missing required column(s) {missing}; found {list(frame.columns)}."
-            )
-        for col in ("snapshot", "traj", "step", "active"):
-            frame[col] = frame[col].to_numpy().astype(np.int64, copy=False)
-        frame["time"] = frame["time"].to_numpy().astype(np.float64, copy=False)
-        rest = [c for c in frame.columns if c not in REQUIRED_COLUMNS]
-        frame = frame[list(REQUIRED_COLUMNS) + rest]
-        n = len(frame)
-
-        traj = frame["traj"].to_numpy()
-        time = frame["time"].to_numpy()
-        if n:
-            if np.any(np.diff(traj) < 0):
-                raise SchemaError(
-                    "snapshots must be sorted by traj; use Ensemble.from_arrays, which sorts."
-                )
-            if not np.all(np.isfinite(time)):
-                bad = int(np.flatnonzero(~np.isfinite(time))[0])
-                raise SchemaError(
-                    f"time must be finite; snapshot row {bad} (traj {traj[bad]}) has {time[bad]}."
-                )
-            same = traj[1:] == traj[:-1]
-            dt = np.diff(time)
-            bad_t = np.flatnonzero(same & (dt <= 0))
-            if bad_t.size:
-                i = int(bad_t[0])
-                raise SchemaError(
-                    f"times must increase strictly within a trajectory; traj {traj[i]} has "
-                    f"time {time[i]} followed by {time[i + 1]} (rows {i}, {i + 1}). Hint: remove "
-                    "duplicated frames or fix restarted segments before building the ensemble."
-                )
-        geoms = _freeze(self.geometries, "geometries", copy_=False)
-        _check_ndim(geoms, "geometries", 3, "(n_snapshots, n_atoms, 3)")
-        if geoms.shape[0] != n or geoms.shape[2] != 3:
-            raise SchemaError(
-                f"geometries must have shape (n_snapshots={n}, n_atoms, 3); got {geoms.shape}."
-            )
-        n_atoms = geoms.shape[1]
-        symbols = tuple(str(s) for s in self.symbols)
-        if len(symbols) != n_atoms:
-            raise SchemaError(
-                f"symbols must have n_atoms={n_atoms} entries; got {len(symbols)}."
-            )
-        masses = _freeze(self.masses, "masses", copy_=False)
-        if masses.shape != (n_atoms,):
-            raise SchemaError(f"masses must have shape (n_atoms={n_atoms},); got {masses.shape}.")
-        energies = _freeze(self.energies, "energies", copy_=False)
-        _check_ndim(energies, "energies", 2, "(n_snapshots, n_states)")
-        if energies.shape[0] != n or energies.shape[1] < 1:
-            raise SchemaError(
-                f"energies must have shape (n_snapshots={n}, n_states); got {energies.shape}."
-            )
-        n_states = energies.shape[1]
-        active = frame["active"].to_numpy()
-        if n and (active.min() < 0 or active.max() >= n_states):
-            i = int(np.flatnonzero((active < 0) | (active >= n_states))[0])
-            raise SchemaError(
-                f"active state must be in [0, {n_states - 1}] (0-based, n_states={n_states}); "
-                f"snapshot row {i} (traj {traj[i]}, time {time[i]} fs) has {active[i]}. Hint: "
-                "if your code counts states from 1, subtract 1."
-            )
-
-        n_cat = None
-        if self.cation_energies is not None:
-            ce = _freeze(self.cation_energies, "cation_energies", copy_=False)
-            _check_ndim(ce, "cation_energies", 2, "(n_snapshots, n_cation)")
-            if ce.shape[0] != n:
-                raise SchemaError(
-                    f"cation_energies must have n_snapshots={n} rows; got shape {ce.shape}."
-                )
-            n_cat = ce.shape[1]
-            set_(self, "cation_energies", ce)
-        expected = {
-            "amplitudes": ((n, n_states), "(n_snapshots, n_states)"),
-            "adt": ((n, n_states, n_states), "(n_snapshots, n_states, n_states)"),
-            "overlaps": ((n, n_states, n_states), "(n_snapshots, n_states, n_states)"),
-            "velocities": ((n, n_atoms, 3), "(n_snapshots, n_atoms, 3)"),
-        }
-        if n_cat is not None:
-            expected["adt_cation"] = ((n, n_cat, n_cat), "(n_snapshots, n_cation, n_cation)")
-        for name, (shape, doc) in expected.items():
-            value = getattr(self, name)
-            if value is None:
-                continue
-            arr = _freeze(value, name, copy_=False)
-            if arr.shape != shape:
-                raise SchemaError(f"{name} must have shape {doc} = {shape}; got {arr.shape}.")
-            set_(self, name, arr)
-        if self.adt_cation is not None and n_cat is None:
-            raise SchemaError("adt_cation needs cation_energies (to know n_cation).")
-        if self.dyson is not None:
-            dy = _freeze(self.dyson, "dyson", copy_=False)
-            if n_cat is None:
-                raise SchemaError(
-                    "dyson (squared Dyson norms) needs cation_energies; pass both."
-                )
-            if dy.shape not in ((n, n_cat), (n, n_states, n_cat)):
-                raise SchemaError(
-                    f"dyson must have shape (n_snapshots, n_cation) = {(n, n_cat)} or "
-                    f"(n_snapshots, n_states, n_cation) = {(n, n_states, n_cat)}; got {dy.shape}."
-                )
-            set_(self, "dyson", dy)
-
-        trajs = self.trajectories
-        if not isinstance(trajs, pd.DataFrame) or "traj" not in trajs.columns:
-            raise SchemaError("trajectories must be a DataFrame with a 'traj' column.")
-        ids = np.unique(traj)
-        trajs = trajs.copy()
-        trajs["traj"] = trajs["traj"].to_numpy().astype(np.int64)
-        if trajs["traj"].duplicated().any():
-            dup = trajs.loc[trajs["traj"].duplicated(), "traj"].iloc[0]
-            raise SchemaError(f"trajectories has duplicated traj id {dup}.")
-        extra_ids = np.setdiff1d(trajs["traj"].to_numpy(), ids)
-        keep_rows = ~trajs["traj"].isin(extra_ids)
-        # per-trajectory arrays follow the rows of the given table
-        traj_arrays: dict[str, np.ndarray | None] = {}
-        for name in TRAJECTORY_ARRAYS:
-            value = getattr(self, name)
-            if value is None:
-                traj_arrays[name] = None
-                continue
-            arr = np.asarray(value, dtype=np.float64)
-            if arr.shape[0] == len(trajs):
-                arr = arr[keep_rows.to_numpy()]
-            traj_arrays[name] = arr
-        trajs = trajs[keep_rows]
-        given = pd.DataFrame({"traj": ids})
-        trajs = given.merge(trajs, on="traj", how="left", sort=True)
-        missing_rows = ~np.isin(ids, self.trajectories["traj"].to_numpy())
-        if n:
-            first = np.r_[0, np.flatnonzero(traj[1:] != traj[:-1]) + 1]
-            last = np.r_[first[1:] - 1, n - 1]
-        else:
-            first = last = np.zeros(0, dtype=np.int64)
-        if "weight" not in trajs.columns:
-            trajs["weight"] = 1.0
-        trajs["weight"] = trajs["weight"].astype(np.float64).fillna(1.0)
-        if np.any(trajs["weight"].to_numpy() < 0) or not np.all(np.isfinite(trajs["weight"])):
-            raise SchemaError("trajectory weights must be finite and >= 0.")
-        init = active[first] if n else np.zeros(0, dtype=np.int64)
-        if "initial_state" not in trajs.columns:
-            trajs["initial_state"] = init
-        else:
-            trajs["initial_state"] = (
-                trajs["initial_state"].astype("Float64").fillna(pd.Series(init)).astype(np.int64)
-            )
-        trajs["n_steps"] = (last - first + 1).astype(np.int64)
-        trajs["t_end"] = time[last] if n else np.zeros(0)
-        cols = ["traj", "weight", "initial_state", "n_steps", "t_end"]
-        trajs = trajs[cols + [c for c in trajs.columns if c not in cols]]
-        for name, arr in traj_arrays.items():
-            if arr is None:
-                continue
-            if arr.shape[0] != len(ids):
-                if missing_rows.any():
-                    raise SchemaError(
-                        f"{name} has {arr.shape[0]} rows but the trajectories table does not "
-                        f"cover all {len(ids)} trajectories."
-                    )
-                raise SchemaError(
-                    f"{name} must have n_trajectories={len(ids)} rows; got shape {arr.shape}."
-                )
-            want = (len(ids), n_states) if name != "transition_dipoles" else (len(ids), n_states, 3)
-            if arr.shape != want:
-                raise SchemaError(f"{name} must have shape {want}; got {arr.shape}.")
-            arr.setflags(write=False)
-            set_(self, name, arr)
-
-        state_labels = tuple(self.state_labels) or tuple(f"S{i}" for i in range(n_states))
-        if len(state_labels) != n_states:
-            raise SchemaError(
-                f"state_labels must have n_states={n_states} entries; got {len(state_labels)}."
-            )
-        n_cat_labels = n_cat or 0
-        cation_labels = tuple(self.cation_labels) or tuple(f"D{k}" for k in range(n_cat_labels))
-        if len(cation_labels) != n_cat_labels:
-            raise SchemaError(
-                f"cation_labels must have n_cation={n_cat_labels} entries; got "
-                f"{len(cation_labels)}."
-            )
-        meta = dict(self.metadata)
-        meta.setdefault("units", {"time": "fs", "energy": "eV", "length": "Angstrom",
-                                  "mass": "amu"})
-        meta.setdefault("schema_version", SCHEMA_VERSION)
-        meta.setdefault("sources", [])
-
-        frame.flags.allows_duplicate_labels = True
-        set_(self, "snapshots", frame)
-        set_(self, "trajectories", trajs.reset_index(drop=True))
-        set_(self, "geometries", geoms)
-        set_(self, "energies", energies)
-        set_(self, "symbols", symbols)
-        set_(self, "masses", masses)
-        set_(self, "state_labels", state_labels)
-        set_(self, "cation_labels", cation_labels)
-        set_(self, "metadata", meta)
+        raw = {name: getattr(self, name) for name in self.__dataclass_fields__}
+        for name, value in validate_fields(raw).items():
+            object.__setattr__(self, name, value)
 
     # ------------------------------------------------------------------ sizes
     @property
@@ -638,7 +318,7 @@ class Ensemble:
             raise TypeError("select() takes a boolean mask or trajectory ids, never a string.")
         if isinstance(mask, pd.Series):
             mask = mask.to_numpy()
-        arr = np.asarray(list(mask) if not isinstance(mask, np.ndarray) else mask)
+        arr = np.asarray(mask if isinstance(mask, np.ndarray) else list(mask))  # type: ignore[arg-type]
         if arr.dtype == bool:
             if arr.shape != (self.n_snapshots,):
                 raise SchemaError(
@@ -845,3 +525,11 @@ class Ensemble:
     def __len__(self) -> int:
         return self.n_snapshots
 
+
+
+_FRAME_FIELDS = ("snapshots", "trajectories")
+# the frame fields hand out shallow copy-on-write copies (set after the dataclass is built,
+# so that the dataclass machinery sees plain required fields)
+for _name in _FRAME_FIELDS:
+    setattr(Ensemble, _name, _ReadOnlyFrame(_name))
+del _name

@@ -22,7 +22,8 @@ import pandas as pd
 
 from ..compute.dynamics._kernels_fssh import adiabatic_states
 from ..compute.dynamics.fssh import run_fssh
-from ..compute.dynamics.initial import sample_normal_modes, select_initial_conditions
+from ..compute.dynamics.initial import select_initial_conditions
+from ..compute.dynamics.wigner import sample_normal_modes
 from ..data.ensemble import Ensemble
 from ..errors import SchemaError
 from ..units import HARTREE_EV

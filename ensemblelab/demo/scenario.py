@@ -34,8 +34,8 @@ from typing import Any
 import numpy as np
 
 from ..compute.dynamics._kernels_fssh import adiabatic_states
-from ..compute.dynamics.initial import sample_normal_modes
 from ..compute.dynamics.models import TorsionVibronicModel
+from ..compute.dynamics.wigner import sample_normal_modes
 from ..data.elements import masses_for
 from ..units import AMU_ME, AU_TIME_FS, BOHR_ANGSTROM, HARTREE_CM1
 
@@ -104,8 +104,9 @@ class DemoScenario:
 
     def perturbed(self, **changes: Any) -> DemoScenario:
         """A copy with some parameters changed (``dataclasses.replace``)."""
-        return dataclasses.replace(self, **{k: _t(v) if isinstance(v, (list, tuple)) else v
-                                            for k, v in changes.items()})
+        new: dict[str, Any] = {k: _t(v) if isinstance(v, (list, tuple)) else v
+                               for k, v in changes.items()}
+        return dataclasses.replace(self, **new)
 
     def as_dict(self) -> dict[str, Any]:
         """Plain-JSON view of the parameters (for metadata)."""

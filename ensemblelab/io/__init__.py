@@ -11,15 +11,61 @@ from __future__ import annotations
 
 import inspect
 from pathlib import Path
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING, Any, Literal, overload
 
 from ._registry import detect_format, get_loader
 
 if TYPE_CHECKING:
     from ..data.ensemble import Ensemble
+    from .lazy import LazyEnsemble
 
 __all__ = ["load", "save", "write_extxyz", "load_extxyz", "load_table", "load_store",
            "save_store", "detect_format", "save_map", "load_map", "load_measured_map"]
+
+
+@overload
+def load(
+    path: str | Path,
+    *,
+    lazy: Literal[False] = False,
+    energy_unit: str | None = None,
+    time_unit: str | None = None,
+    length_unit: str | None = None,
+    nonfinite: str = "raise",
+    progress: bool = True,
+    format: str | None = None,
+    **kw: Any,
+) -> Ensemble: ...
+
+
+@overload
+def load(
+    path: str | Path,
+    *,
+    lazy: Literal[True],
+    energy_unit: str | None = None,
+    time_unit: str | None = None,
+    length_unit: str | None = None,
+    nonfinite: str = "raise",
+    progress: bool = True,
+    format: str | None = None,
+    **kw: Any,
+) -> LazyEnsemble: ...
+
+
+@overload
+def load(
+    path: str | Path,
+    *,
+    lazy: bool,
+    energy_unit: str | None = None,
+    time_unit: str | None = None,
+    length_unit: str | None = None,
+    nonfinite: str = "raise",
+    progress: bool = True,
+    format: str | None = None,
+    **kw: Any,
+) -> Ensemble | LazyEnsemble: ...
 
 
 def load(
@@ -33,7 +79,7 @@ def load(
     progress: bool = True,
     format: str | None = None,
     **kw: Any,
-) -> Ensemble:
+) -> Ensemble | LazyEnsemble:
     """Load an ensemble from any supported input.
 
     Parameters
@@ -63,7 +109,9 @@ def load(
 
     Returns
     -------
-    Ensemble
+    Ensemble or LazyEnsemble
+        An Ensemble; a LazyEnsemble with ``lazy=True`` (the static type follows
+        the literal value of `lazy`).
 
     Raises
     ------

@@ -584,6 +584,7 @@ def convert_extxyz_chunked(
             sources.extend(ens.metadata.get("sources", []))
             pos = pos_of.get(int(tid))
             if pos is not None:
+                assert table is not None
                 changes: dict[str, Any] = {"trajectories": table.iloc[[pos]].reset_index(
                     drop=True)}
                 for name, arr in arrays.items():

@@ -306,7 +306,7 @@ class LazyEnsemble:
         """
         if isinstance(mask, str):
             raise TypeError("select() takes trajectory ids, never a string.")
-        arr = np.asarray(list(mask) if not isinstance(mask, np.ndarray) else mask)
+        arr = np.asarray(mask if isinstance(mask, np.ndarray) else list(mask))  # type: ignore[arg-type]
         if arr.dtype == bool:
             raise SchemaError("a LazyEnsemble selects whole trajectories by id; a boolean "
                               "snapshot mask needs the in-memory ensemble (select ids first, "

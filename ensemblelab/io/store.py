@@ -185,7 +185,7 @@ def _load_array(path: Path, entry: dict[str, Any], mmap_mode: str | None) -> np.
                          f"({need} bytes). Hint: the file is truncated; convert the original "
                          "files again.")
     try:
-        arr = np.load(file, mmap_mode=mmap_mode, allow_pickle=False)
+        arr = np.load(file, mmap_mode=mmap_mode, allow_pickle=False)  # type: ignore[arg-type]
     except (ValueError, OSError, EOFError, MemoryError) as exc:
         raise StoreError(f"{file}: cannot read the array ({exc}). Hint: the file is corrupt; "
                          "convert the original files again.") from exc

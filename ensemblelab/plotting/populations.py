@@ -81,7 +81,7 @@ def scheme_name(fit: Any, labels: Mapping[int, str] | None = None) -> str:
     -------
     str
     """
-    scheme = getattr(fit, "scheme", None) or getattr(fit, "model", "")
+    scheme = getattr(fit, "scheme", "")
     labels = dict(labels or {})
     names = [labels.get(int(s), f"state {int(s)}") for s in fit.states]
     if scheme == "single":
@@ -194,7 +194,7 @@ def plot_sas(result: Any, *, ax: Any = None, title: str | None = None,
     Figure
     """
     if result.sas is None:
-        raise ValueError("plot_sas needs fit_global(model='sequential').")
+        raise ValueError("plot_sas needs fit_global(scheme='sequential').")
     fig, ax, own = _new_axes(ax, width)
     for i, sp in enumerate(result.species):
         ax.plot(result.energies, result.sas[i], label=f"species {sp}")

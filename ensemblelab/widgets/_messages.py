@@ -93,7 +93,7 @@ class MessageArea:
         The exception is not re-raised (a widget callback has no caller to
         receive it); it is shown with its traceback.
         """
-        label = where or getattr(func, "__qualname__", "callback")
+        label = where if where else str(getattr(func, "__qualname__", "callback"))
 
         @functools.wraps(func)
         def wrapper(*args: Any, **kwargs: Any) -> Any:

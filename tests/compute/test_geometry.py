@@ -19,7 +19,7 @@ from ensemblelab.compute.structures.geometry import (
 from ensemblelab.errors import SchemaError
 from ensemblelab.testing import make_toy_ensemble
 
-# method notes section 8, check table: a unit tetrahedron corner set (Angstrom)
+# a unit tetrahedron corner set (Angstrom)
 P4 = np.array([[0.0, 0, 0], [1, 0, 0], [0, 1, 0], [0, 0, 1]])
 
 
@@ -28,7 +28,7 @@ def _rz(deg):
 
 
 def test_kabsch_rotated_translated_is_zero_and_recovers_rotation():
-    # method notes section 8 computed independently (not published): Q = P rotated 30 deg about z,
+    # computed independently (not published): Q = P rotated 30 deg about z,
     # translated (1, 2, 3) -> RMSD 0,
     # R = Rz(30 deg), tol 1e-12
     Q = P4 @ _rz(30).T + np.array([1.0, 2, 3])
@@ -39,7 +39,7 @@ def test_kabsch_rotated_translated_is_zero_and_recovers_rotation():
 
 
 def test_kabsch_mirror_values():
-    # method notes section 8 computed independently (not published): x -> -x mirror; proper-rotation
+    # computed independently (not published): x -> -x mirror; proper-rotation
     # RMSD 0.5 A, centred
     # unrotated RMSD 0.8660254 A (tol 1e-10)
     M = P4 * np.array([-1.0, 1, 1])
@@ -53,7 +53,7 @@ def test_kabsch_mirror_values():
 
 
 def test_rmsd_one_atom_shifted():
-    # method notes section 8 computed independently (not published): "atom 1" (1-based: the atom at
+    # computed independently (not published): "atom 1" (1-based: the atom at
     # the origin) moved by 0.1 A
     # along x -> RMSD 0.0402486 A (tol 1e-7)
     Q = P4.copy()

@@ -12,21 +12,21 @@ from ensemblelab.compute.kinetics.global_fit import GlobalFitResult, decay_profi
 from ensemblelab.errors import SchemaError
 
 LN2 = math.log(2.0)
-# eV, probe bandwidth for T_pr = 30 fs (method notes 1.7 / 2.4, computed independently (not
+# eV, probe bandwidth for T_pr = 30 fs (computed independently (not
 # published))
 GAMMA_PR = 0.060832
-# fs, cross-correlation = 42.42641 (method notes 2.2, derived and computed independently (not
+# fs, cross-correlation = 42.42641 (derived and computed independently (not
 # published))
 T_CC = math.sqrt(30.0**2 + 30.0**2)
 
 
 def gauss(e, x0, fwhm):
-    """Area-normalised Gaussian with FWHM (method notes section 0)."""
+    """Area-normalised Gaussian with FWHM (from memory)."""
     return 2 * math.sqrt(LN2 / math.pi) / fwhm * np.exp(-4 * LN2 * (e - x0) ** 2 / fwhm**2)
 
 
 def scenario_map(energies, delays):
-    """Infinite-N map of the method-notes 1.7 scenario, built directly from the formula."""
+    """Infinite-N map of the two-state decay scenario, built directly from the formula."""
     das1 = 0.9 * gauss(energies, 1.5, GAMMA_PR) - 0.8 * gauss(energies, 0.5, GAMMA_PR)
     dasi = 0.8 * gauss(energies, 0.5, GAMMA_PR)
     sigma = T_CC / (2 * math.sqrt(2 * LN2))
@@ -42,8 +42,8 @@ class _MapLike:
         self.kinetic_energies, self.delays, self.intensity = e, d, s
 
 
-def test_scenario_map_reproduces_method_notes_values():
-    # method notes 1.7 table computed independently (not published): y_1, y_inf and S at 1.5 and 0.5
+def test_scenario_map_reproduces_analytic_values():
+    # computed independently (not published): y_1, y_inf and S at 1.5 and 0.5
     # eV, tol 1e-4
     d = np.array([-30.0, 0.0, 100.0, 300.0])
     y = decay_profiles(d, [100.0], irf_fwhm=T_CC)
@@ -60,7 +60,8 @@ def test_fit_global_recovers_scenario_noiseless():
     s, das1, dasi = scenario_map(e, d)
     res = fit_global(_MapLike(e, d, s), n_components=1, irf_fwhm=T_CC)
     assert isinstance(res, GlobalFitResult)
-    # method notes 1.7: one-component fit returns tau = 100 fs, DAS_1, DAS_inf
+    # one-component fit returns tau = 100 fs, DAS_1, DAS_inf (derived independently, not
+    # published)
     assert res.lifetimes[0] == pytest.approx(100.0, rel=1e-6)
     np.testing.assert_allclose(res.das[0], das1, atol=1e-8 * np.abs(das1).max())
     np.testing.assert_allclose(res.das[1], dasi, atol=1e-8 * np.abs(dasi).max())
@@ -69,8 +70,9 @@ def test_fit_global_recovers_scenario_noiseless():
     assert len(res.das_frame()) == 2 * e.size
 
 
-def test_fit_global_two_lifetimes_noiseless_method_notes_check():
-    # method notes 7.5: tau = (50, 200) fs, sigma_cc known, no noise: tau to 1e-6 rel, DAS 1e-8
+def test_fit_global_two_lifetimes_noiseless():
+    # tau = (50, 200) fs, sigma_cc known, no noise: tau to 1e-6 rel, DAS 1e-8 (derived
+    # independently, not published)
     e = np.linspace(0.0, 2.0, 81)
     d = np.arange(-80.0, 800.0 + 1e-9, 4.0)
     das = np.vstack([gauss(e, 1.2, 0.3), -0.6 * gauss(e, 0.9, 0.2), 0.4 * gauss(e, 0.5, 0.25)])
@@ -80,8 +82,8 @@ def test_fit_global_two_lifetimes_noiseless_method_notes_check():
     np.testing.assert_allclose(res.das, das, atol=1e-8 * np.abs(das).max())
 
 
-def test_fit_global_sequential_sas_match_method_notes_transform():
-    # build a map from known SAS of A -> B -> C (C non-decaying); method notes 7.4 derived and
+def test_fit_global_sequential_sas_match_target_transform():
+    # build a map from known SAS of A -> B -> C (C non-decaying); derived and
     # computed independently (not published)
     e = np.linspace(0.0, 2.0, 61)
     d = np.arange(-60.0, 900.0 + 1e-9, 5.0)
@@ -90,11 +92,11 @@ def test_fit_global_sequential_sas_match_method_notes_transform():
     a, b, c = K.sequential_profiles(d, 50.0, 200.0, sigma)
     s = np.outer(a, sas[0]) + np.outer(b, sas[1]) + np.outer(c, sas[2])
     res = fit_global(energies=e, delays=d, intensity=s, n_components=2, irf_fwhm=T_CC,
-                     model="sequential")
+                     scheme="sequential")
     np.testing.assert_allclose(res.lifetimes, [50.0, 200.0], rtol=1e-6)
     np.testing.assert_allclose(res.sas, sas, atol=1e-7)
     k1, k2 = 1 / 50.0, 1 / 200.0
-    das1 = sas[0] + k1 / (k2 - k1) * sas[1] - k2 / (k2 - k1) * sas[2]  # method notes 7.4
+    das1 = sas[0] + k1 / (k2 - k1) * sas[1] - k2 / (k2 - k1) * sas[2]  # derived independently
     das2 = -k1 / (k2 - k1) * (sas[1] - sas[2])
     np.testing.assert_allclose(res.das[0], das1, atol=1e-7)
     np.testing.assert_allclose(res.das[1], das2, atol=1e-7)
@@ -134,6 +136,10 @@ def test_fit_global_noisy_interval_and_free_irf():
                       interval="bootstrap", n_boot=30)
     assert boot.lifetime_lower[0] < 100.0 < boot.lifetime_upper[0]
     assert "bootstrap" in boot.interval_method and "tau_1" in str(boot)
+    bare = fit_global(energies=e, delays=d, intensity=noisy, irf_fwhm=T_CC, interval=None)
+    assert bare.lifetimes[0] == res.lifetimes[0]  # the interval choice leaves the fit alone
+    assert bare.interval_method == "none" and np.isnan(bare.lifetime_lower).all()
+    assert bare.scheme == "parallel"
 
 
 def test_fit_global_wald_interval_coverage_on_noisy_maps():
@@ -165,8 +171,12 @@ def test_fit_global_drops_nonfinite_rows_and_validates():
     assert res.lifetimes[0] == pytest.approx(40.0, rel=1e-6)
     with pytest.raises(SchemaError, match="energies, delays, intensity"):
         fit_global(object())
-    with pytest.raises(SchemaError, match="'model' parameter"):
-        fit_global(energies=e, delays=d, intensity=s, model="target")
+    with pytest.raises(SchemaError, match="'interval' parameter"):
+        fit_global(energies=e, delays=d, intensity=s, interval="wald")
+    with pytest.raises(SchemaError, match="'n_boot' parameter"):
+        fit_global(energies=e, delays=d, intensity=s, interval="bootstrap", n_boot=0)
+    with pytest.raises(SchemaError, match="'scheme' parameter"):
+        fit_global(energies=e, delays=d, intensity=s, scheme="target")
     with pytest.raises(SchemaError, match="shape"):
         fit_global(energies=e, delays=d, intensity=s[:, :3])
 

@@ -1,4 +1,4 @@
-"""Tests of Wigner sampling and doorway selection (method notes sections 1.2, 1.6 and 5)."""
+"""Tests of Wigner sampling and doorway selection."""
 
 from __future__ import annotations
 
@@ -9,14 +9,16 @@ import pandas as pd
 import pytest
 
 from ensemblelab.compute.dynamics.initial import (
-    doorway_weights,
+    doorway_table,
+    select_initial_conditions,
+    write_initial_conditions,
+)
+from ensemblelab.compute.dynamics.wigner import (
     normal_modes_from_hessian,
     sample_normal_modes,
     sample_wigner,
     sample_wigner_from_hessian,
-    select_initial_conditions,
     thermal_factor,
-    write_initial_conditions,
 )
 from ensemblelab.errors import NumericalWarning, SchemaError
 from ensemblelab.units import AMU_ME, HARTREE_CM1, HARTREE_EV
@@ -24,7 +26,7 @@ from ensemblelab.units import AMU_ME, HARTREE_CM1, HARTREE_EV
 
 # ------------------------------------------------------------------ Wigner: exact values
 def test_thermal_factor_values():
-    # method notes section 5 computed independently (not published): alpha(300 K) for 100, 500,
+    # computed independently (not published): alpha(300 K) for 100, 500,
     # 1000, 3000 cm^-1
     alpha = thermal_factor([100.0, 500.0, 1000.0, 3000.0], 300.0)
     np.testing.assert_allclose(alpha, [4.249836, 1.199985, 1.016664, 1.0000011], rtol=1e-6)
@@ -34,7 +36,7 @@ def test_thermal_factor_values():
 
 
 def test_wigner_widths_are_exact():
-    # method notes section 5 computed independently (not published): omega = 1000 cm^-1 -> sigma_Q =
+    # computed independently (not published): omega = 1000 cm^-1 -> sigma_Q =
     # 10.475558, sigma_P = 4.7730154e-2;
     # at 300 K sigma_Q = 10.562482 (rel 1e-6). The same seed gives the same normal deviates.
     omega = 1000.0 / HARTREE_CM1
@@ -49,9 +51,9 @@ def test_wigner_widths_are_exact():
 
 
 def test_wigner_cartesian_widths_one_dimension():
-    # method notes section 5 computed independently (not published): m = 1 amu, 1000 cm^-1: sigma_x
+    # computed independently (not published): m = 1 amu, 1000 cm^-1: sigma_x
     # = 0.1298369 Angstrom,
-    # sigma_v = 1.1179253e-3 a0/t_au = 1.1179253e-3 * 21.876912622 Angstrom/fs (section 9)
+    # sigma_v = 1.1179253e-3 a0/t_au = 1.1179253e-3 * 21.876912622 Angstrom/fs (CODATA 2022)
     s = sample_wigner(frequencies=[1000.0], normal_modes=[[[1.0, 0, 0]]],
                       equilibrium=[[0.0, 0, 0]], masses=[1.0], n_samples=4, random_state=0)
     rng = np.random.default_rng(0)
@@ -63,7 +65,7 @@ def test_wigner_cartesian_widths_one_dimension():
 
 
 def test_wigner_moments_ground_and_thermal():
-    # analytic HO moments (5.1) from memory; statistical tolerances of method notes section 5:
+    # analytic HO moments from memory; statistical tolerances (3 sigma, std of mean 1/sqrt(N)):
     # <E>/(hbar omega/2) = 1 +- 0.0067 and var(Q) 2 omega / hbar = 1 +- 0.0095 for N = 2e5
     n = 200_000
     omega = 1000.0 / HARTREE_CM1
@@ -96,7 +98,7 @@ def _triatomic(linear: bool):
 @pytest.mark.parametrize("linear", [False, True])
 def test_normal_modes_from_hessian_recovers_frequencies(linear):
     """Build a Hessian from chosen frequencies in the vibrational subspace and recover them."""
-    from ensemblelab.compute.dynamics.initial import _rigid_basis
+    from ensemblelab.compute.dynamics.wigner import _rigid_basis
     from ensemblelab.data.elements import masses_for
     from ensemblelab.units import BOHR_ANGSTROM
 
@@ -117,7 +119,7 @@ def test_normal_modes_from_hessian_recovers_frequencies(linear):
 
 
 def test_sample_from_hessian_reports_imaginary_modes_and_kinetic_energy():
-    from ensemblelab.compute.dynamics.initial import _rigid_basis
+    from ensemblelab.compute.dynamics.wigner import _rigid_basis
     from ensemblelab.data.elements import masses_for
     from ensemblelab.units import BOHR_ANGSTROM
 
@@ -135,7 +137,7 @@ def test_sample_from_hessian_reports_imaginary_modes_and_kinetic_energy():
     assert s.soft_modes["reason"].tolist() == ["imaginary"]
     assert s.soft_modes["frequency"].iloc[0] == pytest.approx(-300.0, rel=1e-9)
     np.testing.assert_allclose(s.frequencies, [1600.0, 3700.0], rtol=1e-9)
-    # Cartesian kinetic energy 1/2 v^T M v equals 1/2 P^T P (method notes section 5) from memory
+    # Cartesian kinetic energy 1/2 v^T M v equals 1/2 P^T P from memory
     from ensemblelab.units import AU_TIME_FS
 
     v_au = s.velocities.reshape(50, -1) / (BOHR_ANGSTROM / AU_TIME_FS)
@@ -159,10 +161,10 @@ def _worked_table():
 
 
 def test_doorway_worked_example():
-    # method notes section 1.6 computed independently (not published): Gamma_pu = 0.091248 eV, w =
+    # computed independently (not published): Gamma_pu = 0.091248 eV, w =
     # (0.0357934, 8.20699e-7),
     # fraction on state 1 = 0.999977 (rel 1e-5)
-    w = doorway_weights(_worked_table(), photon_energy=4.1, fwhm=20.0)
+    w = doorway_table(_worked_table(), photon_energy=4.1, fwhm=20.0)
     np.testing.assert_allclose(w["weight"], [0.0357934, 8.20699e-7], rtol=1e-5)
     frac = w["weight"].iloc[0] / w["weight"].sum()
     assert frac == pytest.approx(0.999977, rel=1e-5)
@@ -178,8 +180,8 @@ def test_doorway_oscillator_strength_form_has_one_over_de():
     t = _worked_table()
     f = 2.0 / 3.0 * (t["excitation_energy"] / HARTREE_EV) * t["mu2"]
     tf = t.drop(columns="mu2").assign(oscillator_strength=f)
-    w_mu = doorway_weights(t, photon_energy=4.1, fwhm=20.0)["weight"].to_numpy()
-    w_f = doorway_weights(tf, photon_energy=4.1, fwhm=20.0)
+    w_mu = doorway_table(t, photon_energy=4.1, fwhm=20.0)["weight"].to_numpy()
+    w_f = doorway_table(tf, photon_energy=4.1, fwhm=20.0)
     np.testing.assert_allclose(w_f["weight"], w_mu, rtol=1e-12)
     naive = f.to_numpy() * w_f["spectral"].to_numpy()
     ratio = (naive[1] / naive[0]) / (w_mu[1] / w_mu[0])
@@ -189,27 +191,27 @@ def test_doorway_oscillator_strength_form_has_one_over_de():
 def test_doorway_accepts_pulse_objects_and_validates():
     from ensemblelab.compute.spectroscopy.pulses import GaussianPulse
 
-    w1 = doorway_weights(_worked_table(), pump=GaussianPulse(photon_energy=4.1, fwhm=20.0))
-    w2 = doorway_weights(_worked_table(), photon_energy=4.1, fwhm=20.0)
+    w1 = doorway_table(_worked_table(), pump=GaussianPulse(photon_energy=4.1, fwhm=20.0))
+    w2 = doorway_table(_worked_table(), photon_energy=4.1, fwhm=20.0)
     np.testing.assert_array_equal(w1["weight"], w2["weight"])
     with pytest.raises(SchemaError, match="mu2"):
-        doorway_weights(_worked_table().drop(columns="mu2"), photon_energy=4.1, fwhm=20.0)
+        doorway_table(_worked_table().drop(columns="mu2"), photon_energy=4.1, fwhm=20.0)
     with pytest.raises(SchemaError, match="photon_energy"):
-        doorway_weights(_worked_table(), fwhm=20.0)
+        doorway_table(_worked_table(), fwhm=20.0)
     t = _worked_table()
     before = t.copy()
-    doorway_weights(t, photon_energy=4.1, fwhm=20.0)
+    doorway_table(t, photon_energy=4.1, fwhm=20.0)
     pd.testing.assert_frame_equal(t, before)  # input not modified
 
 
 def test_rejection_sampling_follows_the_weights():
-    # accepted fraction of a pair = w / w_max (method notes section 1.2); binomial 5 sigma
+    # accepted fraction of a pair = w / w_max (derived independently); binomial 5 sigma
     n = 20000
     rng = np.random.default_rng(0)
     de = rng.uniform(3.8, 4.4, size=n)
     t = pd.DataFrame({"sample": np.arange(n), "state": 1, "excitation_energy": de, "mu2": 1.0})
     sel = select_initial_conditions(t, photon_energy=4.1, fwhm=20.0, random_state=4)
-    w = doorway_weights(t, photon_energy=4.1, fwhm=20.0)["weight"].to_numpy()
+    w = doorway_table(t, photon_energy=4.1, fwhm=20.0)["weight"].to_numpy()
     p = w / w.max()
     expected = p.sum()
     assert abs(len(sel) - expected) < 5 * np.sqrt(np.sum(p * (1 - p)))

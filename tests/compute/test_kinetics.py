@@ -12,10 +12,9 @@ from scipy.special import erfc
 from ensemblelab.compute.kinetics import _kernels_populations as K
 from ensemblelab.compute.kinetics import _reference_populations as R
 from ensemblelab.compute.kinetics.populations import populations
-from ensemblelab.compute.kinetics.rates import (
-    KineticsResult,
+from ensemblelab.compute.kinetics.rates import KineticsResult, fit_kinetics
+from ensemblelab.compute.kinetics.schemes import (
     exp_decay,
-    fit_kinetics,
     parallel,
     sequential,
     sequential_maximum,
@@ -27,17 +26,17 @@ from ensemblelab.testing import TOY_TRUTH, make_toy_ensemble
 FWHM_PER_SIGMA = 2 * math.sqrt(2 * math.log(2))  # Gaussian FWHM / sigma, from memory
 
 
-# ------------------------------------------------------------------ IRF convolution (7.2)
+# ------------------------------------------------------------------ IRF convolution
 def test_irf_exp_unit_sigma_tau_at_t0():
-    # method notes 7.5: sigma = tau = 1 at t = t0 -> 0.5 e^0.5 erfc(1/sqrt 2) = 0.2615783 computed
+    # sigma = tau = 1 at t = t0 -> 0.5 e^0.5 erfc(1/sqrt 2) = 0.2615783 computed
     # independently (not published)
     got = float(K.irf_exp(np.array(0.0), 1.0, 1.0))
     assert got == pytest.approx(0.5 * math.exp(0.5) * erfc(1 / math.sqrt(2)), abs=1e-14)
     assert got == pytest.approx(0.2615783, abs=1e-7)
 
 
-def test_irf_exp_method_notes_values_tau100_fwhm50():
-    # method notes 7.5 / 2.4 computed independently (not published): tau = 100 fs, FWHM = 50 fs at t
+def test_irf_exp_values_tau100_fwhm50():
+    # computed independently (not published): tau = 100 fs, FWHM = 50 fs at t
     # = -50, 0, 50, 200 fs
     got = exp_decay([-50.0, 0.0, 50.0, 200.0], tau=100.0, irf_fwhm=50.0)
     np.testing.assert_allclose(got, [0.008646, 0.425407, 0.610385, 0.138421], atol=1e-6)
@@ -50,7 +49,7 @@ def test_irf_exp_against_quadrature_and_discrete_convolution():
     closed = exp_decay(ts, tau=tau, irf_fwhm=fwhm)
     quad = [R.irf_exp_quad(t, tau, sigma) for t in ts]  # scipy.integrate.quad
     np.testing.assert_allclose(closed, quad, rtol=1e-9, atol=1e-13)
-    # scipy.signal.fftconvolve on a fine grid (dt = 0.01 fs): method notes 2.4 discrete tol 5e-4
+    # scipy.signal.fftconvolve on a fine grid (dt = 0.01 fs): discrete tol 5e-4
     dt = 0.01
     grid = np.arange(-200.0, 400.0 + dt / 2, dt)
     f = np.where(grid >= 0, np.exp(-np.clip(grid, 0, None) / tau), 0.0)
@@ -76,7 +75,7 @@ def test_irf_exp_no_overflow_for_extreme_arguments():
 
 
 def test_irf_step_half_at_time_zero():
-    # method notes 2.4: unit step convolved (any sigma) at 0 -> 0.5 derived and computed
+    # unit step convolved (any sigma) at 0 -> 0.5 derived and computed
     # independently (not published)
     assert float(K.irf_step(np.array(0.0), 7.3)) == pytest.approx(0.5, abs=1e-12)
 
@@ -94,8 +93,8 @@ def test_irf_texp_matches_quadrature():
 
 
 # ------------------------------------------------------------------ sequential model
-def test_sequential_method_notes_values():
-    # method notes 7.5 computed independently (not published): tau1 = 50, tau2 = 200 fs; t* =
+def test_sequential_values():
+    # computed independently (not published): tau1 = 50, tau2 = 200 fs; t* =
     # 92.41962 fs, B_max = 4^(-1/3)
     tmax, bmax = sequential_maximum(50.0, 200.0)
     assert tmax == pytest.approx(92.41962, abs=1e-5)
@@ -109,7 +108,7 @@ def test_sequential_method_notes_values():
 
 
 def test_sequential_equal_rates_and_against_ode():
-    # k1 = k2: B = k t e^{-k t}, maximum 1/e at t = tau (method notes 7.2, from memory)
+    # k1 = k2: B = k t e^{-k t}, maximum 1/e at t = tau (from memory)
     t = np.array([0.0, 40.0, 80.0, 200.0])
     abc = sequential(t, tau1=80.0, tau2=80.0)
     np.testing.assert_allclose(abc[:, 1], t / 80.0 * np.exp(-t / 80.0), atol=1e-14)
@@ -152,27 +151,28 @@ def test_fit_kinetics_recovers_noiseless_curves_exactly():
     abc = sequential(t, tau1=50.0, tau2=200.0)
     frame = pd.DataFrame({"time": np.repeat(t, 3), "state": np.tile([2, 1, 0], t.size),
                           "population": abc.ravel()})
-    res = fit_kinetics(frame, model="sequential", states=(2, 1, 0))
+    res = fit_kinetics(frame, scheme="sequential", states=(2, 1, 0), interval="covariance")
     assert res.params["tau1"] == pytest.approx(50.0, rel=1e-7)
     assert res.params["tau2"] == pytest.approx(200.0, rel=1e-7)
-    assert res.params["t_max_B"] == pytest.approx(92.41962, abs=1e-4)  # method notes 7.5
+    assert res.params["t_max_B"] == pytest.approx(92.41962, abs=1e-4)  # computed independently
     assert "covariance" in res.interval_method
     par = parallel(t, tau=80.0, branching=0.3)
     frame2 = frame.assign(population=par.ravel())
-    r2 = fit_kinetics(frame2, model="parallel", states=(2, 1, 0))
+    r2 = fit_kinetics(frame2, scheme="parallel", states=(2, 1, 0), interval="covariance")
     assert r2.params["tau"] == pytest.approx(80.0, rel=1e-7)
     assert r2.params["branching"] == pytest.approx(0.3, rel=1e-7)
     assert r2.params["tau_B"] == pytest.approx(80.0 / 0.3, rel=1e-7)
     single = single_exponential(t, tau=70.0, latency=15.0, p_inf=0.1, irf_fwhm=30.0)
     frame3 = pd.DataFrame({"time": t, "state": 0, "population": single})
-    r3 = fit_kinetics(frame3, latency=True, offset=True, irf_fwhm=30.0, states=0)
+    r3 = fit_kinetics(frame3, latency=True, offset=True, irf_fwhm=30.0, states=0,
+                      interval="covariance")
     assert (r3.params["tau"], r3.params["latency"], r3.params["p_inf"]) == pytest.approx(
         (70.0, 15.0, 0.1), rel=1e-6)
 
 
 def test_fit_kinetics_toy_ensemble_bootstrap_interval():
     ens = make_toy_ensemble(300, seed=21)
-    res = fit_kinetics(ens, n_boot=500, random_state=1)
+    res = fit_kinetics(ens, interval="bootstrap", n_boot=500, random_state=1)
     assert isinstance(res, KineticsResult)
     lo, hi = res.interval("tau")
     assert lo < res.params["tau"] < hi
@@ -189,13 +189,14 @@ def test_fit_kinetics_toy_ensemble_bootstrap_interval():
                                res.curves["residual"], atol=1e-15)
     # frame + ens gives the same bootstrap as the ensemble itself
     pop = populations(ens)
-    res2 = fit_kinetics(pop, ens=ens, n_boot=500, random_state=1)
+    res2 = fit_kinetics(pop, ens=ens, interval="bootstrap", n_boot=500, random_state=1)
     assert res2.interval("tau") == pytest.approx((lo, hi), rel=1e-9)
 
 
 def test_batched_refit_equals_loop_of_scipy_fits():
     ens = make_toy_ensemble(80, seed=5, t_max=300.0, dt=3.0)
-    res = fit_kinetics(ens, model="sequential", states=("S2", "S1", "S0"), n_boot=0)
+    res = fit_kinetics(ens, scheme="sequential", states=("S2", "S1", "S0"),
+                       interval="covariance")
     prob = res._problem
     from ensemblelab.compute.kinetics.populations import population_arrays
 
@@ -213,16 +214,39 @@ def test_batched_refit_equals_loop_of_scipy_fits():
 
 def test_fit_kinetics_errors():
     ens = make_toy_ensemble(10)
-    with pytest.raises(SchemaError, match="'model' parameter"):
-        fit_kinetics(ens, model="triple")
+    with pytest.raises(SchemaError, match="'scheme' parameter"):
+        fit_kinetics(ens, scheme="triple")
     with pytest.raises(SchemaError, match="needs 'states'"):
-        fit_kinetics(ens, model="sequential")
+        fit_kinetics(ens, scheme="sequential")
     with pytest.raises(SchemaError, match="unknown state label"):
-        fit_kinetics(ens, model="sequential", states=("S9", "S1"))
+        fit_kinetics(ens, scheme="sequential", states=("S9", "S1"))
     with pytest.raises(SchemaError, match="columns"):
         import pandas as pd
 
         fit_kinetics(pd.DataFrame({"t": [1]}))
+    with pytest.raises(SchemaError, match="'interval' parameter"):
+        fit_kinetics(ens, interval="wald")
+    with pytest.raises(SchemaError, match="'n_boot' parameter.*interval=None"):
+        fit_kinetics(ens, interval="bootstrap", n_boot=0)
+    with pytest.raises(SchemaError, match="needs the ensemble"):
+        fit_kinetics(populations(ens), interval="bootstrap")
+
+
+def test_fit_kinetics_interval_choice_is_explicit():
+    ens = make_toy_ensemble(60, seed=4)
+    none = fit_kinetics(ens, interval=None)
+    cov = fit_kinetics(ens, interval="covariance")
+    boot = fit_kinetics(ens, interval="bootstrap", n_boot=40, random_state=0)
+    # one point estimate whatever the interval choice (the fit does not depend on it)
+    assert none.params["tau"] == cov.params["tau"] == boot.params["tau"]
+    assert none.interval_method == "none" and none.boot_params is None
+    assert np.isnan(none.interval("tau")).all()
+    assert cov.interval_method.startswith("covariance") and cov.boot_params is None
+    assert boot.interval_method.startswith("bootstrap") and boot.boot_params.shape == (40, 1)
+    for res in (cov, boot):
+        lo, hi = res.interval("tau")
+        assert lo < res.params["tau"] < hi
+    assert none.scheme == "single"
 
 
 @pytest.mark.slow
@@ -232,7 +256,7 @@ def test_fit_kinetics_bootstrap_interval_coverage():
     n_rep, hits = 200, 0
     for r in range(n_rep):
         ens = make_toy_ensemble(100, seed=1000 + r, n_atoms=1, dt=2.0)
-        lo, hi = fit_kinetics(ens, n_boot=300, random_state=r).interval("tau")
+        lo, hi = fit_kinetics(ens, interval="bootstrap", n_boot=300, random_state=r).interval("tau")
         hits += lo <= TOY_TRUTH["tau"] <= hi
     # binomial sd at 95 % over 200 repeats is 1.5 %; accept -3.5 / +3 sd
     assert 0.897 <= hits / n_rep <= 0.995

@@ -1,4 +1,4 @@
-"""Gaussian pulses: widths, cross-correlation, n-photon rules (method notes section 2.4)."""
+"""Gaussian pulses: widths, cross-correlation, n-photon rules."""
 
 from __future__ import annotations
 
@@ -21,7 +21,7 @@ from ensemblelab.errors import SchemaError
 
 @pytest.mark.parametrize(
     ("fwhm", "gamma"),
-    # method notes 2.4 table, computed independently (not published)
+    # computed independently (not published)
     [(10, 0.182495), (20, 0.091248), (30, 0.060832), (50, 0.036499), (100, 0.018250)],
 )
 def test_pulse_spectral_fwhm_table(fwhm, gamma):
@@ -33,7 +33,7 @@ def test_pulse_time_bandwidth_constants():
     hbar = sc.physical_constants["reduced Planck constant in eV s"][0] * 1e15  # CODATA via scipy
     p = GaussianPulse(photon_energy=1.0, fwhm=1.0)
     assert p.spectral_fwhm == pytest.approx(4 * math.log(2) * hbar, rel=1e-12)
-    # 1.8249510 eV fs and TBP 0.4412712: method notes 2.4, computed independently (not published)
+    # 1.8249510 eV fs and TBP 0.4412712: computed independently (not published)
     assert p.spectral_fwhm == pytest.approx(1.8249510, abs=1e-7)
     assert 2 * math.log(2) / math.pi == pytest.approx(0.4412712, abs=1e-7)
 
@@ -54,7 +54,7 @@ def test_pulse_spectral_intensity_is_fourier_transform_of_envelope():
 
 
 def test_pulse_cross_correlation_30_40():
-    # T_cc = 50 fs, sigma_cc = 21.23305 fs: method notes 2.4, derived and computed independently
+    # T_cc = 50 fs, sigma_cc = 21.23305 fs: derived and computed independently
     # (not published)
     pu, pr = GaussianPulse(photon_energy=4, fwhm=30), GaussianPulse(photon_energy=5, fwhm=40)
     assert cross_correlation_fwhm(pu, pr) == pytest.approx(50.0, abs=1e-9)
@@ -70,7 +70,7 @@ def test_pulse_cross_correlation_30_40():
 
 
 def test_pulse_two_photon_probe():
-    # effective T = 21.2132 fs, Gamma^(2) = 0.086029 eV: method notes 2.4, derived and computed
+    # effective T = 21.2132 fs, Gamma^(2) = 0.086029 eV: derived and computed
     # independently (not published)
     p = GaussianPulse(photon_energy=2.5, fwhm=30.0, n_photons=2)
     assert p.effective_fwhm == pytest.approx(21.2132, abs=1e-4)
@@ -84,7 +84,7 @@ def test_pulse_line_shape_area_and_peak():
     p = GaussianPulse(photon_energy=5.0, fwhm=30.0)
     e = np.linspace(4.5, 5.5, 20001)
     assert np.trapezoid(p.line_shape(e), e) == pytest.approx(1.0, rel=1e-9)
-    # peak height 15.4432 eV^-1: method notes 1.6, computed independently (not published)
+    # peak height 15.4432 eV^-1: computed independently (not published)
     assert float(gaussian(1.0, 1.0, p.spectral_fwhm)) == pytest.approx(15.4432, rel=1e-5)
 
 
@@ -101,8 +101,8 @@ def test_pulse_rejects_bad_n_photons():
 
 def test_cross_correlation_with_a_two_photon_probe():
     # an n-photon probe acts with intensity^n: its temporal FWHM shrinks by sqrt(n), so
-    # T_cc = sqrt(T_pu^2 + T_pr^2 / n) = sqrt(30^2 + 40^2 / 2) = 41.231056 fs (method notes
-    # 2.2; derived and computed independently (not published))
+    # T_cc = sqrt(T_pu^2 + T_pr^2 / n) = sqrt(30^2 + 40^2 / 2) = 41.231056 fs
+    # (derived and computed independently (not published))
     pump = GaussianPulse(photon_energy=4.0, fwhm=30.0)
     probe = GaussianPulse(photon_energy=2.5, fwhm=40.0, n_photons=2)
     assert cross_correlation_fwhm(pump, probe) == pytest.approx(41.231056, abs=1e-6)

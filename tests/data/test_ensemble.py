@@ -146,3 +146,81 @@ def test_repr_and_html_summary():
     ens = make_toy_ensemble(3)
     assert "trajectories" in repr(ens) and "3" in repr(ens)
     assert "<table>" in ens._repr_html_()
+
+
+def _writes_through_frame(get_frame):
+    """Every way of writing into a frame handed out by the ensemble (common practice)."""
+    def loc(f):
+        f.loc[0, f.columns[1]] = 99
+    def iloc(f):
+        f.iloc[0, 1] = 99
+    def new_column(f):
+        f["user"] = 1.0
+    def replace_column(f):
+        f[f.columns[1]] = 99
+    def del_column(f):
+        del f[f.columns[-1]]
+    def series_setitem(f):
+        s = f[f.columns[1]]
+        s.iloc[0] = 99
+    def numpy_view(f):
+        f[f.columns[1]].to_numpy()[0] = 99
+    def values_view(f):
+        f[f.columns[1]].values[0] = 99
+    def asarray_view(f):
+        np.asarray(f[f.columns[1]])[0] = 99
+    def block_view(f):
+        f[[f.columns[0], f.columns[1]]].to_numpy()[0, 1] = 99
+    return [loc, iloc, new_column, replace_column, del_column, series_setitem, numpy_view,
+            values_view, asarray_view, block_view]
+
+
+@pytest.mark.parametrize("attr", ["snapshots", "trajectories"])
+def test_frames_cannot_be_changed_through_the_ensemble(attr):
+    ens = make_toy_ensemble(n_trajectories=4, seed=3)
+    before = getattr(ens, attr).copy(deep=True)
+    for write in _writes_through_frame(lambda: getattr(ens, attr)):
+        frame = getattr(ens, attr)
+        try:
+            write(frame)
+        except ValueError:  # a read-only buffer refusing the write is fine too
+            pass
+        pd.testing.assert_frame_equal(getattr(ens, attr), before, check_exact=True,
+                                      obj=f"{attr} after {write.__name__}")
+
+
+def test_frame_fields_cannot_be_rebound_and_arrays_refuse_writes():
+    import dataclasses
+
+    ens = make_toy_ensemble(n_trajectories=3, seed=1)
+    with pytest.raises(dataclasses.FrozenInstanceError):
+        ens.snapshots = ens.snapshots.iloc[:1]  # type: ignore[misc]
+    with pytest.raises(dataclasses.FrozenInstanceError):
+        ens.trajectories = ens.trajectories.iloc[:1]  # type: ignore[misc]
+    for name in ("geometries", "energies", "masses", "amplitudes"):
+        arr = getattr(ens, name)
+        if arr is None:
+            continue
+        with pytest.raises(ValueError, match="read-only"):
+            arr.reshape(-1)[0] = 1.0
+
+
+def test_snapshots_access_shares_buffers_instead_of_copying():
+    # cheap access: two accesses see one buffer (no copy of n_snapshots rows per access)
+    ens = make_toy_ensemble(n_trajectories=5, seed=2)
+    a = ens.snapshots["time"].to_numpy()
+    b = ens.snapshots["time"].to_numpy()
+    assert np.shares_memory(a, b)
+    assert ens.snapshots is not ens.snapshots  # but never the stored object itself
+
+
+def test_constructor_copies_frames_it_is_given():
+    ens = _tiny()
+    frame = ens.snapshots.copy(deep=True)
+    trajs = ens.trajectories.drop(columns=["n_steps", "t_end"])
+    built = Ensemble(snapshots=frame, geometries=ens.geometries, energies=ens.energies,
+                     symbols=ens.symbols, masses=ens.masses, trajectories=trajs)
+    frame.loc[0, "time"] = 42.0
+    trajs.loc[0, "weight"] = 5.0
+    assert built.snapshots.loc[0, "time"] == 0.0
+    assert built.trajectories.loc[0, "weight"] == 1.0

@@ -62,7 +62,7 @@ def _hand_table(tmp_path, rows=None):
 def test_table_units_converted_and_rows_sorted(tmp_path):
     path = _hand_table(tmp_path)
     ens = load_table(path, energy_unit="hartree", time_unit="au", state_base=1)
-    # CODATA 2022 via scipy.constants (ensemblelab.units); method-notes section 9 literals
+    # CODATA 2022 via scipy.constants (ensemblelab.units) and its literal value
     assert ens.energies[0, 1] == pytest.approx(-0.40 * 27.211386245981, rel=1e-8)
     np.testing.assert_allclose(ens.energies[:, 0], -0.5 * HARTREE_EV, rtol=1e-15)
     assert ens.snapshots["time"].tolist() == [0.0, 10 * AU_TIME_FS, 0.0]

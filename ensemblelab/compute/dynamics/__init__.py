@@ -17,16 +17,7 @@ LinearVibronicModel, TorsionVibronicModel
 from __future__ import annotations
 
 from .fssh import FSSHResult, run_fssh
-from .initial import (
-    WignerSample,
-    normal_modes_from_hessian,
-    sample_normal_modes,
-    sample_wigner,
-    sample_wigner_from_hessian,
-    select_initial_conditions,
-    thermal_factor,
-    write_initial_conditions,
-)
+from .initial import select_initial_conditions, write_initial_conditions
 from .models import (
     DiabaticModel,
     DualAvoidedCrossing,
@@ -35,6 +26,14 @@ from .models import (
     SingleAvoidedCrossing,
     TorsionVibronicModel,
     check_model,
+)
+from .wigner import (
+    WignerSample,
+    normal_modes_from_hessian,
+    sample_normal_modes,
+    sample_wigner,
+    sample_wigner_from_hessian,
+    thermal_factor,
 )
 
 __all__ = [

@@ -4,7 +4,8 @@ Everything here works in Hartree atomic units on arrays over the whole ensemble
 (leading axis n_traj); no Python loop runs over trajectories. Inputs are assumed
 valid (the driver in :mod:`ensemblelab.compute.dynamics.fssh` checks them).
 
-Scheme of one step of length dt (method notes section 6):
+Scheme of one step of length dt (fewest switches: J. Chem. Phys. 93, 1061 (1990), "Molecular
+dynamics with electronic transitions"):
 
 1. velocity Verlet on the active adiabatic surface (Hellmann-Feynman forces
    ``-<a|dV/dq|a>``), with an optional zero-temperature friction step whose

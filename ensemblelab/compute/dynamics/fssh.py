@@ -336,7 +336,7 @@ def run_fssh(
     n_steps = int(round(t_max / dt))
     n_saved = n_steps // save_every + 1
     n_s = model.n_states
-    has_cat = hasattr(model, "cation_diabatic") and getattr(model, "n_cation", 0)
+    has_cat = hasattr(model, "cation_diabatic") and bool(getattr(model, "n_cation", 0))
     n_c = int(model.n_cation) if has_cat else 0
     dyson_d = np.asarray(model.dyson_diabatic, float) if has_cat and getattr(
         model, "dyson_diabatic", None) is not None else None
@@ -388,6 +388,7 @@ def run_fssh(
                 ec, uc = K.adiabatic_states(vc, None)
                 uc_saved = np.zeros((n_traj, n_c, n_c))
             else:
+                assert uc_saved is not None
                 ec, uc = K.adiabatic_states(vc, uc_saved[w])
             uc_saved[w] = uc
             out["cation_energies"][k, w] = ec * HARTREE_EV
@@ -422,9 +423,9 @@ def run_fssh(
         from tqdm.auto import tqdm
 
         steps = tqdm(steps, desc="fssh", unit="step")
-    kwargs = dict(masses=masses, friction=friction, decoherence=decoherence == "edc",
-                  edc_c=float(edc_c), edc_e0=float(edc_e0),
-                  reverse_frustrated=frustrated == "reverse", n_sub=int(n_substeps))
+    kwargs: dict[str, Any] = dict(
+        masses=masses, friction=friction, decoherence=decoherence == "edc", edc_c=float(edc_c),
+        edc_e0=float(edc_e0), reverse_frustrated=frustrated == "reverse", n_sub=int(n_substeps))
     last_step = 0
     for step in steps:
         zeta = rng.random(n_traj)

@@ -37,8 +37,7 @@ their signs continuous along each trajectory. The adiabatic-to-diabatic matrix
 ``U`` follows the package convention ``adiabatic_a = sum_d U[a, d] diabatic_d``.
 
 The three one-dimensional two-state models are those of J. Chem. Phys. 93, 1061
-(1990), "Molecular dynamics with electronic transitions" (parameters from memory,
-method notes section 6).
+(1990), "Molecular dynamics with electronic transitions" (parameters from memory).
 """
 
 from __future__ import annotations
@@ -253,7 +252,7 @@ class LinearVibronicModel:
     ``H = sum_m (omega_m / 2)(p_m^2 + q_m^2) 1 + W(q)`` with
     ``W_ii = E_i + sum_m kappa[m, i] q_m`` and ``W_ij = eta_ij + sum_m lam[m, i, j] q_m``.
     Parameters are in eV; internally the model works in hartree with masses
-    ``1 / omega_m`` so that ``hbar dq/dt = omega p`` (method notes section 6).
+    ``1 / omega_m`` so that ``hbar dq/dt = omega p`` (dimensionless normal coordinates).
 
     Parameters
     ----------

@@ -11,7 +11,8 @@ from .populations import (
     population_consistency,
     populations,
 )
-from .rates import KINETIC_MODELS, KineticsResult, fit_kinetics
+from .rates import KineticsResult, fit_kinetics
+from .schemes import KINETIC_SCHEMES
 
 __all__ = [
     "populations",
@@ -21,7 +22,7 @@ __all__ = [
     "POPULATION_KINDS",
     "fit_kinetics",
     "KineticsResult",
-    "KINETIC_MODELS",
+    "KINETIC_SCHEMES",
     "fit_global",
     "GlobalFitResult",
     "decay_profiles",

@@ -39,7 +39,8 @@ _SQRT2PI = np.sqrt(2.0 * np.pi)
 def wilson_interval(p: np.ndarray, n: np.ndarray, z: float) -> tuple[np.ndarray, np.ndarray]:
     """Wilson score interval for proportion(s) `p` out of `n` trials (vectorised).
 
-    Formula (7.1) of the method notes; ``n`` may be a non-integer effective size.
+    Wilson's score interval (J. Amer. Stat. Assoc. 22, 209 (1927), "Probable inference, the
+    law of succession, and statistical inference"); ``n`` may be a non-integer effective size.
     Entries with ``n <= 0`` give NaN.
     """
     p = np.asarray(p, dtype=np.float64)

@@ -1,7 +1,7 @@
 """Global lifetime analysis of a time-resolved map by variable projection.
 
-Model (method notes 7.4): ``S(E_j, t_m) ~ sum_l DAS_l(E_j) y_l(t_m) + DAS_inf(E_j) y_inf(t_m)``
-with ``y_l`` the Gaussian-IRF-convolved exponential (7.2) of lifetime tau_l and
+Model: ``S(E_j, t_m) ~ sum_l DAS_l(E_j) y_l(t_m) + DAS_inf(E_j) y_inf(t_m)``
+with ``y_l`` the Gaussian-IRF-convolved exponential of lifetime tau_l and
 ``y_inf`` the convolved step, both starting at t0. For trial nonlinear
 parameters (lifetimes, and optionally the IRF width and t0) the decay-associated
 spectra (DAS) are the linear least-squares solution for every energy column at
@@ -18,7 +18,7 @@ with one common variance), or, with
 plus resampled residual *rows* (whole delays, keeping the correlation along
 energy).
 
-A sequential target model (``model="sequential"``) interprets the same
+A sequential target scheme (``scheme="sequential"``) interprets the same
 exponentials as a chain A -> B -> ... (fastest lifetime first; with
 ``include_infinite`` ending in a non-decaying species) and returns the
 species-associated spectra ``SAS = (B^T)^{-1} DAS`` with B the chain's
@@ -43,7 +43,7 @@ from scipy.stats import norm
 
 from ...errors import NumericalWarning, SchemaError
 from . import _kernels_populations as _k
-from .rates import fwhm_to_sigma
+from .schemes import fwhm_to_sigma
 
 __all__ = ["fit_global", "GlobalFitResult", "decay_profiles"]
 
@@ -112,7 +112,7 @@ class GlobalFitResult:
     irf_fwhm : float or None
         IRF FWHM in fs (fitted when ``fix_irf=False``).
     t0 : float
-    model : str
+    scheme : str
         ``"parallel"`` (DAS) or ``"sequential"`` (also SAS).
     sas : ndarray or None, shape (p, n_energies)
         Species-associated spectra of the sequential target model.
@@ -142,7 +142,7 @@ class GlobalFitResult:
     profiles: np.ndarray
     irf_fwhm: float | None
     t0: float
-    model: str
+    scheme: str
     sas: np.ndarray | None
     concentrations: np.ndarray | None
     species: tuple[str, ...]
@@ -165,20 +165,21 @@ class GlobalFitResult:
     def sas_frame(self) -> pd.DataFrame:
         """Tidy SAS of the sequential model: ``energy, species, amplitude``."""
         if self.sas is None:
-            raise ValueError("species-associated spectra need fit_global(model='sequential').")
+            raise ValueError("species-associated spectra need fit_global(scheme='sequential').")
         n_e = self.energies.size
         return pd.DataFrame({"energy": np.tile(self.energies, len(self.species)),
                              "species": np.repeat(self.species, n_e),
                              "amplitude": self.sas.ravel()})
 
     def __str__(self) -> str:
-        lines = [f"Global lifetime analysis ({self.model}), {len(self.lifetimes)} lifetime(s)"
+        lines = [f"Global lifetime analysis ({self.scheme}), {len(self.lifetimes)} lifetime(s)"
                  f"{' + infinite' if 'inf' in self.components else ''}; IRF FWHM "
                  f"{'none' if self.irf_fwhm is None else f'{self.irf_fwhm:.4g} fs'}, "
                  f"t0 {self.t0:.4g} fs",
                  f"{int(round(self.ci * 100))}% intervals: {self.interval_method}",
                  f"rms residual {self.rmse:.3g} on {self.delays.size} delays x "
                  f"{self.energies.size} energies"]
+        r: Any
         for r in self.summary.itertuples():
             iv = "fixed" if r.fixed else ("-" if not np.isfinite(r.lower)
                                           else f"[{r.lower:.4g}, {r.upper:.4g}]")
@@ -223,12 +224,12 @@ def fit_global(
     fix_t0: bool = True,
     include_infinite: bool = True,
     lifetimes: npt.ArrayLike | None = None,
-    model: str = "parallel",
+    scheme: str = "parallel",
     energy_range: tuple[float, float] | None = None,
     delay_range: tuple[float, float] | None = None,
-    interval: str = "covariance",
-    n_boot: int = 200,
+    interval: str | None = "covariance",
     ci: float = 0.95,
+    n_boot: int = 200,
     random_state: int | np.random.Generator | None = 0,
     energies: npt.ArrayLike | None = None,
     delays: npt.ArrayLike | None = None,
@@ -256,17 +257,18 @@ def fit_global(
         Add a non-decaying component (DAS_inf).
     lifetimes : array_like, shape (L,), optional
         Starting lifetimes in fs (default: a search over a log grid of the delay span).
-    model : {"parallel", "sequential"}
+    scheme : {"parallel", "sequential"}
         Also return species-associated spectra of a sequential chain with
         ``"sequential"`` (fastest lifetime first).
     energy_range, delay_range : (float, float), optional
         Fit only this part of the map (closed ranges, eV / fs).
-    interval : {"covariance", "bootstrap"}
-        Wald intervals from the Jacobian, or a residual-row bootstrap.
-    n_boot : int
-        Bootstrap refits (``interval="bootstrap"``).
+    interval : {"covariance", "bootstrap", None}
+        Wald intervals from the Jacobian, a residual-row bootstrap, or none (NaN
+        bounds).
     ci : float
-        Interval level.
+        Interval level in (0, 1).
+    n_boot : int
+        Number of bootstrap refits (``interval="bootstrap"``), >= 1.
     random_state : int, Generator or None
         Seed of the bootstrap.
     energies, delays, intensity : array_like, optional
@@ -287,12 +289,18 @@ def fit_global(
     80.0
     """
     e, d, s = _as_arrays(trpes_map, energies, delays, intensity)
-    if model not in ("parallel", "sequential"):
-        raise SchemaError(f"The 'model' parameter of fit_global must be 'parallel' or "
-                          f"'sequential'; got {model!r}.")
-    if interval not in ("covariance", "bootstrap"):
-        raise SchemaError(f"The 'interval' parameter of fit_global must be 'covariance' or "
-                          f"'bootstrap'; got {interval!r}.")
+    if scheme not in ("parallel", "sequential"):
+        raise SchemaError(f"The 'scheme' parameter of fit_global must be 'parallel' or "
+                          f"'sequential'; got {scheme!r}.")
+    if interval not in ("covariance", "bootstrap", None):
+        raise SchemaError(f"The 'interval' parameter of fit_global must be 'covariance', "
+                          f"'bootstrap' or None; got {interval!r}.")
+    if interval == "bootstrap" and (isinstance(n_boot, bool) or int(n_boot) != n_boot
+                                     or n_boot < 1):
+        raise SchemaError(f"The 'n_boot' parameter of fit_global must be an int >= 1 with "
+                          f"interval='bootstrap'; got {n_boot!r}.")
+    if not 0.0 < float(ci) < 1.0:
+        raise SchemaError(f"The 'ci' parameter of fit_global must be in (0, 1); got {ci!r}.")
     L = int(n_components)
     if L < 0 or L != n_components or (L == 0 and not include_infinite):
         raise SchemaError(f"The 'n_components' parameter of fit_global must be an int >= 1 "
@@ -409,10 +417,10 @@ def fit_global(
         lo, hi = nat - z * se, nat + z * se
         method = ("covariance (Wald, s^2 [J^T (I - P) J]^-1 marginal over the spectra; "
                   "assumes independent residuals of equal variance)")
-    elif x.size:
+    elif x.size and interval == "bootstrap":
         rng = np.random.default_rng(random_state)
         fit_map = y @ das
-        vals = []
+        refits: list[np.ndarray] = []
         for _ in range(int(n_boot)):
             rows = rng.integers(0, d.size, size=d.size)
             s_b = fit_map + r[rows]
@@ -425,12 +433,14 @@ def fit_global(
 
             sol = least_squares(resid_b, x, method="trf", xtol=1e-10, ftol=1e-10, gtol=1e-10)
             tb, sg, t_z = unpack(sol.x)
-            vals.append(np.r_[np.sort(tb), [sg * _FWHM_PER_SIGMA] if fit_sigma else [],
+            refits.append(np.r_[np.sort(tb), [sg * _FWHM_PER_SIGMA] if fit_sigma else [],
                               [t_z] if not fix_t0 else []])
-        vals = np.asarray(vals)
+        vals = np.asarray(refits)
         lo, hi = np.quantile(vals, [alpha, 1 - alpha], axis=0)
         method = (f"bootstrap ({int(n_boot)} refits; residual rows resampled with replacement, "
                   "percentile)")
+    elif x.size:
+        method = "none"
     else:
         method = "none (no nonlinear parameters)"
 
@@ -452,11 +462,11 @@ def fit_global(
                                           "fixed"])
     sas = conc = None
     species: tuple[str, ...] = ()
-    if model == "sequential":
+    if scheme == "sequential":
         rates = np.r_[1.0 / taus, [0.0] if include_infinite else []]
         b = _k.sequential_coefficients(rates)
         if np.unique(np.round(rates, 14)).size < rates.size:
-            raise SchemaError("fit_global(model='sequential') needs distinct lifetimes.")
+            raise SchemaError("fit_global(scheme='sequential') needs distinct lifetimes.")
         sas = np.linalg.solve(b.T, das)
         conc = y @ b.T
         species = tuple(chr(ord("A") + i) for i in range(p))
@@ -464,7 +474,7 @@ def fit_global(
         lifetimes=taus, lifetime_lower=np.asarray(lo[:L], float),
         lifetime_upper=np.asarray(hi[:L], float), interval_method=method, das=das,
         das_se=das_se, components=comps, energies=e, delays=d, data=s, fitted=y @ das,
-        residuals=r, profiles=y, irf_fwhm=fwhm_out, t0=tz, model=model, sas=sas,
+        residuals=r, profiles=y, irf_fwhm=fwhm_out, t0=tz, scheme=scheme, sas=sas,
         concentrations=conc, species=species, summary=summary,
         rmse=float(math.sqrt(rss / n_obs)), ci=float(ci),
     )

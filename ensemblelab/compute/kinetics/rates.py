@@ -1,30 +1,19 @@
-"""Kinetic models for populations, and fits with bootstrap intervals.
+"""Fits of kinetic schemes to populations, with bootstrap or covariance intervals.
 
-Models (method notes 7.2, 7.3; times in fs, u = t - t0):
+The schemes (``"single"``, ``"sequential"``, ``"parallel"``) and their model
+functions are in :mod:`.schemes`. Fits are unweighted least squares on the
+population curves (time constants fitted as log tau, so they stay positive).
+Intervals (``interval=``):
 
-* ``"single"``: one decaying state with optional latency d and offset P_inf,
-  ``A(u) = 1`` for ``0 <= u < d`` and ``P_inf + (1 - P_inf) exp(-(u - d)/tau)`` after.
-* ``"sequential"``: A -> B -> C with time constants tau1, tau2:
-  ``A = e^{-k1 u}``, ``B = k1/(k2 - k1) (e^{-k1 u} - e^{-k2 u})``, ``C = 1 - A - B``.
-* ``"parallel"``: A decays with total time constant tau into B (fraction
-  ``branching``) and C (the rest): ``B = branching (1 - A)``.
-
-Each can be convolved with a Gaussian instrument response of FWHM `irf_fwhm`
-(closed form with ``erfcx``, eq. 7.2, overflow-free for any u/sigma and tiny tau);
-every model is zero before t0 in that case, i.e. the convolved function is
-``model(u) Theta(u)``, which is what a pump-probe experiment sees.
-
-Fits are unweighted least squares on the population curves (time constants
-fitted as log tau, so they stay positive). Intervals:
-
-* given the ensemble (``fit_kinetics(ens, ...)`` or ``ens=``): percentile
-  bootstrap over whole trajectories -- every resample's populations (computed
-  all at once, see :mod:`.populations`) are refitted, all resamples together by
-  a vectorised Levenberg-Marquardt started at the full-data estimate;
-* given only a populations frame: Wald intervals from the Jacobian covariance.
-  These treat the residuals at different times as independent, which they are
-  not (a trajectory contributes to every time), so they are too narrow; the
-  result says so in ``interval_method``.
+* ``"bootstrap"`` (needs the ensemble: ``fit_kinetics(ens, ...)`` or ``ens=``):
+  percentile bootstrap over whole trajectories -- every resample's populations
+  (computed all at once, see :mod:`.populations`) are refitted, all resamples
+  together by a vectorised Levenberg-Marquardt started at the full-data estimate;
+* ``"covariance"``: Wald intervals from the Jacobian covariance. These treat the
+  residuals at different times as independent, which they are not (a trajectory
+  contributes to every time), so they are too narrow; the result says so in
+  ``interval_method``;
+* ``None``: no intervals (NaN bounds).
 """
 
 from __future__ import annotations
@@ -32,7 +21,7 @@ from __future__ import annotations
 import html
 import math
 import warnings
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, Any
 
@@ -44,202 +33,15 @@ from scipy.stats import norm
 
 from ...errors import NumericalWarning, SchemaError
 from . import _kernels_populations as _k
+from .schemes import _POSITIVE, _UNIT, KINETIC_SCHEMES, _Problem, _Scheme, fwhm_to_sigma
 
 if TYPE_CHECKING:
     from ...data.ensemble import Ensemble
 
-__all__ = [
-    "fit_kinetics",
-    "KineticsResult",
-    "KINETIC_MODELS",
-    "exp_decay",
-    "single_exponential",
-    "sequential",
-    "parallel",
-    "sequential_maximum",
-    "fwhm_to_sigma",
-]
+__all__ = ["fit_kinetics", "KineticsResult", "INTERVAL_CHOICES"]
 
-#: FWHM / sigma of a Gaussian, 2 sqrt(2 ln 2)
-_FWHM_PER_SIGMA = 2.0 * math.sqrt(2.0 * math.log(2.0))
-
-
-def fwhm_to_sigma(fwhm: float | None) -> float:
-    """Standard deviation of a Gaussian of the given FWHM (0 for None)."""
-    return 0.0 if fwhm is None else float(fwhm) / _FWHM_PER_SIGMA
-
-
-# ---------------------------------------------------------------- model functions
-def exp_decay(t: npt.ArrayLike, *, tau: float, t0: float = 0.0,
-              irf_fwhm: float | None = None) -> np.ndarray:
-    """``exp(-(t - t0)/tau) Theta(t - t0)``, optionally convolved with a Gaussian IRF.
-
-    Parameters
-    ----------
-    t : array_like
-        Times in fs.
-    tau : float
-        Time constant in fs (> 0).
-    t0 : float
-        Time zero in fs.
-    irf_fwhm : float, optional
-        FWHM of the Gaussian instrument response in fs.
-
-    Returns
-    -------
-    ndarray, same shape as `t`
-
-    Examples
-    --------
-    >>> round(float(exp_decay(0.0, tau=100.0, irf_fwhm=50.0)), 6)
-    0.425407
-    """
-    u = np.asarray(t, dtype=np.float64) - t0
-    return _k.irf_exp(u, tau, fwhm_to_sigma(irf_fwhm))
-
-
-def single_exponential(t: npt.ArrayLike, *, tau: float, latency: float = 0.0,
-                       p_inf: float = 0.0, t0: float = 0.0,
-                       irf_fwhm: float | None = None) -> np.ndarray:
-    """Population of a state decaying once (after a latency) to an offset.
-
-    ``A(u) = Theta(u) - (1 - p_inf) [Theta(u - d) - e^{-(u - d)/tau} Theta(u - d)]``
-    with u = t - t0, d = latency; convolved term by term with the IRF.
-
-    Returns
-    -------
-    ndarray, same shape as `t`
-    """
-    s = fwhm_to_sigma(irf_fwhm)
-    u = np.asarray(t, dtype=np.float64) - t0
-    return _single(u, tau, latency, p_inf, s)
-
-
-def _single(u, tau, latency, p_inf, s):
-    ud = u - latency
-    return _k.irf_step(u, s) - (1.0 - p_inf) * (_k.irf_step(ud, s) - _k.irf_exp(ud, tau, s))
-
-
-def sequential(t: npt.ArrayLike, *, tau1: float, tau2: float, t0: float = 0.0,
-               irf_fwhm: float | None = None) -> np.ndarray:
-    """Populations of A -> B -> C (all in A at t0), shape (n_times, 3).
-
-    Exact also for tau1 == tau2 (then ``B = k u e^{-k u}``).
-
-    Examples
-    --------
-    >>> abc = sequential([100.0], tau1=50.0, tau2=200.0)
-    >>> [round(float(v), 7) for v in abc[0]]
-    [0.1353353, 0.6282605, 0.2364042]
-    """
-    u = np.asarray(t, dtype=np.float64).ravel() - t0
-    return np.column_stack(_k.sequential_profiles(u, tau1, tau2, fwhm_to_sigma(irf_fwhm)))
-
-
-def parallel(t: npt.ArrayLike, *, tau: float, branching: float, t0: float = 0.0,
-             irf_fwhm: float | None = None) -> np.ndarray:
-    """Populations of A -> B (fraction `branching`) and A -> C, shape (n_times, 3).
-
-    ``A = e^{-u/tau}``, ``B = branching (1 - A)``, ``C = (1 - branching)(1 - A)``;
-    partial time constants are ``tau/branching`` and ``tau/(1 - branching)``.
-    """
-    s = fwhm_to_sigma(irf_fwhm)
-    u = np.asarray(t, dtype=np.float64).ravel() - t0
-    a = _k.irf_exp(u, tau, s)
-    rest = _k.irf_step(u, s) - a
-    return np.column_stack([a, branching * rest, (1.0 - branching) * rest])
-
-
-def sequential_maximum(tau1: float, tau2: float) -> tuple[float, float]:
-    """Time and height of the maximum of the intermediate B of A -> B -> C.
-
-    ``t* = ln(k1/k2)/(k1 - k2)``, ``B(t*) = (k1/k2)^(k2/(k2 - k1))``; for k1 = k2:
-    ``t* = tau``, ``B = 1/e`` (method notes 7.2).
-
-    Examples
-    --------
-    >>> [round(v, 7) for v in sequential_maximum(50.0, 200.0)]
-    [92.4196241, 0.6299605]
-    """
-    k1, k2 = 1.0 / tau1, 1.0 / tau2
-    if abs(k1 - k2) <= 1e-12 * max(k1, k2):
-        return float(tau1), math.exp(-1.0)
-    return math.log(k1 / k2) / (k1 - k2), (k1 / k2) ** (k2 / (k2 - k1))
-
-
-# ---------------------------------------------------------------- model registry
-@dataclass(frozen=True)
-class _Model:
-    name: str
-    params: tuple[str, ...]
-    n_roles: tuple[int, ...]  # allowed numbers of fitted states
-    roles: tuple[str, ...]
-
-
-KINETIC_MODELS: dict[str, _Model] = {
-    "single": _Model("single", ("tau", "latency", "p_inf"), (1,), ("A",)),
-    "sequential": _Model("sequential", ("tau1", "tau2"), (2, 3), ("A", "B", "C")),
-    "parallel": _Model("parallel", ("tau", "branching"), (2, 3), ("A", "B", "C")),
-}
-_POSITIVE = {"tau", "tau1", "tau2"}
-_UNIT = {"tau": "fs", "tau1": "fs", "tau2": "fs", "latency": "fs", "p_inf": "1",
-         "branching": "1", "tau_B": "fs", "tau_C": "fs", "t_max_B": "fs", "B_max": "1"}
-
-
-class _Problem:
-    """Maps free parameters (transformed) to stacked predictions of the fitted states."""
-
-    def __init__(self, model: str, free: list[str], fixed: dict[str, float], times: np.ndarray,
-                 n_roles: int, sigma: float, t0: float) -> None:
-        self.model, self.free, self.fixed = model, free, fixed
-        self.u = times - t0
-        self.n_roles, self.sigma = n_roles, sigma
-
-    def to_natural(self, x: np.ndarray) -> dict[str, np.ndarray]:
-        out: dict[str, Any] = dict(self.fixed)
-        for j, name in enumerate(self.free):
-            v = x[..., j]
-            if name in _POSITIVE:
-                v = np.exp(np.clip(v, -30.0, 60.0))  # 1e-13 .. 1e26 fs
-            elif name == "branching":
-                v = 1.0 / (1.0 + np.exp(-np.clip(v, -40.0, 40.0)))
-            out[name] = v
-        return out
-
-    def to_free(self, natural: dict[str, float]) -> np.ndarray:
-        x = []
-        for name in self.free:
-            v = float(natural[name])
-            if name in _POSITIVE:
-                v = math.log(v)
-            elif name == "branching":
-                v = min(max(v, 1e-6), 1 - 1e-6)
-                v = math.log(v / (1 - v))
-            x.append(v)
-        return np.asarray(x)
-
-    def curves(self, x: np.ndarray) -> np.ndarray:
-        """x (n_b, n_free) -> (n_b, n_roles, n_times)."""
-        p = self.to_natural(x)
-        col = {k: (np.asarray(v, dtype=float)[:, None] if np.ndim(v) else float(v))
-               for k, v in p.items()}
-        u, s = self.u[None, :], self.sigma
-        if self.model == "single":
-            a = _single(u, col["tau"], col["latency"], col["p_inf"], s)
-            out = a[:, None, :]
-        elif self.model == "sequential":
-            a, b, c = _k.sequential_profiles(u, col["tau1"], col["tau2"], s)
-            out = np.stack(np.broadcast_arrays(a, b, c), axis=1)
-        else:
-            a = _k.irf_exp(u, col["tau"], s)
-            rest = _k.irf_step(u, s) - a
-            out = np.stack(np.broadcast_arrays(a, col["branching"] * rest,
-                                               (1.0 - col["branching"]) * rest), axis=1)
-        return out[:, : self.n_roles, :]
-
-    def __call__(self, x: np.ndarray) -> np.ndarray:
-        c = self.curves(x)
-        return c.reshape(c.shape[0], -1)
+#: interval choices of :func:`fit_kinetics`
+INTERVAL_CHOICES = ("bootstrap", "covariance", None)
 
 
 # ---------------------------------------------------------------- result
@@ -249,7 +51,7 @@ class KineticsResult:
 
     Attributes
     ----------
-    model : str
+    scheme : str
         ``"single"``, ``"sequential"`` or ``"parallel"``.
     params : dict of str to float
         Fitted (and fixed) parameters in natural units (fs or 1).
@@ -261,7 +63,8 @@ class KineticsResult:
         ``time, state, label, role, population, fitted, residual`` on the fitted
         time range.
     interval_method : str
-        ``"bootstrap (N resamples of trajectories)"`` or ``"covariance (...)"``.
+        How the intervals were made: ``"bootstrap (N resamples of trajectories, ...)"``,
+        ``"covariance (...)"`` or ``"none"``.
     ci : float
         Confidence level.
     boot_params : DataFrame or None
@@ -276,7 +79,7 @@ class KineticsResult:
         Root-mean-square residual of the full-data fit.
     """
 
-    model: str
+    scheme: str
     params: dict[str, float]
     summary: pd.DataFrame
     curves: pd.DataFrame
@@ -311,10 +114,10 @@ class KineticsResult:
         """Fitted curves on any time grid: ``time, state, role, fitted``."""
         t = np.asarray(times, dtype=np.float64).ravel()
         prob = self._problem
-        p = _Problem(prob.model, prob.free, prob.fixed, t, prob.n_roles, prob.sigma, self.t0)
+        p = _Problem(prob.scheme, prob.free, prob.fixed, t, prob.n_roles, prob.sigma, self.t0)
         x = prob.to_free(self.params)[None, :]
         c = p.curves(x)[0]
-        roles = KINETIC_MODELS[self.model].roles[: prob.n_roles]
+        roles = KINETIC_SCHEMES[self.scheme].roles[: prob.n_roles]
         return pd.DataFrame({
             "time": np.tile(t, len(roles)),
             "state": np.repeat(self.states, t.size),
@@ -323,12 +126,13 @@ class KineticsResult:
         })
 
     def __str__(self) -> str:
-        lines = [f"Kinetic fit: model {self.model!r}, states {list(self.states)}, "
+        lines = [f"Kinetic fit: scheme {self.scheme!r}, states {list(self.states)}, "
                  f"IRF FWHM {self.irf_fwhm if self.irf_fwhm is not None else 'none'}"
                  f"{' fs' if self.irf_fwhm is not None else ''}, t0 {self.t0:g} fs",
                  f"{int(round(self.ci * 100))}% intervals: {self.interval_method}",
                  f"rms residual {self.rmse:.3g}"]
         rows = [("parameter", "value", "interval", "unit")]
+        r: Any
         for r in self.summary.itertuples():
             iv = "fixed" if r.fixed else (
                 "-" if not np.isfinite(r.lower) else f"[{r.lower:.4g}, {r.upper:.4g}]")
@@ -342,7 +146,7 @@ class KineticsResult:
 
     def _repr_html_(self) -> str:
         head = html.escape(
-            f"Kinetic fit ({self.model}), {int(round(self.ci * 100))}% intervals: "
+            f"Kinetic fit ({self.scheme}), {int(round(self.ci * 100))}% intervals: "
             f"{self.interval_method}")
         return f"<div><strong>{head}</strong>{self.summary.to_html(index=False)}</div>"
 
@@ -364,13 +168,13 @@ def _pivot(frame: pd.DataFrame) -> tuple[np.ndarray, dict[int, np.ndarray], dict
             {int(c): wide[c].to_numpy(np.float64) for c in wide.columns}, labels)
 
 
-def _resolve_states(states, available: Sequence[int], labels: dict[int, str], model: _Model,
+def _resolve_states(states, available: Sequence[int], labels: dict[int, str], scheme: _Scheme,
                     first_values: dict[int, float]) -> tuple[int, ...]:
     if states is None:
-        if model.name != "single":
+        if scheme.name != "single":
             raise SchemaError(
-                f"fit_kinetics(model={model.name!r}) needs 'states' naming the "
-                f"{'/'.join(model.roles)} states in order, e.g. states=('S2', 'S1', 'S0')."
+                f"fit_kinetics(scheme={scheme.name!r}) needs 'states' naming the "
+                f"{'/'.join(scheme.roles)} states in order, e.g. states=('S2', 'S1', 'S0')."
             )
         return (max(first_values, key=lambda s: first_values[s]),)
     if isinstance(states, str | int | np.integer):
@@ -387,10 +191,10 @@ def _resolve_states(states, available: Sequence[int], labels: dict[int, str], mo
             if int(s) not in available:
                 raise SchemaError(f"fit_kinetics: unknown state {s!r}; have {list(available)}.")
             out.append(int(s))
-    if len(out) not in model.n_roles:
+    if len(out) not in scheme.n_roles:
         raise SchemaError(
-            f"fit_kinetics(model={model.name!r}) fits {' or '.join(map(str, model.n_roles))} "
-            f"states (roles {model.roles}); got {len(out)}: {list(states)}."
+            f"fit_kinetics(scheme={scheme.name!r}) fits {' or '.join(map(str, scheme.n_roles))} "
+            f"states (roles {scheme.roles}); got {len(out)}: {list(states)}."
         )
     return tuple(out)
 
@@ -400,7 +204,7 @@ def _first_crossing(t: np.ndarray, y: np.ndarray, level: float) -> float | None:
     return float(t[ok[0]]) if ok.size else None
 
 
-def _starts(model: str, t: np.ndarray, y: np.ndarray, t0: float, latency: bool,
+def _starts(scheme: str, t: np.ndarray, y: np.ndarray, t0: float, latency: bool,
             offset: bool) -> list[dict[str, float]]:
     span = max(float(np.nanmax(t) - t0), 1e-6)
     a = y[0]
@@ -410,11 +214,11 @@ def _starts(model: str, t: np.ndarray, y: np.ndarray, t0: float, latency: bool,
     level = p_inf + (a0 - p_inf) / math.e
     tc = _first_crossing(t, a, level)
     tau = max((tc - t0) if tc is not None else span / 2.0, span / 1000.0)
-    if model == "single":
+    if scheme == "single":
         lat = [0.0] if not latency else [0.0, 0.2 * tau]
         return [{"tau": tau * f, "latency": d, "p_inf": p_inf}
                 for f in (0.5, 1.0, 2.0) for d in lat]
-    if model == "sequential":
+    if scheme == "sequential":
         return [{"tau1": tau, "tau2": tau * f} for f in (0.3, 0.7, 1.6, 4.0)]
     if y.shape[0] >= 3:
         bend, cend = float(np.nanmean(y[1][-5:])), float(np.nanmean(y[2][-5:]))
@@ -425,11 +229,11 @@ def _starts(model: str, t: np.ndarray, y: np.ndarray, t0: float, latency: bool,
     return [{"tau": tau * f, "branching": phi} for f in (0.5, 1.0, 2.0)]
 
 
-def _derived(model: str, p: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
-    if model == "parallel":
+def _derived(scheme: str, p: Mapping[str, Any]) -> dict[str, np.ndarray]:
+    if scheme == "parallel":
         with np.errstate(divide="ignore"):
             return {"tau_B": p["tau"] / p["branching"], "tau_C": p["tau"] / (1 - p["branching"])}
-    if model == "sequential":
+    if scheme == "sequential":
         k1, k2 = 1.0 / np.asarray(p["tau1"], float), 1.0 / np.asarray(p["tau2"], float)
         with np.errstate(divide="ignore", invalid="ignore"):
             tm = np.log(k1 / k2) / (k1 - k2)
@@ -442,7 +246,7 @@ def _derived(model: str, p: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
 def fit_kinetics(
     data: Ensemble | pd.DataFrame,
     *,
-    model: str = "single",
+    scheme: str = "single",
     states: Sequence[int | str] | int | str | None = None,
     kind: str | None = None,
     weights: str | npt.ArrayLike | None = None,
@@ -452,21 +256,22 @@ def fit_kinetics(
     offset: bool = False,
     time_range: tuple[float, float] | None = None,
     time_grid: npt.ArrayLike | None = None,
-    n_boot: int = 1000,
+    interval: str | None = "bootstrap",
     ci: float = 0.95,
+    n_boot: int = 1000,
     random_state: int | np.random.Generator | None = 0,
     ens: Ensemble | None = None,
 ) -> KineticsResult:
-    """Fit a kinetic model to populations, with bootstrap (or covariance) intervals.
+    """Fit a kinetic scheme to populations, with bootstrap or covariance intervals.
 
     Parameters
     ----------
     data : Ensemble or DataFrame
-        The ensemble (bootstrap intervals: refit per resample of trajectories),
-        or a populations frame (``time, state, population``) from
+        The ensemble (needed for bootstrap intervals: refit per resample of
+        trajectories), or a populations frame (``time, state, population``) from
         :func:`~ensemblelab.compute.kinetics.populations.populations`.
-    model : {"single", "sequential", "parallel"}
-        See the module docstring.
+    scheme : {"single", "sequential", "parallel"}
+        Kinetic scheme, see :mod:`.schemes`.
     states : sequence of int or str, optional
         States (indices or labels) playing the roles A[, B[, C]]. Default for
         ``"single"``: the most populated state at the first time; required
@@ -477,7 +282,7 @@ def fit_kinetics(
     weights : None, "uniform", str or array_like
         Trajectory weights (as in ``populations``), ensemble input only.
     irf_fwhm : float, optional
-        FWHM in fs of a Gaussian instrument response to convolve the model with.
+        FWHM in fs of a Gaussian instrument response to convolve the scheme with.
     t0 : float
         Time zero in fs (fixed).
     latency, offset : bool
@@ -486,10 +291,14 @@ def fit_kinetics(
         Only fit times in this closed range (fs).
     time_grid : array_like, optional
         Time grid for populations computed from the ensemble.
-    n_boot : int
-        Bootstrap resamples (ensemble input; 0 switches to covariance intervals).
+    interval : {"bootstrap", "covariance", None}
+        How the intervals are made: percentile bootstrap over trajectories (needs
+        the ensemble), Wald intervals from the Jacobian (too narrow, see the module
+        docstring), or none (NaN bounds).
     ci : float
-        Interval level.
+        Interval level in (0, 1).
+    n_boot : int
+        Number of bootstrap resamples (``interval="bootstrap"``), >= 1.
     random_state : int, Generator or None
         Seed of the bootstrap.
     ens : Ensemble, optional
@@ -502,7 +311,7 @@ def fit_kinetics(
     Examples
     --------
     >>> from ensemblelab.testing import make_toy_ensemble
-    >>> res = fit_kinetics(make_toy_ensemble(200, seed=3), n_boot=200)
+    >>> res = fit_kinetics(make_toy_ensemble(200, seed=3), interval="bootstrap", n_boot=200)
     >>> lo, hi = res.interval("tau")
     >>> bool(lo < res.params["tau"] < hi)
     True
@@ -510,10 +319,18 @@ def fit_kinetics(
     from ...data.ensemble import Ensemble
     from .populations import population_arrays
 
-    if model not in KINETIC_MODELS:
-        raise SchemaError(f"The 'model' parameter of fit_kinetics must be one of "
-                          f"{tuple(KINETIC_MODELS)}; got {model!r}.")
-    spec = KINETIC_MODELS[model]
+    if scheme not in KINETIC_SCHEMES:
+        raise SchemaError(f"The 'scheme' parameter of fit_kinetics must be one of "
+                          f"{tuple(KINETIC_SCHEMES)}; got {scheme!r}.")
+    spec = KINETIC_SCHEMES[scheme]
+    if interval not in INTERVAL_CHOICES:
+        raise SchemaError(f"The 'interval' parameter of fit_kinetics must be one of "
+                          f"{INTERVAL_CHOICES}; got {interval!r}.")
+    if interval == "bootstrap" and (isinstance(n_boot, bool) or int(n_boot) != n_boot
+                                     or n_boot < 1):
+        raise SchemaError(f"The 'n_boot' parameter of fit_kinetics must be an int >= 1 with "
+                          f"interval='bootstrap'; got {n_boot!r}. Hint: interval=None "
+                          "(or 'covariance') skips the bootstrap.")
     if not 0.0 < float(ci) < 1.0:
         raise SchemaError(f"The 'ci' parameter of fit_kinetics must be in (0, 1); got {ci!r}.")
     if irf_fwhm is not None and not (np.isfinite(irf_fwhm) and irf_fwhm > 0):
@@ -538,8 +355,14 @@ def fit_kinetics(
         series = {s: mean[:, s] for s in range(mean.shape[1])}
         labels = dict(enumerate(arrays.labels))
     else:
+        assert frame is not None
         t_all, series, labels = _pivot(frame)
-    sel = np.ones(t_all.size, dtype=bool)
+    if interval == "bootstrap" and arrays is None:
+        raise SchemaError("fit_kinetics(interval='bootstrap') resamples trajectories, so it "
+                          "needs the ensemble: pass it as data or as ens=. Hint: "
+                          "interval='covariance' gives (too narrow) intervals from a frame "
+                          "alone, interval=None none.")
+    sel: np.ndarray = np.ones(t_all.size, dtype=bool)
     if time_range is not None:
         sel = (t_all >= time_range[0]) & (t_all <= time_range[1])
     sel &= t_all >= (t0 if irf_fwhm is None else -np.inf)
@@ -553,7 +376,7 @@ def fit_kinetics(
 
     fixed: dict[str, float] = {}
     free = list(spec.params)
-    if model == "single":
+    if scheme == "single":
         if not latency:
             fixed["latency"] = 0.0
             free.remove("latency")
@@ -561,7 +384,7 @@ def fit_kinetics(
             fixed["p_inf"] = 0.0
             free.remove("p_inf")
     sigma = fwhm_to_sigma(irf_fwhm)
-    prob = _Problem(model, free, fixed, t, len(st), sigma, t0)
+    prob = _Problem(scheme, free, fixed, t, len(st), sigma, t0)
     yflat = y.ravel()
     ok = np.isfinite(yflat)
 
@@ -569,7 +392,7 @@ def fit_kinetics(
         return (prob(x[None, :])[0] - yflat)[ok]
 
     best = None
-    for start in _starts(model, t, y, t0, latency, offset):
+    for start in _starts(scheme, t, y, t0, latency, offset):
         x0 = prob.to_free({**start, **fixed})
         try:
             sol = least_squares(res, x0, method="lm", xtol=1e-12, ftol=1e-12, gtol=1e-12,
@@ -583,7 +406,7 @@ def fit_kinetics(
                           "the states and the time range.")
     xhat = best.x
     nat = {k: float(np.asarray(v)) for k, v in prob.to_natural(xhat).items()}
-    derived = {k: float(v) for k, v in _derived(model, nat).items()}
+    derived = {k: float(v) for k, v in _derived(scheme, nat).items()}
     fitted = prob(xhat[None, :])[0].reshape(len(st), -1)
     resid = y - fitted
     rmse = float(np.sqrt(np.nanmean(resid**2)))
@@ -594,7 +417,7 @@ def fit_kinetics(
     names = free + list(derived)
     lower = dict.fromkeys(names, math.nan)
     upper = dict.fromkeys(names, math.nan)
-    if arrays is not None and n_boot and n_boot > 0:
+    if interval == "bootstrap" and arrays is not None:
         rng = np.random.default_rng(random_state)
         counts = _k.bootstrap_counts(arrays.weights.size, int(n_boot), rng)
         boot = arrays.bootstrap(counts)[:, sel][:, :, list(st)]  # (n_boot, n_t, n_roles)
@@ -604,7 +427,7 @@ def fit_kinetics(
         n_failed = int((~good).sum())
         natb = prob.to_natural(xb)
         cols = {k: np.asarray(natb[k], float) for k in free}
-        cols.update({k: np.asarray(v, float) for k, v in _derived(model, natb).items()})
+        cols.update({k: np.asarray(v, float) for k, v in _derived(scheme, natb).items()})
         boot_frame = pd.DataFrame({k: np.where(good, v, np.nan) for k, v in cols.items()})
         for k in names:
             v = boot_frame[k].to_numpy()
@@ -616,7 +439,7 @@ def fit_kinetics(
             warnings.warn(f"fit_kinetics: {n_failed} of {n_boot} bootstrap refits did not "
                           "converge; the intervals leave them out.", NumericalWarning,
                           stacklevel=2)
-    else:
+    elif interval == "covariance":
         # Wald intervals from the Jacobian at the optimum, in natural parameters
         jac = best.jac
         dof = max(int(ok.sum()) - len(free), 1)
@@ -640,15 +463,17 @@ def fit_kinetics(
             lower[name], upper[name] = nat[name] - z * e, nat[name] + z * e
         method = ("covariance (Wald, from the Jacobian; treats times as independent, so "
                   "too narrow -- pass the ensemble for bootstrap intervals)")
+    else:
+        method = "none"
 
-    rows = []
+    rows: list[tuple[str, float, float, float, str, bool]] = []
     for name in spec.params:
         if name in fixed:
             rows.append((name, fixed[name], math.nan, math.nan, _UNIT[name], True))
         else:
             rows.append((name, nat[name], lower[name], upper[name], _UNIT[name], False))
-    for name, v in derived.items():
-        rows.append((name, v, lower[name], upper[name], _UNIT[name], False))
+    for name, dv in derived.items():
+        rows.append((name, dv, lower[name], upper[name], _UNIT[name], False))
     summary = pd.DataFrame(rows, columns=["parameter", "value", "lower", "upper", "unit",
                                           "fixed"])
     roles = spec.roles[: len(st)]
@@ -662,7 +487,7 @@ def fit_kinetics(
         "residual": resid.ravel(),
     })
     return KineticsResult(
-        model=model, params={**nat, **derived}, summary=summary, curves=curves,
+        scheme=scheme, params={**nat, **derived}, summary=summary, curves=curves,
         interval_method=method, ci=float(ci), boot_params=boot_frame, n_failed=n_failed,
         irf_fwhm=None if irf_fwhm is None else float(irf_fwhm), t0=float(t0), states=st,
         rmse=rmse, _problem=prob,

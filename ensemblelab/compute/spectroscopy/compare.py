@@ -125,7 +125,7 @@ def compare_maps(simulated: TRPESMap, measured: TRPESMap, *, fit_energy_shift: b
             x0.append(0.0)
             bounds.append(tuple(time_zero_bounds))
         # coarse scan first (the residual is not convex in the shifts), then polish
-        grids = [np.linspace(*b, 21) for b in bounds]
+        grids = [np.linspace(b[0], b[1], 21) for b in bounds]
         mesh = np.stack([g.ravel() for g in np.meshgrid(*grids, indexing="ij")], axis=1)
         start = mesh[int(np.argmin([sse(p) for p in mesh]))]
         res = minimize(sse, start, method="Powell", bounds=bounds,

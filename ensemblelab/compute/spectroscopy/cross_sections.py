@@ -1,4 +1,4 @@
-"""Photoionisation cross-section models for the TRPES window function (method notes section 3).
+"""Photoionisation cross-section models for the TRPES window function.
 
 Every model is a callable object ``model(dyson, energy, ip, channel, photon_energy)``
 returning the cross section of each stick (arbitrary but consistent units):
@@ -150,7 +150,7 @@ class DysonTimes(CrossSection):
 def hydrogenic_factor(energy: npt.ArrayLike, ip: npt.ArrayLike, *,
                       photon_energy: float | None = None,
                       zeta: npt.ArrayLike | None = None) -> np.ndarray:
-    """Plane-wave cross section of a hydrogenic 1s orbital (method notes section 3, M3).
+    """Plane-wave cross section of a hydrogenic 1s orbital (derived here; from memory).
 
     ``omega k^3 zeta^5 / (zeta^2 + k^2)^6`` in atomic units, with ``k = sqrt(2 E)``
     and, unless given, ``zeta = sqrt(2 IP)``. Threshold behaviour ``E^(3/2)``

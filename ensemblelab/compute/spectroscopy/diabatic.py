@@ -1,4 +1,4 @@
-"""Adiabatic-to-diabatic (ADT) matrices from overlaps or dipole matrices (method notes section 4).
+"""Adiabatic-to-diabatic (ADT) matrices from overlaps or dipole matrices.
 
 Convention (as ``Ensemble.adt``): ``A[i, alpha] = <phi_i | chi_alpha>``, rows adiabatic,
 columns diabatic, so that ``phi_i = sum_alpha A[i, alpha] chi_alpha`` and the diabatic
@@ -25,6 +25,7 @@ from __future__ import annotations
 import math
 import warnings
 from dataclasses import dataclass
+from typing import cast
 
 import numpy as np
 import numpy.typing as npt
@@ -44,7 +45,7 @@ __all__ = [
     "SMALL_SINGULAR_VALUE",
 ]
 
-#: below this smallest singular value of S the reference states are flagged (method notes 4.2)
+#: below this smallest singular value of S the reference states are flagged (common practice)
 SMALL_SINGULAR_VALUE = 0.5
 
 
@@ -165,7 +166,9 @@ def boys_rotation(mu: npt.ArrayLike, *, tol: float = 1e-12, max_sweeps: int = 20
 
     Notes
     -----
-    Pair rotation (method notes 4.4): ``d = mu_ii - mu_jj``,
+    Pair rotation (Jacobi sweeps of Boys localisation; J. Chem. Phys. 129, 244101 (2008),
+    "Constructing diabatic states from adiabatic states: extending generalized Mulliken-Hush
+    to multiple charge centers with Boys localization"): ``d = mu_ii - mu_jj``,
     ``A_ij = |mu_ij|^2 - |d|^2/4``, ``B_ij = mu_ij . d``, ``gamma = atan2(B, -A) / 4``,
     ``phi_i' = cos gamma phi_i + sin gamma phi_j``,
     ``phi_j' = -sin gamma phi_i + cos gamma phi_j``.
@@ -305,7 +308,7 @@ def ensemble_adt(ens: Ensemble, *, kind: str = "step",
                           "matrices instead.")
     o = ens.overlaps
     if kind == "reference":
-        return loewdin(o, warn_below=warn_below)
+        return cast(np.ndarray, loewdin(o, warn_below=warn_below))
     if kind != "step":
         raise SchemaError(f"The 'kind' parameter must be 'step', 'reference' or 'boys'. Got "
                           f"{kind!r}.")

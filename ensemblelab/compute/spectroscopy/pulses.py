@@ -1,6 +1,6 @@
 """Transform-limited Gaussian laser pulses: spectral widths, line shapes, cross-correlations.
 
-Conventions (method notes section 2): the temporal *intensity* envelope is
+Conventions: the temporal *intensity* envelope is
 ``I(t) = exp(-4 ln2 t^2 / T^2)`` with ``T`` the intensity FWHM in fs (what
 experiments quote). Its spectral intensity has the FWHM
 ``Gamma = 4 ln2 hbar / T`` (eV), i.e. ``Gamma[eV] * T[fs] = 1.8249510 eV fs``.
@@ -35,7 +35,7 @@ FWHM_TO_SIGMA: float = 1.0 / (2.0 * math.sqrt(2.0 * math.log(2.0)))
 
 
 def gaussian(x: npt.ArrayLike, center: float | npt.ArrayLike, fwhm: float) -> np.ndarray:
-    """Area-normalised Gaussian ``G(x; x0, Gamma)`` with FWHM `fwhm` (method notes section 0).
+    """Area-normalised Gaussian ``G(x; x0, Gamma)`` with FWHM `fwhm`.
 
     Parameters
     ----------

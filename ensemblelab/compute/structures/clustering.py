@@ -19,7 +19,7 @@ clustering estimator. Defaults scale from 10^3 to 10^6 snapshots:
 
 from __future__ import annotations
 
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, Any, Literal
 
@@ -28,9 +28,8 @@ import numpy.typing as npt
 import pandas as pd
 from sklearn.base import BaseEstimator, TransformerMixin, clone
 
-from ...data.elements import atomic_numbers_for
 from ...errors import SchemaError
-from .descriptors import AlignedCartesian, CoulombEigenvalues, InverseDistances
+from ._featurise import FeaturesLike, _build_featuriser, _Featuriser, make_featuriser
 
 if TYPE_CHECKING:
     from ...data.ensemble import Ensemble
@@ -44,13 +43,12 @@ __all__ = [
     "wilson_interval",
 ]
 
-FeaturesLike = str | TransformerMixin | npt.ArrayLike | Sequence[str]
 Z_95 = 1.959963984540054  # two-sided 95 % normal quantile (scipy.stats.norm.ppf(0.975))
 
 
 def wilson_interval(p: npt.ArrayLike, n: npt.ArrayLike, *, z: float = Z_95
                     ) -> tuple[np.ndarray, np.ndarray]:
-    """Wilson score interval for a fraction `p` out of `n` (method notes eq. 7.1).
+    """Wilson score interval for a fraction `p` out of `n` (J. Amer. Stat. Assoc. 22, 209 (1927)).
 
     For weighted data pass the weighted fraction and the Kish effective size.
 
@@ -67,119 +65,6 @@ def wilson_interval(p: npt.ArrayLike, n: npt.ArrayLike, *, z: float = Z_95
     lo = np.where(n > 0, np.clip(centre - half, 0.0, 1.0), np.nan)
     hi = np.where(n > 0, np.clip(centre + half, 0.0, 1.0), np.nan)
     return lo, hi
-
-
-# ---------------------------------------------------------------------- featurisation
-class _ColumnFeatures(TransformerMixin, BaseEstimator):
-    """Placeholder so precomputed features flow through the same code path."""
-
-    def fit(self, X: Any, y: Any = None) -> _ColumnFeatures:
-        return self
-
-    def transform(self, X: Any) -> np.ndarray:
-        return np.asarray(X, dtype=np.float64)
-
-
-def make_featuriser(features: str | TransformerMixin, symbols: Sequence[str],
-                    masses: npt.ArrayLike | None = None) -> TransformerMixin:
-    """The transformer behind a feature name.
-
-    Parameters
-    ----------
-    features : str or transformer
-        "inverse_distances" (1/r_ij in atom-pair order), "sorted_inverse_distances"
-        (sorted within element pairs), "coulomb" (Coulomb-matrix eigenvalues),
-        "aligned" (mass-weighted aligned Cartesians), or a transformer taking
-        flattened geometries (returned unfitted as a clone).
-    symbols : sequence of str
-    masses : array_like, optional
-
-    Returns
-    -------
-    transformer
-    """
-    if not isinstance(features, str):
-        return clone(features)
-    if features == "inverse_distances":
-        return InverseDistances()
-    if features == "sorted_inverse_distances":
-        return InverseDistances(sort="element_pair", symbols=list(symbols))
-    if features == "coulomb":
-        return CoulombEigenvalues(atomic_numbers=atomic_numbers_for(list(symbols)).tolist())
-    if features == "aligned":
-        return AlignedCartesian(weights=None if masses is None else np.asarray(masses))
-    raise SchemaError(
-        "features must be 'inverse_distances', 'sorted_inverse_distances', 'coulomb', "
-        f"'aligned', a transformer, an array or a list of snapshot columns; got {features!r}."
-    )
-
-
-@dataclass
-class _Featuriser:
-    """Compute (standardised) features for any rows of a geometry source, chunk by chunk."""
-
-    source: Callable[[np.ndarray], np.ndarray]  # rows -> 2-D raw input
-    transformer: TransformerMixin
-    standardise: bool
-    mean_: np.ndarray | None = None
-    scale_: np.ndarray | None = None
-    names: list[str] = field(default_factory=list)
-
-    def fit(self, rows: np.ndarray) -> _Featuriser:
-        X = self.source(rows)
-        F = np.asarray(self.transformer.fit_transform(X), dtype=np.float64)
-        if F.ndim != 2 or F.shape[1] == 0:
-            raise SchemaError(f"the featuriser returned an array of shape {F.shape}; expected "
-                              "(n_samples, n_features >= 1).")
-        if self.standardise:
-            self.mean_ = F.mean(0)
-            sc = F.std(0)
-            sc[sc < 1e-12] = 1.0
-            self.scale_ = sc
-        try:
-            self.names = [str(v) for v in self.transformer.get_feature_names_out()]
-        except (AttributeError, ValueError, TypeError):
-            self.names = [f"f{i}" for i in range(F.shape[1])]
-        if len(self.names) != F.shape[1]:
-            self.names = [f"f{i}" for i in range(F.shape[1])]
-        return self
-
-    def __call__(self, rows: np.ndarray) -> np.ndarray:
-        F = np.asarray(self.transformer.transform(self.source(rows)), dtype=np.float64)
-        if self.standardise:
-            F = (F - self.mean_) / self.scale_
-        return F
-
-
-def _build_featuriser(ens: Ensemble, features: FeaturesLike, standardise: bool,
-                      geometries: np.ndarray | None = None) -> _Featuriser:
-    G = ens.geometries if geometries is None else geometries
-    n = G.shape[0]
-    if isinstance(features, str) or isinstance(features, TransformerMixin):
-        tr = make_featuriser(features, ens.symbols, ens.masses)  # type: ignore[arg-type]
-
-        def source(rows: np.ndarray) -> np.ndarray:
-            return G[rows].reshape(len(rows), -1)
-
-        return _Featuriser(source, tr, standardise)
-    if isinstance(features, (list, tuple)) and features and all(
-            isinstance(c, str) for c in features):
-        missing = [c for c in features if c not in ens.snapshots.columns]
-        if missing:
-            raise SchemaError(f"features names unknown snapshot column(s) {missing}; found "
-                              f"{list(ens.snapshots.columns)}.")
-        arr = ens.snapshots[list(features)].to_numpy(dtype=np.float64)
-        if geometries is not None:
-            raise SchemaError("column features cannot be used for hop geometries.")
-        fz = _Featuriser(lambda rows: arr[rows], _ColumnFeatures(), standardise)
-        fz.names = list(features)
-        return fz
-    arr = np.asarray(features, dtype=np.float64)
-    if arr.ndim != 2 or arr.shape[0] != n:
-        raise SchemaError(
-            f"a features array must have shape (n_rows={n}, n_features); got {arr.shape}."
-        )
-    return _Featuriser(lambda rows: arr[rows], _ColumnFeatures(), standardise)
 
 
 # ---------------------------------------------------------------------- estimators
@@ -217,7 +102,7 @@ def _fit_group(rows: np.ndarray, fz: _Featuriser, est: BaseEstimator, k: int,
         return np.zeros(0, np.int64), None
     if n < 2:
         return np.zeros(n, np.int64), None
-    fit_pos = np.arange(n)
+    fit_pos: np.ndarray = np.arange(n)
     if n > max_fit:
         fit_pos = np.sort(rng.choice(n, size=max_fit, replace=False))
     Ffit = fz(rows[fit_pos])
@@ -457,7 +342,7 @@ def cluster_snapshots(
         raise SchemaError(f"max_fit_samples must be >= 2; got {max_fit_samples}.")
     rng = np.random.default_rng(random_state)
     fz = _build_featuriser(ens, features, standardise)
-    fit_rows = np.arange(n)
+    fit_rows: np.ndarray = np.arange(n)
     if n > max_fit_samples:
         fit_rows = np.sort(rng.choice(n, size=max_fit_samples, replace=False))
     fz.fit(fit_rows)
@@ -491,7 +376,7 @@ def cluster_snapshots(
         local, _ = _fit_group(rows, fz, est, k, max_fit_samples, chunk_size, rng, assign)
         prefix = f"{ens.state_labels[state]}:" if state >= 0 else ""
         # silhouette and medoids on a subsample of the group
-        sub = np.arange(len(rows))
+        sub: np.ndarray = np.arange(len(rows))
         if len(sub) > silhouette_samples:
             sub = np.sort(rng.choice(len(rows), size=silhouette_samples, replace=False))
         Fsub = fz(rows[sub])
@@ -517,6 +402,7 @@ def cluster_snapshots(
             for s in range(0, len(members), chunk_size):
                 Fm = fz(members[s:s + chunk_size])
                 acc = Fm.sum(0) if acc is None or acc.shape != Fm.shape[1:] else acc + Fm.sum(0)
+            assert acc is not None
             mean_rows.append(pd.Series(acc / len(members), name=name))
             rows_summary.append({
                 "cluster": name, "code": this_code, "state": state, "size": len(members),
@@ -533,8 +419,8 @@ def cluster_snapshots(
     sw = weights
     n_eff = sw.sum() ** 2 / np.sum(sw**2) if np.sum(sw**2) > 0 else n
     lo, hi = wilson_interval(summary["fraction"].to_numpy(), np.full(len(summary), n_eff))
-    summary.insert(summary.columns.get_loc("fraction") + 1, "lower", lo)
-    summary.insert(summary.columns.get_loc("lower") + 1, "upper", hi)
+    summary.insert(list(summary.columns).index("fraction") + 1, "lower", lo)
+    summary.insert(list(summary.columns).index("lower") + 1, "upper", hi)
     mean_features = pd.DataFrame(mean_rows)
     if fz.names and mean_features.shape[1] == len(fz.names):
         mean_features.columns = fz.names
@@ -644,6 +530,6 @@ def cluster_hops(
         })
     counts = pd.DataFrame(rows_out)
     lo, hi = wilson_interval(counts["fraction"].to_numpy(), np.full(len(counts), n_eff))
-    counts.insert(counts.columns.get_loc("fraction") + 1, "lower", lo)
-    counts.insert(counts.columns.get_loc("lower") + 1, "upper", hi)
+    counts.insert(list(counts.columns).index("fraction") + 1, "lower", lo)
+    counts.insert(list(counts.columns).index("lower") + 1, "upper", hi)
     return HopClusterResult(hops=hops, geometries=G, counts=counts, labels=labels.astype(str))

@@ -98,11 +98,11 @@ class _GeometryTransformer(TransformerMixin, BaseEstimator):
         self
         """
         self._validate_params()
-        X = validate_data(self, X, dtype=np.float64, ensure_min_samples=1)
-        n_atoms = self._n_atoms_of(X)
+        arr: np.ndarray = validate_data(self, X, dtype=np.float64, ensure_min_samples=1)
+        n_atoms = self._n_atoms_of(arr)
         self.n_atoms_ = n_atoms
         self._setup(n_atoms)
-        G = X.reshape(X.shape[0], n_atoms, 3)
+        G = arr.reshape(arr.shape[0], n_atoms, 3)
         self._fit_extra(G)
         F = self._features(G)
         if self.standardise:
@@ -126,8 +126,8 @@ class _GeometryTransformer(TransformerMixin, BaseEstimator):
         ndarray, shape (n_samples, n_features_out_)
         """
         check_is_fitted(self, "n_atoms_")
-        X = validate_data(self, X, dtype=np.float64, reset=False)
-        F = self._features(X.reshape(X.shape[0], self.n_atoms_, 3))
+        arr: np.ndarray = validate_data(self, X, dtype=np.float64, reset=False)
+        F = self._features(arr.reshape(arr.shape[0], self.n_atoms_, 3))
         if self.standardise:
             F = (F - self.mean_) / self.scale_
         return F

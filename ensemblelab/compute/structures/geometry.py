@@ -4,7 +4,7 @@ All functions work on arrays of shape (n_frames, n_atoms, 3) in Angstrom and are
 vectorised over frames (batched SVD / einsum), processed in chunks so memory
 stays bounded. :func:`align_ensemble` applies them to an :class:`~ensemblelab.Ensemble`.
 
-Methods (see the method notes, section 8): Kabsch [Acta Cryst. A32, 922 (1976);
+Methods: Kabsch [Acta Cryst. A32, 922 (1976);
 correction A34, 827 (1978)] and the quaternion characteristic polynomial (QCP)
 [Acta Cryst. A61, 478 (2005), "Rapid calculation of RMSDs using a quaternion-based
 characteristic polynomial"]. Both exclude reflections unless ``allow_reflection=True``.
@@ -106,7 +106,7 @@ def _resolve_weights(weights: WeightsLike, n_atoms: int, masses: npt.ArrayLike |
             )
         if masses is None and symbols is None:
             raise SchemaError("weights='mass' needs masses= (amu) or symbols=.")
-        w = masses_for(symbols) if masses is None else np.asarray(masses, float)
+        w = masses_for(symbols or ()) if masses is None else np.asarray(masses, float)
     else:
         w = np.asarray(weights, dtype=np.float64)
     if w.shape != (n_atoms,) or not np.all(np.isfinite(w)) or np.any(w < 0) or w.sum() <= 0:
@@ -134,7 +134,7 @@ def _resolve_atoms(atoms: npt.ArrayLike | None, n_atoms: int) -> np.ndarray:
     return np.unique(idx % n_atoms)
 
 
-def _check_reference(reference: np.ndarray, n_atoms: int, n_frames: int) -> np.ndarray:
+def _check_reference(reference: npt.ArrayLike, n_atoms: int, n_frames: int) -> np.ndarray:
     ref = np.asarray(reference, dtype=np.float64)
     if ref.shape == (n_atoms, 3) or ref.shape == (n_frames, n_atoms, 3):
         return ref
@@ -418,6 +418,7 @@ def permutation_rmsd(
     def refine(P: np.ndarray, perm: np.ndarray) -> tuple[float, np.ndarray]:
         for _ in range(max_iter):
             r, al, _, _ = _k.kabsch_rmsd(P[perm][None], refc, w, return_aligned=True)
+            assert al is not None
             new = perm[assign(al[0])]
             if np.array_equal(new, perm):
                 break

@@ -27,7 +27,8 @@ import numpy.typing as npt
 import pandas as pd
 
 from ...errors import SchemaError
-from .clustering import ClusterResult, _build_featuriser
+from ._featurise import _build_featuriser
+from .clustering import ClusterResult
 
 if TYPE_CHECKING:
     from ...data.ensemble import Ensemble
@@ -149,7 +150,7 @@ def _select(
         fit_rows = np.flatnonzero(finite)
         if fit_rows.size > 20000:
             fit_rows = np.sort(rng.choice(fit_rows, 20000, replace=False))
-        fz = _build_featuriser(ens, features, True).fit(fit_rows)  # type: ignore[arg-type]
+        fz = _build_featuriser(ens, features, True).fit(fit_rows)
     kinds = ["medoid", "mode"] if kind == "both" else [kind]
     recs = []
     picked = []
