@@ -94,7 +94,7 @@ def test_cli_convert_units(tmp_path, capsys):
     assert main(["convert", str(src), str(dst), "--energy-unit", "hartree", "--time-unit", "au",
                  "--length-unit", "bohr", "--no-progress"]) == 0
     ens = load(dst)
-    # method-notes section 9 literals (CODATA 2022 via scipy.constants), rel 1e-8
+    # CODATA 2022 literals (via scipy.constants), rel 1e-8
     assert ens.energies[0, 1] == pytest.approx(0.1 * 27.211386245981, rel=1e-8)
     assert ens.snapshots["time"].iloc[1] == pytest.approx(0.024188843265864, rel=1e-8)
     assert ens.geometries[1, 0, 2] == pytest.approx(0.529177210544, rel=1e-8)

@@ -124,7 +124,7 @@ def test_demo_injected_faults_recall_and_false_positives():
         pytest.skip("demo.make_ensemble has no faults option yet")
     ens = demo.make_ensemble(faults=True)
     truth = {int(k): v for k, v in ens.metadata["injected_faults"].items()}
-    # default thresholds (method-notes section 8, common practice): the demo model hops near
+    # default thresholds (common practice, common practice): the demo model hops near
     # its crossing seams, so its ordinary hops stay below the 0.5 eV hop-gap threshold
     # (99th percentile about 0.44 eV, computed independently, not published) while the
     # injected large-gap hop (several eV) stands far above it

@@ -40,7 +40,7 @@ def _tiny(active_rows, times, *, amplitudes=None, adt=None, weights=None):
 @pytest.mark.parametrize(
     ("k", "n", "expected"),
     [
-        # method-notes 7.5 check values, computed independently (not published) (equal to scipy)
+        # common practice check values, computed independently (not published) (equal to scipy)
         (7, 50, (0.069508, 0.261862)),
         (0, 20, (0.0, 0.161125)),
         (30, 100, (0.218949, 0.395849)),
@@ -72,7 +72,7 @@ def test_populations_weighted_use_kish_effective_size():
     row = pop[(pop.time == 1.0) & (pop.state == 1)].iloc[0]
     w = np.array([1.0, 1.0, 2.0, 4.0])
     p = (1 + 4) / w.sum()  # weighted fraction, by hand
-    n_eff = w.sum() ** 2 / (w**2).sum()  # Kish, method notes 7.1 common practice
+    n_eff = w.sum() ** 2 / (w**2).sum()  # Kish, common practice common practice
     assert row.population == pytest.approx(p, abs=1e-15)
     assert row.n_eff == pytest.approx(n_eff, abs=1e-12)
     assert row.n_alive == 4

@@ -1,4 +1,5 @@
-"""TRPES maps: method notes sections 1.6 and 1.7, sum rules and invariances."""
+"""TRPES maps: worked values of the classical doorway-window picture (J. Chem. Theory
+Comput. 17, 2394 (2021)), sum rules and invariances."""
 
 from __future__ import annotations
 
@@ -26,7 +27,7 @@ def _one_snapshot(ip: float = 4.0, dyson: float = 1.0) -> Ensemble:
 
 
 def test_trpes_single_stick_window_values():
-    # method notes 1.6 row 1, computed independently (not published): peak at 1.000 eV, Gamma
+    # doorway-window worked value, computed independently (not published): peak at 1.000 eV, Gamma
     # 0.060832 eV, height 15.4432 eV^-1,
     # W(1.03 eV) = 7.86834 eV^-1 (1e-6 rel, analytic)
     e = np.array([1.0, 1.03])
@@ -35,7 +36,7 @@ def test_trpes_single_stick_window_values():
     assert m.params["fwhm_energy"] == pytest.approx(0.060832, abs=1e-6)
     assert m.intensity[0, 0] == pytest.approx(15.4432, rel=1e-5)
     assert m.intensity[0, 1] == pytest.approx(7.86834, rel=1e-6)
-    # integral = 1 on a 1 meV grid (tolerance 1e-3, method notes 1.6)
+    # integral = 1 on a 1 meV grid (tolerance 1e-3, doorway-window worked value)
     grid = np.arange(0.0, 2.0, 0.001)
     m2 = compute_trpes(_one_snapshot(), probe=PROBE, kinetic_energies=grid, delays=[0.0],
                        convolve=False, progress=False)
@@ -44,7 +45,7 @@ def test_trpes_single_stick_window_values():
 
 
 def test_trpes_closed_channel_and_truncation_below_zero():
-    # IP above the photon energy: closed channel, no signal at all (method notes 1.3)
+    # IP above the photon energy: closed channel, no signal at all (doorway-window worked value)
     e = np.linspace(-0.5, 2.0, 251)
     closed = compute_trpes(_one_snapshot(ip=5.2), probe=PROBE, kinetic_energies=e, delays=[0.0],
                            convolve=False, progress=False)
@@ -59,7 +60,7 @@ def test_trpes_closed_channel_and_truncation_below_zero():
 
 
 def test_trpes_doorway_factor_table():
-    # method notes 1.6 row 2, computed independently (not published): w = (0.0357934, 8.20699e-7);
+    # doorway-window worked value, computed independently (not published): w = (0.0357934, 8.20699e-7);
     # fraction 0.999977 (1e-5 rel)
     pump = GaussianPulse(photon_energy=4.1, fwhm=20.0)
     assert pump.spectral_fwhm == pytest.approx(0.091248, rel=1e-5)
@@ -69,7 +70,7 @@ def test_trpes_doorway_factor_table():
 
 
 def test_trpes_doorway_oscillator_form_includes_inverse_gap():
-    # method notes 1.6 row 3, derived and computed independently (not published):
+    # doorway-window worked value, derived and computed independently (not published):
     # |mu|^2 = 3 f / (2 dE); f without 1/dE is wrong by 4.3/4.0
     pump = GaussianPulse(photon_energy=4.1, fwhm=20.0)
     de = np.array([4.0, 4.3])
@@ -107,7 +108,7 @@ def _analytic_17(e, tau_d):
     return (0.9 * g15 - 0.8 * g05) * y1 + 0.8 * g05 * yinf
 
 
-# method notes 1.7, computed independently (not published): tau -> (S(1.5 eV), S(0.5 eV)) in eV^-1
+# doorway-window worked value, computed independently (not published): tau -> (S(1.5 eV), S(0.5 eV)) in eV^-1
 TABLE_17 = {
     -30.0: (0.6197, 0.0415), 0.0: (6.0533, 0.7966), 100.0: (5.1968, 7.7352),
     300.0: (0.7033, 11.7294),
@@ -122,7 +123,7 @@ def test_trpes_end_to_end_analytic_formula_matches_table():
 
 
 def test_trpes_end_to_end_stratified_ensemble():
-    # method notes 1.7: N = 4000 trajectories with hop times on exponential quantiles,
+    # doorway-window worked value: N = 4000 trajectories with hop times on exponential quantiles,
     # dt = 1 fs; deviation from the infinite-N values ~1/N + O(dt^2) -> 3e-3 relative
     ens = stratified_decay(4000)
     delays = np.array(sorted(TABLE_17))
@@ -132,7 +133,7 @@ def test_trpes_end_to_end_stratified_ensemble():
         exp_05, exp_15 = _analytic_17(np.array([0.5, 1.5]), tau)
         assert m.intensity[i, 1] == pytest.approx(exp_15, rel=3e-3)
         assert m.intensity[i, 0] == pytest.approx(exp_05, rel=3e-3)
-    # T_cc and sigma_cc: method notes 1.7, computed independently (not published)
+    # T_cc and sigma_cc: doorway-window worked value, computed independently (not published)
     assert cross_correlation_fwhm(GaussianPulse(**m.params["pump"]),
                                   GaussianPulse(**m.params["probe"])) == pytest.approx(
         42.42641, abs=1e-5)
@@ -143,7 +144,7 @@ def test_trpes_end_to_end_stratified_ensemble():
 @pytest.mark.slow
 def test_trpes_end_to_end_random_toy_ensemble():
     # sampled ensemble (ensemblelab.testing.make_toy_ensemble): agreement ~3/sqrt(N) relative
-    # (method notes 1.7); compared where the signal is large
+    # (doorway-window worked value); compared where the signal is large
     from ensemblelab.testing import make_toy_ensemble
 
     n = 1500
@@ -159,7 +160,7 @@ def test_trpes_end_to_end_random_toy_ensemble():
 
 
 def test_trpes_area_sum_rule_without_truncation():
-    # method notes 1.6 row 4, derived and computed independently (not published):
+    # doorway-window worked value, derived and computed independently (not published):
     # int S dE = sum_n w m sum_k sigma / sum_n w m (1e-12)
     ens = random_ensemble(5, seed=3)
     probe = GaussianPulse(photon_energy=9.0, fwhm=30.0)  # all channels open, far above 0 eV
@@ -181,7 +182,7 @@ def test_trpes_area_sum_rule_without_truncation():
 @pytest.mark.parametrize("by", ["neutral", "cation", "pair", "diabatic"])
 @pytest.mark.parametrize("convolve", [True, False])
 def test_trpes_decompositions_sum_to_total(by, convolve):
-    # method notes 1.4 and 4.1, derived and computed independently (not published): exact additive
+    # doorway-window worked value and 4.1, derived and computed independently (not published): exact additive
     # decompositions (1e-12)
     ens = random_ensemble(6, seed=1)
     kw = dict(probe=PROBE, pump=PUMP, kinetic_energies=np.linspace(0, 4, 161),
@@ -209,7 +210,7 @@ def test_trpes_neutral_components_select_states():
 
 
 def test_trpes_doubling_dyson_doubles_map():
-    # method notes 3, derived and computed independently (not published): 2x Dyson norms -> 2x map
+    # hydrogenic plane-wave cross section, derived and computed independently (not published): 2x Dyson norms -> 2x map
     # at every point (1e-12)
     ens = random_ensemble(5, seed=4)
     kw = dict(probe=PROBE, pump=PUMP, kinetic_energies=np.linspace(0, 4, 121),
@@ -275,7 +276,7 @@ def test_trpes_two_photon_probe_width_and_position():
     probe2 = GaussianPulse(photon_energy=2.5, fwhm=30.0, n_photons=2)
     m = compute_trpes(_one_snapshot(), probe=probe2, kinetic_energies=[1.0], delays=[0.0],
                       convolve=False, progress=False)
-    # Gamma^(2) = 0.086029 eV: method notes 2.4 derived and computed independently (not published);
+    # Gamma^(2) = 0.086029 eV: Gaussian convolution algebra derived and computed independently (not published);
     # peak at 2 * 2.5 - 4.0 = 1.0 eV
     assert m.params["fwhm_energy"] == pytest.approx(0.086029, abs=1e-6)
     assert m.intensity[0, 0] == pytest.approx(float(gaussian(1.0, 1.0, 0.0860290)), rel=1e-5)
@@ -311,7 +312,7 @@ def test_trpes_input_not_modified():
 
 
 def test_trpes_warns_when_probe_ionises_ground_state():
-    # method notes 1.5 derived and computed independently (not published): a ground-state depletion
+    # doorway-window worked value derived and computed independently (not published): a ground-state depletion
     # term exists only where n h-nu > IP_00;
     # the toy ensemble has IP(S0 -> D0) = 8.0 eV at every geometry (ensemblelab.testing)
     import warnings

@@ -72,7 +72,7 @@ def test_kernel_chunking_does_not_change_result():
 
 
 def test_kernel_time_matrix_unit_step_is_half_at_zero():
-    # method notes 2.4, derived and computed independently (not published): unit step convolved at
+    # Gaussian convolution algebra, derived and computed independently (not published): unit step convolved at
     # tau = 0 gives 0.5 (1e-12), any sigma
     for sigma in (5.0, 18.0, 40.0):
         times = np.arange(-400.0, 600.0, 1.0)
@@ -81,7 +81,7 @@ def test_kernel_time_matrix_unit_step_is_half_at_zero():
 
 
 def test_kernel_time_matrix_exponential_closed_form():
-    # method notes 2.4 / 7.3, computed independently (not published): e^{-u/100 fs} with T_cc = 50
+    # Gaussian convolution algebra, computed independently (not published): e^{-u/100 fs} with T_cc = 50
     # fs at -50, 0, 50, 200 fs
     # -> 0.008646, 0.425407, 0.610385, 0.138421; discrete grid, tolerance 5e-4 (dt <= 0.1 fs)
     sigma = 50.0 / 2.354820045
@@ -153,7 +153,7 @@ def test_kernel_numba_map_equals_naive_with_split_and_components():
         # order 6, 8 bins per FWHM: <= ~2e-7 of the peak (module docstring; computed
         # independently, not published)
         assert np.abs(maps[c] - naive).max() <= 3e-7 * naive.max()
-    # components add up to the total (1e-12, method notes 4)
+    # components add up to the total (1e-12, diabatic decomposition by the squared ADT)
     total = KB.assemble(KD.deposit_moments(tb, x, w, n_time=6, e_lo=0.0, h=h, n_fine=nf,
                                          order=6, tfrac=tf, backend="numba"), b, None)[0]
     np.testing.assert_allclose(maps.sum(axis=0), total, rtol=0, atol=1e-12 * total.max())

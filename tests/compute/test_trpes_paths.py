@@ -108,7 +108,7 @@ def _with_excitation(ens: Ensemble, *, de: np.ndarray, dipoles=None, strengths=N
 
 
 def test_doorway_weights_from_oscillator_strengths_match_dipoles():
-    # f = (2/3) dE |mu|^2 in atomic units (from memory; method notes 1.6 row 3), so an
+    # f = (2/3) dE |mu|^2 in atomic units (from memory; doorway-window worked value), so an
     # ensemble given f must weigh trajectories exactly like one given |mu|
     ens = random_ensemble(6, seed=2)
     rng = np.random.default_rng(3)
@@ -146,7 +146,7 @@ def _two_sticks(ekin_ev: tuple[float, float], photon: float = 10.0) -> Ensemble:
 
 
 def test_hydrogenic_cross_section_reaches_the_sticks_with_stick_energies():
-    # method notes 3: sigma(0.01 E_h) / sigma(0.04 E_h) = 0.176137 at zeta = 1 (computed
+    # hydrogenic plane-wave cross section: sigma(0.01 E_h) / sigma(0.04 E_h) = 0.176137 at zeta = 1 (computed
     # independently (not published)); through compute_trpes the stick weights must carry it
     probe = GaussianPulse(photon_energy=10.0, fwhm=30.0)
     ens = _two_sticks((0.01 * HARTREE_EV, 0.04 * HARTREE_EV))
@@ -179,7 +179,7 @@ def test_anion_threshold_law_default_is_p_wave_through_compute_trpes():
 
 @pytest.mark.parametrize("convolve", [True, False])
 def test_diabatic_components_follow_the_squared_adt_of_the_pair_map(convolve):
-    # method notes 4.1: a stick (i, k) goes to diabatic pair (a, b) with weight
+    # diabatic decomposition by the squared ADT: a stick (i, k) goes to diabatic pair (a, b) with weight
     # U_ia^2 V_kb^2. With one ADT for all snapshots the diabatic components are that mix
     # of the adiabatic pair components (derived and computed independently (not
     # published)); a generic 3 x 3 rotation has a non-symmetric U^2, so a transposed

@@ -138,7 +138,7 @@ def test_extxyz_header_units_converted_with_codata(tmp_path):
                                rtol=1e-15)
     np.testing.assert_allclose(ens.snapshots["time"], [0.0, 10 * AU_TIME_FS], rtol=1e-15)
     np.testing.assert_allclose(ens.geometries[1, 1, 2], 1.5 * BOHR_ANGSTROM, rtol=1e-15)
-    # literal check values, method-notes section 9 (CODATA 2022 via scipy.constants), rel 1e-8
+    # literal check values, CODATA 2022 (via scipy.constants), rel 1e-8
     assert ens.energies[0, 0] == pytest.approx(-0.5 * 27.211386245981, rel=1e-8)
     assert ens.snapshots["time"].iloc[1] == pytest.approx(10 * 0.024188843265864, rel=1e-8)
     assert ens.geometries[1, 1, 2] == pytest.approx(1.5 * 0.529177210544, rel=1e-8)
@@ -170,7 +170,7 @@ def test_extxyz_velocities_unit_conversion(tmp_path):
     path = tmp_path / "v_0.xyz"
     path.write_text(text)
     ens = load_extxyz(path, progress=False)
-    # bohr / atomic time unit in Angstrom/fs: method-notes section 9 literal 21.876912622
+    # bohr / atomic time unit in Angstrom/fs: CODATA 2022 literal 21.876912622
     assert ens.velocities[0, 0, 0] == pytest.approx(21.876912622, rel=1e-8)
 
 
