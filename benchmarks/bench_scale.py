@@ -158,7 +158,7 @@ def load_subset(path: Path, *, n_subset: int) -> Ensemble:
     Every array the map and the populations use is read; the geometries are
     zero placeholders that take no memory.
     """
-    from ensemblelab.io.chunked import _fake_geometries, load_chunk
+    from ensemblelab.io.chunked import fake_geometries, load_chunk
 
     lz = load(path, lazy=True)
     parts, count = [], 0
@@ -173,7 +173,7 @@ def load_subset(path: Path, *, n_subset: int) -> Ensemble:
     frame = pd.concat([p.snapshots for p in parts], ignore_index=True)
     first = parts[0]
     return Ensemble(
-        snapshots=frame, geometries=_fake_geometries(len(frame), first.n_atoms),
+        snapshots=frame, geometries=fake_geometries(len(frame), first.n_atoms),
         energies=np.concatenate([p.energies for p in parts]),
         cation_energies=np.concatenate([p.cation_energies for p in parts]),
         dyson=np.concatenate([p.dyson for p in parts]), symbols=first.symbols,

@@ -33,6 +33,7 @@ _IO_AND_DATA: dict[str, str] = {
     "load": "ensemblelab.io",
     "save": "ensemblelab.io",
     "load_measured_map": "ensemblelab.io.maps",
+    "write_representatives": "ensemblelab.io.structures",
     "save_map": "ensemblelab.io.maps",
     "load_map": "ensemblelab.io.maps",
     "TRPESMap": "ensemblelab.data.spectrum",

@@ -32,7 +32,7 @@ def demo_sized_map():
     a = np.exp(-d[:, None] / 80.0).clip(max=1.0) * np.exp(-((e - 2.5) / 0.4) ** 2)
     b = (1 - np.exp(-d[:, None].clip(min=0) / 80.0)) * np.exp(-((e - 1.0) / 0.5) ** 2)
     noise = 1e-4 * rng.random((d.size, e.size))  # makes every cell a distinct colour
-    return TRPESMap(energies=e, delays=d, intensity=a + b + noise,
+    return TRPESMap(kinetic_energies=e, delays=d, intensity=a + b + noise,
                     components={"B (bright)": a, "E (twisting pi-pi*)": b + noise})
 
 

@@ -44,7 +44,7 @@ def is_chunked_store(path: str | Path) -> bool:
         data.get("layout") == "chunked"
 
 
-def _fake_geometries(n: int, n_atoms: int) -> np.ndarray:
+def fake_geometries(n: int, n_atoms: int) -> np.ndarray:
     """A read-only zero array of shape (n, n_atoms, 3) that takes no memory."""
     return np.broadcast_to(np.zeros((1, 1, 3)), (n, n_atoms, 3))
 
@@ -84,7 +84,7 @@ def _chunk_file(path: Path, chunk: Mapping[str, Any], name: str) -> Path:
     return confined(path, f"{chunk['dir']}/{name}", what=f"file {name!r} of {chunk['dir']}")
 
 
-def _load_npy(file: Path, entry: Mapping[str, Any], rows: int, mmap: bool) -> np.ndarray:
+def load_npy(file: Path, entry: Mapping[str, Any], rows: int, mmap: bool) -> np.ndarray:
     if not file.is_file():
         raise StoreError(f"{file}: array file of {entry['name']} is missing. Hint: the store is "
                          "incomplete; convert the original files again.")
@@ -113,7 +113,7 @@ def load_chunk_array(path: str | Path, index: int, name: str, *, mmap: bool = Fa
     if entry is None:
         raise KeyError(f"the store has no array {name!r}.")
     rows = chunk["n_trajectories"] if entry["per"] == "trajectory" else chunk["n_snapshots"]
-    return _load_npy(_chunk_file(path, chunk, f"{name}.npy"), entry, rows, mmap)
+    return load_npy(_chunk_file(path, chunk, f"{name}.npy"), entry, rows, mmap)
 
 
 def read_chunk_fields(path: str | Path, manifest: Mapping[str, Any], index: int,
@@ -159,8 +159,8 @@ def read_chunk_fields(path: str | Path, manifest: Mapping[str, Any], index: int,
     chunk = chunks[int(index)]
     entries = {e["name"]: e for e in manifest["arrays"]}
     folder = path / chunk["dir"]
-    frame = _read_parquet(_chunk_file(path, chunk, "snapshots.parquet"), list(columns))
-    trajs = _read_parquet(_chunk_file(path, chunk, "trajectories.parquet"), None)
+    frame = read_parquet_columns(_chunk_file(path, chunk, "snapshots.parquet"), list(columns))
+    trajs = read_parquet_columns(_chunk_file(path, chunk, "trajectories.parquet"), None)
     if len(frame) != chunk["n_snapshots"] or len(trajs) != chunk["n_trajectories"]:
         raise StoreError(f"{folder}: {len(frame)} snapshot and {len(trajs)} trajectory rows, "
                          f"the manifest says {chunk['n_snapshots']} and "
@@ -173,7 +173,7 @@ def read_chunk_fields(path: str | Path, manifest: Mapping[str, Any], index: int,
             arrays[name] = None
             continue
         rows = chunk["n_trajectories"] if entry["per"] == "trajectory" else chunk["n_snapshots"]
-        arrays[name] = _load_npy(_chunk_file(path, chunk, f"{name}.npy"), entry, rows, mmap)
+        arrays[name] = load_npy(_chunk_file(path, chunk, f"{name}.npy"), entry, rows, mmap)
     return frame, trajs, arrays
 
 
@@ -184,12 +184,12 @@ def read_chunk_times(path: str | Path, manifest: Mapping[str, Any], index: int) 
     file = _chunk_file(path, chunk, _TIMES)
     if "n_times" in chunk and file.is_file():
         entry = {"name": "times", "dtype": "<f8", "tail": []}
-        return _load_npy(file, entry, chunk["n_times"], False)
-    frame = _read_parquet(_chunk_file(path, chunk, "snapshots.parquet"), ["time"])
+        return load_npy(file, entry, chunk["n_times"], False)
+    frame = read_parquet_columns(_chunk_file(path, chunk, "snapshots.parquet"), ["time"])
     return np.unique(frame["time"].to_numpy(dtype=np.float64))
 
 
-def _read_parquet(file: Path, columns: list[str] | None) -> pd.DataFrame:
+def read_parquet_columns(file: Path, columns: list[str] | None) -> pd.DataFrame:
     try:
         return pd.read_parquet(file, columns=columns)
     except Exception as exc:  # pyarrow raises its own error types
@@ -257,9 +257,9 @@ def load_chunk(path: str | Path, index: int, *, fields: Iterable[str] | None = N
         if wanted is not None and name not in wanted:
             continue
         rows = chunk["n_trajectories"] if entry["per"] == "trajectory" else chunk["n_snapshots"]
-        arrays[name] = _load_npy(_chunk_file(path, chunk, f"{name}.npy"), entry, rows, mmap)
+        arrays[name] = load_npy(_chunk_file(path, chunk, f"{name}.npy"), entry, rows, mmap)
     if "geometries" not in arrays:
-        arrays["geometries"] = _fake_geometries(chunk["n_snapshots"], len(manifest["symbols"]))
+        arrays["geometries"] = fake_geometries(chunk["n_snapshots"], len(manifest["symbols"]))
     metadata = decode_metadata(manifest.get("metadata", {}))
     try:
         return Ensemble(

@@ -1,6 +1,6 @@
 """The comment line of an extended-XYZ frame: key vocabulary, ``key=value`` parsing, limits.
 
-Parsing is linear in the length of the line (see :data:`_PAIR_RE`); one comment
+Parsing is linear in the length of the line (see :data:`PAIR_RE`); one comment
 line, one key and one value are bounded by the limits of
 :mod:`ensemblelab.io.limits` (``MAX_COMMENT_CHARS``, ``MAX_VALUE_CHARS``,
 ``MAX_KEY_CHARS``), checked before any parsing, with a ParseError naming the file,
@@ -34,20 +34,20 @@ ARRAY_KEYS: dict[str, bool] = {
 HEADER_KEYS = ("energy_unit", "time_unit", "length_unit", "state_labels", "cation_labels",
                "dyson_shape", "masses", "state_base")
 #: scalar keys with a meaning of their own
-_SCALAR_ENERGY_KEYS = ("e_kin", "e_tot")
-_RESERVED = {"time", "active", "step", "snapshot", *ARRAY_KEYS, *HEADER_KEYS}
+SCALAR_ENERGY_KEYS = ("e_kin", "e_tot")
+RESERVED = {"time", "active", "step", "snapshot", *ARRAY_KEYS, *HEADER_KEYS}
 
 #: one ``key=value`` pair. The look-behind lets a key start only where a run of key
 #: characters starts, so a long run without ``=`` is scanned once (linear time; the
 #: former pattern rescanned it from every position, quadratic).
-_PAIR_RE = re.compile(r'(?<![\w.\-])([A-Za-z_][\w.\-]*)=(?:"([^"]*)"|(\S*))')
+PAIR_RE = re.compile(r'(?<![\w.\-])([A-Za-z_][\w.\-]*)=(?:"([^"]*)"|(\S*))')
 _FIRST_TOKEN_RE = re.compile(r"^[ \t]*(\S+)", re.MULTILINE)
 _NOT_INT_RE = re.compile(r"[^0-9+\- \t]")
-_TRAJ_ID_RE = re.compile(r"(\d+)$")
-_SUFFIXES = (".xyz.gz", ".xyz")
+TRAJ_ID_RE = re.compile(r"(\d+)$")
+SUFFIXES = (".xyz.gz", ".xyz")
 
 
-def _loc(n_atoms: int, frame: int, offset: int = 1) -> int:
+def where_in_file(n_atoms: int, frame: int, offset: int = 1) -> int:
     """1-based line number of line `offset` (0 = count, 1 = comment, 2.. atoms) of a frame."""
     return frame * (n_atoms + 2) + offset + 1
 
@@ -67,7 +67,7 @@ def check_comment_lengths(comments: Sequence[str], n_atoms: int, path: Path) -> 
         raise ParseError(
             f"the comment line holds {lengths[f]} characters, more than the limit "
             f"MAX_COMMENT_CHARS = {limit}; starts with {excerpt(comments[f])}.",
-            path=path, frame=f, line=_loc(n_atoms, f, 1), field="comment line",
+            path=path, frame=f, line=where_in_file(n_atoms, f, 1), field="comment line",
             hint="keep per-frame data short, or raise the limit in ensemblelab.io.limits.")
 
 
@@ -86,7 +86,8 @@ def check_values(keys: Sequence[str], values: dict[str, list[str]], n_atoms: int
             f = next(i for i, n in enumerate(lengths) if n > limit)
             raise ParseError(
                 f"the value holds {lengths[f]} characters, more than the limit "
-                f"MAX_VALUE_CHARS = {limit}.", path=path, frame=f, line=_loc(n_atoms, f, 1),
+                f"MAX_VALUE_CHARS = {limit}.", path=path, frame=f,
+                line=where_in_file(n_atoms, f, 1),
                 field=k, hint="raise the limit in ensemblelab.io.limits if the file is genuine.")
 
 
@@ -100,7 +101,7 @@ def _fast_values(comments: Sequence[str]) -> list[tuple[str, ...]] | None:
     if len(comments) < 2:
         return []
     parts = []
-    for m in _PAIR_RE.finditer(comments[1]):
+    for m in PAIR_RE.finditer(comments[1]):
         quoted = m.group(2) is not None
         parts.append(re.escape(m.group(1)) + "=" + ('"([^"\n]*)"' if quoted else r'([^\s"]*)'))
     if len(parts) < 2:
@@ -112,10 +113,10 @@ def _fast_values(comments: Sequence[str]) -> list[tuple[str, ...]] | None:
     return rows
 
 
-def _parse_comments(comments: Sequence[str], n_atoms: int, path: Path
+def parse_comments(comments: Sequence[str], n_atoms: int, path: Path
                     ) -> tuple[dict[str, str], list[str], dict[str, list[str]]]:
     """Return (header, per-frame keys in order, key -> values of every frame)."""
-    pairs0 = _PAIR_RE.findall(comments[0])
+    pairs0 = PAIR_RE.findall(comments[0])
     header = {k: (q or p) for k, q, p in pairs0 if k in HEADER_KEYS}
     keys = [k for k, _, _ in pairs0 if k not in HEADER_KEYS]
     if len(set(keys)) != len(keys):
@@ -136,7 +137,7 @@ def _parse_comments(comments: Sequence[str], n_atoms: int, path: Path
     keyset = set(keys)
     rows = _fast_values(comments)
     if rows is not None and len(comments) > 1:
-        keys1 = [m.group(1) for m in _PAIR_RE.finditer(comments[1])]
+        keys1 = [m.group(1) for m in PAIR_RE.finditer(comments[1])]
         if set(keys1) - set(HEADER_KEYS) == keyset and len(keys1) == len(set(keys1)):
             columns = list(zip(*rows, strict=True))
             for k, col in zip(keys1, columns, strict=True):
@@ -144,7 +145,7 @@ def _parse_comments(comments: Sequence[str], n_atoms: int, path: Path
                     values[k].extend(col)
             return header, keys, values
     for f, line in enumerate(comments[1:], start=1):
-        d = {k: (q or p) for k, q, p in _PAIR_RE.findall(line) if k not in HEADER_KEYS}
+        d = {k: (q or p) for k, q, p in PAIR_RE.findall(line) if k not in HEADER_KEYS}
         if d.keys() != keyset:
             missing = sorted(keyset - d.keys())
             extra = sorted(d.keys() - keyset)
@@ -152,7 +153,7 @@ def _parse_comments(comments: Sequence[str], n_atoms: int, path: Path
                     else f"unexpected key(s) {_short(extra)}")
             raise ParseError(
                 f"{what} compared with frame 0 (keys {_short(keys)}).", path=path, frame=f,
-                line=_loc(n_atoms, f, 1), field=(missing or extra)[0][:MAX_KEY_CHARS],
+                line=where_in_file(n_atoms, f, 1), field=(missing or extra)[0][:MAX_KEY_CHARS],
                 hint="every frame of a file must carry the same keys.",
             )
         for k in keys:

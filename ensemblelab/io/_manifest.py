@@ -97,10 +97,12 @@ def _check_size(shape: tuple[int, ...], dt: np.dtype, mpath: Path, where: str) -
                            f"= {_safety.MAX_STORE_ELEMENTS}; it cannot fit in memory.")
 
 
+#: the ``format`` value of a native store's manifest
+STORE_FORMAT = "ensemblelab-store"
+
+
 def check_common(m: Any, mpath: Path, *, layouts: tuple[str, ...]) -> dict[str, Any]:
     """Checks shared by both layouts; returns the manifest."""
-    from .store import STORE_FORMAT
-
     if not isinstance(m, dict):
         raise StoreError(f"{mpath}: expected format {STORE_FORMAT!r}, found a JSON "
                          f"{type(m).__name__}. Hint: this folder was not written by "

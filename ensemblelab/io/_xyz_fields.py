@@ -20,13 +20,13 @@ from .. import units
 from .._csv import restore_frame
 from ..errors import ParseError
 from ._common import parse_floats, resolve_unit
-from ._extxyz_comment import _loc
+from ._extxyz_comment import where_in_file
 from ._safety import excerpt, find_forbidden_char, read_bounded
 
 if TYPE_CHECKING:
     from .xyz import _FileData
 
-_NOT_INT_RE = re.compile(r"[^0-9+\- \t]")
+NOT_INT_RE = re.compile(r"[^0-9+\- \t]")
 
 
 def _read_text(path: Path) -> str:
@@ -168,7 +168,7 @@ def _atom_block(lines: list[str], n_atoms: int, n_frames: int, path: Path
         f, a = (int(i) for i in np.argwhere(~same)[0])
         raise ParseError(
             f"the elements change: atom {a} is {ref[a]} in frame 0 but {sym[f, a]} here.",
-            path=path, frame=f, line=_loc(n_atoms, f, 2 + a), field="element",
+            path=path, frame=f, line=where_in_file(n_atoms, f, 2 + a), field="element",
             hint="every frame of every trajectory must hold the same atoms in the same order.",
         )
     numeric = numeric.reshape(n_frames, n_atoms, ncol - 1)
@@ -181,7 +181,7 @@ def _locate_atom_error(atoms: np.ndarray, n_atoms: int, ncol: int, path: Path) -
     for k, line in enumerate(atoms):
         tokens = line.split()
         f, a = divmod(k, n_atoms)
-        where = {"path": path, "frame": f, "line": _loc(n_atoms, f, 2 + a)}
+        where = {"path": path, "frame": f, "line": where_in_file(n_atoms, f, 2 + a)}
         if len(tokens) != ncol:
             raise ParseError(
                 f"expected {ncol} columns like the first atom line, found {len(tokens)}: "
@@ -201,7 +201,7 @@ def _locate_atom_error(atoms: np.ndarray, n_atoms: int, ncol: int, path: Path) -
                 ) from None
 
 
-def _all_numbers(values: dict[str, list[str]], keys: list[str]) -> dict[str, np.ndarray]:
+def all_numbers(values: dict[str, list[str]], keys: list[str]) -> dict[str, np.ndarray]:
     """Parse every numeric key of every frame with one C-tokenizer call (empty dict on trouble)."""
     keys = [k for k in keys if parse_floats(values[k][0]) is not None and values[k][0].strip()]
     if not keys or len(values[keys[0]]) < 50:
@@ -221,7 +221,7 @@ def _all_numbers(values: dict[str, list[str]], keys: list[str]) -> dict[str, np.
     return out
 
 
-def _numbers(vals: list[str], key: str, n_atoms: int, path: Path,
+def parse_numbers(vals: list[str], key: str, n_atoms: int, path: Path,
              pre: dict[str, np.ndarray] | None = None) -> np.ndarray:
     """Parse the values of one key of every frame to a (n_frames, m) float array."""
     if pre and key in pre:
@@ -242,7 +242,7 @@ def _numbers(vals: list[str], key: str, n_atoms: int, path: Path,
         return arr.reshape(len(vals), m)
     for f, v in enumerate(vals):
         tokens = v.split()
-        where = {"path": path, "frame": f, "line": _loc(n_atoms, f, 1), "field": key}
+        where = {"path": path, "frame": f, "line": where_in_file(n_atoms, f, 1), "field": key}
         if len(tokens) != m:
             raise ParseError(
                 f"inconsistent shape: frame 0 has {m} value(s), this frame has {len(tokens)}.",
@@ -258,9 +258,9 @@ def _numbers(vals: list[str], key: str, n_atoms: int, path: Path,
     raise ParseError(f"could not parse the values of {key!r}.", **{"path": path, "field": key})
 
 
-def _integers(vals: list[str], key: str, n_atoms: int, path: Path,
+def parse_integers(vals: list[str], key: str, n_atoms: int, path: Path,
               pre: dict[str, np.ndarray] | None = None) -> np.ndarray:
-    arr = _numbers(vals, key, n_atoms, path, pre)
+    arr = parse_numbers(vals, key, n_atoms, path, pre)
     if arr.shape[1] != 1:
         raise ParseError(f"expected one integer, found {arr.shape[1]} values "
                          f"{excerpt(vals[0])}.",
@@ -270,15 +270,16 @@ def _integers(vals: list[str], key: str, n_atoms: int, path: Path,
     if bad.any():
         f = int(np.flatnonzero(bad)[0])
         raise ParseError(f"expected an integer, found {excerpt(vals[f])}.", path=path, frame=f,
-                         line=_loc(n_atoms, f, 1), field=key, hint=f"write {key}=<integer>.")
+                         line=where_in_file(n_atoms, f, 1), field=key,
+                         hint=f"write {key}=<integer>.")
     return arr.astype(np.int64)
 
 
-def _user_column(vals: list[str], key: str, pre: dict[str, np.ndarray] | None = None) -> Any:
+def user_column(vals: list[str], key: str, pre: dict[str, np.ndarray] | None = None) -> Any:
     joined = " ".join(vals)
     if pre and key in pre and pre[key].shape[1] == 1:
         arr = pre[key][:, 0].copy()
-        return arr.astype(np.int64) if not _NOT_INT_RE.search(joined) else arr
+        return arr.astype(np.int64) if not NOT_INT_RE.search(joined) else arr
     if any(not v or len(v.split()) != 1 for v in vals):
         return np.array(vals, dtype=object)
     arr = parse_floats(joined, len(vals))
@@ -286,7 +287,7 @@ def _user_column(vals: list[str], key: str, pre: dict[str, np.ndarray] | None = 
         if set(vals) <= {"True", "False"}:
             return np.array([v == "True" for v in vals])
         return np.array(vals, dtype=object)
-    if not _NOT_INT_RE.search(joined):
+    if not NOT_INT_RE.search(joined):
         return arr.astype(np.int64)
     return arr
 
@@ -314,7 +315,7 @@ def _looks_like_hartree(energies: np.ndarray, cation: np.ndarray | None) -> str 
 
 
 # ---------------------------------------------------------------------------------- stacking
-class _Stack:
+class Stack:
     """Concatenate per-file arrays into one preallocated buffer (bounded peak memory)."""
 
     def __init__(self, estimate: int) -> None:
@@ -341,7 +342,7 @@ class _Stack:
         return self.buf[: self.n]
 
 
-def _check_same(first: _FileData, other: _FileData) -> None:
+def check_same(first: _FileData, other: _FileData) -> None:
     if other.symbols != first.symbols:
         a = next((i for i, (x, y) in enumerate(zip(first.symbols, other.symbols, strict=False))
                   if x != y), min(len(first.symbols), len(other.symbols)))

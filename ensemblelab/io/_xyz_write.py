@@ -16,7 +16,7 @@ from ..data.elements import masses_for
 from ..data.ensemble import Ensemble
 from ..errors import SchemaError
 from ._common import atomic_folder, dumps_json, encode_metadata
-from ._extxyz_comment import _RESERVED, _SUFFIXES, ARRAY_KEYS
+from ._extxyz_comment import ARRAY_KEYS, RESERVED, SUFFIXES
 
 __all__ = ["write_extxyz"]
 
@@ -24,8 +24,8 @@ __all__ = ["write_extxyz"]
 def _is_extxyz_folder(path: Path) -> bool:
     names = [p.name for p in path.iterdir()]
     return bool(names) and all(
-        n.endswith(_SUFFIXES) or n in ("trajectories.csv", "metadata.json") for n in names
-    ) and any(n.endswith(_SUFFIXES) for n in names)
+        n.endswith(SUFFIXES) or n in ("trajectories.csv", "metadata.json") for n in names
+    ) and any(n.endswith(SUFFIXES) for n in names)
 
 
 def _quote(value: str, key: str) -> str:
@@ -82,7 +82,7 @@ def write_extxyz(
     extra_cols = [c for c in frame.columns if c not in ("snapshot", "traj", "step", "time",
                                                         "active")]
     for c in extra_cols:
-        if c in _RESERVED or not re.fullmatch(r"[A-Za-z_][\w.\-]*", c):
+        if c in RESERVED or not re.fullmatch(r"[A-Za-z_][\w.\-]*", c):
             raise SchemaError(f"column name {c!r} cannot be written as an XYZ comment key.")
     write_snapshot = not np.array_equal(frame["snapshot"].to_numpy(), np.arange(len(frame)))
     masses_default = np.array_equal(ens.masses, masses_for(ens.symbols)) \

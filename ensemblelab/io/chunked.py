@@ -88,17 +88,17 @@ from ..data.ensemble import (
 )
 from ..errors import SchemaError, StoreError
 from ._chunked_read import (  # noqa: F401  (re-exported: public import paths)
-    _fake_geometries,
-    _load_npy,
-    _read_parquet,
+    fake_geometries,
     is_chunked_store,
     iter_chunk_indices,
     load_chunk,
     load_chunk_array,
+    load_npy,
     read_chunk_fields,
     read_chunk_table,
     read_chunk_times,
     read_chunked_manifest,
+    read_parquet_columns,
 )
 from ._common import decode_metadata, dumps_json, encode_metadata
 from ._versioned import StoreTransaction, store_transaction

@@ -61,14 +61,13 @@ import pandas as pd
 from ..data.ensemble import SCHEMA_VERSION, SNAPSHOT_ARRAYS, TRAJECTORY_ARRAYS, Ensemble
 from ..errors import SchemaError, StoreError
 from ._common import decode_metadata, dumps_json, encode_metadata
-from ._manifest import check_common, check_single, load_manifest_json
+from ._manifest import STORE_FORMAT, check_common, check_single, load_manifest_json
 from ._safety import confined
 from ._versioned import read_consistent, store_transaction
 
 __all__ = ["save_store", "load_store", "is_store", "read_manifest", "STORE_FORMAT", "LAYOUTS"]
 
 #: value of the manifest's ``format`` key
-STORE_FORMAT = "ensemblelab-store"
 #: layouts this version can read
 LAYOUTS = ("single",)
 _MANIFEST = "manifest.json"

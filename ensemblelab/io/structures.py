@@ -18,7 +18,7 @@ import io
 import os
 from collections.abc import Sequence
 from pathlib import Path
-from typing import Literal
+from typing import Any, Literal
 
 import numpy as np
 import numpy.typing as npt
@@ -29,7 +29,7 @@ from .._csv import to_csv_text
 from .._optional import import_optional
 from ..errors import SchemaError
 
-__all__ = ["write_xyz", "write_pdb", "write_structures"]
+__all__ = ["write_xyz", "write_pdb", "write_structures", "write_representatives"]
 
 
 def _check(geometries: npt.ArrayLike, symbols: Sequence[str], info: pd.DataFrame | None
@@ -225,3 +225,31 @@ def write_structures(
     table["file"] = out.name
     atomic_write_text(csv_path, to_csv_text(table), overwrite=overwrite)
     return out, csv_path
+
+
+def write_representatives(reps: Any, path: str | os.PathLike[str], *,
+                          format: str | None = None,
+                          overwrite: bool = False) -> tuple[Path, Path]:
+    """Export representative structures as multi-frame (extended) XYZ or PDB plus a CSV.
+
+    Parameters
+    ----------
+    reps : Representatives
+        From :func:`~ensemblelab.cluster_representatives` (or the band and time-window
+        variants): ``table``, ``geometries`` (n, n_atoms, 3) in Angstrom, ``symbols``.
+    path : path
+        The structure file; its suffix picks the format unless `format` is given.
+    format : {"xyz", "extxyz", "pdb"}, optional
+    overwrite : bool
+        Replace an existing file this tool wrote.
+
+    Returns
+    -------
+    (structure_path, csv_path)
+        The group (cluster), kind, weight, snapshot, trajectory, time and active state of
+        each structure go into its comment line (XYZ) or REMARK record (PDB) and the CSV.
+    """
+    cols = ["group", "kind", "weight", "snapshot", "traj", "time", "active", "size"]
+    info = reps.table[[c for c in cols if c in reps.table.columns]]
+    return write_structures(path, reps.geometries, reps.symbols, info, format=format,
+                            overwrite=overwrite)

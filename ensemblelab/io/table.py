@@ -153,7 +153,7 @@ def load_table(
     Ensemble
         Rows sorted by (traj, time); internal units.
     """
-    from .xyz import _atom_block, _read_text, _split_frames  # shared XYZ frame parser
+    from .xyz import atom_block, read_text, split_frames  # shared XYZ frame parser
 
     check_nonfinite_option(nonfinite)
     path = Path(path)
@@ -258,9 +258,9 @@ def load_table(
         )
 
     if units.energy_factor(e_unit) == 1.0:
-        from .xyz import _looks_like_hartree
+        from .xyz import looks_like_hartree
 
-        why = _looks_like_hartree(energies, arrays.get("cation_energies"))
+        why = looks_like_hartree(energies, arrays.get("cation_energies"))
         if why:
             warnings.warn(
                 f"{path}: energies look like hartree although eV was declared or assumed: {why}."
@@ -293,13 +293,13 @@ def load_table(
         geoms, symbols = np.zeros((n, 0, 3)), []
     else:
         gpath = Path(geometries)  # type: ignore[arg-type]
-        n_atoms, n_frames, lines = _split_frames(_read_text(gpath), gpath)
+        n_atoms, n_frames, lines = split_frames(read_text(gpath), gpath)
         if n_frames != n:
             raise ParseError(
                 f"expected one frame per table row ({n} rows), found {n_frames} frames.",
                 path=gpath, field="frames",
                 hint="the XYZ file must hold the geometries in table row order.")
-        symbols, geoms, _vel = _atom_block(lines, n_atoms, n_frames, gpath)
+        symbols, geoms, _vel = atom_block(lines, n_atoms, n_frames, gpath)
         report_nonfinite(geoms, name="coordinates", nonfinite=nonfinite, path=gpath,
                          stacklevel=4)
         geoms = geoms * l_fac
@@ -312,10 +312,10 @@ def load_table(
     if isinstance(trajectories, pd.DataFrame):
         traj_table = trajectories
     elif trajectories is not None:
-        from .xyz import _read_trajectories_csv
+        from .xyz import read_trajectories_csv
 
         tpath = Path(trajectories)
-        traj_table, traj_arrays = _read_trajectories_csv(
+        traj_table, traj_arrays = read_trajectories_csv(
             tpath, np.unique(traj), energy_unit=energy_unit, state_base=state_base)
         sources.append(file_source(tpath, fmt="csv"))
     try:
@@ -345,7 +345,7 @@ def write_table(ens: Ensemble, path: str | Path, *, geometries: bool = True) -> 
         The table file. Units: fs, eV, Angstrom. Snapshot ids, velocities and
         matrices (adt, overlaps) are not part of this layout.
     """
-    from .xyz import _write_trajectories_csv
+    from .xyz import write_trajectories_csv
 
     path = Path(path)
     frame = ens.snapshots.drop(columns=["snapshot"])
@@ -385,5 +385,5 @@ def write_table(ens: Ensemble, path: str | Path, *, geometries: bool = True) -> 
                 fh.write(f"{ens.n_atoms}\ntime={t!r}\n")
                 fh.write(atom % tuple(pos))
     with atomic_file(stem.with_name(stem.name + ".trajectories.csv")) as fh:
-        _write_trajectories_csv(ens, fh)
+        write_trajectories_csv(ens, fh)
     return path

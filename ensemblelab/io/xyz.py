@@ -107,40 +107,40 @@ from ._common import (
 __all__ = ["load_extxyz", "write_extxyz", "find_trajectory_files", "ARRAY_KEYS", "HEADER_KEYS"]
 
 from ._extxyz_comment import (  # noqa: E402,F401  (the key vocabulary lives with the parser)
-    _PAIR_RE,
-    _RESERVED,
-    _SCALAR_ENERGY_KEYS,
-    _SUFFIXES,
-    _TRAJ_ID_RE,
     ARRAY_KEYS,
     HEADER_KEYS,
-    _loc,
-    _parse_comments,
+    PAIR_RE,
+    RESERVED,
+    SCALAR_ENERGY_KEYS,
+    SUFFIXES,
+    TRAJ_ID_RE,
     check_comment_lengths,
     check_values,
+    parse_comments,
+    where_in_file,
 )
 from ._safety import MAX_MANIFEST_BYTES, check_no_symlink_escape, excerpt  # noqa: E402
 from ._xyz_fields import (  # noqa: E402,F401
-    _NOT_INT_RE,
-    _all_numbers,
-    _atom_block,
-    _check_same,
-    _integers,
-    _looks_like_hartree,
-    _numbers,
-    _read_text,
-    _read_trajectories_csv,
-    _split_frames,
-    _Stack,
-    _user_column,
+    NOT_INT_RE,
+    Stack,
+    all_numbers,
+    atom_block,
+    check_same,
+    looks_like_hartree,
+    parse_integers,
+    parse_numbers,
+    read_text,
+    read_trajectories_csv,
+    split_frames,
+    user_column,
 )
-from ._xyz_write import _write_trajectories_csv, write_extxyz  # noqa: E402,F401
+from ._xyz_write import write_extxyz, write_trajectories_csv  # noqa: E402,F401
 
 
 # ---------------------------------------------------------------------------------- files
 def _stem(path: Path) -> str:
     name = path.name
-    for suf in _SUFFIXES:
+    for suf in SUFFIXES:
         if name.endswith(suf):
             return name[: -len(suf)]
     return path.stem
@@ -161,10 +161,10 @@ def find_trajectory_files(folder: Path) -> list[tuple[int, Path]]:
     """
     folder = Path(folder)
     files = sorted(p for p in folder.iterdir()
-                   if p.is_file() and p.name.endswith(_SUFFIXES) and not p.name.startswith("."))
+                   if p.is_file() and p.name.endswith(SUFFIXES) and not p.name.startswith("."))
     for p in files:  # a link to a file outside the folder is refused, not followed
         check_no_symlink_escape(folder, p, what="trajectory file")
-    matches = [_TRAJ_ID_RE.search(_stem(p)) for p in files]
+    matches = [TRAJ_ID_RE.search(_stem(p)) for p in files]
     if files and all(matches):
         ids = [int(m.group(1)) for m in matches]  # type: ignore[union-attr]
         seen: dict[int, Path] = {}
@@ -210,17 +210,17 @@ def _parse_header_int(value: str, *, path: Path, key: str) -> int:
 
 def _parse_file(path: Path, *, energy_unit: str | None, time_unit: str | None,
                 length_unit: str | None, state_base: int | None, nonfinite: str) -> _FileData:
-    text = _read_text(path)
-    n_atoms, n_frames, lines = _split_frames(text, path)
+    text = read_text(path)
+    n_atoms, n_frames, lines = split_frames(text, path)
     del text
     size = n_atoms + 2
-    symbols, geoms, vel = _atom_block(lines, n_atoms, n_frames, path)
+    symbols, geoms, vel = atom_block(lines, n_atoms, n_frames, path)
     comments = lines[1::size][:n_frames]
     check_comment_lengths(comments, n_atoms, path)
     del lines
-    header, keys, values = _parse_comments(comments, n_atoms, path)
+    header, keys, values = parse_comments(comments, n_atoms, path)
     check_values(keys, values, n_atoms, path)
-    pre = _all_numbers(values, keys)
+    pre = all_numbers(values, keys)
 
     e_unit = resolve_unit("energy", header.get("energy_unit"), energy_unit, path=path)
     t_unit = resolve_unit("time", header.get("time_unit"), time_unit, path=path)
@@ -235,9 +235,9 @@ def _parse_file(path: Path, *, energy_unit: str | None, time_unit: str | None,
                          hint="0 when the ground state is 0, 1 when it is 1.")
 
     def frame_line(row: int) -> tuple[int, int]:
-        return row, _loc(n_atoms, row, 1)
+        return row, where_in_file(n_atoms, row, 1)
 
-    time = _numbers(values["time"], "time", n_atoms, path, pre)
+    time = parse_numbers(values["time"], "time", n_atoms, path, pre)
     if time.shape[1] != 1:
         raise ParseError(f"expected one number, found {values['time'][0]!r}.", path=path,
                          frame=0, line=2, field="time", hint="write time=<number>.")
@@ -245,7 +245,7 @@ def _parse_file(path: Path, *, energy_unit: str | None, time_unit: str | None,
     if not np.all(np.isfinite(time)):
         f = int(np.flatnonzero(~np.isfinite(time))[0])
         raise ParseError(f"expected a finite time, found {time[f]}.", path=path, frame=f,
-                         line=_loc(n_atoms, f, 1), field="time",
+                         line=where_in_file(n_atoms, f, 1), field="time",
                          hint="every frame needs a finite time stamp.")
     dt = np.diff(time)
     if np.any(dt <= 0):
@@ -253,7 +253,8 @@ def _parse_file(path: Path, *, energy_unit: str | None, time_unit: str | None,
         kind = "duplicated" if dt[f - 1] == 0 else "decreasing"
         raise ParseError(
             f"{kind} time: expected a time greater than {time[f - 1]:g} (frame {f - 1}), "
-            f"found {time[f]:g}.", path=path, frame=f, line=_loc(n_atoms, f, 1), field="time",
+            f"found {time[f]:g}.", path=path, frame=f,
+            line=where_in_file(n_atoms, f, 1), field="time",
             hint="times must increase strictly within a trajectory; remove repeated frames "
                  "or stitch restarted segments first.",
         )
@@ -262,24 +263,24 @@ def _parse_file(path: Path, *, energy_unit: str | None, time_unit: str | None,
     arrays: dict[str, np.ndarray] = {}
     for key in ARRAY_KEYS:
         if key in values:
-            arrays[key] = _numbers(values[key], key, n_atoms, path, pre)
+            arrays[key] = parse_numbers(values[key], key, n_atoms, path, pre)
     energies = arrays.pop("energies")
     n_states = energies.shape[1]
-    active = _integers(values["active"], "active", n_atoms, path, pre) - base
+    active = parse_integers(values["active"], "active", n_atoms, path, pre) - base
     bad = (active < 0) | (active >= n_states)
     if bad.any():
         f = int(np.flatnonzero(bad)[0])
         raise ParseError(
             f"active state out of range: expected {base}..{n_states - 1 + base} "
             f"({n_states} states, counted from {base}), found {active[f] + base}.",
-            path=path, frame=f, line=_loc(n_atoms, f, 1), field="active",
+            path=path, frame=f, line=where_in_file(n_atoms, f, 1), field="active",
             hint="if the file counts states from 1, pass state_base=1 (or write state_base=1 "
                  "in the first comment line); otherwise check the number of energies.",
         )
     cation = arrays.get("cation_energies")
     suspicious = None
     if units.energy_factor(e_unit) == 1.0:
-        suspicious = _looks_like_hartree(energies, cation)
+        suspicious = looks_like_hartree(energies, cation)
     n_cat = None if cation is None else cation.shape[1]
 
     out_arrays: dict[str, np.ndarray] = {}
@@ -337,10 +338,10 @@ def _parse_file(path: Path, *, energy_unit: str | None, time_unit: str | None,
         report_nonfinite(arr, name=key, nonfinite=nonfinite, path=path,
                          frame_of_row=frame_line, stacklevel=5)
     report_nonfinite(geoms, name="coordinates", nonfinite=nonfinite, path=path,
-                     frame_of_row=lambda r: (r, _loc(n_atoms, r, 2)), stacklevel=5)
+                     frame_of_row=lambda r: (r, where_in_file(n_atoms, r, 2)), stacklevel=5)
     if vel is not None:
         report_nonfinite(vel, name="velocities", nonfinite=nonfinite, path=path,
-                         frame_of_row=lambda r: (r, _loc(n_atoms, r, 2)), stacklevel=5)
+                         frame_of_row=lambda r: (r, where_in_file(n_atoms, r, 2)), stacklevel=5)
 
     if e_fac != 1.0:
         energies *= e_fac
@@ -357,19 +358,19 @@ def _parse_file(path: Path, *, energy_unit: str | None, time_unit: str | None,
     step = snapshot = None
     for key in keys:
         if key == "step":
-            step = _integers(values[key], key, n_atoms, path, pre)
+            step = parse_integers(values[key], key, n_atoms, path, pre)
         elif key == "snapshot":
-            snapshot = _integers(values[key], key, n_atoms, path, pre)
-        elif key in _RESERVED:
+            snapshot = parse_integers(values[key], key, n_atoms, path, pre)
+        elif key in RESERVED:
             continue
-        elif key in _SCALAR_ENERGY_KEYS:
-            col = _numbers(values[key], key, n_atoms, path, pre)
+        elif key in SCALAR_ENERGY_KEYS:
+            col = parse_numbers(values[key], key, n_atoms, path, pre)
             if col.shape[1] != 1:
                 raise ParseError(f"expected one number, found {values[key][0]!r}.", path=path,
                                  frame=0, line=2, field=key, hint=f"write {key}=<number>.")
             columns[key] = col[:, 0] * e_fac
         else:
-            columns[key] = _user_column(values[key], key, pre)
+            columns[key] = user_column(values[key], key, pre)
     return _FileData(path=path, n_frames=n_frames, symbols=symbols, geometries=geoms,
                      velocities=vel, time=time, active=active, step=step, snapshot=snapshot,
                      arrays=out_arrays, columns=columns, header=header, energy_unit=e_unit,
@@ -433,7 +434,7 @@ def load_extxyz(
                              hint="one extended-XYZ file per trajectory is expected.")
         folder = path
     else:
-        m = _TRAJ_ID_RE.search(_stem(path))
+        m = TRAJ_ID_RE.search(_stem(path))
         files = [(int(m.group(1)) if m else 0, path)]
         folder = None
     sizes = [p.stat().st_size for _, p in files]
@@ -441,7 +442,7 @@ def load_extxyz(
           "state_base": state_base, "nonfinite": nonfinite}
 
     first: _FileData | None = None
-    stacks: dict[str, _Stack] = {}
+    stacks: dict[str, Stack] = {}
     lists: dict[str, list[Any]] = {}
     traj_ids: list[np.ndarray] = []
     steps: list[np.ndarray] = []
@@ -456,13 +457,13 @@ def load_extxyz(
             first = data
             est = data.n_frames * sum(sizes) / max(sizes[0], 1) * 1.02 + 16
         else:
-            _check_same(first, data)
+            check_same(first, data)
         blocks = {"geometries": data.geometries, "time": data.time, "active": data.active,
                   **data.arrays}
         if data.velocities is not None:
             blocks["velocities"] = data.velocities
         for name, arr in blocks.items():
-            stacks.setdefault(name, _Stack(est)).add(arr)
+            stacks.setdefault(name, Stack(est)).add(arr)
         offset = sum(len(t) for t in traj_ids)
         for name, col in data.columns.items():
             if name not in lists:
@@ -526,7 +527,7 @@ def load_extxyz(
         if csv_path.is_file():
             check_no_symlink_escape(folder, csv_path, what="trajectory table")
             base = state_base if state_base is not None else int(header.get("state_base", 0))
-            trajectories, traj_arrays = _read_trajectories_csv(
+            trajectories, traj_arrays = read_trajectories_csv(
                 csv_path, ids_all, energy_unit=energy_unit, state_base=base)
             sources.append(file_source(csv_path, fmt="csv"))
     metadata["sources"] = sources

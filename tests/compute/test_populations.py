@@ -47,7 +47,7 @@ def _tiny(active_rows, times, *, amplitudes=None, adt=None, weights=None):
         (99, 100, (0.945514, 0.998233)),
     ],
 )
-def test_wilson_interval_matches_scipy_and_method_notes(k, n, expected):
+def test_wilson_interval_matches_scipy_and_worked_values(k, n, expected):
     lo, hi = K.wilson_interval(np.array(k / n), np.array(float(n)), Z95)
     ref = binomtest(k, n).proportion_ci(method="wilson")  # scipy reference
     assert lo == pytest.approx(ref.low, abs=1e-12)

@@ -100,7 +100,9 @@ def test_band_representatives_from_contributions(ens_groups):
 def test_write_exports_structures_and_csv(ens_groups, tmp_path):
     ens, _ = ens_groups
     reps = cluster_representatives(ens, cluster_snapshots(ens, by_state=False, n_clusters=2))
-    xyz, csv = reps.write(tmp_path / "reps.xyz")
+    from ensemblelab.io.structures import write_representatives
+
+    xyz, csv = write_representatives(reps, tmp_path / "reps.xyz")
     table = pd.read_csv(csv, dtype={"group": str})
     assert table["group"].tolist() == reps.table["group"].tolist()
     ase_io = pytest.importorskip("ase.io")

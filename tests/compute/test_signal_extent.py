@@ -15,7 +15,8 @@ def _gauss_map(centre: float, width: float, *, e_max: float = 5.8, n: int = 581)
     e = np.linspace(0.0, e_max, n)
     d = np.linspace(-50.0, 300.0, 8)
     decay = np.exp(-np.clip(d, 0, None) / 100.0)[:, None]
-    return TRPESMap(energies=e, delays=d, intensity=decay * np.exp(-((e - centre) / width) ** 2))
+    return TRPESMap(kinetic_energies=e, delays=d,
+                    intensity=decay * np.exp(-((e - centre) / width) ** 2))
 
 
 def test_signal_extent_matches_the_gaussian_threshold():
@@ -42,7 +43,7 @@ def test_signal_extent_pad_is_a_fraction_of_the_width_and_clipped_to_the_grid():
 
 def test_signal_extent_ends_before_the_photon_energy_and_follows_delays():
     m = _gauss_map(1.5, 0.4)
-    assert signal_extent(m)[1] < 3.0 < float(m.energies[-1])
+    assert signal_extent(m)[1] < 3.0 < float(m.kinetic_energies[-1])
     lo, hi = signal_extent(m, axis="delay", fraction=0.2, pad=0.0)
     # decay exp(-d/100) > 0.2 up to d = 100 ln 5 = 161 fs; delay grid step 50 fs
     # (computed independently (not published))

@@ -60,7 +60,8 @@ def test_trpes_closed_channel_and_truncation_below_zero():
 
 
 def test_trpes_doorway_factor_table():
-    # doorway-window worked value, computed independently (not published): w = (0.0357934, 8.20699e-7);
+    # doorway-window worked value, computed independently (not published): w = (0.0357934,
+    # 8.20699e-7);
     # fraction 0.999977 (1e-5 rel)
     pump = GaussianPulse(photon_energy=4.1, fwhm=20.0)
     assert pump.spectral_fwhm == pytest.approx(0.091248, rel=1e-5)
@@ -96,7 +97,7 @@ def test_trpes_doorway_weights_from_ensemble():
 
 
 def _analytic_17(e, tau_d):
-    """Method notes 1.7 infinite-N signal, evaluated here from eq. (7.2) (closed form)."""
+    """Infinite-N signal of an exponential decay, closed form (computed independently)."""
     sigma = math.hypot(30.0, 30.0) / (2 * math.sqrt(2 * math.log(2)))
     tau = 100.0
     u = tau_d
@@ -108,7 +109,8 @@ def _analytic_17(e, tau_d):
     return (0.9 * g15 - 0.8 * g05) * y1 + 0.8 * g05 * yinf
 
 
-# doorway-window worked value, computed independently (not published): tau -> (S(1.5 eV), S(0.5 eV)) in eV^-1
+# doorway-window worked value, computed independently (not published): tau -> (S(1.5 eV), S(0.5
+# eV)) in eV^-1
 TABLE_17 = {
     -30.0: (0.6197, 0.0415), 0.0: (6.0533, 0.7966), 100.0: (5.1968, 7.7352),
     300.0: (0.7033, 11.7294),
@@ -182,7 +184,8 @@ def test_trpes_area_sum_rule_without_truncation():
 @pytest.mark.parametrize("by", ["neutral", "cation", "pair", "diabatic"])
 @pytest.mark.parametrize("convolve", [True, False])
 def test_trpes_decompositions_sum_to_total(by, convolve):
-    # doorway-window worked value and 4.1, derived and computed independently (not published): exact additive
+    # doorway-window worked value and 4.1, derived and computed independently (not published):
+    # exact additive
     # decompositions (1e-12)
     ens = random_ensemble(6, seed=1)
     kw = dict(probe=PROBE, pump=PUMP, kinetic_energies=np.linspace(0, 4, 161),
@@ -210,7 +213,8 @@ def test_trpes_neutral_components_select_states():
 
 
 def test_trpes_doubling_dyson_doubles_map():
-    # hydrogenic plane-wave cross section, derived and computed independently (not published): 2x Dyson norms -> 2x map
+    # hydrogenic plane-wave cross section, derived and computed independently (not published): 2x
+    # Dyson norms -> 2x map
     # at every point (1e-12)
     ens = random_ensemble(5, seed=4)
     kw = dict(probe=PROBE, pump=PUMP, kinetic_energies=np.linspace(0, 4, 121),
@@ -276,7 +280,8 @@ def test_trpes_two_photon_probe_width_and_position():
     probe2 = GaussianPulse(photon_energy=2.5, fwhm=30.0, n_photons=2)
     m = compute_trpes(_one_snapshot(), probe=probe2, kinetic_energies=[1.0], delays=[0.0],
                       convolve=False, progress=False)
-    # Gamma^(2) = 0.086029 eV: Gaussian convolution algebra derived and computed independently (not published);
+    # Gamma^(2) = 0.086029 eV: Gaussian convolution algebra derived and computed independently
+    # (not published);
     # peak at 2 * 2.5 - 4.0 = 1.0 eV
     assert m.params["fwhm_energy"] == pytest.approx(0.086029, abs=1e-6)
     assert m.intensity[0, 0] == pytest.approx(float(gaussian(1.0, 1.0, 0.0860290)), rel=1e-5)
@@ -312,7 +317,8 @@ def test_trpes_input_not_modified():
 
 
 def test_trpes_warns_when_probe_ionises_ground_state():
-    # doorway-window worked value derived and computed independently (not published): a ground-state depletion
+    # doorway-window worked value derived and computed independently (not published): a ground-
+    # state depletion
     # term exists only where n h-nu > IP_00;
     # the toy ensemble has IP(S0 -> D0) = 8.0 eV at every geometry (ensemblelab.testing)
     import warnings

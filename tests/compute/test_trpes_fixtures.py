@@ -9,7 +9,7 @@ from ensemblelab.data.ensemble import Ensemble
 
 
 def stratified_decay(n: int, *, dt: float = 1.0, t_max: float = 500.0, tau: float = 100.0):
-    """Method notes 1.7 scenario with hop times on exponential quantiles (no sampling noise)."""
+    """Exponential-decay scenario with hop times on exponential quantiles (no sampling noise)."""
     hop = -tau * np.log1p(-(np.arange(n) + 0.5) / n)
     t = np.arange(0.0, t_max + dt / 2, dt)
     traj = np.repeat(np.arange(n), t.size)

@@ -72,7 +72,8 @@ def test_kernel_chunking_does_not_change_result():
 
 
 def test_kernel_time_matrix_unit_step_is_half_at_zero():
-    # Gaussian convolution algebra, derived and computed independently (not published): unit step convolved at
+    # Gaussian convolution algebra, derived and computed independently (not published): unit step
+    # convolved at
     # tau = 0 gives 0.5 (1e-12), any sigma
     for sigma in (5.0, 18.0, 40.0):
         times = np.arange(-400.0, 600.0, 1.0)
@@ -81,7 +82,8 @@ def test_kernel_time_matrix_unit_step_is_half_at_zero():
 
 
 def test_kernel_time_matrix_exponential_closed_form():
-    # Gaussian convolution algebra, computed independently (not published): e^{-u/100 fs} with T_cc = 50
+    # Gaussian convolution algebra, computed independently (not published): e^{-u/100 fs} with
+    # T_cc = 50
     # fs at -50, 0, 50, 200 fs
     # -> 0.008646, 0.425407, 0.610385, 0.138421; discrete grid, tolerance 5e-4 (dt <= 0.1 fs)
     sigma = 50.0 / 2.354820045

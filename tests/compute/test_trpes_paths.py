@@ -146,7 +146,8 @@ def _two_sticks(ekin_ev: tuple[float, float], photon: float = 10.0) -> Ensemble:
 
 
 def test_hydrogenic_cross_section_reaches_the_sticks_with_stick_energies():
-    # hydrogenic plane-wave cross section: sigma(0.01 E_h) / sigma(0.04 E_h) = 0.176137 at zeta = 1 (computed
+    # hydrogenic plane-wave cross section: sigma(0.01 E_h) / sigma(0.04 E_h) = 0.176137 at zeta =
+    # 1 (computed
     # independently (not published)); through compute_trpes the stick weights must carry it
     probe = GaussianPulse(photon_energy=10.0, fwhm=30.0)
     ens = _two_sticks((0.01 * HARTREE_EV, 0.04 * HARTREE_EV))
@@ -179,7 +180,8 @@ def test_anion_threshold_law_default_is_p_wave_through_compute_trpes():
 
 @pytest.mark.parametrize("convolve", [True, False])
 def test_diabatic_components_follow_the_squared_adt_of_the_pair_map(convolve):
-    # diabatic decomposition by the squared ADT: a stick (i, k) goes to diabatic pair (a, b) with weight
+    # diabatic decomposition by the squared ADT: a stick (i, k) goes to diabatic pair (a, b) with
+    # weight
     # U_ia^2 V_kb^2. With one ADT for all snapshots the diabatic components are that mix
     # of the adiabatic pair components (derived and computed independently (not
     # published)); a generic 3 x 3 rotation has a non-symmetric U^2, so a transposed

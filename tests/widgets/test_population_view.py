@@ -57,7 +57,7 @@ def test_populationview_sequential_fit_states_chosen_in_the_view(model, toy):
     assert view.messages.errors == []
     assert view.roles_box.layout.display == "flex"
     res = view.fit_result
-    assert res.model == "sequential" and tuple(res.states) == (2, 1, 0)
+    assert res.scheme == "sequential" and tuple(res.states) == (2, 1, 0)
     label = view.fit_label.value
     assert "tau1 (S2 → S1)" in label and "tau2 (S1 → S0)" in label
     # the toy S2 lifetime is 100 fs (ensemblelab.testing ground truth); 24 trajectories

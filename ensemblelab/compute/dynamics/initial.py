@@ -31,7 +31,7 @@ from ...units import (
     HARTREE_EV,
     HBAR_EV_FS,
 )
-from .wigner import WignerSample, _rng
+from .wigner import WignerSample, rng_from
 
 __all__ = [
     "doorway_table",
@@ -169,7 +169,7 @@ def select_initial_conditions(
         )
     w["doorway"] = w["weight"] / w_max
     if method == "rejection":
-        xi = _rng(random_state).random(len(w))
+        xi = rng_from(random_state).random(len(w))
         keep = xi < w["doorway"].to_numpy()
         sel = w.loc[keep].copy()
         if n_select is not None:

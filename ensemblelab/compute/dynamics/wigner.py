@@ -48,7 +48,7 @@ __all__ = [
 _AU_VEL = BOHR_ANGSTROM / AU_TIME_FS
 
 
-def _rng(random_state: Any) -> np.random.Generator:
+def rng_from(random_state: Any) -> np.random.Generator:
     if isinstance(random_state, np.random.Generator):
         return random_state
     return np.random.default_rng(random_state)
@@ -111,7 +111,7 @@ def sample_normal_modes(
     if np.any(w <= 0):
         raise SchemaError(f"omega must be > 0; got {w[w <= 0][:5]}.")
     alpha = thermal_factor(w * HARTREE_CM1, temperature)
-    rng = _rng(random_state)
+    rng = rng_from(random_state)
     xi = rng.standard_normal((int(n_samples), w.size))
     eta = rng.standard_normal((int(n_samples), w.size))
     return xi * np.sqrt(alpha / (2 * w)), eta * np.sqrt(alpha * w / 2)

@@ -33,7 +33,7 @@ from scipy.stats import norm
 
 from ...errors import NumericalWarning, SchemaError
 from . import _kernels_populations as _k
-from .schemes import _POSITIVE, _UNIT, KINETIC_SCHEMES, _Problem, _Scheme, fwhm_to_sigma
+from .schemes import KINETIC_SCHEMES, POSITIVE, UNIT, Problem, Scheme, fwhm_to_sigma
 
 if TYPE_CHECKING:
     from ...data.ensemble import Ensemble
@@ -114,7 +114,7 @@ class KineticsResult:
         """Fitted curves on any time grid: ``time, state, role, fitted``."""
         t = np.asarray(times, dtype=np.float64).ravel()
         prob = self._problem
-        p = _Problem(prob.scheme, prob.free, prob.fixed, t, prob.n_roles, prob.sigma, self.t0)
+        p = Problem(prob.scheme, prob.free, prob.fixed, t, prob.n_roles, prob.sigma, self.t0)
         x = prob.to_free(self.params)[None, :]
         c = p.curves(x)[0]
         roles = KINETIC_SCHEMES[self.scheme].roles[: prob.n_roles]
@@ -168,7 +168,7 @@ def _pivot(frame: pd.DataFrame) -> tuple[np.ndarray, dict[int, np.ndarray], dict
             {int(c): wide[c].to_numpy(np.float64) for c in wide.columns}, labels)
 
 
-def _resolve_states(states, available: Sequence[int], labels: dict[int, str], scheme: _Scheme,
+def _resolve_states(states, available: Sequence[int], labels: dict[int, str], scheme: Scheme,
                     first_values: dict[int, float]) -> tuple[int, ...]:
     if states is None:
         if scheme.name != "single":
@@ -384,7 +384,7 @@ def fit_kinetics(
             fixed["p_inf"] = 0.0
             free.remove("p_inf")
     sigma = fwhm_to_sigma(irf_fwhm)
-    prob = _Problem(scheme, free, fixed, t, len(st), sigma, t0)
+    prob = Problem(scheme, free, fixed, t, len(st), sigma, t0)
     yflat = y.ravel()
     ok = np.isfinite(yflat)
 
@@ -452,7 +452,7 @@ def fit_kinetics(
         # d natural / d x for each transformed parameter
         dnat = []
         for name in free:
-            if name in _POSITIVE:
+            if name in POSITIVE:
                 dnat.append(nat[name])
             elif name == "branching":
                 dnat.append(nat[name] * (1 - nat[name]))
@@ -469,11 +469,11 @@ def fit_kinetics(
     rows: list[tuple[str, float, float, float, str, bool]] = []
     for name in spec.params:
         if name in fixed:
-            rows.append((name, fixed[name], math.nan, math.nan, _UNIT[name], True))
+            rows.append((name, fixed[name], math.nan, math.nan, UNIT[name], True))
         else:
-            rows.append((name, nat[name], lower[name], upper[name], _UNIT[name], False))
+            rows.append((name, nat[name], lower[name], upper[name], UNIT[name], False))
     for name, dv in derived.items():
-        rows.append((name, dv, lower[name], upper[name], _UNIT[name], False))
+        rows.append((name, dv, lower[name], upper[name], UNIT[name], False))
     summary = pd.DataFrame(rows, columns=["parameter", "value", "lower", "upper", "unit",
                                           "fixed"])
     roles = spec.roles[: len(st)]

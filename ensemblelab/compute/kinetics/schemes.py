@@ -146,24 +146,24 @@ def sequential_maximum(tau1: float, tau2: float) -> tuple[float, float]:
 
 # ---------------------------------------------------------------- scheme registry
 @dataclass(frozen=True)
-class _Scheme:
+class Scheme:
     name: str
     params: tuple[str, ...]
     n_roles: tuple[int, ...]  # allowed numbers of fitted states
     roles: tuple[str, ...]
 
 
-KINETIC_SCHEMES: dict[str, _Scheme] = {
-    "single": _Scheme("single", ("tau", "latency", "p_inf"), (1,), ("A",)),
-    "sequential": _Scheme("sequential", ("tau1", "tau2"), (2, 3), ("A", "B", "C")),
-    "parallel": _Scheme("parallel", ("tau", "branching"), (2, 3), ("A", "B", "C")),
+KINETIC_SCHEMES: dict[str, Scheme] = {
+    "single": Scheme("single", ("tau", "latency", "p_inf"), (1,), ("A",)),
+    "sequential": Scheme("sequential", ("tau1", "tau2"), (2, 3), ("A", "B", "C")),
+    "parallel": Scheme("parallel", ("tau", "branching"), (2, 3), ("A", "B", "C")),
 }
-_POSITIVE = {"tau", "tau1", "tau2"}
-_UNIT = {"tau": "fs", "tau1": "fs", "tau2": "fs", "latency": "fs", "p_inf": "1",
+POSITIVE = {"tau", "tau1", "tau2"}
+UNIT = {"tau": "fs", "tau1": "fs", "tau2": "fs", "latency": "fs", "p_inf": "1",
          "branching": "1", "tau_B": "fs", "tau_C": "fs", "t_max_B": "fs", "B_max": "1"}
 
 
-class _Problem:
+class Problem:
     """Maps free parameters (transformed) to stacked predictions of the fitted states."""
 
     def __init__(self, scheme: str, free: list[str], fixed: dict[str, float], times: np.ndarray,
@@ -176,7 +176,7 @@ class _Problem:
         out: dict[str, Any] = dict(self.fixed)
         for j, name in enumerate(self.free):
             v = x[..., j]
-            if name in _POSITIVE:
+            if name in POSITIVE:
                 v = np.exp(np.clip(v, -30.0, 60.0))  # 1e-13 .. 1e26 fs
             elif name == "branching":
                 v = 1.0 / (1.0 + np.exp(-np.clip(v, -40.0, 40.0)))
@@ -187,7 +187,7 @@ class _Problem:
         x = []
         for name in self.free:
             v = float(natural[name])
-            if name in _POSITIVE:
+            if name in POSITIVE:
                 v = math.log(v)
             elif name == "branching":
                 v = min(max(v, 1e-6), 1 - 1e-6)

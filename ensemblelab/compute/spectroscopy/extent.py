@@ -27,11 +27,7 @@ _AXES = ("energy", "delay")
 def _axis_values(trpes_map: TRPESMap, axis: str) -> np.ndarray:
     if axis == "delay":
         return np.asarray(trpes_map.delays, dtype=np.float64)
-    # the kinetic-energy axis (read under its newer name when the map has it)
-    values = getattr(trpes_map, "kinetic_energies", None)
-    if values is None:
-        values = trpes_map.energies
-    return np.asarray(values, dtype=np.float64)
+    return np.asarray(trpes_map.kinetic_energies, dtype=np.float64)
 
 
 def signal_extent(
@@ -77,7 +73,7 @@ def signal_extent(
     >>> import numpy as np
     >>> from ensemblelab.data.spectrum import TRPESMap
     >>> e = np.linspace(0.0, 5.0, 51)
-    >>> m = TRPESMap(energies=e, delays=np.array([0.0, 10.0]),
+    >>> m = TRPESMap(kinetic_energies=e, delays=np.array([0.0, 10.0]),
     ...              intensity=np.tile(np.exp(-((e - 1.0) / 0.2) ** 2), (2, 1)))
     >>> lo, hi = signal_extent(m, fraction=0.01, pad=0.0)  # 0.6 .. 1.4 eV, one step added
     >>> round(lo, 2), round(hi, 2)

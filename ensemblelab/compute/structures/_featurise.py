@@ -69,7 +69,7 @@ def make_featuriser(features: str | TransformerMixin, symbols: Sequence[str],
 
 
 @dataclass
-class _Featuriser:
+class Featuriser:
     """Compute (standardised) features for any rows of a geometry source, chunk by chunk."""
 
     source: Callable[[np.ndarray], np.ndarray]  # rows -> 2-D raw input
@@ -79,7 +79,7 @@ class _Featuriser:
     scale_: np.ndarray | None = None
     names: list[str] = field(default_factory=list)
 
-    def fit(self, rows: np.ndarray) -> _Featuriser:
+    def fit(self, rows: np.ndarray) -> Featuriser:
         X = self.source(rows)
         F = np.asarray(self.transformer.fit_transform(X), dtype=np.float64)
         if F.ndim != 2 or F.shape[1] == 0:
@@ -106,8 +106,8 @@ class _Featuriser:
         return F
 
 
-def _build_featuriser(ens: Ensemble, features: FeaturesLike, standardise: bool,
-                      geometries: np.ndarray | None = None) -> _Featuriser:
+def build_featuriser(ens: Ensemble, features: FeaturesLike, standardise: bool,
+                      geometries: np.ndarray | None = None) -> Featuriser:
     G = ens.geometries if geometries is None else geometries
     n = G.shape[0]
     if isinstance(features, str) or isinstance(features, TransformerMixin):
@@ -116,7 +116,7 @@ def _build_featuriser(ens: Ensemble, features: FeaturesLike, standardise: bool,
         def source(rows: np.ndarray) -> np.ndarray:
             return G[rows].reshape(len(rows), -1)
 
-        return _Featuriser(source, tr, standardise)
+        return Featuriser(source, tr, standardise)
     if isinstance(features, (list, tuple)) and features and all(
             isinstance(c, str) for c in features):
         missing = [c for c in features if c not in ens.snapshots.columns]
@@ -126,7 +126,7 @@ def _build_featuriser(ens: Ensemble, features: FeaturesLike, standardise: bool,
         arr = ens.snapshots[list(features)].to_numpy(dtype=np.float64)
         if geometries is not None:
             raise SchemaError("column features cannot be used for hop geometries.")
-        fz = _Featuriser(lambda rows: arr[rows], _ColumnFeatures(), standardise)
+        fz = Featuriser(lambda rows: arr[rows], _ColumnFeatures(), standardise)
         fz.names = list(features)
         return fz
     arr2: np.ndarray = np.asarray(features, dtype=np.float64)
@@ -134,4 +134,4 @@ def _build_featuriser(ens: Ensemble, features: FeaturesLike, standardise: bool,
         raise SchemaError(
             f"a features array must have shape (n_rows={n}, n_features); got {arr2.shape}."
         )
-    return _Featuriser(lambda rows: arr2[rows], _ColumnFeatures(), standardise)
+    return Featuriser(lambda rows: arr2[rows], _ColumnFeatures(), standardise)

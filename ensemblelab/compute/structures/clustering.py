@@ -29,7 +29,7 @@ import pandas as pd
 from sklearn.base import BaseEstimator, TransformerMixin, clone
 
 from ...errors import SchemaError
-from ._featurise import FeaturesLike, _build_featuriser, _Featuriser, make_featuriser
+from ._featurise import FeaturesLike, Featuriser, build_featuriser, make_featuriser
 
 if TYPE_CHECKING:
     from ...data.ensemble import Ensemble
@@ -93,7 +93,7 @@ def _set_k(est: BaseEstimator, k: int) -> BaseEstimator:
     return est
 
 
-def _fit_group(rows: np.ndarray, fz: _Featuriser, est: BaseEstimator, k: int,
+def _fit_group(rows: np.ndarray, fz: Featuriser, est: BaseEstimator, k: int,
                max_fit: int, chunk: int, rng: np.random.Generator, assign: str = "neighbour"
                ) -> tuple[np.ndarray, np.ndarray | None]:
     """Labels (local 0..K-1, -1 noise) for `rows`, and centroids (K, n_features)."""
@@ -341,7 +341,7 @@ def cluster_snapshots(
     if max_fit_samples < 2:
         raise SchemaError(f"max_fit_samples must be >= 2; got {max_fit_samples}.")
     rng = np.random.default_rng(random_state)
-    fz = _build_featuriser(ens, features, standardise)
+    fz = build_featuriser(ens, features, standardise)
     fit_rows: np.ndarray = np.arange(n)
     if n > max_fit_samples:
         fit_rows = np.sort(rng.choice(n, size=max_fit_samples, replace=False))
@@ -488,7 +488,7 @@ def cluster_hops(
                                        "medoid_row"])
         return HopClusterResult(hops=hops, geometries=G, counts=counts, labels=labels)
     rng = np.random.default_rng(random_state)
-    fz = _build_featuriser(ens, features, standardise, geometries=G).fit(np.arange(len(hops)))
+    fz = build_featuriser(ens, features, standardise, geometries=G).fit(np.arange(len(hops)))
     F = fz(np.arange(len(hops)))
     if by_transition:
         groups = [(f"{ens.state_labels[int(a)]}->{ens.state_labels[int(b)]}:",

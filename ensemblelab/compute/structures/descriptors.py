@@ -417,10 +417,10 @@ class AlignedCartesian(_GeometryTransformer):
         self.standardise = standardise
 
     def _setup(self, n_atoms: int) -> None:
-        from .geometry import _resolve_atoms, _resolve_weights
+        from .geometry import resolve_atoms, resolve_weights
 
-        self.w_ = _resolve_weights(self.weights, n_atoms, None, None)
-        self.atoms_ = _resolve_atoms(self.atoms, n_atoms)
+        self.w_ = resolve_weights(self.weights, n_atoms, None, None)
+        self.atoms_ = resolve_atoms(self.atoms, n_atoms)
 
     def _fit_extra(self, G: np.ndarray) -> None:
         from .geometry import mean_structure

@@ -94,7 +94,7 @@ def _as_frames(x: npt.ArrayLike, name: str) -> np.ndarray:
     return arr
 
 
-def _resolve_weights(weights: WeightsLike, n_atoms: int, masses: npt.ArrayLike | None,
+def resolve_weights(weights: WeightsLike, n_atoms: int, masses: npt.ArrayLike | None,
                      symbols: Sequence[str] | None) -> np.ndarray:
     if weights is None:
         return np.ones(n_atoms)
@@ -117,7 +117,7 @@ def _resolve_weights(weights: WeightsLike, n_atoms: int, masses: npt.ArrayLike |
     return w
 
 
-def _resolve_atoms(atoms: npt.ArrayLike | None, n_atoms: int) -> np.ndarray:
+def resolve_atoms(atoms: npt.ArrayLike | None, n_atoms: int) -> np.ndarray:
     if atoms is None:
         return np.arange(n_atoms)
     idx = np.asarray(atoms)
@@ -190,8 +190,8 @@ def mean_structure(
     """
     X = _as_frames(geometries, "geometries")
     n, a, _ = X.shape
-    w = _resolve_weights(weights, a, masses, symbols)
-    sel = _resolve_atoms(atoms, a)
+    w = resolve_weights(weights, a, masses, symbols)
+    sel = resolve_atoms(atoms, a)
     ws = w[sel]
     ref = X[0] - _k.weighted_centre(X[0][sel], ws)
     it = 0
@@ -262,8 +262,8 @@ def kabsch_align(
     """
     X = _as_frames(geometries, "geometries")
     n, a, _ = X.shape
-    w = _resolve_weights(weights, a, masses, symbols)
-    sel = _resolve_atoms(atoms, a)
+    w = resolve_weights(weights, a, masses, symbols)
+    sel = resolve_atoms(atoms, a)
     n_iter = 0
     if reference is None:
         ref, n_iter = mean_structure(X, weights=w, atoms=sel, max_iter=max_iter, tol=tol,
@@ -333,8 +333,8 @@ def rmsd(
         raise SchemaError(f"method must be 'qcp' or 'kabsch'; got {method!r}.")
     X = _as_frames(geometries, "geometries")
     n, a, _ = X.shape
-    w = _resolve_weights(weights, a, masses, symbols)
-    sel = _resolve_atoms(atoms, a)
+    w = resolve_weights(weights, a, masses, symbols)
+    sel = resolve_atoms(atoms, a)
     if reference is None:
         ref, _ = mean_structure(X, weights=w, atoms=sel, chunk_size=chunk_size)
     else:
@@ -398,7 +398,7 @@ def permutation_rmsd(
     sym = [normalise_symbol(s) for s in symbols]
     if len(sym) != a:
         raise SchemaError(f"symbols must have n_atoms={a} entries; got {len(sym)}.")
-    w = _resolve_weights(weights, a, masses, sym)
+    w = resolve_weights(weights, a, masses, sym)
     groups = [np.flatnonzero(np.array(sym) == e) for e in dict.fromkeys(sym)]
     for g in groups:
         if np.ptp(w[g]) > 0:

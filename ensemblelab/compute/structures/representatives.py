@@ -16,10 +16,8 @@ in a figure, and can be exported with :meth:`Representatives.write`.
 
 from __future__ import annotations
 
-import os
 from collections.abc import Sequence
 from dataclasses import dataclass
-from pathlib import Path
 from typing import TYPE_CHECKING, Literal
 
 import numpy as np
@@ -27,7 +25,7 @@ import numpy.typing as npt
 import pandas as pd
 
 from ...errors import SchemaError
-from ._featurise import _build_featuriser
+from ._featurise import build_featuriser
 from .clustering import ClusterResult
 
 if TYPE_CHECKING:
@@ -63,25 +61,6 @@ class Representatives:
     table: pd.DataFrame
     geometries: np.ndarray
     symbols: tuple[str, ...]
-
-    def write(self, path: str | os.PathLike[str], *,
-              format: Literal["xyz", "extxyz", "pdb"] | None = None,
-              overwrite: bool = False) -> tuple[Path, Path]:
-        """Export as multi-frame extended XYZ / XYZ / PDB plus a CSV of what was written.
-
-        The group (cluster) and weight of each structure go into its comment line
-        (XYZ) or REMARK record (PDB); see :func:`ensemblelab.io.structures.write_structures`.
-
-        Returns
-        -------
-        (structure_path, csv_path)
-        """
-        from ...io.structures import write_structures
-
-        cols = ["group", "kind", "weight", "snapshot", "traj", "time", "active", "size"]
-        info = self.table[[c for c in cols if c in self.table.columns]]
-        return write_structures(path, self.geometries, self.symbols, info, format=format,
-                                overwrite=overwrite)
 
 
 def _pick(F: np.ndarray, w: np.ndarray, kind: str, bins: int) -> int:
@@ -150,7 +129,7 @@ def _select(
         fit_rows = np.flatnonzero(finite)
         if fit_rows.size > 20000:
             fit_rows = np.sort(rng.choice(fit_rows, 20000, replace=False))
-        fz = _build_featuriser(ens, features, True).fit(fit_rows)
+        fz = build_featuriser(ens, features, True).fit(fit_rows)
     kinds = ["medoid", "mode"] if kind == "both" else [kind]
     recs = []
     picked = []
