@@ -170,6 +170,21 @@ def test_fit_kinetics_recovers_noiseless_curves_exactly():
         (70.0, 15.0, 0.1), rel=1e-6)
 
 
+def test_fit_kinetics_parallel_with_one_empty_branch_gives_infinite_partial_lifetime():
+    # every decay of A goes to B (branching 1): tau_C = tau / (1 - 1) is infinite, not a
+    # ZeroDivisionError (computed independently (not published))
+    import pandas as pd
+
+    t = np.arange(0.0, 400.0, 2.0)
+    abc = parallel(t, tau=60.0, branching=1.0)
+    frame = pd.DataFrame({"time": np.repeat(t, 3), "state": np.tile([2, 1, 0], t.size),
+                          "population": abc.ravel()})
+    res = fit_kinetics(frame, scheme="parallel", states=(2, 1, 0), interval="covariance")
+    assert res.params["branching"] == pytest.approx(1.0, abs=1e-6)
+    assert res.params["tau"] == pytest.approx(60.0, rel=1e-6)
+    assert not np.isfinite(res.params["tau_C"]) or res.params["tau_C"] > 1e6
+
+
 def test_fit_kinetics_toy_ensemble_bootstrap_interval():
     ens = make_toy_ensemble(300, seed=21)
     res = fit_kinetics(ens, interval="bootstrap", n_boot=500, random_state=1)

@@ -231,8 +231,12 @@ def _starts(scheme: str, t: np.ndarray, y: np.ndarray, t0: float, latency: bool,
 
 def _derived(scheme: str, p: Mapping[str, Any]) -> dict[str, np.ndarray]:
     if scheme == "parallel":
+        # arrays, not Python floats: a branching of exactly 0 or 1 gives an infinite partial
+        # lifetime instead of a ZeroDivisionError
+        tau = np.asarray(p["tau"], dtype=float)
+        branching = np.asarray(p["branching"], dtype=float)
         with np.errstate(divide="ignore"):
-            return {"tau_B": p["tau"] / p["branching"], "tau_C": p["tau"] / (1 - p["branching"])}
+            return {"tau_B": tau / branching, "tau_C": tau / (1.0 - branching)}
     if scheme == "sequential":
         k1, k2 = 1.0 / np.asarray(p["tau1"], float), 1.0 / np.asarray(p["tau2"], float)
         with np.errstate(divide="ignore", invalid="ignore"):
