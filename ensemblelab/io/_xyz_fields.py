@@ -29,7 +29,7 @@ if TYPE_CHECKING:
 NOT_INT_RE = re.compile(r"[^0-9+\- \t]")
 
 
-def _read_text(path: Path) -> str:
+def read_text(path: Path) -> str:
     try:
         if path.name.endswith(".gz"):
             with gzip.open(path, "rb") as fh:
@@ -71,7 +71,7 @@ def _frame_of_line(text: str, line: int) -> int | None:
     return (line - 1) // (n_atoms + 2) if n_atoms > 0 else None
 
 
-def _split_frames(text: str, path: Path) -> tuple[int, int, list[str]]:
+def split_frames(text: str, path: Path) -> tuple[int, int, list[str]]:
     lines = text.split("\n")
     while lines and not lines[-1].strip():
         lines.pop()
@@ -138,7 +138,7 @@ def _read_table(text: str, ncol: int, *, symbols: bool = False) -> pd.DataFrame 
         return None
 
 
-def _atom_block(lines: list[str], n_atoms: int, n_frames: int, path: Path
+def atom_block(lines: list[str], n_atoms: int, n_frames: int, path: Path
                 ) -> tuple[list[str], np.ndarray, np.ndarray | None]:
     size = n_atoms + 2
     table = np.array(lines, dtype=object).reshape(n_frames, size)
@@ -292,7 +292,7 @@ def user_column(vals: list[str], key: str, pre: dict[str, np.ndarray] | None = N
     return arr
 
 
-def _looks_like_hartree(energies: np.ndarray, cation: np.ndarray | None) -> str | None:
+def looks_like_hartree(energies: np.ndarray, cation: np.ndarray | None) -> str | None:
     """Why energies declared in eV look like hartree, or None.
 
     Excited-state manifolds probed in photochemistry span at least about 1 eV
@@ -386,7 +386,7 @@ def check_same(first: _FileData, other: _FileData) -> None:
             )
 
 
-def _read_trajectories_csv(path: Path, ids: np.ndarray, *, energy_unit: str | None,
+def read_trajectories_csv(path: Path, ids: np.ndarray, *, energy_unit: str | None,
                            state_base: int) -> tuple[pd.DataFrame, dict[str, np.ndarray]]:
     try:
         table = restore_frame(pd.read_csv(path))

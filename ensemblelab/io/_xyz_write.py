@@ -172,7 +172,7 @@ def write_extxyz(
                     gz.write(data)
             else:
                 target.write_bytes(data)
-        _write_trajectories_csv(ens, tmp / "trajectories.csv")
+        write_trajectories_csv(ens, tmp / "trajectories.csv")
         meta = {k: v for k, v in ens.metadata.items() if k not in ("units", "schema_version")}
         (tmp / "metadata.json").write_text(dumps_json(encode_metadata(meta)))
     return folder
@@ -186,7 +186,7 @@ def _known(symbol: str) -> bool:
     return True
 
 
-def _write_trajectories_csv(ens: Ensemble, path: Any) -> None:
+def write_trajectories_csv(ens: Ensemble, path: Any) -> None:
     table = ens.trajectories.drop(columns=["n_steps", "t_end"])
     extra = {}
     if ens.excitation_energies is not None:

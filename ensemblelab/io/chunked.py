@@ -571,9 +571,9 @@ def convert_extxyz_chunked(
         if base is None:  # the first file's header decides, as for an eager load
             opts = {k: load_kw.get(k) for k in ("energy_unit", "time_unit", "length_unit",
                                                 "state_base")}
-            header = xyz._parse_file(files[0][1], nonfinite="keep", **opts).header
+            header = xyz.parse_file(files[0][1], nonfinite="keep", **opts).header
             base = int(header.get("state_base", 0))
-        table, arrays = xyz._read_trajectories_csv(
+        table, arrays = xyz.read_trajectories_csv(
             csv_path, ids_all, energy_unit=load_kw.get("energy_unit"), state_base=base)
         sources.append(file_source(csv_path, fmt="csv"))
     pos_of = {} if table is None else {int(t): i for i, t in enumerate(table["traj"])}

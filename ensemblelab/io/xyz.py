@@ -208,7 +208,7 @@ def _parse_header_int(value: str, *, path: Path, key: str) -> int:
                          field=key, hint="see the header keys in ensemblelab.io.xyz.") from None
 
 
-def _parse_file(path: Path, *, energy_unit: str | None, time_unit: str | None,
+def parse_file(path: Path, *, energy_unit: str | None, time_unit: str | None,
                 length_unit: str | None, state_base: int | None, nonfinite: str) -> _FileData:
     text = read_text(path)
     n_atoms, n_frames, lines = split_frames(text, path)
@@ -452,7 +452,7 @@ def load_extxyz(
     column_order: list[str] = []
     for tid, fpath in tqdm(files, desc="loading", unit="file", disable=not progress,
                            leave=False):
-        data = _parse_file(fpath, **kw)
+        data = parse_file(fpath, **kw)
         if first is None:
             first = data
             est = data.n_frames * sum(sizes) / max(sizes[0], 1) * 1.02 + 16
