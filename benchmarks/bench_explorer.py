@@ -93,12 +93,12 @@ def measure(app: Any, *, repeats: int = 1) -> dict[str, float]:
 
 
 def explorer_for(ens: Any, *, clusters: Any = "auto", flags: Any = None,
-                 energies: Any = None, delays: Any = None, **map_kwargs: Any) -> Any:
+                 kinetic_energies: Any = None, delays: Any = None, **map_kwargs: Any) -> Any:
     from ensemblelab.widgets import Explorer
 
     mk = dict(map_kwargs)
-    if energies is not None:
-        mk["energies"] = energies
+    if kinetic_energies is not None:
+        mk["kinetic_energies"] = kinetic_energies
     if delays is not None:
         mk["delays"] = delays
     return Explorer(ens, clusters=clusters, flags=flags, debounce=0, restore=False,
@@ -114,7 +114,7 @@ def run(*, quick: bool) -> dict[str, dict[str, float]]:
 
         ens = make_toy_ensemble(20, t_max=100.0)
         name = "toy (quick)"
-        app = explorer_for(ens, clusters=False, energies=np.linspace(0, 2.5, 60),
+        app = explorer_for(ens, clusters=False, kinetic_energies=np.linspace(0, 2.5, 60),
                            delays=np.arange(-50.0, 101.0, 10.0))
     else:
         from ensemblelab.cli._explore import default_data_path
@@ -131,7 +131,8 @@ def run(*, quick: bool) -> dict[str, dict[str, float]]:
     flags = pd.DataFrame({"traj": big.trajectories["traj"], "flagged": False, "reason": ""})
     t0 = time.perf_counter()
     app = explorer_for(big, clusters=False, flags=flags, photon_energy=5.0,
-                       energies=np.linspace(0.0, 2.5, 300), delays=np.linspace(-60, 500, 200))
+                       kinetic_energies=np.linspace(0.0, 2.5, 300),
+                       delays=np.linspace(-60, 500, 200))
     build = time.perf_counter() - t0
     key = f"synthetic, {n_big:.0e} contributions"
     results[key] = measure(app, repeats=1)

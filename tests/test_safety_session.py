@@ -60,7 +60,7 @@ def test_explorer_shows_a_hostile_session_error_and_keeps_defaults(tmp_path):
     path = tmp_path / "s.json"
     path.write_text(json.dumps({**GOOD, "excluded": [0, "x"]}))
     ens = make_toy_ensemble(4, t_max=40.0, dt=4.0)
-    app = Explorer(ens, map_kwargs={"energies": np.linspace(0.0, 2.0, 21),
+    app = Explorer(ens, map_kwargs={"kinetic_energies": np.linspace(0.0, 2.0, 21),
                                     "delays": np.arange(-20.0, 41.0, 10.0)},
                    debounce=0, session_path=path, restore=True, clusters=False,
                    export_folder=tmp_path / "exports")

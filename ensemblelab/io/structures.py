@@ -228,7 +228,7 @@ def write_structures(
 
 
 def write_representatives(reps: Any, path: str | os.PathLike[str], *,
-                          format: str | None = None,
+                          format: Literal["xyz", "extxyz", "pdb"] | None = None,
                           overwrite: bool = False) -> tuple[Path, Path]:
     """Export representative structures as multi-frame (extended) XYZ or PDB plus a CSV.
 

@@ -70,7 +70,7 @@ class MapView(View):
         Instrument energy resolution (FWHM) in eV.
     convolve : bool
         Convolve with the pump-probe cross-correlation.
-    energies, delays : array_like, optional
+    kinetic_energies, delays : array_like, optional
         Kinetic-energy grid (eV) and delay grid (fs) of the map.
     decomposition : str
         One of :data:`DECOMPOSITIONS`.
@@ -114,7 +114,7 @@ class MapView(View):
         n_photons: int = 1,
         resolution: float = 0.0,
         convolve: bool = True,
-        energies: Any = None,
+        kinetic_energies: Any = None,
         delays: Any = None,
         decomposition: str = "total",
         measured: Any = None,
@@ -141,7 +141,8 @@ class MapView(View):
         self.trpes_kwargs = dict(trpes_kwargs or {})
         self.measured = measured
         self.n_computed = 0
-        self._fixed_energies = None if energies is None else np.asarray(energies, float)
+        self._fixed_energies = (None if kinetic_energies is None
+                                else np.asarray(kinetic_energies, float))
         self._fixed_delays = None if delays is None else np.asarray(delays, float)
 
         style = {"description_width": "initial"}

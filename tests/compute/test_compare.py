@@ -92,7 +92,7 @@ def test_resample_map_is_exact_for_bilinear_data():
     e = np.linspace(0, 1, 11)
     d = np.linspace(0, 10, 6)
     m = TRPESMap(kinetic_energies=e, delays=d, intensity=np.add.outer(2 * d, 3 * e))
-    out = resample_map(m, energies=np.array([0.25, 0.55]), delays=np.array([1.0, 7.5]))
+    out = resample_map(m, kinetic_energies=np.array([0.25, 0.55]), delays=np.array([1.0, 7.5]))
     np.testing.assert_allclose(out, np.add.outer(2 * np.array([1.0, 7.5]),
                                                  3 * np.array([0.25, 0.55])), rtol=1e-12)
 

@@ -21,7 +21,7 @@ import pytest
 from ensemblelab.widgets import Explorer
 
 MAP = {"photon_energy": 5.0, "probe_fwhm": 30.0, "pump_fwhm": 30.0,
-       "energies": np.linspace(0.0, 2.5, 126), "delays": np.arange(-60.0, 201.0, 5.0)}
+       "kinetic_energies": np.linspace(0.0, 2.5, 126), "delays": np.arange(-60.0, 201.0, 5.0)}
 
 
 @pytest.fixture

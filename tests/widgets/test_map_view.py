@@ -5,7 +5,7 @@ import pytest
 
 from ensemblelab.widgets import MapView
 
-GRID = {"energies": np.linspace(0.0, 2.5, 101), "delays": np.arange(-60.0, 201.0, 10.0)}
+GRID = {"kinetic_energies": np.linspace(0.0, 2.5, 101), "delays": np.arange(-60.0, 201.0, 10.0)}
 
 
 def test_mapview_brush_selects_band_only_when_released(model):
@@ -21,7 +21,7 @@ def test_mapview_brush_selects_band_only_when_released(model):
     # (5.0 eV probe - 3.5 eV IP; the invented toy of ensemblelab.testing, computed
     # independently (not published))
     spectrum, trace = view.cuts()
-    assert GRID["energies"][np.argmax(spectrum)] == pytest.approx(1.5, abs=0.03)
+    assert GRID["kinetic_energies"][np.argmax(spectrum)] == pytest.approx(1.5, abs=0.03)
     assert trace.shape == GRID["delays"].shape
 
 

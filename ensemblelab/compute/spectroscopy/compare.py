@@ -30,9 +30,9 @@ from ...errors import SchemaError
 __all__ = ["compare_maps", "MapComparison", "resample_map"]
 
 
-def resample_map(m: TRPESMap, *, energies: np.ndarray, delays: np.ndarray,
+def resample_map(m: TRPESMap, *, kinetic_energies: np.ndarray, delays: np.ndarray,
                  energy_shift: float = 0.0, time_zero: float = 0.0) -> np.ndarray:
-    """Bilinear resampling of ``m`` at ``(delays - time_zero, energies - energy_shift)``.
+    """Bilinear resampling of ``m`` at ``(delays - time_zero, kinetic_energies - energy_shift)``.
 
     Returns
     -------
@@ -43,8 +43,8 @@ def resample_map(m: TRPESMap, *, energies: np.ndarray, delays: np.ndarray,
         raise SchemaError("maps need at least 2 delays and 2 energies to be resampled.")
     f = RegularGridInterpolator((m.delays, m.kinetic_energies), m.intensity, method="linear",
                                 bounds_error=False, fill_value=0.0)
-    dd, ee = np.meshgrid(np.asarray(delays) - time_zero, np.asarray(energies) - energy_shift,
-                         indexing="ij")
+    dd, ee = np.meshgrid(np.asarray(delays) - time_zero,
+                         np.asarray(kinetic_energies) - energy_shift, indexing="ij")
     return f(np.stack([dd.ravel(), ee.ravel()], axis=1)).reshape(dd.shape)
 
 
@@ -97,12 +97,12 @@ def compare_maps(simulated: TRPESMap, measured: TRPESMap, *, fit_energy_shift: b
         raise SchemaError("the measured and simulated maps do not overlap on at least 2 x 2 "
                           "grid points; check units (eV, fs) and ranges.")
     energies, delays = simulated.kinetic_energies[se], simulated.delays[sd]
-    meas = resample_map(measured, energies=energies, delays=delays)
+    meas = resample_map(measured, kinetic_energies=energies, delays=delays)
 
     def model_at(shift: float, t0: float) -> np.ndarray:
         if shift == 0.0 and t0 == 0.0:
             return simulated.intensity[np.ix_(sd, se)]
-        return resample_map(simulated, energies=energies, delays=delays, energy_shift=shift,
+        return resample_map(simulated, kinetic_energies=energies, delays=delays, energy_shift=shift,
                             time_zero=t0)
 
     def best_scale(s: np.ndarray) -> float:
