@@ -10,7 +10,7 @@ range of their own.
 
 from __future__ import annotations
 
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, Any, cast
 
 import numpy as np
 
@@ -30,7 +30,7 @@ def _axis_values(trpes_map: TRPESMap, axis: str) -> np.ndarray:
     # the kinetic-energy axis (read under its newer name when the map has it)
     values = getattr(trpes_map, "kinetic_energies", None)
     if values is None:
-        values = trpes_map.energies
+        values = cast(Any, trpes_map).energies  # older map objects name the axis so
     return np.asarray(values, dtype=np.float64)
 
 
