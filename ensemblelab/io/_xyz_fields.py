@@ -321,7 +321,7 @@ def _looks_like_hartree(energies: np.ndarray, cation: np.ndarray | None) -> str 
 class _Stack:
     """Concatenate per-file arrays into one preallocated buffer (bounded peak memory)."""
 
-    def __init__(self, estimate: int) -> None:
+    def __init__(self, estimate: float) -> None:
         self.estimate = max(int(estimate), 1)
         self.buf: np.ndarray | None = None
         self.n = 0
