@@ -128,7 +128,7 @@ def trpes_partial(block: Any, span: BlockSpan, opts: dict[str, Any]) -> dict[str
         ww = s.weight if bs.comp_weight is None else bs.comp_weight
         hist_comp = deposit(tb, s.energy if src is None else s.energy[src], ww, comp=bs.comp,
                             n_comp=opts["n_comp"], tfrac=tf, progress=progress, **grid)
-    out = {"alive": bs.alive, "alive_count": bs.alive_count, "hist": hist,
+    out: dict[str, Any] = {"alive": bs.alive, "alive_count": bs.alive_count, "hist": hist,
            "hist_comp": hist_comp, "n_sticks": np.int64(s.n_sticks),
            "total_weight": np.array(bs.total_weight)}
     if opts.get("keep_sticks"):
