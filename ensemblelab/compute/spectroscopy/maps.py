@@ -26,7 +26,7 @@ from __future__ import annotations
 
 import math
 import warnings
-from typing import Any
+from typing import Any, Literal, overload
 
 import numpy as np
 import numpy.typing as npt
@@ -201,6 +201,72 @@ def trpes_model(
     model.set_moments(e_lo=e_lo, h=h, n_fine=n_fine, hist=total["hist"],
                       hist_comp=total["hist_comp"] if decompose is not None else None)
     return model
+
+
+@overload
+def compute_trpes(
+    ens: Ensemble | BlockSource,
+    *,
+    probe: GaussianPulse,
+    pump: GaussianPulse | None = None,
+    kinetic_energies: npt.ArrayLike,
+    delays: npt.ArrayLike,
+    resolution: float = 0.0,
+    convolve: bool = True,
+    cross_section: str | CrossSection | Any = "dyson",
+    weights: str = "doorway",
+    normalise: str = "alive",
+    decompose: str | None = None,
+    progress: bool = True,
+    time_step: float | None = None,
+    client: Any = None,
+    scheduler: Any = None,
+    return_model: Literal[False] = False,
+) -> TRPESMap: ...
+
+
+@overload
+def compute_trpes(
+    ens: Ensemble | BlockSource,
+    *,
+    probe: GaussianPulse,
+    pump: GaussianPulse | None = None,
+    kinetic_energies: npt.ArrayLike,
+    delays: npt.ArrayLike,
+    resolution: float = 0.0,
+    convolve: bool = True,
+    cross_section: str | CrossSection | Any = "dyson",
+    weights: str = "doorway",
+    normalise: str = "alive",
+    decompose: str | None = None,
+    progress: bool = True,
+    time_step: float | None = None,
+    client: Any = None,
+    scheduler: Any = None,
+    return_model: Literal[True],
+) -> tuple[TRPESMap, TRPESModel]: ...
+
+
+@overload
+def compute_trpes(
+    ens: Ensemble | BlockSource,
+    *,
+    probe: GaussianPulse,
+    pump: GaussianPulse | None = None,
+    kinetic_energies: npt.ArrayLike,
+    delays: npt.ArrayLike,
+    resolution: float = 0.0,
+    convolve: bool = True,
+    cross_section: str | CrossSection | Any = "dyson",
+    weights: str = "doorway",
+    normalise: str = "alive",
+    decompose: str | None = None,
+    progress: bool = True,
+    time_step: float | None = None,
+    client: Any = None,
+    scheduler: Any = None,
+    return_model: bool = False,
+) -> TRPESMap | tuple[TRPESMap, TRPESModel]: ...
 
 
 def compute_trpes(
