@@ -437,8 +437,9 @@ def load_extxyz(
         files = [(int(m.group(1)) if m else 0, path)]
         folder = None
     sizes = [p.stat().st_size for _, p in files]
-    kw: dict[str, Any] = {"energy_unit": energy_unit, "time_unit": time_unit, "length_unit": length_unit,
-          "state_base": state_base, "nonfinite": nonfinite}
+    kw: dict[str, Any] = {"energy_unit": energy_unit, "time_unit": time_unit,
+                          "length_unit": length_unit, "state_base": state_base,
+                          "nonfinite": nonfinite}
 
     first: _FileData | None = None
     stacks: dict[str, _Stack] = {}

@@ -171,7 +171,8 @@ def _check_kind(ens: Any, kind: str) -> None:
         )
 
 
-def _excluded_mask(ens: Ensemble | BlockSource, exclude: Iterable[int] | pd.DataFrame | None) -> np.ndarray:
+def _excluded_mask(ens: Ensemble | BlockSource,
+                   exclude: Iterable[int] | pd.DataFrame | None) -> np.ndarray:
     ids = ens.trajectories["traj"].to_numpy()
     if exclude is None:
         return np.zeros(ids.size, dtype=bool)
