@@ -34,7 +34,7 @@ import warnings
 from collections import Counter
 from collections.abc import Callable, Sequence
 from pathlib import Path
-from typing import Any
+from typing import Any, cast
 
 import numpy as np
 import pandas as pd
@@ -278,7 +278,7 @@ def _fit_html(table: pd.DataFrame) -> str:
     for r in table.itertuples():
         if r.fixed:
             value = f"{r.value:.4g} {r.unit} (fixed)"
-        elif np.isfinite(r.lower) and np.isfinite(r.upper):
+        elif np.isfinite(cast(float, r.lower)) and np.isfinite(cast(float, r.upper)):
             value = f"{r.value:.4g} {r.unit} [{r.lower:.4g}, {r.upper:.4g}]"
         else:
             value = f"{r.value:.4g} {r.unit} (no interval)"
@@ -430,9 +430,10 @@ def build_report(
                     raise _Missing(f"the map's grid is empty ({e_grid.size} kinetic energies "
                                    f"x {d_grid.size} delays); pass non-empty energies and "
                                    "delays.")
+                weighting: dict[str, Any] = {} if pump is not None else {"weights": "uniform"}
                 trpes = compute_trpes(clean, probe=probe, pump=pump, kinetic_energies=e_grid,
                                       delays=d_grid, decompose="neutral", progress=False,
-                                      **({} if pump is not None else {"weights": "uniform"}))
+                                      **weighting)
                 if not np.any(np.isfinite(trpes.intensity) & (trpes.intensity != 0)):
                     raise _Missing("the map has no signal on its grid (every cell is zero or "
                                    "undefined); check the photon energy and the grids.")

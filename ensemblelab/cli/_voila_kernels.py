@@ -24,7 +24,8 @@ class CappedKernelManager(AsyncMappingKernelManager):
 
     max_kernels = Int(4, config=True, help="most kernels (explorer pages) at once")
 
-    async def start_kernel(self, *args: Any, **kwargs: Any) -> str:
+    # async at runtime in AsyncMappingKernelManager; the typed base declares it sync
+    async def start_kernel(self, *args: Any, **kwargs: Any) -> str:  # type: ignore[override]
         """Start a kernel unless the cap is reached."""
         if len(self.list_kernel_ids()) >= self.max_kernels:
             raise HTTPError(503, f"ensemblelab explore: {self.max_kernels} explorer page(s) "

@@ -191,6 +191,7 @@ class TRPESMap:
         if components:
             blocks += list(self.components.items())
         nd, ne = self.shape
+        assert self.alive is not None and self.alive_count is not None  # set in __post_init__
         delay = np.repeat(self.delays, ne)
         energy = np.tile(self.kinetic_energies, nd)
         alive = np.repeat(self.alive, ne)

@@ -72,8 +72,8 @@ def make_measured_map(**overrides: Any) -> TRPESMap:
                         scenario=sc, velocities=False)
     probe = GaussianPulse(photon_energy=sc.probe_energy, fwhm=sc.probe_fwhm)
     pump = GaussianPulse(photon_energy=sc.pump_energy, fwhm=sc.pump_fwhm)
-    energies = np.linspace(*s["energies"][:2], int(s["energies"][2]))
-    delays = np.linspace(*s["delays"][:2], int(s["delays"][2]))
+    energies = np.linspace(s["energies"][0], s["energies"][1], int(s["energies"][2]))
+    delays = np.linspace(s["delays"][0], s["delays"][1], int(s["delays"][2]))
     m = compute_trpes(ens, probe=probe, pump=pump, kinetic_energies=energies,
                       delays=delays - s["time_zero"], resolution=s["resolution"],
                       progress=False)

@@ -14,7 +14,7 @@ import math
 import os
 from collections.abc import Mapping
 from pathlib import Path
-from typing import Any
+from typing import Any, TypeGuard
 
 import numpy as np
 
@@ -51,7 +51,7 @@ def load_manifest_json(mpath: Path) -> Any:
         raise StoreError(f"{mpath}: cannot read the manifest ({exc}). {_HINT}") from exc
 
 
-def _is_int(v: Any) -> bool:
+def _is_int(v: Any) -> TypeGuard[int]:
     return isinstance(v, int) and not isinstance(v, bool)
 
 

@@ -10,6 +10,7 @@ from __future__ import annotations
 import contextlib
 import errno
 import fcntl
+import gzip
 import os
 import re
 from collections.abc import Iterator
@@ -142,7 +143,7 @@ def check_no_symlink_escape(folder: Path, file: Path, *, what: str = "file") -> 
                          hint="copy the file into the folder instead of linking it.")
 
 
-def read_bounded(fh: IO[bytes], *, path: Path, compressed_size: int | None,
+def read_bounded(fh: IO[bytes] | gzip.GzipFile, *, path: Path, compressed_size: int | None,
                  limit: int | None = None, block: int = 2**22) -> bytes:
     """Read all of `fh` (a plain or gzip file) but refuse to expand past the limits.
 

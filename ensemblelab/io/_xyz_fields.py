@@ -130,10 +130,12 @@ def _read_table(text: str, ncol: int, *, symbols: bool = False) -> pd.DataFrame 
     if symbols:
         dtype[0] = object
     try:
-        return pd.read_csv(io.StringIO(text), sep=r"\s+", header=None, engine="c",
-                           names=list(range(ncol)), dtype=dtype, keep_default_na=False,
-                           na_values={j: _NAN_TOKENS for j in range(int(symbols), ncol)},
-                           skip_blank_lines=False)
+        # na_values keyed by column position is valid with header=None; the stub wants str keys
+        return pd.read_csv(  # type: ignore[call-overload]
+            io.StringIO(text), sep=r"\s+", header=None, engine="c",
+            names=list(range(ncol)), dtype=dtype, keep_default_na=False,
+            na_values={j: _NAN_TOKENS for j in range(int(symbols), ncol)},
+            skip_blank_lines=False)
     except (ValueError, pd.errors.ParserError, pd.errors.EmptyDataError):
         return None
 
@@ -152,7 +154,7 @@ def atom_block(lines: list[str], n_atoms: int, n_frames: int, path: Path
             hint="one atom per line: element symbol, then Cartesian coordinates.",
         )
     df = _read_table("\n".join(atoms), ncol, symbols=True)
-    numeric = None
+    numeric: np.ndarray | None = None
     if df is not None and len(df) == atoms.size:
         numeric = df.iloc[:, 1:].to_numpy(np.float64)
         if np.isnan(numeric).any() and parse_floats(
@@ -161,6 +163,7 @@ def atom_block(lines: list[str], n_atoms: int, n_frames: int, path: Path
     if numeric is None:
         _locate_atom_error(atoms, n_atoms, ncol, path)
         raise ParseError("could not parse the atom lines.", path=path, field="atom line")
+    assert df is not None  # numeric came from it
     sym = df.iloc[:, 0].to_numpy(dtype=object).reshape(n_frames, n_atoms)
     ref = [str(x) for x in sym[0]]
     same = sym == sym[0]
@@ -181,7 +184,7 @@ def _locate_atom_error(atoms: np.ndarray, n_atoms: int, ncol: int, path: Path) -
     for k, line in enumerate(atoms):
         tokens = line.split()
         f, a = divmod(k, n_atoms)
-        where = {"path": path, "frame": f, "line": where_in_file(n_atoms, f, 2 + a)}
+        where: dict[str, Any] = {"path": path, "frame": f, "line": where_in_file(n_atoms, f, 2 + a)}
         if len(tokens) != ncol:
             raise ParseError(
                 f"expected {ncol} columns like the first atom line, found {len(tokens)}: "
@@ -234,15 +237,16 @@ def parse_numbers(vals: list[str], key: str, n_atoms: int, path: Path,
     if len(vals) * m > 4000:
         df = _read_table("\n".join(vals), m)
         if df is not None and len(df) == len(vals):
-            arr = df.to_numpy(np.float64)
-            if not np.isnan(arr).any():
-                return arr
+            full = df.to_numpy(np.float64)
+            if not np.isnan(full).any():
+                return full
     arr = parse_floats(" ".join(vals), len(vals) * m)
     if arr is not None:
         return arr.reshape(len(vals), m)
     for f, v in enumerate(vals):
         tokens = v.split()
-        where = {"path": path, "frame": f, "line": where_in_file(n_atoms, f, 1), "field": key}
+        where: dict[str, Any] = {"path": path, "frame": f, "line": where_in_file(n_atoms, f, 1),
+                                 "field": key}
         if len(tokens) != m:
             raise ParseError(
                 f"inconsistent shape: frame 0 has {m} value(s), this frame has {len(tokens)}.",
@@ -255,7 +259,7 @@ def parse_numbers(vals: list[str], key: str, n_atoms: int, path: Path,
                 raise ParseError(f"expected a number, found {excerpt(tok)}.",
                                  hint="write plain decimal numbers (nan and inf are read as "
                                       "non-finite).", **where) from None
-    raise ParseError(f"could not parse the values of {key!r}.", **{"path": path, "field": key})
+    raise ParseError(f"could not parse the values of {key!r}.", path=path, field=key)
 
 
 def parse_integers(vals: list[str], key: str, n_atoms: int, path: Path,
@@ -278,8 +282,8 @@ def parse_integers(vals: list[str], key: str, n_atoms: int, path: Path,
 def user_column(vals: list[str], key: str, pre: dict[str, np.ndarray] | None = None) -> Any:
     joined = " ".join(vals)
     if pre and key in pre and pre[key].shape[1] == 1:
-        arr = pre[key][:, 0].copy()
-        return arr.astype(np.int64) if not NOT_INT_RE.search(joined) else arr
+        col = pre[key][:, 0].copy()
+        return col.astype(np.int64) if not NOT_INT_RE.search(joined) else col
     if any(not v or len(v.split()) != 1 for v in vals):
         return np.array(vals, dtype=object)
     arr = parse_floats(joined, len(vals))
@@ -318,7 +322,7 @@ def looks_like_hartree(energies: np.ndarray, cation: np.ndarray | None) -> str |
 class Stack:
     """Concatenate per-file arrays into one preallocated buffer (bounded peak memory)."""
 
-    def __init__(self, estimate: int) -> None:
+    def __init__(self, estimate: float) -> None:
         self.estimate = max(int(estimate), 1)
         self.buf: np.ndarray | None = None
         self.n = 0
@@ -344,12 +348,12 @@ class Stack:
 
 def check_same(first: _FileData, other: _FileData) -> None:
     if other.symbols != first.symbols:
-        a = next((i for i, (x, y) in enumerate(zip(first.symbols, other.symbols, strict=False))
-                  if x != y), min(len(first.symbols), len(other.symbols)))
+        at = next((i for i, (x, y) in enumerate(zip(first.symbols, other.symbols, strict=False))
+                   if x != y), min(len(first.symbols), len(other.symbols)))
         raise ParseError(
             f"the atoms differ from {first.path.name}: expected {len(first.symbols)} atoms "
             f"starting {' '.join(first.symbols[:8])}, found {len(other.symbols)} starting "
-            f"{' '.join(other.symbols[:8])} (first difference at atom {a}).",
+            f"{' '.join(other.symbols[:8])} (first difference at atom {at}).",
             path=other.path, frame=0, field="element",
             hint="all trajectories of an ensemble must hold the same atoms in the same order.",
         )

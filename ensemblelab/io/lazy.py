@@ -376,6 +376,7 @@ class ChunkBlock:
     """
 
     _ARRAYS = ("geometries", "energies", *SNAPSHOT_ARRAYS, *TRAJECTORY_ARRAYS)
+    dyson: np.ndarray | None  # one of _ARRAYS, set with setattr in __init__
 
     def __init__(self, path: str, sub: dict[str, Any], names: Iterable[str],
                  columns: Iterable[str] = BLOCK_COLUMNS) -> None:

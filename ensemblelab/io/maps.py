@@ -185,6 +185,7 @@ def save_map(trpes_map: TRPESMap, path: str | os.PathLike[str], *,
         raise ValueError(f"path must end in .npz or .csv; got {path.name!r}.")
     if path.exists() and not overwrite:
         raise FileExistsError(f"{path} exists; pass overwrite=True to replace it.")
+    assert m.alive is not None and m.alive_count is not None  # set in __post_init__
     if suffix == ".npz":
         labels = list(m.components)
         comps = (np.stack([m.components[k] for k in labels]) if labels
@@ -246,14 +247,15 @@ def load_map(path: str | os.PathLike[str]) -> TRPESMap:
                              hint="save maps with ensemblelab.io.maps.save_map(...).")
         labels = [str(x) for x in data.get("component_labels", np.array([], dtype=str))]
         comps = data.get("components", np.zeros((0,)))
-        params = json.loads(str(data["params"])) if "params" in data else {}
+        params: dict[str, Any] = (json.loads(str(data["params"])) if "params" in data
+                                  else {})
         return TRPESMap(kinetic_energies=data["kinetic_energies"], delays=data["delays"],
                         intensity=data["intensity"],
                         components={lab: comps[i] for i, lab in enumerate(labels)},
                         alive=data.get("alive"), alive_count=data.get("alive_count"),
                         params=params)
     text = path.read_text()
-    params: dict[str, Any] = {}
+    params = {}
     alive = count = None
     rows: list[list[float]] = []
     header: list[float] | None = None

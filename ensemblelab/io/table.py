@@ -40,7 +40,7 @@ from __future__ import annotations
 import re
 import warnings
 from pathlib import Path
-from typing import Any
+from typing import Any, cast
 
 import numpy as np
 import pandas as pd
@@ -289,6 +289,8 @@ def load_table(
                 hint="pass geometries=<multi-frame XYZ file>, or geometries=False for an "
                      "ensemble without structures.")
         geometries = found[0]
+    geoms: np.ndarray
+    symbols: list[str]
     if geometries is False:
         geoms, symbols = np.zeros((n, 0, 3)), []
     else:
@@ -305,7 +307,8 @@ def load_table(
         geoms = geoms * l_fac
         sources.append(file_source(gpath, fmt="xyz"))
 
-    traj_table, traj_arrays = None, {}
+    traj_table: pd.DataFrame | None = None
+    traj_arrays: dict[str, np.ndarray] = {}
     if trajectories is None:
         sib = stem.with_name(stem.name + ".trajectories.csv")
         trajectories = sib if sib.is_file() else None
@@ -322,7 +325,8 @@ def load_table(
         return Ensemble.from_arrays(
             traj=traj, time=time * t_fac, active=active, geometries=geoms, symbols=symbols,
             energies=energies, step=ints.get("step"), trajectories=traj_table,
-            metadata={"sources": sources}, columns=cols, copy=False, **arrays, **traj_arrays,
+            metadata={"sources": sources}, columns=cols, copy=False,
+            **cast(dict[str, Any], arrays), **cast(dict[str, Any], traj_arrays),
         )
     except SchemaError as exc:
         raise SchemaError(f"{path}: {exc}") from exc

@@ -86,7 +86,7 @@ import json
 import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import Any, cast
 
 import numpy as np
 import pandas as pd
@@ -438,8 +438,9 @@ def load_extxyz(
         files = [(int(m.group(1)) if m else 0, path)]
         folder = None
     sizes = [p.stat().st_size for _, p in files]
-    kw = {"energy_unit": energy_unit, "time_unit": time_unit, "length_unit": length_unit,
-          "state_base": state_base, "nonfinite": nonfinite}
+    kw: dict[str, Any] = {"energy_unit": energy_unit, "time_unit": time_unit,
+                          "length_unit": length_unit, "state_base": state_base,
+                          "nonfinite": nonfinite}
 
     first: _FileData | None = None
     stacks: dict[str, Stack] = {}
@@ -493,7 +494,8 @@ def load_extxyz(
             "are this close.",
             UnitWarning, stacklevel=3,
         )
-    out = {name: s.result() for name, s in stacks.items()}
+    # every stack received at least one array, so none of the results is None
+    out = {name: cast(np.ndarray, s.result()) for name, s in stacks.items()}
     header = first.header
     masses = None
     if "masses" in header:

@@ -57,7 +57,8 @@ def _legend(fig: Figure, ax: Any, own: bool) -> None:
         return
     if own:
         # as many columns as fit into the figure's width
-        renderer = fig.canvas.get_renderer()
+        # an Agg-based canvas here; the base-class stub lacks get_renderer
+        renderer = fig.canvas.get_renderer()  # type: ignore[attr-defined]
         for ncols in range(len(handles), 0, -1):
             legend = fig.legend(handles, labels, loc="outside lower center", frameon=False,
                                 fontsize=legend_fontsize(), ncols=ncols)

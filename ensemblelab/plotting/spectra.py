@@ -173,7 +173,7 @@ def plot_components(m: TRPESMap, *, labels: Sequence[str] | None = None, ncols: 
     fig = new_figure(width, aspect=0.3 * nrows * 3.0 / ncols + 0.08)
     axes = fig.subplots(nrows, ncols, squeeze=False, sharex=True, sharey=True)
     xlim = resolve_energy_range(m, energy_range, signal_fraction=signal_fraction)
-    mesh = None
+    mesh: Any = None
     shortened = []
     for i, ax in enumerate(axes.ravel()):
         if i >= len(panels):

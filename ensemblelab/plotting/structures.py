@@ -6,7 +6,7 @@ export with :func:`ensemblelab.plotting.populations.savefig`.
 
 from __future__ import annotations
 
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING, Any, cast
 
 import numpy as np
 import pandas as pd
@@ -15,6 +15,7 @@ from ._style import TIME, legend_fontsize, new_figure, round_ticks
 
 if TYPE_CHECKING:
     from matplotlib.axes import Axes
+    from matplotlib.ticker import MaxNLocator
 
 __all__ = ["plot_cluster_summary", "plot_cluster_time_profile", "plot_flags", "plot_hop_counts"]
 
@@ -109,5 +110,5 @@ def plot_flags(table: pd.DataFrame, *, ax: Axes | None = None) -> Axes:
     else:
         ax.barh(counts.index.tolist(), counts.to_numpy(), color="0.55", edgecolor="0.2")
     ax.set_xlabel(f"trajectories (of {len(table)})")
-    ax.xaxis.get_major_locator().set_params(integer=True)
+    cast("MaxNLocator", ax.xaxis.get_major_locator()).set_params(integer=True)
     return ax

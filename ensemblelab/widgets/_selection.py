@@ -6,8 +6,8 @@ No view talks to another view: each one writes what the user did into one
 
 from __future__ import annotations
 
-from collections.abc import Iterable
-from typing import Any
+from collections.abc import Iterable, Sequence
+from typing import Any, cast, overload
 
 import numpy as np
 import pandas as pd
@@ -18,6 +18,18 @@ from ..compute.bands import BAND_GROUPS, BandAnalysis, SnapshotGroups, analyse_b
 from ..data.ensemble import Ensemble
 
 __all__ = ["SelectionModel"]
+
+
+@overload
+def _range(value: None, name: str) -> None: ...
+
+
+@overload
+def _range(value: Sequence[float], name: str) -> tuple[float, float]: ...
+
+
+@overload
+def _range(value: Any, name: str) -> tuple[float, float] | None: ...
 
 
 def _range(value: Any, name: str) -> tuple[float, float] | None:
@@ -234,13 +246,13 @@ class SelectionModel(HasTraits):
         """Trajectory, time (fs), active state, cluster and weight of one snapshot."""
         row = int(self.rows([snapshot_id])[0])
         snap = self.ens.snapshots
-        traj = int(snap["traj"].iat[row])
+        traj = int(cast(int, snap["traj"].iat[row]))
         weight = float(self._weights[row])
         info = {
             "snapshot": int(snapshot_id),
             "traj": traj,
-            "time": float(snap["time"].iat[row]),
-            "state": self.ens.state_labels[int(snap["active"].iat[row])],
+            "time": float(cast(float, snap["time"].iat[row])),
+            "state": self.ens.state_labels[int(cast(int, snap["active"].iat[row]))],
             "cluster": int(self.cluster_of(np.array([row]))[0]),
             "cluster_name": self.cluster_name(int(self.cluster_of(np.array([row]))[0])),
             "weight": weight,

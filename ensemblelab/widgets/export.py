@@ -14,7 +14,7 @@ import io as _io
 import os
 from collections.abc import Callable
 from pathlib import Path
-from typing import Any
+from typing import Any, cast
 
 import ipywidgets as widgets
 import numpy as np
@@ -130,9 +130,10 @@ def export_tables(model: SelectionModel, folder: str | os.PathLike[str], *,
     tables: dict[str, pd.DataFrame] = {}
     if model.band is not None:
         # every contributing snapshot (computed now: the brush keeps only the strongest)
-        tables["band_snapshots"] = model.full_band()
+        # both are None only without a band
+        tables["band_snapshots"] = cast(pd.DataFrame, model.full_band())
         for by in ("cluster", "state", "traj"):
-            tables[f"band_by_{by}"] = model.group_table(by)
+            tables[f"band_by_{by}"] = cast(pd.DataFrame, model.group_table(by))
     if model.flags is not None:
         tables["flags"] = model.flags
     if model.trpes_map is not None:

@@ -271,6 +271,7 @@ class PopulationView(View):
     # ------------------------------------------------------------------ drawing
     def _draw(self) -> None:
         table = self.table
+        assert table is not None  # drawn by recompute once the table is set
         n_states = self.model.ens.n_states
         pivot = table.pivot_table(index="time", columns="state", values="population",
                                   dropna=False)

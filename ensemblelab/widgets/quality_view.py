@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import html
-from typing import Any
+from typing import Any, cast
 
 import ipywidgets as widgets
 import pandas as pd
@@ -124,8 +124,9 @@ class QualityView(View):
             reason = str(getattr(r, "reason", "") or "")
             first = getattr(r, "first_bad_time", None)
             when = f" (from {first:.1f} fs)" if isinstance(first, float) and first == first else ""
-            mark = "✗ excluded · " if int(r.traj) in excluded else ""
-            options.append((f"{mark}trajectory {int(r.traj)}: {reason}{when}", int(r.traj)))
+            traj = int(cast(int, r.traj))
+            mark = "✗ excluded · " if traj in excluded else ""
+            options.append((f"{mark}trajectory {traj}: {reason}{when}", traj))
         keep = tuple(v for v in self.rows.value if v in {o[1] for o in options})
         self.rows.options = options
         self.rows.value = keep

@@ -111,20 +111,23 @@ class SelectionTable(View):
                     self.summary.value = "<i>Nothing contributes to this band.</i>"
                 return
             table = self.model.group_table(self.model.group_by)
+            assert table is not None  # a band is selected
             self.table = table
             e, d = self.model.energy_range, self.model.delay_range
             where = (f"{e[0]:.2f}–{e[1]:.2f} eV, {d[0]:.0f}–{d[1]:.0f} fs"
                      if e is not None and d is not None else "")
             info = self.model.band_summary()
+            assert info is not None  # a band is selected
             self.summary.value = (
                 f"<b>band {html.escape(where)}</b>: {info['n_snapshots']} contributing "
                 f"snapshots from {info['n_trajectories']} trajectories; integrated intensity "
                 f"{info['total']:.4g}")
             shown = table.head(_N_ROWS)
+            rows: list[Any] = list(shown.itertuples())  # fields of mixed types
             self.rows.options = [
                 (f"{r.label:<16s} {format_percent(r.share):>8s}  ({r.n_snapshots} snapshots, "
                  f"{r.n_trajectories} traj.)", _plain(r.key))
-                for r in shown.itertuples()
+                for r in rows
             ]
             self.rows.value = None
             head = "".join(f"<th>{h}</th>" for h in (
@@ -132,7 +135,7 @@ class SelectionTable(View):
             body = "".join(
                 f"<tr><td>{html.escape(r.label)}</td><td>{format_percent(r.share)}</td>"
                 f"<td>{r.n_snapshots}</td><td>{r.n_trajectories}</td></tr>"
-                for r in shown.itertuples())
+                for r in rows)
             self.html.value = f"<table style='font-size:12px'><tr>{head}</tr>{body}</table>"
         finally:
             self._syncing = False

@@ -93,8 +93,8 @@ class TrajectoryView(View):
         widgets.jslink((self.player, "max"), (self.slider, "max"))
         self.info = widgets.HTML()
         self.info.add_class("ensemblelab-trajectory-info")
-        self._ids = np.zeros(0, dtype=np.int64)
-        self._times = np.zeros(0)
+        self._ids: np.ndarray = np.zeros(0, dtype=np.int64)
+        self._times: np.ndarray = np.zeros(0)
         self._syncing = False
         self.shown: int | None = None
 

@@ -31,7 +31,7 @@ def top_k_indices(values: np.ndarray, k: int) -> np.ndarray:
     k = min(int(k), n)
     if k <= 0:
         return np.zeros(0, dtype=np.int64)
-    idx = np.arange(n)
+    idx: np.ndarray = np.arange(n)
     if k < n and n > 64 * k and n > 200_000:
         # a threshold from a strided sample keeps ~2k candidates; every value above
         # the k-th largest is >= it whenever at least k values pass, else: no shortcut

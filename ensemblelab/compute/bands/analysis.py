@@ -108,7 +108,7 @@ class SnapshotGroups:
         snap = ens.snapshots
         n = len(snap)
         if clusters is None:
-            labels = np.full(n, -1, dtype=np.int64)
+            labels: np.ndarray = np.full(n, -1, dtype=np.int64)
         else:
             labels = np.asarray(clusters)
             if labels.shape != (n,):

@@ -49,6 +49,7 @@ from ..engine import BlockSpan, add, as_source, reduce
 from . import _kernels_populations as _k
 
 if TYPE_CHECKING:
+    from ...data.blocks import BlockSource
     from ...data.ensemble import Ensemble
 
 __all__ = [
@@ -106,9 +107,10 @@ class PopulationArrays:
 
 
 # ---------------------------------------------------------------- validation helpers
-def _resolve_weights(ens: Ensemble, weights: Any) -> tuple[np.ndarray, str]:
+def _resolve_weights(ens: Ensemble | BlockSource, weights: Any) -> tuple[np.ndarray, str]:
     trajs = ens.trajectories
     n = len(trajs)
+    w: np.ndarray
     if weights is None:
         return trajs["weight"].to_numpy(np.float64), "weight"
     if isinstance(weights, str):
@@ -139,7 +141,7 @@ def _resolve_weights(ens: Ensemble, weights: Any) -> tuple[np.ndarray, str]:
     return w, label
 
 
-def _resolve_grid(ens: Ensemble, time_grid: npt.ArrayLike | None) -> np.ndarray:
+def _resolve_grid(ens: Ensemble | BlockSource, time_grid: npt.ArrayLike | None) -> np.ndarray:
     if time_grid is None:
         return ens.times
     grid = np.asarray(time_grid, dtype=np.float64).ravel()
@@ -169,7 +171,8 @@ def _check_kind(ens: Any, kind: str) -> None:
         )
 
 
-def _excluded_mask(ens: Ensemble, exclude: Iterable[int] | pd.DataFrame | None) -> np.ndarray:
+def _excluded_mask(ens: Ensemble | BlockSource,
+                   exclude: Iterable[int] | pd.DataFrame | None) -> np.ndarray:
     ids = ens.trajectories["traj"].to_numpy()
     if exclude is None:
         return np.zeros(ids.size, dtype=bool)
@@ -194,6 +197,7 @@ def _values_block(ens: Ensemble, kind: str, idx: np.ndarray) -> tuple[np.ndarray
         vals = np.asarray(ens.amplitudes, dtype=np.float64)[safe]
     else:
         adt = ens.adt
+        assert adt is not None  # checked by _check_kind
         vals = adt[safe, active[safe], :] ** 2
     vals *= alive[..., None]
     return vals, alive

@@ -75,7 +75,7 @@ def check_decompose(decompose: object) -> str | None:
     if decompose not in DECOMPOSITIONS:
         raise SchemaError(f"The 'decompose' parameter must be one of {list(DECOMPOSITIONS)}. "
                           f"Got {decompose!r} instead.")
-    return decompose  # type: ignore[return-value]
+    return decompose
 
 
 def check_time_step(time_step: float | None) -> float | None:

@@ -377,7 +377,7 @@ def _scratch_take(size: int, count: int) -> list[np.ndarray]:
     only once nothing refers to it any more)."""
     out: list[np.ndarray] = []
     with _SCRATCH_LOCK:
-        keep = []
+        keep: list[np.ndarray] = []
         for a in _SCRATCH:  # (by identity: arrays do not compare as list items)
             (out if len(out) < count and a.size == size else keep).append(a)
         _SCRATCH[:] = keep
@@ -393,7 +393,8 @@ def _lease(raw: np.ndarray) -> np.ndarray:
     live on. An array made by ``np.frombuffer`` has a non-array base and stays the
     ``base`` of all its views, so its finaliser runs only when the last one dies.
     """
-    out = np.frombuffer(memoryview(raw), dtype=np.float64)
+    # ndarray exports the buffer protocol; numpy's stubs lack __buffer__ below Python 3.12
+    out = np.frombuffer(memoryview(raw), dtype=np.float64)  # type: ignore[arg-type]
     weakref.finalize(out, _scratch_give, [raw])
     return out
 

@@ -26,7 +26,7 @@ from __future__ import annotations
 
 import math
 import warnings
-from typing import Any
+from typing import Any, Literal, overload
 
 import numpy as np
 import numpy.typing as npt
@@ -128,7 +128,7 @@ def trpes_partial(block: Any, span: BlockSpan, opts: dict[str, Any]) -> dict[str
         ww = s.weight if bs.comp_weight is None else bs.comp_weight
         hist_comp = deposit(tb, s.energy if src is None else s.energy[src], ww, comp=bs.comp,
                             n_comp=opts["n_comp"], tfrac=tf, progress=progress, **grid)
-    out = {"alive": bs.alive, "alive_count": bs.alive_count, "hist": hist,
+    out: dict[str, Any] = {"alive": bs.alive, "alive_count": bs.alive_count, "hist": hist,
            "hist_comp": hist_comp, "n_sticks": np.int64(s.n_sticks),
            "total_weight": np.array(bs.total_weight)}
     if opts.get("keep_sticks"):
@@ -201,6 +201,72 @@ def trpes_model(
     model.set_moments(e_lo=e_lo, h=h, n_fine=n_fine, hist=total["hist"],
                       hist_comp=total["hist_comp"] if decompose is not None else None)
     return model
+
+
+@overload
+def compute_trpes(
+    ens: Ensemble | BlockSource,
+    *,
+    probe: GaussianPulse,
+    pump: GaussianPulse | None = None,
+    kinetic_energies: npt.ArrayLike,
+    delays: npt.ArrayLike,
+    resolution: float = 0.0,
+    convolve: bool = True,
+    cross_section: str | CrossSection | Any = "dyson",
+    weights: str = "doorway",
+    normalise: str = "alive",
+    decompose: str | None = None,
+    progress: bool = True,
+    time_step: float | None = None,
+    client: Any = None,
+    scheduler: Any = None,
+    return_model: Literal[False] = False,
+) -> TRPESMap: ...
+
+
+@overload
+def compute_trpes(
+    ens: Ensemble | BlockSource,
+    *,
+    probe: GaussianPulse,
+    pump: GaussianPulse | None = None,
+    kinetic_energies: npt.ArrayLike,
+    delays: npt.ArrayLike,
+    resolution: float = 0.0,
+    convolve: bool = True,
+    cross_section: str | CrossSection | Any = "dyson",
+    weights: str = "doorway",
+    normalise: str = "alive",
+    decompose: str | None = None,
+    progress: bool = True,
+    time_step: float | None = None,
+    client: Any = None,
+    scheduler: Any = None,
+    return_model: Literal[True],
+) -> tuple[TRPESMap, TRPESModel]: ...
+
+
+@overload
+def compute_trpes(
+    ens: Ensemble | BlockSource,
+    *,
+    probe: GaussianPulse,
+    pump: GaussianPulse | None = None,
+    kinetic_energies: npt.ArrayLike,
+    delays: npt.ArrayLike,
+    resolution: float = 0.0,
+    convolve: bool = True,
+    cross_section: str | CrossSection | Any = "dyson",
+    weights: str = "doorway",
+    normalise: str = "alive",
+    decompose: str | None = None,
+    progress: bool = True,
+    time_step: float | None = None,
+    client: Any = None,
+    scheduler: Any = None,
+    return_model: bool = False,
+) -> TRPESMap | tuple[TRPESMap, TRPESModel]: ...
 
 
 def compute_trpes(

@@ -156,6 +156,7 @@ class TRPESModel:
                 f"{c['h'] * self.bins_per_fwhm:.4g} eV only (it was made from a chunked "
                 f"store); {fwhm:.4g} eV needs the sticks again. Hint: call compute_trpes on "
                 "the lazy ensemble with the new probe width or resolution.")
+        assert self.tbin is not None  # kept with the sticks
         e = self.sticks.energy
         e_lo, h, n_fine = self.fine_grid(fwhm)
         progress = bool(self.info.get("progress", False))
@@ -302,7 +303,7 @@ def deposit(tbin: np.ndarray, energy: np.ndarray, weight: np.ndarray, *, progres
 
     comp = kw.pop("comp", None)
     tfrac = kw.pop("tfrac", None)
-    out = None
+    out: np.ndarray | None = None
     for s in tqdm(range(0, n, block), desc="depositing sticks", unit="block"):
         sl = slice(s, s + block)
         part = KD.deposit_moments(tbin[sl], energy[sl], weight[sl],
@@ -312,4 +313,5 @@ def deposit(tbin: np.ndarray, energy: np.ndarray, weight: np.ndarray, *, progres
             out = part
         else:
             out += part  # in place: no fresh histogram-sized array per block
+    assert out is not None  # n > block: at least one block
     return out

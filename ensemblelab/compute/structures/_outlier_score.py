@@ -78,7 +78,7 @@ def multivariate_score(source: Any, parts: Sequence[Mapping[str, Any]], table: p
     total_fin = int(n_fin.sum())
     rng = np.random.default_rng(random_state)
     if total_fin <= 5000:
-        pos = np.arange(total_fin)
+        pos: np.ndarray = np.arange(total_fin)
     else:  # rng.choice(fin_rows, k) == fin_rows[rng.choice(len(fin_rows), k)]
         pos = np.sort(rng.choice(total_fin, 5000, False))
     feats = [table[c].to_numpy(np.float64) for c in ("max_drift", "max_jump")]

@@ -150,7 +150,7 @@ class _Flags:
     """Collects (traj row, kind, time, reason) events; keeps the first per kind."""
 
     def __init__(self, n_traj: int) -> None:
-        self.events: list[dict[int, tuple[float, str]]] = [{} for _ in range(n_traj)]
+        self.events: list[dict[str, tuple[float, str]]] = [{} for _ in range(n_traj)]
 
     def add(self, row: int, kind: str, time: float, reason: str) -> None:
         cur = self.events[row].get(kind)
@@ -188,7 +188,8 @@ def resolve_thresholds(thresholds: OutlierThresholds | Mapping[str, float] | Non
         if unknown:
             raise SchemaError(f"thresholds has unknown field(s) {sorted(unknown)}; known: "
                               f"{sorted(names)}.")
-        return dataclasses.replace(OutlierThresholds(), **dict(thresholds))
+        fields_: dict[str, Any] = dict(thresholds)  # values of several field types
+        return dataclasses.replace(OutlierThresholds(), **fields_)
     raise SchemaError(f"thresholds must be an OutlierThresholds or a mapping; got "
                       f"{type(thresholds).__name__}.")
 
@@ -378,8 +379,8 @@ def flags_partial(block: Any, span: BlockSpan, opts: Mapping[str, Any]) -> dict[
                                             f"expected {_fmt(t_ref)} fs")
 
     # ---- energies
-    max_drift = np.full(n_traj, np.nan)
-    max_jump = np.full(n_traj, np.nan)
+    max_drift: np.ndarray = np.full(n_traj, np.nan)
+    max_jump: np.ndarray = np.full(n_traj, np.nan)
     if e_tot is not None and n:
         finite = np.isfinite(e_tot)
         # reference: first finite total energy of each trajectory
@@ -424,7 +425,7 @@ def flags_partial(block: Any, span: BlockSpan, opts: Mapping[str, Any]) -> dict[
                           f"{_fmt(g)} eV (> {_fmt(th.hop_gap)} eV)")
 
     # ---- electronic norm
-    max_norm = np.full(n_traj, np.nan)
+    max_norm: np.ndarray = np.full(n_traj, np.nan)
     if ens.amplitudes is not None and n:
         err = np.abs(ens.amplitudes.sum(axis=1) - 1.0)
         err_f = np.where(np.isfinite(err), err, 0.0)
