@@ -118,3 +118,21 @@ def test_cli_convert_refuses_foreign_folder(toy_folder, tmp_path, capsys):
                  "--no-progress"]) == 1
     assert "refusing to overwrite a folder that is not a native store" in capsys.readouterr().err
     assert (foreign / "notes.md").read_text() == "mine"
+
+
+def test_cli_demo_refuses_existing_output_before_simulating(tmp_path, capsys, monkeypatch):
+    # an existing, non-empty --out is refused up front (common practice: fail before the
+    # long work), and the hint names the command-line flag, not the Python keyword
+    import ensemblelab.demo as demo
+
+    def must_not_run(*args, **kw):
+        raise AssertionError("the demo was simulated before the output was checked")
+
+    monkeypatch.setattr(demo, "make_ensemble", must_not_run)
+    out = tmp_path / "mine"
+    (out / "xyz").mkdir(parents=True)
+    (out / "xyz" / "notes.txt").write_text("the user's file")
+    assert main(["demo", "--out", str(out), "--no-progress"]) == 1
+    err = capsys.readouterr().err
+    assert "--overwrite" in err and "overwrite=True" not in err
+    assert (out / "xyz" / "notes.txt").read_text() == "the user's file"

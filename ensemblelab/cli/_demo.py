@@ -42,12 +42,19 @@ def register(subparsers: argparse._SubParsersAction) -> None:
 def run(args: argparse.Namespace) -> int:
     """Generate and write the demo; returns the exit status."""
     from ..demo import make_ensemble
+    from ..errors import StoreError
     from ..io import save, write_extxyz
 
+    out = Path(args.out)
+    targets = {"both": [out / "xyz", out / "store"], "xyz": [out], "store": [out]}[args.format]
+    existing = [t for t in targets if t.exists() and (not t.is_dir() or any(t.iterdir()))]
+    if existing and not args.overwrite:
+        # checked before the (long) simulation, not after it
+        raise StoreError(f"{existing[0]} already exists and is not empty. Hint: choose another "
+                         "--out, or pass --overwrite to replace output this tool wrote.")
     ens = make_ensemble(int(args.n_trajectories), seed=int(args.seed), faults=bool(args.faults),
                         t_max=float(args.t_max), velocities=bool(args.velocities),
                         progress=not args.no_progress)
-    out = Path(args.out)
     written = []
     if args.format in ("both", "xyz"):
         target = out / "xyz" if args.format == "both" else out
