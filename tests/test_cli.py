@@ -136,3 +136,20 @@ def test_cli_demo_refuses_existing_output_before_simulating(tmp_path, capsys, mo
     err = capsys.readouterr().err
     assert "--overwrite" in err and "overwrite=True" not in err
     assert (out / "xyz" / "notes.txt").read_text() == "the user's file"
+
+
+def test_cli_input_format_the_hint_names_exists(tmp_path, capsys):
+    # a snapshot table under a name that does not tell its format: the hint's flag works
+    # (common practice: a hint names an option the user can type)
+    ens = make_toy_ensemble(3, seed=2)
+    from ensemblelab.io.table import write_table
+
+    csv = tmp_path / "snapshots.csv"
+    write_table(ens, csv)
+    odd = tmp_path / "snapshots.dat"
+    odd.write_bytes(csv.read_bytes())
+    assert main(["info", str(odd)]) == 1
+    err = capsys.readouterr().err
+    assert "--input-format" in err
+    assert main(["info", str(odd), "--input-format", "table", "--no-progress"]) == 0
+    assert f"{ens.n_trajectories}" in capsys.readouterr().out

@@ -7,7 +7,7 @@ import sys
 import warnings
 from collections import Counter
 from pathlib import Path
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
@@ -29,6 +29,8 @@ def add_load_options(p: argparse.ArgumentParser) -> None:
     p.add_argument("--nonfinite", choices=("raise", "keep"), default="raise",
                    help="NaN/Inf in energies or coordinates: stop (default) or keep with a "
                         "warning")
+    p.add_argument("--input-format", choices=("store", "extxyz", "table"), default=None,
+                   help="format of the input, when it cannot be told from its name")
     p.add_argument("--no-progress", action="store_true", help="no progress bar")
 
 
@@ -37,11 +39,13 @@ def load_from_args(args: argparse.Namespace) -> Ensemble:
     from ..io import detect_format, load
 
     path = Path(args.path)
-    kw = {}
-    fmt = detect_format(path)
+    kw: dict[str, Any] = {}
+    fmt = args.input_format or detect_format(path)
+    if args.input_format:
+        kw["format"] = fmt
     if fmt != "store":
-        kw = {"energy_unit": args.energy_unit, "time_unit": args.time_unit,
-              "length_unit": args.length_unit, "nonfinite": args.nonfinite}
+        kw |= {"energy_unit": args.energy_unit, "time_unit": args.time_unit,
+               "length_unit": args.length_unit, "nonfinite": args.nonfinite}
         if args.state_base is not None:
             kw["state_base"] = args.state_base
     with warnings.catch_warnings(record=True) as caught:
@@ -141,7 +145,7 @@ def _run(args: argparse.Namespace) -> int:
     ens = load_from_args(args)
     rows = summarise(ens)
     width = max(len(k) for k, _ in rows)
-    print(f"{args.path}  [{detect_format(args.path)}]")
+    print(f"{args.path}  [{getattr(args, 'input_format', None) or detect_format(args.path)}]")
     for key, value in rows:
         print(f"  {key:<{width}}  {value}")
     return 0

@@ -71,8 +71,9 @@ def detect_format(path: str | Path) -> str:
     for ending in sorted(EXTENSIONS, key=len, reverse=True):
         if name.endswith(ending):
             return EXTENSIONS[ending]
-    raise UnknownFormatError(f"{path}: unknown file type; expected {supported}. Hint: pass "
-                             f"format= one of {sorted(LOADERS)}.")
+    raise UnknownFormatError(f"{path}: unknown file type; expected {supported}. Hint: name the "
+                             f"format, one of {sorted(LOADERS)}: load(path, format=...) in "
+                             "Python, --input-format on the command line.")
 
 
 def get_loader(name: str) -> Callable[..., Any]:
