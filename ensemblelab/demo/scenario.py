@@ -230,11 +230,11 @@ class DemoMolecule:
     ``phi`` rotates the amino/cyano end about the C=C axis; ``x_t`` stretches the
     C=C bond (0.015 Angstrom per unit on each carbon), ``x_c`` turns the formyl group
     in plane (4 degrees per unit), ``x_p`` pyramidalises the twisted carbon
-    (0.06 Angstrom per unit along the normal of its substituents' plane). Uncoupled spectator vibrations (17 harmonic bending and
-    out-of-plane modes of a simple valence force field that keep every bond length to
-    first order, force constants drawn with ``seed``) are added with Wigner-sampled
-    amplitudes, so structures are realistically noisy while bonded distances stay within
-    a few per cent of their reference values.
+    (0.06 Angstrom per unit along the normal of its substituents' plane). Uncoupled
+    spectator vibrations (17 harmonic bending and out-of-plane modes of a simple valence
+    force field that keep every bond length to first order, force constants drawn with
+    ``seed``) are added with Wigner-sampled amplitudes, so structures are realistically
+    noisy while bonded distances stay within a few per cent of their reference values.
     """
 
     seed: int = 20240611

@@ -52,8 +52,8 @@ def robust_upper_limit(values: np.ndarray, *, floor: float, ceiling: float, z: f
         ``limit`` (the limit used), ``robust`` (median-based limit before clipping; NaN
         with fewer than :data:`MIN_SAMPLES` values), ``median``, ``n`` (values used).
     """
-    v = np.asarray(values, dtype=np.float64).ravel()
-    v = v[np.isfinite(v) & (v > 0)]
+    raw = np.asarray(values, dtype=np.float64).ravel()
+    v = raw[np.isfinite(raw) & (raw > 0)]
     out = {"limit": float(floor if fallback is None else fallback), "robust": float("nan"),
            "median": float(np.median(v)) if v.size else float("nan"), "n": float(v.size)}
     if v.size >= MIN_SAMPLES:
