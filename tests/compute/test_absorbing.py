@@ -160,3 +160,18 @@ def test_lazy_chunks_hold_absorbed_trajectories_like_in_memory(tmp_path):
     f_got = flag_trajectories(lazy, multivariate=False)
     assert f_got["flags"].tolist() == f_ref["flags"].tolist()
     assert f_got.attrs["limits"] == f_ref.attrs["limits"]
+
+
+def test_flags_follow_the_absorbing_state_argument():
+    ens = stop_after_ground_state(
+        make_ensemble(12, seed=6, faults=False, velocities=False, t_max=300.0), after=2.0)
+    s = ens.snapshots
+    last = s.groupby("traj").tail(1)
+    early_on0 = set(last.loc[(last["time"] < s["time"].max() - 1e-9) & (last["active"] == 0),
+                             "traj"])
+    assert early_on0
+    on = flag_trajectories(ens, multivariate=False).set_index("traj")
+    off = flag_trajectories(ens, multivariate=False, absorbing_state=None).set_index("traj")
+    assert not on.loc[sorted(early_on0), "flags"].str.contains("early_end").any()
+    assert off.loc[sorted(early_on0), "flags"].str.contains("early_end").all()
+    assert on.attrs["absorbing_state"] == 0 and off.attrs["absorbing_state"] is None

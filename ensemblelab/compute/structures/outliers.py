@@ -21,9 +21,9 @@ import numpy as np
 import pandas as pd
 from scipy import constants as _sc
 
-from ...data.ensemble import absorbing_state_of
 from ...errors import EnsembleWarning, SchemaError
 from ..engine import BlockSpan, as_source, reduce, time_statistics
+from ..kinetics.populations import resolve_absorbing
 from ._flag_events import FlagEvents as _Flags
 from ._flag_events import first_per_traj as _first_per_traj
 from ._flag_events import fmt as _fmt
@@ -205,6 +205,7 @@ def flag_trajectories(
     client: Any = None,
     scheduler: Any = None,
     progress: bool = False,
+    absorbing_state: int | str | None = "metadata",
 ) -> pd.DataFrame:
     """Flag broken and unusual trajectories, with a readable reason for every flag.
 
@@ -259,6 +260,9 @@ def flag_trajectories(
         For a lazy ensemble without a client: the Dask scheduler.
     progress : bool
         Progress bar over the chunks of a lazy ensemble.
+    absorbing_state : "metadata", int or None
+        Early ends on this state are not flagged; "metadata" (default) uses
+        ``metadata["absorbing_state"]`` (default 0, the ground state), None none.
 
     Returns
     -------
@@ -299,7 +303,7 @@ def flag_trajectories(
     limits = ensemble_limits(measured, th)
     opts = {"th": dataclasses.replace(th, expected_t_end=t_ref, end_tolerance=tol),
             "chunk_size": chunk_size, "limits": {k: v["limit"] for k, v in limits.items()},
-            "absorbing": absorbing_state_of(source.metadata, source.n_states)}
+            "absorbing": resolve_absorbing(source, absorbing_state)}
     parts = reduce(source, flags_partial, None, args=(opts,), fields=None, client=client,
                    scheduler=scheduler, progress=progress, desc="flag blocks")
     meds = np.array([p["local_median"] for p in parts])
