@@ -26,7 +26,8 @@ from ._schema import (
     validate_fields,
 )
 
-__all__ = ["Ensemble", "SCHEMA_VERSION", "SNAPSHOT_ARRAYS", "TRAJECTORY_ARRAYS", "REQUIRED_COLUMNS"]
+__all__ = ["Ensemble", "SCHEMA_VERSION", "SNAPSHOT_ARRAYS", "TRAJECTORY_ARRAYS", "REQUIRED_COLUMNS",
+           "absorbing_state_of"]
 
 class _ReadOnlyFrame:
     """A data descriptor for the frame fields of :class:`Ensemble`.
@@ -89,8 +90,9 @@ class Ensemble:
     state_labels, cation_labels : tuple of str
         Names of the neutral and cation states.
     metadata : dict
-        ``units``, ``schema_version``, ``sources`` (provenance of each file) and
-        anything else the producer recorded.
+        ``units``, ``schema_version``, ``sources`` (provenance of each file),
+        ``absorbing_state`` (see :attr:`absorbing_state`) and anything else the
+        producer recorded.
     """
 
     snapshots: pd.DataFrame
@@ -244,6 +246,19 @@ class Ensemble:
     def dyson_per_state(self) -> bool:
         """True when :attr:`dyson` holds norms for every neutral state (3-D)."""
         return self.dyson is not None and self.dyson.ndim == 3
+
+    @property
+    def absorbing_state(self) -> int | None:
+        """The absorbing neutral state (0-based), or None when there is none.
+
+        A trajectory whose last snapshot is on this state has been stopped there on
+        purpose (common practice: dynamics codes stop once the ground state is reached):
+        populations and kinetics count it in that state until the end of the ensemble,
+        and :func:`~ensemblelab.compute.structures.outliers.flag_trajectories` does not
+        flag its early end. Set by ``metadata["absorbing_state"]`` (an int, or None to
+        switch the behaviour off); without that key it is the lowest neutral state, 0.
+        """
+        return absorbing_state_of(self.metadata, self.n_states)
 
     @property
     def times(self) -> np.ndarray:
@@ -525,6 +540,40 @@ class Ensemble:
     def __len__(self) -> int:
         return self.n_snapshots
 
+
+
+def absorbing_state_of(metadata: Mapping[str, Any], n_states: int) -> int | None:
+    """The absorbing state recorded in `metadata` (key ``absorbing_state``; default 0).
+
+    Parameters
+    ----------
+    metadata : mapping
+        Ensemble metadata; ``absorbing_state`` may be missing (default: the lowest
+        neutral state 0), None (no absorbing state) or an int in [0, n_states).
+    n_states : int
+        Number of neutral states.
+
+    Returns
+    -------
+    int or None
+
+    Raises
+    ------
+    SchemaError
+        For a value that is not None or an int in range.
+    """
+    if "absorbing_state" not in metadata:
+        return 0 if n_states > 0 else None
+    value = metadata["absorbing_state"]
+    if value is None:
+        return None
+    if isinstance(value, bool) or not isinstance(value, int | np.integer) or not (
+            0 <= int(value) < n_states):
+        raise SchemaError(
+            f"metadata['absorbing_state'] must be None or a neutral state index in "
+            f"[0, {n_states - 1}]; got {value!r}. Hint: ens.replace(metadata={{..., "
+            "'absorbing_state': 0}) for the ground state, None to switch it off.")
+    return int(value)
 
 
 _FRAME_FIELDS = ("snapshots", "trajectories")

@@ -119,6 +119,13 @@ def _inject_faults(cols: dict[str, Any], rows: dict[str, np.ndarray], ids: np.nd
             et[idx] = np.nan
             ek[idx] = np.nan
         elif kind == "truncated":
+            # a crash while excited (a stop on the ground state would be ordinary: the
+            # ground state is absorbing); the cut falls on the last excited snapshot
+            # at or before t0, else on the first excited one
+            exc = np.flatnonzero(sel & (rows["active"] > 0) & (time >= 10.0))
+            if exc.size:
+                before = exc[time[exc] <= t0]
+                t0 = float(time[before[-1]] if before.size else time[exc[0]])
             keep &= ~(sel & (time > t0))
         elif kind == "large_gap_hop":
             act = rows["active"]
@@ -210,14 +217,17 @@ def make_ensemble(
     sq0, sp0 = mol.sample_spectators(n_traj, temperature=sc.temperature, random_state=r_spec)
 
     def geometry(qr, vr, time, tr):
-        pos = mol.cartesian(qr)
-        eps = 1e-3
-        vel = (mol.cartesian(qr + eps * vr) - mol.cartesian(qr - eps * vr)) / (2 * eps)
         from ..units import AU_TIME_FS
 
-        vel = vel / AU_TIME_FS
+        # spectator vibrations are displacements of the planar reference, carried along
+        # by the model motions (a central difference in both gives the velocities)
         dx, dv = mol.spectators(sq0[tr], sp0[tr], time)
-        return pos + dx, vel + dv
+        dv_au = dv * AU_TIME_FS
+        eps = 1e-3
+        pos = mol.cartesian(qr, dx)
+        vel = (mol.cartesian(qr + eps * vr, dx + eps * dv_au)
+               - mol.cartesian(qr - eps * vr, dx - eps * dv_au)) / (2 * eps)
+        return pos, vel / AU_TIME_FS
 
     ids = np.arange(n_traj)
     trajectories = pd.DataFrame({"traj": ids, "weight": 1.0, "sample": samples,
@@ -232,6 +242,7 @@ def make_ensemble(
         "dt_fs": float(dt),
         "save_dt_fs": float(save_dt),
         "decoherence": decoherence,
+        "absorbing_state": 0,  # trajectories may stop on S0 (none does in the demo)
         "parameters": sc.as_dict(),
         "suggested_pump": {"photon_energy": sc.pump_energy, "fwhm": sc.pump_fwhm},
         "suggested_probe": {"photon_energy": sc.probe_energy, "fwhm": sc.probe_fwhm},

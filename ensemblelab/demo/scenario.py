@@ -141,24 +141,86 @@ _FORMYL = np.array([3, 4, 5])
 FRAGMENT_ATOM = 7
 
 
-def _rigid_free_basis(x: np.ndarray, m3: np.ndarray, n_keep: int, rng) -> np.ndarray:
-    """Random orthonormal mass-weighted patterns orthogonal to translations/rotations."""
+#: bonded atom pairs of the reference structure (every pair closer than 1.25 times the sum
+#: of covalent radii; the spectator vibrations keep their lengths to first order)
+_BONDS = ((0, 1), (0, 2), (0, 3), (1, 6), (1, 9), (3, 4), (3, 5), (6, 7), (6, 8), (9, 10))
+#: (1/2 pi c) sqrt(1 mdyn/Angstrom / 1 amu) in cm^-1 (CODATA constants; common practice)
+_FREQ_CM1 = 1302.79
+
+
+def _angle_gradients(x: np.ndarray) -> list[np.ndarray]:
+    """Gradients (n*3,) of every bond angle a-b-c of the reference, by central differences."""
+    nb: dict[int, list[int]] = {}
+    for a, c in _BONDS:
+        nb.setdefault(a, []).append(c)
+        nb.setdefault(c, []).append(a)
+
+    def angle(y: np.ndarray, a: int, b: int, c: int) -> float:
+        u, v = y[a] - y[b], y[c] - y[b]
+        return float(np.arccos(np.clip(u @ v / np.linalg.norm(u) / np.linalg.norm(v), -1, 1)))
+
+    out = []
+    h = 1e-5
+    for b, ns in sorted(nb.items()):
+        for k, a in enumerate(ns):
+            for c in ns[k + 1:]:
+                g = np.zeros(x.size)
+                for i in range(x.size):
+                    d = np.zeros(x.size)
+                    d[i] = h
+                    g[i] = (angle((x.ravel() + d).reshape(x.shape), a, b, c)
+                            - angle((x.ravel() - d).reshape(x.shape), a, b, c)) / (2 * h)
+                out.append(g)
+    return out
+
+
+def _spectator_modes(x: np.ndarray, masses: np.ndarray, rng: np.random.Generator
+                     ) -> tuple[np.ndarray, np.ndarray]:
+    """Bond-preserving spectator normal modes of a simple valence force field.
+
+    Displacements are restricted to the mass-weighted subspace orthogonal to
+    translations, rotations and every bond stretch of :data:`_BONDS` (bond lengths are
+    held, as with bond constraints in classical MD; common practice). In it the force
+    field is angle bending (0.4-0.8 mdyn Angstrom/rad^2) plus a weak isotropic restoring
+    term per atom (0.9-1.4 mdyn/Angstrom), our invented choice; light atoms get high
+    frequencies and small amplitudes, as in real molecules.
+
+    Returns
+    -------
+    modes : ndarray, shape (n_spec, 3n)
+        Orthonormal mass-weighted patterns.
+    frequencies : ndarray, shape (n_spec,)
+        Harmonic wavenumbers in cm^-1.
+    """
     n = x.shape[0]
-    com = (m3[::3, None] * x).sum(0) / m3[::3].sum()
+    m3 = np.repeat(masses, 3)
+    sq = np.sqrt(m3)
+    com = (masses[:, None] * x).sum(0) / masses.sum()
     r = x - com
-    vecs = []
+    cons = []
     for k in range(3):
         t = np.zeros((n, 3))
         t[:, k] = 1.0
-        vecs.append(t.reshape(-1) * np.sqrt(m3))
+        cons.append(t.reshape(-1) * sq)
         ax = np.zeros(3)
         ax[k] = 1.0
-        vecs.append(np.cross(ax, r).reshape(-1) * np.sqrt(m3))
-    rig, _ = np.linalg.qr(np.array(vecs).T)
-    rnd = rng.standard_normal((3 * n, n_keep))
-    rnd -= rig @ (rig.T @ rnd)
-    basis, _ = np.linalg.qr(rnd)
-    return basis.T  # (n_keep, 3n)
+        cons.append(np.cross(ax, r).reshape(-1) * sq)
+    for a, c in _BONDS:
+        e = (x[c] - x[a]) / np.linalg.norm(x[c] - x[a])
+        b = np.zeros((n, 3))
+        b[a], b[c] = -e, e
+        cons.append(b.reshape(-1) / sq)  # bond change = b . x = (b / sqrt m) . Q
+    q, _ = np.linalg.qr(np.array(cons).T)
+    proj = np.eye(3 * n) - q @ q.T
+    w, v = np.linalg.eigh(proj)
+    allowed = v[:, w > 0.5]  # (3n, n_spec) orthonormal basis of the allowed subspace
+    hess = np.diag(np.repeat(rng.uniform(0.9, 1.4, n), 3))
+    for g in _angle_gradients(x):
+        hess += rng.uniform(0.4, 0.8) * np.outer(g, g)
+    hmw = hess / np.outer(sq, sq)
+    lam, vec = np.linalg.eigh(allowed.T @ hmw @ allowed)
+    modes = (allowed @ vec).T
+    return modes, _FREQ_CM1 * np.sqrt(np.clip(lam, 1e-12, None))
 
 
 @dataclass
@@ -166,11 +228,13 @@ class DemoMolecule:
     """Geometry builder: model coordinates -> Cartesian structures of the invented molecule.
 
     ``phi`` rotates the amino/cyano end about the C=C axis; ``x_t`` stretches the
-    C=C bond (0.03 Angstrom per unit on each carbon), ``x_c`` turns the formyl group
+    C=C bond (0.015 Angstrom per unit on each carbon), ``x_c`` turns the formyl group
     in plane (4 degrees per unit), ``x_p`` pyramidalises the twisted carbon
-    (0.06 Angstrom per unit). Uncoupled spectator vibrations (23 harmonic modes with
-    random mass-weighted patterns, fixed by ``seed``) are added with Wigner-sampled
-    amplitudes, so structures are realistically noisy.
+    (0.06 Angstrom per unit along the normal of its substituents' plane). Uncoupled
+    spectator vibrations (17 harmonic bending and out-of-plane modes of a simple valence
+    force field that keep every bond length to first order, force constants drawn with
+    ``seed``) are added with Wigner-sampled amplitudes, so structures are realistically
+    noisy while bonded distances stay within a few per cent of their reference values.
     """
 
     seed: int = 20240611
@@ -182,15 +246,20 @@ class DemoMolecule:
         self.atom_masses = masses_for(list(self.symbols))
         self._m3 = np.repeat(self.atom_masses * AMU_ME, 3)
         rng = np.random.default_rng(self.seed)
-        n_spec = 3 * len(self.symbols) - 6 - 4
-        self._basis = _rigid_free_basis(_REF / BOHR_ANGSTROM, self._m3, n_spec, rng)
-        self.spectator_frequencies = np.sort(rng.uniform(350.0, 3400.0, n_spec))
+        self._basis, self.spectator_frequencies = _spectator_modes(_REF, self.atom_masses, rng)
 
-    def cartesian(self, q: np.ndarray) -> np.ndarray:
-        """Positions (n, 11, 3) in Angstrom from model coordinates q (n, 4)."""
+    def cartesian(self, q: np.ndarray, displacement: np.ndarray | None = None) -> np.ndarray:
+        """Positions (n, 11, 3) in Angstrom from model coordinates q (n, 4).
+
+        `displacement` (n, 11, 3), Angstrom, is added to the planar reference before the
+        model motions (torsion, stretch, pyramidalisation), so that spectator vibrations
+        move with the rotating groups and keep their bond lengths.
+        """
         q = np.asarray(q, dtype=float)
         n = q.shape[0]
         x = np.broadcast_to(_REF, (n,) + _REF.shape).copy()
+        if displacement is not None:
+            x += displacement
         phi, xt, xc, xp = q[:, 0], q[:, 1], q[:, 2], q[:, 3]
         # in-plane turn of the formyl group about C1
         ang = np.deg2rad(4.0) * xc
@@ -203,10 +272,12 @@ class DemoMolecule:
         y, z = x[:, _ROTOR, 1].copy(), x[:, _ROTOR, 2].copy()
         x[:, _ROTOR, 1] = c * y - s * z
         x[:, _ROTOR, 2] = s * y + c * z
-        # pyramidalisation at C2 and the C=C stretch
-        x[:, 1, 2] += 0.06 * xp
-        x[:, _SIDE1, 0] -= 0.03 * xt[:, None]
-        x[:, _SIDE2, 0] += 0.03 * xt[:, None]
+        # pyramidalisation: C2 leaves the plane of its (rotated) substituents along that
+        # plane's normal, which keeps its bonds to first order; then the C=C stretch
+        x[:, 1, 1] -= 0.06 * xp * s[:, 0]
+        x[:, 1, 2] += 0.06 * xp * c[:, 0]
+        x[:, _SIDE1, 0] -= 0.015 * xt[:, None]
+        x[:, _SIDE2, 0] += 0.015 * xt[:, None]
         return x
 
     def sample_spectators(self, n: int, *, temperature: float = 0.0,

@@ -57,7 +57,8 @@ def wilson_interval(p: np.ndarray, n: np.ndarray, z: float) -> tuple[np.ndarray,
 
 # ---------------------------------------------------------------- sampling
 def sample_on_grid(
-    traj_row: np.ndarray, time: np.ndarray, n_traj: int, grid: np.ndarray
+    traj_row: np.ndarray, time: np.ndarray, n_traj: int, grid: np.ndarray,
+    hold: np.ndarray | None = None, hold_until: float = -np.inf,
 ) -> np.ndarray:
     """Snapshot row sampled for every (trajectory, grid time); -1 where not alive.
 
@@ -76,6 +77,11 @@ def sample_on_grid(
         Number of trajectories.
     grid : ndarray, shape (n_times,)
         Increasing time grid.
+    hold : ndarray of bool, shape (n_traj,), optional
+        Trajectories that stay at their last snapshot after it, up to `hold_until`
+        (those stopped in an absorbing state).
+    hold_until : float
+        Time (fs) up to which held trajectories stay alive (the ensemble's end).
 
     Returns
     -------
@@ -91,7 +97,10 @@ def sample_on_grid(
     last = np.r_[traj_row[1:] != traj_row[:-1], True]
     nxt = np.empty(n, dtype=np.int64)
     nxt[:-1] = start[1:]
-    nxt[last] = np.searchsorted(grid, time[last] + eps[last], side="right")
+    end = time[last]
+    if hold is not None:
+        end = np.where(hold[traj_row[last]], np.maximum(end, hold_until), end)
+    nxt[last] = np.searchsorted(grid, end + 1e-9 * np.maximum(1.0, np.abs(end)), side="right")
     length = np.clip(nxt - start, 0, None)
     rows = np.repeat(np.arange(n, dtype=np.int64), length)
     offs = np.arange(rows.size, dtype=np.int64) - np.repeat(np.cumsum(length) - length, length)

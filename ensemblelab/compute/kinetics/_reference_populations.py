@@ -28,18 +28,25 @@ def wilson_interval_loop(k: float, n: float, z: float) -> tuple[float, float]:
 
 
 def sample_on_grid_loop(
-    traj_row: np.ndarray, time: np.ndarray, n_traj: int, grid: np.ndarray
+    traj_row: np.ndarray, time: np.ndarray, n_traj: int, grid: np.ndarray,
+    hold: np.ndarray | None = None, hold_until: float = -np.inf,
 ) -> np.ndarray:
-    """Per-trajectory, per-grid-time loop of nearest-previous-step sampling."""
+    """Per-trajectory, per-grid-time loop of nearest-previous-step sampling.
+
+    A trajectory with ``hold[r]`` stays at its last snapshot until `hold_until`.
+    """
     out = np.full((n_traj, grid.size), -1, dtype=np.int64)
     for r in range(n_traj):
         rows = np.flatnonzero(traj_row == r)
         if rows.size == 0:
             continue
         t = time[rows]
+        end = t[-1]
+        if hold is not None and hold[r]:
+            end = max(end, hold_until)
         for j, g in enumerate(grid):
             tol = 1e-9 * max(1.0, abs(g))
-            if g < t[0] - tol or g > t[-1] + tol:
+            if g < t[0] - tol or g > end + tol:
                 continue
             k = -1
             for i, ti in enumerate(t):

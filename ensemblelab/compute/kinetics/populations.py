@@ -14,6 +14,14 @@ Alive mask. A trajectory is *alive* at time t when ``t_start <= t <= t_end``
 positive. Only alive trajectories enter the average at t; ``n_alive`` and the
 Kish effective size ``n_eff = (sum w)^2 / sum w^2`` are reported per time.
 
+Absorbing state. A trajectory whose last snapshot is on the absorbing state
+(``ens.absorbing_state``: by default the lowest neutral state, set by
+``metadata["absorbing_state"]``; or the `absorbing_state` argument) was stopped
+there on purpose, as dynamics codes commonly do once the ground state is reached.
+It stays alive after its end, holding its last snapshot's values, up to the end of
+the ensemble (the latest ``t_end``). Trajectories that end early on another state
+keep the alive handling above and are listed in ``attrs["ended_early"]``.
+
 Time grid. ``time_grid=None`` uses the ensemble's unique snapshot times.
 Otherwise each trajectory is sampled at its *nearest previous* step (the last
 snapshot with ``time <= t``), which never looks into the future of a trajectory
@@ -185,6 +193,38 @@ def _excluded_mask(ens: Ensemble | BlockSource,
     return np.isin(ids, ex)
 
 
+def resolve_absorbing(ens: Any, absorbing_state: int | str | None) -> int | None:
+    """The absorbing state to use: the ensemble's (``"metadata"``), None or an index."""
+    from ...data.ensemble import absorbing_state_of
+
+    n_states = int(ens.n_states)
+    if isinstance(absorbing_state, str):
+        if absorbing_state != "metadata":
+            raise SchemaError(
+                f"The 'absorbing_state' parameter must be 'metadata' (the ensemble's "
+                f"metadata['absorbing_state'], default 0), None or a state index; got "
+                f"{absorbing_state!r}.")
+        return absorbing_state_of(ens.metadata, n_states)
+    return absorbing_state_of({"absorbing_state": absorbing_state}, n_states)
+
+
+def held_trajectories(block: Any, absorbing: int | None) -> np.ndarray:
+    """Which trajectories of a block end on the absorbing state, shape (n_traj,) bool."""
+    n_traj = block.n_trajectories
+    if absorbing is None or block.n_snapshots == 0:
+        return np.zeros(n_traj, dtype=bool)
+    tix = block.traj_index
+    last = np.r_[np.flatnonzero(tix[1:] != tix[:-1]), tix.size - 1]
+    out = np.zeros(n_traj, dtype=bool)
+    out[tix[last]] = block.snapshots["active"].to_numpy()[last] == absorbing
+    return out
+
+
+def _ensemble_end(ens: Any) -> float:
+    t_end = ens.trajectories["t_end"].to_numpy(dtype=np.float64)
+    return float(t_end.max()) if t_end.size else -np.inf
+
+
 def _values_block(ens: Ensemble, kind: str, idx: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Values (nb, n_times, n_states) and alive (nb, n_times) for sampled rows idx."""
     alive = idx >= 0
@@ -210,6 +250,7 @@ def population_arrays(
     weights: str | npt.ArrayLike | None = None,
     time_grid: npt.ArrayLike | None = None,
     exclude: Iterable[int] | pd.DataFrame | None = None,
+    absorbing_state: int | str | None = "metadata",
 ) -> PopulationArrays:
     """Per-trajectory state values and alive mask on a time grid.
 
@@ -226,6 +267,9 @@ def population_arrays(
     exclude : iterable of int or DataFrame, optional
         Trajectory ids treated as not alive (a flags frame with ``traj`` and
         ``flagged`` columns works too).
+    absorbing_state : "metadata", int or None
+        Trajectories ending on this state count in it until the ensemble's end
+        (module docstring); "metadata" uses ``ens.absorbing_state``, None none.
 
     Returns
     -------
@@ -237,8 +281,10 @@ def population_arrays(
     w, _ = _resolve_weights(ens, weights)
     grid = _resolve_grid(ens, time_grid)
     w = np.where(_excluded_mask(ens, exclude), 0.0, w)
+    absorbing = resolve_absorbing(ens, absorbing_state)
     idx = _k.sample_on_grid(ens.traj_index, ens.snapshots["time"].to_numpy(),
-                            ens.n_trajectories, grid)
+                            ens.n_trajectories, grid, hold=held_trajectories(ens, absorbing),
+                            hold_until=_ensemble_end(ens))
     idx[w <= 0] = -1
     vals, alive = _values_block(ens, kind, idx)
     return PopulationArrays(times=grid, values=vals, alive=alive, weights=w,
@@ -261,6 +307,7 @@ def populations(
     client: Any = None,
     scheduler: Any = None,
     progress: bool = False,
+    absorbing_state: int | str | None = "metadata",
 ) -> pd.DataFrame:
     """Populations of the electronic states against time, with intervals.
 
@@ -298,6 +345,11 @@ def populations(
         For a lazy ensemble without a client: the Dask scheduler.
     progress : bool
         Progress bar over the chunks of a lazy ensemble.
+    absorbing_state : "metadata", int or None
+        Trajectories whose last snapshot is on this state count in it (holding their
+        last values) until the ensemble's end; "metadata" (default) uses
+        ``metadata["absorbing_state"]`` (default 0, the lowest neutral state), None
+        switches this off (every trajectory leaves the average at its end).
 
     Returns
     -------
@@ -307,8 +359,10 @@ def populations(
         trajectories with positive weight), ``n_eff`` (Kish effective size;
         equals ``n_alive`` for equal weights). Where nothing is alive the
         population and interval are NaN. ``frame.attrs`` records ``kind``,
-        ``interval``, ``ci``, ``weights``, ``n_boot``, ``excluded`` (ids) and
-        ``ended_early`` (ids of trajectories ending before the last time).
+        ``interval``, ``ci``, ``weights``, ``n_boot``, ``excluded`` (ids),
+        ``absorbing_state``, ``absorbed`` (ids of trajectories that ended early on
+        the absorbing state and are held there) and ``ended_early`` (ids of the other
+        trajectories ending before the last time: they leave the average).
 
     Examples
     --------
@@ -327,7 +381,9 @@ def populations(
     excluded = _excluded_mask(source, exclude)
     w = np.where(excluded, 0.0, w)
     n_traj, n_states, n_times = source.n_trajectories, source.n_states, grid.size
-    opts: dict[str, Any] = {"kind": kind, "grid": grid, "w": w, "n_states": n_states}
+    opts: dict[str, Any] = {"kind": kind, "grid": grid, "w": w, "n_states": n_states,
+                            "absorbing": resolve_absorbing(source, absorbing_state),
+                            "hold_until": _ensemble_end(source)}
     if interval == "bootstrap":
         rng = np.random.default_rng(random_state)
         opts["counts"] = _k.bootstrap_counts(n_traj, int(n_boot), rng)
@@ -340,7 +396,8 @@ def populations(
             boot = sums["boot_num"].reshape(-1, n_times, n_states) / sums["boot_den"][:, :, None]
     return _finish(source, grid=grid, num=sums["num"], w_alive=sums["w_alive"], w2=sums["w2"],
                    n_alive=sums["n_alive"], boot=boot, states=states, kind=kind,
-                   interval=interval, ci=ci, wlabel=wlabel, n_boot=n_boot, excluded=excluded)
+                   interval=interval, ci=ci, wlabel=wlabel, n_boot=n_boot, excluded=excluded,
+                   held=sums["held"] > 0, absorbing=opts["absorbing"])
 
 
 def population_partial(block: Any, span: BlockSpan, opts: dict[str, Any]) -> dict[str, Any]:
@@ -353,13 +410,19 @@ def population_partial(block: Any, span: BlockSpan, opts: dict[str, Any]) -> dic
     lo, n_traj = span.traj_start, block.n_trajectories
     grid = opts["grid"]
     w = opts["w"][lo:lo + n_traj]
-    idx = _k.sample_on_grid(block.traj_index, block.snapshots["time"].to_numpy(), n_traj, grid)
+    held = held_trajectories(block, opts.get("absorbing"))
+    idx = _k.sample_on_grid(block.traj_index, block.snapshots["time"].to_numpy(), n_traj, grid,
+                            hold=held, hold_until=opts.get("hold_until", -np.inf))
     idx[w <= 0] = -1
     counts = opts.get("counts")
     if counts is not None:
         counts = counts[:, lo:lo + n_traj]
-    return _weighted_sums(block, opts["kind"], idx, w, counts, n_times=grid.size,
-                          n_states=opts["n_states"])
+    out = _weighted_sums(block, opts["kind"], idx, w, counts, n_times=grid.size,
+                         n_states=opts["n_states"])
+    held_all = np.zeros(opts["w"].size)
+    held_all[lo:lo + n_traj] = held
+    out["held"] = held_all
+    return out
 
 
 def _weighted_sums(ens: Any, kind: str, idx_all: np.ndarray, w: np.ndarray,
@@ -415,7 +478,8 @@ def _check_arguments(ens: Any, *, kind: str, interval: str, ci: Any, n_boot: Any
 def _finish(ens: Any, *, grid: np.ndarray, num: np.ndarray, w_alive: np.ndarray,
             w2: np.ndarray, n_alive: np.ndarray, boot: np.ndarray | None, states: Any,
             kind: str, interval: str, ci: float, wlabel: str, n_boot: int,
-            excluded: np.ndarray, stacklevel: int = 3) -> pd.DataFrame:
+            excluded: np.ndarray, held: np.ndarray | None = None, absorbing: int | None = None,
+            stacklevel: int = 3) -> pd.DataFrame:
     """Fractions, intervals and the tidy frame from the weighted sums over trajectories.
 
     ``num`` (n_times, n_states) and ``w_alive``/``w2``/``n_alive`` (n_times,) are sums of
@@ -460,11 +524,16 @@ def _finish(ens: Any, *, grid: np.ndarray, num: np.ndarray, w_alive: np.ndarray,
     )
     t_end = ens.trajectories["t_end"].to_numpy()
     ids = ens.trajectories["traj"].to_numpy()
+    if held is None:
+        held = np.zeros(ids.size, dtype=bool)
+    early = (t_end < grid[-1]) & ~excluded
     frame.attrs.update(
         kind=kind, interval=interval, ci=float(ci), weights=wlabel,
         n_boot=int(n_boot) if interval == "bootstrap" else 0,
         excluded=ids[excluded].tolist(),
-        ended_early=ids[(t_end < grid[-1]) & ~excluded].tolist(),
+        absorbing_state=absorbing,
+        absorbed=ids[early & held].tolist(),
+        ended_early=ids[early & ~held].tolist(),
     )
     return frame
 

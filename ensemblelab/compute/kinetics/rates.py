@@ -265,6 +265,7 @@ def fit_kinetics(
     n_boot: int = 1000,
     random_state: int | np.random.Generator | None = 0,
     ens: Ensemble | None = None,
+    absorbing_state: int | str | None = "metadata",
 ) -> KineticsResult:
     """Fit a kinetic scheme to populations, with bootstrap or covariance intervals.
 
@@ -307,6 +308,11 @@ def fit_kinetics(
         Seed of the bootstrap.
     ens : Ensemble, optional
         With a frame as `data`: the ensemble it came from, to bootstrap.
+    absorbing_state : "metadata", int or None
+        Populations from the ensemble count trajectories that end on this state in it
+        until the ensemble's end (see
+        :func:`~ensemblelab.compute.kinetics.populations.populations`); "metadata"
+        uses ``ens.absorbing_state`` (default 0), None switches it off.
 
     Returns
     -------
@@ -353,7 +359,8 @@ def fit_kinetics(
         kind_ = kind or (frame.attrs.get("kind") if frame is not None else None) or "active"
         if frame is not None and time_grid is None:
             time_grid = np.unique(frame["time"].to_numpy(np.float64))
-        arrays = population_arrays(ens, kind=kind_, weights=weights, time_grid=time_grid)
+        arrays = population_arrays(ens, kind=kind_, weights=weights, time_grid=time_grid,
+                                   absorbing_state=absorbing_state)
         mean = arrays.mean()
         t_all = arrays.times
         series = {s: mean[:, s] for s in range(mean.shape[1])}

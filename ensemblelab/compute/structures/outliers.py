@@ -3,8 +3,10 @@
 :func:`flag_trajectories` runs rule-based checks (energy conservation, hops at large
 gaps, electronic norm, non-finite values, missing steps, early ends, bond-topology
 changes) and a multivariate outlier score (isolation forest on per-trajectory
-features). Nothing is deleted: drop the flagged trajectories with
-``ens.without(table[table.flagged])``, which returns a new Ensemble.
+features). The hop-gap, drift and jump limits are relative to the ensemble (robust
+statistics, :mod:`._robust_limits`) within absolute floors and ceilings; every flag
+says how far past its limit the trajectory is. Nothing is deleted: drop the flagged
+trajectories with ``ens.without(table[table.flagged])``, which returns a new Ensemble.
 """
 
 from __future__ import annotations
@@ -21,8 +23,13 @@ from scipy import constants as _sc
 
 from ...errors import EnsembleWarning, SchemaError
 from ..engine import BlockSpan, as_source, reduce, time_statistics
-from . import _kernels_geometry as _k
+from ..kinetics.populations import resolve_absorbing
+from ._flag_events import FlagEvents as _Flags
+from ._flag_events import first_per_traj as _first_per_traj
+from ._flag_events import fmt as _fmt
+from ._flag_events import topology_flags as _topology
 from ._outlier_score import multivariate_score
+from ._robust_limits import ensemble_limits, measure_partial
 
 if TYPE_CHECKING:
     from ...data.ensemble import Ensemble
@@ -50,16 +57,29 @@ class OutlierThresholds:
     Attributes
     ----------
     drift_warn : float
-        Total-energy drift |E_tot(t) - E_tot(0)| (eV) reported as a warning.
-        Default 0.2 eV (common practice).
+        Total-energy drift |E_tot(t) - E_tot(0)| (eV) reported as a warning, and the
+        floor of the ensemble-relative drift limit. Default 0.2 eV (common practice).
     drift_reject : float
-        Drift (eV) that marks a trajectory as broken. Default 0.5 eV (common practice).
+        Ceiling of the drift limit: a larger drift is broken whatever the ensemble.
+        Default 0.5 eV (common practice).
     jump : float
-        Change of the total energy within one step without a hop (eV). Default
-        0.1 eV (common practice).
+        Floor of the limit on a total-energy change within one step without a hop
+        (eV). Default 0.1 eV (common practice).
+    jump_ceiling : float
+        Ceiling of the jump limit (eV). Default 0.5 eV (common practice).
     hop_gap : float
-        |E_from - E_to| at a hop (eV) above which the hop is suspicious. Default
-        0.5 eV (common practice; internal conversion normally hops at <~ 0.1-0.3 eV).
+        Floor of the limit on |E_from - E_to| at a hop (eV). Default 0.5 eV (common
+        practice; internal conversion normally hops at <~ 0.1-0.3 eV).
+    hop_gap_ceiling : float
+        Ceiling of the hop-gap limit (eV). Default 1.5 eV (common practice).
+    robust_z : float
+        Robust z-score (median/MAD of log values over the ensemble) above which a
+        hop gap, a trajectory's largest drift or largest jump is unusual; the limit is
+        kept between the floor and the ceiling above. Default 5 (common practice uses
+        3.5 for a single test; higher here because an ensemble holds hundreds of hops).
+    relative : bool
+        Use ensemble-relative limits (default True); False uses the fixed limits
+        hop_gap, drift_reject and jump.
     norm : float
         |sum_i |c_i|^2 - 1| above which the electronic norm is broken. Default 1e-3
         (common practice).
@@ -89,9 +109,9 @@ class OutlierThresholds:
     end_tolerance : float or None
         Slack (fs) on `expected_t_end`; default 1.5 median time steps.
     end_ok_states : tuple of int
-        Active states on which stopping early is normal (e.g. ``(0,)`` when the
-        dynamics stop on reaching the ground state). Default () (common practice
-        varies by program; set it explicitly).
+        Active states, besides the ensemble's absorbing state
+        (``ens.absorbing_state``: by default S0, set by ``metadata["absorbing_state"]``),
+        on which stopping early is normal. Default ().
     contamination : float
         Expected fraction of unusual trajectories for the isolation forest.
         Default 0.05 (common practice).
@@ -103,7 +123,11 @@ class OutlierThresholds:
     drift_warn: float = 0.2
     drift_reject: float = 0.5
     jump: float = 0.1
+    jump_ceiling: float = 0.5
     hop_gap: float = 0.5
+    hop_gap_ceiling: float = 1.5
+    robust_z: float = 5.0
+    relative: bool = True
     norm: float = 1e-3
     s1s0_gap: float | None = None
     bond_scale: float = 1.25
@@ -146,29 +170,6 @@ def _total_energy(ens: Ensemble) -> tuple[np.ndarray | None, str]:
     return None, "no total energy (energy checks skipped)"
 
 
-class _Flags:
-    """Collects (traj row, kind, time, reason) events; keeps the first per kind."""
-
-    def __init__(self, n_traj: int) -> None:
-        self.events: list[dict[str, tuple[float, str]]] = [{} for _ in range(n_traj)]
-
-    def add(self, row: int, kind: str, time: float, reason: str) -> None:
-        cur = self.events[row].get(kind)
-        if cur is None or time < cur[0]:
-            self.events[row][kind] = (float(time), reason)
-
-
-def _first_per_traj(mask: np.ndarray, tix: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Trajectory rows with any True in `mask`, and the first snapshot row of each."""
-    idx = np.flatnonzero(mask)
-    rows, first = np.unique(tix[idx], return_index=True)
-    return rows, idx[first]
-
-
-def _fmt(x: float) -> str:
-    return f"{x:.3g}"
-
-
 def resolve_thresholds(thresholds: OutlierThresholds | Mapping[str, float] | None,
                        ) -> OutlierThresholds:
     """The defaults, an OutlierThresholds as given, or the defaults with some fields replaced.
@@ -204,6 +205,7 @@ def flag_trajectories(
     client: Any = None,
     scheduler: Any = None,
     progress: bool = False,
+    absorbing_state: int | str | None = "metadata",
 ) -> pd.DataFrame:
     """Flag broken and unusual trajectories, with a readable reason for every flag.
 
@@ -211,11 +213,14 @@ def flag_trajectories(
 
     * ``nonfinite``: NaN/Inf in geometries, energies, total energy or amplitudes;
     * ``missing_steps``: a step-index jump or a time step > step_gap_factor x median;
-    * ``early_end``: the trajectory stops before `expected_t_end` (not on an
-      `end_ok_states` state);
-    * ``energy_drift`` / ``energy_drift_warning``: |E_tot(t) - E_tot(0)|;
-    * ``energy_jump``: |Delta E_tot| in one step without a hop;
-    * ``large_gap_hop``: a hop with |E_from - E_to| > hop_gap;
+    * ``early_end``: the trajectory stops before `expected_t_end`, not on the
+      ensemble's absorbing state (``ens.absorbing_state``, default S0: dynamics
+      commonly stop there) nor on an `end_ok_states` state;
+    * ``energy_drift`` / ``energy_drift_warning``: |E_tot(t) - E_tot(0)| above the
+      ensemble-relative limit / above drift_warn;
+    * ``energy_jump``: |Delta E_tot| in one step without a hop, above the
+      ensemble-relative limit;
+    * ``large_gap_hop``: a hop with |E_from - E_to| above the ensemble-relative limit;
     * ``norm_error``: |sum |c|^2 - 1| > norm;
     * ``topology_change``: a bond of t = 0 breaks (fragmentation; covalent radii);
     * ``bond_formed``: a new bond forms (e.g. hydrogen transfer; chemistry rather than a
@@ -255,6 +260,9 @@ def flag_trajectories(
         For a lazy ensemble without a client: the Dask scheduler.
     progress : bool
         Progress bar over the chunks of a lazy ensemble.
+    absorbing_state : "metadata", int or None
+        Early ends on this state are not flagged; "metadata" (default) uses
+        ``metadata["absorbing_state"]`` (default 0, the ground state), None none.
 
     Returns
     -------
@@ -264,9 +272,13 @@ def flag_trajectories(
         kinds), ``reason`` (";"-joined readable reasons, one per flag, same order),
         ``first_bad_time`` (fs, earliest broken flag; NaN if none), ``score``
         (multivariate outlier score, higher = more unusual; NaN when not computed),
-        ``unusual`` (bool), ``n_flags``, and the measured ``max_drift``,
-        ``max_jump``, ``max_hop_gap``, ``max_norm_error`` (NaN when not available),
-        ``t_end``.
+        ``unusual`` (bool), ``n_flags``, ``excess`` (";"-joined, per flag in the order
+        of ``flags``: the measured value over its limit, > 1 means past it; inf for
+        non-finite values), ``max_excess`` (largest excess of the broken flags, NaN
+        if none), and the measured ``max_drift``, ``max_jump``, ``max_hop_gap``,
+        ``max_norm_error`` (NaN when not available), ``t_end``. ``attrs["limits"]``
+        holds the limits used (``hop_gap``, ``drift``, ``jump``: limit, robust value,
+        median, number of values) and ``attrs["absorbing_state"]`` the absorbing state.
 
     Examples
     --------
@@ -285,8 +297,13 @@ def flag_trajectories(
         float(t_end_all.max()) if source.n_trajectories else 0.0)
     tol = th.end_tolerance if th.end_tolerance is not None else (
         1.5 * dt_med if np.isfinite(dt_med) else 0.0)
+    measured = reduce(source, measure_partial, None, args=({"total_energy": _total_energy},),
+                      fields=None, client=client, scheduler=scheduler, progress=progress,
+                      desc="measure blocks")
+    limits = ensemble_limits(measured, th)
     opts = {"th": dataclasses.replace(th, expected_t_end=t_ref, end_tolerance=tol),
-            "chunk_size": chunk_size}
+            "chunk_size": chunk_size, "limits": {k: v["limit"] for k, v in limits.items()},
+            "absorbing": resolve_absorbing(source, absorbing_state)}
     parts = reduce(source, flags_partial, None, args=(opts,), fields=None, client=client,
                    scheduler=scheduler, progress=progress, desc="flag blocks")
     meds = np.array([p["local_median"] for p in parts])
@@ -297,24 +314,32 @@ def flag_trajectories(
             f"from the ensemble median ({dt_med:.6g} fs); their missing-steps check used the "
             "chunk's own median.", EnsembleWarning, stacklevel=2)
     table = pd.concat([p["table"] for p in parts], ignore_index=True)
+    table.attrs.update(limits=limits, absorbing_state=opts["absorbing"])
     n_traj = len(table)
     if multivariate and n_traj >= 8:
         score, unusual = multivariate_score(source, parts, table, th.contamination,
                                             random_state, client=client, scheduler=scheduler)
         table["score"], table["unusual"] = score, unusual
         flags, reason = table["flags"].tolist(), table["reason"].tolist()
+        excess = table["excess"].tolist()
         flagged = table["flagged"].to_numpy().copy()
         n_flags = table["n_flags"].to_numpy().copy()
+        max_ex = table["max_excess"].to_numpy().copy()
+        # the score of the least atypical unusual trajectory is the effective limit
+        cut = float(np.min(score[unusual])) if np.any(unusual) else np.nan
         for r in np.flatnonzero(unusual):
             text = (f"unusual trajectory (isolation-forest score {score[r]:.3g}, among the "
                     f"{th.contamination:.0%} most atypical)")
+            ex = f"{score[r] / cut:.3g}"
             flags[r] = f"{flags[r]};unusual" if flags[r] else "unusual"
             reason[r] = f"{reason[r]}; {text}" if reason[r] else text
+            excess[r] = f"{excess[r]};{ex}" if excess[r] else ex
             n_flags[r] += 1
             if "unusual" in th.broken_kinds:
                 flagged[r] = True
-        table["flags"], table["reason"] = flags, reason
-        table["flagged"], table["n_flags"] = flagged, n_flags
+                max_ex[r] = np.nanmax([max_ex[r], score[r] / cut])
+        table["flags"], table["reason"], table["excess"] = flags, reason, excess
+        table["flagged"], table["n_flags"], table["max_excess"] = flagged, n_flags, max_ex
     return table
 
 
@@ -322,9 +347,13 @@ def flags_partial(block: Any, span: BlockSpan, opts: Mapping[str, Any]) -> dict[
     """Rule-based flags and the per-trajectory features of one block (a reduction partial).
 
     ``opts`` holds the thresholds ``th`` (with the ensemble-wide ``expected_t_end`` and
-    ``end_tolerance`` filled in) and ``chunk_size``; ``block`` is a whole Ensemble.
+    ``end_tolerance`` filled in), ``chunk_size``, the ensemble's ``limits`` (``hop_gap``,
+    ``drift``, ``jump`` in eV; default the fixed thresholds) and its ``absorbing`` state;
+    ``block`` is a whole Ensemble.
     """
     ens, th = block, opts["th"]
+    lim = {"hop_gap": th.hop_gap, "drift": th.drift_reject, "jump": th.jump,
+           **opts.get("limits", {})}
     snaps = ens.snapshots
     n = ens.n_snapshots
     trajs = ens.trajectories
@@ -353,17 +382,19 @@ def flags_partial(block: Any, span: BlockSpan, opts: Mapping[str, Any]) -> dict[
     for what, bad in checks:
         for r, i in zip(*_first_per_traj(bad, tix), strict=True):
             flags.add(r, "nonfinite", time[i], f"non-finite values (NaN/Inf) in {what} at "
-                                               f"{_fmt(time[i])} fs")
+                                               f"{_fmt(time[i])} fs", np.inf)
 
     # ---- missing steps
     if n > 1:
         dstep = np.r_[1, np.diff(step)]
         dtime = np.r_[0.0, np.diff(time)]
         gap = same & ((dstep > 1) | (np.isfinite(dt_med) & (dtime > th.step_gap_factor * dt_med)))
+        ratio = np.maximum(dstep.astype(np.float64),
+                           dtime / (th.step_gap_factor * dt_med) if np.isfinite(dt_med) else 0.0)
         for r, i in zip(*_first_per_traj(gap, tix), strict=True):
             flags.add(r, "missing_steps", time[i - 1] + dt_med,
                       f"missing steps between {_fmt(time[i - 1])} and {_fmt(time[i])} fs "
-                      f"(median step {_fmt(dt_med)} fs)")
+                      f"(median step {_fmt(dt_med)} fs)", float(ratio[i]))
 
     # ---- early end
     t_end = trajs["t_end"].to_numpy(dtype=np.float64)
@@ -372,11 +403,14 @@ def flags_partial(block: Any, span: BlockSpan, opts: Mapping[str, Any]) -> dict[
     tol = th.end_tolerance if th.end_tolerance is not None else (
         1.5 * dt_med if np.isfinite(dt_med) else 0.0)
     last = np.r_[starts[1:] - 1, n - 1] if n else np.zeros(0, int)
+    ok_states = set(th.end_ok_states) | ({opts["absorbing"]} if opts.get("absorbing")
+                                         is not None else set())
     for r in np.flatnonzero(t_end < t_ref - tol):
-        if int(active[last[r]]) in th.end_ok_states:
+        if int(active[last[r]]) in ok_states:
             continue
-        flags.add(r, "early_end", t_end[r], f"ended at {_fmt(t_end[r])} fs, before the "
-                                            f"expected {_fmt(t_ref)} fs")
+        flags.add(r, "early_end", t_end[r],
+                  f"ended at {_fmt(t_end[r])} fs on {labels[int(active[last[r]])]}, before "
+                  f"the expected {_fmt(t_ref)} fs", (t_ref - t_end[r]) / max(tol, 1e-12))
 
     # ---- energies
     max_drift: np.ndarray = np.full(n_traj, np.nan)
@@ -392,21 +426,23 @@ def flags_partial(block: Any, span: BlockSpan, opts: Mapping[str, Any]) -> dict[
         d_filled = np.where(np.isfinite(drift), drift, -np.inf)
         max_drift = np.maximum.reduceat(d_filled, starts)
         max_drift[~np.isfinite(max_drift)] = np.nan
-        for kind, lim, word in (("energy_drift", th.drift_reject, "broken"),
-                                ("energy_drift_warning", th.drift_warn, "warning level")):
-            for r, i in zip(*_first_per_traj(np.nan_to_num(drift, nan=0.0) > lim, tix),
+        for kind, limit, word in (("energy_drift", lim["drift"], "ensemble limit"),
+                                  ("energy_drift_warning", th.drift_warn, "warning level")):
+            for r, i in zip(*_first_per_traj(np.nan_to_num(drift, nan=0.0) > limit, tix),
                             strict=True):
                 flags.add(r, kind, time[i], f"total energy drifted by {_fmt(drift[i])} eV "
-                                            f"(> {_fmt(lim)} eV, {word}) at {_fmt(time[i])} fs")
+                                            f"(> {_fmt(limit)} eV, {word}) at {_fmt(time[i])} fs",
+                          max_drift[r] / limit)
         jump = np.zeros(n)
         jump[1:] = np.abs(np.diff(e_tot))
         no_hop = same & np.r_[False, active[1:] == active[:-1]]
         jump = np.where(no_hop & np.isfinite(jump), jump, 0.0)
         max_jump = np.maximum.reduceat(jump, starts)
-        for r, i in zip(*_first_per_traj(jump > th.jump, tix), strict=True):
+        for r, i in zip(*_first_per_traj(jump > lim["jump"], tix), strict=True):
             flags.add(r, "energy_jump", time[i],
                       f"total energy jumped by {_fmt(jump[i])} eV in one step without a hop "
-                      f"at {_fmt(time[i])} fs (> {_fmt(th.jump)} eV)")
+                      f"at {_fmt(time[i])} fs (> {_fmt(lim['jump'])} eV, ensemble limit)",
+                      max_jump[r] / lim["jump"])
 
     # ---- hops at large gaps
     hops = ens.hops()
@@ -419,10 +455,11 @@ def flags_partial(block: Any, span: BlockSpan, opts: Mapping[str, Any]) -> dict[
         np.add.at(n_hops, hrow, 1.0)
         for r, g, t, a, b in zip(hrow, gaps, hops["time"].to_numpy(), hops["from"].to_numpy(),
                                  hops["to"].to_numpy(), strict=True):
-            if g > th.hop_gap:
+            if g > lim["hop_gap"]:
                 flags.add(int(r), "large_gap_hop", t,
                           f"hop {labels[a]}->{labels[b]} at {_fmt(t)} fs with a gap of "
-                          f"{_fmt(g)} eV (> {_fmt(th.hop_gap)} eV)")
+                          f"{_fmt(g)} eV (> {_fmt(lim['hop_gap'])} eV, ensemble limit)",
+                          g / lim["hop_gap"])
 
     # ---- electronic norm
     max_norm: np.ndarray = np.full(n_traj, np.nan)
@@ -434,7 +471,7 @@ def flags_partial(block: Any, span: BlockSpan, opts: Mapping[str, Any]) -> dict[
             flags.add(r, "norm_error", time[i], f"electronic populations sum to "
                                                 f"{1.0 + (ens.amplitudes[i].sum() - 1.0):.6g} "
                                                 f"(|error| {err[i]:.2g} > {th.norm:.2g}) at "
-                                                f"{_fmt(time[i])} fs")
+                                                f"{_fmt(time[i])} fs", max_norm[r] / th.norm)
 
     # ---- small S1/S0 gap
     if th.s1s0_gap is not None and ens.n_states > 1 and n:
@@ -442,7 +479,8 @@ def flags_partial(block: Any, span: BlockSpan, opts: Mapping[str, Any]) -> dict[
         bad = (active == 1) & (np.nan_to_num(g10, nan=np.inf) < th.s1s0_gap)
         for r, i in zip(*_first_per_traj(bad, tix), strict=True):
             flags.add(r, "small_s1s0_gap", time[i], f"S1/S0 gap {_fmt(g10[i])} eV on S1 at "
-                                                    f"{_fmt(time[i])} fs (< {th.s1s0_gap} eV)")
+                                                    f"{_fmt(time[i])} fs (< {th.s1s0_gap} eV)",
+                      th.s1s0_gap / max(float(g10[i]), 1e-12))
 
     # ---- bond topology (covalent radii), chunked over snapshots
     if ens.n_atoms > 1 and n:
@@ -454,12 +492,16 @@ def flags_partial(block: Any, span: BlockSpan, opts: Mapping[str, Any]) -> dict[
     # ---- assemble
     order = {k: i for i, k in enumerate(BROKEN_KINDS + WARNING_KINDS)}
     out_flags, out_reason, first_bad, flagged, n_flags = [], [], [], [], []
+    out_excess: list[str] = []
+    max_excess: list[float] = []
     for r in range(n_traj):
         ev = flags.events[r]
         kinds = sorted(ev, key=lambda k: (order.get(k, 99), k))
         out_flags.append(";".join(kinds))
         out_reason.append("; ".join(ev[k][1] for k in kinds))
+        out_excess.append(";".join(f"{ev[k][2]:.3g}" for k in kinds))
         broken = [k for k in kinds if k in th.broken_kinds]
+        max_excess.append(max((ev[k][2] for k in broken), default=np.nan))
         times = [ev[k][0] for k in broken if np.isfinite(ev[k][0])]
         first_bad.append(min(times) if times else np.nan)
         flagged.append(bool(broken))
@@ -473,6 +515,8 @@ def flags_partial(block: Any, span: BlockSpan, opts: Mapping[str, Any]) -> dict[
         "score": score,
         "unusual": unusual,
         "n_flags": np.asarray(n_flags, dtype=np.int64),
+        "excess": out_excess,
+        "max_excess": np.asarray(max_excess, dtype=np.float64),
         "max_drift": max_drift,
         "max_jump": max_jump,
         "max_hop_gap": max_hop_gap,
@@ -485,58 +529,3 @@ def flags_partial(block: Any, span: BlockSpan, opts: Mapping[str, Any]) -> dict[
     return {"table": table, "n_hops": n_hops,
             "n_finite": int(np.isfinite(ens.geometries).all(axis=(1, 2)).sum()),
             "e_mean": e_mean, "local_median": dt_med}
-
-
-def _topology(ens: Ensemble, th: OutlierThresholds, tix: np.ndarray, time: np.ndarray,
-              flags: _Flags, chunk_size: int) -> None:
-    from .geometry import covalent_radii_for
-
-    try:
-        rad = covalent_radii_for(ens.symbols)
-    except SchemaError:
-        return  # unknown elements: no covalent radii, no topology check
-    i, j = _k.pair_indices(ens.n_atoms)
-    cut = th.bond_scale * (rad[i] + rad[j])
-    finite = np.isfinite(ens.geometries).all(axis=(1, 2))
-    rows0, pos0 = _first_per_traj(finite, tix)
-    ref_row = np.full(len(ens.trajectories), -1)
-    ref_row[rows0] = pos0
-    r0_all = _k.pair_distances(ens.geometries[pos0], i, j) if len(pos0) else np.zeros((0, len(i)))
-    r0_of = np.full((len(ens.trajectories), len(i)), np.nan)
-    r0_of[rows0] = r0_all
-    bonded0 = r0_of < cut
-    sym = ens.symbols
-    n = ens.n_snapshots
-    any_mask = {"broken": np.zeros(n, bool), "formed": np.zeros(n, bool)}
-    first_pair = {"broken": np.zeros(n, np.int64), "formed": np.zeros(n, np.int64)}
-    dist = {"broken": np.zeros(n), "formed": np.zeros(n)}
-    for s in range(0, n, chunk_size):
-        sl = slice(s, min(n, s + chunk_size))
-        r = _k.pair_distances(ens.geometries[sl], i, j)
-        t_ix = tix[sl]
-        b0 = bonded0[t_ix]
-        r0 = r0_of[t_ix]
-        with np.errstate(invalid="ignore"):
-            masks = {"broken": b0 & ((r > cut * (1 + th.bond_margin)) | (r > th.bond_stretch * r0)),
-                     "formed": ~b0 & np.isfinite(r0) & (r < cut * (1 - th.bond_margin))}
-        for word, mask in masks.items():
-            any_mask[word][sl] = mask.any(axis=1)
-            p = np.argmax(mask, axis=1)
-            first_pair[word][sl] = p
-            dist[word][sl] = r[np.arange(len(p)), p]
-    # the change must persist for bond_persist_steps consecutive steps (or to the end)
-    k = max(1, int(th.bond_persist_steps))
-    last = np.r_[np.flatnonzero(tix[1:] != tix[:-1]), n - 1]
-    end_of = last[np.searchsorted(last, np.arange(n))]
-    for word, mask in any_mask.items():
-        c = np.r_[0, np.cumsum(mask)]
-        stop = np.minimum(np.arange(n) + k, end_of + 1)
-        ok = mask & (c[stop] - c[np.arange(n)] == stop - np.arange(n))
-        for traj_row, loc in zip(*_first_per_traj(ok, tix), strict=True):
-            pp = int(first_pair[word][loc])
-            a_, b_ = int(i[pp]), int(j[pp])
-            t = time[loc]
-            flags.add(int(traj_row), "topology_change" if word == "broken" else "bond_formed", t,
-                      f"bond {a_}-{b_} ({sym[a_]}-{sym[b_]}) {word} at {_fmt(t)} fs "
-                      f"({dist[word][loc]:.2f} Angstrom, {r0_of[traj_row, pp]:.2f} Angstrom "
-                      "at t=0)")
