@@ -30,7 +30,8 @@ from .model import TRPESModel
 from .pulses import FWHM_TO_SIGMA
 from .resolution import ProportionalResolution, resolution_from_params, stick_fwhm
 from .sampling import absorbing_state_of
-from .sticks import block_alive, block_sticks, channel_ratio, check_shifts, prepare_sticks
+from .gaps import time_fill
+from .sticks import block_alive, block_sticks, check_shifts, prepare_sticks
 from .weights import trajectory_weights
 
 __all__ = ["contributions", "region_intensity", "contributions_partial", "model_for_map"]
@@ -45,7 +46,7 @@ def _alive_partial(block: Any, span: BlockSpan, opts: dict[str, Any]) -> dict[st
                      absorbing_state=opts["absorbing_state"], absorbing=opts["absorbing"],
                      t_end=opts["t_end"])
     return {"alive": al.alive, "alive_channel": al.alive_channel,
-            "total_weight": np.array(float(w_traj.sum()))}
+            "alive_count": al.alive_count, "total_weight": np.array(float(w_traj.sum()))}
 
 
 def _model_for(ens: Ensemble | BlockSource, trpes_map: TRPESMap, model: TRPESModel | None,
@@ -76,13 +77,12 @@ def _model_for(ens: Ensemble | BlockSource, trpes_map: TRPESMap, model: TRPESMod
             "t_end": grid["t_known"]}
     tot = reduce(source, _alive_partial, add, args=(opts,), fields=TRPES_FIELDS,
                  client=client, scheduler=scheduler, desc="alive weights")
-    model = TRPESModel(sticks=None, probe=probe, decompose=None, labels=[],
-                       grid_start=grid["start"], time_step=grid["dt"], n_time=grid["n_time"],
-                       alive=tot["alive"], total_weight=float(tot["total_weight"]),
-                       t_known=grid["t_known"], tbin=None, tfrac=None,
-                       n_snapshots=source.n_snapshots)
-    model.channel_ratio = channel_ratio(tot["alive"], tot["alive_channel"])
-    return model
+    fill = time_fill(tot["alive"], tot["alive_channel"], tot["alive_count"])
+    return TRPESModel(sticks=None, probe=probe, decompose=None, labels=[],
+                      grid_start=grid["start"], time_step=grid["dt"], n_time=grid["n_time"],
+                      alive=tot["alive"] if fill is None else fill.alive,
+                      total_weight=float(tot["total_weight"]), t_known=grid["t_known"],
+                      tbin=None, tfrac=None, n_snapshots=source.n_snapshots, fill=fill)
 
 
 def _hat_integrals(times: np.ndarray, lo: float, hi: float, t_known: float) -> np.ndarray:
@@ -240,7 +240,7 @@ def _setup(ens: Ensemble | BlockSource, trpes_map: TRPESMap, model: TRPESModel |
                                                   source.n_cation),
                 "absorbing_state": absorbing_state_of(source),
                 "absorbing": extra["absorbing"], "t_end": model.t_known,
-                "ratio": model.channel_ratio}}
+                "fill": model.fill, "local_fill": isinstance(ens, Ensemble)}}
     return opts, ((e1, e2), (t1, t2))
 
 

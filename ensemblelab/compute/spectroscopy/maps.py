@@ -49,12 +49,12 @@ from .cross_sections import CrossSection, describe_cross_section, resolve_cross_
 from .model import TRPESModel, deposit
 from .pulses import GaussianPulse
 from .pulses import FWHM_TO_SIGMA
+from .gaps import time_fill
 from .resolution import Resolution, check_resolution, min_stick_fwhm
 from .sampling import ESS_WARN_FRACTION, absorbing_state_of, sampling_of
 from .sticks import (
     THRESHOLD_TAIL,
     block_sticks,
-    channel_ratio,
     check_absorbing,
     check_shifts,
     check_trpes_inputs,
@@ -132,7 +132,8 @@ COUNT_KEYS = ("n_missing_data", "n_absorbed", "n_absorbed_ionisable")
 def stick_options(opts: dict[str, Any]) -> dict[str, Any]:
     """The keywords of :func:`.sticks.block_sticks` beyond the grid, from reduction options."""
     return {k: opts.get(k) for k in ("ionisation_shifts", "absorbing_state", "t_end",
-                                      "ratio")} | {"absorbing": opts.get("absorbing", "zero")}
+                                      "fill")} | {"absorbing": opts.get("absorbing", "zero"),
+                                                  "local_fill": opts.get("local_fill", True)}
 
 
 def trpes_partial(block: Any, span: BlockSpan, opts: dict[str, Any]) -> dict[str, Any]:
@@ -226,17 +227,17 @@ def trpes_model(
             "e_lo": e_lo, "h": h, "n_fine": n_fine, "order": DEFAULT_ORDER,
             "keep_sticks": in_memory, "progress": progress and in_memory,
             "ionisation_shifts": shifts, "absorbing_state": absorbing_state,
-            "absorbing": absorbing, "t_end": grid["t_known"], "ratio": None}
+            "absorbing": absorbing, "t_end": grid["t_known"], "fill": None,
+            "local_fill": in_memory}
     fields = [*TRPES_FIELDS, *(("adt", "adt_cation") if decompose == "diabatic" else ())]
     total = reduce(source, trpes_partial, add, args=(opts,), fields=fields, client=client,
                    scheduler=scheduler, progress=progress, desc="TRPES blocks")
-    if not in_memory:
-        ratio = channel_ratio(total["alive"], total["alive_channel"])
-        if ratio is not None:  # missing data for some channels only: per-channel alive
-            opts["ratio"] = ratio
-            total = reduce(source, trpes_partial, add, args=(opts,), fields=fields,
-                           client=client, scheduler=scheduler, progress=progress,
-                           desc="TRPES blocks (per-channel alive)")
+    fill = time_fill(total["alive"], total["alive_channel"], total["alive_count"])
+    if fill is not None and not in_memory:  # missing data: a second pass with the whole
+        opts["fill"] = fill                  # source's per-channel alive weights
+        total = reduce(source, trpes_partial, add, args=(opts,), fields=fields,
+                       client=client, scheduler=scheduler, progress=progress,
+                       desc="TRPES blocks (missing data)")
     if total["hist_comp"] is None and decompose is not None:
         total["hist_comp"] = np.zeros((DEFAULT_ORDER, len(labels), grid["n_time"], n_fine))
     bs = total.get("sticks")
@@ -248,7 +249,9 @@ def trpes_model(
     model = TRPESModel(
         sticks=None if bs is None else bs.sticks, probe=probe, decompose=decompose,
         labels=labels, grid_start=grid["start"], time_step=grid["dt"], n_time=grid["n_time"],
-        alive=total["alive"], alive_count=total["alive_count"],
+        alive=total["alive"] if fill is None else fill.alive,
+        alive_count=(total["alive_count"] if fill is None or fill.alive_count is None
+                     else fill.alive_count),
         total_weight=float(total["total_weight"]), t_known=grid["t_known"],
         tbin=None if bs is None else bs.tbin, tfrac=None if bs is None else bs.tfrac,
         comp=None if bs is None else bs.comp, comp_src=None if bs is None else bs.comp_src,
@@ -261,8 +264,7 @@ def trpes_model(
               "ionisation_shifts": None if shifts is None else shifts.tolist(),
               "absorbing_state": absorbing_state, "absorbing": absorbing, **counts},
         order=DEFAULT_ORDER, bins_per_fwhm=DEFAULT_BINS_PER_FWHM, n_snapshots=n,
-        channel_ratio=opts["ratio"] if opts["ratio"] is not None else (
-            channel_ratio(total["alive"], total["alive_channel"])),
+        fill=fill,
     )
     model.set_moments(e_lo=e_lo, h=h, n_fine=n_fine, hist=total["hist"],
                       hist_comp=total["hist_comp"] if decompose is not None else None)

@@ -92,9 +92,9 @@ class TRPESModel:
         Time-grid index and fraction of every stick (None without sticks / on points).
     n_snapshots : int
         Snapshots of the ensemble the model was made from.
-    channel_ratio : ndarray, shape (n_time, n_cation), or None
-        Alive weight over each channel's own alive weight (snapshots with data for it),
-        when some snapshots lack data for some channels only; None otherwise.
+    fill : TimeFill or None
+        How missing electronic data were handled (per-channel alive weights, gaps
+        filled; :mod:`.gaps`); None when every snapshot had data.
     """
 
     sticks: StickSpectrum | None
@@ -117,7 +117,7 @@ class TRPESModel:
     bins_per_fwhm: float = DEFAULT_BINS_PER_FWHM
     alive_count: np.ndarray | None = None  # trajectories alive per grid time (unweighted)
     n_snapshots: int = 0
-    channel_ratio: np.ndarray | None = None  # (n_time, n_cation) alive / channel alive
+    fill: Any = None  # gaps.TimeFill of the missing data, or None
     _cache: dict[str, Any] = field(default_factory=dict)
 
     def set_moments(self, *, e_lo: float, h: float, n_fine: int, hist: np.ndarray,

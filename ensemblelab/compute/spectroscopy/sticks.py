@@ -31,11 +31,12 @@ from ._checks import (
     time_bins,
 )
 from .cross_sections import CrossSection, describe_cross_section, resolve_cross_section
+from .gaps import TimeFill, time_fill
 from .model import TRPESModel
 from .pulses import FWHM_TO_SIGMA, GaussianPulse
 from .weights import trajectory_weights
 
-__all__ = ["BlockSticks", "BlockAlive", "block_sticks", "block_alive", "channel_ratio",
+__all__ = ["BlockSticks", "BlockAlive", "block_sticks", "block_alive",
            "prepare_sticks", "check_trpes_inputs", "check_shifts", "energy_range",
            "THRESHOLD_TAIL", "ABSORBING_MODES", "check_absorbing"]
 
@@ -68,6 +69,8 @@ class BlockSticks(NamedTuple):
         among them whose last snapshot the probe can ionise).
     weight_sq : float
         Sum of the squared trajectory weights (for the Kish effective size).
+    fill : TimeFill or None
+        The missing-data rescaling applied (its ``alive`` is the map's normaliser).
     """
 
     sticks: StickSpectrum
@@ -82,6 +85,7 @@ class BlockSticks(NamedTuple):
     alive_channel: np.ndarray | None = None
     counts: dict[str, int] | None = None
     weight_sq: float = 0.0
+    fill: TimeFill | None = None
 
 
 def check_trpes_inputs(source: Any, *, probe: Any, pump: Any, decompose: Any
@@ -270,27 +274,13 @@ def block_alive(block: Any, *, w_traj: np.ndarray, probe: GaussianPulse, start: 
                       ext_bin=ext_bin, ext_first=ext_first, counts=counts)
 
 
-def channel_ratio(alive: np.ndarray, alive_channel: np.ndarray) -> np.ndarray | None:
-    """``alive / alive_channel`` per (grid time, channel), or None when all are 1.
-
-    Multiplying a channel's sticks by it turns the map's division by ``alive`` into a
-    division by that channel's own alive weight (snapshots with its data only).
-    """
-    if np.array_equal(alive_channel, np.repeat(alive[:, None], alive_channel.shape[1], 1)):
-        return None
-    with np.errstate(divide="ignore", invalid="ignore"):
-        r = np.where(alive_channel > 0, alive[:, None] / np.where(alive_channel > 0,
-                                                                  alive_channel, 1.0), 0.0)
-    return r
-
-
 def block_sticks(block: Any, *, probe: GaussianPulse, cross_section: CrossSection,
                  w_traj: np.ndarray, weights_used: str, decompose: str | None,
                  start: float, dt: float, n_time: int,
                  ionisation_shifts: np.ndarray | None = None,
                  absorbing_state: int | None = None, absorbing: str = "zero",
-                 t_end: float | None = None, ratio: np.ndarray | None = None,
-                 ) -> BlockSticks:
+                 t_end: float | None = None, fill: TimeFill | None = None,
+                 local_fill: bool = True) -> BlockSticks:
     """The sticks of a block (an Ensemble or a chunk of one) on the time grid.
 
     Parameters
@@ -318,8 +308,10 @@ def block_sticks(block: Any, *, probe: GaussianPulse, cross_section: CrossSectio
         See :func:`block_alive`; with ``absorbing == "carry"`` the last snapshot's
         sticks of a trajectory stopped in the absorbing state are repeated at every
         later grid time.
-    ratio : ndarray, shape (n_time, n_cation), optional
-        :func:`channel_ratio` of the whole source (default: of this block).
+    fill : TimeFill, optional
+        :func:`.gaps.time_fill` of the whole source (per-channel alive weights and
+        gaps in the data); without it, that of this block when `local_fill` (an
+        in-memory ensemble is one block), else none.
 
     Returns
     -------
@@ -369,18 +361,13 @@ def block_sticks(block: Any, *, probe: GaussianPulse, cross_section: CrossSectio
     weight = w_snap[snap] * sigma
     if share_all is not None:
         weight = weight * share_all
-    if ratio is None:
-        ratio = channel_ratio(al.alive, al.alive_channel)
-    if ratio is not None:  # per-channel alive weight (missing data), exact at both bins
-        r0 = ratio[tbin, chan]
-        if tfrac is None:
-            weight = weight * r0
-        else:
-            r1 = ratio[np.minimum(tbin + 1, n_time - 1), chan]
-            mix = (1.0 - tfrac) * r0 + tfrac * r1
-            with np.errstate(divide="ignore", invalid="ignore"):
-                tfrac = np.where(mix > 0, tfrac * r1 / np.where(mix > 0, mix, 1.0), 0.0)
-            weight = weight * mix
+    if fill is None and local_fill:
+        fill = time_fill(al.alive, al.alive_channel, al.alive_count)
+    if fill is not None:  # per-channel alive weights and gaps (missing data)
+        src, tbin, factor = fill.expand(tbin, tfrac, chan)
+        snap, chan, e, ctime = snap[src], chan[src], e[src], ctime[src]
+        weight = weight[src] * factor
+        tfrac = None
     columns = {"snapshot": snap, "traj": block.snapshots["traj"].to_numpy()[snap],
                "time": ctime, "state": active[snap], "channel": chan,
                "energy": e, "weight": weight}
@@ -413,7 +400,7 @@ def block_sticks(block: Any, *, probe: GaussianPulse, cross_section: CrossSectio
                        comp_src=comp_src, comp_weight=comp_weight, alive=al.alive,
                        alive_count=al.alive_count, total_weight=float(w_traj.sum()),
                        alive_channel=al.alive_channel, counts=al.counts,
-                       weight_sq=float(np.sum(w_traj * w_traj)))
+                       weight_sq=float(np.sum(w_traj * w_traj)), fill=fill)
 
 
 def prepare_sticks(
@@ -489,7 +476,9 @@ def prepare_sticks(
     n = ens.n_snapshots
     return TRPESModel(
         sticks=bs.sticks, probe=probe, decompose=decompose, labels=labels, grid_start=start,
-        time_step=dt, n_time=n_time, alive=bs.alive, alive_count=bs.alive_count,
+        time_step=dt, n_time=n_time, alive=bs.alive if bs.fill is None else bs.fill.alive,
+        alive_count=(bs.alive_count if bs.fill is None or bs.fill.alive_count is None
+                     else bs.fill.alive_count),
         total_weight=bs.total_weight, t_known=t_end,
         tbin=bs.tbin, tfrac=bs.tfrac, comp=bs.comp, comp_src=bs.comp_src,
         comp_weight=bs.comp_weight,
