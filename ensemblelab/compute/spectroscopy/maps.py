@@ -178,7 +178,7 @@ def trpes_model(
     *,
     probe: GaussianPulse,
     pump: GaussianPulse | None = None,
-    resolution: float = 0.0,
+    resolution: Resolution = 0.0,
     cross_section: str | CrossSection | Any = "dyson",
     weights: str = "auto",
     decompose: str | None = None,

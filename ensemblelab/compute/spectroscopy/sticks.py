@@ -243,7 +243,7 @@ def block_alive(block: Any, *, w_traj: np.ndarray, probe: GaussianPulse, start: 
     counts = {"n_missing_data": int(np.count_nonzero(~has.all(axis=1))),
               "n_absorbed": 0, "n_absorbed_ionisable": 0}
     absorbed = ext_bin = np.zeros(0, dtype=np.int64)
-    ext_first = np.zeros(0)
+    ext_first: np.ndarray = np.zeros(0)
     if absorbing_state is not None and absorbing != "end" and t_end is not None and n:
         last = _last_rows(block, time)
         last = last[last >= 0]
