@@ -244,8 +244,9 @@ class TRPESMap:
 class StickSpectrum:
     """Raw photoionisation sticks of an ensemble (never resampled).
 
-    One entry per (snapshot, open ionisation channel). Closed channels
-    (kinetic energy <= 0) are not stored.
+    One entry per (snapshot, ionisation channel the probe spectrum reaches). A stick
+    may sit slightly below 0 eV (the tail of the probe spectrum above threshold); the
+    map keeps only its part above zero kinetic energy.
 
     Attributes
     ----------

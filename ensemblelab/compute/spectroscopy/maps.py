@@ -3,8 +3,10 @@
 Method (J. Chem. Phys. 2004, "Classical doorway-window approximation for time-resolved
 pump-probe spectra"):
 
-* **Window.** The sticks of :mod:`.sticks`: one per snapshot and open cation channel
-  at ``E_kin = n h nu_probe - IP``, weight ``w_traj * sigma``.
+* **Window.** The sticks of :mod:`.sticks`: one per snapshot and cation channel the
+  probe spectrum reaches, at ``E_kin = n h nu_probe - IP``, weight ``w_traj * sigma``;
+  the map keeps each line's part above zero kinetic energy (area: the erf open
+  fraction). Missing data and gaps: :mod:`.gaps`; absorbing state: :mod:`.sticks`.
 * **Ensemble average.** Snapshot times are put on a uniform time grid (step = the
   trajectories' median output step, or ``time_step``). Snapshots on grid points go to
   that point; otherwise a snapshot is split linearly between its two neighbouring grid

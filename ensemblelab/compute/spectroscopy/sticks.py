@@ -1,10 +1,15 @@
 """Photoelectron sticks of a block of trajectories: the window of the doorway-window picture.
 
-Each snapshot on active neutral state ``a`` and each cation state ``k`` with
-``E_kin = n h nu_probe - IP_ak > 0`` gives a stick at ``E_kin`` with weight
-``w_traj * sigma_ak`` (cross-section model, default the squared Dyson norm); closed
-channels give nothing (J. Chem. Phys. 2004, "Classical doorway-window approximation
-for time-resolved pump-probe spectra"). :func:`block_sticks` is the one place these
+Each snapshot on active neutral state ``a`` and each cation state ``k`` gives a stick at
+the excess energy ``E_kin = n h nu_probe - IP_ak`` with weight ``w_traj * sigma_ak``
+(cross-section model, default the squared Dyson norm; J. Chem. Phys. 2004, "Classical
+doorway-window approximation for time-resolved pump-probe spectra"). A channel gives a
+stick as long as the probe's absorbed-energy spectrum reaches above its ionisation
+energy (excess above ``-THRESHOLD_TAIL`` standard deviations): the map keeps the part of
+the stick's line above zero kinetic energy, whose area is the open fraction (an erf), so
+the map is continuous in the ionisation energy. Channels without data (NaN) give no
+stick and leave the alive weight (:mod:`.gaps`); trajectories stopped in the absorbing
+state stay in it (:func:`block_alive`). :func:`block_sticks` is the one place these
 formulas live: :func:`prepare_sticks` (an in-memory ensemble), the map reduction of
 :mod:`.maps` and the contributions of :mod:`.contributions` (every block of a chunked
 store) all call it.

@@ -270,7 +270,8 @@ def ground_state_ionisation_fraction(ens: Any, *, probe: GaussianPulse) -> float
     """Weighted fraction of initial geometries at which the probe ionises the ground state.
 
     At the first snapshot of each trajectory (its initial, Wigner-sampled geometry) the
-    ground state S0 is ionisable when ``n h-nu > E+_k - E_0`` for some cation state k.
+    ground state S0 is ionisable when ``n h-nu >= E+_k - E_0`` for some cation state k
+    (at least half of the probe spectrum above the ionisation energy).
     A non-zero fraction means a pump-on minus pump-off experiment also sees a
     ground-state depletion (bleach) term, absent from the doorway-window map.
 
@@ -291,7 +292,9 @@ def ground_state_ionisation_fraction(ens: Any, *, probe: GaussianPulse) -> float
     traj = ens.snapshots["traj"].to_numpy()
     first = np.r_[0, np.flatnonzero(traj[1:] != traj[:-1]) + 1]
     ip0 = ens.cation_energies[first] - ens.energies[first, 0][:, None]
-    open_ = np.any(probe.total_energy - ip0 > 0, axis=1)
+    with np.errstate(invalid="ignore"):  # NaN (missing data) is not ionisable
+        # open: at least half of the probe's absorbed-energy spectrum lies above the IP
+        open_ = np.any(probe.open_fraction(probe.total_energy - ip0) >= 0.5, axis=1)
     w = ens.trajectories["weight"].to_numpy()
     total = float(w.sum())
     return float(w[open_].sum() / total) if total > 0 else 0.0
