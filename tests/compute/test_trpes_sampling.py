@@ -19,7 +19,7 @@ from ensemblelab import load, save
 from ensemblelab.compute.dynamics.initial import doorway_table, select_initial_conditions
 from ensemblelab.compute.spectroscopy import compute_trpes, doorway_factor
 from ensemblelab.compute.spectroscopy.pulses import GaussianPulse
-from ensemblelab.compute.spectroscopy.sampling import absorbing_state_of, kish_effective_size
+from ensemblelab.compute.spectroscopy.sampling import ensemble_absorbing_state, kish_effective_size
 from ensemblelab.errors import EnsembleWarning, SchemaError
 from ensemblelab.io._xyz_write import write_extxyz
 from ensemblelab.testing import make_toy_ensemble
@@ -107,7 +107,7 @@ def test_sampling_and_absorbing_state_round_trip_through_open_formats(tmp_path):
                                 "absorbing_state": None})
     back = load(save(ens, tmp_path / "a.ens"))
     assert back.metadata["sampling"] == "doorway-selected"
-    assert absorbing_state_of(back) is None
+    assert ensemble_absorbing_state(back) is None
     back2 = load(write_extxyz(ens, tmp_path / "xyz"))
     assert back2.metadata["sampling"] == "doorway-selected"
     assert "absorbing_state" in back2.metadata and back2.metadata["absorbing_state"] is None

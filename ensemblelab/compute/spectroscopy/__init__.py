@@ -42,7 +42,7 @@ from .maps import compute_trpes
 from .model import TRPESModel
 from .pulses import GaussianPulse, cross_correlation, cross_correlation_fwhm
 from .resolution import ProportionalResolution
-from .sampling import absorbing_state_of, kish_effective_size, sampling_of
+from .sampling import ensemble_absorbing_state, kish_effective_size, sampling_of
 from .sticks import prepare_sticks
 from .weights import (
     doorway_factor,
@@ -73,7 +73,7 @@ __all__ = [
     "AnionThresholdLaw",
     "ProportionalResolution",
     "sampling_of",
-    "absorbing_state_of",
+    "ensemble_absorbing_state",
     "kish_effective_size",
     "resolve_cross_section",
     "cross_section_from_description",

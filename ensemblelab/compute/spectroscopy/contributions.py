@@ -29,7 +29,7 @@ from .maps import TRPES_FIELDS, time_grid
 from .model import TRPESModel
 from .pulses import FWHM_TO_SIGMA
 from .resolution import ProportionalResolution, resolution_from_params, stick_fwhm
-from .sampling import absorbing_state_of
+from .sampling import ensemble_absorbing_state
 from .gaps import time_fill
 from .sticks import block_alive, block_sticks, check_shifts, prepare_sticks
 from .weights import trajectory_weights
@@ -73,7 +73,7 @@ def _model_for(ens: Ensemble | BlockSource, trpes_map: TRPESMap, model: TRPESMod
     grid = time_grid(source, time_step, client=client, scheduler=scheduler)
     opts = {"weights": weights, "pump": pump, "probe": probe, **grid,
             "ionisation_shifts": check_shifts(extra["ionisation_shifts"], source.n_cation),
-            "absorbing_state": absorbing_state_of(source), "absorbing": extra["absorbing"],
+            "absorbing_state": ensemble_absorbing_state(source), "absorbing": extra["absorbing"],
             "t_end": grid["t_known"]}
     tot = reduce(source, _alive_partial, add, args=(opts,), fields=TRPES_FIELDS,
                  client=client, scheduler=scheduler, desc="alive weights")
@@ -238,7 +238,8 @@ def _setup(ens: Ensemble | BlockSource, trpes_map: TRPESMap, model: TRPESModel |
             "stick_options": {
                 "ionisation_shifts": check_shifts(extra["ionisation_shifts"],
                                                   source.n_cation),
-                "absorbing_state": absorbing_state_of(source),
+                "absorbing_state": ensemble_absorbing_state(
+                    ens if isinstance(ens, Ensemble) else source),
                 "absorbing": extra["absorbing"], "t_end": model.t_known,
                 "fill": model.fill, "local_fill": isinstance(ens, Ensemble)}}
     return opts, ((e1, e2), (t1, t2))

@@ -53,7 +53,7 @@ from .pulses import GaussianPulse
 from .pulses import FWHM_TO_SIGMA
 from .gaps import time_fill
 from .resolution import Resolution, check_resolution, min_stick_fwhm
-from .sampling import ESS_WARN_FRACTION, absorbing_state_of, sampling_of
+from .sampling import ESS_WARN_FRACTION, ensemble_absorbing_state, sampling_of
 from .sticks import (
     THRESHOLD_TAIL,
     block_sticks,
@@ -223,7 +223,7 @@ def trpes_model(
     n_fine = int(math.floor((e_hi - e_lo) / h + 0.5)) + 2
     labels = component_labels(source, decompose)
     in_memory = isinstance(ens, Ensemble)
-    absorbing_state = absorbing_state_of(source)
+    absorbing_state = ensemble_absorbing_state(ens if in_memory else source)
     opts = {"probe": probe, "pump": pump, "cross_section": cs, "weights": kind,
             "weights_used": used, "decompose": decompose, "n_comp": len(labels), **grid,
             "e_lo": e_lo, "h": h, "n_fine": n_fine, "order": DEFAULT_ORDER,

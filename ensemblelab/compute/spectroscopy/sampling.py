@@ -31,7 +31,7 @@ import numpy.typing as npt
 
 from ...errors import SchemaError
 
-__all__ = ["SAMPLING_KINDS", "sampling_of", "absorbing_state_of", "kish_effective_size",
+__all__ = ["SAMPLING_KINDS", "sampling_of", "ensemble_absorbing_state", "kish_effective_size",
            "ESS_WARN_FRACTION"]
 
 #: the values of the ``sampling`` metadata key
@@ -73,7 +73,7 @@ def sampling_of(ens: Any) -> str | None:
     return str(value)
 
 
-def absorbing_state_of(ens: Any) -> int | None:
+def ensemble_absorbing_state(ens: Any) -> int | None:
     """The absorbing neutral state of an ensemble: its ``absorbing_state`` property if it has
     one, else ``metadata["absorbing_state"]`` (default 0, the ground state; None: none).
 
@@ -92,9 +92,12 @@ def absorbing_state_of(ens: Any) -> int | None:
         value = meta.get("absorbing_state", 0)
     if value is None:
         return None
-    if isinstance(value, bool) or not isinstance(value, int | np.integer) or int(value) < 0:
-        raise SchemaError(f"ens.metadata['absorbing_state'] must be a state index >= 0 or "
-                          f"None; got {value!r}.")
+    n_states = getattr(ens, "n_states", None)
+    if isinstance(value, bool) or not isinstance(value, int | np.integer) or int(value) < 0 \
+            or (n_states is not None and int(value) >= n_states):
+        raise SchemaError(f"ens.metadata['absorbing_state'] must be a neutral state index in "
+                          f"[0, {n_states}) or None; got {value!r}. Hint: None switches the "
+                          "absorbing state off.")
     return int(value)
 
 

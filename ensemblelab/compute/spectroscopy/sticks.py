@@ -454,7 +454,7 @@ def prepare_sticks(
         Holding the sticks; :meth:`TRPESModel.broaden` makes maps.
     """
     from ..engine import as_source, time_statistics
-    from .sampling import absorbing_state_of, kish_effective_size
+    from .sampling import ensemble_absorbing_state, kish_effective_size
 
     if not isinstance(ens, Ensemble):
         raise SchemaError(f"ens must be an Ensemble; got {type(ens).__name__}.")
@@ -476,7 +476,7 @@ def prepare_sticks(
     bs = block_sticks(ens, probe=probe, cross_section=cs, w_traj=w_traj,
                       weights_used=weights_used, decompose=decompose, start=start, dt=dt,
                       n_time=n_time, ionisation_shifts=shifts,
-                      absorbing_state=absorbing_state_of(ens), absorbing=absorbing,
+                      absorbing_state=ensemble_absorbing_state(ens), absorbing=absorbing,
                       t_end=t_end)
     n = ens.n_snapshots
     return TRPESModel(
@@ -493,7 +493,7 @@ def prepare_sticks(
               "n_states": ens.n_states, "n_cation": ens.n_cation,
               "effective_sample_size": kish_effective_size(w_traj),
               "ionisation_shifts": None if shifts is None else shifts.tolist(),
-              "absorbing_state": absorbing_state_of(ens), "absorbing": absorbing,
+              "absorbing_state": ensemble_absorbing_state(ens), "absorbing": absorbing,
               **(bs.counts or {})},
         order=order, bins_per_fwhm=float(bins_per_fwhm), n_snapshots=n,
     )
