@@ -69,6 +69,26 @@ def test_doorway_selected_ensemble_is_not_weighted_by_the_pump_again():
     assert "effective sample size 30.0 of 30" in repr(auto)
 
 
+def test_demo_recorded_as_doorway_selected_gets_uniform_weights_by_default():
+    # the invented demo is selected by doorway rejection: recorded as such, the default map
+    # counts each trajectory once (Kish size = 80); weighting it by the pump again lowers the
+    # Kish size and moves the map by a few % of its peak (computed independently (not
+    # published): 68.0 and 3.7 %)
+    demo = pytest.importorskip("ensemblelab.demo")
+    ens = _quiet(demo.make_ensemble)
+    ens = ens.replace(metadata={**ens.metadata, "sampling": "doorway-selected"})
+    kw = dict(probe=GaussianPulse(**ens.metadata["suggested_probe"]),
+              pump=GaussianPulse(**ens.metadata["suggested_pump"]),
+              kinetic_energies=np.linspace(0.0, 3.0, 151), delays=np.arange(-100.0, 500.0, 5.0),
+              progress=False)
+    auto = _quiet(compute_trpes, ens, **kw)
+    twice = _quiet(compute_trpes, ens, weights="doorway", **kw)
+    assert auto.params["weights"] == "uniform"
+    assert auto.effective_sample_size == pytest.approx(ens.n_trajectories, rel=1e-12)
+    assert twice.effective_sample_size < 0.9 * ens.n_trajectories
+    assert np.abs(auto.intensity - twice.intensity).max() > 0.01 * auto.intensity.max()
+
+
 def test_uniform_and_weighted_sampling_and_unknown_sampling_warns():
     base = make_toy_ensemble(20, seed=5, t_max=80.0)
     uni = _with_excitation(base, sampling="uniform")
