@@ -25,12 +25,12 @@ from ...errors import SchemaError
 from ..engine import BlockSource, BlockSpan, add, as_source, reduce
 from ._checks import check_ranges, settings_from_params, stick_settings_from_params
 from .cross_sections import resolve_cross_section
+from .gaps import time_fill
 from .maps import TRPES_FIELDS, time_grid
 from .model import TRPESModel
 from .pulses import FWHM_TO_SIGMA
 from .resolution import ProportionalResolution, resolution_from_params, stick_fwhm
 from .sampling import ensemble_absorbing_state
-from .gaps import time_fill
 from .sticks import block_alive, block_sticks, check_shifts, prepare_sticks
 from .weights import trajectory_weights
 

@@ -42,16 +42,14 @@ from ._checks import (
     DEFAULT_BINS_PER_FWHM,
     DEFAULT_ORDER,
     check_grid,
-    check_nonneg,
     check_time_step,
     component_labels,
     grid_from_range,
 )
 from .cross_sections import CrossSection, describe_cross_section, resolve_cross_section
-from .model import TRPESModel, deposit
-from .pulses import GaussianPulse
-from .pulses import FWHM_TO_SIGMA
 from .gaps import time_fill
+from .model import TRPESModel, deposit
+from .pulses import FWHM_TO_SIGMA, GaussianPulse
 from .resolution import Resolution, check_resolution, min_stick_fwhm
 from .sampling import ESS_WARN_FRACTION, ensemble_absorbing_state, sampling_of
 from .sticks import (
