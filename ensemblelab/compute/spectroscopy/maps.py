@@ -404,7 +404,8 @@ def compute_trpes(
     ``(1/2)[1 + erf((n h nu - IP) / (sqrt(2) sigma_n))]``
     (:meth:`~.pulses.GaussianPulse.open_fraction`): continuous in the ionisation energy,
     nothing below zero kinetic energy. (With an instrument resolution the cut at zero is
-    applied to the broadened line.)
+    applied to the broadened line, an approximation within about one resolution width of
+    threshold: strictly, the resolution acts on the already truncated distribution.)
 
     Missing data: a snapshot whose cation energy, active-state energy or Dyson norm of a
     channel is NaN leaves that channel's signal *and* alive weight (not computed is not
