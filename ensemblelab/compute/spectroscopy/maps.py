@@ -277,8 +277,8 @@ def _warn_map(ess: float, n_traj: int, counts: dict[str, int], n_snap: int,
         warnings.warn(
             f"compute_trpes: the trajectory weights have a Kish effective sample size of "
             f"{ess:.1f} for {n_traj} trajectories (below {ESS_WARN_FRACTION:.0%}): a few "
-            "trajectories dominate the map and its noise is that of ~{:.0f} trajectories. "
-            "Hint: check weights= and ens.metadata['sampling'].".format(ess),
+            f"trajectories dominate the map and its noise is that of ~{ess:.0f} "
+            "trajectories. Hint: check weights= and ens.metadata['sampling'].",
             EnsembleWarning, stacklevel=4)
     if counts.get("n_missing_data"):
         warnings.warn(
