@@ -448,6 +448,12 @@ def build_report(
                          else "as chosen")
                 pump_text = (f"pump {pulses['pump_photon_energy']:g} eV, FWHM {q_fwhm:g} fs"
                              if pump is not None else "no pump (uniform weights)")
+                ess = trpes.effective_sample_size
+                pump_text += html.escape(
+                    f"; trajectory weights '{trpes.params.get('weights')}' (sampling: "
+                    f"{trpes.params.get('sampling') or 'not recorded'}), Kish effective "
+                    f"sample size {ess:.1f} of {trpes.params.get('n_trajectories')}"
+                    if ess is not None else "")
                 return (
                     "<h2>Time-resolved photoelectron spectrum</h2>"
                     f"<p>Probe {hv:g} eV, FWHM {p_fwhm:g} fs; {pump_text}: "

@@ -158,6 +158,20 @@ class TRPESMap:
         """Number of kinetic energies."""
         return self.kinetic_energies.size
 
+    @property
+    def effective_sample_size(self) -> float | None:
+        """Kish effective sample size ``(sum w)^2 / sum w^2`` of the trajectory weights
+        behind the map (``params["effective_sample_size"]``; None if not recorded)."""
+        v = self.params.get("effective_sample_size")
+        return None if v is None else float(v)
+
+    @property
+    def n_missing_data(self) -> int | None:
+        """Snapshots that lacked electronic data (NaN) for some cation channel and were
+        left out of that channel (``params["n_missing_data"]``; None if not recorded)."""
+        v = self.params.get("n_missing_data")
+        return None if v is None else int(v)
+
     def component_sum(self) -> np.ndarray:
         """Sum of all components, shape (n_delays, n_energies) (zeros if there are none)."""
         total = np.zeros(self.shape)
@@ -207,13 +221,21 @@ class TRPESMap:
         return out
 
     # ------------------------------------------------------------------ display
+    def _weights_note(self) -> str:
+        ess, n = self.effective_sample_size, self.params.get("n_trajectories")
+        out = "" if ess is None else (
+            f"; effective sample size {ess:.1f}" + (f" of {int(n)} trajectories" if n else ""))
+        if self.n_missing_data:
+            out += f"; {self.n_missing_data} snapshots without data"
+        return out
+
     def __repr__(self) -> str:
         comps = ", ".join(self.components) or "-"
         return (
             f"<ensemblelab.TRPESMap {self.n_delays} delays x {self.n_energies} energies; "
             f"delay {self.delays[0]:.6g}..{self.delays[-1]:.6g} fs, energy "
             f"{self.kinetic_energies[0]:.6g}..{self.kinetic_energies[-1]:.6g} eV; components: "
-            f"{comps}>"
+            f"{comps}{self._weights_note()}>"
             if self.n_delays and self.n_energies else "<ensemblelab.TRPESMap (empty)>"
         )
 
@@ -222,8 +244,9 @@ class TRPESMap:
 class StickSpectrum:
     """Raw photoionisation sticks of an ensemble (never resampled).
 
-    One entry per (snapshot, open ionisation channel). Closed channels
-    (kinetic energy <= 0) are not stored.
+    One entry per (snapshot, ionisation channel the probe spectrum reaches). A stick
+    may sit slightly below 0 eV (the tail of the probe spectrum above threshold); the
+    map keeps only its part above zero kinetic energy.
 
     Attributes
     ----------

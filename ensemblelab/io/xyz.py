@@ -72,6 +72,10 @@ oscillator strengths, ``tdm_<i>_<x|y|z>`` transition dipoles (e*bohr), and any
 user columns. ``metadata.json`` holds the Ensemble metadata, encoded as in the
 native store (see :mod:`ensemblelab.io.store`); its ``sources`` are kept as the
 history and the files read now are appended.
+Keys the analyses read: ``sampling`` (``"doorway-selected"``, ``"weighted"`` or
+``"uniform"``: how the initial conditions relate to the pump) and ``absorbing_state``
+(the neutral state trajectories were stopped in; default 0, ``null`` for none); see
+:mod:`ensemblelab.compute.spectroscopy.sampling`.
 
 A user column whose values all look like integers is read as int64, numbers as
 float64, ``True``/``False`` as bool, anything else as text (quote text with

@@ -75,7 +75,9 @@ def test_threshold_law_is_anion_only():
 
 def test_resolve_names():
     assert isinstance(resolve_cross_section("dyson"), DysonNorm)
-    assert isinstance(resolve_cross_section("hydrogenic"), HydrogenicPWA)
+    # neutrals: Coulomb waves (finite at threshold); the plane-wave form is for anions
+    assert not isinstance(resolve_cross_section("hydrogenic"), HydrogenicPWA)
+    assert isinstance(resolve_cross_section("anion-hydrogenic"), HydrogenicPWA)
     with pytest.raises(SchemaError, match="'cross_section' parameter"):
         resolve_cross_section("bspline")
 

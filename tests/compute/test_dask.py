@@ -68,9 +68,11 @@ def test_lazy_trpes_equals_in_memory(pair, by):
     assert np.abs(ref.intensity).max() > 0  # a real map, not zeros on both sides
 
 
-@pytest.mark.parametrize("photon", [4.0, 4.4])
+@pytest.mark.parametrize("photon", [4.0, 4.2])
 def test_lazy_trpes_with_partly_closed_channels(pair, photon):
-    # the probe opens the S2 channel (IP 3.5 eV) but not the S1 one (IP 4.5 eV): the chunks
+    # the probe opens the S2 channel (IP 3.5 eV) but not the S1 one (IP 4.5 eV, at least
+    # 0.3 eV = 11 probe standard deviations above, where the probe spectrum's tail gives no
+    # sticks; computed independently (not published)): the chunks
     # are partly open and the stick energy range is read from the chunks, not the manifest
     ens, lazy = pair
     kw = {**KW, "probe": GaussianPulse(photon_energy=photon, fwhm=30.0)}

@@ -45,9 +45,10 @@ def test_trpes_single_stick_window_values():
 
 
 def test_trpes_closed_channel_and_truncation_below_zero():
-    # IP above the photon energy: closed channel, no signal at all (doorway-window worked value)
+    # IP 0.5 eV (19 probe standard deviations) above the photon energy: closed channel, no
+    # signal at all (Gaussian tail below 1e-15 of the area; computed independently)
     e = np.linspace(-0.5, 2.0, 251)
-    closed = compute_trpes(_one_snapshot(ip=5.2), probe=PROBE, kinetic_energies=e, delays=[0.0],
+    closed = compute_trpes(_one_snapshot(ip=5.5), probe=PROBE, kinetic_energies=e, delays=[0.0],
                            convolve=False, progress=False)
     assert np.all(closed.intensity == 0.0)
     # open just above threshold: no tail below 0 eV, the part of the area below 0 is lost
@@ -89,7 +90,7 @@ def test_trpes_doorway_weights_from_ensemble():
     ens = ens.replace(excitation_energies=exc, transition_dipoles=mu,
                       trajectories=ens.trajectories.assign(initial_state=[1, 2, 1, 2]))
     pump = GaussianPulse(photon_energy=4.1, fwhm=20.0)
-    model = prepare_sticks(ens, probe=PROBE, pump=pump, progress=False)
+    model = prepare_sticks(ens, probe=PROBE, pump=pump, weights="doorway", progress=False)
     w_expect = doorway_factor([4.0, 4.3, 4.0, 4.3], pump=pump,
                               transition_dipole=[1.0, 0.25, 1.0, 0.25])
     assert model.total_weight == pytest.approx(w_expect.sum(), rel=1e-12)
@@ -244,7 +245,7 @@ def test_trpes_permuting_trajectories_changes_nothing():
 def test_trpes_alive_normalisation_and_initial():
     ens = random_ensemble(6, seed=6, ragged=True)
     kw = dict(probe=PROBE, kinetic_energies=np.linspace(0, 4, 81), delays=np.arange(0, 80, 2.0),
-              convolve=False, progress=False, weights="uniform")
+              convolve=False, progress=False, weights="uniform", absorbing="end")
     alive = compute_trpes(ens, normalise="alive", **kw)
     initial = compute_trpes(ens, normalise="initial", **kw)
     # alive count per delay = number of trajectories with a snapshot there

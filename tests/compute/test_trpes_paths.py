@@ -77,7 +77,8 @@ def test_alive_count_is_unweighted_and_alive_is_the_weight_sum():
     ens = _rebuild(ens, np.arange(7), trajectories=tr)
     delays = np.arange(0.0, 80.0, 2.0)  # the ensemble's own time grid
     m = compute_trpes(ens, probe=PROBE, weights="w", convolve=False, progress=False,
-                      kinetic_energies=GRID["kinetic_energies"], delays=delays)
+                      kinetic_energies=GRID["kinetic_energies"], delays=delays,
+                      absorbing="end")  # every trajectory ends at its last snapshot
     t_end = ens.snapshots.groupby("traj")["time"].max().to_numpy()
     alive_mask = t_end[None, :] >= delays[:, None] - 1e-9  # (n_delays, n_traj)
     np.testing.assert_array_equal(m.alive_count, alive_mask.sum(axis=1))
@@ -116,9 +117,9 @@ def test_doorway_weights_from_oscillator_strengths_match_dipoles():
     mu = rng.uniform(0.3, 1.5, 6)  # e*bohr
     f = (2.0 / 3.0) * (de / HARTREE_EV) * mu**2
     a = compute_trpes(_with_excitation(ens, de=de, dipoles=mu), probe=PROBE, pump=PUMP,
-                      progress=False, **GRID)
+                      weights="doorway", progress=False, **GRID)
     b = compute_trpes(_with_excitation(ens, de=de, strengths=f), probe=PROBE, pump=PUMP,
-                      progress=False, **GRID)
+                      weights="doorway", progress=False, **GRID)
     assert a.params["weights"] == b.params["weights"] == "doorway"
     scale = np.abs(a.intensity).max()
     np.testing.assert_allclose(b.intensity, a.intensity, rtol=0, atol=1e-12 * scale)

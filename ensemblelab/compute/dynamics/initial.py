@@ -9,6 +9,13 @@ intensity ``I_pu(x) = exp(-4 ln2 x^2 / Gamma^2)``, ``Gamma = 4 ln2 hbar / T`` (T
 temporal intensity FWHM; first-order perturbation theory, from memory). Given
 oscillator strengths, ``|mu|^2 = 3 f / (2 dE)`` (atomic units), i.e. the weight
 carries 1/dE.
+
+An ``n_photons`` pump selects at the absorbed energy ``n h nu`` with the n-photon
+width ``sqrt(n) Gamma``: the n-photon transition follows the field to the n-th power,
+whose intensity ``I^n`` is a Gaussian sqrt(n) shorter in time, hence sqrt(n) wider in
+energy (the n-fold convolution of the one-photon spectrum; derived here from the
+Gaussian Fourier transform, from memory). ``mu2`` then stands for the n-photon
+transition strength the user supplies.
 """
 
 from __future__ import annotations
@@ -40,8 +47,8 @@ __all__ = [
 ]
 
 # ---------------------------------------------------------------------------- doorway
-def _pump_parameters(pump: Any, photon_energy: float | None, fwhm: float | None
-                     ) -> tuple[float, float]:
+def _pump_parameters(pump: Any, photon_energy: float | None, fwhm: float | None,
+                     n_photons: int = 1) -> tuple[float, float, int]:
     if pump is not None:
         if not (hasattr(pump, "photon_energy") and hasattr(pump, "fwhm")):
             raise SchemaError(
@@ -49,13 +56,17 @@ def _pump_parameters(pump: Any, photon_energy: float | None, fwhm: float | None
                 "GaussianPulse(photon_energy=4.8, fwhm=20.0)."
             )
         photon_energy, fwhm = float(pump.photon_energy), float(pump.fwhm)
+        n_photons = getattr(pump, "n_photons", 1)
+    if isinstance(n_photons, bool) or not isinstance(n_photons, int | np.integer) or \
+            int(n_photons) < 1:
+        raise SchemaError(f"The pump's 'n_photons' must be an int >= 1; got {n_photons!r}.")
     if photon_energy is None or fwhm is None:
         raise SchemaError(
             "pass pump=GaussianPulse(...) or both photon_energy= (eV) and fwhm= (fs)."
         )
     if not (fwhm > 0 and math.isfinite(fwhm)):
         raise SchemaError(f"The pump 'fwhm' must be > 0 fs; got {fwhm}.")
-    return float(photon_energy), float(fwhm)
+    return float(photon_energy), float(fwhm), int(n_photons)
 
 
 def doorway_table(
@@ -64,6 +75,7 @@ def doorway_table(
     pump: Any = None,
     photon_energy: float | None = None,
     fwhm: float | None = None,
+    n_photons: int = 1,
 ) -> pd.DataFrame:
     """Doorway weights of every (sample, excited state) pair for a Gaussian pump.
 
@@ -74,16 +86,18 @@ def doorway_table(
         ``excitation_energy`` (eV), and either ``mu2`` (|mu_0i|^2 in e^2 bohr^2) or
         ``oscillator_strength``. Rows with ``state == 0`` are ignored.
     pump : GaussianPulse-like, optional
-        Any object with ``photon_energy`` (eV) and ``fwhm`` (fs, intensity FWHM).
-    photon_energy, fwhm : float, optional
-        The same as plain numbers.
+        Any object with ``photon_energy`` (eV) and ``fwhm`` (fs, intensity FWHM), and
+        optionally ``n_photons``.
+    photon_energy, fwhm, n_photons : float, float, int, optional
+        The same as plain numbers (``n_photons`` is ignored when `pump` is given).
 
     Returns
     -------
     DataFrame
         The input columns plus ``mu2`` (derived from f as ``3 f / (2 dE)`` when
-        needed), ``spectral`` (peak-normalised pump spectral intensity at the
-        detuning) and ``weight`` (``mu2 * spectral``). The input is not modified.
+        needed), ``spectral`` (peak-normalised spectrum of the absorbed energy
+        ``n h nu``, FWHM ``sqrt(n) Gamma``, at the detuning) and ``weight``
+        (``mu2 * spectral``). The input is not modified.
 
     Examples
     --------
@@ -93,7 +107,7 @@ def doorway_table(
     >>> [round(x, 7) for x in w["weight"]]
     [0.0357934, 8e-07]
     """
-    e_pu, t_pu = _pump_parameters(pump, photon_energy, fwhm)
+    e_pu, t_pu, n_ph = _pump_parameters(pump, photon_energy, fwhm, n_photons)
     if not isinstance(table, pd.DataFrame):
         raise SchemaError(f"table must be a pandas DataFrame; got {type(table).__name__}.")
     missing = [c for c in ("sample", "state", "excitation_energy") if c not in table.columns]
@@ -118,8 +132,8 @@ def doorway_table(
         )
     if np.any(mu2 < 0) or not np.all(np.isfinite(mu2)) or not np.all(np.isfinite(de)):
         raise SchemaError("mu2 / oscillator strengths must be finite and >= 0, energies finite.")
-    gamma = FOUR_LN2 * HBAR_EV_FS / t_pu
-    out["spectral"] = np.exp(-FOUR_LN2 * (e_pu - de) ** 2 / gamma**2)
+    gamma2 = n_ph * (FOUR_LN2 * HBAR_EV_FS / t_pu) ** 2  # (sqrt(n) Gamma)^2
+    out["spectral"] = np.exp(-FOUR_LN2 * (n_ph * e_pu - de) ** 2 / gamma2)
     out["weight"] = mu2 * out["spectral"].to_numpy()
     return out
 
@@ -130,6 +144,7 @@ def select_initial_conditions(
     pump: Any = None,
     photon_energy: float | None = None,
     fwhm: float | None = None,
+    n_photons: int = 1,
     method: str = "rejection",
     epsilon: float = 1e-3,
     n_select: int | None = None,
@@ -141,7 +156,7 @@ def select_initial_conditions(
     ----------
     table : DataFrame
         As for :func:`doorway_table`.
-    pump, photon_energy, fwhm
+    pump, photon_energy, fwhm, n_photons
         The pump pulse (see :func:`doorway_table`).
     method : {"rejection", "weights"}
         ``"rejection"``: accept pair (n, i) if ``xi < w_ni / w_max`` (xi uniform);
@@ -159,8 +174,11 @@ def select_initial_conditions(
     DataFrame
         One row per launched pair: ``sample``, ``state``, ``excitation_energy``,
         ``mu2``, ``spectral``, ``doorway`` (w_ni / w_max) and ``weight``.
+        ``attrs["sampling"]`` is ``"doorway-selected"`` (rejection) or ``"weighted"``:
+        the value for ``metadata["sampling"]`` of the ensemble run from them.
     """
-    w = doorway_table(table, pump=pump, photon_energy=photon_energy, fwhm=fwhm)
+    w = doorway_table(table, pump=pump, photon_energy=photon_energy, fwhm=fwhm,
+                      n_photons=n_photons)
     w_max = float(w["weight"].max()) if len(w) else 0.0
     if not w_max > 0:
         raise SchemaError(
@@ -186,7 +204,10 @@ def select_initial_conditions(
         sel["weight"] = sel["doorway"]
     else:
         raise SchemaError(f"method must be 'rejection' or 'weights'; got {method!r}.")
-    return sel.reset_index(drop=True)
+    out = sel.reset_index(drop=True)
+    # how an ensemble launched from these pairs was sampled (its metadata "sampling")
+    out.attrs["sampling"] = "doorway-selected" if method == "rejection" else "weighted"
+    return out
 
 
 def write_initial_conditions(

@@ -5,7 +5,9 @@ The time-resolved photoelectron spectrum is simulated in the classical doorway-w
 picture (J. Chem. Phys. 2004, "Classical doorway-window approximation for time-resolved
 pump-probe spectra"); see :func:`compute_trpes`.
 
-Modules: :mod:`.weights` (doorway and trajectory weights), :mod:`.sticks` (the sticks of
+Modules: :mod:`.weights` (doorway and trajectory weights), :mod:`.sampling` (the
+``sampling`` and ``absorbing_state`` metadata, Kish effective size), :mod:`.resolution`
+(constant or energy-proportional instrument resolution), :mod:`.sticks` (the sticks of
 a block of trajectories), :mod:`.model` (moment histograms and broadening),
 :mod:`.maps` (:func:`compute_trpes`), :mod:`.contributions` (region shares); the array
 kernels are ``_kernels_deposit`` and ``_kernels_broadening`` with their naive twins in
@@ -21,6 +23,7 @@ from .cross_sections import (
     CrossSection,
     DysonNorm,
     DysonTimes,
+    HydrogenicCoulomb,
     HydrogenicPWA,
     cross_section_from_description,
     resolve_cross_section,
@@ -38,6 +41,8 @@ from .extent import signal_extent
 from .maps import compute_trpes
 from .model import TRPESModel
 from .pulses import GaussianPulse, cross_correlation, cross_correlation_fwhm
+from .resolution import ProportionalResolution
+from .sampling import ensemble_absorbing_state, kish_effective_size, sampling_of
 from .sticks import prepare_sticks
 from .weights import (
     doorway_factor,
@@ -64,7 +69,12 @@ __all__ = [
     "DysonNorm",
     "DysonTimes",
     "HydrogenicPWA",
+    "HydrogenicCoulomb",
     "AnionThresholdLaw",
+    "ProportionalResolution",
+    "sampling_of",
+    "ensemble_absorbing_state",
+    "kish_effective_size",
     "resolve_cross_section",
     "cross_section_from_description",
     "ensemble_adt",

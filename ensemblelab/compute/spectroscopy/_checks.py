@@ -21,7 +21,7 @@ from .pulses import GaussianPulse
 __all__ = ["DEFAULT_ORDER", "DEFAULT_BINS_PER_FWHM", "REUSE_TOLERANCE", "TIME_CUTOFF",
            "EDGE_SIGMAS", "DECOMPOSITIONS", "check_grid", "check_nonneg", "check_pulse",
            "check_decompose", "check_time_step", "check_ranges", "settings_from_params",
-           "component_labels", "grid_from_range", "time_bins"]
+           "component_labels", "grid_from_range", "time_bins", "stick_settings_from_params"]
 
 #: Taylor moments kept per fine energy bin (truncation bound 2.8e-7 of the peak at 4 bins
 #: per FWHM; 8 moments of float64 are one 64-byte cache line, see ._kernels_deposit)
@@ -111,10 +111,16 @@ def settings_from_params(
         raise SchemaError("trpes_map.params lacks the probe settings; pass a map made by "
                           "compute_trpes.") from exc
     cs = cross_section_from_description(p.get("cross_section") or {"model": "dyson"})
-    w = p.get("weights", "doorway")
-    weights = ("doorway" if w in ("doorway", "ensemble") else
-               "uniform" if w == "uniform" else w.split(":", 1)[-1])
+    w = p.get("weights", "auto")
+    weights = w if w in ("doorway", "ensemble", "uniform", "auto") else w.split(":", 1)[-1]
     return probe, pump, cs, weights
+
+
+def stick_settings_from_params(p: dict[str, Any]) -> dict[str, Any]:
+    """``ionisation_shifts`` and ``absorbing`` that made a map, from its ``params``."""
+    shifts = p.get("ionisation_shifts")
+    return {"ionisation_shifts": None if shifts is None else list(shifts),
+            "absorbing": p.get("absorbing", "zero")}
 
 
 def component_labels(source: Any, decompose: str | None) -> list[str]:
@@ -133,7 +139,13 @@ def component_labels(source: Any, decompose: str | None) -> list[str]:
         return [f"{a}->{b}" for a in source.state_labels for b in source.cation_labels]
     meta = source.metadata
     dl = list(meta.get("diabatic_labels") or [f"d{lab}" for lab in source.state_labels])
-    cl = list(meta.get("cation_diabatic_labels") or [f"d{lab}" for lab in source.cation_labels])
+    has = source.has if hasattr(source, "has") else (
+        lambda name: getattr(source, name, None) is not None)
+    if has("adt_cation"):  # cation states diabatised too
+        cl = list(meta.get("cation_diabatic_labels")
+                  or [f"d{lab}" for lab in source.cation_labels])
+    else:  # no cation ADT: the cation states stay adiabatic, and are named so
+        cl = list(source.cation_labels)
     return [f"{a}->{b}" for a in dl for b in cl]
 
 

@@ -82,7 +82,7 @@ def energy_matrices(energies: np.ndarray, *, e_lo: float, h: float, n_fine: int,
     return out
 
 
-def _taylor_terms(y: np.ndarray, scale: float, order: int):
+def _taylor_terms(y: np.ndarray, scale: Any, order: int):
     """Yield ``scale^k H_k(y) / k!`` for k = 0 .. order-1 (physicists' Hermite polynomials
     by their three-term recurrence); times ``G(y)`` these are the broadening terms."""
     h_prev = np.ones_like(y)
@@ -201,7 +201,7 @@ def _reach_bins(h: float, sa: float, order: int) -> int:
 
 def broadening_blocks(energies: np.ndarray, *, e_lo: float, h: float, n_fine: int,
                       fwhm: float, order: int, truncate_below: float | None = 0.0,
-                      block: int = ENERGY_BLOCK) -> BroadeningBlocks:
+                      block: int = ENERGY_BLOCK, fwhm_of: Any = None) -> BroadeningBlocks:
     """The broadening matrices of :func:`energy_matrices`, banded and in blocks.
 
     Only the entries within reach of each block of output energies are evaluated
@@ -225,7 +225,11 @@ def broadening_blocks(energies: np.ndarray, *, e_lo: float, h: float, n_fine: in
     energies = np.asarray(energies, dtype=float)
     a = FOUR_LN2 / fwhm**2
     sa = math.sqrt(a)
-    reach = _reach_bins(h, sa, order)
+    if fwhm_of is not None:  # the widest bin sets the reach
+        widest = float(np.max(fwhm_of(e_lo + h * np.arange(n_fine)))) if n_fine else fwhm
+        reach = _reach_bins(h, math.sqrt(FOUR_LN2) / max(widest, fwhm), order)
+    else:
+        reach = _reach_bins(h, sa, order)
     out = BroadeningBlocks()
     out.order, out.n_fine, out.n_energies = order, n_fine, energies.size
     spans = []
@@ -250,10 +254,13 @@ def broadening_blocks(energies: np.ndarray, *, e_lo: float, h: float, n_fine: in
         c_pad[i] = e_lo + h * (lo + np.arange(width))
     if truncate_below is not None:
         keep &= e_pad >= truncate_below
-    y = sa * (e_pad[:, None, :] - c_pad[:, :, None])  # (n_blk, width, block)
-    g = np.where(keep[:, None, :], (sa / math.sqrt(math.pi)) * np.exp(-y * y), 0.0)
+    sa_c: Any = sa
+    if fwhm_of is not None:
+        sa_c = (math.sqrt(FOUR_LN2) / np.asarray(fwhm_of(c_pad), dtype=float))[:, :, None]
+    y = sa_c * (e_pad[:, None, :] - c_pad[:, :, None])  # (n_blk, width, block)
+    g = np.where(keep[:, None, :], (sa_c / math.sqrt(math.pi)) * np.exp(-y * y), 0.0)
     mats = np.empty((n_blk, width, order, block))
-    for k, term in enumerate(_taylor_terms(y, h * sa, order)):
+    for k, term in enumerate(_taylor_terms(y, h * sa_c, order)):
         mats[:, :, k] = term * g
     for i, (j0, j1, lo, hi) in enumerate(spans):
         m = mats[i, :hi - lo, :, :j1 - j0]

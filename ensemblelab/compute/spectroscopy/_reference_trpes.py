@@ -25,13 +25,17 @@ def _gauss(x: np.ndarray, x0: float, fwhm: float) -> np.ndarray:
 def pure_map_naive(tbin, tfrac, energy, weight, *, n_time, energies, fwhm):
     """Sum of per-stick Gaussians on (time bin, output energy), truncated below 0 eV.
 
+    ``fwhm`` is a number or a function of the stick energy (energy-dependent resolution:
+    each stick gets the width at its own energy).
+
     Returns
     -------
     ndarray, shape (n_time, n_energies)
     """
     out = np.zeros((n_time, energies.size))
     for i in range(energy.size):
-        g = weight[i] * _gauss(energies, energy[i], fwhm)
+        width = fwhm(energy[i]) if callable(fwhm) else fwhm
+        g = weight[i] * _gauss(energies, energy[i], float(width))
         g[energies < 0] = 0.0
         f = 0.0 if tfrac is None else tfrac[i]
         out[tbin[i]] += (1.0 - f) * g

@@ -23,12 +23,15 @@ from ...data.ensemble import Ensemble
 from ...data.spectrum import TRPESMap
 from ...errors import SchemaError
 from ..engine import BlockSource, BlockSpan, add, as_source, reduce
-from ._checks import check_ranges, settings_from_params
+from ._checks import check_ranges, settings_from_params, stick_settings_from_params
 from .cross_sections import resolve_cross_section
+from .gaps import time_fill
 from .maps import TRPES_FIELDS, time_grid
 from .model import TRPESModel
 from .pulses import FWHM_TO_SIGMA
-from .sticks import block_sticks, prepare_sticks
+from .resolution import ProportionalResolution, resolution_from_params, stick_fwhm
+from .sampling import ensemble_absorbing_state
+from .sticks import block_alive, block_sticks, check_shifts, prepare_sticks
 from .weights import trajectory_weights
 
 __all__ = ["contributions", "region_intensity", "contributions_partial", "model_for_map"]
@@ -36,14 +39,14 @@ __all__ = ["contributions", "region_intensity", "contributions_partial", "model_
 
 def _alive_partial(block: Any, span: BlockSpan, opts: dict[str, Any]) -> dict[str, Any]:
     """Alive weight on the time grid and total trajectory weight of one block."""
-    from ._checks import time_bins
-    from ._kernels_deposit import deposit_counts
-
     w_traj, _ = trajectory_weights(block, weights=opts["weights"], pump=opts["pump"])
-    j, frac = time_bins(block.snapshots["time"].to_numpy(), opts["start"], opts["dt"])
-    return {"alive": deposit_counts(j, w_traj[block.traj_index], n_time=opts["n_time"],
-                                    tfrac=frac),
-            "total_weight": np.array(float(w_traj.sum()))}
+    al = block_alive(block, w_traj=w_traj, probe=opts["probe"], start=opts["start"],
+                     dt=opts["dt"], n_time=opts["n_time"],
+                     ionisation_shifts=opts["ionisation_shifts"],
+                     absorbing_state=opts["absorbing_state"], absorbing=opts["absorbing"],
+                     t_end=opts["t_end"])
+    return {"alive": al.alive, "alive_channel": al.alive_channel,
+            "alive_count": al.alive_count, "total_weight": np.array(float(w_traj.sum()))}
 
 
 def _model_for(ens: Ensemble | BlockSource, trpes_map: TRPESMap, model: TRPESModel | None,
@@ -62,19 +65,24 @@ def _model_for(ens: Ensemble | BlockSource, trpes_map: TRPESMap, model: TRPESMod
                 "from this ensemble, or none (it is rebuilt from the map's params).")
         return model
     probe, pump, cs, weights = settings_from_params(trpes_map.params)
+    extra = stick_settings_from_params(trpes_map.params)
     time_step = trpes_map.params.get("time_step")
     if isinstance(ens, Ensemble):
         return prepare_sticks(ens, probe=probe, pump=pump, cross_section=cs, weights=weights,
-                              time_step=time_step, progress=False)
+                              time_step=time_step, progress=False, **extra)
     grid = time_grid(source, time_step, client=client, scheduler=scheduler)
-    opts = {"weights": weights, "pump": pump, **grid}
+    opts = {"weights": weights, "pump": pump, "probe": probe, **grid,
+            "ionisation_shifts": check_shifts(extra["ionisation_shifts"], source.n_cation),
+            "absorbing_state": ensemble_absorbing_state(source), "absorbing": extra["absorbing"],
+            "t_end": grid["t_known"]}
     tot = reduce(source, _alive_partial, add, args=(opts,), fields=TRPES_FIELDS,
                  client=client, scheduler=scheduler, desc="alive weights")
+    fill = time_fill(tot["alive"], tot["alive_channel"], tot["alive_count"])
     return TRPESModel(sticks=None, probe=probe, decompose=None, labels=[],
                       grid_start=grid["start"], time_step=grid["dt"], n_time=grid["n_time"],
-                      alive=tot["alive"], total_weight=float(tot["total_weight"]),
-                      t_known=grid["t_known"], tbin=None, tfrac=None,
-                      n_snapshots=source.n_snapshots)
+                      alive=tot["alive"] if fill is None else fill.alive,
+                      total_weight=float(tot["total_weight"]), t_known=grid["t_known"],
+                      tbin=None, tfrac=None, n_snapshots=source.n_snapshots, fill=fill)
 
 
 def _hat_integrals(times: np.ndarray, lo: float, hi: float, t_known: float) -> np.ndarray:
@@ -145,7 +153,8 @@ def _per_snapshot(block: Any, opts: dict[str, Any]) -> np.ndarray:
         w_traj, used = trajectory_weights(block, weights=opts["weights"], pump=opts["pump"])
         sticks = block_sticks(block, probe=opts["probe"], cross_section=opts["cross_section"],
                               w_traj=w_traj, weights_used=used, decompose=None,
-                              start=opts["start"], dt=opts["dt"], n_time=opts["n_time"])
+                              start=opts["start"], dt=opts["dt"], n_time=opts["n_time"],
+                              **opts["stick_options"])
         cache = {}
     return _region_per_snapshot(sticks, cache, opts["tw"], opts["lo_e"], opts["hi_e"],
                                 opts["s_e"], block.n_snapshots)
@@ -214,11 +223,25 @@ def _setup(ens: Ensemble | BlockSource, trpes_map: TRPESMap, model: TRPESModel |
     model = _model_for(ens, trpes_map, model, client=client, scheduler=scheduler)
     p = trpes_map.params
     probe, pump, cs, weights = settings_from_params(p)
+    extra = stick_settings_from_params(p)
+    res = resolution_from_params(p.get("resolution", 0.0))
+    s_e: Any = float(p["fwhm_energy"]) * FWHM_TO_SIGMA
+    if isinstance(res, ProportionalResolution):  # per-stick width, from the stick energy
+        def s_e(x: np.ndarray) -> np.ndarray:
+            return np.asarray(stick_fwhm(probe, res, x)) * FWHM_TO_SIGMA
+    source = as_source(ens)
     opts = {"probe": probe, "pump": pump, "cross_section": resolve_cross_section(cs),
             "weights": weights, "start": model.grid_start, "dt": model.time_step,
             "n_time": model.n_time, "tw": _delay_weights(model, p, t1, t2),
-            "lo_e": max(e1, 0.0), "hi_e": e2, "s_e": float(p["fwhm_energy"]) * FWHM_TO_SIGMA,
-            "model": model if model.sticks is not None else None}
+            "lo_e": max(e1, 0.0), "hi_e": e2, "s_e": s_e,
+            "model": model if model.sticks is not None else None,
+            "stick_options": {
+                "ionisation_shifts": check_shifts(extra["ionisation_shifts"],
+                                                  source.n_cation),
+                "absorbing_state": ensemble_absorbing_state(
+                    ens if isinstance(ens, Ensemble) else source),
+                "absorbing": extra["absorbing"], "t_end": model.t_known,
+                "fill": model.fill, "local_fill": isinstance(ens, Ensemble)}}
     return opts, ((e1, e2), (t1, t2))
 
 
@@ -337,7 +360,7 @@ def contributions(
 
 
 def _region_per_snapshot(model: Any, c: dict[str, Any], tw: np.ndarray, lo_e: float,
-                         hi_e: float, s_e: float, n_snapshots: int) -> np.ndarray:
+                         hi_e: float, s_e: Any, n_snapshots: int) -> np.ndarray:
     """Region intensity of every snapshot row, shape (n_snapshots,).
 
     ``tw`` (n_time,) holds the normalised delay-window weight of each time-grid point.
@@ -345,8 +368,9 @@ def _region_per_snapshot(model: Any, c: dict[str, Any], tw: np.ndarray, lo_e: fl
     than 9 sigma inside the energy window have an energy weight of exactly 1.0 in
     double precision, so only the two edge slices need error functions (one each when
     the window is wider than 18 sigma: the far edge's term is then 1 or 0). The time
-    weight is applied per snapshot (all sticks of a snapshot share it). ``model`` has
-    ``sticks``, ``tbin`` and ``tfrac``; ``c`` caches the sorted sticks.
+    weight is applied per stick (a stick carried past its snapshot has its own time).
+    ``model`` has ``sticks``, ``tbin`` and ``tfrac``; ``c`` caches the sorted sticks.
+    ``s_e`` is the energy standard deviation (eV), or a function of the stick energy.
     """
     sticks = model.sticks
     if "e_sorted" not in c:
@@ -354,21 +378,24 @@ def _region_per_snapshot(model: Any, c: dict[str, Any], tw: np.ndarray, lo_e: fl
         c["e_sorted"] = sticks.energy[order]
         c["w_sorted"] = sticks.weight[order]
         c["s_sorted"] = sticks.snapshot[order]
-        tb = np.zeros(n_snapshots, dtype=np.int64)
-        tb[sticks.snapshot] = model.tbin
-        c["tbin_snap"] = tb
-        if model.tfrac is not None:
-            tf = np.zeros(n_snapshots)
-            tf[sticks.snapshot] = model.tfrac
-            c["tfrac_snap"] = tf
+        c["tb_sorted"] = np.asarray(model.tbin)[order]
+        c["tf_sorted"] = None if model.tfrac is None else np.asarray(model.tfrac)[order]
     e_sorted, w_sorted, s_sorted = c["e_sorted"], c["w_sorted"], c["s_sorted"]
+    tb, tf = c["tb_sorted"], c["tf_sorted"]
+    dw = tw[tb] if tf is None else (1.0 - tf) * tw[tb] + tf * tw[np.minimum(tb + 1,
+                                                                           tw.size - 1)]
+    per_snap = np.zeros(n_snapshots)
+    if callable(s_e):  # energy-dependent width: one error-function pair per stick
+        sig = s_e(e_sorted)
+        ew = ndtr((hi_e - e_sorted) / sig) - ndtr((lo_e - e_sorted) / sig)
+        return np.bincount(s_sorted, w_sorted * ew * dw, minlength=n_snapshots)
     span = 9.0 * s_e
     a, a2, b2, b = np.searchsorted(e_sorted, [lo_e - span, lo_e + span, hi_e - span,
                                               hi_e + span])
-    per_snap = np.zeros(n_snapshots)
     wide = hi_e - lo_e >= 2.0 * span  # each edge slice is >= 9 sigma from the other edge
     if a2 < b2:  # interior: erf weight is 1.0 to double precision
-        per_snap += np.bincount(s_sorted[a2:b2], w_sorted[a2:b2], minlength=n_snapshots)
+        per_snap += np.bincount(s_sorted[a2:b2], w_sorted[a2:b2] * dw[a2:b2],
+                                minlength=n_snapshots)
         edges = [(a, a2, "low"), (b2, b, "high")]
     else:
         edges = [(a, b, "both")]
@@ -382,12 +409,6 @@ def _region_per_snapshot(model: Any, c: dict[str, Any], tw: np.ndarray, lo_e: fl
             ew = ndtr((hi_e - x) / s_e)
         else:
             ew = ndtr((hi_e - x) / s_e) - ndtr((lo_e - x) / s_e)
-        per_snap += np.bincount(s_sorted[i:j], w_sorted[i:j] * ew, minlength=n_snapshots)
-    tb = c["tbin_snap"]
-    if model.tfrac is None:
-        dw = tw[tb]
-    else:
-        f = c["tfrac_snap"]
-        dw = (1.0 - f) * tw[tb] + f * tw[np.minimum(tb + 1, tw.size - 1)]
-    per_snap *= dw
+        per_snap += np.bincount(s_sorted[i:j], w_sorted[i:j] * ew * dw[i:j],
+                                minlength=n_snapshots)
     return per_snap

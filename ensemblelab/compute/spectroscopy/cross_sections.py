@@ -6,14 +6,24 @@ returning the cross section of each stick (arbitrary but consistent units):
 * :class:`DysonNorm` (default, ``"dyson"``): ``sigma = ||phi_D||^2``.
 * :class:`DysonTimes`: ``||phi_D||^2 * f(E_kin)`` with a user function or a table of
   kinetic energy (per channel or shared), linearly interpolated.
-* :class:`HydrogenicPWA` (``"hydrogenic"``): the analytic plane-wave cross section of a
-  hydrogenic 1s orbital with effective exponent ``zeta = sqrt(2 IP)`` (atomic units),
-  ``sigma ~ ||phi_D||^2 omega k^3 zeta^5 / (zeta^2 + k^2)^6``.
+* :class:`HydrogenicCoulomb` (``"hydrogenic"``): the exact photoionisation cross
+  section of a hydrogenic 1s orbital into Coulomb continuum waves, with the binding
+  energy set to the stick's ionisation energy. **Finite at threshold**, as for every
+  neutral ionised to a cation (the Coulomb field of the cation); falls as E^(-7/2) far
+  above.
 * :class:`AnionThresholdLaw` (``"anion-threshold"``): ``||phi_D||^2 * E^(l + 1/2)``, the
-  Wigner threshold law. Valid for **photodetachment of anions** only: for a neutral
-  ionised to a cation the Coulomb field keeps the cross section finite at threshold,
-  so this factor must not be used there; it is therefore never a default and the
-  bare name ``"threshold"`` is refused.
+  Wigner threshold law, and :class:`HydrogenicPWA` (``"anion-hydrogenic"``): the
+  plane-wave cross section of a hydrogenic 1s orbital, ``omega k^3 zeta^5 / (zeta^2 +
+  k^2)^6``, which vanishes as E^(3/2) at threshold (a p wave without Coulomb field, the
+  same law). Both hold for **photodetachment of anions** only (short-range final-state
+  interaction); for a neutral ionised to a cation the cross section stays finite at
+  threshold, so they are never a default and the bare names ``"threshold"`` and
+  ``"hydrogenic-pwa"`` are refused.
+
+Which applies when: neutral -> cation (the usual TRPES): ``"dyson"`` (default) or
+``"hydrogenic"``; anion -> neutral (photodetachment): ``"anion-threshold"`` or
+``"anion-hydrogenic"``. Every model is evaluated at the stick's kinetic energy, clipped
+at 0 for the sticks from the tail of the probe spectrum just below threshold.
 """
 
 from __future__ import annotations
@@ -34,8 +44,10 @@ __all__ = [
     "DysonNorm",
     "DysonTimes",
     "HydrogenicPWA",
+    "HydrogenicCoulomb",
     "AnionThresholdLaw",
     "hydrogenic_factor",
+    "hydrogenic_coulomb_cross_section",
     "resolve_cross_section",
     "cross_section_from_description",
     "describe_cross_section",
@@ -189,9 +201,72 @@ def hydrogenic_factor(energy: npt.ArrayLike, ip: npt.ArrayLike, *,
     return omega * k2**1.5 * z**5 / (z * z + k2) ** 6
 
 
+def hydrogenic_coulomb_cross_section(energy: npt.ArrayLike, ip: npt.ArrayLike
+                                     ) -> np.ndarray:
+    """Photoionisation cross section (Mb) of a hydrogenic 1s orbital into Coulomb waves.
+
+    ``sigma = (2^9 pi^2 alpha a0^2 / (3 Z^2)) (I / h nu)^4 exp(-4 eta arccot eta) /
+    (1 - exp(-2 pi eta))`` with ``eta = sqrt(I / E)``, ``h nu = I + E`` and the binding
+    energy ``I = Z^2 / 2`` hartree set to `ip` (the exact non-relativistic dipole
+    result for hydrogen-like ions, from memory; hydrogen at threshold: 6.30e-18 cm^2).
+    Finite at threshold (``E -> 0``: the factor tends to ``e^-4``).
+
+    Parameters
+    ----------
+    energy : array_like
+        Kinetic energy in eV (clipped at 0).
+    ip : array_like
+        Binding (ionisation) energy in eV (> 0).
+
+    Returns
+    -------
+    ndarray
+        Cross section in megabarn (1 Mb = 1e-18 cm^2).
+
+    Examples
+    --------
+    >>> from ensemblelab.units import HARTREE_EV
+    >>> round(float(hydrogenic_coulomb_cross_section(0.0, 0.5 * HARTREE_EV)), 3)
+    6.304
+    """
+    from scipy.constants import physical_constants
+
+    alpha = physical_constants["fine-structure constant"][0]
+    a0_cm = physical_constants["Bohr radius"][0] * 100.0
+    e = np.maximum(np.asarray(energy, dtype=float), 0.0)
+    i = np.asarray(ip, dtype=float)
+    z2 = 2.0 * np.maximum(i, 1e-300) / HARTREE_EV  # Z^2 = 2 I (hartree)
+    x = np.sqrt(e / np.maximum(i, 1e-300))  # 1 / eta
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        small = x < 1e-6
+        xs = np.where(small, 1.0, x)
+        eta_arccot = np.where(small, 1.0 - x * x / 3.0, np.arctan(xs) / xs)
+        denom = np.where(small, 1.0, -np.expm1(-2.0 * np.pi / xs))
+    sigma0 = 2.0**9 * np.pi**2 * alpha * a0_cm**2 / 3.0 / 1e-18  # Mb, Z = 1
+    return sigma0 / z2 * (i / (i + e)) ** 4 * np.exp(-4.0 * eta_arccot) / denom
+
+
+@dataclass(frozen=True)
+class HydrogenicCoulomb(CrossSection):
+    """``sigma = ||phi_D||^2 * hydrogenic_coulomb_cross_section(E, IP)`` (Mb).
+
+    The Coulomb-wave hydrogenic model for a neutral ionised to a cation: finite at
+    threshold (see the module docstring for which model applies when).
+    """
+
+    name: str = field(default="hydrogenic", init=False)
+
+    def __call__(self, dyson, energy, ip, channel, photon_energy):  # noqa: D102
+        return np.asarray(dyson, dtype=float) * hydrogenic_coulomb_cross_section(energy, ip)
+
+
 @dataclass(frozen=True)
 class HydrogenicPWA(CrossSection):
-    """``sigma = ||phi_D||^2 * hydrogenic_factor(E, IP)`` (model M3).
+    """``sigma = ||phi_D||^2 * hydrogenic_factor(E, IP)`` (plane waves, model M3).
+
+    Vanishes as E^(3/2) at threshold, the Wigner law of :class:`AnionThresholdLaw`
+    (l = 1): for **anion photodetachment** only (for neutrals use
+    :class:`HydrogenicCoulomb`, ``"hydrogenic"``).
 
     Parameters
     ----------
@@ -200,7 +275,7 @@ class HydrogenicPWA(CrossSection):
     """
 
     zeta: float | None = None
-    name: str = field(default="hydrogenic", init=False)
+    name: str = field(default="anion-hydrogenic", init=False)
 
     def __call__(self, dyson, energy, ip, channel, photon_energy):  # noqa: D102
         return np.asarray(dyson, dtype=float) * hydrogenic_factor(
@@ -242,8 +317,9 @@ class AnionThresholdLaw(CrossSection):
 
 _NAMED: dict[str, Callable[[], CrossSection]] = {
     "dyson": DysonNorm,
-    "hydrogenic": HydrogenicPWA,
+    "hydrogenic": HydrogenicCoulomb,
     "anion-threshold": AnionThresholdLaw,
+    "anion-hydrogenic": HydrogenicPWA,
 }
 
 
@@ -272,6 +348,8 @@ def cross_section_from_description(desc: Mapping[str, Any]) -> CrossSection:
         if name == "dyson":
             return DysonNorm()
         if name == "hydrogenic":
+            return HydrogenicCoulomb()
+        if name == "anion-hydrogenic":
             z = desc.get("zeta")
             return HydrogenicPWA(zeta=None if z is None else float(z))
         if name == "anion-threshold":
@@ -296,7 +374,8 @@ def resolve_cross_section(spec: str | CrossSection | Callable[..., Any]) -> Cros
 
     Parameters
     ----------
-    spec : {"dyson", "hydrogenic", "anion-threshold"}, CrossSection or callable
+    spec : {"dyson", "hydrogenic", "anion-threshold", "anion-hydrogenic"}, ...
+        A name, a CrossSection or a callable.
         A plain callable is wrapped as ``DysonTimes(spec)``.
 
     Returns
@@ -308,6 +387,14 @@ def resolve_cross_section(spec: str | CrossSection | Callable[..., Any]) -> Cros
     if isinstance(spec, str):
         if spec in _NAMED:
             return _NAMED[spec]()
+        if spec == "hydrogenic-pwa":
+            raise SchemaError(
+                "cross_section='hydrogenic-pwa' is not offered: the plane-wave hydrogenic "
+                "model vanishes as E^(3/2) at threshold, the anion photodetachment law (a "
+                "neutral ionised to a cation has a finite cross section there). Hint: "
+                "cross_section='hydrogenic' (Coulomb waves) for neutrals, "
+                "'anion-hydrogenic' for anions."
+            )
         if spec == "threshold":
             raise SchemaError(
                 "cross_section='threshold' is not offered: the E^(l+1/2) threshold law holds "

@@ -3,8 +3,10 @@
 Method (J. Chem. Phys. 2004, "Classical doorway-window approximation for time-resolved
 pump-probe spectra"):
 
-* **Window.** The sticks of :mod:`.sticks`: one per snapshot and open cation channel
-  at ``E_kin = n h nu_probe - IP``, weight ``w_traj * sigma``.
+* **Window.** The sticks of :mod:`.sticks`: one per snapshot and cation channel the
+  probe spectrum reaches, at ``E_kin = n h nu_probe - IP``, weight ``w_traj * sigma``;
+  the map keeps each line's part above zero kinetic energy (area: the erf open
+  fraction). Missing data and gaps: :mod:`.gaps`; absorbing state: :mod:`.sticks`.
 * **Ensemble average.** Snapshot times are put on a uniform time grid (step = the
   trajectories' median output step, or ``time_step``). Snapshots on grid points go to
   that point; otherwise a snapshot is split linearly between its two neighbouring grid
@@ -26,6 +28,7 @@ from __future__ import annotations
 
 import math
 import warnings
+from collections.abc import Mapping, Sequence
 from typing import Any, Literal, overload
 
 import numpy as np
@@ -39,16 +42,30 @@ from ._checks import (
     DEFAULT_BINS_PER_FWHM,
     DEFAULT_ORDER,
     check_grid,
-    check_nonneg,
     check_time_step,
     component_labels,
     grid_from_range,
 )
 from .cross_sections import CrossSection, describe_cross_section, resolve_cross_section
+from .gaps import time_fill
 from .model import TRPESModel, deposit
-from .pulses import GaussianPulse
-from .sticks import block_sticks, check_trpes_inputs, energy_range
-from .weights import ground_state_ionisation_fraction, trajectory_weights, weights_word
+from .pulses import FWHM_TO_SIGMA, GaussianPulse
+from .resolution import Resolution, check_resolution, min_stick_fwhm
+from .sampling import ESS_WARN_FRACTION, ensemble_absorbing_state, sampling_of
+from .sticks import (
+    THRESHOLD_TAIL,
+    block_sticks,
+    check_absorbing,
+    check_shifts,
+    check_trpes_inputs,
+    energy_range,
+)
+from .weights import (
+    ground_state_ionisation_fraction,
+    resolve_weights,
+    trajectory_weights,
+    weights_word,
+)
 
 __all__ = ["compute_trpes", "trpes_model", "time_grid", "trpes_partial", "TRPES_FIELDS"]
 
@@ -69,29 +86,35 @@ def time_grid(source: BlockSource, time_step: float | None, *, client: Any = Non
     return {"start": start, "dt": dt, "n_time": n_time, "t_known": t_known}
 
 
-def _stick_energy_range(source: BlockSource, total_energy: float, *, client: Any,
+def _stick_energy_range(source: BlockSource, total_energy: float, *, tail: float,
+                        shifts: np.ndarray | None, client: Any,
                         scheduler: Any) -> tuple[float, float]:
-    """Range of the stick energies ``total_energy - IP`` over open channels (IP < total).
+    """Range of the stick energies ``total_energy - IP`` over the channels that give sticks
+    (excess energy above ``-tail``; IP shifted by ``shifts``).
 
     From each block's ``ip_min`` / ``ip_max`` summary where known: a block whose every
-    channel is open gives ``total - ip_max`` and ``total - ip_min`` exactly (float
-    subtraction is monotone), a closed block gives nothing; only blocks that are
-    partly open at this photon energy (or lack the summary) are read.
+    channel gives sticks yields ``top - ip_max`` and ``top - ip_min`` (with the shifts'
+    extremes: a cover, exact without shifts), a block without any gives nothing; only
+    blocks that are partly open at this photon energy (or lack the summary) are read.
     """
     lo, hi = math.inf, -math.inf
+    s_lo = 0.0 if shifts is None else float(shifts.min())
+    s_hi = 0.0 if shifts is None else float(shifts.max())
+    top = total_energy + tail
     pending = []
     for span in source.spans():
         s = span.summary
         if "ip_min" not in s:
             pending.append(span.index)
-        elif s["ip_min"] is None or s["ip_min"] >= total_energy:
+        elif s["ip_min"] is None or s["ip_min"] + s_lo >= top:
             continue  # no finite IP, or every channel closed
-        elif s["ip_max"] < total_energy:
-            lo, hi = min(lo, total_energy - s["ip_max"]), max(hi, total_energy - s["ip_min"])
+        elif s["ip_max"] + s_hi < top:
+            lo = min(lo, total_energy - (s["ip_max"] + s_hi))
+            hi = max(hi, total_energy - (s["ip_min"] + s_lo))
         else:
             pending.append(span.index)
     if pending:
-        rest = reduce(source, energy_range, _merge_range, args=(total_energy,),
+        rest = reduce(source, energy_range, _merge_range, args=(total_energy, tail, shifts),
                       fields=["energies", "cation_energies"], indices=pending, client=client,
                       scheduler=scheduler, desc="energy range")
         lo, hi = min(lo, rest["e_min"]), max(hi, rest["e_max"])
@@ -100,6 +123,17 @@ def _stick_energy_range(source: BlockSource, total_energy: float, *, client: Any
 
 def _merge_range(a: dict[str, float], b: dict[str, float]) -> dict[str, float]:
     return {"e_min": min(a["e_min"], b["e_min"]), "e_max": max(a["e_max"], b["e_max"])}
+
+
+#: the counts every map reports (see :class:`.sticks.BlockSticks`)
+COUNT_KEYS = ("n_missing_data", "n_absorbed", "n_absorbed_ionisable")
+
+
+def stick_options(opts: dict[str, Any]) -> dict[str, Any]:
+    """The keywords of :func:`.sticks.block_sticks` beyond the grid, from reduction options."""
+    return {k: opts.get(k) for k in ("ionisation_shifts", "absorbing_state", "t_end",
+                                      "fill")} | {"absorbing": opts.get("absorbing", "zero"),
+                                                  "local_fill": opts.get("local_fill", True)}
 
 
 def trpes_partial(block: Any, span: BlockSpan, opts: dict[str, Any]) -> dict[str, Any]:
@@ -114,7 +148,7 @@ def trpes_partial(block: Any, span: BlockSpan, opts: dict[str, Any]) -> dict[str
     bs = block_sticks(block, probe=opts["probe"], cross_section=opts["cross_section"],
                       w_traj=w_traj, weights_used=opts["weights_used"],
                       decompose=opts["decompose"], start=opts["start"], dt=opts["dt"],
-                      n_time=opts["n_time"])
+                      n_time=opts["n_time"], **stick_options(opts))
     grid = {"n_time": opts["n_time"], "e_lo": opts["e_lo"], "h": opts["h"],
             "n_fine": opts["n_fine"], "order": opts["order"]}
     progress = bool(opts.get("progress", False))
@@ -128,9 +162,12 @@ def trpes_partial(block: Any, span: BlockSpan, opts: dict[str, Any]) -> dict[str
         ww = s.weight if bs.comp_weight is None else bs.comp_weight
         hist_comp = deposit(tb, s.energy if src is None else s.energy[src], ww, comp=bs.comp,
                             n_comp=opts["n_comp"], tfrac=tf, progress=progress, **grid)
+    counts = bs.counts or {}
     out: dict[str, Any] = {"alive": bs.alive, "alive_count": bs.alive_count, "hist": hist,
            "hist_comp": hist_comp, "n_sticks": np.int64(s.n_sticks),
-           "total_weight": np.array(bs.total_weight)}
+           "total_weight": np.array(bs.total_weight), "weight_sq": np.array(bs.weight_sq),
+           "alive_channel": bs.alive_channel,
+           "counts": {k: np.int64(counts.get(k, 0)) for k in COUNT_KEYS}}
     if opts.get("keep_sticks"):
         out["sticks"] = bs
     return out
@@ -141,19 +178,24 @@ def trpes_model(
     *,
     probe: GaussianPulse,
     pump: GaussianPulse | None = None,
-    resolution: float = 0.0,
+    resolution: Resolution = 0.0,
     cross_section: str | CrossSection | Any = "dyson",
-    weights: str = "doorway",
+    weights: str = "auto",
     decompose: str | None = None,
     time_step: float | None = None,
     progress: bool = True,
     client: Any = None,
     scheduler: Any = None,
+    ionisation_shifts: Sequence[float] | Mapping[int, float] | None = None,
+    absorbing: str = "zero",
 ) -> TRPESModel:
     """The stick model of an ensemble or chunked store, moments deposited (the reduction).
 
     Parameters are those of :func:`compute_trpes`. An in-memory ensemble's model keeps
-    its sticks too; a chunked store's keeps the moments only.
+    its sticks too; a chunked store's keeps the moments only. Warns (with the
+    reason) when the weights' Kish effective size is below
+    :data:`~.sampling.ESS_WARN_FRACTION` of the trajectories, when the sampling had to
+    be assumed, and when the probe can ionise the absorbing state.
 
     Returns
     -------
@@ -162,32 +204,54 @@ def trpes_model(
     source = as_source(ens)
     probe, pump, decompose = check_trpes_inputs(source, probe=probe, pump=pump,
                                                 decompose=decompose)
-    resolution = check_nonneg(resolution, "resolution")
+    resolution = check_resolution(resolution)
+    absorbing = check_absorbing(absorbing)
+    shifts = check_shifts(ionisation_shifts, source.n_cation)
     grid = time_grid(source, time_step, client=client, scheduler=scheduler)
     cs = resolve_cross_section(cross_section)
-    used = weights_word(source, weights=weights, pump=pump)
-    fwhm = math.hypot(probe.effective_spectral_fwhm, resolution)
+    kind, note = resolve_weights(source, weights=weights, pump=pump)
+    if note:
+        warnings.warn(f"compute_trpes: {note}", EnsembleWarning, stacklevel=3)
+    used = weights_word(source, weights=kind, pump=pump)
+    fwhm = min_stick_fwhm(probe, resolution)
     h = fwhm / DEFAULT_BINS_PER_FWHM
-    e_lo, e_hi = _stick_energy_range(source, probe.total_energy, client=client,
-                                     scheduler=scheduler)
+    tail = THRESHOLD_TAIL * probe.effective_spectral_fwhm * FWHM_TO_SIGMA
+    e_lo, e_hi = _stick_energy_range(source, probe.total_energy, tail=tail, shifts=shifts,
+                                     client=client, scheduler=scheduler)
     n_fine = int(math.floor((e_hi - e_lo) / h + 0.5)) + 2
     labels = component_labels(source, decompose)
     in_memory = isinstance(ens, Ensemble)
-    opts = {"probe": probe, "pump": pump, "cross_section": cs, "weights": weights,
+    absorbing_state = ensemble_absorbing_state(ens if in_memory else source)
+    opts = {"probe": probe, "pump": pump, "cross_section": cs, "weights": kind,
             "weights_used": used, "decompose": decompose, "n_comp": len(labels), **grid,
             "e_lo": e_lo, "h": h, "n_fine": n_fine, "order": DEFAULT_ORDER,
-            "keep_sticks": in_memory, "progress": progress and in_memory}
+            "keep_sticks": in_memory, "progress": progress and in_memory,
+            "ionisation_shifts": shifts, "absorbing_state": absorbing_state,
+            "absorbing": absorbing, "t_end": grid["t_known"], "fill": None,
+            "local_fill": in_memory}
     fields = [*TRPES_FIELDS, *(("adt", "adt_cation") if decompose == "diabatic" else ())]
     total = reduce(source, trpes_partial, add, args=(opts,), fields=fields, client=client,
                    scheduler=scheduler, progress=progress, desc="TRPES blocks")
+    fill = time_fill(total["alive"], total["alive_channel"], total["alive_count"])
+    if fill is not None and not in_memory:  # missing data: a second pass with the whole
+        opts["fill"] = fill                  # source's per-channel alive weights
+        total = reduce(source, trpes_partial, add, args=(opts,), fields=fields,
+                       client=client, scheduler=scheduler, progress=progress,
+                       desc="TRPES blocks (missing data)")
     if total["hist_comp"] is None and decompose is not None:
         total["hist_comp"] = np.zeros((DEFAULT_ORDER, len(labels), grid["n_time"], n_fine))
     bs = total.get("sticks")
     n = source.n_snapshots
+    counts = {k: int(v) for k, v in total["counts"].items()}
+    ess = (float(total["total_weight"]) ** 2 / float(total["weight_sq"])
+           if float(total["weight_sq"]) > 0 else 0.0)
+    _warn_map(ess, source.n_trajectories, counts, n, absorbing_state, absorbing)
     model = TRPESModel(
         sticks=None if bs is None else bs.sticks, probe=probe, decompose=decompose,
         labels=labels, grid_start=grid["start"], time_step=grid["dt"], n_time=grid["n_time"],
-        alive=total["alive"], alive_count=total["alive_count"],
+        alive=total["alive"] if fill is None else fill.alive,
+        alive_count=(total["alive_count"] if fill is None or fill.alive_count is None
+                     else fill.alive_count),
         total_weight=float(total["total_weight"]), t_known=grid["t_known"],
         tbin=None if bs is None else bs.tbin, tfrac=None if bs is None else bs.tfrac,
         comp=None if bs is None else bs.comp, comp_src=None if bs is None else bs.comp_src,
@@ -195,12 +259,40 @@ def trpes_model(
         info={"cross_section": describe_cross_section(cs), "weights": used,
               "n_sticks": int(total["n_sticks"]), "n_snapshots": n,
               "n_trajectories": source.n_trajectories, "progress": progress and in_memory,
-              "n_states": source.n_states, "n_cation": source.n_cation},
+              "n_states": source.n_states, "n_cation": source.n_cation,
+              "effective_sample_size": ess, "sampling": sampling_of(source),
+              "ionisation_shifts": None if shifts is None else shifts.tolist(),
+              "absorbing_state": absorbing_state, "absorbing": absorbing, **counts},
         order=DEFAULT_ORDER, bins_per_fwhm=DEFAULT_BINS_PER_FWHM, n_snapshots=n,
+        fill=fill,
     )
     model.set_moments(e_lo=e_lo, h=h, n_fine=n_fine, hist=total["hist"],
                       hist_comp=total["hist_comp"] if decompose is not None else None)
     return model
+
+
+def _warn_map(ess: float, n_traj: int, counts: dict[str, int], n_snap: int,
+              absorbing_state: int | None, absorbing: str) -> None:
+    if n_traj and ess < ESS_WARN_FRACTION * n_traj:
+        warnings.warn(
+            f"compute_trpes: the trajectory weights have a Kish effective sample size of "
+            f"{ess:.1f} for {n_traj} trajectories (below {ESS_WARN_FRACTION:.0%}): a few "
+            f"trajectories dominate the map and its noise is that of ~{ess:.0f} "
+            "trajectories. Hint: check weights= and ens.metadata['sampling'].",
+            EnsembleWarning, stacklevel=4)
+    if counts.get("n_missing_data"):
+        warnings.warn(
+            f"compute_trpes: {counts['n_missing_data']} of {n_snap} snapshots lack electronic "
+            "data (NaN cation energy, neutral energy or Dyson norm) for some cation channel; "
+            "they are left out of that channel's signal and alive weight "
+            "(params['n_missing_data']).", EnsembleWarning, stacklevel=4)
+    if counts.get("n_absorbed_ionisable") and absorbing == "zero":
+        warnings.warn(
+            f"compute_trpes: the probe can ionise the absorbing state {absorbing_state} at the "
+            f"last snapshot of {counts['n_absorbed_ionisable']} of the "
+            f"{counts['n_absorbed']} trajectories stopped there; after their stop they count "
+            "as alive with zero signal, which underestimates the map. Hint: "
+            "absorbing='carry' repeats their last signal.", EnsembleWarning, stacklevel=4)
 
 
 @overload
@@ -211,16 +303,18 @@ def compute_trpes(
     pump: GaussianPulse | None = None,
     kinetic_energies: npt.ArrayLike,
     delays: npt.ArrayLike,
-    resolution: float = 0.0,
+    resolution: Resolution = 0.0,
     convolve: bool = True,
     cross_section: str | CrossSection | Any = "dyson",
-    weights: str = "doorway",
+    weights: str = "auto",
     normalise: str = "alive",
     decompose: str | None = None,
     progress: bool = True,
     time_step: float | None = None,
     client: Any = None,
     scheduler: Any = None,
+    ionisation_shifts: Sequence[float] | Mapping[int, float] | None = None,
+    absorbing: str = "zero",
     return_model: Literal[False] = False,
 ) -> TRPESMap: ...
 
@@ -233,16 +327,18 @@ def compute_trpes(
     pump: GaussianPulse | None = None,
     kinetic_energies: npt.ArrayLike,
     delays: npt.ArrayLike,
-    resolution: float = 0.0,
+    resolution: Resolution = 0.0,
     convolve: bool = True,
     cross_section: str | CrossSection | Any = "dyson",
-    weights: str = "doorway",
+    weights: str = "auto",
     normalise: str = "alive",
     decompose: str | None = None,
     progress: bool = True,
     time_step: float | None = None,
     client: Any = None,
     scheduler: Any = None,
+    ionisation_shifts: Sequence[float] | Mapping[int, float] | None = None,
+    absorbing: str = "zero",
     return_model: Literal[True],
 ) -> tuple[TRPESMap, TRPESModel]: ...
 
@@ -255,16 +351,18 @@ def compute_trpes(
     pump: GaussianPulse | None = None,
     kinetic_energies: npt.ArrayLike,
     delays: npt.ArrayLike,
-    resolution: float = 0.0,
+    resolution: Resolution = 0.0,
     convolve: bool = True,
     cross_section: str | CrossSection | Any = "dyson",
-    weights: str = "doorway",
+    weights: str = "auto",
     normalise: str = "alive",
     decompose: str | None = None,
     progress: bool = True,
     time_step: float | None = None,
     client: Any = None,
     scheduler: Any = None,
+    ionisation_shifts: Sequence[float] | Mapping[int, float] | None = None,
+    absorbing: str = "zero",
     return_model: bool = False,
 ) -> TRPESMap | tuple[TRPESMap, TRPESModel]: ...
 
@@ -276,19 +374,48 @@ def compute_trpes(
     pump: GaussianPulse | None = None,
     kinetic_energies: npt.ArrayLike,
     delays: npt.ArrayLike,
-    resolution: float = 0.0,
+    resolution: Resolution = 0.0,
     convolve: bool = True,
     cross_section: str | CrossSection | Any = "dyson",
-    weights: str = "doorway",
+    weights: str = "auto",
     normalise: str = "alive",
     decompose: str | None = None,
     progress: bool = True,
     time_step: float | None = None,
     client: Any = None,
     scheduler: Any = None,
+    ionisation_shifts: Sequence[float] | Mapping[int, float] | None = None,
+    absorbing: str = "zero",
     return_model: bool = False,
 ) -> TRPESMap | tuple[TRPESMap, TRPESModel]:
     """Simulated TRPES map of an ensemble (classical doorway-window).
+
+    Assumptions (also in ``params["assumptions"]``): the molecules are randomly
+    oriented and the signal is the isotropic orientational average (no polarisation
+    dependence, no magic-angle or photoelectron-anisotropy term); pump and probe are
+    transform-limited Gaussian pulses; the instrument resolution is a constant FWHM
+    unless an energy-dependent one is given; the classical doorway-window picture
+    (sudden vertical excitation and ionisation at frozen nuclei).
+
+    Threshold: a channel's electrons follow the probe's absorbed-energy spectrum shifted
+    by ``-IP``, a Gaussian ``G(E; n h nu - IP, Gamma_n)`` of which only ``E >= 0`` exists
+    (photons below the ionisation energy do not ionise). So the map holds the part of
+    each stick's line above zero kinetic energy, whose area is the open fraction
+    ``(1/2)[1 + erf((n h nu - IP) / (sqrt(2) sigma_n))]``
+    (:meth:`~.pulses.GaussianPulse.open_fraction`): continuous in the ionisation energy,
+    nothing below zero kinetic energy. (With an instrument resolution the cut at zero is
+    applied to the broadened line, an approximation within about one resolution width of
+    threshold: strictly, the resolution acts on the already truncated distribution.)
+
+    Missing data: a snapshot whose cation energy, active-state energy or Dyson norm of a
+    channel is NaN leaves that channel's signal *and* alive weight (not computed is not
+    zero signal); ``params["n_missing_data"]`` counts such snapshots.
+
+    Absorbing state (``ens.metadata["absorbing_state"]``, default 0; None: none): a
+    trajectory stopped in it before the end of the ensemble stays a member of the
+    ensemble: with ``absorbing="zero"`` it keeps counting in the alive weight with no
+    signal (a warning says when the probe could ionise it), with ``"carry"`` its last
+    sticks are repeated until the end, with ``"end"`` it ends (leaves both).
 
     Parameters
     ----------
@@ -298,22 +425,30 @@ def compute_trpes(
     probe : GaussianPulse
         Probe: photon energy (eV), intensity FWHM (fs), ``n_photons``.
     pump : GaussianPulse, optional
-        Pump: sets the doorway weights (with ``weights="doorway"``) and the
-        cross-correlation. Without it the cross-correlation is the probe alone.
+        Pump: sets the doorway weights (an ``n_photons`` pump selects at ``n h nu``
+        with a ``sqrt(n)`` wider spectrum) and the cross-correlation. Without it the
+        cross-correlation is the probe alone.
     kinetic_energies : array_like, shape (n_energies,)
         Photoelectron kinetic energies in eV (values < 0 get no signal).
     delays : array_like, shape (n_delays,)
         Pump-probe delays in fs.
-    resolution : float
-        Instrument energy resolution (FWHM, eV), added in quadrature to the probe
-        bandwidth.
+    resolution : float or ProportionalResolution
+        Instrument energy resolution: a constant FWHM (eV), or
+        ``ProportionalResolution(c)`` for ``dE = c E`` (each stick broadened with the
+        width at its kinetic energy); added in quadrature to the probe bandwidth.
     convolve : bool
         True: convolve with the pump-probe cross-correlation (signal at negative
         delays). False: the pure doorway-window signal.
-    cross_section : {"dyson", "hydrogenic", "anion-threshold"}, CrossSection or callable
-        Cross-section model (see :mod:`ensemblelab.compute.spectroscopy.cross_sections`).
-    weights : {"doorway", "uniform"} or str
-        Trajectory weights (see :func:`~.weights.trajectory_weights`).
+    cross_section : {"dyson", "hydrogenic", "anion-threshold", "anion-hydrogenic"}, ...
+        Cross-section model, a CrossSection or a callable (see
+        :mod:`ensemblelab.compute.spectroscopy.cross_sections`).
+    weights : {"auto", "doorway", "ensemble", "uniform"} or str
+        Trajectory weights. ``"auto"`` (default) never applies the pump twice: it
+        reads ``ens.metadata["sampling"]`` (doorway-selected: uniform; weighted: the
+        ensemble's weights; uniform: the pump's doorway weights; unknown: the
+        ensemble's weights, with a warning). See :func:`~.weights.resolve_weights`.
+        ``params["effective_sample_size"]`` holds the Kish effective size of the
+        weights; a warning is given below half the number of trajectories.
     normalise : {"alive", "initial"}
         Divide by the alive weight at each time or by the weight at t = 0.
     decompose : {None, "neutral", "cation", "pair", "diabatic"}
@@ -326,6 +461,11 @@ def compute_trpes(
         For a lazy ensemble: run the per-chunk reduction on this cluster.
     scheduler : str, optional
         For a lazy ensemble without a client: the Dask scheduler.
+    ionisation_shifts : sequence of float or mapping int -> float, optional
+        Per-cation-channel shift (eV) added to that channel's ionisation energies
+        before the threshold test (the sticks are recomputed, not the pixels moved).
+    absorbing : {"zero", "carry", "end"}
+        What a trajectory stopped in the absorbing state contributes after its stop.
     return_model : bool
         Also return the :class:`~.model.TRPESModel` (for re-broadening and for
         ``contributions(..., model=...)``).
@@ -334,8 +474,9 @@ def compute_trpes(
     -------
     TRPESMap
         ``intensity`` in eV^-1 (per trajectory weight), ``alive`` weight per delay,
-        ``params`` with everything used (``edge_delay``: later delays are affected by
-        the end of the trajectories). With ``return_model``: ``(map, model)``.
+        ``effective_sample_size``, ``n_missing_data`` and ``params`` with everything
+        used (``edge_delay``: later delays are affected by the end of the
+        trajectories). With ``return_model``: ``(map, model)``.
 
     Examples
     --------
@@ -358,7 +499,8 @@ def compute_trpes(
     model = trpes_model(ens, probe=probe, pump=pump, resolution=resolution,
                         cross_section=cross_section, weights=weights, decompose=decompose,
                         time_step=time_step, progress=progress, client=client,
-                        scheduler=scheduler)
+                        scheduler=scheduler, ionisation_shifts=ionisation_shifts,
+                        absorbing=absorbing)
     if isinstance(ens, Ensemble):
         fraction = ground_state_ionisation_fraction(ens, probe=probe)
         if fraction > 0:

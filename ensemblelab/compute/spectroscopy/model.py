@@ -38,12 +38,24 @@ from ._checks import (
     REUSE_TOLERANCE,
     TIME_CUTOFF,
     check_grid,
-    check_nonneg,
     check_pulse,
 )
 from .pulses import GaussianPulse, cross_correlation_sigma
+from .resolution import (
+    ProportionalResolution,
+    Resolution,
+    check_resolution,
+    describe_resolution,
+    min_stick_fwhm,
+    stick_fwhm,
+)
 
-__all__ = ["TRPESModel", "deposit"]
+__all__ = ["TRPESModel", "deposit", "ASSUMPTIONS"]
+
+#: what every map assumes (stored in its ``params["assumptions"]``)
+ASSUMPTIONS = ("isotropic orientational average (no polarisation, no magic-angle or "
+               "anisotropy term); transform-limited Gaussian pulses; resolution constant "
+               "FWHM unless an energy-dependent one is given; classical doorway-window")
 
 
 @dataclass(eq=False, repr=False)
@@ -80,6 +92,9 @@ class TRPESModel:
         Time-grid index and fraction of every stick (None without sticks / on points).
     n_snapshots : int
         Snapshots of the ensemble the model was made from.
+    fill : TimeFill or None
+        How missing electronic data were handled (per-channel alive weights, gaps
+        filled; :mod:`.gaps`); None when every snapshot had data.
     """
 
     sticks: StickSpectrum | None
@@ -102,6 +117,7 @@ class TRPESModel:
     bins_per_fwhm: float = DEFAULT_BINS_PER_FWHM
     alive_count: np.ndarray | None = None  # trajectories alive per grid time (unweighted)
     n_snapshots: int = 0
+    fill: Any = None  # gaps.TimeFill of the missing data, or None
     _cache: dict[str, Any] = field(default_factory=dict)
 
     def set_moments(self, *, e_lo: float, h: float, n_fine: int, hist: np.ndarray,
@@ -127,10 +143,11 @@ class TRPESModel:
         """Internal grid times (fs), shape (n_time,)."""
         return self.grid_start + self.time_step * np.arange(self.n_time)
 
-    def fwhm(self, probe: GaussianPulse | None = None, resolution: float = 0.0) -> float:
-        """Stick FWHM in eV for a probe (default the model's) and resolution."""
+    def fwhm(self, probe: GaussianPulse | None = None, resolution: Resolution = 0.0) -> float:
+        """Stick FWHM in eV for a probe (default the model's) and resolution (the narrowest,
+        at zero kinetic energy, for an energy-dependent resolution)."""
         probe = probe or self.probe
-        return math.hypot(probe.effective_spectral_fwhm, resolution)
+        return min_stick_fwhm(probe, check_resolution(resolution))
 
     def fine_grid(self, fwhm: float) -> tuple[float, float, int]:
         """Fine energy grid of the moment histograms for a stick FWHM (eV).
@@ -205,7 +222,7 @@ class TRPESModel:
         delays: npt.ArrayLike,
         probe: GaussianPulse | None = None,
         pump: GaussianPulse | None = None,
-        resolution: float = 0.0,
+        resolution: Resolution = 0.0,
         convolve: bool = True,
         normalise: str = "alive",
     ) -> TRPESMap:
@@ -223,8 +240,9 @@ class TRPESModel:
         pump : GaussianPulse, optional
             Needed for ``convolve=True``; without a pump the pump is taken as
             infinitely short (cross-correlation = the probe alone).
-        resolution : float
-            Instrument FWHM in eV, added in quadrature.
+        resolution : float or ProportionalResolution
+            Instrument FWHM in eV, added in quadrature (energy-dependent: see
+            :mod:`.resolution`).
         convolve : bool
             Convolve with the cross-correlation (signal at negative delays) or
             return the pure signal.
@@ -236,7 +254,7 @@ class TRPESModel:
         """
         kinetic_energies = check_grid(kinetic_energies, "kinetic_energies")
         delays = check_grid(delays, "delays")
-        resolution = check_nonneg(resolution, "resolution")
+        resolution = check_resolution(resolution)
         probe = check_pulse(probe, "probe", optional=True) or self.probe
         pump = check_pulse(pump, "pump", optional=True)
         if (probe.photon_energy, probe.n_photons) != (self.probe.photon_energy,
@@ -257,8 +275,12 @@ class TRPESModel:
             sigma = None
         cmat = self.time_weights(delays, sigma=sigma)
         cmat = cmat * norm[None, :]
+        fwhm_of = None
+        if isinstance(resolution, ProportionalResolution):
+            def fwhm_of(c: np.ndarray) -> np.ndarray:
+                return np.asarray(stick_fwhm(probe, resolution, c))
         bmat = KB.broadening_blocks(kinetic_energies, e_lo=e_lo, h=h, n_fine=n_fine, fwhm=fwhm,
-                                    order=self.order)
+                                    order=self.order, fwhm_of=fwhm_of)
         total = KB.assemble(hist, bmat, cmat)[0]
         components: dict[str, np.ndarray] = {}
         if hist_comp is not None:
@@ -275,7 +297,7 @@ class TRPESModel:
                    "n_photons": probe.n_photons},
             pump=None if pump is None else {"photon_energy": pump.photon_energy,
                                             "fwhm": pump.fwhm, "n_photons": pump.n_photons},
-            resolution=resolution,
+            resolution=describe_resolution(resolution),
             fwhm_energy=fwhm,
             convolve=bool(convolve),
             sigma_cc=sigma,
@@ -287,6 +309,7 @@ class TRPESModel:
             order=self.order,
             bins_per_fwhm=self.bins_per_fwhm,
             energy_truncation="point-sampled; no signal below 0 eV (area below 0 discarded)",
+            assumptions=ASSUMPTIONS,
         )
         return TRPESMap(kinetic_energies=kinetic_energies, delays=delays, intensity=total,
                         components=components, alive=alive, alive_count=count, params=params)
