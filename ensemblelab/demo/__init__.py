@@ -243,6 +243,7 @@ def make_ensemble(
         "save_dt_fs": float(save_dt),
         "decoherence": decoherence,
         "absorbing_state": 0,  # trajectories may stop on S0 (none does in the demo)
+        "sampling": "doorway-selected",  # initial conditions drawn by doorway rejection
         "parameters": sc.as_dict(),
         "suggested_pump": {"photon_energy": sc.pump_energy, "fwhm": sc.pump_fwhm},
         "suggested_probe": {"photon_energy": sc.probe_energy, "fwhm": sc.probe_fwhm},
