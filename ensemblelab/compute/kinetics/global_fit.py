@@ -18,6 +18,15 @@ with one common variance), or, with
 plus resampled residual *rows* (whole delays, keeping the correlation along
 energy).
 
+Identifiability: after the fit, :func:`fit_diagnostics` looks for lifetimes that
+coincide (relative difference below 1 %, or overlapping intervals), intervals that
+reach zero, lifetimes beyond ten times the delay span (indistinguishable from the
+non-decaying component) and a nearly collinear kinetic basis or Jacobian; each
+finding is stored in ``diagnostics`` and raised as a
+:class:`~ensemblelab.errors.DegenerateFitWarning` with advice. Two coinciding
+lifetimes with large opposite spectra are the fit using ``t exp(-t / tau)``: the map
+is then not a sum of that many exponentials (typically a band moving in energy).
+
 A sequential target scheme (``scheme="sequential"``) interprets the same
 exponentials as a chain A -> B -> ... (fastest lifetime first; with
 ``include_infinite`` ending in a non-decaying species) and returns the
@@ -41,11 +50,11 @@ import pandas as pd
 from scipy.optimize import least_squares
 from scipy.stats import norm
 
-from ...errors import NumericalWarning, SchemaError
+from ...errors import DegenerateFitWarning, NumericalWarning, SchemaError
 from . import _kernels_populations as _k
 from .schemes import fwhm_to_sigma
 
-__all__ = ["fit_global", "GlobalFitResult", "decay_profiles"]
+__all__ = ["fit_global", "GlobalFitResult", "decay_profiles", "fit_diagnostics"]
 
 _FWHM_PER_SIGMA = 2.0 * math.sqrt(2.0 * math.log(2.0))
 
@@ -125,6 +134,8 @@ class GlobalFitResult:
     rmse : float
         Root-mean-square residual.
     ci : float
+    diagnostics : tuple of str
+        Identifiability problems found (see :func:`fit_diagnostics`); empty when none.
     """
 
     lifetimes: np.ndarray
@@ -149,6 +160,7 @@ class GlobalFitResult:
     summary: pd.DataFrame
     rmse: float
     ci: float
+    diagnostics: tuple[str, ...] = ()
 
     def das_frame(self) -> pd.DataFrame:
         """Tidy DAS: ``energy, component, lifetime, amplitude, se``."""
@@ -184,11 +196,75 @@ class GlobalFitResult:
             iv = "fixed" if r.fixed else ("-" if not np.isfinite(r.lower)
                                           else f"[{r.lower:.4g}, {r.upper:.4g}]")
             lines.append(f"  {r.parameter:<10} {r.value:>10.4g} {r.unit:<3} {iv}")
+        lines += [f"warning: {msg}" for msg in self.diagnostics]
         return "\n".join(lines)
 
     def _repr_html_(self) -> str:
         head = html.escape(str(self).splitlines()[0])
         return f"<div><strong>{head}</strong>{self.summary.to_html(index=False)}</div>"
+
+
+def fit_diagnostics(lifetimes: np.ndarray, lower: np.ndarray, upper: np.ndarray, *,
+                    span: float, basis: np.ndarray, jacobian: np.ndarray | None = None
+                    ) -> list[str]:
+    """Identifiability problems of a global fit (empty list: none found).
+
+    Parameters
+    ----------
+    lifetimes, lower, upper : ndarray, shape (L,)
+        Fitted lifetimes (ascending) and their interval bounds in fs (NaN: none).
+    span : float
+        Delay span after time zero (fs).
+    basis : ndarray, shape (n_delays, p)
+        Kinetic basis at the optimum.
+    jacobian : ndarray, shape (n_obs, n_nonlinear), optional
+        Projected Jacobian of the nonlinear parameters.
+
+    Returns
+    -------
+    list of str
+        One sentence per finding.
+    """
+    out: list[str] = []
+    taus = np.asarray(lifetimes, float)
+    for i in range(taus.size):
+        for j in range(i + 1, taus.size):
+            a, b = taus[i], taus[j]
+            overlap = (np.isfinite(lower[j]) and np.isfinite(upper[i])
+                       and lower[j] <= upper[i])
+            if abs(b - a) <= 0.01 * max(a, b) or overlap:
+                how = ("coincide" if abs(b - a) <= 0.01 * max(a, b)
+                       else "overlap within their intervals")
+                out.append(f"lifetimes tau_{i + 1} = {a:.4g} fs and tau_{j + 1} = {b:.4g} fs "
+                           f"{how}: the map does not determine {taus.size} distinct "
+                           "exponentials.")
+    for i, lo in enumerate(np.asarray(lower, float)):
+        if np.isfinite(lo) and lo <= 0:
+            out.append(f"the interval of tau_{i + 1} reaches zero or below ([{lo:.4g}, "
+                       f"{upper[i]:.4g}] fs): that lifetime is not determined.")
+    for i, t in enumerate(taus):
+        if span > 0 and t > 10.0 * span:
+            out.append(f"tau_{i + 1} = {t:.4g} fs is beyond ten times the delay span "
+                       f"({span:.4g} fs): indistinguishable from a non-decaying component.")
+    if basis.size:
+        norms = np.linalg.norm(basis, axis=0)
+        if np.all(norms > 0):
+            cond = float(np.linalg.cond(basis / norms))
+            if not np.isfinite(cond) or cond > 1e4:
+                out.append(f"the kinetic basis is nearly collinear (condition number "
+                           f"{cond:.3g}): its spectra (DAS) are large, opposite and unreliable.")
+    if jacobian is not None and jacobian.size:
+        norms = np.linalg.norm(jacobian, axis=0)
+        cond = float(np.linalg.cond(jacobian / np.where(norms > 0, norms, 1.0)))
+        if not np.isfinite(cond) or cond > 1e8 or np.any(norms == 0):
+            out.append(f"the Jacobian of the lifetimes is singular or ill-conditioned "
+                       f"(condition number {cond:.3g}).")
+    return out
+
+
+_ADVICE = ("Hint: use fewer components (n_components), fit one band (energy_range=), start "
+           "from other lifetimes (lifetimes=), or compare with fit_kinetics on the "
+           "populations; a band that moves in energy is not a sum of exponentials.")
 
 
 def _as_arrays(trpes_map: Any, energies, delays, intensity):
@@ -391,6 +467,7 @@ def fit_global(
 
     lo = np.full(x.size, math.nan)
     hi = np.full(x.size, math.nan)
+    jac_used: np.ndarray | None = None
     # natural value of each nonlinear parameter and d(natural)/d(x)
     nat = np.r_[taus, [sig * _FWHM_PER_SIGMA] if fit_sigma else [], [tz] if not fix_t0 else []]
     dn = np.r_[taus, [sig * _FWHM_PER_SIGMA] if fit_sigma else [], [1.0] if not fix_t0 else []]
@@ -412,6 +489,7 @@ def fit_global(
             dm = (_basis(d - zp, tp, sp, include_infinite)
                   - _basis(d - zm, tm, sm, include_infinite)) @ das / (2 * h)
             jac[:, j] = (dm - q @ (q.T @ dm)).ravel()
+        jac_used = jac[:, :L]
         cov = s2 * np.linalg.pinv(jac.T @ jac)
         se = np.sqrt(np.clip(np.diag(cov), 0, None)) * np.abs(dn)
         lo, hi = nat - z * se, nat + z * se
@@ -470,11 +548,16 @@ def fit_global(
         sas = np.linalg.solve(b.T, das)
         conc = y @ b.T
         species = tuple(chr(ord("A") + i) for i in range(p))
+    diag = tuple(fit_diagnostics(taus, lo[:L], hi[:L], span=span, basis=y,
+                                 jacobian=jac_used)) if L else ()
+    if diag:
+        warnings.warn("fit_global: " + " ".join(diag) + " " + _ADVICE, DegenerateFitWarning,
+                      stacklevel=2)
     return GlobalFitResult(
         lifetimes=taus, lifetime_lower=np.asarray(lo[:L], float),
         lifetime_upper=np.asarray(hi[:L], float), interval_method=method, das=das,
         das_se=das_se, components=comps, energies=e, delays=d, data=s, fitted=y @ das,
         residuals=r, profiles=y, irf_fwhm=fwhm_out, t0=tz, scheme=scheme, sas=sas,
         concentrations=conc, species=species, summary=summary,
-        rmse=float(math.sqrt(rss / n_obs)), ci=float(ci),
+        rmse=float(math.sqrt(rss / n_obs)), ci=float(ci), diagnostics=diag,
     )
