@@ -86,10 +86,14 @@ def decay_profiles(
                   fwhm_to_sigma(irf_fwhm), include_infinite)
 
 
-def _basis(u: np.ndarray, taus: np.ndarray, sigma: float, inf: bool) -> np.ndarray:
+def _basis(u: np.ndarray, taus: np.ndarray, sigma: float, inf: bool,
+           artefact: bool = False) -> np.ndarray:
     cols = [_k.irf_exp(u, tau, sigma) for tau in taus]
     if inf:
         cols.append(_k.irf_step(u, sigma))
+    if artefact:  # the IRF (peak 1) and its derivative shape -(u / sigma) IRF at t0
+        g = np.exp(-0.5 * (u / sigma) ** 2)
+        cols += [g, -(u / sigma) * g]
     return np.column_stack(cols) if cols else np.zeros((u.size, 0))
 
 
@@ -110,7 +114,7 @@ class GlobalFitResult:
     das_se : ndarray, shape (p, n_energies)
         Standard errors of the DAS given the lifetimes (conditional, linear).
     components : tuple of str
-        ``"tau_1"``, ... and ``"inf"``.
+        ``"tau_1"``, ..., ``"inf"`` and (coherent artefact) ``"artefact"``, ``"artefact_d"``.
     energies : ndarray, shape (n_energies,)
     delays : ndarray, shape (n_delays,)
         The fitted energies (eV) and delays (fs).
@@ -165,6 +169,7 @@ class GlobalFitResult:
     def das_frame(self) -> pd.DataFrame:
         """Tidy DAS: ``energy, component, lifetime, amplitude, se``."""
         life = list(self.lifetimes) + ([math.inf] if "inf" in self.components else [])
+        life += [math.nan] * (len(self.components) - len(life))  # coherent-artefact terms
         n_e = self.energies.size
         return pd.DataFrame({
             "energy": np.tile(self.energies, len(self.components)),
@@ -301,6 +306,7 @@ def fit_global(
     include_infinite: bool = True,
     lifetimes: npt.ArrayLike | None = None,
     scheme: str = "parallel",
+    coherent_artefact: bool = False,
     energy_range: tuple[float, float] | None = None,
     delay_range: tuple[float, float] | None = None,
     interval: str | None = "covariance",
@@ -336,6 +342,10 @@ def fit_global(
     scheme : {"parallel", "sequential"}
         Also return species-associated spectra of a sequential chain with
         ``"sequential"`` (fastest lifetime first).
+    coherent_artefact : bool
+        Add a coherent-artefact term at t0: the Gaussian IRF and its derivative shape,
+        each with its own spectrum (components ``"artefact"``, ``"artefact_d"``, after
+        the kinetic ones); needs an IRF width.
     energy_range, delay_range : (float, float), optional
         Fit only this part of the map (closed ranges, eV / fs).
     interval : {"covariance", "bootstrap", None}
@@ -394,7 +404,11 @@ def fit_global(
                       "non-finite intensity.", NumericalWarning, stacklevel=2)
     dsel &= finite_rows
     e, d, s = e[esel], d[dsel], s[np.ix_(dsel, esel)]
-    p = L + int(include_infinite)
+    art = bool(coherent_artefact)
+    if art and irf_fwhm is None and fix_irf:
+        raise SchemaError("fit_global(coherent_artefact=True) needs irf_fwhm= (or fix_irf=False).")
+    p_kin = L + int(include_infinite)
+    p = p_kin + 2 * art
     if d.size <= p + 1 or e.size == 0:
         raise SchemaError(f"fit_global needs more than {p + 1} delays and at least one energy "
                           f"in range; got {d.size} delays x {e.size} energies.")
@@ -417,7 +431,7 @@ def fit_global(
 
     def project(x: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         taus, sig, tz = unpack(x)
-        y = _basis(d - tz, taus, sig, include_infinite)
+        y = _basis(d - tz, taus, sig, include_infinite, art)
         das, *_ = np.linalg.lstsq(y, s, rcond=None)
         return y, das, s - y @ das
 
@@ -486,8 +500,8 @@ def fit_global(
             xm[j] -= h
             tp, sp, zp = unpack(xp)
             tm, sm, zm = unpack(xm)
-            dm = (_basis(d - zp, tp, sp, include_infinite)
-                  - _basis(d - zm, tm, sm, include_infinite)) @ das / (2 * h)
+            dm = (_basis(d - zp, tp, sp, include_infinite, art)
+                  - _basis(d - zm, tm, sm, include_infinite, art)) @ das / (2 * h)
             jac[:, j] = (dm - q @ (q.T @ dm)).ravel()
         jac_used = jac[:, :L]
         cov = s2 * np.linalg.pinv(jac.T @ jac)
@@ -505,7 +519,7 @@ def fit_global(
 
             def resid_b(xx: np.ndarray, s_b: np.ndarray = s_b) -> np.ndarray:
                 tb, sg, t_z = unpack(xx)
-                yb = _basis(d - t_z, tb, sg, include_infinite)
+                yb = _basis(d - t_z, tb, sg, include_infinite, art)
                 db, *_ = np.linalg.lstsq(yb, s_b, rcond=None)
                 return (s_b - yb @ db).ravel()
 
@@ -522,7 +536,8 @@ def fit_global(
     else:
         method = "none (no nonlinear parameters)"
 
-    comps = tuple([f"tau_{i + 1}" for i in range(L)] + (["inf"] if include_infinite else []))
+    comps = tuple([f"tau_{i + 1}" for i in range(L)] + (["inf"] if include_infinite else [])
+                  + (["artefact", "artefact_d"] if art else []))
     rows = [(f"tau_{i + 1}", float(taus[i]), float(lo[i]), float(hi[i]), "fs", False)
             for i in range(L)]
     j = L
@@ -545,9 +560,9 @@ def fit_global(
         b = _k.sequential_coefficients(rates)
         if np.unique(np.round(rates, 14)).size < rates.size:
             raise SchemaError("fit_global(scheme='sequential') needs distinct lifetimes.")
-        sas = np.linalg.solve(b.T, das)
-        conc = y @ b.T
-        species = tuple(chr(ord("A") + i) for i in range(p))
+        sas = np.linalg.solve(b.T, das[:p_kin])
+        conc = y[:, :p_kin] @ b.T
+        species = tuple(chr(ord("A") + i) for i in range(p_kin))
     diag = tuple(fit_diagnostics(taus, lo[:L], hi[:L], span=span, basis=y,
                                  jacobian=jac_used)) if L else ()
     if diag:
