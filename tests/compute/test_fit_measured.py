@@ -178,3 +178,16 @@ def test_errors_and_top_level_export(ens):
         fit(ens, meas, shift_bounds=(0.5, -0.5))
     with pytest.raises(SchemaError, match="usable pixels"):
         fit(ens, meas, energy_range=(0.0, 0.02))
+
+
+def test_measured_delays_after_the_simulation_are_left_out(ens):
+    meas, _ = planted_map(ens, shifts=np.zeros(3), t0=T0)
+    late = np.arange(DELAYS[-1] + 8.0, 700.0, 8.0)  # simulation ends at 300 fs
+    inten = np.vstack([meas.intensity, np.full((late.size, ENERGIES.size), 7.0)])
+    long = TRPESMap(kinetic_energies=ENERGIES, delays=np.r_[DELAYS, late], intensity=inten)
+    res = fit(ens, long, fit_shifts=False, fit_xcorr=False, fit_background=False)
+    # planted time zero and scale (computed independently (not published))
+    assert res.time_zero == pytest.approx(T0, abs=1e-3)
+    assert res.scale == pytest.approx(1.0, abs=1e-5)
+    assert any("after the end of the simulation" in n for n in res.notes)
+    assert np.isnan(res.residual.intensity[-late.size:]).all()

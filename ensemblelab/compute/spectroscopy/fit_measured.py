@@ -137,8 +137,12 @@ class ChannelMaps:
         return list(self.model.labels)
 
     def time_matrix(self, delays: np.ndarray, t0: float, fwhm: float) -> np.ndarray:
-        """(n_delays, n_time): the measured delays from the pure signal (see the module)."""
-        return np.asarray(self.model.time_weights(delays - t0, sigma=fwhm / _FWHM_PER_SIGMA))
+        """(n_delays, n_time): the measured delays from the pure signal (see the module).
+
+        Rows of delays wholly after the simulated span (no known signal) are zero.
+        """
+        c = np.asarray(self.model.time_weights(delays - t0, sigma=fwhm / _FWHM_PER_SIGMA))
+        return np.nan_to_num(c, nan=0.0, posinf=0.0, neginf=0.0)
 
 
 def _check_measured(measured: Any, uncertainty: npt.ArrayLike | None
@@ -383,6 +387,18 @@ def fit_measured_map(
     p_start = np.r_[np.zeros(n_ch), 0.0, float(xcorr_fwhm), 1.0, 0.0]
     prob = _Problem(cm, d, y, w, free, p_start)
     p_start = _coarse_start(prob, fs, (s_lo, s_hi), (t_lo, t_hi), fit_background)
+    late = d - p_start[n_ch] > float(cm.model.t_known)
+    if np.any(late):  # measured delays after the simulated span: nothing to compare with
+        mask[late] = False
+        w[late] = 0.0
+        y[late] = 0.0
+        notes.append(f"{int(late.sum())} measured delays after the end of the simulation "
+                     f"({float(cm.model.t_known):.4g} fs simulated, from "
+                     f"{float(d[late][0]):.4g} fs measured) are left out of the fit.")
+    if int(mask.sum()) <= int(free.sum()) + 1:
+        raise SchemaError(f"fit_measured_map: only {int(mask.sum())} usable pixels inside the "
+                          "simulated span. Hint: simulate longer trajectories or pass "
+                          "delay_range= inside the simulated span.")
     lo = np.r_[np.full(n_ch, s_lo), t_lo, w_lo, -np.inf, -np.inf][free]
     hi = np.r_[np.full(n_ch, s_hi), t_hi, w_hi, np.inf, np.inf][free]
     prob.p_fixed = p_start
@@ -446,22 +462,33 @@ def fit_measured_map(
 
 def _coarse_start(prob: _Problem, fs: np.ndarray, sb: tuple[float, float],
                   tb: tuple[float, float], fit_background: bool) -> np.ndarray:
-    """Best (common shift, t0) on a coarse grid, with the best scale and background."""
+    """Best (common shift, t0) on a coarse grid, with the best scale and background.
+
+    For each t0 only the measured delays inside the simulated span count, and the cost
+    is the mean weighted squared residual over them (comparable across t0).
+    """
     n_ch = prob.n_ch
     shifts = np.linspace(sb[0], sb[1], 11) if np.any(fs) else np.zeros(1)
     if np.any(fs) and not np.any(shifts == 0.0):
         shifts = np.sort(np.r_[shifts, 0.0])
     t0s = np.linspace(tb[0], tb[1], 41)
     fwhm = prob.p_fixed[n_ch + 1]
+    t_known = float(prob.cm.model.t_known)
     cmats = [prob.cm.time_matrix(prob.delays, t0, fwhm) for t0 in t0s]
-    yw, w = (prob.y * prob.w).ravel(), prob.w.ravel()
     best = (math.inf, prob.p_fixed.copy())
     for s in shifts:
         total = prob.cm(np.where(fs, s, 0.0)).sum(axis=0)
         for t0, c in zip(t0s, cmats, strict=True):
-            a = np.column_stack([(c @ total).ravel() * w] + ([w] if fit_background else []))
+            rows = prob.delays - t0 <= t_known
+            w = prob.w[rows].ravel()
+            n = int(np.count_nonzero(w))
+            if n <= 3:
+                continue
+            yw = prob.y[rows].ravel() * w
+            a = np.column_stack([(c[rows] @ total).ravel() * w]
+                                + ([w] if fit_background else []))
             coef, *_ = np.linalg.lstsq(a, yw, rcond=None)
-            cost = float(np.sum((yw - a @ coef) ** 2))
+            cost = float(np.sum((yw - a @ coef) ** 2)) / n
             if cost < best[0]:
                 p = prob.p_fixed.copy()
                 p[:n_ch] = np.where(fs, s, 0.0)
