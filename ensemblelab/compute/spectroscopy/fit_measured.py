@@ -421,6 +421,9 @@ def fit_measured_map(
     if interval is not None:
         cov[np.ix_(free, free)] = s2 * np.linalg.pinv(jtj)
     boot = None
+    if interval == "covariance":
+        notes.append("covariance intervals see the measurement's noise only; "
+                     "interval='bootstrap' adds the simulation's finite trajectory sampling.")
     if interval == "bootstrap":
         boot = _bootstrap(ens, prob, opts, p_hat, lo, hi, int(n_boot), random_state, progress)
     resid_full = np.where(mask, y - model, np.nan)
