@@ -191,3 +191,25 @@ def test_measured_delays_after_the_simulation_are_left_out(ens):
     assert res.scale == pytest.approx(1.0, abs=1e-5)
     assert any("after the end of the simulation" in n for n in res.notes)
     assert np.isnan(res.residual.intensity[-late.size:]).all()
+
+
+def test_jacobian_matches_one_parameter_at_a_time_differences(ens):
+    # the fit perturbs every channel's shift at once (a channel's map depends on its own
+    # shift only); the naive twin perturbs one parameter at a time (common practice)
+    meas, sigma = planted_map(ens, noise=0.02)
+    cm = fm.ChannelMaps(ens, ENERGIES, {"probe": PROBE, "pump": PUMP, "weights": "doorway",
+                                        "resolution": RESOLUTION, "cross_section": "dyson",
+                                        "time_step": None})
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        cm(np.zeros(3))
+        w = np.full(meas.shape, 1.0 / sigma)
+        prob = fm._Problem(cm, DELAYS, meas.intensity, w, np.ones(7, bool), np.zeros(7))
+        x = np.array([0.15, -0.05, 0.02, 10.0, 40.0, 0.9, 0.01])
+        jac = prob.jac(x)
+        steps = [2e-3, 2e-3, 2e-3, 0.1, 0.1, 1e-4, 1e-4]
+        naive = np.column_stack([
+            (prob.resid(x + h * np.eye(7)[j]) - prob.resid(x - h * np.eye(7)[j])) / (2 * h)
+            for j, h in enumerate(steps)])
+    scale = np.abs(naive).max(axis=0)
+    np.testing.assert_allclose(jac / scale, naive / scale, atol=2e-3)
