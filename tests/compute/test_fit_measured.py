@@ -213,3 +213,16 @@ def test_jacobian_matches_one_parameter_at_a_time_differences(ens):
             for j, h in enumerate(steps)])
     scale = np.abs(naive).max(axis=0)
     np.testing.assert_allclose(jac / scale, naive / scale, atol=2e-3)
+
+
+def test_a_parameter_at_its_search_bound_is_flagged(ens):
+    from ensemblelab.errors import NumericalWarning
+
+    meas, _ = planted_map(ens, shifts=np.zeros(3), t0=T0)
+    # planted t0 = 12 fs lies outside the allowed range (computed independently (not published))
+    with pytest.warns(NumericalWarning, match="time_zero.*search bound"):
+        res = fm.fit_measured_map(ens, meas, probe=PROBE, pump=PUMP, resolution=RESOLUTION,
+                                  fit_shifts=False, time_zero_bounds=(-20.0, 5.0),
+                                  progress=False)
+    assert res.time_zero == pytest.approx(5.0, abs=1e-3)
+    assert any("search bound" in n for n in res.notes)

@@ -404,6 +404,15 @@ def fit_measured_map(
     prob.p_fixed = p_start
     p_hat = prob.full(_solve(prob, p_start[free], lo, hi))
     conv, model = prob.parts(p_hat)
+    names = [f"shift_{lab}" for lab in cm.labels] + ["time_zero", "xcorr_fwhm"]
+    lo_full = np.r_[np.full(n_ch, s_lo), t_lo, w_lo]
+    hi_full = np.r_[np.full(n_ch, s_hi), t_hi, w_hi]
+    for j in np.flatnonzero(free[: n_ch + 2]):
+        v, b_lo, b_hi = p_hat[j], lo_full[j], hi_full[j]
+        if min(v - b_lo, b_hi - v) <= 1e-6 * (b_hi - b_lo):
+            notes.append(f"{names[j]} = {v:.4g} is at its search bound [{b_lo:.4g}, "
+                         f"{b_hi:.4g}]: its interval is not meaningful; widen the bounds.")
+            warnings.warn("fit_measured_map: " + notes[-1], NumericalWarning, stacklevel=2)
     r_w = (y - model) * w
     n_obs, n_par = int(mask.sum()), int(free.sum())
     dof = n_obs - n_par
