@@ -17,6 +17,7 @@ from ._exports import lazy_exports
 from .compute import DOMAINS
 from .data import Ensemble
 from .errors import (
+    DegenerateFitWarning,
     EnsembleWarning,
     MissingDependencyError,
     ParseError,
@@ -45,6 +46,7 @@ _COMPUTE, _compute_getattr, _ = lazy_exports("ensemblelab", DOMAINS, globals())
 __all__ = [
     "__version__",
     "Ensemble",
+    "DegenerateFitWarning",
     "EnsembleWarning",
     "MissingDependencyError",
     "ParseError",

@@ -124,3 +124,7 @@ class UnitWarning(EnsembleWarning):
 
 class NumericalWarning(EnsembleWarning):
     """A numerical procedure is ill-conditioned or its result is unreliable."""
+
+
+class DegenerateFitWarning(NumericalWarning):
+    """A fit's parameters are not identifiable from the data (equal or unbounded values)."""

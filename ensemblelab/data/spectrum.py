@@ -85,6 +85,9 @@ class TRPESMap:
     alive_count : ndarray, shape (n_delays,)
         Number of trajectories alive at each delay of the pure signal (whatever their
         weights), interpolated to the delay grid; NaN where unknown.
+    uncertainty : ndarray, shape (n_delays, n_energies), or None
+        One standard deviation of `intensity` (a measured map's noise, same unit);
+        None when unknown. NaN or 0 marks a pixel without a usable uncertainty.
     params : dict
         The parameters used (JSON-serialisable).
 
@@ -110,6 +113,7 @@ class TRPESMap:
     alive: np.ndarray | None = None
     params: dict[str, Any] = field(default_factory=dict)
     alive_count: np.ndarray | None = None
+    uncertainty: np.ndarray | None = None
 
     def __post_init__(self) -> None:
         set_ = object.__setattr__
@@ -140,6 +144,14 @@ class TRPESMap:
         set_(self, "components", comps)
         set_(self, "alive", alive)
         set_(self, "alive_count", count)
+        if self.uncertainty is not None:
+            unc = _ro(self.uncertainty, "uncertainty", ndim=2)
+            if unc.shape != shape:
+                raise SchemaError(f"uncertainty must have shape {shape} like intensity; got "
+                                  f"{unc.shape}.")
+            if np.any(unc < 0):
+                raise SchemaError("uncertainty must be >= 0 (one standard deviation).")
+            set_(self, "uncertainty", unc)
         set_(self, "params", _json_safe(dict(self.params)))
 
     # ------------------------------------------------------------------ basics

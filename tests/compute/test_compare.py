@@ -137,3 +137,24 @@ def test_demo_measured_map_regenerates_identically_and_is_found():
     assert res.time_zero == pytest.approx(8.0, abs=6.0)
     assert res.r2 > compare_maps(sim, meas).r2
     assert res.cosine > 0.9
+
+
+def test_compare_reports_intervals_that_cover_the_planted_values():
+    e = np.linspace(0.0, 2.0, 201)
+    d = np.arange(-100.0, 300.0, 2.0)
+    sim = TRPESMap(kinetic_energies=e, delays=d, intensity=_analytic_map(e, d))
+    em = np.linspace(0.1, 1.9, 91)
+    dm = np.arange(-80.0, 280.0, 4.0)
+    # planted: scale 3, shift 0.1 eV, time zero 12 fs (computed independently (not
+    # published)); Gaussian noise 0.3 of known sigma (large against the bilinear-resampling
+    # error of the model, which these intervals do not see)
+    clean = _analytic_map(em, dm, e0=1.1, t0=12.0, scale=3.0)
+    noisy = clean + 0.3 * np.random.default_rng(4).standard_normal(clean.shape)
+    meas = TRPESMap(kinetic_energies=em, delays=dm, intensity=noisy)
+    res = compare_maps(sim, meas, fit_energy_shift=True, fit_time_zero=True)
+    for name, true in (("scale", 3.0), ("energy_shift", 0.1), ("time_zero", 12.0)):
+        lo, hi = res.intervals[name]
+        assert lo < getattr(res, name) < hi
+        assert lo <= true <= hi, (name, lo, hi)
+    assert set(compare_maps(sim, meas).intervals) == {"scale"}
+    assert res.model.params["intervals"]["time_zero"] == list(res.intervals["time_zero"])

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import math
+import warnings
 
 import numpy as np
 import pytest
@@ -190,3 +191,88 @@ def test_fit_global_accepts_trpes_map():
     m = TRPESMap(kinetic_energies=e, delays=d, intensity=s, alive=np.ones(d.size))
     res = fit_global(m, irf_fwhm=T_CC)
     assert res.lifetimes[0] == pytest.approx(100.0, rel=1e-6)
+
+
+def _degenerate_map():
+    # kinetics exp(-t/tau) and (t/tau) exp(-t/tau) (a sequential chain with two equal rates,
+    # the limit of two coinciding exponentials; derived independently, not published), each
+    # with its own spectrum, plus a little noise: no pair of distinct lifetimes fits it
+    e = np.linspace(0.0, 2.0, 41)
+    d = np.arange(-80.0, 500.0 + 1e-9, 4.0)
+    tau, h = 60.0, 1e-3
+    y = decay_profiles(d, [tau], irf_fwhm=T_CC, include_infinite=False)[:, 0]
+    dy = (decay_profiles(d, [tau + h], irf_fwhm=T_CC, include_infinite=False)[:, 0]
+          - decay_profiles(d, [tau - h], irf_fwhm=T_CC, include_infinite=False)[:, 0]) / (2 * h)
+    s = np.outer(y, gauss(e, 1.4, 0.3)) + np.outer(tau * dy, gauss(e, 0.8, 0.3))
+    s += 1e-3 * np.random.default_rng(0).standard_normal(s.shape)
+    return e, d, s
+
+
+def test_fit_global_warns_when_two_lifetimes_coincide():
+    from ensemblelab.errors import DegenerateFitWarning
+
+    e, d, s = _degenerate_map()
+    with pytest.warns(DegenerateFitWarning, match="coincide|overlap.*Hint: use fewer"):
+        res = fit_global(energies=e, delays=d, intensity=s, n_components=2, irf_fwhm=T_CC)
+    assert res.diagnostics and "warning:" in str(res)
+    # a well-posed two-lifetime map (tau = 50, 200 fs, as above, plus noise) gives none
+    e2 = np.linspace(0.0, 2.0, 81)
+    d2 = np.arange(-80.0, 800.0 + 1e-9, 4.0)
+    das = np.vstack([gauss(e2, 1.2, 0.3), -0.6 * gauss(e2, 0.9, 0.2), 0.4 * gauss(e2, 0.5, 0.25)])
+    s2 = decay_profiles(d2, [50.0, 200.0], irf_fwhm=T_CC) @ das
+    s2 = s2 + 1e-3 * np.random.default_rng(1).standard_normal(s2.shape)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", DegenerateFitWarning)
+        ok = fit_global(energies=e2, delays=d2, intensity=s2, n_components=2, irf_fwhm=T_CC)
+    assert ok.diagnostics == ()
+    assert np.all(ok.lifetime_lower > 0)
+
+
+def test_fit_diagnostics_flags_each_problem():
+    from ensemblelab.compute.kinetics.global_fit import fit_diagnostics
+
+    d = np.arange(0.0, 300.0, 5.0)
+    good = decay_profiles(d, [20.0, 150.0], irf_fwhm=30.0)
+    # distinct lifetimes with tight intervals: nothing to report (common practice)
+    assert fit_diagnostics(np.array([20.0, 150.0]), np.array([18.0, 140.0]),
+                           np.array([22.0, 160.0]), span=300.0, basis=good) == []
+    msgs = fit_diagnostics(np.array([40.0, 45.0]), np.array([30.0, 35.0]),
+                           np.array([50.0, 55.0]), span=300.0, basis=good)
+    assert any("overlap" in m for m in msgs)
+    msgs = fit_diagnostics(np.array([20.0]), np.array([-5.0]), np.array([45.0]), span=300.0,
+                           basis=good)
+    assert any("reaches zero" in m for m in msgs)
+    msgs = fit_diagnostics(np.array([5000.0]), np.array([4000.0]), np.array([6000.0]),
+                           span=300.0, basis=good)
+    assert any("ten times the delay span" in m for m in msgs)
+    twin = decay_profiles(d, [56.25, 56.26], irf_fwhm=30.0)
+    msgs = fit_diagnostics(np.array([56.25, 56.26]), np.full(2, np.nan), np.full(2, np.nan),
+                           span=300.0, basis=twin)
+    assert any("coincide" in m for m in msgs) and any("collinear" in m for m in msgs)
+
+
+def test_fit_global_coherent_artefact_term():
+    # a decay (tau = 80 fs) plus an artefact at t0 = IRF Gaussian and its derivative shape,
+    # each with an invented spectrum (derived independently, not published): with the term
+    # the lifetime and the artefact spectra come back exactly; without it the lifetime is
+    # biased
+    e = np.linspace(0.0, 2.0, 41)
+    d = np.arange(-120.0, 600.0 + 1e-9, 4.0)
+    sigma = T_CC / (2 * math.sqrt(2 * LN2))
+    g = np.exp(-0.5 * (d / sigma) ** 2)
+    das = gauss(e, 1.2, 0.3)
+    art0, art1 = 0.8 * gauss(e, 0.6, 0.4), -0.5 * gauss(e, 1.0, 0.4)
+    s = (np.outer(decay_profiles(d, [80.0], irf_fwhm=T_CC, include_infinite=False)[:, 0], das)
+         + np.outer(g, art0) + np.outer(-(d / sigma) * g, art1))
+    res = fit_global(energies=e, delays=d, intensity=s, n_components=1, irf_fwhm=T_CC,
+                     include_infinite=False, coherent_artefact=True)
+    assert res.components == ("tau_1", "artefact", "artefact_d")
+    assert res.lifetimes[0] == pytest.approx(80.0, rel=1e-6)
+    np.testing.assert_allclose(res.das[1], art0, atol=1e-7)
+    np.testing.assert_allclose(res.das[2], art1, atol=1e-7)
+    assert len(res.das_frame()) == 3 * e.size
+    plain = fit_global(energies=e, delays=d, intensity=s, n_components=1, irf_fwhm=T_CC,
+                       include_infinite=False)
+    assert abs(plain.lifetimes[0] - 80.0) > 1.0
+    with pytest.raises(SchemaError, match="coherent_artefact"):
+        fit_global(energies=e, delays=d, intensity=s, coherent_artefact=True)

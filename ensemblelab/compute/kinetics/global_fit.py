@@ -18,6 +18,15 @@ with one common variance), or, with
 plus resampled residual *rows* (whole delays, keeping the correlation along
 energy).
 
+Identifiability: after the fit, :func:`fit_diagnostics` looks for lifetimes that
+coincide (relative difference below 1 %, or overlapping intervals), intervals that
+reach zero, lifetimes beyond ten times the delay span (indistinguishable from the
+non-decaying component) and a nearly collinear kinetic basis or Jacobian; each
+finding is stored in ``diagnostics`` and raised as a
+:class:`~ensemblelab.errors.DegenerateFitWarning` with advice. Two coinciding
+lifetimes with large opposite spectra are the fit using ``t exp(-t / tau)``: the map
+is then not a sum of that many exponentials (typically a band moving in energy).
+
 A sequential target scheme (``scheme="sequential"``) interprets the same
 exponentials as a chain A -> B -> ... (fastest lifetime first; with
 ``include_infinite`` ending in a non-decaying species) and returns the
@@ -41,11 +50,11 @@ import pandas as pd
 from scipy.optimize import least_squares
 from scipy.stats import norm
 
-from ...errors import NumericalWarning, SchemaError
+from ...errors import DegenerateFitWarning, NumericalWarning, SchemaError
 from . import _kernels_populations as _k
 from .schemes import fwhm_to_sigma
 
-__all__ = ["fit_global", "GlobalFitResult", "decay_profiles"]
+__all__ = ["fit_global", "GlobalFitResult", "decay_profiles", "fit_diagnostics"]
 
 _FWHM_PER_SIGMA = 2.0 * math.sqrt(2.0 * math.log(2.0))
 
@@ -77,10 +86,14 @@ def decay_profiles(
                   fwhm_to_sigma(irf_fwhm), include_infinite)
 
 
-def _basis(u: np.ndarray, taus: np.ndarray, sigma: float, inf: bool) -> np.ndarray:
+def _basis(u: np.ndarray, taus: np.ndarray, sigma: float, inf: bool,
+           artefact: bool = False) -> np.ndarray:
     cols = [_k.irf_exp(u, tau, sigma) for tau in taus]
     if inf:
         cols.append(_k.irf_step(u, sigma))
+    if artefact:  # the IRF (peak 1) and its derivative shape -(u / sigma) IRF at t0
+        g = np.exp(-0.5 * (u / sigma) ** 2)
+        cols += [g, -(u / sigma) * g]
     return np.column_stack(cols) if cols else np.zeros((u.size, 0))
 
 
@@ -101,7 +114,7 @@ class GlobalFitResult:
     das_se : ndarray, shape (p, n_energies)
         Standard errors of the DAS given the lifetimes (conditional, linear).
     components : tuple of str
-        ``"tau_1"``, ... and ``"inf"``.
+        ``"tau_1"``, ..., ``"inf"`` and (coherent artefact) ``"artefact"``, ``"artefact_d"``.
     energies : ndarray, shape (n_energies,)
     delays : ndarray, shape (n_delays,)
         The fitted energies (eV) and delays (fs).
@@ -125,6 +138,8 @@ class GlobalFitResult:
     rmse : float
         Root-mean-square residual.
     ci : float
+    diagnostics : tuple of str
+        Identifiability problems found (see :func:`fit_diagnostics`); empty when none.
     """
 
     lifetimes: np.ndarray
@@ -149,10 +164,12 @@ class GlobalFitResult:
     summary: pd.DataFrame
     rmse: float
     ci: float
+    diagnostics: tuple[str, ...] = ()
 
     def das_frame(self) -> pd.DataFrame:
         """Tidy DAS: ``energy, component, lifetime, amplitude, se``."""
         life = list(self.lifetimes) + ([math.inf] if "inf" in self.components else [])
+        life += [math.nan] * (len(self.components) - len(life))  # coherent-artefact terms
         n_e = self.energies.size
         return pd.DataFrame({
             "energy": np.tile(self.energies, len(self.components)),
@@ -184,11 +201,75 @@ class GlobalFitResult:
             iv = "fixed" if r.fixed else ("-" if not np.isfinite(r.lower)
                                           else f"[{r.lower:.4g}, {r.upper:.4g}]")
             lines.append(f"  {r.parameter:<10} {r.value:>10.4g} {r.unit:<3} {iv}")
+        lines += [f"warning: {msg}" for msg in self.diagnostics]
         return "\n".join(lines)
 
     def _repr_html_(self) -> str:
         head = html.escape(str(self).splitlines()[0])
         return f"<div><strong>{head}</strong>{self.summary.to_html(index=False)}</div>"
+
+
+def fit_diagnostics(lifetimes: np.ndarray, lower: np.ndarray, upper: np.ndarray, *,
+                    span: float, basis: np.ndarray, jacobian: np.ndarray | None = None
+                    ) -> list[str]:
+    """Identifiability problems of a global fit (empty list: none found).
+
+    Parameters
+    ----------
+    lifetimes, lower, upper : ndarray, shape (L,)
+        Fitted lifetimes (ascending) and their interval bounds in fs (NaN: none).
+    span : float
+        Delay span after time zero (fs).
+    basis : ndarray, shape (n_delays, p)
+        Kinetic basis at the optimum.
+    jacobian : ndarray, shape (n_obs, n_nonlinear), optional
+        Projected Jacobian of the nonlinear parameters.
+
+    Returns
+    -------
+    list of str
+        One sentence per finding.
+    """
+    out: list[str] = []
+    taus = np.asarray(lifetimes, float)
+    for i in range(taus.size):
+        for j in range(i + 1, taus.size):
+            a, b = taus[i], taus[j]
+            overlap = (np.isfinite(lower[j]) and np.isfinite(upper[i])
+                       and lower[j] <= upper[i])
+            if abs(b - a) <= 0.01 * max(a, b) or overlap:
+                how = ("coincide" if abs(b - a) <= 0.01 * max(a, b)
+                       else "overlap within their intervals")
+                out.append(f"lifetimes tau_{i + 1} = {a:.4g} fs and tau_{j + 1} = {b:.4g} fs "
+                           f"{how}: the map does not determine {taus.size} distinct "
+                           "exponentials.")
+    for i, lo in enumerate(np.asarray(lower, float)):
+        if np.isfinite(lo) and lo <= 0:
+            out.append(f"the interval of tau_{i + 1} reaches zero or below ([{lo:.4g}, "
+                       f"{upper[i]:.4g}] fs): that lifetime is not determined.")
+    for i, t in enumerate(taus):
+        if span > 0 and t > 10.0 * span:
+            out.append(f"tau_{i + 1} = {t:.4g} fs is beyond ten times the delay span "
+                       f"({span:.4g} fs): indistinguishable from a non-decaying component.")
+    if basis.size:
+        norms = np.linalg.norm(basis, axis=0)
+        if np.all(norms > 0):
+            cond = float(np.linalg.cond(basis / norms))
+            if not np.isfinite(cond) or cond > 1e4:
+                out.append(f"the kinetic basis is nearly collinear (condition number "
+                           f"{cond:.3g}): its spectra (DAS) are large, opposite and unreliable.")
+    if jacobian is not None and jacobian.size:
+        norms = np.linalg.norm(jacobian, axis=0)
+        cond = float(np.linalg.cond(jacobian / np.where(norms > 0, norms, 1.0)))
+        if not np.isfinite(cond) or cond > 1e8 or np.any(norms == 0):
+            out.append(f"the Jacobian of the lifetimes is singular or ill-conditioned "
+                       f"(condition number {cond:.3g}).")
+    return out
+
+
+_ADVICE = ("Hint: use fewer components (n_components), fit one band (energy_range=), start "
+           "from other lifetimes (lifetimes=), or compare with fit_kinetics on the "
+           "populations; a band that moves in energy is not a sum of exponentials.")
 
 
 def _as_arrays(trpes_map: Any, energies, delays, intensity):
@@ -225,6 +306,7 @@ def fit_global(
     include_infinite: bool = True,
     lifetimes: npt.ArrayLike | None = None,
     scheme: str = "parallel",
+    coherent_artefact: bool = False,
     energy_range: tuple[float, float] | None = None,
     delay_range: tuple[float, float] | None = None,
     interval: str | None = "covariance",
@@ -260,6 +342,10 @@ def fit_global(
     scheme : {"parallel", "sequential"}
         Also return species-associated spectra of a sequential chain with
         ``"sequential"`` (fastest lifetime first).
+    coherent_artefact : bool
+        Add a coherent-artefact term at t0: the Gaussian IRF and its derivative shape,
+        each with its own spectrum (components ``"artefact"``, ``"artefact_d"``, after
+        the kinetic ones); needs an IRF width.
     energy_range, delay_range : (float, float), optional
         Fit only this part of the map (closed ranges, eV / fs).
     interval : {"covariance", "bootstrap", None}
@@ -318,7 +404,11 @@ def fit_global(
                       "non-finite intensity.", NumericalWarning, stacklevel=2)
     dsel &= finite_rows
     e, d, s = e[esel], d[dsel], s[np.ix_(dsel, esel)]
-    p = L + int(include_infinite)
+    art = bool(coherent_artefact)
+    if art and irf_fwhm is None and fix_irf:
+        raise SchemaError("fit_global(coherent_artefact=True) needs irf_fwhm= (or fix_irf=False).")
+    p_kin = L + int(include_infinite)
+    p = p_kin + 2 * art
     if d.size <= p + 1 or e.size == 0:
         raise SchemaError(f"fit_global needs more than {p + 1} delays and at least one energy "
                           f"in range; got {d.size} delays x {e.size} energies.")
@@ -341,7 +431,7 @@ def fit_global(
 
     def project(x: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         taus, sig, tz = unpack(x)
-        y = _basis(d - tz, taus, sig, include_infinite)
+        y = _basis(d - tz, taus, sig, include_infinite, art)
         das, *_ = np.linalg.lstsq(y, s, rcond=None)
         return y, das, s - y @ das
 
@@ -391,6 +481,7 @@ def fit_global(
 
     lo = np.full(x.size, math.nan)
     hi = np.full(x.size, math.nan)
+    jac_used: np.ndarray | None = None
     # natural value of each nonlinear parameter and d(natural)/d(x)
     nat = np.r_[taus, [sig * _FWHM_PER_SIGMA] if fit_sigma else [], [tz] if not fix_t0 else []]
     dn = np.r_[taus, [sig * _FWHM_PER_SIGMA] if fit_sigma else [], [1.0] if not fix_t0 else []]
@@ -409,9 +500,10 @@ def fit_global(
             xm[j] -= h
             tp, sp, zp = unpack(xp)
             tm, sm, zm = unpack(xm)
-            dm = (_basis(d - zp, tp, sp, include_infinite)
-                  - _basis(d - zm, tm, sm, include_infinite)) @ das / (2 * h)
+            dm = (_basis(d - zp, tp, sp, include_infinite, art)
+                  - _basis(d - zm, tm, sm, include_infinite, art)) @ das / (2 * h)
             jac[:, j] = (dm - q @ (q.T @ dm)).ravel()
+        jac_used = jac[:, :L]
         cov = s2 * np.linalg.pinv(jac.T @ jac)
         se = np.sqrt(np.clip(np.diag(cov), 0, None)) * np.abs(dn)
         lo, hi = nat - z * se, nat + z * se
@@ -427,7 +519,7 @@ def fit_global(
 
             def resid_b(xx: np.ndarray, s_b: np.ndarray = s_b) -> np.ndarray:
                 tb, sg, t_z = unpack(xx)
-                yb = _basis(d - t_z, tb, sg, include_infinite)
+                yb = _basis(d - t_z, tb, sg, include_infinite, art)
                 db, *_ = np.linalg.lstsq(yb, s_b, rcond=None)
                 return (s_b - yb @ db).ravel()
 
@@ -444,7 +536,8 @@ def fit_global(
     else:
         method = "none (no nonlinear parameters)"
 
-    comps = tuple([f"tau_{i + 1}" for i in range(L)] + (["inf"] if include_infinite else []))
+    comps = tuple([f"tau_{i + 1}" for i in range(L)] + (["inf"] if include_infinite else [])
+                  + (["artefact", "artefact_d"] if art else []))
     rows = [(f"tau_{i + 1}", float(taus[i]), float(lo[i]), float(hi[i]), "fs", False)
             for i in range(L)]
     j = L
@@ -467,14 +560,19 @@ def fit_global(
         b = _k.sequential_coefficients(rates)
         if np.unique(np.round(rates, 14)).size < rates.size:
             raise SchemaError("fit_global(scheme='sequential') needs distinct lifetimes.")
-        sas = np.linalg.solve(b.T, das)
-        conc = y @ b.T
-        species = tuple(chr(ord("A") + i) for i in range(p))
+        sas = np.linalg.solve(b.T, das[:p_kin])
+        conc = y[:, :p_kin] @ b.T
+        species = tuple(chr(ord("A") + i) for i in range(p_kin))
+    diag = tuple(fit_diagnostics(taus, lo[:L], hi[:L], span=span, basis=y,
+                                 jacobian=jac_used)) if L else ()
+    if diag:
+        warnings.warn("fit_global: " + " ".join(diag) + " " + _ADVICE, DegenerateFitWarning,
+                      stacklevel=2)
     return GlobalFitResult(
         lifetimes=taus, lifetime_lower=np.asarray(lo[:L], float),
         lifetime_upper=np.asarray(hi[:L], float), interval_method=method, das=das,
         das_se=das_se, components=comps, energies=e, delays=d, data=s, fitted=y @ das,
         residuals=r, profiles=y, irf_fwhm=fwhm_out, t0=tz, scheme=scheme, sas=sas,
         concentrations=conc, species=species, summary=summary,
-        rmse=float(math.sqrt(rss / n_obs)), ci=float(ci),
+        rmse=float(math.sqrt(rss / n_obs)), ci=float(ci), diagnostics=diag,
     )

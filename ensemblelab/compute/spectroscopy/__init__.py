@@ -38,6 +38,7 @@ from .diabatic import (
     propagate_adt,
 )
 from .extent import signal_extent
+from .fit_measured import MeasuredFitResult, fit_measured_map
 from .maps import compute_trpes
 from .model import TRPESModel
 from .pulses import GaussianPulse, cross_correlation, cross_correlation_fwhm
@@ -88,4 +89,6 @@ __all__ = [
     "MapComparison",
     "resample_map",
     "signal_extent",
+    "fit_measured_map",
+    "MeasuredFitResult",
 ]

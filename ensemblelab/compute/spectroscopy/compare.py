@@ -14,11 +14,21 @@ grid). Returned scores, on the overlap grid:
   independent of the scale;
 * ``r2``: coefficient of determination ``1 - SS_res / SS_tot`` of the scaled fit
   (``SS_tot`` about the mean of the measured map).
+
+Intervals (95 %) on the scale and on the fitted shift and time zero are Wald intervals
+``value +- 1.96 se`` from ``s^2 (J^T J)^-1`` at the optimum, on the measured pixels
+inside the overlap (``s^2`` the residual variance there, residuals taken as
+independent): they see the measurement's scatter only, not
+the simulation's finite sampling nor correlated misfit, so read them as lower bounds.
+For per-channel ionisation shifts, a fitted cross-correlation, a background, noise
+weighting and a bootstrap over trajectories use
+:func:`~ensemblelab.compute.spectroscopy.fit_measured.fit_measured_map`.
 """
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 from scipy.interpolate import RegularGridInterpolator
@@ -61,6 +71,9 @@ class MapComparison:
     measured, model, residual : TRPESMap
         On the common grid: resampled measurement, scaled and shifted simulation,
         and ``measured - model``.
+    intervals : dict of str to (float, float)
+        95 % Wald interval of ``scale`` and of each fitted parameter (see the module
+        docstring: a lower bound on the uncertainty); fixed parameters are absent.
     """
 
     scale: float
@@ -71,6 +84,7 @@ class MapComparison:
     measured: TRPESMap
     model: TRPESMap
     residual: TRPESMap
+    intervals: dict[str, tuple[float, float]] = field(default_factory=dict)
 
 
 def compare_maps(simulated: TRPESMap, measured: TRPESMap, *, fit_energy_shift: bool = False,
@@ -141,8 +155,20 @@ def compare_maps(simulated: TRPESMap, measured: TRPESMap, *, fit_energy_shift: b
     cosine = float(np.sum(meas * s)) / norm if norm > 0 else 0.0
     ss_tot = float(np.sum((meas - meas.mean()) ** 2))
     r2 = 1.0 - float(np.sum(resid**2)) / ss_tot if ss_tot > 0 else 0.0
+    # intervals on the measured pixels inside the overlap (independent, unlike the
+    # measurement resampled onto the simulated grid)
+    me = (e_meas >= energies[0]) & (e_meas <= energies[-1])
+    md = (measured.delays >= delays[0]) & (measured.delays <= delays[-1])
+    e_in, d_in = e_meas[me], measured.delays[md]
+
+    def model_meas(sh: float, tz: float) -> np.ndarray:
+        return resample_map(simulated, kinetic_energies=e_in, delays=d_in, energy_shift=sh,
+                            time_zero=tz)
+
+    intervals = _wald_intervals(model_meas, measured.intensity[np.ix_(md, me)], scale, shift, t0,
+                                fit_energy_shift, fit_time_zero)
     params = {"scale": scale, "energy_shift": shift, "time_zero": t0, "cosine": cosine,
-              "r2": r2}
+              "r2": r2, "intervals": {k: list(v) for k, v in intervals.items()}}
     return MapComparison(
         scale=scale, energy_shift=shift, time_zero=t0, cosine=cosine, r2=r2,
         measured=TRPESMap(kinetic_energies=energies, delays=delays, intensity=meas,
@@ -151,4 +177,32 @@ def compare_maps(simulated: TRPESMap, measured: TRPESMap, *, fit_energy_shift: b
                        params={"role": "model", **params}),
         residual=TRPESMap(kinetic_energies=energies, delays=delays, intensity=resid,
                           params={"role": "residual", **params}),
+        intervals=intervals,
     )
+
+
+def _wald_intervals(model_at: Any, meas: np.ndarray, scale: float, shift: float, t0: float,
+                    fit_shift: bool, fit_t0: bool) -> dict[str, tuple[float, float]]:
+    """95 % Wald intervals of the scale and the fitted shift / time zero (central differences).
+
+    ``model_at(shift, t0)`` gives the unscaled simulation at the measured pixels `meas`.
+    """
+    s = model_at(shift, t0)
+    cols, names = [s.ravel()], ["scale"]
+    if fit_shift:
+        h = 1e-3
+        cols.append(scale * (model_at(shift + h, t0) - model_at(shift - h, t0)).ravel() / (2 * h))
+        names.append("energy_shift")
+    if fit_t0:
+        h = 0.1
+        cols.append(scale * (model_at(shift, t0 + h) - model_at(shift, t0 - h)).ravel() / (2 * h))
+        names.append("time_zero")
+    jac = np.column_stack(cols)
+    dof = meas.size - len(names)
+    if dof <= 0:
+        return {}
+    s2 = float(np.sum((meas - scale * s) ** 2)) / dof
+    se = np.sqrt(np.clip(np.diag(s2 * np.linalg.pinv(jac.T @ jac)), 0.0, None))
+    values = {"scale": scale, "energy_shift": shift, "time_zero": t0}
+    z = 1.959963984540054  # two-sided 95 % normal quantile (common practice)
+    return {n: (values[n] - z * e, values[n] + z * e) for n, e in zip(names, se, strict=True)}
