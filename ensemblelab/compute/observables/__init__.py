@@ -1,0 +1,19 @@
+"""Further observables from the same ensemble: time-resolved scattering (X-ray and
+electron, independent-atom model) and transient absorption (doorway-window picture).
+
+Modules: :mod:`.form_factors` (atomic scattering factors), :mod:`.scattering`
+(:func:`compute_scattering`, :func:`debye_intensity`); the Debye kernels are in
+``_kernels_scattering`` with the naive twin in ``_reference_scattering``.
+"""
+
+from __future__ import annotations
+
+from .form_factors import electron_form_factor, xray_form_factor
+from .scattering import compute_scattering, debye_intensity
+
+__all__ = [
+    "compute_scattering",
+    "debye_intensity",
+    "xray_form_factor",
+    "electron_form_factor",
+]
