@@ -12,8 +12,7 @@ import pytest
 from scipy import constants
 
 from ensemblelab import Ensemble, compute_scattering, load
-from ensemblelab.compute.observables import debye_intensity, electron_form_factor
-from ensemblelab.compute.observables import xray_form_factor
+from ensemblelab.compute.observables import debye_intensity, electron_form_factor, xray_form_factor
 from ensemblelab.compute.observables._kernels_scattering import molecular_intensity
 from ensemblelab.compute.observables._reference_scattering import debye_intensity_reference
 from ensemblelab.compute.spectroscopy.pulses import GaussianPulse
