@@ -55,9 +55,16 @@ def _check_axis(arr: np.ndarray, name: str) -> None:
         raise SchemaError(f"{name} must increase strictly; got {arr[:5]!r}...")
 
 
-@dataclass(frozen=True, eq=False, repr=False)
 class _DelayMap:
     """Shared machinery: a (delay, axis) map with components, alive weight and params."""
+
+    # fields of the subclasses (dataclasses); a plain base, so these are no fields here
+    delays: np.ndarray
+    components: dict[str, np.ndarray]
+    alive: Any
+    alive_count: Any
+    params: dict[str, Any]
+    __dataclass_fields__: ClassVar[dict[str, Any]]
 
     AXIS: ClassVar[str] = "axis"
     AXIS_COLUMN: ClassVar[str] = "axis"
@@ -70,7 +77,7 @@ class _DelayMap:
     def _validate_common(self) -> tuple[int, int]:
         set_ = object.__setattr__
         axis = _ro(getattr(self, self.AXIS), self.AXIS, 1)
-        d = _ro(self.delays, "delays", 1)  # type: ignore[attr-defined]
+        d = _ro(self.delays, "delays", 1)
         _check_axis(axis, self.AXIS)
         _check_axis(d, "delays")
         shape = (d.size, axis.size)
@@ -95,7 +102,7 @@ class _DelayMap:
                                   f"{arr.shape}.")
             set_(self, name, arr)
         comps: dict[str, np.ndarray] = {}
-        for label, value in dict(self.components).items():  # type: ignore[attr-defined]
+        for label, value in dict(self.components).items():
             c = _ro(value, f"components[{label!r}]", 2)
             if c.shape != shape:
                 raise SchemaError(f"components[{label!r}] must have shape {shape}; got "
@@ -109,18 +116,18 @@ class _DelayMap:
                 raise SchemaError(f"{name} must have shape (n_delays={d.size},); got "
                                   f"{arr.shape}.")
             set_(self, name, arr)
-        set_(self, "params", json_safe(dict(self.params)))  # type: ignore[attr-defined]
+        set_(self, "params", json_safe(dict(self.params)))
         return shape
 
     @property
     def shape(self) -> tuple[int, int]:
         """(n_delays, n_axis)."""
-        return (self.delays.size, getattr(self, self.AXIS).size)  # type: ignore[attr-defined]
+        return (self.delays.size, getattr(self, self.AXIS).size)
 
     def component_sum(self) -> np.ndarray:
         """Sum of all components, shape (n_delays, n_axis) (zeros if there are none)."""
         total = np.zeros(self.shape)
-        for arr in self.components.values():  # type: ignore[attr-defined]
+        for arr in self.components.values():
             total = total + arr
         return total
 
@@ -137,7 +144,7 @@ class _DelayMap:
             value = getattr(self, name)
             if isinstance(value, np.ndarray):
                 out[name] = value
-        for label, arr in self.components.items():  # type: ignore[attr-defined]
+        for label, arr in self.components.items():
             out[f"component:{label}"] = arr
         return out
 
@@ -156,12 +163,12 @@ class _DelayMap:
         axis = getattr(self, self.AXIS)
         blocks = [("total", getattr(self, self._main()))]
         if components:
-            blocks += list(self.components.items())  # type: ignore[attr-defined]
+            blocks += list(self.components.items())
         nd, na = self.shape
         frames = [pd.DataFrame({"component": lab, "delay": np.repeat(self.delays, na),
                                 self.AXIS_COLUMN: np.tile(axis, nd),
                                 "value": arr.reshape(-1),
-                                "alive": np.repeat(self.alive, na)})  # type: ignore[attr-defined]
+                                "alive": np.repeat(self.alive, na)})
                   for lab, arr in blocks]
         return pd.concat(frames, ignore_index=True)
 
@@ -179,7 +186,7 @@ class _DelayMap:
 
         xr = import_optional("xarray", extra="xarray", purpose="Map.to_xarray()")
         axis = self.AXIS
-        coords = {"delay": ("delay", np.array(self.delays), {"units": "fs"}),  # type: ignore[attr-defined]
+        coords = {"delay": ("delay", np.array(self.delays), {"units": "fs"}),
                   axis: (axis, np.array(getattr(self, axis)), {"units": self.AXIS_UNIT})}
         data: dict[str, Any] = {}
         for name in self.GRID_FIELDS:
@@ -190,17 +197,17 @@ class _DelayMap:
             value = getattr(self, name)
             if value is not None:
                 data[name] = ((axis,), np.array(value), {"units": self.unit_of(name)})
-        for label, arr in self.components.items():  # type: ignore[attr-defined]
+        for label, arr in self.components.items():
             data[f"component_{label}"] = (("delay", axis), np.array(arr),
                                           {"units": self.unit_of("components"),
                                            "label": label})
-        data["alive"] = (("delay",), np.array(self.alive), {"units": "trajectory weight"})  # type: ignore[attr-defined]
+        data["alive"] = (("delay",), np.array(self.alive), {"units": "trajectory weight"})
         extra = self._extra_xarray()
         data.update(extra.pop("data", {}))
         coords.update(extra.pop("coords", {}))
         return xr.Dataset(data, coords=coords,
                           attrs={"kind": type(self).__name__,
-                                 "params": json.dumps(self.params)})  # type: ignore[attr-defined]
+                                 "params": json.dumps(self.params)})
 
     def _extra_xarray(self) -> dict[str, Any]:
         return {}

@@ -32,7 +32,7 @@ from ..errors import ParseError
 __all__ = ["save_observable_map", "load_observable_map", "FORMATS"]
 
 #: format tag -> map class
-FORMATS: dict[str, type] = {
+FORMATS: dict[str, type[ScatteringMap] | type[AbsorptionMap]] = {
     "ensemblelab-scattering-map-v1": ScatteringMap,
     "ensemblelab-absorption-map-v1": AbsorptionMap,
 }
@@ -110,6 +110,6 @@ def load_observable_map(path: str | os.PathLike[str]) -> ScatteringMap | Absorpt
     kwargs["components"] = {lab: comps[i] for i, lab in enumerate(labels)}
     kwargs["params"] = json.loads(str(data["params"])) if "params" in data else {}
     try:
-        return cls(**kwargs)  # type: ignore[no-any-return]
+        return cls(**kwargs)
     except TypeError as exc:
         raise ParseError(f"incomplete map file ({exc})", path=path) from exc

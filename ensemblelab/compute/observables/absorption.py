@@ -157,7 +157,7 @@ def absorption_partial(block: Any, span: BlockSpan, settings: dict[str, Any]) ->
     active = snaps["active"].to_numpy().astype(np.int64)
     time = snaps["time"].to_numpy()
     energies = np.asarray(block.energies, dtype=float)
-    out = {"se": np.zeros((n_states * n_time, e_grid.size)),
+    out: dict[str, Any] = {"se": np.zeros((n_states * n_time, e_grid.size)),
            "esa": np.zeros((n_states * n_time, e_grid.size)),
            "alive": np.zeros(n_states * n_time), "count": np.zeros(n_time),
            "gsb": np.zeros(e_grid.size), "gsb_w": 0.0, "missing": 0.0}

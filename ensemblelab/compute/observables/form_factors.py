@@ -27,6 +27,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
+from typing import Any
 
 import numpy as np
 import numpy.typing as npt
@@ -54,7 +55,7 @@ def q_to_x(q: npt.ArrayLike) -> np.ndarray:
     return np.asarray(q, dtype=float) / (4.0 * math.pi)
 
 
-def _xraydb():  # type: ignore[no-untyped-def]
+def _xraydb() -> Any:
     return import_optional("xraydb", extra="xray", purpose="atomic form factors (scattering)")
 
 

@@ -156,7 +156,8 @@ def scattering_partial(block: Any, span: BlockSpan, settings: dict[str, Any]) ->
     ok = np.all(np.isfinite(geoms.reshape(geoms.shape[0], -1)), axis=1)
     w = np.where(ok, w, 0.0)
     first = first_rows(snaps["traj"].to_numpy())
-    out = {"num": np.zeros((n_groups * n_time, q.size)), "alive": np.zeros(n_groups * n_time),
+    out: dict[str, Any] = {
+           "num": np.zeros((n_groups * n_time, q.size)), "alive": np.zeros(n_groups * n_time),
            "count": np.zeros(n_time), "ref": np.zeros(q.size), "ref_w": 0.0,
            "bad": float(np.count_nonzero(~ok))}
     is_first = np.zeros(block.n_snapshots, dtype=bool)
