@@ -168,6 +168,11 @@ def test_pure_map_is_the_alive_normalised_average_against_the_initial_reference(
     assert np.allclose(m.percent_difference, 100 * (m.intensity - ref) / ref, rtol=1e-12)
     assert np.allclose(m.percent_difference[0], 0.0, atol=1e-12)  # no atom moved at launch
     assert m.alive[0] == 2 and m.alive[-1] == 1
+    # after every trajectory has ended the signal is unknown (NaN), not "no change"
+    late = compute_scattering(ens, kind=kind, q=q, delays=np.array([40.0, 60.0]),
+                              convolve=False)
+    assert np.all(np.isfinite(late.percent_difference[0]))
+    assert np.all(np.isnan(late.percent_difference[1])) and late.alive[1] == 0
 
 
 def test_excitation_fraction_scales_the_difference():
@@ -195,6 +200,12 @@ def test_components_by_state_and_by_labels_sum_to_the_total():
     by = compute_scattering(ens, by=labels, **kw)
     assert set(by.components) == {"A", "B"}
     assert np.allclose(by.component_sum(), m.percent_difference, atol=1e-12)
+    col = compute_scattering(ens.assign(cluster=labels), by="cluster", **kw)
+    for lab in ("A", "B"):
+        assert np.allclose(col.components[lab], by.components[lab], rtol=1e-12, atol=1e-15)
+    # one delay computed alone gives the same components (no dependence on the grid)
+    only_a = compute_scattering(ens, by=labels, **{**kw, "delays": np.array([30.0])})
+    assert np.allclose(only_a.component_sum(), m.percent_difference[5], atol=1e-12)
 
 
 def test_convolved_step_is_half_at_zero_delay():

@@ -20,7 +20,7 @@ from ..spectroscopy._kernels_broadening import time_matrix
 from ..spectroscopy.pulses import GaussianPulse, cross_correlation_sigma
 
 __all__ = ["deposit_matrix", "delay_matrix", "cc_sigma", "first_rows", "alive_on_delays",
-           "EDGE_SIGMAS"]
+           "unknown_delays", "EDGE_SIGMAS"]
 
 
 def deposit_matrix(time: np.ndarray, group: np.ndarray, weight: np.ndarray, grid: dict[str, Any],
@@ -90,3 +90,12 @@ def alive_on_delays(delays: np.ndarray, grid: dict[str, Any], alive: np.ndarray)
     """Alive weight on the internal grid interpolated to the delays (0 after the end)."""
     times = grid["start"] + grid["dt"] * np.arange(int(grid["n_time"]))
     return np.interp(np.clip(delays, grid["start"], None), times, alive, right=0.0)
+
+
+def unknown_delays(delays: np.ndarray, grid: dict[str, Any], cmat: np.ndarray) -> np.ndarray:
+    """Delays after the last trajectory's end that no known signal reaches (NaN there).
+
+    The difference signal is unknown after every trajectory has ended (not zero): such
+    delays are reported as NaN rather than as "no change".
+    """
+    return (cmat.sum(axis=1) == 0) & (delays > grid["t_known"])

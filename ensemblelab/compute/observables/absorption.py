@@ -53,6 +53,7 @@ from ._timegrid import (
     delay_matrix,
     deposit_matrix,
     first_rows,
+    unknown_delays,
 )
 
 __all__ = ["compute_transient_absorption", "absorption_spectrum", "CROSS_SECTION_CONSTANT",
@@ -300,6 +301,9 @@ def compute_transient_absorption(
             for i, lab in enumerate(source.state_labels):
                 if np.any(conv[i]):
                     comps[f"{name}:{lab}"] = conv[i]
+    unknown = unknown_delays(delays_a, grid, cmat)
+    for arr in comps.values():
+        arr[unknown] = np.nan  # after every trajectory ended: unknown, not zero
     intensity = comps["GSB"] + comps["SE"] + comps["ESA"]
     t_known = grid["t_known"]
     params = {

@@ -53,6 +53,7 @@ from ._timegrid import (
     delay_matrix,
     deposit_matrix,
     first_rows,
+    unknown_delays,
 )
 from .form_factors import form_factor_table
 
@@ -302,6 +303,7 @@ def compute_scattering(
     sigma = cc_sigma(pump, probe, convolve)
     cmat = delay_matrix(delays_a, grid, sigma)
     d_groups = fraction * np.einsum("dt,gtq->gdq", cmat, d_pure)
+    d_groups[:, unknown_delays(delays_a, grid, cmat), :] = np.nan
     d_total = d_groups.sum(axis=0)
     if isinstance(reference, str):
         if reference != "initial":
