@@ -248,6 +248,16 @@ def test_sm_and_pair_distribution_difference():
         assert m.delta_pdf[0, j] == pytest.approx(trapezoid(integrand, q), rel=1e-10)
 
 
+def test_trajectories_starting_late_are_reported():
+    ens = _two_trajectories()
+    late = Ensemble.from_arrays(traj=ens.snapshots["traj"],
+                                time=ens.snapshots["time"] + 10.0 * ens.snapshots["traj"],
+                                active=ens.snapshots["active"], geometries=ens.geometries,
+                                symbols=ens.symbols, energies=ens.energies)
+    with pytest.warns(EnsembleWarning, match="1 trajectory"):
+        compute_scattering(late, q=np.linspace(0.5, 5.0, 10), delays=[20.0], convolve=False)
+
+
 def test_given_reference_and_bad_inputs():
     ens = _two_trajectories()
     q = np.linspace(0.5, 5.0, 10)

@@ -111,8 +111,7 @@ def _groups(source: BlockSource, ens: Any, by: Any) -> tuple[list[str], Any, str
             raise SchemaError(f"The 'by' parameter names no snapshot column: {by!r}; columns "
                               f"are {source.columns}. Hint: pass an array of labels, one per "
                               "snapshot, e.g. cluster labels.")
-        values = reduce(source, lambda b, span: np.unique(b.snapshots[by].to_numpy()),
-                        lambda a, b: np.union1d(a, b), columns=[by])
+        values = reduce(source, _unique_partial, np.union1d, args=(by,), columns=[by])
         return [str(v) for v in values], ("column", (by, np.asarray(values))), f"column {by}"
     labels = np.asarray(by)
     if labels.ndim != 1 or labels.shape[0] != source.n_snapshots:
@@ -121,6 +120,11 @@ def _groups(source: BlockSource, ens: Any, by: Any) -> tuple[list[str], Any, str
     values, codes = np.unique(labels, return_inverse=True)
     offsets = np.cumsum([0] + [s.n_snapshots for s in source.spans()])
     return [str(v) for v in values], ("codes", (codes.astype(np.int64), offsets)), "labels"
+
+
+def _unique_partial(block: Any, span: BlockSpan, column: str) -> np.ndarray:
+    """Distinct values of a snapshot column in one block (picklable for clusters)."""
+    return np.unique(block.snapshots[column].to_numpy())
 
 
 def _block_groups(block: Any, span: BlockSpan, spec: Any) -> np.ndarray:
@@ -160,7 +164,8 @@ def scattering_partial(block: Any, span: BlockSpan, settings: dict[str, Any]) ->
     out: dict[str, Any] = {
            "num": np.zeros((n_groups * n_time, q.size)), "alive": np.zeros(n_groups * n_time),
            "count": np.zeros(n_time), "ref": np.zeros(q.size), "ref_w": 0.0,
-           "bad": float(np.count_nonzero(~ok))}
+           "bad": float(np.count_nonzero(~ok)),
+           "late_start": float(np.count_nonzero(time[first] > 1e-9))}
     is_first = np.zeros(block.n_snapshots, dtype=bool)
     is_first[first] = True
     for s0 in range(0, block.n_snapshots, CHUNK):
@@ -346,8 +351,13 @@ def compute_scattering(
                                                        else ""),
         "q_convention": "q = 4 pi sin(theta)/lambda (1/Angstrom)", "chunked": is_chunked(ens),
     }
+    import warnings
+
+    if total["late_start"]:
+        warnings.warn(f"{int(total['late_start'])} trajectory(ies) start after t = 0 (truncated "
+                      "or strided at the start?); their first snapshot stands in for the "
+                      "initial condition in the reference.", EnsembleWarning, stacklevel=2)
     if total["bad"]:
-        import warnings
 
         warnings.warn(f"{int(total['bad'])} snapshot(s) have non-finite geometries and were "
                       "left out of the average (numerator and alive weight).", EnsembleWarning,
