@@ -255,7 +255,10 @@ class ScatteringMap(_DelayMap):
     alive, alive_count : ndarray, shape (n_delays,)
         Alive trajectory weight and number behind each delay (pure signal, interpolated).
     params : dict
-        How the map was made (``kind``, pulses, weights, excitation fraction, ...).
+        How the map was made (``kind``, pulses, weights, excitation fraction, ...;
+        ``interval`` says how the band below was made, or that there is none).
+    percent_lower, percent_upper : ndarray, shape (n_delays, n_q), or None
+        Bootstrap percentile interval of `percent_difference` (``n_boot > 0``).
     """
 
     q: np.ndarray
@@ -271,11 +274,14 @@ class ScatteringMap(_DelayMap):
     alive: np.ndarray | None = None
     alive_count: np.ndarray | None = None
     params: dict[str, Any] = field(default_factory=dict)
+    percent_lower: np.ndarray | None = None
+    percent_upper: np.ndarray | None = None
 
     AXIS: ClassVar[str] = "q"
     AXIS_COLUMN: ClassVar[str] = "q"
     AXIS_UNIT: ClassVar[str] = "1/Angstrom"
-    GRID_FIELDS: ClassVar[tuple[str, ...]] = ("percent_difference", "intensity", "delta_sm")
+    GRID_FIELDS: ClassVar[tuple[str, ...]] = ("percent_difference", "intensity", "delta_sm",
+                                              "percent_lower", "percent_upper")
     AXIS_FIELDS: ClassVar[tuple[str, ...]] = ("reference", "atomic")
 
     def __post_init__(self) -> None:
@@ -302,6 +308,7 @@ class ScatteringMap(_DelayMap):
         """Unit of a field."""
         sq = "electron units^2" if self.kind == "xray" else "Angstrom^2"
         return {"percent_difference": "percent", "components": "percent", "intensity": sq,
+                "percent_lower": "percent", "percent_upper": "percent",
                 "reference": sq, "atomic": sq, "delta_sm": "1/Angstrom",
                 "delta_pdf": "1/Angstrom^2"}.get(name, "")
 

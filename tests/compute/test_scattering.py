@@ -296,6 +296,41 @@ def test_chunked_store_gives_the_in_memory_map(tmp_path):
           "pump": GaussianPulse(photon_energy=4.0, fwhm=20.0), "scheduler": "synchronous"}
     a = compute_scattering(ens, **kw)
     labels = ens.snapshots["traj"].to_numpy() % 2
-    b = compute_scattering(lazy, by=labels, **kw)
+    b = compute_scattering(lazy, by=labels, n_boot=20, **kw)
     assert np.allclose(a.intensity, b.intensity, rtol=1e-12)
     assert np.allclose(b.component_sum(), a.percent_difference, atol=1e-12)
+    c = compute_scattering(ens, n_boot=20, **kw)  # same replicates in memory and chunked
+    assert np.allclose(b.percent_lower, c.percent_lower, rtol=1e-10, atol=1e-14)
+    assert np.allclose(b.percent_upper, c.percent_upper, rtol=1e-10, atol=1e-14)
+
+
+def test_bootstrap_band_matches_the_standard_error_of_a_mean():
+    # each trajectory jumps after launch to its own bond length and stays there, so the
+    # percent difference at a later delay is a plain mean over independent trajectories;
+    # the 95 % band is then about +-1.96 sd / sqrt(N) (normal approximation; common
+    # practice) and the Poisson bootstrap should reproduce it
+    rng = np.random.default_rng(5)
+    n_traj, t = 300, np.array([0.0, 10.0, 20.0])
+    r = np.column_stack([np.full(n_traj, 1.128), np.repeat(rng.normal(1.3, 0.08, n_traj)[:, None],
+                                                           2, axis=1)]).ravel()
+    geoms = np.zeros((r.size, 2, 3))
+    geoms[:, 1, 2] = r
+    ens = Ensemble.from_arrays(traj=np.repeat(np.arange(n_traj), t.size),
+                               time=np.tile(t, n_traj), active=np.ones(r.size, dtype=int),
+                               geometries=geoms, symbols=["C", "O"],
+                               energies=np.zeros((r.size, 2)))
+    q = np.array([2.0, 4.0])
+    m = compute_scattering(ens, q=q, delays=np.array([20.0]), convolve=False, n_boot=400,
+                           random_state=1)
+    per = debye_intensity(geoms[2::3], ["C", "O"], q)  # each trajectory at 20 fs
+    ref = debye_intensity(geoms[0], ["C", "O"], q)
+    values = 100 * (per - ref) / ref
+    assert np.allclose(m.percent_difference[0], values.mean(axis=0), rtol=1e-10)
+    half = 1.96 * values.std(axis=0, ddof=1) / math.sqrt(n_traj)
+    width = (m.percent_upper - m.percent_lower)[0] / 2
+    assert np.allclose(width, half, rtol=0.2)
+    assert np.all(m.percent_lower <= m.percent_difference)
+    assert np.all(m.percent_difference <= m.percent_upper)
+    assert m.params["interval"]["n_boot"] == 400
+    none = compute_scattering(ens, q=q, delays=np.array([20.0]), convolve=False)
+    assert none.percent_lower is None and "none" in none.params["interval"]

@@ -20,7 +20,8 @@ from ..spectroscopy._kernels_broadening import time_matrix
 from ..spectroscopy.pulses import GaussianPulse, cross_correlation_sigma
 
 __all__ = ["deposit_matrix", "delay_matrix", "cc_sigma", "first_rows", "alive_on_delays",
-           "unknown_delays", "EDGE_SIGMAS"]
+           "unknown_delays", "EDGE_SIGMAS", "replicate_deposit", "poisson_counts",
+           "percentile_band", "check_boot"]
 
 
 def deposit_matrix(time: np.ndarray, group: np.ndarray, weight: np.ndarray, grid: dict[str, Any],
@@ -99,3 +100,61 @@ def unknown_delays(delays: np.ndarray, grid: dict[str, Any], cmat: np.ndarray) -
     delays are reported as NaN rather than as "no change".
     """
     return (cmat.sum(axis=1) == 0) & (delays > grid["t_known"])
+
+
+def check_boot(n_boot: int, ci: float) -> tuple[int, float]:
+    """Validated number of bootstrap replicates (>= 0) and interval level (0 < ci < 1)."""
+    from ...errors import SchemaError
+
+    if isinstance(n_boot, bool) or not isinstance(n_boot, int | np.integer) or n_boot < 0:
+        raise SchemaError(f"The 'n_boot' parameter must be an int >= 0. Got {n_boot!r} instead.")
+    if not (isinstance(ci, float | int) and 0.0 < float(ci) < 1.0):
+        raise SchemaError(f"The 'ci' parameter must be a float in (0, 1). Got {ci!r} instead.")
+    return int(n_boot), float(ci)
+
+
+def poisson_counts(n_boot: int, n_trajectories: int, random_state: Any) -> np.ndarray:
+    """Poisson(1) counts per (replicate, trajectory), shape (n_boot, n_trajectories).
+
+    The Poisson bootstrap (asymptotically the multinomial bootstrap over trajectories,
+    common practice for large ensembles): drawn once for the whole ensemble, so a
+    chunked store and the in-memory ensemble get the same replicates.
+    """
+    rng = np.random.default_rng(random_state)
+    return rng.poisson(1.0, size=(n_boot, n_trajectories)).astype(float)
+
+
+def replicate_deposit(time: np.ndarray, weights: np.ndarray, grid: dict[str, Any]
+                      ) -> sparse.csr_matrix:
+    """Sparse (n_boot * n_time, n_rows) deposit of rows with per-replicate weights.
+
+    Parameters
+    ----------
+    time : ndarray, shape (n_rows,)
+    weights : ndarray, shape (n_boot, n_rows)
+    grid : dict
+    """
+    n_boot, n = weights.shape
+    n_time = int(grid["n_time"])
+    j, frac = time_bins(np.asarray(time, dtype=float), grid["start"], grid["dt"])
+    f = np.zeros(j.size) if frac is None else frac
+    base = (np.arange(n_boot)[:, None] * n_time + j[None, :]).ravel()
+    cols = np.tile(np.arange(n), n_boot)
+    lo = (weights * (1.0 - f)[None, :]).ravel()
+    hi = (weights * f[None, :]).ravel()
+    rows = np.concatenate([base, base + 1])
+    vals = np.concatenate([lo, hi])
+    keep = vals != 0
+    return sparse.csr_matrix((vals[keep], (rows[keep], np.concatenate([cols, cols])[keep])),
+                             shape=(n_boot * n_time, n))
+
+
+def percentile_band(replicates: np.ndarray, ci: float) -> tuple[np.ndarray, np.ndarray]:
+    """Percentile interval over the first axis (NaN where every replicate is NaN)."""
+    import warnings
+
+    tail = 50.0 * (1.0 - ci)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN cells stay NaN
+        lo, hi = np.nanpercentile(replicates, [tail, 100.0 - tail], axis=0)
+    return lo, hi

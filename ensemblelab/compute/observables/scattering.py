@@ -52,7 +52,11 @@ from ._timegrid import (
     cc_sigma,
     delay_matrix,
     deposit_matrix,
+    check_boot,
     first_rows,
+    percentile_band,
+    poisson_counts,
+    replicate_deposit,
     unknown_delays,
 )
 from .form_factors import form_factor_table
@@ -168,6 +172,13 @@ def scattering_partial(block: Any, span: BlockSpan, settings: dict[str, Any]) ->
            "late_start": float(np.count_nonzero(time[first] > 1e-9))}
     is_first = np.zeros(block.n_snapshots, dtype=bool)
     is_first[first] = True
+    boot = settings.get("boot")
+    if boot is not None:  # Poisson-bootstrap replicates: counts of this block's trajectories
+        counts = boot[:, span.traj_start:span.traj_start + block.n_trajectories]
+        counts = counts[:, block.traj_index]
+        n_boot = counts.shape[0]
+        out.update(b_num=np.zeros((n_boot * n_time, q.size)), b_alive=np.zeros(n_boot * n_time),
+                   b_ref=np.zeros((n_boot, q.size)), b_ref_w=np.zeros(n_boot))
     for s0 in range(0, block.n_snapshots, CHUNK):
         sl = slice(s0, min(s0 + CHUNK, block.n_snapshots))
         g = np.where(ok[sl, None, None], geoms[sl], 0.0)
@@ -182,7 +193,39 @@ def scattering_partial(block: Any, span: BlockSpan, settings: dict[str, Any]) ->
         fw = np.where(is_first[sl], w[sl], 0.0)
         out["ref"] += fw @ imol
         out["ref_w"] += float(fw.sum())
+        if boot is not None:
+            wb = counts[:, sl] * w[sl][None, :]
+            bmat = replicate_deposit(time[sl], wb, grid)
+            out["b_num"] += bmat @ imol
+            out["b_alive"] += np.asarray(bmat.sum(axis=1)).ravel()
+            fb = wb * is_first[sl][None, :]
+            out["b_ref"] += fb @ imol
+            out["b_ref_w"] += fb.sum(axis=1)
     return out
+
+
+def _replicate_percent(total: dict[str, Any], *, n_time: int, times: np.ndarray,
+                       cmat: np.ndarray, unknown: np.ndarray, fraction: float,
+                       atomic: np.ndarray, given_ref: np.ndarray | None, ci: float
+                       ) -> tuple[np.ndarray, np.ndarray]:
+    """Percentile band of the percent difference over the bootstrap replicates."""
+    n_boot = total["b_ref_w"].size
+    b_num = total["b_num"].reshape(n_boot, n_time, -1)
+    b_alive = total["b_alive"].reshape(n_boot, n_time)
+    reps = np.full((n_boot, cmat.shape[0], b_num.shape[2]), np.nan)
+    for b in range(n_boot):
+        if total["b_ref_w"][b] <= 0:
+            continue
+        ref_b = total["b_ref"][b] / total["b_ref_w"][b]
+        a = b_alive[b]
+        inv = np.where(a > 0, 1.0 / np.where(a > 0, a, 1.0), 0.0)
+        d = (b_num[b] - ref_b[None, :] * a[:, None]) * inv[:, None]
+        d[times < 0] = 0.0
+        conv = fraction * (cmat @ d)
+        conv[unknown] = np.nan
+        ref = atomic + ref_b if given_ref is None else given_ref
+        reps[b] = 100.0 * conv / ref[None, :]
+    return percentile_band(reps, ci)
 
 
 def _check_fraction(value: float | None) -> float:
@@ -212,6 +255,9 @@ def compute_scattering(
     r: npt.ArrayLike | None = None,
     damping: float | None = None,
     backend: str | None = None,
+    n_boot: int = 0,
+    ci: float = 0.95,
+    random_state: Any = 0,
     client: Any = None,
     scheduler: Any = None,
     progress: bool = False,
@@ -254,6 +300,14 @@ def compute_scattering(
         ``ln 10 / q_max^2``.
     backend : {"numba", "numpy"}, optional
         Debye kernel (default numba when installed).
+    n_boot : int, default 0
+        Poisson-bootstrap replicates over trajectories for an interval of the percent
+        difference (``percent_lower``, ``percent_upper``); 0: none (``params`` says so).
+        Costs about one extra sparse product per replicate and chunk.
+    ci : float, default 0.95
+        Level of the percentile interval.
+    random_state : int or Generator, optional
+        Seed of the replicate counts.
     client, scheduler, progress
         As for the other reductions (chunked stores run block by block).
 
@@ -286,9 +340,12 @@ def compute_scattering(
     atomic = (table[index] ** 2).sum(axis=0)
     grid = time_grid(source, time_step, client=client, scheduler=scheduler)
     labels, spec, by_word = _groups(source, ens, by)
+    n_boot, ci = check_boot(n_boot, ci)
     settings = {"grid": grid, "q": qa, "n_groups": len(labels), "groups": spec,
                 "weights": weights, "pump": pump, "element_of_atom": index, "table": table,
-                "backend": backend}
+                "backend": backend,
+                "boot": poisson_counts(n_boot, source.n_trajectories, random_state)
+                if n_boot else None}
     total = reduce(source, scattering_partial, add, args=(settings,),
                    fields=["geometries"], columns=[spec[1][0]] if spec[0] == "column" else None,
                    client=client, scheduler=scheduler, progress=progress,
@@ -308,7 +365,8 @@ def compute_scattering(
     sigma = cc_sigma(pump, probe, convolve)
     cmat = delay_matrix(delays_a, grid, sigma)
     d_groups = fraction * np.einsum("dt,gtq->gdq", cmat, d_pure)
-    d_groups[:, unknown_delays(delays_a, grid, cmat), :] = np.nan
+    unknown = unknown_delays(delays_a, grid, cmat)
+    d_groups[:, unknown, :] = np.nan
     d_total = d_groups.sum(axis=0)
     if isinstance(reference, str):
         if reference != "initial":
@@ -322,6 +380,11 @@ def compute_scattering(
             raise SchemaError(f"reference must be {qa.size} finite positive intensities; got "
                               f"shape {ref.shape}.")
         ref_word = "given"
+    band: tuple[np.ndarray | None, np.ndarray | None] = (None, None)
+    if n_boot:
+        band = _replicate_percent(total, n_time=n_time, times=times, cmat=cmat,
+                                  unknown=unknown, fraction=fraction, atomic=atomic,
+                                  given_ref=None if ref_word != "given" else ref, ci=ci)
     intensity = ref[None, :] + d_total
     percent = 100.0 * d_total / ref[None, :]
     comps = {lab: 100.0 * d_groups[i] / ref[None, :] for i, lab in enumerate(labels)}
@@ -350,6 +413,9 @@ def compute_scattering(
         "form_factors": "xraydb f0 (analytic fits)" + (", Mott-Bethe" if kind == "electron"
                                                        else ""),
         "q_convention": "q = 4 pi sin(theta)/lambda (1/Angstrom)", "chunked": is_chunked(ens),
+        "interval": ({"method": "Poisson bootstrap over trajectories, percentile",
+                      "n_boot": n_boot, "ci": ci} if n_boot else
+                     "none (pass n_boot > 0 for a bootstrap interval of percent_difference)"),
     }
     import warnings
 
@@ -365,6 +431,7 @@ def compute_scattering(
     return ScatteringMap(q=qa, delays=delays_a, intensity=intensity, reference=ref,
                          percent_difference=percent, components=comps, atomic=atomic,
                          delta_sm=delta_sm, r=r_a, delta_pdf=delta_pdf,
+                         percent_lower=band[0], percent_upper=band[1],
                          alive=alive_on_delays(delays_a, grid, alive),
                          alive_count=alive_on_delays(delays_a, grid, total["count"]),
                          params=params)
