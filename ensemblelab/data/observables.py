@@ -350,6 +350,9 @@ class AbsorptionMap(_DelayMap):
         Steady-state absorption cross section of the initial conditions (Angstrom^2).
     alive, alive_count : ndarray, shape (n_delays,)
     params : dict
+        ``interval`` says how the band below was made, or that there is none.
+    lower, upper : ndarray, shape (n_delays, n_energies), or None
+        Bootstrap percentile interval of `intensity` (``n_boot > 0``).
     """
 
     photon_energies: np.ndarray
@@ -360,12 +363,14 @@ class AbsorptionMap(_DelayMap):
     alive: np.ndarray | None = None
     alive_count: np.ndarray | None = None
     params: dict[str, Any] = field(default_factory=dict)
+    lower: np.ndarray | None = None
+    upper: np.ndarray | None = None
 
     AXIS: ClassVar[str] = "photon_energies"
     AXIS_COLUMN: ClassVar[str] = "photon_energy"
     AXIS_UNIT: ClassVar[str] = "eV"
     VALUE_UNIT: ClassVar[str] = "Angstrom^2"
-    GRID_FIELDS: ClassVar[tuple[str, ...]] = ("intensity",)
+    GRID_FIELDS: ClassVar[tuple[str, ...]] = ("intensity", "lower", "upper")
     AXIS_FIELDS: ClassVar[tuple[str, ...]] = ("steady_state",)
 
     def __post_init__(self) -> None:

@@ -169,6 +169,37 @@ def test_chunked_store_gives_the_in_memory_map(tmp_path):
     kw = {"probe": PROBE, "pump": GaussianPulse(photon_energy=5.0, fwhm=20.0),
           "photon_energies": np.linspace(1.0, 6.0, 101), "delays": np.arange(-10.0, 31.0, 10.0),
           "scheduler": "synchronous"}
-    a = compute_transient_absorption(ens, **kw)
-    b = compute_transient_absorption(lazy, **kw)
+    a = compute_transient_absorption(ens, n_boot=15, **kw)
+    b = compute_transient_absorption(lazy, n_boot=15, **kw)
     assert np.allclose(a.intensity, b.intensity, rtol=1e-12, atol=1e-15)
+    # the same replicates in memory and chunked
+    assert np.allclose(a.lower, b.lower, rtol=1e-10, atol=1e-15)
+    assert np.allclose(a.upper, b.upper, rtol=1e-10, atol=1e-15)
+
+
+def test_bootstrap_band_of_the_total():
+    # each trajectory frozen on S1 with its own gap: the stimulated emission at a photon
+    # energy is a plain mean over independent trajectories, and so is the bleach (same
+    # trajectories); the 95 % band is about +-1.96 sd / sqrt(N) of the per-trajectory
+    # totals (normal approximation; common practice)
+    rng = np.random.default_rng(3)
+    n_traj, t = 300, np.array([0.0, 10.0, 20.0])
+    gaps = rng.normal(3.0, 0.1, n_traj)
+    energies = np.zeros((n_traj * t.size, 2))
+    energies[:, 1] = np.repeat(gaps, t.size)
+    ts = np.zeros((energies.shape[0], 2, 2))
+    ts[:, 0, 1] = ts[:, 1, 0] = 0.2
+    ens = Ensemble.from_arrays(traj=np.repeat(np.arange(n_traj), t.size),
+                               time=np.tile(t, n_traj), active=np.ones(energies.shape[0], int),
+                               geometries=np.zeros((energies.shape[0], 1, 3)), symbols=["H"],
+                               energies=energies, transition_strengths=ts)
+    e = np.array([2.9, 3.0, 3.1])
+    m = compute_transient_absorption(ens, probe=PROBE, photon_energies=e,
+                                     delays=np.array([20.0]), convolve=False, n_boot=400,
+                                     random_state=2)
+    per = -2 * CROSS_SECTION_CONSTANT * 0.2 * _gauss(e[None, :], gaps[:, None],
+                                                     PROBE.spectral_fwhm)
+    assert np.allclose(m.intensity[0], per.mean(axis=0), rtol=1e-10)
+    half = 1.96 * per.std(axis=0, ddof=1) / math.sqrt(n_traj)
+    assert np.allclose((m.upper - m.lower)[0] / 2, half, rtol=0.2)
+    assert m.params["interval"]["n_boot"] == 400

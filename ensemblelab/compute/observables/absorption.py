@@ -50,9 +50,13 @@ from ._timegrid import (
     EDGE_SIGMAS,
     alive_on_delays,
     cc_sigma,
+    check_boot,
     delay_matrix,
     deposit_matrix,
     first_rows,
+    percentile_band,
+    poisson_counts,
+    replicate_deposit,
     unknown_delays,
 )
 
@@ -162,6 +166,13 @@ def absorption_partial(block: Any, span: BlockSpan, settings: dict[str, Any]) ->
            "esa": np.zeros((n_states * n_time, e_grid.size)),
            "alive": np.zeros(n_states * n_time), "count": np.zeros(n_time),
            "gsb": np.zeros(e_grid.size), "gsb_w": 0.0, "missing": 0.0}
+    boot = settings.get("boot")
+    if boot is not None:  # Poisson-bootstrap counts of this block's trajectories
+        counts_t = boot[:, span.traj_start:span.traj_start + block.n_trajectories]
+        counts = counts_t[:, block.traj_index]
+        n_boot = counts.shape[0]
+        out.update(b_num=np.zeros((n_boot * n_time, e_grid.size)),
+                   b_alive=np.zeros(n_boot * n_time))
     for s0 in range(0, block.n_snapshots, CHUNK):
         sl = slice(s0, min(s0 + CHUNK, block.n_snapshots))
         f_row = _strength_rows(np.asarray(ts[sl], dtype=float), active[sl])
@@ -179,6 +190,10 @@ def absorption_partial(block: Any, span: BlockSpan, settings: dict[str, Any]) ->
         cnt = deposit_matrix(time[sl], np.zeros(sl.stop - s0, dtype=np.int64),
                              ok.astype(float), grid, 1)
         out["count"] += np.asarray(cnt.sum(axis=1)).ravel()
+        if boot is not None:
+            bmat = replicate_deposit(time[sl], counts[:, sl] * ws[None, :], grid)
+            out["b_num"] += bmat @ (se + esa)
+            out["b_alive"] += np.asarray(bmat.sum(axis=1)).ravel()
     # bleach: absorption from S0 of the initial conditions
     first = first_rows(snaps["traj"].to_numpy())
     exc, osc = block.excitation_energies, block.oscillator_strengths
@@ -194,10 +209,38 @@ def absorption_partial(block: Any, span: BlockSpan, settings: dict[str, Any]) ->
     fs[:, 0] = 0.0
     good = np.all(np.isfinite(fs), axis=1) & np.all(np.isfinite(gaps), axis=1)
     wt = np.where(good, wt, 0.0)
-    fw = np.nan_to_num(fs) * wt[:, None]
-    out["gsb"] = absorption_spectrum(np.nan_to_num(gaps[:, 1:]), fw[:, 1:], e_grid, fwhm)
+    fs = np.nan_to_num(fs)
+    gaps = np.nan_to_num(gaps)
+    per_traj = np.zeros((fs.shape[0], e_grid.size))  # initial absorption of each trajectory
+    for j in range(1, fs.shape[1]):
+        per_traj += CROSS_SECTION_CONSTANT * fs[:, j, None] * gaussian(
+            e_grid[None, :], gaps[:, j, None], fwhm)
+    out["gsb"] = wt @ per_traj
     out["gsb_w"] = float(wt.sum())
+    if boot is not None:
+        out["b_gsb"] = (counts_t * wt[None, :]) @ per_traj
+        out["b_gsb_w"] = counts_t @ wt
     return out
+
+
+def _replicate_total(total: dict[str, Any], *, n_time: int, launched: np.ndarray,
+                     cmat: np.ndarray, unknown: np.ndarray, fraction: float, ci: float
+                     ) -> tuple[np.ndarray, np.ndarray]:
+    """Percentile band of the total signal over the bootstrap replicates."""
+    n_boot = total["b_gsb_w"].size
+    b_num = total["b_num"].reshape(n_boot, n_time, -1)
+    b_alive = total["b_alive"].reshape(n_boot, n_time)
+    reps = np.full((n_boot, cmat.shape[0], b_num.shape[2]), np.nan)
+    step = cmat @ launched
+    for b in range(n_boot):
+        if total["b_gsb_w"][b] <= 0:
+            continue
+        a = b_alive[b]
+        inv = np.where(a > 0, 1.0 / np.where(a > 0, a, 1.0), 0.0)
+        now = cmat @ (b_num[b] * (inv * launched)[:, None])
+        reps[b] = fraction * (now - np.outer(step, total["b_gsb"][b] / total["b_gsb_w"][b]))
+        reps[b][unknown] = np.nan
+    return percentile_band(reps, ci)
 
 
 def compute_transient_absorption(
@@ -213,6 +256,9 @@ def compute_transient_absorption(
     by: str | None = None,
     weights: str = "doorway",
     time_step: float | None = None,
+    n_boot: int = 0,
+    ci: float = 0.95,
+    random_state: Any = 0,
     client: Any = None,
     scheduler: Any = None,
     progress: bool = False,
@@ -243,6 +289,13 @@ def compute_transient_absorption(
         Also give the SE and ESA components by active state (``"SE:S1"``, ``"ESA:S0"``).
     weights : {"doorway", "uniform"} or str
     time_step : float, optional
+    n_boot : int, default 0
+        Poisson-bootstrap replicates over trajectories for an interval of the total
+        (``lower``, ``upper``); 0: none (``params["interval"]`` says so).
+    ci : float, default 0.95
+        Level of the percentile interval.
+    random_state : int or Generator, optional
+        Seed of the replicate counts.
     client, scheduler, progress
         As for the other reductions.
 
@@ -272,8 +325,10 @@ def compute_transient_absorption(
                           "'transition_strengths' key of the extended XYZ format.")
     fwhm = math.hypot(probe_p.spectral_fwhm, resolution)
     grid = time_grid(source, time_step, client=client, scheduler=scheduler)
+    n_boot, ci = check_boot(n_boot, ci)
     settings = {"grid": grid, "photon_energies": e_grid, "fwhm": fwhm, "weights": weights,
-                "pump": pump}
+                "pump": pump, "boot": poisson_counts(n_boot, source.n_trajectories,
+                                                     random_state) if n_boot else None}
     total = reduce(source, absorption_partial, add, args=(settings,),
                    fields=["energies", "transition_strengths", "excitation_energies",
                            "oscillator_strengths", "transition_dipoles"],
@@ -305,6 +360,10 @@ def compute_transient_absorption(
     for arr in comps.values():
         arr[unknown] = np.nan  # after every trajectory ended: unknown, not zero
     intensity = comps["GSB"] + comps["SE"] + comps["ESA"]
+    band: tuple[np.ndarray | None, np.ndarray | None] = (None, None)
+    if n_boot:
+        band = _replicate_total(total, n_time=n_time, launched=launched, cmat=cmat,
+                                unknown=unknown, fraction=fraction, ci=ci)
     t_known = grid["t_known"]
     params = {
         "observable": "transient absorption", "units": "Angstrom^2 per molecule",
@@ -321,13 +380,16 @@ def compute_transient_absorption(
         "snapshots_without_strengths": total["missing"], "by": by,
         "signs": "GSB <= 0, SE <= 0, ESA >= 0; positive = more absorption (delta-OD-like)",
         "chunked": is_chunked(ens),
+        "interval": ({"method": "Poisson bootstrap over trajectories, percentile",
+                      "n_boot": n_boot, "ci": ci} if n_boot else
+                     "none (pass n_boot > 0 for a bootstrap interval of the total)"),
     }
     if total["missing"]:
         warnings.warn(f"{int(total['missing'])} snapshot(s) lack the transition strengths "
                       "(NaN) or energies they need and were left out of the average "
                       "(numerator and alive weight).", EnsembleWarning, stacklevel=2)
     return AbsorptionMap(photon_energies=e_grid, delays=delays_a, intensity=intensity,
-                         components=comps, steady_state=a0,
+                         components=comps, steady_state=a0, lower=band[0], upper=band[1],
                          alive=alive_on_delays(delays_a, grid, alive),
                          alive_count=alive_on_delays(delays_a, grid, total["count"]),
                          params=params)
