@@ -10,6 +10,7 @@ Modules: :mod:`.form_factors` (atomic scattering factors), :mod:`.scattering`
 from __future__ import annotations
 
 from .absorption import absorption_spectrum, compute_transient_absorption
+from .contributions import observable_contributions
 from .form_factors import electron_form_factor, xray_form_factor
 from .scattering import compute_scattering, debye_intensity
 
@@ -20,4 +21,5 @@ __all__ = [
     "electron_form_factor",
     "compute_transient_absorption",
     "absorption_spectrum",
+    "observable_contributions",
 ]

@@ -61,6 +61,7 @@ from ._timegrid import (
 )
 
 __all__ = ["compute_transient_absorption", "absorption_spectrum", "CROSS_SECTION_CONSTANT",
+           "strength_rows", "snapshot_spectra",
            "absorption_partial"]
 
 #: pi e^2 hbar / (2 eps0 m_e c) in Angstrom^2 eV (CODATA via scipy.constants)
@@ -110,14 +111,14 @@ def absorption_spectrum(gaps: npt.ArrayLike, strengths: npt.ArrayLike,
     return CROSS_SECTION_CONSTANT * out
 
 
-def _strength_rows(ts: np.ndarray, active: np.ndarray) -> np.ndarray:
+def strength_rows(ts: np.ndarray, active: np.ndarray) -> np.ndarray:
     """f_aj for each snapshot's active state a, symmetrised (NaN taken from f_ja)."""
     idx = np.arange(ts.shape[0])
     row, col = ts[idx, active, :], ts[idx, :, active]
     return np.where(np.isnan(row), col, row)
 
 
-def _snapshot_spectra(energies: np.ndarray, active: np.ndarray, f_row: np.ndarray,
+def snapshot_spectra(energies: np.ndarray, active: np.ndarray, f_row: np.ndarray,
                       e_grid: np.ndarray, fwhm: float) -> tuple[np.ndarray, np.ndarray]:
     """SE (<= 0) and ESA (>= 0) cross sections of each snapshot, each (n, n_energies)."""
     n, n_states = energies.shape
@@ -175,13 +176,13 @@ def absorption_partial(block: Any, span: BlockSpan, settings: dict[str, Any]) ->
                    b_alive=np.zeros(n_boot * n_time))
     for s0 in range(0, block.n_snapshots, CHUNK):
         sl = slice(s0, min(s0 + CHUNK, block.n_snapshots))
-        f_row = _strength_rows(np.asarray(ts[sl], dtype=float), active[sl])
+        f_row = strength_rows(np.asarray(ts[sl], dtype=float), active[sl])
         e = energies[sl]
         needed = np.arange(n_states)[None, :] != active[sl, None]
         ok = ~np.any(np.isnan(f_row) & needed, axis=1) & np.all(np.isfinite(e), axis=1)
         out["missing"] += float(np.count_nonzero(~ok))
         ws = np.where(ok, w[sl], 0.0)
-        se, esa = _snapshot_spectra(np.where(ok[:, None], e, 0.0), active[sl],
+        se, esa = snapshot_spectra(np.where(ok[:, None], e, 0.0), active[sl],
                                     np.where(ok[:, None], f_row, 0.0), e_grid, fwhm)
         mat = deposit_matrix(time[sl], active[sl], ws, grid, n_states)
         out["se"] += mat @ se
