@@ -304,6 +304,22 @@ class ScatteringMap(_DelayMap):
         """``"xray"`` or ``"electron"``."""
         return str(self.params.get("kind", "xray"))
 
+    def modified_scattering(self) -> tuple[np.ndarray, np.ndarray]:
+        """Modified scattering ``sM = q I_mol / I_at`` of the pumped sample and the reference.
+
+        Returns
+        -------
+        sm : ndarray, shape (n_delays, n_q)
+            ``q (intensity - atomic) / atomic`` in inverse Angstrom (``s = q``).
+        sm_reference : ndarray, shape (n_q,)
+            The same for the reference; ``sm - sm_reference`` is :attr:`delta_sm`.
+        """
+        if self.atomic is None:
+            raise SchemaError("this map holds no atomic scattering (atomic=None).")
+        sm = self.q[None, :] * (self.intensity - self.atomic[None, :]) / self.atomic[None, :]
+        ref = self.q * (self.reference - self.atomic) / self.atomic
+        return sm, ref
+
     def unit_of(self, name: str) -> str:
         """Unit of a field."""
         sq = "electron units^2" if self.kind == "xray" else "Angstrom^2"

@@ -334,3 +334,19 @@ def test_bootstrap_band_matches_the_standard_error_of_a_mean():
     assert m.params["interval"]["n_boot"] == 400
     none = compute_scattering(ens, q=q, delays=np.array([20.0]), convolve=False)
     assert none.percent_lower is None and "none" in none.params["interval"]
+
+
+def test_modified_scattering_of_a_diatomic():
+    # sM = q I_mol / I_at with I_mol = 2 f1 f2 sin(qr)/(qr), I_at = f1^2 + f2^2 (from memory)
+    t = np.array([0.0, 10.0])
+    geoms = np.zeros((2, 2, 3))
+    geoms[:, 1, 2] = [1.128, 1.3]
+    ens = Ensemble.from_arrays(traj=[0, 0], time=t, active=[1, 1], geometries=geoms,
+                               symbols=["C", "O"], energies=np.zeros((2, 2)))
+    q = np.linspace(0.5, 10.0, 50)
+    m = compute_scattering(ens, kind="electron", q=q, delays=t, convolve=False)
+    sm, sm_ref = m.modified_scattering()
+    fc, fo = electron_form_factor("C", q), electron_form_factor("O", q)
+    want = q * 2 * fc * fo * np.sin(q * 1.3) / (q * 1.3) / (fc**2 + fo**2)
+    assert np.allclose(sm[1], want, rtol=1e-10)
+    assert np.allclose(sm - sm_ref, m.delta_sm, atol=1e-12)
