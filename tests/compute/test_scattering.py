@@ -350,3 +350,31 @@ def test_modified_scattering_of_a_diatomic():
     want = q * 2 * fc * fo * np.sin(q * 1.3) / (q * 1.3) / (fc**2 + fo**2)
     assert np.allclose(sm[1], want, rtol=1e-10)
     assert np.allclose(sm - sm_ref, m.delta_sm, atol=1e-12)
+
+
+def test_doorway_weights_enter_average_and_reference():
+    # three trajectories with different excitation energies: the pump's doorway factors
+    # (method: J. Chem. Phys. 2004, classical doorway-window approximation) weight both the
+    # excited average and the removed ground-state molecules, so nothing changes at t = 0
+    from ensemblelab.compute.spectroscopy.weights import doorway_weights
+
+    t = np.array([0.0, 10.0])
+    r = np.array([[1.10, 1.30], [1.15, 1.45], [1.20, 1.25]])
+    geoms = np.zeros((6, 2, 3))
+    geoms[:, 1, 2] = r.ravel()
+    exc = np.array([[0.0, 4.0], [0.0, 4.1], [0.0, 4.4]])
+    osc = np.array([[0.0, 0.3], [0.0, 0.3], [0.0, 0.3]])
+    ens = Ensemble.from_arrays(traj=np.repeat(np.arange(3), 2), time=np.tile(t, 3),
+                               active=np.ones(6, dtype=int), geometries=geoms,
+                               symbols=["C", "O"], energies=np.zeros((6, 2)),
+                               excitation_energies=exc, oscillator_strengths=osc)
+    pump = GaussianPulse(photon_energy=4.05, fwhm=30.0)
+    q = np.linspace(0.5, 8.0, 12)
+    m = compute_scattering(ens, q=q, delays=t, pump=pump, convolve=False)
+    w = doorway_weights(ens, pump=pump)
+    assert np.ptp(w) > 0.1 * w.max()  # the weights really differ
+    per = debye_intensity(geoms, ["C", "O"], q)
+    assert m.params["weights"] == "doorway"
+    assert np.allclose(m.reference, w @ per[0::2] / w.sum(), rtol=1e-12)
+    assert np.allclose(m.intensity[1], w @ per[1::2] / w.sum(), rtol=1e-12)
+    assert np.allclose(m.percent_difference[0], 0.0, atol=1e-12)
