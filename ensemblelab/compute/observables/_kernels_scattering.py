@@ -113,9 +113,10 @@ def _mol_range(geoms, ia, ib, tstart, coef, q, uniform, out, start, stop):  # pr
                 else:  # coincident atoms: sin(q r)/r -> q, added through nz
                     inv[p] = 0.0
                     nz[t] += 1.0
+                # the recurrence is linear: run it on sin(q r) / r directly
                 c2[p] = 2.0 * math.cos(h * rp)
-                prev[p] = math.sin((q[0] - h) * rp)
-                cur[p] = math.sin(q[0] * rp)
+                prev[p] = math.sin((q[0] - h) * rp) * inv[p]
+                cur[p] = math.sin(q[0] * rp) * inv[p]
         if uniform:
             for k in range(n_q):
                 v = 0.0
@@ -123,7 +124,7 @@ def _mol_range(geoms, ia, ib, tstart, coef, q, uniform, out, start, stop):  # pr
                     acc = nz[t] * q[k]
                     for p in range(tstart[t], tstart[t + 1]):
                         sk = cur[p]
-                        acc += sk * inv[p]
+                        acc += sk
                         cur[p] = c2[p] * sk - prev[p]
                         prev[p] = sk
                     v += coef[t, k] * acc
