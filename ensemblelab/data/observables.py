@@ -178,16 +178,18 @@ class _DelayMap:
         Returns
         -------
         xarray.Dataset
-            Coordinates ``delay`` (fs) and the map's axis; every 2-D field and each
+            Coordinates ``delay`` (fs) and the map's axis (``q`` in 1/Angstrom or
+            ``photon_energy`` in eV); every 2-D field and each
             component (``component_<label>``) as a variable with ``units``; ``alive``
             per delay; the parameters as a JSON string attribute ``params``.
+            ``.to_netcdf(path)`` writes it as NetCDF.
         """
         import json
 
         xr = import_optional("xarray", extra="xarray", purpose="Map.to_xarray()")
-        axis = self.AXIS
+        axis = self.AXIS_COLUMN  # singular dimension name: "q", "photon_energy"
         coords = {"delay": ("delay", np.array(self.delays), {"units": "fs"}),
-                  axis: (axis, np.array(getattr(self, axis)), {"units": self.AXIS_UNIT})}
+                  axis: (axis, np.array(getattr(self, self.AXIS)), {"units": self.AXIS_UNIT})}
         data: dict[str, Any] = {}
         for name in self.GRID_FIELDS:
             value = getattr(self, name)

@@ -99,6 +99,7 @@ def test_to_xarray_for_every_map(maps):
     assert np.array_equal(ds["delta_pdf"].values, sc.delta_pdf)
     ds = ta.to_xarray()
     assert ds["component_GSB"].attrs["units"] == "Angstrom^2"
+    assert ds["photon_energy"].attrs["units"] == "eV"
     assert np.array_equal(ds["intensity"].sel(delay=10.0).values, ta.intensity[2])
     m = TRPESMap(kinetic_energies=np.linspace(0, 2, 5), delays=np.array([0.0, 10.0]),
                  intensity=np.arange(10.0).reshape(2, 5), components={"S1": np.ones((2, 5))},
@@ -107,3 +108,15 @@ def test_to_xarray_for_every_map(maps):
     assert ds["intensity"].dims == ("delay", "kinetic_energy")
     assert np.array_equal(ds["component_S1"].values, np.ones((2, 5)))
     assert ds["kinetic_energy"].attrs["units"] == "eV"
+
+
+def test_netcdf_round_trip(maps, tmp_path):
+    xr = pytest.importorskip("xarray")
+    pytest.importorskip("scipy")
+    for m in maps:
+        path = tmp_path / f"{type(m).__name__}.nc"
+        m.to_xarray().to_netcdf(path)
+        with xr.open_dataset(path) as ds:
+            assert np.allclose(ds["intensity"].values, m.intensity, equal_nan=True)
+            for label, arr in m.components.items():
+                assert np.allclose(ds[f"component_{label}"].values, arr, equal_nan=True)
