@@ -106,7 +106,7 @@ def debye_intensity(geometries: npt.ArrayLike, symbols: Sequence[str], q: npt.Ar
     return out[0] if single else out
 
 
-def _groups(source: BlockSource, ens: Any, by: Any) -> tuple[list[str], Any, str]:
+def _groups(source: BlockSource, by: Any) -> tuple[list[str], Any, str]:
     """Group labels, the grouping spec handed to partials, and a word for params."""
     if by is None or (isinstance(by, str) and by == "state"):
         return list(source.state_labels), ("state", None), "active state"
@@ -339,7 +339,7 @@ def compute_scattering(
     _, index, table = form_factor_table(symbols, qa, kind=kind)
     atomic = (table[index] ** 2).sum(axis=0)
     grid = time_grid(source, time_step, client=client, scheduler=scheduler)
-    labels, spec, by_word = _groups(source, ens, by)
+    labels, spec, by_word = _groups(source, by)
     n_boot, ci = check_boot(n_boot, ci)
     settings = {"grid": grid, "q": qa, "n_groups": len(labels), "groups": spec,
                 "weights": weights, "pump": pump, "element_of_atom": index, "table": table,
