@@ -39,6 +39,10 @@ _IO_AND_DATA: dict[str, str] = {
     "load_map": "ensemblelab.io.maps",
     "TRPESMap": "ensemblelab.data.spectrum",
     "StickSpectrum": "ensemblelab.data.spectrum",
+    "ScatteringMap": "ensemblelab.data.observables",
+    "AbsorptionMap": "ensemblelab.data.observables",
+    "save_observable_map": "ensemblelab.io.observable_maps",
+    "load_observable_map": "ensemblelab.io.observable_maps",
 }
 
 _COMPUTE, _compute_getattr, _ = lazy_exports("ensemblelab", DOMAINS, globals())

@@ -7,6 +7,9 @@ temporary sibling folder, then moved into place)::
     figures/trpes_map.png           the total map (single column, 300 dpi)
     figures/trpes_by_state.png      its decomposition by neutral state (shared colour scale)
     figures/populations.png         populations with intervals and the kinetic fit
+    figures/scattering.png, figures/transient_absorption.png (and their tables/*.csv):
+                                    the further observables (a section each; shown as
+                                    missing with the reason when they cannot be computed)
     tables/trpes_map.csv            tidy map (delay, energy, intensity, components)
     tables/populations.csv, tables/kinetics.csv, tables/flags.csv,
     tables/clusters.csv, tables/representatives.csv
@@ -45,6 +48,7 @@ from .data.ensemble import Ensemble
 from .errors import StoreError
 from .plotting.populations import savefig, scheme_name
 from .plotting.spectra import plot_components, plot_map, resolve_energy_range
+from .report_observables import OBSERVABLE_SECTIONS
 
 __all__ = ["build_report", "hill_formula", "report_pulses"]
 
@@ -468,6 +472,17 @@ def build_report(
 
             sections.append(_section("Time-resolved photoelectron spectrum", trpes_section,
                                      notes))
+            for obs_title, obs_build in OBSERVABLE_SECTIONS:  # scattering, absorption
+                def run(build: Callable[..., str] = obs_build) -> str:
+                    clean, pw = need_trajectories(), pulses["pump_fwhm"]
+                    pump = GaussianPulse(photon_energy=pulses["pump_photon_energy"],
+                                         fwhm=pw) if pw > 0 else None
+                    d_grid = (_default_delays(clean, float(np.hypot(pulses["probe_fwhm"], pw)))
+                              if delays is None else np.asarray(delays, float))
+                    return build(clean, tmp, probe=GaussianPulse(
+                        photon_energy=pulses["photon_energy"], fwhm=pulses["probe_fwhm"]),
+                        pump=pump, delays=d_grid)
+                sections.append(_section(obs_title, run, notes))
 
             # ---------------------------------------------------------- populations
             def population_section() -> str:

@@ -203,7 +203,8 @@ def test_report_on_a_fully_flagged_small_ensemble_says_why_sections_are_missing(
     assert flag_trajectories(ens)["flagged"].astype(bool).all()  # precondition
     page = build_report(ens, tmp_path / "rep")
     text = _text(page)
-    assert text.count("Section missing:") == 3  # map, populations, clusters
+    # map, scattering, transient absorption, populations, clusters
+    assert text.count("Section missing:") == 5
     assert "every trajectory is flagged (6 of 6)" in text
     assert "6 of 6 flagged" in text  # the flag section itself is still there
     links = set(re.findall(r"(?:src|href)='([^']+)'", page.read_text()))

@@ -35,6 +35,7 @@ def fields_from_arrays(
     adt_cation: npt.ArrayLike | None = None,
     overlaps: npt.ArrayLike | None = None,
     velocities: npt.ArrayLike | None = None,
+    transition_strengths: npt.ArrayLike | None = None,
     excitation_energies: npt.ArrayLike | None = None,
     oscillator_strengths: npt.ArrayLike | None = None,
     transition_dipoles: npt.ArrayLike | None = None,
@@ -120,6 +121,7 @@ def fields_from_arrays(
             ("adt_cation", adt_cation),
             ("overlaps", overlaps),
             ("velocities", velocities),
+            ("transition_strengths", transition_strengths),
         )
     }
     for name, value in (

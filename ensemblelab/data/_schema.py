@@ -38,6 +38,11 @@ SNAPSHOT_ARRAYS: dict[str, tuple[str, str]] = {
     "overlaps": ("(n_snapshots, n_states, n_states) overlaps <i(t-dt)|j(t)> with the previous "
                  "step (row 0 of a trajectory: identity), or with reference states", "1"),
     "velocities": ("(n_snapshots, n_atoms, 3) nuclear velocities", "Angstrom/fs"),
+    "transition_strengths": (
+        "(n_snapshots, n_states, n_states) oscillator strengths f_ij between neutral states "
+        "i and j at the snapshot geometry (symmetric, f_ij = (2/3) |E_j - E_i| |mu_ij|^2 in "
+        "atomic units; diagonal ignored; NaN = not computed); used by transient absorption",
+        "1"),
 }
 
 #: optional per-trajectory arrays (aligned to the rows of ``trajectories``)
@@ -173,6 +178,7 @@ def validate_fields(raw: Mapping[str, Any]) -> dict[str, Any]:
         "adt": ((n, n_states, n_states), "(n_snapshots, n_states, n_states)"),
         "overlaps": ((n, n_states, n_states), "(n_snapshots, n_states, n_states)"),
         "velocities": ((n, n_atoms, 3), "(n_snapshots, n_atoms, 3)"),
+        "transition_strengths": ((n, n_states, n_states), "(n_snapshots, n_states, n_states)"),
     }
     if n_cat is not None:
         expected["adt_cation"] = ((n, n_cat, n_cat), "(n_snapshots, n_cation, n_cation)")

@@ -85,6 +85,9 @@ class Ensemble:
         ``initial_state``, ``n_steps``, ``t_end`` (fs), plus user columns.
     cation_energies, dyson, amplitudes, adt, adt_cation, overlaps, velocities : ndarray or None
         Optional per-snapshot arrays, see :data:`SNAPSHOT_ARRAYS`.
+    transition_strengths : ndarray or None
+        Optional (n_snapshots, n_states, n_states) oscillator strengths between neutral
+        states at each snapshot (for transient absorption), see :data:`SNAPSHOT_ARRAYS`.
     excitation_energies, oscillator_strengths, transition_dipoles : ndarray or None
         Optional initial-condition arrays, see :data:`TRAJECTORY_ARRAYS`.
     state_labels, cation_labels : tuple of str
@@ -108,6 +111,7 @@ class Ensemble:
     adt_cation: np.ndarray | None = None
     overlaps: np.ndarray | None = None
     velocities: np.ndarray | None = None
+    transition_strengths: np.ndarray | None = None
     excitation_energies: np.ndarray | None = None
     oscillator_strengths: np.ndarray | None = None
     transition_dipoles: np.ndarray | None = None
@@ -139,6 +143,7 @@ class Ensemble:
         adt_cation: npt.ArrayLike | None = None,
         overlaps: npt.ArrayLike | None = None,
         velocities: npt.ArrayLike | None = None,
+        transition_strengths: npt.ArrayLike | None = None,
         excitation_energies: npt.ArrayLike | None = None,
         oscillator_strengths: npt.ArrayLike | None = None,
         transition_dipoles: npt.ArrayLike | None = None,
@@ -175,6 +180,8 @@ class Ensemble:
             ``weight`` 1 and ``initial_state`` from the first snapshot.
         cation_energies, dyson, amplitudes, adt, adt_cation, overlaps, velocities : array_like
             Optional per-snapshot arrays, see :data:`SNAPSHOT_ARRAYS`.
+        transition_strengths : array_like, shape (n_snapshots, n_states, n_states), optional
+            Oscillator strengths between neutral states at each snapshot.
         excitation_energies, oscillator_strengths, transition_dipoles : array_like
             Optional per-trajectory arrays aligned to the sorted unique trajectory ids.
         state_labels, cation_labels : sequence of str, optional
@@ -204,6 +211,7 @@ class Ensemble:
             energies=energies, step=step, masses=masses, trajectories=trajectories,
             cation_energies=cation_energies, dyson=dyson, amplitudes=amplitudes, adt=adt,
             adt_cation=adt_cation, overlaps=overlaps, velocities=velocities,
+            transition_strengths=transition_strengths,
             excitation_energies=excitation_energies,
             oscillator_strengths=oscillator_strengths,
             transition_dipoles=transition_dipoles, state_labels=state_labels,

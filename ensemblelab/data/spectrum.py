@@ -232,6 +232,37 @@ class TRPESMap:
         out["component"] = out["component"].astype(str)
         return out
 
+    def to_xarray(self) -> Any:
+        """The map as an ``xarray.Dataset`` with units and coordinates (``xarray`` extra).
+
+        Returns
+        -------
+        xarray.Dataset
+            Coordinates ``delay`` (fs) and ``kinetic_energy`` (eV); variables
+            ``intensity`` and ``component_<label>`` (eV^-1, dims (delay, kinetic_energy)),
+            ``alive`` and ``alive_count`` (per delay); attribute ``params`` (JSON).
+            ``.to_netcdf(path)`` writes it as NetCDF.
+        """
+        import json
+
+        from .._optional import import_optional
+
+        xr = import_optional("xarray", extra="xarray", purpose="TRPESMap.to_xarray()")
+        dims = ("delay", "kinetic_energy")
+        data: dict[str, Any] = {"intensity": (dims, np.array(self.intensity),
+                                              {"units": "1/eV"})}
+        for label, arr in self.components.items():
+            data[f"component_{label}"] = (dims, np.array(arr), {"units": "1/eV",
+                                                                "label": label})
+        data["alive"] = (("delay",), np.array(self.alive), {"units": "trajectory weight"})
+        data["alive_count"] = (("delay",), np.array(self.alive_count),
+                               {"units": "trajectories"})
+        coords = {"delay": ("delay", np.array(self.delays), {"units": "fs"}),
+                  "kinetic_energy": ("kinetic_energy", np.array(self.kinetic_energies),
+                                     {"units": "eV"})}
+        return xr.Dataset(data, coords=coords,
+                          attrs={"kind": "TRPESMap", "params": json.dumps(self.params)})
+
     # ------------------------------------------------------------------ display
     def _weights_note(self) -> str:
         ess, n = self.effective_sample_size, self.params.get("n_trajectories")

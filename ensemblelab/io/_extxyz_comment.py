@@ -29,6 +29,7 @@ ARRAY_KEYS: dict[str, bool] = {
     "adt": False,
     "adt_cation": False,
     "overlaps": False,
+    "transition_strengths": False,
 }
 #: keys read from the first frame of a file only
 HEADER_KEYS = ("energy_unit", "time_unit", "length_unit", "state_labels", "cation_labels",

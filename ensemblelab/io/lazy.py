@@ -80,7 +80,8 @@ class LazyEnsemble:
     symbols, masses, state_labels, cation_labels, metadata
         As for :class:`~ensemblelab.Ensemble`.
     geometries, energies, cation_energies, dyson, amplitudes, adt, adt_cation, overlaps,
-    velocities, excitation_energies, oscillator_strengths, transition_dipoles : dask.array or None
+    velocities, excitation_energies, oscillator_strengths, transition_dipoles,
+    transition_strengths : dask.array or None
         One block per chunk, in the stored dtype (float64 for the eager Ensemble).
     snapshots : dask.dataframe.DataFrame
         The snapshot table, one partition per chunk.

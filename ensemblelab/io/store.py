@@ -12,7 +12,8 @@ Layout (``layout: "single"``, schema version 1)
         energies.npy           (n_snapshots, n_states) float64, eV
         <name>.npy             every optional array present: cation_energies, dyson,
                                amplitudes, adt, adt_cation, overlaps, velocities,
-                               excitation_energies, oscillator_strengths, transition_dipoles
+                               excitation_energies, oscillator_strengths, transition_dipoles,
+                               transition_strengths
 
 ``manifest.json`` keys:
 

@@ -49,6 +49,10 @@ key                  meaning                                         values / un
 any other key        a user column of the snapshot table             1 (int, float, bool, text)
 ===================  ==============================================  ==========================
 
+Optional key ``transition_strengths``: oscillator strengths f_ij between the neutral
+states at this geometry, n_states*n_states values, row-major (symmetric, diagonal
+ignored, dimensionless); transient absorption reads it.
+
 File header keys (read from the first frame of a file; may be repeated)
 -----------------------------------------------------------------------
 
@@ -289,7 +293,8 @@ def parse_file(path: Path, *, energy_unit: str | None, time_unit: str | None,
 
     out_arrays: dict[str, np.ndarray] = {}
     expected = {"amplitudes": (n_states,), "adt": (n_states, n_states),
-                "overlaps": (n_states, n_states)}
+                "overlaps": (n_states, n_states),
+                "transition_strengths": (n_states, n_states)}
     if n_cat is not None:
         expected["adt_cation"] = (n_cat, n_cat)
         expected["cation_energies"] = (n_cat,)
