@@ -1,0 +1,18 @@
+"""Uncertainty and convergence: trajectory-bootstrap intervals on shares, decomposition
+fractions, cluster fractions and lifetimes, and how the error shrinks with the number of
+trajectories (:func:`convergence`).
+
+Trajectories are the independent units: every interval here resamples whole trajectories
+(weights kept) with the package's one spelling ``interval="bootstrap"``, ``ci``,
+``n_boot``, ``random_state``.
+"""
+
+from __future__ import annotations
+
+from .shares import band_share_table, format_share, grouped_shares
+
+__all__ = [
+    "grouped_shares",
+    "band_share_table",
+    "format_share",
+]
