@@ -138,11 +138,13 @@ def test_share_interval_coverage_on_replicate_ensembles():
         t = grouped_shares(rep["value"], rep["state"], rep["traj"], n_boot=1000,
                            random_state=r).set_index("key")
         # the same, wrongly treating every snapshot as independent (the failure it guards)
-        rows = grouped_shares(rep["value"], rep["state"], np.arange(rep["traj"].size),
-                              n_boot=1000, random_state=r).set_index("key")
         for k in (1, 2):
             hits.append(t.loc[k, "lower"] <= truth[k] <= t.loc[k, "upper"])
-            row_hits.append(rows.loc[k, "lower"] <= truth[k] <= rows.loc[k, "upper"])
+        if r < 40:
+            rows = grouped_shares(rep["value"], rep["state"], np.arange(rep["traj"].size),
+                                  n_boot=300, random_state=r).set_index("key")
+            row_hits += [rows.loc[k, "lower"] <= truth[k] <= rows.loc[k, "upper"]
+                         for k in (1, 2)]
     coverage = float(np.mean(hits))  # 0.955 in this run (400 intervals)
     assert 0.92 <= coverage <= 0.98, coverage
     assert float(np.mean(row_hits)) < 0.9  # snapshot resampling under-covers (0.44 here)
