@@ -9,10 +9,13 @@ Trajectories are the independent units: every interval here resamples whole traj
 
 from __future__ import annotations
 
+from .decomposition import DECOMPOSITIONS, decomposition_fractions
 from .shares import band_share_table, format_share, grouped_shares
 
 __all__ = [
     "grouped_shares",
     "band_share_table",
     "format_share",
+    "decomposition_fractions",
+    "DECOMPOSITIONS",
 ]

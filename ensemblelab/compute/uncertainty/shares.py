@@ -28,9 +28,12 @@ if TYPE_CHECKING:
     from ..bands.analysis import BandAnalysis
 
 __all__ = ["grouped_shares", "band_share_table", "format_share", "check_interval_args",
-           "bootstrap_counts_for"]
+           "bootstrap_counts_for", "ZERO_TOL"]
 
 INTERVALS = ("bootstrap", None)
+
+#: a lower bound at or below this (a fraction) counts as reaching zero (rounding noise)
+ZERO_TOL = 1e-12
 
 
 def check_interval_args(where: str, *, interval: Any, ci: Any, n_boot: Any,
@@ -196,7 +199,7 @@ def _share_table(x: np.ndarray, g_codes: np.ndarray, g_keys: np.ndarray, u_codes
     keep = np.flatnonzero(value != 0)
     order = keep[np.argsort(-value[keep], kind="stable")]
     out = pd.DataFrame({"key": g_keys[order], "share": share[order], "lower": lo[order],
-                        "upper": hi[order], "includes_zero": lo[order] <= 0.0,
+                        "upper": hi[order], "includes_zero": ~(lo[order] > ZERO_TOL),
                         "value": value[order], "n_units": n_u[order]})
     sq = float(np.sum(per_unit**2))
     out.attrs.update(interval=interval, ci=float(ci),
@@ -268,7 +271,7 @@ def band_share_table(
     upper = by_key["upper"].reindex(keys).to_numpy(np.float64)
     out["lower"] = lower
     out["upper"] = upper
-    out["includes_zero"] = ~(lower > 0.0)
+    out["includes_zero"] = ~(lower > ZERO_TOL)
     out.attrs.update(stats.attrs)
     return out
 
