@@ -9,6 +9,7 @@ Trajectories are the independent units: every interval here resamples whole traj
 
 from __future__ import annotations
 
+from .clusters import cluster_fraction_intervals
 from .decomposition import DECOMPOSITIONS, decomposition_fractions
 from .shares import band_share_table, format_share, grouped_shares
 
@@ -18,4 +19,5 @@ __all__ = [
     "format_share",
     "decomposition_fractions",
     "DECOMPOSITIONS",
+    "cluster_fraction_intervals",
 ]
