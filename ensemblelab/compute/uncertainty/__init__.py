@@ -11,6 +11,7 @@ from __future__ import annotations
 
 from .clusters import cluster_fraction_intervals
 from .decomposition import DECOMPOSITIONS, decomposition_fractions
+from .lifetimes import LifetimeUncertainty, global_fit_bootstrap, kinetic_lifetime_uncertainty
 from .shares import band_share_table, format_share, grouped_shares
 
 __all__ = [
@@ -20,4 +21,7 @@ __all__ = [
     "decomposition_fractions",
     "DECOMPOSITIONS",
     "cluster_fraction_intervals",
+    "LifetimeUncertainty",
+    "kinetic_lifetime_uncertainty",
+    "global_fit_bootstrap",
 ]
