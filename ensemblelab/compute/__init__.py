@@ -12,7 +12,9 @@ this package re-exports (imported on first use, see :mod:`ensemblelab._exports`)
 - :mod:`~ensemblelab.compute.dynamics`: initial conditions, model Hamiltonians,
   surface hopping;
 - :mod:`~ensemblelab.compute.bands`: what makes a band of a map (strongest snapshots,
-  groups, shares).
+  groups, shares);
+- :mod:`~ensemblelab.compute.uncertainty`: trajectory-bootstrap intervals on shares,
+  decomposition fractions, cluster fractions and lifetimes; convergence with N.
 """
 
 from __future__ import annotations
@@ -25,6 +27,7 @@ DOMAINS = (
     "ensemblelab.compute.structures",
     "ensemblelab.compute.dynamics",
     "ensemblelab.compute.bands",
+    "ensemblelab.compute.uncertainty",
 )
 
 __all__, __getattr__, __dir__ = lazy_exports("ensemblelab.compute", DOMAINS, globals())

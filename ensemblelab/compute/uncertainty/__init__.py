@@ -10,6 +10,7 @@ Trajectories are the independent units: every interval here resamples whole traj
 from __future__ import annotations
 
 from .clusters import cluster_fraction_intervals
+from .convergence import CONVERGENCE_QUANTITIES, ConvergenceResult, convergence
 from .decomposition import DECOMPOSITIONS, decomposition_fractions
 from .lifetimes import LifetimeUncertainty, global_fit_bootstrap, kinetic_lifetime_uncertainty
 from .shares import band_share_table, format_share, grouped_shares
@@ -24,4 +25,7 @@ __all__ = [
     "LifetimeUncertainty",
     "kinetic_lifetime_uncertainty",
     "global_fit_bootstrap",
+    "convergence",
+    "ConvergenceResult",
+    "CONVERGENCE_QUANTITIES",
 ]
