@@ -7,9 +7,11 @@ temporary sibling folder, then moved into place)::
     figures/trpes_map.png           the total map (single column, 300 dpi)
     figures/trpes_by_state.png      its decomposition by neutral state (shared colour scale)
     figures/populations.png         populations with intervals and the kinetic fit
+    figures/convergence.png         error of the populations against the number of
+                                    trajectories ("Is the ensemble large enough?")
     tables/trpes_map.csv            tidy map (delay, energy, intensity, components)
     tables/populations.csv, tables/kinetics.csv, tables/flags.csv,
-    tables/clusters.csv, tables/representatives.csv
+    tables/clusters.csv, tables/representatives.csv, tables/convergence.csv
     structures/representatives.xyz  one aligned medoid per cluster (cluster and
                                     cluster_fraction in each comment line)
 
@@ -52,6 +54,9 @@ __all__ = ["build_report", "hill_formula", "report_pulses"]
 N_BOOT = 1000
 #: Interval level of every interval on the page.
 CI = 0.95
+#: Root-mean-square population error the convergence section asks for (our default choice:
+#: two percentage points).
+CONVERGENCE_TARGET = 0.02
 #: Width (CSS pixels) at which single- and double-column figures are shown.
 _IMG_WIDTH = {"single": 495, "double": 1050}
 
@@ -505,6 +510,25 @@ def build_report(
                 return text
 
             sections.append(_section("Populations", population_section, notes))
+
+            # ---------------------------------------------------------- convergence
+            def convergence_section() -> str:  # too few trajectories: a ValueError says so
+                from .compute.uncertainty.convergence import convergence
+                from .plotting.convergence import plot_convergence
+
+                conv = convergence(need_trajectories(), target=CONVERGENCE_TARGET)
+                _png(plot_convergence(conv), tmp / "figures" / "convergence.png")
+                _csv(conv.table, tmp / "tables" / "convergence.csv")
+                return ("<h2>Is the ensemble large enough?</h2>"
+                        + _img("figures/convergence.png", "convergence")
+                        + f"<p>{html.escape(conv.verdict())}</p><p>Populations recomputed on "
+                        f"nested random subsets ({len(conv.table)} sizes x "
+                        f"{int(conv.errors['nesting'].nunique())} orders); error: deviation "
+                        "from all trajectories, corrected for the finite population. <a "
+                        "href='tables/convergence.csv'>tables/convergence.csv</a></p>")
+
+            sections.append(_section("Is the ensemble large enough?", convergence_section,
+                                     notes))
             sections.append(quality_html)
 
             # ---------------------------------------------------------- clusters
@@ -514,7 +538,7 @@ def build_report(
                 summary = clusters.summary.copy()
                 if {"lower", "upper"} <= set(summary.columns):
                     summary["interval"] = _interval_text(
-                        CI, "Wilson score interval (Kish effective size)")
+                        CI, "percentile bootstrap over whole trajectories")
                 _csv(summary, tmp / "tables" / "clusters.csv")
                 keep = [c for c in ("cluster", "size", "fraction", "lower", "upper", "interval",
                                     "n_trajectories", "time_median", "silhouette")
