@@ -102,8 +102,9 @@ class ConvergenceResult:
                    else " -- the ensemble is too small."))
 
     def __str__(self) -> str:
-        rows = "\n".join(f"  N = {int(r.n):>6d}: error {r.error:.3g} (spread {r.spread:.2g})"
-                         for r in self.table.itertuples())
+        rows = "\n".join(f"  N = {int(n):>6d}: error {e:.3g} (spread {s:.2g})"
+                         for n, e, s in zip(self.table["n"], self.table["error"],
+                                            self.table["spread"], strict=True))
         return f"Convergence of the {self.quantity}\n{rows}\n{self.verdict()}"
 
     def _repr_html_(self) -> str:

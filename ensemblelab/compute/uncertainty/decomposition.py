@@ -210,6 +210,7 @@ def _delay_matrix(model: TRPESModel, p: dict[str, Any], delays: np.ndarray) -> n
     """Map time matrix times the normaliser, (n_delays, n_time) (as the map was made)."""
     sigma = p.get("sigma_cc") if p.get("convolve", True) else None
     cmat = model.time_weights(delays, sigma=sigma or None)
+    norm: np.ndarray
     if p.get("normalise", "alive") == "initial":
         norm = np.full(model.n_time, 1.0 / model.total_weight if model.total_weight else 0.0)
     else:
