@@ -106,3 +106,21 @@ def test_decomposition_fraction_errors(case):
         decomposition_fractions(ens, m, decompose="diabatic", model=model)
     with pytest.raises(SchemaError, match="low < high"):
         decomposition_fractions(ens, m, energy_range=(2.0, 1.0))
+
+
+def test_diabatic_fractions_equal_pair_fractions_for_identity_adt():
+    # the toy ensemble's ADT matrices are identities: every diabatic pair is the adiabatic
+    # pair (from the definition, computed independently)
+    from ensemblelab.testing import make_toy_ensemble
+
+    ens = make_toy_ensemble(20, seed=1, t_max=100.0, dt=2.0)
+    m, model = compute_trpes(ens, probe=PROBE, kinetic_energies=np.linspace(0, 2, 81),
+                             delays=np.arange(0.0, 101.0, 10.0), progress=False,
+                             decompose="diabatic", return_model=True)
+    kw = {"model": model, "delay_range": (0.0, 100.0), "random_state": 2}
+    dia = decomposition_fractions(ens, m, decompose="diabatic", **kw)
+    pair = decomposition_fractions(ens, m, decompose="pair", **kw)
+    cols = ["fraction", "lower", "upper"]
+    np.testing.assert_allclose(dia[cols].to_numpy(float), pair[cols].to_numpy(float),
+                               rtol=1e-10, atol=1e-15)
+    assert dia["fraction"].max() < 1.0  # two populated pairs: a non-trivial split
