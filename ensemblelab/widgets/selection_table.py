@@ -114,7 +114,7 @@ class SelectionTable(View):
             table = self.model.group_table(self.model.group_by)
             if self.model.analysis is not None:  # the same table with bootstrap intervals
                 table = band_share_table(self.model.analysis, self.model.group_by,
-                                         cluster_names=self.model.cluster_names)
+                                         cluster_names=self.model.cluster_names, top=_N_ROWS)
             assert table is not None  # a band is selected
             self.table = table
             e, d = self.model.energy_range, self.model.delay_range

@@ -148,3 +148,25 @@ def test_share_interval_coverage_on_replicate_ensembles():
     coverage = float(np.mean(hits))  # 0.955 in this run (400 intervals)
     assert 0.92 <= coverage <= 0.98, coverage
     assert float(np.mean(row_hits)) < 0.9  # snapshot resampling under-covers (0.44 here)
+
+
+def test_band_share_table_equals_grouped_shares_and_top_limits_the_work():
+    # two code paths over the same per-trajectory sums and the same resamples: equal
+    # (computed independently, not published)
+    ens = make_toy_ensemble(40, seed=8, t_max=120.0, dt=4.0)
+    x = np.random.default_rng(1).uniform(0, 1, ens.n_snapshots)
+    band = BandAnalysis.from_intensity(SnapshotGroups.from_ensemble(ens), x,
+                                       energy_range=(0, 1), delay_range=(0, 100))
+    snap = ens.snapshots
+    for group_by, column in (("state", "active"), ("traj", "traj")):
+        t = band_share_table(band, group_by, n_boot=400, random_state=4).set_index("key")
+        g = grouped_shares(x, snap[column].to_numpy(), snap["traj"].to_numpy(), n_boot=400,
+                           random_state=4).set_index("key")
+        np.testing.assert_allclose(t[["share", "lower", "upper"]].to_numpy(float),
+                                   g.loc[t.index, ["share", "lower", "upper"]].to_numpy(float),
+                                   rtol=1e-10)
+    top = band_share_table(band, "traj", n_boot=400, random_state=4, top=5)
+    assert top["lower"].iloc[:5].notna().all() and top["lower"].iloc[5:].isna().all()
+    assert not top["includes_zero"].iloc[5:].any()  # no interval: not flagged
+    full = band_share_table(band, "traj", n_boot=400, random_state=4)
+    np.testing.assert_allclose(top["upper"].iloc[:5], full["upper"].iloc[:5])

@@ -51,13 +51,13 @@ def ratio_replicates(numer: np.ndarray, denom: np.ndarray, counts: np.ndarray) -
         NaN where a resample's denominator is 0.
     """
     n_boot = counts.shape[0]
-    out = np.empty((n_boot, numer.shape[1]))
+    k = numer.shape[1]
+    # numerators and denominators side by side: one pass over the counts (memory bound)
+    both = np.hstack([numer, denom[:, None] if denom.ndim == 1 else denom])
+    out = np.empty((n_boot, k))
     for s in range(0, n_boot, _CHUNK):
-        c = counts[s:s + _CHUNK]
-        num = c @ numer
-        den = c @ denom
-        if den.ndim == 1:
-            den = den[:, None]
+        prod = counts[s:s + _CHUNK] @ both
+        num, den = prod[:, :k], prod[:, k:]
         with np.errstate(divide="ignore", invalid="ignore"):
             out[s:s + _CHUNK] = np.where(den != 0, num / np.where(den != 0, den, 1.0), np.nan)
     return out

@@ -22,7 +22,8 @@ import pandas as pd
 from scipy import sparse
 
 from ...errors import SchemaError
-from ._kernels_resample import RESAMPLING, percentile_interval, resample_counts
+from ..bands._kernels_bands import pair_counts
+from ._kernels_resample import RESAMPLING, percentile_interval, ratio_replicates, resample_counts
 
 if TYPE_CHECKING:
     from ..bands.analysis import BandAnalysis
@@ -98,12 +99,19 @@ def share_replicates(values: np.ndarray, group_codes: np.ndarray, n_groups: int,
     """
     per_unit = np.bincount(unit_codes, values, minlength=n_units)
     keep = group_codes >= 0
-    part = sparse.csr_matrix((values[keep], (unit_codes[keep], group_codes[keep])),
-                             shape=(n_units, n_groups))
     total = float(per_unit.sum())
-    share = np.asarray(part.sum(axis=0)).ravel() / total if total != 0 else np.full(
-        n_groups, np.nan)
-    num = np.asarray((part.T @ counts.T).T)  # (n_boot, n_groups)
+    num: np.ndarray
+    if n_groups * n_units <= 5_000_000:  # dense (group, unit) sums, one bincount
+        dense = np.bincount(group_codes[keep] * n_units + unit_codes[keep], values[keep],
+                            minlength=n_groups * n_units).reshape(n_groups, n_units)
+        group_sum = dense.sum(axis=1)
+        num = counts @ dense.T  # (n_boot, n_groups)
+    else:  # many groups (e.g. one per trajectory): sparse
+        part = sparse.csr_matrix((values[keep], (unit_codes[keep], group_codes[keep])),
+                                 shape=(n_units, n_groups))
+        group_sum = np.asarray(part.sum(axis=0)).ravel()
+        num = np.asarray((part.T @ counts.T).T)
+    share = group_sum / total if total != 0 else np.full(n_groups, np.nan)
     den = counts @ per_unit
     with np.errstate(divide="ignore", invalid="ignore"):
         reps = np.where(den[:, None] != 0, num / np.where(den != 0, den, 1.0)[:, None], np.nan)
@@ -120,6 +128,7 @@ def grouped_shares(
     n_boot: int = 1000,
     random_state: int | np.random.Generator | None = 0,
     resampling: str = "multinomial",
+    top: int | None = None,
 ) -> pd.DataFrame:
     """Share of every group in a sum of contributions, with a trajectory-bootstrap interval.
 
@@ -141,16 +150,19 @@ def grouped_shares(
         Seed of the resamples.
     resampling : {"multinomial", "poisson"}
         Resample multiplicities: classical (n draws with replacement) or Poisson(1).
+    top : int, optional
+        Intervals for the `top` largest groups only (the others get NaN bounds): bounds
+        the cost when there are many groups (e.g. one per trajectory).
 
     Returns
     -------
     DataFrame
         One row per group with a nonzero contribution, largest share first: ``key``,
         ``share`` (sums to 1), ``lower``, ``upper``, ``includes_zero`` (the interval
-        reaches 0: the group may not contribute at all), ``value`` (summed
-        contribution), ``n_units`` (units contributing). ``attrs``: ``interval``, ``ci``,
-        ``n_boot``, ``n_units`` (all units), ``n_eff`` (Kish effective number of units
-        from the per-unit totals).
+        reaches 0: the group may not contribute at all; False without an interval),
+        ``value`` (summed contribution), ``n_units`` (units contributing). ``attrs``:
+        ``interval``, ``ci``, ``n_boot``, ``n_units`` (all units), ``n_eff`` (Kish effective
+        number of units from the per-unit totals).
 
     Examples
     --------
@@ -174,32 +186,48 @@ def grouped_shares(
     g_codes, g_keys = _codes(g)
     u_codes, u_keys = _codes(u)
     return _share_table(x, g_codes, g_keys, u_codes, u_keys.size, interval=interval, ci=ci,
-                        n_boot=n_boot, random_state=random_state, resampling=resampling)
+                        n_boot=n_boot, random_state=random_state, resampling=resampling,
+                        top=top)
 
 
 def _share_table(x: np.ndarray, g_codes: np.ndarray, g_keys: np.ndarray, u_codes: np.ndarray,
                  n_units: int, *, interval: str | None, ci: float, n_boot: int,
-                 random_state: Any, resampling: str) -> pd.DataFrame:
+                 random_state: Any, resampling: str, top: int | None = None,
+                 count_units: bool = True) -> pd.DataFrame:
     n_g = g_keys.size
-    value = np.bincount(g_codes[g_codes >= 0], x[g_codes >= 0], minlength=n_g)
-    hit = (x != 0) & (g_codes >= 0)
-    n_u = np.count_nonzero(np.bincount(g_codes[hit] * n_units + u_codes[hit],
-                                       minlength=n_g * n_units).reshape(n_g, n_units), axis=1) \
-        if n_g * n_units <= 20_000_000 else np.array(
-            [np.unique(u_codes[hit & (g_codes == k)]).size for k in range(n_g)])
+    inside = g_codes >= 0
+    value = np.bincount(g_codes[inside], x[inside], minlength=n_g)
+    n_u = np.zeros(n_g, dtype=np.int64)
+    if count_units:
+        hit = (x != 0) & inside
+        if n_g * n_units <= 2_000_000:
+            n_u = pair_counts(g_codes[hit], u_codes[hit], n_g, n_units)
+        else:  # sort the distinct (group, unit) pairs instead of a dense table
+            pairs = np.unique(g_codes[hit].astype(np.int64) * n_units + u_codes[hit])
+            n_u = np.bincount(pairs // n_units, minlength=n_g)
     per_unit = np.bincount(u_codes, x, minlength=n_units)
     total = float(per_unit.sum())
     share = value / total if total != 0 else np.full(n_g, np.nan)
     lo = np.full(n_g, np.nan)
     hi = np.full(n_g, np.nan)
-    if interval == "bootstrap":
-        counts = bootstrap_counts_for(n_units, n_boot, random_state, resampling=resampling)
-        _, reps = share_replicates(x, g_codes, n_g, u_codes, n_units, counts)
-        lo, hi = percentile_interval(reps, float(ci))
     keep = np.flatnonzero(value != 0)
     order = keep[np.argsort(-value[keep], kind="stable")]
+    if interval == "bootstrap":
+        counts = bootstrap_counts_for(n_units, n_boot, random_state, resampling=resampling)
+        chosen = order if top is None else order[:max(int(top), 0)]
+        remap = np.full(n_g, -1, dtype=np.int64)
+        remap[chosen] = np.arange(chosen.size)
+        sub = remap[g_codes] if chosen.size < n_g else g_codes
+        _, reps = share_replicates(x, np.where(inside, sub, -1), chosen.size if chosen.size
+                                   < n_g else n_g, u_codes, n_units, counts)
+        lo_c, hi_c = percentile_interval(reps, float(ci))
+        if chosen.size < n_g:
+            lo[chosen], hi[chosen] = lo_c, hi_c
+        else:
+            lo, hi = lo_c, hi_c
     out = pd.DataFrame({"key": g_keys[order], "share": share[order], "lower": lo[order],
-                        "upper": hi[order], "includes_zero": ~(lo[order] > ZERO_TOL),
+                        "upper": hi[order], "includes_zero": np.where(np.isnan(lo[order]), False,
+                                                     ~(lo[order] > ZERO_TOL)),
                         "value": value[order], "n_units": n_u[order]})
     sq = float(np.sum(per_unit**2))
     out.attrs.update(interval=interval, ci=float(ci),
@@ -219,6 +247,7 @@ def band_share_table(
     random_state: int | np.random.Generator | None = 0,
     resampling: str = "multinomial",
     cluster_names: dict[str, str] | None = None,
+    top: int | None = None,
 ) -> pd.DataFrame:
     """A band's grouped shares (``BandAnalysis.group_table``) with bootstrap intervals.
 
@@ -233,6 +262,9 @@ def band_share_table(
         As in :func:`grouped_shares`: trajectories are resampled whole, weights kept.
     cluster_names : dict, optional
         Display name of each cluster code.
+    top : int, optional
+        Intervals for the `top` largest groups only (NaN bounds for the rest; the
+        explorer asks for the rows it shows).
 
     Returns
     -------
@@ -260,19 +292,41 @@ def band_share_table(
                         resampling=resampling)
     table = band.group_table(group_by, cluster_names=cluster_names)
     g_codes, g_keys = band.groups.codes(group_by)
-    u_codes, u_keys = band.groups.codes("traj")
-    stats = _share_table(band.intensity, np.asarray(g_codes), np.asarray(g_keys),
-                         np.asarray(u_codes), int(u_keys.size), interval=interval, ci=ci,
-                         n_boot=n_boot, random_state=random_state, resampling=resampling)
-    by_key = stats.set_index("key")
+    t_codes, t_keys = band.groups.codes("traj")
+    n_t = int(t_keys.size)
+    x = band.intensity
+    per_unit = np.bincount(t_codes, x, minlength=n_t)  # one pass over the rows
     keys = table["key"].to_numpy()
+    k = keys.size if top is None else min(keys.size, max(int(top), 0))
+    lower = np.full(keys.size, np.nan)
+    upper = np.full(keys.size, np.nan)
+    if interval == "bootstrap" and k:
+        sel = np.searchsorted(np.asarray(g_keys), keys[:k])  # codes of the shown groups
+        if group_by == "traj":  # a trajectory's group holds only itself
+            part = np.zeros((k, n_t))
+            part[np.arange(k), sel] = per_unit[sel]
+        elif g_keys.size * n_t <= 20_000_000:  # (group, trajectory) sums: one more pass
+            part = np.bincount(band.groups.pair_codes(group_by), x,
+                               minlength=g_keys.size * n_t).reshape(g_keys.size, n_t)[sel]
+        else:
+            hit = np.isin(g_codes, sel)
+            remap = np.full(g_keys.size, -1, dtype=np.int64)
+            remap[sel] = np.arange(k)
+            part = np.zeros((k, n_t))
+            np.add.at(part, (remap[g_codes[hit]], t_codes[hit]), x[hit])
+        counts = bootstrap_counts_for(n_t, n_boot, random_state, resampling=resampling)
+        reps = ratio_replicates(part.T, per_unit, np.asarray(counts))
+        lower[:k], upper[:k] = percentile_interval(reps, float(ci))
     out = table.copy()
-    lower = by_key["lower"].reindex(keys).to_numpy(np.float64)
-    upper = by_key["upper"].reindex(keys).to_numpy(np.float64)
     out["lower"] = lower
     out["upper"] = upper
-    out["includes_zero"] = ~(lower > ZERO_TOL)
-    out.attrs.update(stats.attrs)
+    out["includes_zero"] = np.where(np.isnan(lower), False, ~(lower > ZERO_TOL))
+    total = float(per_unit.sum())
+    sq = float(np.sum(per_unit**2))
+    out.attrs.update(interval=interval, ci=float(ci),
+                     n_boot=int(n_boot) if interval == "bootstrap" else 0,
+                     n_units=int(np.count_nonzero(per_unit)),
+                     n_eff=total * total / sq if sq > 0 else 0.0, resampling=resampling)
     return out
 
 
