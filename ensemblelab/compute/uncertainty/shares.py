@@ -197,7 +197,7 @@ def _share_table(x: np.ndarray, g_codes: np.ndarray, g_keys: np.ndarray, u_codes
     n_g = g_keys.size
     inside = g_codes >= 0
     value = np.bincount(g_codes[inside], x[inside], minlength=n_g)
-    n_u = np.zeros(n_g, dtype=np.int64)
+    n_u: np.ndarray = np.zeros(n_g, dtype=np.int64)
     if count_units:
         hit = (x != 0) & inside
         if n_g * n_units <= 2_000_000:
@@ -302,6 +302,7 @@ def band_share_table(
     upper = np.full(keys.size, np.nan)
     if interval == "bootstrap" and k:
         sel = np.searchsorted(np.asarray(g_keys), keys[:k])  # codes of the shown groups
+        part: np.ndarray
         if group_by == "traj":  # a trajectory's group holds only itself
             part = np.zeros((k, n_t))
             part[np.arange(k), sel] = per_unit[sel]
