@@ -7,12 +7,11 @@ temporary sibling folder, then moved into place)::
     figures/trpes_map.png           the total map (single column, 300 dpi)
     figures/trpes_by_state.png      its decomposition by neutral state (shared colour scale)
     figures/populations.png         populations with intervals and the kinetic fit
-    figures/scattering.png, figures/transient_absorption.png (and their tables/*.csv):
-                                    the further observables (a section each; shown as
-                                    missing with the reason when they cannot be computed)
+    figures/{scattering,transient_absorption,convergence}.png (tables/*.csv beside):
+                                    further observables; error against trajectory count
     tables/trpes_map.csv            tidy map (delay, energy, intensity, components)
     tables/populations.csv, tables/kinetics.csv, tables/flags.csv,
-    tables/clusters.csv, tables/representatives.csv
+    tables/clusters.csv, tables/representatives.csv, tables/convergence.csv
     structures/representatives.xyz  one aligned medoid per cluster (cluster and
                                     cluster_fraction in each comment line)
 
@@ -48,6 +47,7 @@ from .data.ensemble import Ensemble
 from .errors import StoreError
 from .plotting.populations import savefig, scheme_name
 from .plotting.spectra import plot_components, plot_map, resolve_energy_range
+from .report_convergence import convergence_section
 from .report_observables import OBSERVABLE_SECTIONS
 
 __all__ = ["build_report", "hill_formula", "report_pulses"]
@@ -526,6 +526,10 @@ def build_report(
                 return text
 
             sections.append(_section("Populations", population_section, notes))
+
+            sections.append(_section(
+                "Is the ensemble large enough?",  # too few trajectories: ValueError says so
+                lambda: convergence_section(need_trajectories(), tmp), notes))
             sections.append(quality_html)
 
             # ---------------------------------------------------------- clusters
@@ -535,7 +539,7 @@ def build_report(
                 summary = clusters.summary.copy()
                 if {"lower", "upper"} <= set(summary.columns):
                     summary["interval"] = _interval_text(
-                        CI, "Wilson score interval (Kish effective size)")
+                        CI, "percentile bootstrap over whole trajectories")
                 _csv(summary, tmp / "tables" / "clusters.csv")
                 keep = [c for c in ("cluster", "size", "fraction", "lower", "upper", "interval",
                                     "n_trajectories", "time_median", "silhouette")

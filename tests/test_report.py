@@ -32,7 +32,8 @@ def test_report_writes_page_figures_tables_structures(report):
     out, page = report
     assert page == out / "index.html"
     for rel in ("figures/trpes_map.png", "figures/trpes_by_state.png", "figures/populations.png",
-                "tables/trpes_map.csv", "tables/populations.csv", "tables/flags.csv",
+                "figures/convergence.png", "tables/convergence.csv", "tables/trpes_map.csv",
+                "tables/populations.csv", "tables/flags.csv",
                 "tables/clusters.csv", "tables/representatives.csv",
                 "structures/representatives.xyz"):
         assert (out / rel).is_file(), rel
@@ -42,6 +43,7 @@ def test_report_writes_page_figures_tables_structures(report):
     links = set(re.findall(r"(?:src|href)='([^']+)'", text))
     assert links and all((out / link).is_file() for link in links)
     assert "Flagged trajectories" in text and "Representative structures" in text
+    assert "Is the ensemble large enough?" in text and "1/sqrt(N) law" in text
 
 
 def test_report_tables_hold_consistent_numbers(report, toy):
@@ -203,8 +205,8 @@ def test_report_on_a_fully_flagged_small_ensemble_says_why_sections_are_missing(
     assert flag_trajectories(ens)["flagged"].astype(bool).all()  # precondition
     page = build_report(ens, tmp_path / "rep")
     text = _text(page)
-    # map, scattering, transient absorption, populations, clusters
-    assert text.count("Section missing:") == 5
+    # map, scattering, transient absorption, populations, convergence, clusters
+    assert text.count("Section missing:") == 6
     assert "every trajectory is flagged (6 of 6)" in text
     assert "6 of 6 flagged" in text  # the flag section itself is still there
     links = set(re.findall(r"(?:src|href)='([^']+)'", page.read_text()))

@@ -15,6 +15,8 @@ this package re-exports (imported on first use, see :mod:`ensemblelab._exports`)
   groups, shares);
 - :mod:`~ensemblelab.compute.observables`: time-resolved scattering and transient
   absorption.
+- :mod:`~ensemblelab.compute.uncertainty`: trajectory-bootstrap intervals on shares,
+  decomposition fractions, cluster fractions and lifetimes; convergence with N.
 """
 
 from __future__ import annotations
@@ -28,6 +30,7 @@ DOMAINS = (
     "ensemblelab.compute.dynamics",
     "ensemblelab.compute.bands",
     "ensemblelab.compute.observables",
+    "ensemblelab.compute.uncertainty",
 )
 
 __all__, __getattr__, __dir__ = lazy_exports("ensemblelab.compute", DOMAINS, globals())

@@ -10,6 +10,7 @@ import numpy as np
 import pandas as pd
 
 from ..compute.bands import group_band
+from ..compute.uncertainty import band_share_table, format_share
 from ..data.ensemble import Ensemble
 from ._base import View
 from ._messages import MessageArea
@@ -111,6 +112,9 @@ class SelectionTable(View):
                     self.summary.value = "<i>Nothing contributes to this band.</i>"
                 return
             table = self.model.group_table(self.model.group_by)
+            if self.model.analysis is not None:  # the same table with bootstrap intervals
+                table = band_share_table(self.model.analysis, self.model.group_by,
+                                         cluster_names=self.model.cluster_names, top=_N_ROWS)
             assert table is not None  # a band is selected
             self.table = table
             e, d = self.model.energy_range, self.model.delay_range
@@ -125,7 +129,7 @@ class SelectionTable(View):
             shown = table.head(_N_ROWS)
             rows: list[Any] = list(shown.itertuples())  # fields of mixed types
             self.rows.options = [
-                (f"{r.label:<16s} {format_percent(r.share):>8s}  ({r.n_snapshots} snapshots, "
+                (f"{format_share(r.label, r.share, *_bounds(r))}  ({r.n_snapshots} snapshots, "
                  f"{r.n_trajectories} traj.)", _plain(r.key))
                 for r in rows
             ]
@@ -133,12 +137,21 @@ class SelectionTable(View):
             head = "".join(f"<th>{h}</th>" for h in (
                 _GROUP_LABELS[self.model.group_by], "share", "snapshots", "trajectories"))
             body = "".join(
-                f"<tr><td>{html.escape(r.label)}</td><td>{format_percent(r.share)}</td>"
+                f"<tr{_GREY if getattr(r, 'includes_zero', False) else ''}>"
+                f"<td>{html.escape(r.label)}</td>"
+                f"<td>{format_share('', r.share, *_bounds(r)).strip()}</td>"
                 f"<td>{r.n_snapshots}</td><td>{r.n_trajectories}</td></tr>"
                 for r in rows)
             self.html.value = f"<table style='font-size:12px'><tr>{head}</tr>{body}</table>"
         finally:
             self._syncing = False
+
+
+_GREY = " style='color:#999'"  # a group whose interval reaches zero
+
+
+def _bounds(row: Any) -> tuple[float, float]:
+    return float(getattr(row, "lower", np.nan)), float(getattr(row, "upper", np.nan))
 
 
 def _plain(value: Any) -> Any:

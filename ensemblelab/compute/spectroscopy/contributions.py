@@ -34,7 +34,8 @@ from .sampling import ensemble_absorbing_state
 from .sticks import block_alive, block_sticks, check_shifts, prepare_sticks
 from .weights import trajectory_weights
 
-__all__ = ["contributions", "region_intensity", "contributions_partial", "model_for_map"]
+__all__ = ["contributions", "region_intensity", "contributions_partial", "model_for_map",
+           "delay_window_weights"]
 
 
 def _alive_partial(block: Any, span: BlockSpan, opts: dict[str, Any]) -> dict[str, Any]:
@@ -142,6 +143,32 @@ def _delay_weights(model: TRPESModel, p: dict[str, Any], t1: float, t2: float) -
     else:
         tw = _hat_integrals(model.times, t1, t2, model.t_known)
     return tw * norm
+
+
+def delay_window_weights(model: TRPESModel, params: dict[str, Any], delay_range: Sequence[float]
+                         ) -> np.ndarray:
+    """Normalised weight of every internal grid time in a delay window, shape (n_time,).
+
+    The same weights :func:`region_intensity` applies to the sticks of a snapshot on grid
+    time ``u``: the integral over ``delay_range`` (fs) of the map's time kernel (the
+    cross-correlation, or the interpolation hat), times the normaliser (1 / alive weight
+    or 1 / initial weight, as ``params["normalise"]`` says).
+
+    Parameters
+    ----------
+    model : TRPESModel
+        The map's model (``model_for_map``).
+    params : dict
+        ``trpes_map.params``.
+    delay_range : (float, float)
+        Delay window in fs.
+
+    Returns
+    -------
+    ndarray, shape (n_time,)
+    """
+    t1, t2 = (float(x) for x in delay_range)
+    return _delay_weights(model, params, t1, t2)
 
 
 def _per_snapshot(block: Any, opts: dict[str, Any]) -> np.ndarray:

@@ -29,6 +29,7 @@ import pandas as pd
 from sklearn.base import BaseEstimator, TransformerMixin, clone
 
 from ...errors import SchemaError
+from ..uncertainty.clusters import cluster_fraction_intervals
 from ._featurise import FeaturesLike, Featuriser, build_featuriser, make_featuriser
 
 if TYPE_CHECKING:
@@ -164,8 +165,9 @@ class ClusterResult:
     summary : DataFrame
         One row per cluster: ``cluster``, ``code``, ``state`` (active state, -1 when
         not split by state), ``size``, ``fraction`` (weighted by trajectory weight),
-        ``lower``, ``upper`` (95 % Wilson interval with the Kish effective size;
-        optimistic, since snapshots of one trajectory are correlated),
+        ``lower``, ``upper`` (95 % percentile bootstrap over whole trajectories,
+        weights kept: snapshots of one trajectory are correlated, so they are not
+        resampled one by one),
         ``n_trajectories``, ``time_mean``, ``time_q10``, ``time_median``,
         ``time_q90`` (fs), ``silhouette`` (mean silhouette on a subsample, within
         the state group), ``medoid_snapshot`` (on a subsample, in feature space).
@@ -236,7 +238,8 @@ class HopClusterResult:
     geometries : ndarray, shape (n_hops, n_atoms, 3)
     counts : DataFrame
         Per cluster (and transition ``from``->``to``): ``count``, ``fraction``,
-        ``lower``, ``upper`` (95 % Wilson, weighted), ``gap_mean``, ``gap_max`` (eV),
+        ``lower``, ``upper`` (95 % bootstrap over whole trajectories, weighted),
+        ``gap_mean``, ``gap_max`` (eV),
         ``time_median`` (fs), ``medoid_row`` (snapshot row of the medoid geometry),
         ``medoid_snapshot`` (its snapshot id).
     labels : ndarray of str, shape (n_hops,)
@@ -416,9 +419,9 @@ def cluster_snapshots(
             if c >= 0:
                 code += 1
     summary = pd.DataFrame(rows_summary)
-    sw = weights
-    n_eff = sw.sum() ** 2 / np.sum(sw**2) if np.sum(sw**2) > 0 else n
-    lo, hi = wilson_interval(summary["fraction"].to_numpy(), np.full(len(summary), n_eff))
+    # trajectories are the independent units: resample them whole (snapshots are not)
+    lo, hi = cluster_fraction_intervals(labels.astype(str), summary["cluster"], traj, weights,
+                                        random_state=random_state)
     summary.insert(list(summary.columns).index("fraction") + 1, "lower", lo)
     summary.insert(list(summary.columns).index("lower") + 1, "upper", hi)
     mean_features = pd.DataFrame(mean_rows)
@@ -510,7 +513,6 @@ def cluster_hops(
                             method="kabsch") for k in names], axis=1)
         hops["nearest_reference"] = np.asarray(names, dtype=object)[np.argmin(R, axis=1)]
         hops["reference_rmsd"] = R.min(axis=1)
-    n_eff = weights.sum() ** 2 / np.sum(weights**2)
     rows_out = []
     for name, idx in hops.groupby("cluster", sort=True).indices.items():
         w = weights[idx]
@@ -529,7 +531,9 @@ def cluster_hops(
             "medoid_snapshot": int(sid[med]),
         })
     counts = pd.DataFrame(rows_out)
-    lo, hi = wilson_interval(counts["fraction"].to_numpy(), np.full(len(counts), n_eff))
+    lo, hi = cluster_fraction_intervals(hops["cluster"].to_numpy(), counts["cluster"],
+                                        hops["traj"].to_numpy(), weights,
+                                        random_state=random_state)
     counts.insert(list(counts.columns).index("fraction") + 1, "lower", lo)
     counts.insert(list(counts.columns).index("lower") + 1, "upper", hi)
     return HopClusterResult(hops=hops, geometries=G, counts=counts, labels=labels.astype(str))
