@@ -32,9 +32,9 @@ ARRAY_KEYS: dict[str, bool] = {
 }
 #: keys read from the first frame of a file only
 HEADER_KEYS = ("energy_unit", "time_unit", "length_unit", "state_labels", "cation_labels",
-               "dyson_shape", "masses", "state_base")
+               "dyson_shape", "masses", "state_base", "Properties", "Lattice", "pbc")
 #: scalar keys with a meaning of their own
-SCALAR_ENERGY_KEYS = ("e_kin", "e_tot")
+SCALAR_ENERGY_KEYS = ("e_kin", "e_pot", "e_tot")
 RESERVED = {"time", "active", "step", "snapshot", *ARRAY_KEYS, *HEADER_KEYS}
 
 #: one ``key=value`` pair. The look-behind lets a key start only where a run of key

@@ -569,8 +569,8 @@ def convert_extxyz_chunked(
         ids_all = np.array([t for t, _ in files], dtype=np.int64)
         base = load_kw.get("state_base")
         if base is None:  # the first file's header decides, as for an eager load
-            opts = {k: load_kw.get(k) for k in ("energy_unit", "time_unit", "length_unit",
-                                                "state_base")}
+            opts: dict[str, Any] = {k: load_kw.get(k) for k in (
+                "energy_unit", "time_unit", "length_unit", "state_base")}
             header = xyz.parse_file(files[0][1], nonfinite="keep", **opts).header
             base = int(header.get("state_base", 0))
         table, arrays = xyz.read_trajectories_csv(
