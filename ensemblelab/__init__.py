@@ -37,6 +37,7 @@ _IO_AND_DATA: dict[str, str] = {
     "save_map": "ensemblelab.io.maps",
     "load_map": "ensemblelab.io.maps",
     "TRPESMap": "ensemblelab.data.spectrum",
+    "nonfinite_report": "ensemblelab.data.checks",
     "StickSpectrum": "ensemblelab.data.spectrum",
 }
 

@@ -18,7 +18,8 @@ column               meaning                                               unit
 ``dyson_<i>_<k>``    squared Dyson norms of every state i to cation k      1
 ``amp_<i>``          electronic populations abs(c_i)^2                     1
 ``step``             step index (default 0, 1, ... in time order)          int
-``e_kin, e_tot``     kinetic and total energy                              ``energy_unit``
+``e_kin, e_pot,``    kinetic, potential and total energy                   ``energy_unit``
+``e_tot``
 anything else        a user column of the snapshot table
 ===================  ====================================================  ===============
 
@@ -47,6 +48,7 @@ import pandas as pd
 
 from .. import units
 from .._csv import restore_frame, to_csv_text
+from ..data.checks import CHECKED_COLUMNS, nonfinite_by_traj
 from ..data.ensemble import Ensemble
 from ..errors import ParseError, SchemaError, UnitWarning
 from ._common import atomic_file, check_nonfinite_option, file_source, report_nonfinite
@@ -144,7 +146,9 @@ def load_table(
     state_base : {0, 1}
         How ``active`` counts states.
     nonfinite : {"raise", "keep"}
-        NaN/Inf in energies or coordinates: raise, or keep with a warning.
+        NaN/Inf in coordinates, energies, the array columns and ``e_kin``,
+        ``e_pot``, ``e_tot`` (not user columns): raise a ParseError, or keep with
+        a warning and list them in ``metadata["nonfinite"]`` ({traj: [fields]}).
     progress : bool
         Unused (a table loads in one go); accepted for a uniform signature.
 
@@ -272,8 +276,10 @@ def load_table(
     for c in columns:
         if c in used:
             continue
-        if c in ("e_kin", "e_tot"):
+        if c in CHECKED_COLUMNS:
             cols[c] = _numeric(table, c, path, csv=csv) * e_fac
+            report_nonfinite(cols[c], name=c, nonfinite=nonfinite, path=path,
+                             frame_of_row=line_of, stacklevel=4)
         else:
             cols[c] = table[c].to_numpy()
 
@@ -321,11 +327,14 @@ def load_table(
         traj_table, traj_arrays = read_trajectories_csv(
             tpath, np.unique(traj), energy_unit=energy_unit, state_base=state_base)
         sources.append(file_source(tpath, fmt="csv"))
+    bad = nonfinite_by_traj(traj, {"geometries": geoms, "energies": energies, **arrays,
+                                   **{c: cols[c] for c in CHECKED_COLUMNS if c in cols}})
+    nonfinite_meta = {"nonfinite": bad} if bad else {}
     try:
         return Ensemble.from_arrays(
             traj=traj, time=time * t_fac, active=active, geometries=geoms, symbols=symbols,
             energies=energies, step=ints.get("step"), trajectories=traj_table,
-            metadata={"sources": sources}, columns=cols, copy=False,
+            metadata={"sources": sources, **nonfinite_meta}, columns=cols, copy=False,
             **cast(dict[str, Any], arrays), **cast(dict[str, Any], traj_arrays),
         )
     except SchemaError as exc:

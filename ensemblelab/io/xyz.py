@@ -317,7 +317,8 @@ def parse_file(path: Path, *, energy_unit: str | None, time_unit: str | None,
         if block is not None and report_nonfinite(
                 block, name=key, nonfinite=nonfinite, path=path, stacklevel=5,
                 frame_of_row=atom_row if key in per_atom else frame_line):
-            bad_fields.append(key)
+            name = {"coordinates": "geometries", "momenta": "velocities"}.get(key, key)
+            bad_fields += [name] if name not in bad_fields else []
 
     if e_fac != 1.0:
         energies *= e_fac
