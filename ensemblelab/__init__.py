@@ -38,6 +38,9 @@ _IO_AND_DATA: dict[str, str] = {
     "load_map": "ensemblelab.io.maps",
     "TRPESMap": "ensemblelab.data.spectrum",
     "nonfinite_report": "ensemblelab.data.checks",
+    "snapshot_coverage": "ensemblelab.data.checks",
+    "join_snapshot_table": "ensemblelab.io.join",
+    "load_plain_xyz": "ensemblelab.io.plain",
     "StickSpectrum": "ensemblelab.data.spectrum",
 }
 

@@ -15,10 +15,11 @@ from collections.abc import Mapping, Sequence
 import numpy as np
 import pandas as pd
 
-from ._schema import SNAPSHOT_ARRAYS
+from ._schema import REQUIRED_COLUMNS, SNAPSHOT_ARRAYS
 from .ensemble import Ensemble
 
-__all__ = ["CHECKED_COLUMNS", "CHECKED_FIELDS", "nonfinite_report", "nonfinite_by_traj"]
+__all__ = ["CHECKED_COLUMNS", "CHECKED_FIELDS", "nonfinite_report", "nonfinite_by_traj",
+           "snapshot_coverage"]
 
 #: snapshot columns checked for NaN/Inf (energies of the bookkeeping, eV)
 CHECKED_COLUMNS = ("e_kin", "e_pot", "e_tot")
@@ -109,3 +110,49 @@ def nonfinite_report(ens: Ensemble, fields: Sequence[str] | None = None) -> pd.D
                      "first_time": float(time[hit].min()) if hit.any() else np.nan})
     return pd.DataFrame(rows, columns=["traj", "nonfinite", "fields", "n_snapshots",
                                        "first_time"])
+
+
+def snapshot_coverage(ens: Ensemble, fields: Sequence[str] | None = None) -> pd.DataFrame:
+    """Per trajectory, the fraction of snapshots that hold each field.
+
+    A snapshot holds an array field when all its values there are finite, and a
+    column when its value is not missing (NaN/None). Typical use: data computed
+    at a stride and joined with :func:`ensemblelab.join_snapshot_table`.
+
+    Parameters
+    ----------
+    ens : Ensemble
+    fields : sequence of str, optional
+        Ensemble arrays or snapshot columns; default every optional array present
+        and every non-required snapshot column.
+
+    Returns
+    -------
+    pandas.DataFrame
+        ``traj``, ``n_snapshots``, then one column per field with the fraction
+        (0..1) of that trajectory's snapshots holding it; one row per trajectory
+        in ``ens.trajectories`` order.
+    """
+    frame = ens.snapshots
+    if fields is None:
+        fields = [n for n in SNAPSHOT_ARRAYS if getattr(ens, n) is not None]
+        fields += [c for c in frame.columns if c not in REQUIRED_COLUMNS]
+    traj = frame["traj"].to_numpy()
+    has: dict[str, np.ndarray] = {}
+    for name in fields:
+        if name in frame.columns:
+            has[name] = frame[name].notna().to_numpy()
+        elif name in ("geometries", "energies", *SNAPSHOT_ARRAYS):
+            arr = getattr(ens, name)
+            has[name] = (np.zeros(len(frame), dtype=bool) if arr is None
+                         else np.logical_not(_bad_rows(arr)))
+        else:
+            raise KeyError(f"{name!r} is neither an Ensemble array nor a snapshot column.")
+    ids = ens.trajectories["traj"].to_numpy()
+    codes = pd.Index(ids).get_indexer(traj)
+    counts = np.bincount(codes, minlength=ids.size)
+    out = pd.DataFrame({"traj": ids, "n_snapshots": counts})
+    for name, mask in has.items():
+        hits = np.bincount(codes, weights=mask.astype(float), minlength=ids.size)
+        out[name] = hits / np.maximum(counts, 1)
+    return out

@@ -400,3 +400,10 @@ def write_table(ens: Ensemble, path: str | Path, *, geometries: bool = True) -> 
     with atomic_file(stem.with_name(stem.name + ".trajectories.csv")) as fh:
         write_trajectories_csv(ens, fh)
     return path
+
+
+# shared with the snapshot-table join (ensemblelab.io.join): same columns, same checks
+read_frame = _read
+numeric_column = _numeric
+indexed_columns = _indexed
+column_block = _block
