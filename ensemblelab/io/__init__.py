@@ -97,15 +97,17 @@ def load(
         Angstrom); converted to internal units at the boundary. Ignored for
         the native store, which is always in internal units.
     nonfinite : {"raise", "keep"}
-        NaN/Inf in energies, coordinates or arrays: raise a ParseError, or keep
-        them with an EnsembleWarning naming where.
+        NaN/Inf in coordinates, velocities, energies, arrays or ``e_kin``/
+        ``e_pot``/``e_tot``: raise a ParseError, or keep them with an
+        EnsembleWarning naming where (recorded in ``metadata["nonfinite"]``).
     progress : bool
         Show a progress bar on long loads.
     format : {"store", "extxyz", "table"}, optional
         Skip detection.
     **kw
         Passed to the format's loader (e.g. ``mmap_mode="r"`` for the store,
-        ``state_base=1`` for extended XYZ, ``geometries=`` for tables).
+        ``state_base=1``, ``masses={"H": 2.014}`` or ``skip_atom_columns=["forces"]``
+        for extended XYZ, ``geometries=`` or ``masses=`` for tables).
 
     Returns
     -------

@@ -183,7 +183,8 @@ def atom_columns(lines: Sequence[str], n_atoms: int, n_frames: int, path: Path,
             f"the atom column(s) {unknown} have no place in an Ensemble (it keeps positions, "
             "velocities and masses per atom).", path=path, frame=0, line=2, field=unknown[0],
             hint=f"pass skip_atom_columns=[{example}] to load without them (recorded in "
-                 "metadata['skipped_atom_columns']).")
+                 "metadata['skipped_atom_columns']; on the command line --skip-atom-columns "
+                 f"{' '.join(unknown)}).")
     size = n_atoms + 2
     table = np.asarray(lines, dtype=object).reshape(n_frames, size)
     atoms = table[:, 2:].ravel()
@@ -326,7 +327,7 @@ def masses_of_file(symbols: Sequence[str], given: Mapping[str, float] | npt.Arra
             line=None if atom is None else where_in_file(n_atoms, 0, 2 + atom),
             field="element" if atom is not None else "masses",
             hint="pass masses= explicitly to load(), e.g. masses={'X': 12.0} (element -> "
-                 "amu) or one mass per atom.") from exc
+                 "amu) or one mass per atom (on the command line --masses X=12.0).") from exc
 
 
 def velocities_from(vel: np.ndarray | None, cols: AtomColumns | None, masses: np.ndarray,

@@ -129,6 +129,7 @@ def load_table(
     state_base: int = 0,
     nonfinite: str = "raise",
     progress: bool = True,
+    masses: Any = None,
 ) -> Ensemble:
     """Load a tidy snapshot table (CSV or Parquet) with geometries from a multi-frame XYZ file.
 
@@ -151,12 +152,16 @@ def load_table(
         a warning and list them in ``metadata["nonfinite"]`` ({traj: [fields]}).
     progress : bool
         Unused (a table loads in one go); accepted for a uniform signature.
+    masses : mapping or array_like, optional
+        Atomic masses (amu): element -> amu (others from the standard table) or
+        one mass per atom.
 
     Returns
     -------
     Ensemble
         Rows sorted by (traj, time); internal units.
     """
+    from ._xyz_props import masses_of_file
     from .xyz import atom_block, read_text, split_frames  # shared XYZ frame parser
 
     check_nonfinite_option(nonfinite)
@@ -297,6 +302,7 @@ def load_table(
         geometries = found[0]
     geoms: np.ndarray
     symbols: list[str]
+    mass: np.ndarray | None = None
     if geometries is False:
         geoms, symbols = np.zeros((n, 0, 3)), []
     else:
@@ -308,6 +314,7 @@ def load_table(
                 path=gpath, field="frames",
                 hint="the XYZ file must hold the geometries in table row order.")
         symbols, geoms, _vel = atom_block(lines, n_atoms, n_frames, gpath)
+        mass = masses_of_file(symbols, masses, None, None, gpath)
         report_nonfinite(geoms, name="coordinates", nonfinite=nonfinite, path=gpath,
                          stacklevel=4)
         geoms = geoms * l_fac
@@ -333,7 +340,7 @@ def load_table(
     try:
         return Ensemble.from_arrays(
             traj=traj, time=time * t_fac, active=active, geometries=geoms, symbols=symbols,
-            energies=energies, step=ints.get("step"), trajectories=traj_table,
+            energies=energies, step=ints.get("step"), trajectories=traj_table, masses=mass,
             metadata={"sources": sources, **nonfinite_meta}, columns=cols, copy=False,
             **cast(dict[str, Any], arrays), **cast(dict[str, Any], traj_arrays),
         )

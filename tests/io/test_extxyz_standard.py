@@ -186,3 +186,23 @@ def test_masses_option_overrides_standard_weights_in_a_folder(tmp_path):
     assert is_h.any()
     np.testing.assert_allclose(heavy.masses[is_h], 2.014)
     np.testing.assert_allclose(heavy.masses[~is_h], ens.masses[~is_h])
+
+
+def test_cli_skip_atom_columns_and_masses(tmp_path, capsys):
+    from ensemblelab.cli import main
+
+    path = tmp_path / "traj_0.xyz"
+    ase.io.write(path, _ase_frames(forces=True), format="extxyz")
+    assert main(["info", str(path), "--no-progress"]) == 1
+    err = capsys.readouterr().err
+    assert "forces" in err and "--skip-atom-columns forces" in err
+    out_dir = tmp_path / "store"
+    assert main(["convert", str(path), str(out_dir), "--skip-atom-columns", "forces",
+                 "--masses", "H=2.014", "--no-progress"]) == 0
+    ens = load(out_dir)
+    np.testing.assert_allclose(ens.masses, [15.999, 2.014, 2.014])  # O: IUPAC weight (memory)
+    # momenta / deuterium masses: velocities follow the masses given (computed independently)
+    np.testing.assert_allclose(ens.velocities[:, 1:], _expected()[:, 1:] * 1.008 / 2.014,
+                               rtol=1e-3)
+    assert main(["info", str(path), "--masses", "H2.0", "--no-progress"]) == 1
+    assert "EL=AMU" in capsys.readouterr().err
