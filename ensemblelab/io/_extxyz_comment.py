@@ -130,7 +130,8 @@ def parse_comments(comments: Sequence[str], n_atoms: int, path: Path
                 f"missing required key {req}=...; found keys {_short(keys)}.",
                 path=path, frame=0, line=2, field=req,
                 hint="every frame's comment line needs time=, active= and energies=\"...\" "
-                     "(see the key table in ensemblelab.io.xyz).",
+                     "(see the key table in ensemblelab.io.xyz); for geometry-only files use "
+                     "ensemblelab.load_plain_xyz(path, states_table, time_step=...).",
             )
     values: dict[str, list[str]] = {k: [(q or p) for kk, q, p in pairs0 if kk == k][:1]
                                     for k in keys}

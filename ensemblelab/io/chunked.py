@@ -576,12 +576,15 @@ def convert_extxyz_chunked(
         table, arrays = xyz.read_trajectories_csv(
             csv_path, ids_all, energy_unit=load_kw.get("energy_unit"), state_base=base)
         sources.append(file_source(csv_path, fmt="csv"))
+    nonfinite: dict[int, list[str]] = {}
+    metadata.pop("nonfinite", None)
     pos_of = {} if table is None else {int(t): i for i, t in enumerate(table["traj"])}
     with ChunkedStoreWriter(target, chunk_size=chunk_size, overwrite=overwrite,
                             metadata={**metadata, "sources": []}, renumber=True) as writer:
         for tid, fpath in tqdm(files, desc="converting", unit="file", disable=not progress):
             ens = xyz.load_extxyz(fpath, progress=False, **load_kw)
             sources.extend(ens.metadata.get("sources", []))
+            nonfinite.update(ens.metadata.get("nonfinite", {}))
             pos = pos_of.get(int(tid))
             if pos is not None:
                 assert table is not None
@@ -592,5 +595,6 @@ def convert_extxyz_chunked(
                 ens = ens.replace(**changes)
             writer.append(ens)
         writer.flush()
+        metadata |= {"nonfinite": dict(sorted(nonfinite.items()))} if nonfinite else {}
         writer._meta = encode_metadata({**metadata, "sources": sources})
     return Path(target)

@@ -97,3 +97,15 @@ def test_table_loader_checks_the_same_fields(tmp_path):
     assert ens.metadata["nonfinite"] == {1: ["e_tot"]}
     flags = el.nonfinite_report(ens).set_index("traj")["nonfinite"]
     assert flags.to_dict() == {0: False, 1: True}
+
+
+def test_chunked_conversion_keeps_the_same_record(tmp_path):
+    from ensemblelab.io.chunked import convert_extxyz_chunked
+
+    eager = load(DEMO, progress=False, nonfinite="keep")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", EnsembleWarning)
+        store = convert_extxyz_chunked(DEMO, tmp_path / "big.ens", chunk_size=20,
+                                       progress=False, nonfinite="keep")
+    lazy = load(store, lazy=True)
+    assert lazy.metadata["nonfinite"] == eager.metadata["nonfinite"]
