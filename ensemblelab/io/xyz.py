@@ -201,6 +201,7 @@ def parse_file(path: Path, *, energy_unit: str | None, time_unit: str | None,
     l_unit = resolve_unit("length", header.get("length_unit"), length_unit, path=path)
     e_fac, t_fac, l_fac = (units.energy_factor(e_unit), units.time_factor(t_unit),
                            units.length_factor(l_unit))
+    lattice = read_cell(header, path, l_fac)  # refuses periodic cells
     base = state_base if state_base is not None else (
         _parse_header_int(header["state_base"], path=path, key="state_base")
         if "state_base" in header else 0)
@@ -357,7 +358,7 @@ def parse_file(path: Path, *, energy_unit: str | None, time_unit: str | None,
                      arrays=out_arrays, columns=columns, header=header, energy_unit=e_unit,
                      suspicious=suspicious, masses=mass,
                      extra={"nonfinite": bad_fields,
-                            "lattice": read_cell(header, path, l_fac),
+                            "lattice": lattice,
                             "skipped": [] if cols is None else cols.skipped})
 
 
