@@ -105,7 +105,8 @@ def parse_properties(spec: str, path: Path) -> list[tuple[str, str, int]]:
     out: list[tuple[str, str, int]] = []
     for k in range(0, len(parts), 3):
         name, kind, count = parts[k], parts[k + 1], parts[k + 2]
-        if kind not in ("S", "R", "I", "L") or not count.isdigit() or int(count) < 1:
+        if kind not in ("S", "R", "I", "L") or not count.isdigit() or len(count) > 4 \
+                or int(count) < 1:
             raise ParseError(
                 f"column {excerpt(name)}: expected type S, R, I or L and a positive count, "
                 f"found {excerpt(kind)}:{excerpt(count)}.",
@@ -189,6 +190,8 @@ def atom_columns(lines: Sequence[str], n_atoms: int, n_frames: int, path: Path,
     table = np.asarray(lines, dtype=object).reshape(n_frames, size)
     atoms = table[:, 2:].ravel()
     ncol = sum(c for _, _, c in cols)
+    if len(atoms[0].split()) != ncol:  # before any allocation sized by the declaration
+        _locate(atoms[:1], n_atoms, cols, path)
     text_idx: list[int] = []
     j = 0
     spans: dict[str, tuple[int, int]] = {}

@@ -206,3 +206,29 @@ def test_cli_skip_atom_columns_and_masses(tmp_path, capsys):
                                rtol=1e-3)
     assert main(["info", str(path), "--masses", "H2.0", "--no-progress"]) == 1
     assert "EL=AMU" in capsys.readouterr().err
+
+
+@pytest.mark.parametrize("pbc", [False, True])
+def test_ase_cell_kept_when_not_periodic_refused_when_periodic(tmp_path, pbc):
+    frames = _ase_frames(2)
+    for a in frames:
+        a.set_cell([12.0, 13.0, 14.0])  # invented box
+        a.set_pbc(pbc)
+    path = tmp_path / "boxed.xyz"
+    ase.io.write(path, frames, format="extxyz")
+    if pbc:
+        with pytest.raises(ParseError) as info:
+            load(path, progress=False)
+        assert info.value.field == "pbc" and "unwrap" in info.value.hint
+    else:
+        ens = load(path, progress=False)
+        np.testing.assert_allclose(ens.metadata["lattice"], np.diag([12.0, 13.0, 14.0]))
+
+
+@pytest.mark.parametrize("spec", ["species:S:1:pos:R:3:tags:I:99999999",
+                                  "species:S:1:pos:R:3:x:R:" + "9" * 5000])
+def test_hostile_properties_counts_are_refused_cheaply(tmp_path, spec):
+    p = _write(tmp_path / "a.xyz", f"Properties={spec}", ["H 0 0 0", "H 0 0 0.74"])
+    with pytest.raises(ParseError) as info:
+        load(p, progress=False, skip_atom_columns=["tags", "x"])
+    assert info.value.field in ("Properties", "atom line")
