@@ -98,7 +98,7 @@ import pandas as pd
 
 from .. import units
 from ..data.ensemble import Ensemble
-from ..errors import ParseError, SchemaError, UnitWarning
+from ..errors import EnsembleWarning, ParseError, SchemaError, UnitWarning
 from ._common import (
     check_nonfinite_option,
     decode_metadata,
@@ -450,9 +450,16 @@ def load_extxyz(
     suspicious: list[tuple[Path, str]] = []
     column_order: list[str] = []
     bad: dict[int, list[str]] = {}
+    kept: list[warnings.WarningMessage] = []
     for tid, fpath in tqdm(files, desc="loading", unit="file", disable=not progress,
                            leave=False):
-        data = parse_file(fpath, **kw)
+        with warnings.catch_warnings(record=True) as caught:  # one summary for all files
+            warnings.simplefilter("always", EnsembleWarning)
+            data = parse_file(fpath, **kw)
+        kept += [w for w in caught if issubclass(w.category, EnsembleWarning)]
+        for w in caught:
+            if not issubclass(w.category, EnsembleWarning):
+                warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
         if first is None:
             first = data
             est = data.n_frames * sum(sizes) / max(sizes[0], 1) * 1.02 + 16
@@ -488,6 +495,11 @@ def load_extxyz(
             suspicious.append((fpath, data.suspicious))
         del data
     assert first is not None
+    if kept:
+        listed = "; ".join(f"traj {t}: {', '.join(f)}" for t, f in list(bad.items())[:8])
+        warnings.warn(f"{kept[0].message} Non-finite values in {len(bad)} of {len(files)} "
+                      f"trajectories ({listed}{'; ...' if len(bad) > 8 else ''}); see "
+                      "metadata['nonfinite'].", EnsembleWarning, stacklevel=3)
     if suspicious:
         p, why = suspicious[0]
         warnings.warn(
