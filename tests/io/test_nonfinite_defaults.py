@@ -102,9 +102,9 @@ def test_table_loader_checks_the_same_fields(tmp_path):
 def test_chunked_conversion_keeps_the_same_record(tmp_path):
     from ensemblelab.io.chunked import convert_extxyz_chunked
 
-    eager = load(DEMO, progress=False, nonfinite="keep")
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", EnsembleWarning)
+        eager = load(DEMO, progress=False, nonfinite="keep")
         store = convert_extxyz_chunked(DEMO, tmp_path / "big.ens", chunk_size=20,
                                        progress=False, nonfinite="keep")
     lazy = load(store, lazy=True)
