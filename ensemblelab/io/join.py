@@ -236,6 +236,22 @@ def join_snapshot_table(
     ------
     ParseError
         Naming the table (file and line for CSV), the field and a hint.
+
+    Examples
+    --------
+    Cation energies computed every 10th step (invented values): 31 of 301 steps hold them.
+
+    >>> import pandas as pd
+    >>> import ensemblelab as el
+    >>> from ensemblelab.testing import make_toy_ensemble
+    >>> ens = make_toy_ensemble(2).replace(cation_energies=None, dyson=None, cation_labels=())
+    >>> s = ens.snapshots[ens.snapshots["step"] % 10 == 0]
+    >>> table = pd.DataFrame({"traj": s["traj"], "step": s["step"], "cation_e_0": 8.0})
+    >>> joined = el.join_snapshot_table(ens, table)
+    >>> el.snapshot_coverage(joined, ["cation_energies"]).round(3)
+       traj  n_snapshots  cation_energies
+    0     0          301            0.103
+    1     1          301            0.103
     """
     if on not in ("step", "time"):
         raise ValueError(f"The 'on' parameter must be 'step' or 'time'; got {on!r}.")
