@@ -232,3 +232,13 @@ def test_hostile_properties_counts_are_refused_cheaply(tmp_path, spec):
     with pytest.raises(ParseError) as info:
         load(p, progress=False, skip_atom_columns=["tags", "x"])
     assert info.value.field in ("Properties", "atom line")
+
+
+def test_from_arrays_takes_a_mass_mapping():
+    from ensemblelab import Ensemble
+
+    ens = Ensemble.from_arrays(traj=[0, 0], time=[0.0, 1.0], active=[0, 0],
+                               geometries=np.zeros((2, 2, 3)), symbols=["H", "Mu"],
+                               energies=np.zeros((2, 1)), masses={"Mu": 0.1134})
+    # muonium: 0.1134 amu (from memory); H: IUPAC abridged weight 1.008 (from memory)
+    np.testing.assert_allclose(ens.masses, [1.008, 0.1134])
