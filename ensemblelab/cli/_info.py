@@ -146,10 +146,15 @@ def summarise(ens: Ensemble) -> list[tuple[str, str]]:
                                          if c not in ("traj", "weight", "initial_state",
                                                       "n_steps", "t_end")) or "-"),
     ]
-    nonfinite = [n for n in ("geometries", "energies", *SNAPSHOT_ARRAYS)
-                 if getattr(ens, n) is not None and not np.isfinite(getattr(ens, n)).all()]
-    if nonfinite:
-        rows.append(("non-finite values", ", ".join(nonfinite)))
+    from ..data.checks import nonfinite_report
+
+    report = nonfinite_report(ens)
+    flagged = report[report["nonfinite"]]
+    if len(flagged):
+        fields = sorted({f for row in flagged["fields"] for f in row.split(", ")})
+        rows.append(("non-finite values", f"{', '.join(fields)} in {len(flagged)} "
+                     f"trajector{'y' if len(flagged) == 1 else 'ies'}: "
+                     f"{_ids(flagged['traj'].to_numpy())}"))
     sources = ens.metadata.get("sources", [])
     formats = Counter(str(s.get("format", "?")) for s in sources if isinstance(s, dict))
     names = [Path(str(s.get("path", "?"))).name for s in sources if isinstance(s, dict)]

@@ -109,3 +109,17 @@ def test_chunked_conversion_keeps_the_same_record(tmp_path):
                                        progress=False, nonfinite="keep")
     lazy = load(store, lazy=True)
     assert lazy.metadata["nonfinite"] == eager.metadata["nonfinite"]
+
+
+def test_cli_info_names_the_trajectories_with_nonfinite_values(capsys):
+    from ensemblelab.cli import main
+
+    assert main(["info", str(DEMO), "--no-progress"]) == 1  # the default raises, as documented
+    assert "nonfinite='keep'" in capsys.readouterr().err
+    assert main(["info", str(DEMO), "--nonfinite", "keep", "--no-progress"]) == 0
+    out = capsys.readouterr().out
+    line = next(x for x in out.splitlines() if x.strip().startswith("non-finite values"))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", EnsembleWarning)
+        broken = sorted(_nan_trajs(load(DEMO, progress=False, nonfinite="keep")))
+    assert "e_tot" in line and line.rstrip().endswith(", ".join(map(str, broken)))
