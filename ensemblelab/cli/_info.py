@@ -72,6 +72,9 @@ def load_from_args(args: argparse.Namespace) -> Ensemble:
         if args.state_base is not None:
             kw["state_base"] = args.state_base
         kw |= atom_options(args)
+    elif atom_options(args):
+        raise ValueError("--masses and --skip-atom-columns apply to extended-XYZ and table "
+                         "inputs; a native store keeps the masses it was saved with.")
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", EnsembleWarning)
         ens = load(path, progress=not args.no_progress, **kw)

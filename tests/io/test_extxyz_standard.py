@@ -242,3 +242,12 @@ def test_from_arrays_takes_a_mass_mapping():
                                energies=np.zeros((2, 1)), masses={"Mu": 0.1134})
     # muonium: 0.1134 amu (from memory); H: IUPAC abridged weight 1.008 (from memory)
     np.testing.assert_allclose(ens.masses, [1.008, 0.1134])
+
+
+def test_cli_atom_options_are_refused_for_a_store(tmp_path, capsys):
+    from ensemblelab.cli import main
+    from ensemblelab.io import save
+
+    store = save(make_ensemble(2, t_max=4.0, faults=False), tmp_path / "s")
+    assert main(["info", str(store), "--masses", "H=2.014", "--no-progress"]) == 1
+    assert "native store keeps the masses" in capsys.readouterr().err
