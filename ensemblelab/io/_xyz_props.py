@@ -39,6 +39,7 @@ from __future__ import annotations
 
 import io
 import math
+import re
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -171,8 +172,8 @@ def atom_columns(lines: Sequence[str], n_atoms: int, n_frames: int, path: Path,
                  skip: Sequence[str] = ()) -> AtomColumns:
     """Parse the atom lines of every frame by the ``Properties=`` of the first comment line."""
     cols = parse_properties(spec, path)
-    needle = f"Properties={spec}"
-    bad = next((f for f, c in enumerate(comments) if needle not in c), None)
+    same = re.compile(r'(?<!\S)Properties=("?)' + re.escape(spec) + r'\1(?!\S)')
+    bad = next((f for f, c in enumerate(comments) if not same.search(c)), None)
     if bad is not None:
         raise ParseError(f"this frame's Properties= differs from frame 0 ({excerpt(spec)}).",
                          path=path, frame=bad, line=where_in_file(n_atoms, bad, 1),

@@ -135,7 +135,7 @@ def test_velocity_columns_and_momenta_must_agree(tmp_path):
 
 
 def test_columns_in_another_order_and_atomic_numbers(tmp_path):
-    p = _write(tmp_path / "a.xyz", "Properties=pos:R:3:Z:I:1",
+    p = _write(tmp_path / "a.xyz", 'Properties="pos:R:3:Z:I:1"',
                ["0 0 0 8", "0 0.76 -0.47 1", "0 -0.76 -0.47 1"])
     ens = load(p, progress=False)
     assert ens.symbols == ("O", "H", "H") and ens.velocities is None
@@ -251,3 +251,14 @@ def test_cli_atom_options_are_refused_for_a_store(tmp_path, capsys):
     store = save(make_ensemble(2, t_max=4.0, faults=False), tmp_path / "s")
     assert main(["info", str(store), "--masses", "H=2.014", "--no-progress"]) == 1
     assert "native store keeps the masses" in capsys.readouterr().err
+
+
+def test_properties_changing_between_frames_is_refused(tmp_path):
+    p = tmp_path / "a.xyz"
+    p.write_text('2\nProperties=species:S:1:pos:R:3 time=0 active=0 energies="0 2"\n'
+                 "H 0 0 0\nH 0 0 0.74\n"
+                 '2\nProperties=species:S:1:pos:R:3:vel:R:3 time=1 active=0 energies="0 2"\n'
+                 "H 0 0 0 0 0 0\nH 0 0 0.74 0 0 0\n")
+    with pytest.raises(ParseError) as info:
+        load(p, progress=False)
+    assert (info.value.field, info.value.frame, info.value.line) == ("Properties", 1, 6)
