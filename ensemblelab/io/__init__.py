@@ -20,7 +20,8 @@ if TYPE_CHECKING:
     from .lazy import LazyEnsemble
 
 __all__ = ["load", "save", "write_extxyz", "load_extxyz", "load_table", "load_store",
-           "save_store", "detect_format", "save_map", "load_map", "load_measured_map"]
+           "save_store", "detect_format", "save_map", "load_map", "load_measured_map",
+           "join_snapshot_table", "load_plain_xyz"]
 
 
 @overload
@@ -176,6 +177,8 @@ def __getattr__(name: str) -> Any:
         "save_map": ("maps", "save_map"),
         "load_map": ("maps", "load_map"),
         "load_measured_map": ("maps", "load_measured_map"),
+        "join_snapshot_table": ("join", "join_snapshot_table"),
+        "load_plain_xyz": ("plain", "load_plain_xyz"),
     }
     if name in lazy:
         import importlib
