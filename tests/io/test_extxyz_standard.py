@@ -262,3 +262,43 @@ def test_properties_changing_between_frames_is_refused(tmp_path):
     with pytest.raises(ParseError) as info:
         load(p, progress=False)
     assert (info.value.field, info.value.frame, info.value.line) == ("Properties", 1, 6)
+
+
+def test_any_column_order_reads_the_same_arrays(tmp_path):
+    """Random layouts of the same invented data read back equal (computed independently)."""
+    rng = np.random.default_rng(3)
+    symbols = ["C", "O", "H", "H"]
+    masses = np.array([12.011, 15.999, 1.008, 1.008])  # IUPAC abridged weights (from memory)
+    n_frames = 3
+    pos = rng.normal(size=(n_frames, 4, 3))
+    vel = rng.normal(size=(n_frames, 4, 3)) * 0.01  # Angstrom/fs
+    columns = {
+        "species": ("S", 1, lambda f, a: [symbols[a]]),
+        "pos": ("R", 3, lambda f, a: list(pos[f, a])),
+        "momenta": ("R", 3, lambda f, a: list(vel[f, a] * masses[a] * ASE_T0)),
+        "masses": ("R", 1, lambda f, a: [masses[a]]),
+        "forces": ("R", 3, lambda f, a: [1.0, -2.0, 0.5]),
+        "tags": ("I", 1, lambda f, a: [a]),
+        "flag": ("L", 1, lambda f, a: ["T"]),
+    }
+    for trial in range(12):
+        names = list(rng.permutation(list(columns)))
+        spec = ":".join(f"{n}:{columns[n][0]}:{columns[n][1]}" for n in names)
+        text = ""
+        for f in range(n_frames):
+            text += f'4\nProperties={spec} time={f} active=0 energies="0 1"\n'
+            for a in range(4):
+                text += " ".join(str(v) if isinstance(v, str) else repr(float(v))
+                                 for n in names for v in columns[n][2](f, a)) + "\n"
+        path = tmp_path / f"t{trial}.xyz"
+        path.write_text(text)
+        ens = load(path, progress=False, skip_atom_columns=["forces", "tags", "flag"])
+        assert list(ens.symbols) == symbols
+        np.testing.assert_array_equal(ens.geometries, pos)
+        np.testing.assert_allclose(ens.velocities, vel, rtol=1e-12)
+        np.testing.assert_array_equal(ens.masses, masses)
+        assert sorted(ens.metadata["skipped_atom_columns"]) == ["flag", "forces", "tags"]
+
+
+ASE_T0 = 1e-10 * math.sqrt(constants.physical_constants["atomic mass constant"][0]
+                           / constants.e) * 1e15  # fs, CODATA via scipy (computed independently)
