@@ -58,7 +58,7 @@ from ._safety import excerpt
 
 __all__ = ["ASE_TIME_FS", "AtomColumns", "parse_properties", "atom_columns", "read_cell",
            "momenta_to_velocities", "velocities_to_momenta", "masses_of_file",
-           "WRITE_PROPERTIES", "velocities_from"]
+           "WRITE_PROPERTIES", "velocities_from", "read_atoms"]
 
 #: the time unit of the momentum convention, Angstrom * sqrt(amu / eV), in fs (CODATA via
 #: scipy.constants: 1e-10 m * sqrt(m_u / e) in s, times 1e15)
@@ -359,3 +359,30 @@ def velocities_from(vel: np.ndarray | None, cols: AtomColumns | None, masses: np
             line=where_in_file(n_atoms, f, 2 + a), field="momenta",
             hint="keep one of the two columns (drop the stale one from Properties=).")
     return vel
+
+
+def read_atoms(lines: Sequence[str], n_atoms: int, n_frames: int, path: Path, *,
+               skip: Sequence[str] = (), skip_all: bool = False
+               ) -> tuple[list[str], np.ndarray, np.ndarray | None, AtomColumns | None]:
+    """Atom lines of a geometry file whose comment lines are otherwise ignored.
+
+    Follows ``Properties=`` when the first comment line declares it (so momenta
+    are never read as velocities), else ``El x y z [vx vy vz]``. Returns symbols,
+    positions and velocities in file units, and the parsed columns (or None);
+    pass the latter to :func:`velocities_from` after the unit conversion.
+    ``skip_all`` skips every column the Ensemble cannot hold (for callers that use
+    the positions only).
+    """
+    from ._extxyz_comment import PAIR_RE
+    from ._xyz_fields import atom_block
+
+    comments = list(lines[1::n_atoms + 2][:n_frames])
+    spec = next((q or p for k, q, p in PAIR_RE.findall(comments[0]) if k == "Properties"),
+                None)
+    if spec is None:
+        symbols, geoms, vel = atom_block(list(lines), n_atoms, n_frames, path)
+        return symbols, geoms, vel, None
+    if skip_all:
+        skip = [n for n, _, _ in parse_properties(spec, path)]
+    cols = atom_columns(lines, n_atoms, n_frames, path, spec, comments, skip=skip)
+    return cols.symbols, cols.positions, cols.velocities, cols

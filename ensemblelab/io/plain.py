@@ -32,8 +32,8 @@ from ..data.ensemble import Ensemble
 from ..errors import ParseError
 from ._common import check_nonfinite_option, file_source, report_nonfinite, resolve_unit
 from ._extxyz_comment import TRAJ_ID_RE, where_in_file
-from ._xyz_fields import atom_block, file_stem, find_trajectory_files, read_text, split_frames
-from ._xyz_props import masses_of_file
+from ._xyz_fields import file_stem, find_trajectory_files, read_text, split_frames
+from ._xyz_props import masses_of_file, read_atoms, velocities_from
 from .join import integer_column, join_snapshot_table, read_source
 from .table import column_block, indexed_columns, numeric_column
 
@@ -52,6 +52,7 @@ def load_plain_xyz(
     length_unit: str | None = None,
     state_base: int = 0,
     masses: Mapping[str, float] | Sequence[float] | np.ndarray | None = None,
+    skip_atom_columns: Sequence[str] = (),
     nonfinite: str = "raise",
     unmatched: Literal["raise", "ignore"] = "raise",
     progress: bool = True,
@@ -79,6 +80,10 @@ def load_plain_xyz(
         How ``active`` counts states.
     masses : mapping or array_like, optional
         Atomic masses (amu) for unusual elements or isotopes.
+    skip_atom_columns : sequence of str
+        With ``Properties=`` in the files (e.g. written by ASE): atom columns to
+        skip, such as ``["forces"]``; momenta become velocities as in
+        :func:`ensemblelab.io.load_extxyz`.
     nonfinite : {"raise", "keep"}
         NaN/Inf in coordinates or energies: raise, or keep with a warning.
     unmatched : {"raise", "ignore"}
@@ -140,7 +145,7 @@ def load_plain_xyz(
     for tid, fpath in tqdm(files, desc="loading", unit="file", disable=not progress,
                            leave=False):
         n_atoms, n_frames, lines = split_frames(read_text(fpath), fpath)
-        sym, g, v = atom_block(lines, n_atoms, n_frames, fpath)
+        sym, g, v, cols = read_atoms(lines, n_atoms, n_frames, fpath, skip=skip_atom_columns)
         if symbols is None:
             symbols = sym
         elif sym != symbols:
@@ -150,7 +155,10 @@ def load_plain_xyz(
         report_nonfinite(g, name="coordinates", nonfinite=nonfinite, path=fpath, stacklevel=4,
                          frame_of_row=lambda r, n=n_atoms: (r, where_in_file(n, r, 2)))
         geoms.append(g * l_fac)
-        vels.append(None if v is None else v * (l_fac / t_fac))
+        mass = masses_of_file(symbols, masses, None if cols is None else cols.masses, None,
+                              fpath)
+        vels.append(velocities_from(None if v is None else v * (l_fac / t_fac), cols, mass,
+                                    fpath))
         trajs.append(np.full(n_frames, tid, dtype=np.int64))
         steps.append(np.arange(n_frames, dtype=np.int64) * int(stride))
         frame_of += [(fpath, k, n_atoms) for k in range(n_frames)]
@@ -210,7 +218,7 @@ def load_plain_xyz(
     ens = Ensemble.from_arrays(
         traj=traj_a, time=time, step=step_a, active=active, geometries=np.concatenate(geoms),
         symbols=symbols, energies=energies * e_fac,
-        masses=masses_of_file(symbols, masses, None, None, files[0][1]),
+        masses=mass,
         velocities=None if vels[0] is None else np.concatenate(
             [v for v in vels if v is not None]),
         metadata={"sources": [*sources, *([file_source(tpath, fmt="table")] if tpath else [])],

@@ -161,8 +161,8 @@ def load_table(
     Ensemble
         Rows sorted by (traj, time); internal units.
     """
-    from ._xyz_props import masses_of_file
-    from .xyz import atom_block, read_text, split_frames  # shared XYZ frame parser
+    from ._xyz_props import masses_of_file, read_atoms
+    from .xyz import read_text, split_frames  # shared XYZ frame parser
 
     check_nonfinite_option(nonfinite)
     path = Path(path)
@@ -313,7 +313,8 @@ def load_table(
                 f"expected one frame per table row ({n} rows), found {n_frames} frames.",
                 path=gpath, field="frames",
                 hint="the XYZ file must hold the geometries in table row order.")
-        symbols, geoms, _vel = atom_block(lines, n_atoms, n_frames, gpath)
+        symbols, geoms, _vel, _cols = read_atoms(lines, n_atoms, n_frames, gpath,
+                                                 skip_all=True)  # only positions are used
         mass = masses_of_file(symbols, masses, None, None, gpath)
         report_nonfinite(geoms, name="coordinates", nonfinite=nonfinite, path=gpath,
                          stacklevel=4)

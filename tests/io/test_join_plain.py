@@ -216,3 +216,35 @@ def test_plain_xyz_written_by_mdanalysis(tmp_path):
     np.testing.assert_allclose(ens.geometries, np.stack(frames), atol=2e-5)
     assert ens.symbols == ("O", "H", "H") and ens.trajectories["traj"].tolist() == [7]
     np.testing.assert_allclose(ens.snapshots["time"], np.arange(6) * 0.5)
+
+
+def test_plain_xyz_and_table_geometries_written_by_ase_with_momenta(tmp_path):
+    import ase  # in the test extra (ensemblelab[structures])
+    import ase.io
+    import ase.units
+    from ase.calculators.singlepoint import SinglePointCalculator
+
+    rng = np.random.default_rng(2)
+    pos = rng.normal(size=(4, 3, 3))
+    vel = rng.normal(size=(4, 3, 3)) * 0.005  # Angstrom/fs, invented
+    frames = []
+    for k in range(4):
+        a = ase.Atoms("NH2", positions=pos[k])
+        a.set_velocities(vel[k] / ase.units.fs)
+        a.calc = SinglePointCalculator(a, forces=np.ones((3, 3)))
+        frames.append(a)
+    path = tmp_path / "geo.xyz"
+    ase.io.write(path, frames, format="extxyz")
+    states = pd.DataFrame({"traj": 0, "step": range(4), "active": 1, "e_0": 0.0, "e_1": 2.5})
+    with pytest.raises(ParseError, match="skip_atom_columns"):
+        el.load_plain_xyz(path, states, time_step=1.0, progress=False)
+    ens = el.load_plain_xyz(path, states, time_step=1.0, progress=False,
+                            skip_atom_columns=["forces"], masses=frames[0].get_masses())
+    # ASE writes 8 decimals: ~1e-9 Angstrom/fs (computed independently, not published)
+    np.testing.assert_allclose(ens.velocities, vel, rtol=1e-6, atol=2e-9)
+    np.testing.assert_allclose(ens.geometries, pos, atol=1e-8)
+    # the table loader takes only the positions of such a file
+    table = states.assign(time=np.arange(4.0))
+    table.to_csv(tmp_path / "geo.csv", index=False)
+    tab = el.load(tmp_path / "geo.csv", progress=False)
+    np.testing.assert_allclose(tab.geometries, pos, atol=1e-8)
