@@ -13,7 +13,7 @@ def run_chunked(args: argparse.Namespace) -> int:
     """Write ``args.src`` as a chunked store at ``args.dst``; extended-XYZ folders stream."""
     from ..io import detect_format
     from ..io.chunked import convert_extxyz_chunked, read_chunked_manifest, save_chunked
-    from ._info import load_from_args
+    from ._info import atom_options, load_from_args
 
     if args.to != "store":
         raise SystemExit("ensemblelab convert: --chunked writes the native store; drop --to.")
@@ -23,6 +23,7 @@ def run_chunked(args: argparse.Namespace) -> int:
               "length_unit": args.length_unit, "nonfinite": args.nonfinite}
         if args.state_base is not None:
             kw["state_base"] = args.state_base
+        kw |= atom_options(args)
         out = convert_extxyz_chunked(src, args.dst, chunk_size=args.chunk_size,
                                      overwrite=args.overwrite, progress=not args.no_progress,
                                      **kw)

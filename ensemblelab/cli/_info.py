@@ -16,7 +16,7 @@ from ..errors import EnsembleWarning
 if TYPE_CHECKING:
     from ..data.ensemble import Ensemble
 
-__all__ = ["register", "summarise", "add_load_options", "load_from_args"]
+__all__ = ["register", "summarise", "add_load_options", "load_from_args", "atom_options"]
 
 
 def add_load_options(p: argparse.ArgumentParser) -> None:
@@ -31,7 +31,30 @@ def add_load_options(p: argparse.ArgumentParser) -> None:
                         "warning")
     p.add_argument("--input-format", choices=("store", "extxyz", "table"), default=None,
                    help="format of the input, when it cannot be told from its name")
+    p.add_argument("--masses", action="append", metavar="EL=AMU", default=None,
+                   help="atomic mass of an element or label, e.g. --masses H=2.014 (repeatable)")
+    p.add_argument("--skip-atom-columns", nargs="+", metavar="NAME", default=None,
+                   help="extended-XYZ Properties= atom columns to skip, e.g. forces")
     p.add_argument("--no-progress", action="store_true", help="no progress bar")
+
+
+def atom_options(args: argparse.Namespace) -> dict[str, Any]:
+    """``masses=`` and ``skip_atom_columns=`` of the loaders, from ``--masses``/``--skip-...``."""
+    kw: dict[str, Any] = {}
+    if getattr(args, "masses", None):
+        table = {}
+        for item in args.masses:
+            el, sep, value = item.partition("=")
+            try:
+                table[el.strip()] = float(value)
+            except ValueError:
+                sep = ""
+            if not sep or not el.strip():
+                raise ValueError(f"--masses expects EL=AMU (e.g. H=2.014), got {item!r}.")
+        kw["masses"] = table
+    if getattr(args, "skip_atom_columns", None):
+        kw["skip_atom_columns"] = list(args.skip_atom_columns)
+    return kw
 
 
 def load_from_args(args: argparse.Namespace) -> Ensemble:
@@ -48,6 +71,10 @@ def load_from_args(args: argparse.Namespace) -> Ensemble:
                "length_unit": args.length_unit, "nonfinite": args.nonfinite}
         if args.state_base is not None:
             kw["state_base"] = args.state_base
+        kw |= atom_options(args)
+    elif atom_options(args):
+        raise ValueError("--masses and --skip-atom-columns apply to extended-XYZ and table "
+                         "inputs; a native store keeps the masses it was saved with.")
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", EnsembleWarning)
         ens = load(path, progress=not args.no_progress, **kw)
@@ -122,10 +149,15 @@ def summarise(ens: Ensemble) -> list[tuple[str, str]]:
                                          if c not in ("traj", "weight", "initial_state",
                                                       "n_steps", "t_end")) or "-"),
     ]
-    nonfinite = [n for n in ("geometries", "energies", *SNAPSHOT_ARRAYS)
-                 if getattr(ens, n) is not None and not np.isfinite(getattr(ens, n)).all()]
-    if nonfinite:
-        rows.append(("non-finite values", ", ".join(nonfinite)))
+    from ..data.checks import nonfinite_report
+
+    report = nonfinite_report(ens)
+    flagged = report[report["nonfinite"]]
+    if len(flagged):
+        fields = sorted({f for row in flagged["fields"] for f in row.split(", ")})
+        rows.append(("non-finite values", f"{', '.join(fields)} in {len(flagged)} "
+                     f"trajector{'y' if len(flagged) == 1 else 'ies'}: "
+                     f"{_ids(flagged['traj'].to_numpy())}"))
     sources = ens.metadata.get("sources", [])
     formats = Counter(str(s.get("format", "?")) for s in sources if isinstance(s, dict))
     names = [Path(str(s.get("path", "?"))).name for s in sources if isinstance(s, dict)]

@@ -12,7 +12,7 @@ import pandas as pd
 
 from ..errors import SchemaError
 from ._schema import REQUIRED_COLUMNS
-from .elements import masses_for
+from .elements import resolve_masses
 
 __all__ = ["fields_from_arrays"]
 
@@ -26,7 +26,7 @@ def fields_from_arrays(
     symbols: Sequence[str],
     energies: npt.ArrayLike,
     step: npt.ArrayLike | None = None,
-    masses: npt.ArrayLike | None = None,
+    masses: npt.ArrayLike | Mapping[str, float] | None = None,
     trajectories: pd.DataFrame | None = None,
     cation_energies: npt.ArrayLike | None = None,
     dyson: npt.ArrayLike | None = None,
@@ -106,7 +106,7 @@ def fields_from_arrays(
         col = take(values, f"column {name!r}", None)
         frame[name] = col
     symbols_t = tuple(str(s) for s in symbols)
-    masses_a = masses_for(symbols_t) if masses is None else np.asarray(masses, float)
+    masses_a = resolve_masses(symbols_t, masses)  # a mapping names unusual elements
 
     traj_ids = np.unique(traj_a)
     if trajectories is None:

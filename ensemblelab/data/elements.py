@@ -6,13 +6,16 @@ from memory; isotope-specific masses can always be passed explicitly.
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
+from typing import Any
 
 import numpy as np
+import numpy.typing as npt
 
 from ..errors import SchemaError
 
-__all__ = ["ATOMIC_NUMBERS", "MASSES", "masses_for", "atomic_numbers_for", "normalise_symbol"]
+__all__ = ["ATOMIC_NUMBERS", "MASSES", "masses_for", "atomic_numbers_for", "normalise_symbol",
+           "resolve_masses"]
 
 _TABLE = """
 H 1 1.008; He 2 4.0026; Li 3 6.94; Be 4 9.0122; B 5 10.81; C 6 12.011; N 7 14.007;
@@ -43,16 +46,56 @@ def normalise_symbol(symbol: str) -> str:
     return s[:1].upper() + s[1:].lower()
 
 
-def _lookup(symbols: Sequence[str], table: dict, what: str) -> list:
+def _lookup(symbols: Sequence[str], table: Mapping[str, Any], what: str) -> list:
     out = []
     for i, sym in enumerate(symbols):
         key = normalise_symbol(sym)
-        if key not in table:
-            raise SchemaError(
+        if key not in table and sym not in table:
+            exc = SchemaError(
                 f"unknown element symbol {sym!r} at atom {i}; cannot look up its {what}. "
                 "Hint: pass masses= explicitly for unusual elements or labels."
             )
-        out.append(table[key])
+            exc.atom = i  # type: ignore[attr-defined]  # read by the loaders' messages
+            raise exc
+        out.append(table[sym] if sym in table else table[key])
+    return out
+
+
+def resolve_masses(symbols: Sequence[str],
+                   masses: Mapping[str, float] | npt.ArrayLike | None = None) -> np.ndarray:
+    """Atomic masses (amu), shape (n_atoms,): explicit ones first, then the standard table.
+
+    Parameters
+    ----------
+    symbols : sequence of str
+        Element symbols (or labels).
+    masses : mapping or array_like, optional
+        A mapping symbol -> amu (symbols it does not name come from the standard
+        table; a label such as ``"X1"`` may be named as written), or one positive
+        mass per atom.
+
+    Returns
+    -------
+    ndarray, shape (n_atoms,)
+
+    Raises
+    ------
+    SchemaError
+        Unknown symbol without an explicit mass (``exc.atom`` is its index), or a
+        mass that is not a positive finite number.
+    """
+    if masses is None:
+        return masses_for(symbols)
+    if isinstance(masses, Mapping):
+        table: dict[str, Any] = {**MASSES, **{str(k): float(v) for k, v in masses.items()}}
+        out = np.asarray(_lookup(symbols, table, "mass"), dtype=np.float64)
+    else:
+        out = np.asarray(masses, dtype=np.float64)
+        if out.shape != (len(symbols),):
+            raise SchemaError(f"masses= must hold one mass per atom ({len(symbols)}); got "
+                              f"shape {out.shape}.")
+    if not np.all(np.isfinite(out) & (out > 0)):
+        raise SchemaError(f"masses must be positive finite numbers (amu); got {out.tolist()}.")
     return out
 
 

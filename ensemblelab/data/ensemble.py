@@ -134,7 +134,7 @@ class Ensemble:
         symbols: Sequence[str],
         energies: npt.ArrayLike,
         step: npt.ArrayLike | None = None,
-        masses: npt.ArrayLike | None = None,
+        masses: npt.ArrayLike | Mapping[str, float] | None = None,
         trajectories: pd.DataFrame | None = None,
         cation_energies: npt.ArrayLike | None = None,
         dyson: npt.ArrayLike | None = None,
@@ -173,8 +173,10 @@ class Ensemble:
             Neutral adiabatic energies in eV.
         step : array_like of int, optional
             Step index; default 0, 1, ... within each trajectory in time order.
-        masses : array_like, shape (n_atoms,), optional
-            Masses in amu; default from the element symbols.
+        masses : array_like, shape (n_atoms,), or mapping, optional
+            Masses in amu; default from the element symbols. A mapping
+            element -> amu names unusual elements or isotopes (the rest from the
+            standard table).
         trajectories : DataFrame, optional
             Per-trajectory table with a ``traj`` column; missing rows get
             ``weight`` 1 and ``initial_state`` from the first snapshot.

@@ -20,7 +20,8 @@ if TYPE_CHECKING:
     from .lazy import LazyEnsemble
 
 __all__ = ["load", "save", "write_extxyz", "load_extxyz", "load_table", "load_store",
-           "save_store", "detect_format", "save_map", "load_map", "load_measured_map"]
+           "save_store", "detect_format", "save_map", "load_map", "load_measured_map",
+           "join_snapshot_table", "load_plain_xyz"]
 
 
 @overload
@@ -97,15 +98,17 @@ def load(
         Angstrom); converted to internal units at the boundary. Ignored for
         the native store, which is always in internal units.
     nonfinite : {"raise", "keep"}
-        NaN/Inf in energies, coordinates or arrays: raise a ParseError, or keep
-        them with an EnsembleWarning naming where.
+        NaN/Inf in coordinates, velocities, energies, arrays or ``e_kin``/
+        ``e_pot``/``e_tot``: raise a ParseError, or keep them with an
+        EnsembleWarning naming where (recorded in ``metadata["nonfinite"]``).
     progress : bool
         Show a progress bar on long loads.
     format : {"store", "extxyz", "table"}, optional
         Skip detection.
     **kw
         Passed to the format's loader (e.g. ``mmap_mode="r"`` for the store,
-        ``state_base=1`` for extended XYZ, ``geometries=`` for tables).
+        ``state_base=1``, ``masses={"H": 2.014}`` or ``skip_atom_columns=["forces"]``
+        for extended XYZ, ``geometries=`` or ``masses=`` for tables).
 
     Returns
     -------
@@ -174,6 +177,8 @@ def __getattr__(name: str) -> Any:
         "save_map": ("maps", "save_map"),
         "load_map": ("maps", "load_map"),
         "load_measured_map": ("maps", "load_measured_map"),
+        "join_snapshot_table": ("join", "join_snapshot_table"),
+        "load_plain_xyz": ("plain", "load_plain_xyz"),
     }
     if name in lazy:
         import importlib

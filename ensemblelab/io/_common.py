@@ -239,16 +239,17 @@ def report_nonfinite(
     path: object,
     frame_of_row: Any = None,
     stacklevel: int = 3,
-) -> None:
+) -> bool:
     """Raise ParseError (``nonfinite="raise"``) or warn (``"keep"``) when `arr` holds NaN/Inf.
 
-    `frame_of_row(row) -> (frame, line)` maps a row of `arr` to a location.
+    `frame_of_row(row) -> (frame, line)` maps a row of `arr` to a location. Returns
+    whether `arr` held a non-finite value (kept).
     """
     if arr is None or arr.size == 0:
-        return
+        return False
     flat = np.isfinite(arr.reshape(arr.shape[0], -1)).all(axis=1)
     if flat.all():
-        return
+        return False
     bad_rows = np.flatnonzero(~flat)
     row = int(bad_rows[0])
     frame, line = frame_of_row(row) if frame_of_row is not None else (row, None)
@@ -266,3 +267,4 @@ def report_nonfinite(
         EnsembleWarning,
         stacklevel=stacklevel,
     )
+    return True

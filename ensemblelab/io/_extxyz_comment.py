@@ -33,9 +33,9 @@ ARRAY_KEYS: dict[str, bool] = {
 }
 #: keys read from the first frame of a file only
 HEADER_KEYS = ("energy_unit", "time_unit", "length_unit", "state_labels", "cation_labels",
-               "dyson_shape", "masses", "state_base")
+               "dyson_shape", "masses", "state_base", "Properties", "Lattice", "pbc")
 #: scalar keys with a meaning of their own
-SCALAR_ENERGY_KEYS = ("e_kin", "e_tot")
+SCALAR_ENERGY_KEYS = ("e_kin", "e_pot", "e_tot")
 RESERVED = {"time", "active", "step", "snapshot", *ARRAY_KEYS, *HEADER_KEYS}
 
 #: one ``key=value`` pair. The look-behind lets a key start only where a run of key
@@ -131,7 +131,8 @@ def parse_comments(comments: Sequence[str], n_atoms: int, path: Path
                 f"missing required key {req}=...; found keys {_short(keys)}.",
                 path=path, frame=0, line=2, field=req,
                 hint="every frame's comment line needs time=, active= and energies=\"...\" "
-                     "(see the key table in ensemblelab.io.xyz).",
+                     "(see the key table in ensemblelab.io.xyz); for geometry-only files use "
+                     "ensemblelab.load_plain_xyz(path, states_table, time_step=...).",
             )
     values: dict[str, list[str]] = {k: [(q or p) for kk, q, p in pairs0 if kk == k][:1]
                                     for k in keys}

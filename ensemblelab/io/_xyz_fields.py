@@ -20,8 +20,8 @@ from .. import units
 from .._csv import restore_frame
 from ..errors import ParseError
 from ._common import parse_floats, resolve_unit
-from ._extxyz_comment import where_in_file
-from ._safety import excerpt, find_forbidden_char, read_bounded
+from ._extxyz_comment import SUFFIXES, TRAJ_ID_RE, where_in_file
+from ._safety import check_no_symlink_escape, excerpt, find_forbidden_char, read_bounded
 
 if TYPE_CHECKING:
     from .xyz import _FileData
@@ -119,6 +119,50 @@ def split_frames(text: str, path: Path) -> tuple[int, int, list[str]]:
             hint="the run probably stopped while writing; delete the incomplete last frame.",
         )
     return n_atoms, n_frames, lines
+
+
+# ---------------------------------------------------------------------------------- files
+def file_stem(path: Path) -> str:
+    name = path.name
+    for suf in SUFFIXES:
+        if name.endswith(suf):
+            return name[: -len(suf)]
+    return path.stem
+
+
+def find_trajectory_files(folder: Path) -> list[tuple[int, Path]]:
+    """Return ``(traj_id, path)`` of every ``*.xyz`` / ``*.xyz.gz`` file in `folder`, by id.
+
+    Parameters
+    ----------
+    folder : Path
+        The ensemble folder.
+
+    Returns
+    -------
+    list of (int, Path)
+        Sorted by trajectory id.
+    """
+    folder = Path(folder)
+    files = sorted(p for p in folder.iterdir()
+                   if p.is_file() and p.name.endswith(SUFFIXES) and not p.name.startswith("."))
+    for p in files:  # a link to a file outside the folder is refused, not followed
+        check_no_symlink_escape(folder, p, what="trajectory file")
+    matches = [TRAJ_ID_RE.search(file_stem(p)) for p in files]
+    if files and all(matches):
+        ids = [int(m.group(1)) for m in matches]  # type: ignore[union-attr]
+        seen: dict[int, Path] = {}
+        for i, p in zip(ids, files, strict=True):
+            if i in seen:
+                raise ParseError(
+                    f"two files hold trajectory {i}: {seen[i].name} and {p.name}.",
+                    path=folder, field="file name",
+                    hint="keep one file per trajectory (plain or gzip, not both).",
+                )
+            seen[i] = p
+        return sorted(seen.items())
+    return list(enumerate(files))
+
 
 
 _NAN_TOKENS = ["nan", "NaN", "NAN", "-nan", "+nan", "-NaN", "+NaN"]

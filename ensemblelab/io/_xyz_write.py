@@ -17,6 +17,7 @@ from ..data.ensemble import Ensemble
 from ..errors import SchemaError
 from ._common import atomic_folder, dumps_json, encode_metadata
 from ._extxyz_comment import ARRAY_KEYS, RESERVED, SUFFIXES
+from ._xyz_props import WRITE_PROPERTIES, velocities_to_momenta
 
 __all__ = ["write_extxyz"]
 
@@ -71,8 +72,12 @@ def write_extxyz(
     Notes
     -----
     Units in the files: fs, eV, Angstrom, Angstrom/fs. Every file states them in
-    its first comment line. ``trajectories.csv`` and ``metadata.json`` are
-    written beside the trajectory files.
+    its first comment line. With velocities, every comment line declares
+    ``Properties=species:S:1:pos:R:3:vel:R:3:momenta:R:3:masses:R:1``: ``vel``
+    (Angstrom/fs) reads back exactly here, and readers of the common convention
+    (e.g. ASE) get the velocities from ``momenta`` and ``masses``.
+    ``trajectories.csv`` and ``metadata.json`` are written beside the trajectory
+    files.
     """
     from tqdm.auto import tqdm
 
@@ -104,6 +109,8 @@ def write_extxyz(
 
     # one template and one object table per snapshot: "%" formatting does all the work
     parts: list[str] = ["time=" + F]
+    if ens.velocities is not None:  # declared in every frame, as the convention reads it
+        parts.insert(0, f"Properties={WRITE_PROPERTIES}")
     blocks: list[np.ndarray] = [frame["time"].to_numpy()[:, None]]
     parts.append("step=%d")
     blocks.append(frame["step"].to_numpy()[:, None])
@@ -143,7 +150,10 @@ def write_extxyz(
     first_tpl = " ".join(header) + " " + comment_tpl
     atoms = ens.geometries
     if ens.velocities is not None:
-        atoms = np.concatenate([atoms, ens.velocities], axis=2)
+        m = np.broadcast_to(ens.masses[None, :, None], (*atoms.shape[:2], 1))
+        atoms = np.concatenate(
+            [atoms, ens.velocities, velocities_to_momenta(ens.velocities, ens.masses), m],
+            axis=2)
     per_atom = atoms.shape[2]
     atom_tpl = "".join(f"{s} " + " ".join([F] * per_atom) + "\n" for s in ens.symbols)
     coords = atoms.reshape(len(frame), -1)

@@ -569,19 +569,22 @@ def convert_extxyz_chunked(
         ids_all = np.array([t for t, _ in files], dtype=np.int64)
         base = load_kw.get("state_base")
         if base is None:  # the first file's header decides, as for an eager load
-            opts = {k: load_kw.get(k) for k in ("energy_unit", "time_unit", "length_unit",
-                                                "state_base")}
+            opts: dict[str, Any] = {k: load_kw.get(k) for k in (
+                "energy_unit", "time_unit", "length_unit", "state_base")}
             header = xyz.parse_file(files[0][1], nonfinite="keep", **opts).header
             base = int(header.get("state_base", 0))
         table, arrays = xyz.read_trajectories_csv(
             csv_path, ids_all, energy_unit=load_kw.get("energy_unit"), state_base=base)
         sources.append(file_source(csv_path, fmt="csv"))
+    nonfinite: dict[int, list[str]] = {}
+    metadata.pop("nonfinite", None)
     pos_of = {} if table is None else {int(t): i for i, t in enumerate(table["traj"])}
     with ChunkedStoreWriter(target, chunk_size=chunk_size, overwrite=overwrite,
                             metadata={**metadata, "sources": []}, renumber=True) as writer:
         for tid, fpath in tqdm(files, desc="converting", unit="file", disable=not progress):
             ens = xyz.load_extxyz(fpath, progress=False, **load_kw)
             sources.extend(ens.metadata.get("sources", []))
+            nonfinite.update(ens.metadata.get("nonfinite", {}))
             pos = pos_of.get(int(tid))
             if pos is not None:
                 assert table is not None
@@ -592,5 +595,6 @@ def convert_extxyz_chunked(
                 ens = ens.replace(**changes)
             writer.append(ens)
         writer.flush()
+        metadata |= {"nonfinite": dict(sorted(nonfinite.items()))} if nonfinite else {}
         writer._meta = encode_metadata({**metadata, "sources": sources})
     return Path(target)

@@ -18,7 +18,8 @@ column               meaning                                               unit
 ``dyson_<i>_<k>``    squared Dyson norms of every state i to cation k      1
 ``amp_<i>``          electronic populations abs(c_i)^2                     1
 ``step``             step index (default 0, 1, ... in time order)          int
-``e_kin, e_tot``     kinetic and total energy                              ``energy_unit``
+``e_kin, e_pot,``    kinetic, potential and total energy                   ``energy_unit``
+``e_tot``
 anything else        a user column of the snapshot table
 ===================  ====================================================  ===============
 
@@ -47,6 +48,7 @@ import pandas as pd
 
 from .. import units
 from .._csv import restore_frame, to_csv_text
+from ..data.checks import CHECKED_COLUMNS, nonfinite_by_traj
 from ..data.ensemble import Ensemble
 from ..errors import ParseError, SchemaError, UnitWarning
 from ._common import atomic_file, check_nonfinite_option, file_source, report_nonfinite
@@ -127,6 +129,7 @@ def load_table(
     state_base: int = 0,
     nonfinite: str = "raise",
     progress: bool = True,
+    masses: Any = None,
 ) -> Ensemble:
     """Load a tidy snapshot table (CSV or Parquet) with geometries from a multi-frame XYZ file.
 
@@ -144,16 +147,22 @@ def load_table(
     state_base : {0, 1}
         How ``active`` counts states.
     nonfinite : {"raise", "keep"}
-        NaN/Inf in energies or coordinates: raise, or keep with a warning.
+        NaN/Inf in coordinates, energies, the array columns and ``e_kin``,
+        ``e_pot``, ``e_tot`` (not user columns): raise a ParseError, or keep with
+        a warning and list them in ``metadata["nonfinite"]`` ({traj: [fields]}).
     progress : bool
         Unused (a table loads in one go); accepted for a uniform signature.
+    masses : mapping or array_like, optional
+        Atomic masses (amu): element -> amu (others from the standard table) or
+        one mass per atom.
 
     Returns
     -------
     Ensemble
         Rows sorted by (traj, time); internal units.
     """
-    from .xyz import atom_block, read_text, split_frames  # shared XYZ frame parser
+    from ._xyz_props import masses_of_file, read_atoms
+    from .xyz import read_text, split_frames  # shared XYZ frame parser
 
     check_nonfinite_option(nonfinite)
     path = Path(path)
@@ -272,8 +281,10 @@ def load_table(
     for c in columns:
         if c in used:
             continue
-        if c in ("e_kin", "e_tot"):
+        if c in CHECKED_COLUMNS:
             cols[c] = _numeric(table, c, path, csv=csv) * e_fac
+            report_nonfinite(cols[c], name=c, nonfinite=nonfinite, path=path,
+                             frame_of_row=line_of, stacklevel=4)
         else:
             cols[c] = table[c].to_numpy()
 
@@ -291,6 +302,7 @@ def load_table(
         geometries = found[0]
     geoms: np.ndarray
     symbols: list[str]
+    mass: np.ndarray | None = None
     if geometries is False:
         geoms, symbols = np.zeros((n, 0, 3)), []
     else:
@@ -301,7 +313,9 @@ def load_table(
                 f"expected one frame per table row ({n} rows), found {n_frames} frames.",
                 path=gpath, field="frames",
                 hint="the XYZ file must hold the geometries in table row order.")
-        symbols, geoms, _vel = atom_block(lines, n_atoms, n_frames, gpath)
+        symbols, geoms, _vel, _cols = read_atoms(lines, n_atoms, n_frames, gpath,
+                                                 skip_all=True)  # only positions are used
+        mass = masses_of_file(symbols, masses, None, None, gpath)
         report_nonfinite(geoms, name="coordinates", nonfinite=nonfinite, path=gpath,
                          stacklevel=4)
         geoms = geoms * l_fac
@@ -321,11 +335,14 @@ def load_table(
         traj_table, traj_arrays = read_trajectories_csv(
             tpath, np.unique(traj), energy_unit=energy_unit, state_base=state_base)
         sources.append(file_source(tpath, fmt="csv"))
+    bad = nonfinite_by_traj(traj, {"geometries": geoms, "energies": energies, **arrays,
+                                   **{c: cols[c] for c in CHECKED_COLUMNS if c in cols}})
+    nonfinite_meta = {"nonfinite": bad} if bad else {}
     try:
         return Ensemble.from_arrays(
             traj=traj, time=time * t_fac, active=active, geometries=geoms, symbols=symbols,
-            energies=energies, step=ints.get("step"), trajectories=traj_table,
-            metadata={"sources": sources}, columns=cols, copy=False,
+            energies=energies, step=ints.get("step"), trajectories=traj_table, masses=mass,
+            metadata={"sources": sources, **nonfinite_meta}, columns=cols, copy=False,
             **cast(dict[str, Any], arrays), **cast(dict[str, Any], traj_arrays),
         )
     except SchemaError as exc:
@@ -391,3 +408,10 @@ def write_table(ens: Ensemble, path: str | Path, *, geometries: bool = True) -> 
     with atomic_file(stem.with_name(stem.name + ".trajectories.csv")) as fh:
         write_trajectories_csv(ens, fh)
     return path
+
+
+# shared with the snapshot-table join (ensemblelab.io.join): same columns, same checks
+read_frame = _read
+numeric_column = _numeric
+indexed_columns = _indexed
+column_block = _block

@@ -21,7 +21,10 @@ sorted name order. Each file is a sequence of standard XYZ frames::
     H   0.000000  0.757200 -0.469200
     H   0.000000 -0.757200 -0.469200
 
-An atom line is ``El x y z`` or ``El x y z vx vy vz`` (velocities). The
+An atom line is ``El x y z`` or ``El x y z vx vy vz`` (velocities), unless the
+comment line declares its columns with the common ``Properties=`` convention
+(``species``, ``pos``, ``vel``/``velocities``, ``momenta``, ``masses``; see
+:mod:`ensemblelab.io._xyz_props`, which also covers ``Lattice=`` and ``pbc=``). The
 comment line holds ``key=value`` pairs; a value with several numbers is
 quoted and space separated. Frames must be in increasing time.
 
@@ -45,7 +48,8 @@ key                  meaning                                         values / un
                      row-major
 ``step``             step index (default 0, 1, ...)                  1 int
 ``snapshot``         stable snapshot id (written after a selection)  1 int
-``e_kin, e_tot``     kinetic and total energy                        1, ``energy_unit``
+``e_kin, e_pot,``    kinetic, potential and total energy             1, ``energy_unit``
+``e_tot``
 any other key        a user column of the snapshot table             1 (int, float, bool, text)
 ===================  ==============================================  ==========================
 
@@ -92,6 +96,7 @@ from __future__ import annotations
 
 import json
 import warnings
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, cast
@@ -100,9 +105,8 @@ import numpy as np
 import pandas as pd
 
 from .. import units
-from ..data.elements import masses_for
 from ..data.ensemble import Ensemble
-from ..errors import ParseError, SchemaError, UnitWarning
+from ..errors import EnsembleWarning, ParseError, SchemaError, UnitWarning
 from ._common import (
     check_nonfinite_option,
     decode_metadata,
@@ -134,6 +138,8 @@ from ._xyz_fields import (  # noqa: E402,F401
     all_numbers,
     atom_block,
     check_same,
+    file_stem,
+    find_trajectory_files,
     looks_like_hartree,
     parse_integers,
     parse_numbers,
@@ -142,50 +148,8 @@ from ._xyz_fields import (  # noqa: E402,F401
     split_frames,
     user_column,
 )
+from ._xyz_props import atom_columns, masses_of_file, read_cell, velocities_from  # noqa: E402
 from ._xyz_write import write_extxyz, write_trajectories_csv  # noqa: E402,F401
-
-
-# ---------------------------------------------------------------------------------- files
-def _stem(path: Path) -> str:
-    name = path.name
-    for suf in SUFFIXES:
-        if name.endswith(suf):
-            return name[: -len(suf)]
-    return path.stem
-
-
-def find_trajectory_files(folder: Path) -> list[tuple[int, Path]]:
-    """Return ``(traj_id, path)`` of every ``*.xyz`` / ``*.xyz.gz`` file in `folder`, by id.
-
-    Parameters
-    ----------
-    folder : Path
-        The ensemble folder.
-
-    Returns
-    -------
-    list of (int, Path)
-        Sorted by trajectory id.
-    """
-    folder = Path(folder)
-    files = sorted(p for p in folder.iterdir()
-                   if p.is_file() and p.name.endswith(SUFFIXES) and not p.name.startswith("."))
-    for p in files:  # a link to a file outside the folder is refused, not followed
-        check_no_symlink_escape(folder, p, what="trajectory file")
-    matches = [TRAJ_ID_RE.search(_stem(p)) for p in files]
-    if files and all(matches):
-        ids = [int(m.group(1)) for m in matches]  # type: ignore[union-attr]
-        seen: dict[int, Path] = {}
-        for i, p in zip(ids, files, strict=True):
-            if i in seen:
-                raise ParseError(
-                    f"two files hold trajectory {i}: {seen[i].name} and {p.name}.",
-                    path=folder, field="file name",
-                    hint="keep one file per trajectory (plain or gzip, not both).",
-                )
-            seen[i] = p
-        return sorted(seen.items())
-    return list(enumerate(files))
 
 
 # ---------------------------------------------------------------------------------- parsing
@@ -205,6 +169,7 @@ class _FileData:
     header: dict[str, str]
     energy_unit: str
     suspicious: str | None = None
+    masses: np.ndarray | None = None
     extra: dict[str, Any] = field(default_factory=dict)
 
 
@@ -217,16 +182,25 @@ def _parse_header_int(value: str, *, path: Path, key: str) -> int:
 
 
 def parse_file(path: Path, *, energy_unit: str | None, time_unit: str | None,
-                length_unit: str | None, state_base: int | None, nonfinite: str) -> _FileData:
+               length_unit: str | None, state_base: int | None, nonfinite: str,
+               masses: Any = None, skip_atom_columns: Sequence[str] = ()) -> _FileData:
     text = read_text(path)
     n_atoms, n_frames, lines = split_frames(text, path)
     del text
     size = n_atoms + 2
-    symbols, geoms, vel = atom_block(lines, n_atoms, n_frames, path)
     comments = lines[1::size][:n_frames]
     check_comment_lengths(comments, n_atoms, path)
-    del lines
     header, keys, values = parse_comments(comments, n_atoms, path)
+    cols = None
+    if "Properties" in header:  # the column layout is declared: follow it
+        cols = atom_columns(lines, n_atoms, n_frames, path, header["Properties"], comments,
+                            skip=skip_atom_columns)
+        symbols, geoms, vel = cols.symbols, cols.positions, cols.velocities
+    else:
+        symbols, geoms, vel = atom_block(lines, n_atoms, n_frames, path)
+    del lines
+    mass = masses_of_file(symbols, masses, None if cols is None else cols.masses,
+                          header.get("masses"), path)
     check_values(keys, values, n_atoms, path)
     pre = all_numbers(values, keys)
 
@@ -235,6 +209,7 @@ def parse_file(path: Path, *, energy_unit: str | None, time_unit: str | None,
     l_unit = resolve_unit("length", header.get("length_unit"), length_unit, path=path)
     e_fac, t_fac, l_fac = (units.energy_factor(e_unit), units.time_factor(t_unit),
                            units.length_factor(l_unit))
+    lattice = read_cell(header, path, l_fac)  # refuses periodic cells
     base = state_base if state_base is not None else (
         _parse_header_int(header["state_base"], path=path, key="state_base")
         if "state_base" in header else 0)
@@ -341,16 +316,19 @@ def parse_file(path: Path, *, energy_unit: str | None, time_unit: str | None,
             )
         out_arrays["dyson"] = dy.reshape((n_frames, *want_d))
 
-    report_nonfinite(energies, name="energies", nonfinite=nonfinite, path=path,
-                     frame_of_row=frame_line, stacklevel=5)
-    for key, arr in out_arrays.items():
-        report_nonfinite(arr, name=key, nonfinite=nonfinite, path=path,
-                         frame_of_row=frame_line, stacklevel=5)
-    report_nonfinite(geoms, name="coordinates", nonfinite=nonfinite, path=path,
-                     frame_of_row=lambda r: (r, where_in_file(n_atoms, r, 2)), stacklevel=5)
-    if vel is not None:
-        report_nonfinite(vel, name="velocities", nonfinite=nonfinite, path=path,
-                         frame_of_row=lambda r: (r, where_in_file(n_atoms, r, 2)), stacklevel=5)
+    bad_fields = []
+    atom_row = lambda r: (r, where_in_file(n_atoms, r, 2))  # noqa: E731
+    per_atom: dict[str, np.ndarray | None] = {
+        "coordinates": geoms, "velocities": vel,
+        "momenta": None if cols is None else cols.momenta}
+    checked: list[tuple[str, np.ndarray | None]] = [("energies", energies),
+                                                    *out_arrays.items(), *per_atom.items()]
+    for key, block in checked:
+        if block is not None and report_nonfinite(
+                block, name=key, nonfinite=nonfinite, path=path, stacklevel=5,
+                frame_of_row=atom_row if key in per_atom else frame_line):
+            name = {"coordinates": "geometries", "momenta": "velocities"}.get(key, key)
+            bad_fields += [name] if name not in bad_fields else []
 
     if e_fac != 1.0:
         energies *= e_fac
@@ -361,6 +339,7 @@ def parse_file(path: Path, *, energy_unit: str | None, time_unit: str | None,
         geoms = geoms * l_fac
     if vel is not None and (l_fac != 1.0 or t_fac != 1.0):
         vel = vel * (l_fac / t_fac)
+    vel = velocities_from(vel, cols, mass, path)
     out_arrays["energies"] = energies
 
     columns: dict[str, Any] = {}
@@ -378,12 +357,18 @@ def parse_file(path: Path, *, energy_unit: str | None, time_unit: str | None,
                 raise ParseError(f"expected one number, found {values[key][0]!r}.", path=path,
                                  frame=0, line=2, field=key, hint=f"write {key}=<number>.")
             columns[key] = col[:, 0] * e_fac
+            if report_nonfinite(col, name=key, nonfinite=nonfinite, path=path,
+                                frame_of_row=frame_line, stacklevel=5):
+                bad_fields.append(key)
         else:
             columns[key] = user_column(values[key], key, pre)
     return _FileData(path=path, n_frames=n_frames, symbols=symbols, geometries=geoms,
                      velocities=vel, time=time, active=active, step=step, snapshot=snapshot,
                      arrays=out_arrays, columns=columns, header=header, energy_unit=e_unit,
-                     suspicious=suspicious)
+                     suspicious=suspicious, masses=mass,
+                     extra={"nonfinite": bad_fields,
+                            "lattice": lattice,
+                            "skipped": [] if cols is None else cols.skipped})
 
 
 def load_extxyz(
@@ -395,6 +380,8 @@ def load_extxyz(
     state_base: int | None = None,
     nonfinite: str = "raise",
     progress: bool = True,
+    masses: Mapping[str, float] | Sequence[float] | np.ndarray | None = None,
+    skip_atom_columns: Sequence[str] = (),
 ) -> Ensemble:
     """Load an extended-XYZ folder (one file per trajectory) or a single trajectory file.
 
@@ -410,10 +397,20 @@ def load_extxyz(
         How ``active`` (and ``initial_state``) count states; default 0, or the
         file's ``state_base`` header key.
     nonfinite : {"raise", "keep"}
-        What to do with NaN/Inf in energies, coordinates and arrays: raise a
-        ParseError, or keep them with an EnsembleWarning naming where.
+        What to do with NaN/Inf in coordinates, velocities, energies, the other
+        per-frame arrays and ``e_kin``/``e_pot``/``e_tot`` (user columns are not
+        checked: NaN there means "missing"): raise a ParseError at the first one,
+        or keep them with an EnsembleWarning naming where. Kept ones are listed in
+        ``metadata["nonfinite"]`` ({traj: [fields]}); see also
+        :func:`ensemblelab.nonfinite_report`.
     progress : bool
         Show a progress bar over files.
+    masses : mapping or array_like, optional
+        Atomic masses (amu): a mapping element -> amu (other elements from the
+        standard table) or one mass per atom. Overrides masses in the files.
+    skip_atom_columns : sequence of str
+        ``Properties=`` atom columns to skip (e.g. ``["forces"]``); any other
+        column the Ensemble cannot hold is refused (see :mod:`ensemblelab.io._xyz_props`).
 
     Returns
     -------
@@ -443,13 +440,14 @@ def load_extxyz(
                              hint="one extended-XYZ file per trajectory is expected.")
         folder = path
     else:
-        m = TRAJ_ID_RE.search(_stem(path))
+        m = TRAJ_ID_RE.search(file_stem(path))
         files = [(int(m.group(1)) if m else 0, path)]
         folder = None
     sizes = [p.stat().st_size for _, p in files]
     kw: dict[str, Any] = {"energy_unit": energy_unit, "time_unit": time_unit,
                           "length_unit": length_unit, "state_base": state_base,
-                          "nonfinite": nonfinite}
+                          "nonfinite": nonfinite, "masses": masses,
+                          "skip_atom_columns": tuple(skip_atom_columns)}
 
     first: _FileData | None = None
     stacks: dict[str, Stack] = {}
@@ -460,14 +458,27 @@ def load_extxyz(
     sources = []
     suspicious: list[tuple[Path, str]] = []
     column_order: list[str] = []
+    bad: dict[int, list[str]] = {}
+    kept: list[warnings.WarningMessage] = []
     for tid, fpath in tqdm(files, desc="loading", unit="file", disable=not progress,
                            leave=False):
-        data = parse_file(fpath, **kw)
+        with warnings.catch_warnings(record=True) as caught:  # one summary for all files
+            warnings.simplefilter("always", EnsembleWarning)
+            data = parse_file(fpath, **kw)
+        kept += [w for w in caught if issubclass(w.category, EnsembleWarning)]
+        for w in caught:
+            if not issubclass(w.category, EnsembleWarning):
+                warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
         if first is None:
             first = data
             est = data.n_frames * sum(sizes) / max(sizes[0], 1) * 1.02 + 16
         else:
             check_same(first, data)
+            if not np.array_equal(first.masses, data.masses):  # type: ignore[arg-type]
+                raise ParseError(f"the masses differ from {first.path.name}.", path=fpath,
+                                 frame=0, field="masses", hint="all files hold the same atoms.")
+        if data.extra["nonfinite"]:
+            bad[int(tid)] = data.extra["nonfinite"]
         blocks = {"geometries": data.geometries, "time": data.time, "active": data.active,
                   **data.arrays}
         if data.velocities is not None:
@@ -493,6 +504,11 @@ def load_extxyz(
             suspicious.append((fpath, data.suspicious))
         del data
     assert first is not None
+    if kept:
+        listed = "; ".join(f"traj {t}: {', '.join(f)}" for t, f in list(bad.items())[:8])
+        warnings.warn(f"{kept[0].message} Non-finite values in {len(bad)} of {len(files)} "
+                      f"trajectories ({listed}{'; ...' if len(bad) > 8 else ''}); see "
+                      "metadata['nonfinite'].", EnsembleWarning, stacklevel=3)
     if suspicious:
         p, why = suspicious[0]
         warnings.warn(
@@ -506,13 +522,6 @@ def load_extxyz(
     # every stack received at least one array, so none of the results is None
     out = {name: cast(np.ndarray, s.result()) for name, s in stacks.items()}
     header = first.header
-    masses = None
-    if "masses" in header:
-        masses = parse_floats(header["masses"], len(first.symbols))
-        if masses is None:
-            raise ParseError(f"expected {len(first.symbols)} masses (amu), found "
-                             f"{header['masses']!r}.", path=first.path, frame=0, line=2,
-                             field="masses", hint="one mass per atom, quoted.")
     state_labels = header["state_labels"].split() if "state_labels" in header else None
     cation_labels = header["cation_labels"].split() if "cation_labels" in header else None
 
@@ -542,6 +551,10 @@ def load_extxyz(
                 csv_path, ids_all, energy_unit=energy_unit, state_base=base)
             sources.append(file_source(csv_path, fmt="csv"))
     metadata["sources"] = sources
+    metadata.pop("nonfinite", None)  # what this load found, not an earlier record
+    extra = {"nonfinite": bad, "lattice": first.extra["lattice"],
+             "skipped_atom_columns": first.extra["skipped"]}
+    metadata.update({k: v for k, v in extra.items() if v is not None and len(v)})
 
     # Files come in trajectory order and times increase within each (checked above), so the
     # snapshot frame is built here directly, already sorted, and handed to the constructor
@@ -577,7 +590,7 @@ def load_extxyz(
             geometries=out.pop("geometries"),
             energies=out.pop("energies"),
             symbols=tuple(first.symbols),
-            masses=masses if masses is not None else masses_for(first.symbols),
+            masses=cast(np.ndarray, first.masses),
             trajectories=trajectories,
             state_labels=tuple(state_labels or ()),
             cation_labels=tuple(cation_labels or ()),
