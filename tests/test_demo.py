@@ -143,7 +143,7 @@ def test_demo_bond_lengths_stay_physical(source):
     if source == "committed":
         from ensemblelab.io import load
 
-        ens = load(DEMO_DATA, progress=False)
+        ens = load(DEMO_DATA, nonfinite="keep", progress=False)
     else:
         ens = make_ensemble(60, seed=3, velocities=False)
     faults = [int(k) for k in ens.metadata["injected_faults"]]

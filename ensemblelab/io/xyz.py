@@ -5,9 +5,7 @@ Layout
 ::
 
     my_ensemble/
-        traj_0.xyz            one trajectory per file (``*.xyz`` or ``*.xyz.gz``)
-        traj_1.xyz.gz
-        ...
+        traj_0.xyz, traj_1.xyz.gz, ...   one trajectory per file (``.xyz``/``.xyz.gz``)
         trajectories.csv      optional: one row per trajectory
         metadata.json         optional: free-form metadata (written by write_extxyz)
 
@@ -44,8 +42,7 @@ key                  meaning                                         values / un
 ``amplitudes``       electronic populations abs(c_i)^2               n_states
 ``adt``              adiabatic-to-diabatic matrix U, row-major       n_states*n_states
 ``adt_cation``       cation ADT matrix, row-major                    n_cation*n_cation
-``overlaps``         state overlaps with the previous step,          n_states*n_states
-                     row-major
+``overlaps``         state overlaps with the previous step, by row   n_states*n_states
 ``step``             step index (default 0, 1, ...)                  1 int
 ``snapshot``         stable snapshot id (written after a selection)  1 int
 ``e_kin, e_pot,``    kinetic, potential and total energy             1, ``energy_unit``
@@ -53,9 +50,8 @@ key                  meaning                                         values / un
 any other key        a user column of the snapshot table             1 (int, float, bool, text)
 ===================  ==============================================  ==========================
 
-Optional key ``transition_strengths``: oscillator strengths f_ij between the neutral
-states at this geometry, n_states*n_states values, row-major (symmetric, diagonal
-ignored, dimensionless); transient absorption reads it.
+Optional ``transition_strengths``: oscillator strengths f_ij between neutral states,
+n_states*n_states, row-major, symmetric, dimensionless (for transient absorption).
 
 File header keys (read from the first frame of a file; may be repeated)
 -----------------------------------------------------------------------

@@ -41,7 +41,7 @@ def stop_after_ground_state(ens: Ensemble, after: float = 10.0) -> Ensemble:
 def demo():
     from ensemblelab.io import load
 
-    ens = load(DEMO, progress=False)
+    ens = load(DEMO, nonfinite="keep", progress=False)
     faults = [int(k) for k in ens.metadata["injected_faults"]]
     return ens.without(faults)
 
