@@ -93,3 +93,27 @@ def test_report_times_sections_and_shows_progress(tmp_path, capsys):
     build_report(ens, tmp_path / "q", energies=np.linspace(0, 2.5, 41),
                  delays=np.arange(-40.0, 101.0, 20.0), n_boot=20, progress=False)
     assert "report" not in capsys.readouterr().err
+
+
+def test_fast_csv_text_equals_pandas():
+    # reference library: pandas.DataFrame.to_csv of the neutralised frame, cell for cell
+    import pandas as pd
+
+    from ensemblelab._csv import neutralise_frame, to_csv_text
+
+    rng = np.random.default_rng(11)
+    n = 3000
+    with np.errstate(over="ignore"):
+        v = rng.normal(size=n) * 10.0 ** rng.integers(-320, 300, n)
+    v[::7], v[::11], v[::13], v[5] = np.nan, np.inf, -0.0, 5e-324
+    words = np.array(["S0", "a,b", 'say "hi"', "two\nlines", "cr\rhere", " pad ",
+                      "=SUM(A1)", "-x", "", "'q"],
+                     dtype=object)
+    text = pd.array(words[rng.integers(0, len(words), n)], dtype="string")
+    text[3] = pd.NA
+    df = pd.DataFrame({"delay, fs": v, "n": rng.integers(-10**12, 10**12, n),
+                       "u": rng.integers(0, 5, n).astype(np.uint8), "flag": rng.random(n) > 0.5,
+                       "=label": text, "obj": words[rng.integers(0, len(words), n)]})
+    assert to_csv_text(df) == neutralise_frame(df).to_csv(index=False)
+    for sub in (["delay, fs"], ["=label", "n"], ["obj"]):
+        assert to_csv_text(df[sub]) == neutralise_frame(df[sub]).to_csv(index=False)
