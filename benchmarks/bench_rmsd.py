@@ -13,7 +13,8 @@ natural container: ensemblelab a float64 array in Angstrom (and, for its float32
 float32 array), mdtraj a ``Trajectory`` (float32, nm), MDAnalysis per-frame float64 arrays.
 
 Every time is end to end from the public call (centring, copies and dtype conversion
-included), the best of `--repeat` runs after one warm-up call (numba compiles on the first
+included), the best of `--repeat` rounds after one warm-up round, the contenders
+alternating within each round (numba compiles on the first
 call; the compile time is printed separately). Ratios are peer time / ensemblelab time, so
 > 1 means ensemblelab is faster. Absolute times are noisy on a shared machine; the ratios
 are measured in the same run.
@@ -61,6 +62,20 @@ def best_time(fn: Callable[[], Any], repeat: int) -> tuple[float, Any]:
     return best, out
 
 
+def best_interleaved(calls: dict[str, Callable[[], Any]], repeat: int
+                     ) -> tuple[dict[str, float], dict[str, Any]]:
+    """Best time of each call over `repeat` rounds, the calls alternating within a round
+    (so every contender sees the same machine load); one warm-up round first."""
+    res = {k: fn() for k, fn in calls.items()}
+    times = dict.fromkeys(calls, np.inf)
+    for _ in range(repeat):
+        for k, fn in calls.items():
+            t0 = time.perf_counter()
+            fn()
+            times[k] = min(times[k], time.perf_counter() - t0)
+    return times, res
+
+
 def run(n_atoms: int, n_frames: int, repeat: int) -> None:
     X, ref = synthetic_trajectory(n_atoms, n_frames)
     X32 = X.astype(np.float32)
@@ -72,13 +87,8 @@ def run(n_atoms: int, n_frames: int, repeat: int) -> None:
     rmsd(X[:2], ref, method="kabsch")
     print(f"  first call (compile or load kernels): {time.perf_counter() - t0:.2f} s")
 
-    times: dict[str, float] = {}
-    res: dict[str, np.ndarray] = {}
-    times["qcp64"], res["qcp64"] = best_time(lambda: rmsd(X, ref), repeat)
-    times["qcp32"], res["qcp32"] = best_time(lambda: rmsd(X32, ref), repeat)
-    times["kabsch"], res["kabsch"] = best_time(lambda: rmsd(X, ref, method="kabsch"), repeat)
-
     import mdtraj as md
+    from MDAnalysis.analysis import align, rms
 
     top = md.Topology()
     residue = top.add_residue("UNK", top.add_chain())
@@ -86,17 +96,11 @@ def run(n_atoms: int, n_frames: int, repeat: int) -> None:
         top.add_atom("C", md.element.carbon, residue)
     traj = md.Trajectory(X32 / 10.0, top)  # nm
     reft = md.Trajectory((ref / 10.0).astype(np.float32)[None], top)
-    md.rmsd(traj, reft, 0)
-    times["mdtraj"], r = best_time(lambda: md.rmsd(traj, reft, 0), repeat)
-    res["mdtraj"] = 10.0 * np.asarray(r, float)
-
-    from MDAnalysis.analysis import align, rms
+    refc = ref - ref.mean(0)
 
     def mda_qcp() -> np.ndarray:
         return np.array([rms.rmsd(X[f], ref, center=True, superposition=True)
                          for f in range(n_frames)])
-
-    refc = ref - ref.mean(0)
 
     def mda_rotation() -> np.ndarray:
         out = np.empty(n_frames)
@@ -105,9 +109,15 @@ def run(n_atoms: int, n_frames: int, repeat: int) -> None:
             _, out[f] = align.rotation_matrix(mob, refc)
         return out
 
-    times["mda_rmsd"], res["mda_rmsd"] = best_time(mda_qcp, repeat)
-    times["mda_rot"], res["mda_rot"] = best_time(mda_rotation, repeat)
-
+    calls: dict[str, Callable[[], Any]] = {
+        "qcp64": lambda: rmsd(X, ref),
+        "qcp32": lambda: rmsd(X32, ref),
+        "kabsch": lambda: rmsd(X, ref, method="kabsch"),
+        "mdtraj": lambda: 10.0 * np.asarray(md.rmsd(traj, reft, 0), float),
+        "mda_rmsd": mda_qcp,
+        "mda_rot": mda_rotation,
+    }
+    times, res = best_interleaved(calls, repeat)
     base = res["kabsch"]
     for key in res:
         res[key] = np.abs(res[key] - base).max()
