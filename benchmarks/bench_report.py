@@ -43,13 +43,13 @@ def cli_report(out: Path) -> tuple[float, float]:
     return wall, cpu
 
 
-def in_process(out: Path) -> dict[str, float]:
-    """Per-section wall times of build_report on the loaded demo (after a warm-up run)."""
+def in_process(out: Path, data: Path = DEMO) -> dict[str, float]:
+    """Per-section wall times of build_report on the loaded `data` (after a warm-up run)."""
     import ensemblelab as el
     from ensemblelab.report import build_report
 
     t0 = time.perf_counter()
-    ens = el.load(DEMO, nonfinite="keep", progress=False)
+    ens = el.load(data, nonfinite="keep", progress=False)
     t_load = time.perf_counter() - t0
     build_report(ens, out, overwrite=True, progress=False)  # warm: numba kernels, caches
     timings: dict[str, float] = {}

@@ -117,3 +117,19 @@ def test_fast_csv_text_equals_pandas():
     assert to_csv_text(df) == neutralise_frame(df).to_csv(index=False)
     for sub in (["delay, fs"], ["=label", "n"], ["obj"]):
         assert to_csv_text(df[sub]) == neutralise_frame(df[sub]).to_csv(index=False)
+
+
+def test_bench_report_smoke(tmp_path):
+    # the benchmark's in-process timing runs on a small written ensemble (keeps it alive)
+    import importlib.util
+    from pathlib import Path
+
+    from ensemblelab.io import write_extxyz
+
+    path = Path(__file__).resolve().parents[1] / "benchmarks" / "bench_report.py"
+    spec = importlib.util.spec_from_file_location("bench_report", path)
+    mod = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(mod)
+    data = write_extxyz(make_toy_ensemble(6, seed=1, t_max=60.0, dt=4.0), tmp_path / "d" / "x")
+    t = mod.in_process(tmp_path / "r", data=data)
+    assert t["total"] > 0 and "Clusters" in t and "Populations" in t
