@@ -32,6 +32,7 @@ import json
 import os
 import shutil
 import tempfile
+import time
 import warnings
 from collections import Counter
 from collections.abc import Callable, Sequence
@@ -40,9 +41,11 @@ from typing import Any, cast
 
 import numpy as np
 import pandas as pd
+from tqdm.auto import tqdm
 
 from ._atomic import atomic_write_text, replace_folder
 from ._csv import neutralise_csv_text, to_csv_text
+from .compute._threads import few_threads
 from .data.ensemble import Ensemble
 from .errors import StoreError
 from .plotting.populations import savefig, scheme_name
@@ -246,14 +249,24 @@ def _missing(title: str, reason: str) -> str:
             f"{html.escape(reason)}</p>")
 
 
-def _section(title: str, build: Callable[[], str], notes: list[str]) -> str:
-    """Run a section builder; on a data problem, a note saying why it is missing."""
+def _section(title: str, build: Callable[[], str], notes: list[str],
+             timings: dict[str, float] | None = None, bar: Any = None) -> str:
+    """Run a section builder (timed into `timings`, advancing `bar`); on a data problem,
+    a note saying why it is missing."""
+    if bar is not None:
+        bar.set_postfix_str(title, refresh=True)
+    t0 = time.perf_counter()
     try:
         return build()
     except _Missing as exc:
         reason = str(exc)
     except (ValueError, ArithmeticError, RuntimeError) as exc:
         reason = f"it could not be computed ({type(exc).__name__}: {exc})"
+    finally:
+        if timings is not None:
+            timings[title] = time.perf_counter() - t0
+        if bar is not None:
+            bar.update(1)
     notes.append(f"{title}: section missing; {reason}")
     return _missing(title, reason)
 
@@ -323,6 +336,8 @@ def build_report(
     title: str = "ensemblelab report",
     source: str | None = None,
     overwrite: bool = False,
+    progress: bool = True,
+    timings: dict[str, float] | None = None,
 ) -> Path:
     """Write an HTML report (map, decompositions, populations and fits, flags, clusters,
     representative structures) into the folder `out`.
@@ -355,6 +370,11 @@ def build_report(
         Where the data came from (shown on the page).
     overwrite : bool
         Replace an existing `out` folder.
+    progress : bool
+        Show a progress bar (tqdm.auto) over the sections.
+    timings : dict, optional
+        Filled with the wall time in seconds of every section (keys: the section
+        titles) and of writing the page ("Page").
 
     Returns
     -------
@@ -381,9 +401,11 @@ def build_report(
     pulses = report_pulses(ens, photon_energy=photon_energy, probe_fwhm=probe_fwhm,
                            pump_fwhm=pump_fwhm)
     names = {i: str(lab) for i, lab in enumerate(ens.state_labels)}
+    bar = tqdm(total=7, desc="report", unit="section", disable=not progress, leave=False)
     try:
         sections: list[str] = []
-        with warnings.catch_warnings(record=True) as caught:
+        # small ensembles: one OpenMP/BLAS thread (pools cost more than the work there)
+        with bar, few_threads(ens.n_snapshots), warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
             # ---------------------------------------------------------- quality
             state: dict[str, Any] = {"clean": ens, "flagged": pd.DataFrame(),
@@ -406,7 +428,7 @@ def build_report(
                         + (_table_html(flagged[cols]) if len(flagged) else "")
                         + "<p><a href='tables/flags.csv'>tables/flags.csv</a></p>")
 
-            quality_html = _section("Flagged trajectories", quality, notes)
+            quality_html = _section("Flagged trajectories", quality, notes, timings, bar)
 
             def need_trajectories() -> Ensemble:
                 clean = state["clean"]
@@ -471,7 +493,7 @@ def build_report(
                     + "<p><a href='tables/trpes_map.csv'>tables/trpes_map.csv</a></p>")
 
             sections.append(_section("Time-resolved photoelectron spectrum", trpes_section,
-                                     notes))
+                                     notes, timings, bar))
             for obs_title, obs_build in OBSERVABLE_SECTIONS:  # scattering, absorption
                 def run(build: Callable[..., str] = obs_build) -> str:
                     clean, pw = need_trajectories(), pulses["pump_fwhm"]
@@ -482,7 +504,7 @@ def build_report(
                     return build(clean, tmp, probe=GaussianPulse(
                         photon_energy=pulses["photon_energy"], fwhm=pulses["probe_fwhm"]),
                         pump=pump, delays=d_grid)
-                sections.append(_section(obs_title, run, notes))
+                sections.append(_section(obs_title, run, notes, timings, bar))
 
             # ---------------------------------------------------------- populations
             def population_section() -> str:
@@ -525,11 +547,10 @@ def build_report(
                              + "<p><a href='tables/kinetics.csv'>tables/kinetics.csv</a></p>")
                 return text
 
-            sections.append(_section("Populations", population_section, notes))
-
+            sections.append(_section("Populations", population_section, notes, timings, bar))
             sections.append(_section(
                 "Is the ensemble large enough?",  # too few trajectories: ValueError says so
-                lambda: convergence_section(need_trajectories(), tmp), notes))
+                lambda: convergence_section(need_trajectories(), tmp), notes, timings, bar))
             sections.append(quality_html)
 
             # ---------------------------------------------------------- clusters
@@ -566,7 +587,8 @@ def build_report(
                     "structures/representatives.xyz</a>. cluster_fraction: the fraction of "
                     "snapshots in the medoid's cluster.</p>" + _table_html(table[rkeep]))
 
-            sections.append(_section("Clusters", cluster_section, notes))
+            sections.append(_section("Clusters", cluster_section, notes, timings, bar))
+            t_page = time.perf_counter()
         notes += sorted({f"{w.category.__name__}: {w.message}" for w in caught})
 
         summary_rows = [(k, f"{ens.n_atoms} ({hill_formula(ens.symbols)})" if k == "atoms"
@@ -594,6 +616,8 @@ def build_report(
         old = replace_folder(tmp, out)
         if old is not None:
             shutil.rmtree(old, ignore_errors=True)
+        if timings is not None:
+            timings["Page"] = time.perf_counter() - t_page
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
         raise

@@ -40,7 +40,7 @@ def run(args: argparse.Namespace) -> int:
     from ._explore import default_data_path
 
     data = Path(args.path).expanduser() if args.path else default_data_path()
-    ens = load(data, nonfinite=args.nonfinite, progress=False)
+    ens = load(data, nonfinite=args.nonfinite, progress=True)
     page = build_report(ens, args.out, photon_energy=args.photon_energy,
                         probe_fwhm=args.probe_fwhm, pump_fwhm=args.pump_fwhm,
                         n_clusters=args.clusters, source=str(data), overwrite=args.overwrite)

@@ -29,6 +29,7 @@ import pandas as pd
 from sklearn.base import BaseEstimator, TransformerMixin, clone
 
 from ...errors import SchemaError
+from .._threads import few_threads
 from ..uncertainty.clusters import cluster_fraction_intervals
 from ._featurise import FeaturesLike, Featuriser, build_featuriser, make_featuriser
 
@@ -267,7 +268,8 @@ def _medoid(F: np.ndarray, w: np.ndarray) -> int:
     """Position of the member minimising the weighted sum of distances to the others."""
     from sklearn.metrics import pairwise_distances
 
-    D = pairwise_distances(F)
+    with few_threads(len(F)):
+        D = pairwise_distances(F)
     return int(np.argmin(D @ w))
 
 
@@ -376,14 +378,16 @@ def cluster_snapshots(
             est.set_params(random_state=random_state)
         if assign not in ("neighbour", "centroid"):
             raise SchemaError(f"assign must be 'neighbour' or 'centroid'; got {assign!r}.")
-        local, _ = _fit_group(rows, fz, est, k, max_fit_samples, chunk_size, rng, assign)
+        with few_threads(min(len(rows), max_fit_samples)):
+            local, _ = _fit_group(rows, fz, est, k, max_fit_samples, chunk_size, rng, assign)
         prefix = f"{ens.state_labels[state]}:" if state >= 0 else ""
         # silhouette and medoids on a subsample of the group
         sub: np.ndarray = np.arange(len(rows))
         if len(sub) > silhouette_samples:
             sub = np.sort(rng.choice(len(rows), size=silhouette_samples, replace=False))
         Fsub = fz(rows[sub])
-        sil, per = _silhouette(Fsub, local[sub])
+        with few_threads(len(sub)):
+            sil, per = _silhouette(Fsub, local[sub])
         if np.isfinite(sil):
             sil_all.append((sil, len(sub)))
         for c in np.unique(local):

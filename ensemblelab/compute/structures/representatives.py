@@ -25,6 +25,7 @@ import numpy.typing as npt
 import pandas as pd
 
 from ...errors import SchemaError
+from .._threads import few_threads
 from ._featurise import build_featuriser
 from .clustering import ClusterResult
 
@@ -237,9 +238,10 @@ def cluster_representatives(
         rows = np.flatnonzero(labels == name)
         groups.append((str(name), rows, w[rows], float(w[rows].sum() / total)))
     fz = clusters.featuriser if isinstance(clusters, ClusterResult) else None
-    return _select(ens, groups, features=features, kind=kind, bins=bins,
-                   max_candidates=max_candidates, reference=reference,
-                   random_state=random_state, featuriser=fz)
+    with few_threads(max_candidates * max(len(groups), 1)):
+        return _select(ens, groups, features=features, kind=kind, bins=bins,
+                       max_candidates=max_candidates, reference=reference,
+                       random_state=random_state, featuriser=fz)
 
 
 def time_window_representatives(
@@ -299,9 +301,10 @@ def time_window_representatives(
             rows = inwin[labels[inwin] == lab]
             groups.append((f"{name}|{lab}", rows, w[rows], float(w[rows].sum() / tot)))
     fz = clusters.featuriser if isinstance(clusters, ClusterResult) else None
-    return _select(ens, groups, features=features, kind=kind, bins=bins,
-                   max_candidates=max_candidates, reference=reference,
-                   random_state=random_state, featuriser=fz)
+    with few_threads(max_candidates * max(len(groups), 1)):
+        return _select(ens, groups, features=features, kind=kind, bins=bins,
+                       max_candidates=max_candidates, reference=reference,
+                       random_state=random_state, featuriser=fz)
 
 
 def band_representatives(

@@ -1,0 +1,135 @@
+"""The report's speed measures: progress shown, section timings, one thread on small inputs.
+
+Results must not change: cluster labels with and without the thread limit are compared
+(computed independently (not published): the same estimator with the libraries' own
+thread pools), and the distance kernel against scipy.spatial.distance.pdist (reference
+library).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from scipy.spatial.distance import pdist
+from sklearn.cluster import KMeans
+from threadpoolctl import threadpool_info
+
+from ensemblelab.compute import _threads
+from ensemblelab.compute.structures import _kernels_geometry as K
+from ensemblelab.compute.structures.clustering import cluster_snapshots
+from ensemblelab.testing import make_toy_ensemble
+
+
+def _max_threads() -> int:
+    return max((p["num_threads"] for p in threadpool_info()), default=1)
+
+
+def test_few_threads_limits_small_inputs_only():
+    if _max_threads() < 2:
+        pytest.skip("one core: nothing to limit")
+    before = _max_threads()
+    with _threads.few_threads(1000):
+        assert _max_threads() == 1
+    assert _max_threads() == before
+    with _threads.few_threads(_threads.THREADED_MIN_ROWS):
+        assert _max_threads() == before
+
+
+class _RecordingKMeans(KMeans):
+    """KMeans that records the largest thread-pool size seen while fitting."""
+
+    seen: list[int] = []
+
+    def fit(self, X, y=None, sample_weight=None):
+        _RecordingKMeans.seen.append(_max_threads())
+        return super().fit(X, y, sample_weight)
+
+
+def test_clustering_small_groups_fit_on_one_thread():
+    if _max_threads() < 2:
+        pytest.skip("one core: nothing to limit")
+    _RecordingKMeans.seen = []
+    ens = make_toy_ensemble(12, seed=3, t_max=80.0)
+    cluster_snapshots(ens, estimator=_RecordingKMeans(n_clusters=2, n_init=2, random_state=0))
+    assert _RecordingKMeans.seen and max(_RecordingKMeans.seen) == 1
+
+
+@pytest.mark.parametrize("seed", [0, 5])
+def test_thread_limit_keeps_cluster_labels(seed, monkeypatch):
+    # computed independently (not published): the same clustering with the thread pools
+    ens = make_toy_ensemble(25, seed=seed, t_max=150.0)
+    limited = cluster_snapshots(ens, n_clusters=3, random_state=seed)
+    monkeypatch.setattr(_threads, "THREADED_MIN_ROWS", 0)
+    pooled = cluster_snapshots(ens, n_clusters=3, random_state=seed)
+    assert (limited.labels == pooled.labels).all()
+    np.testing.assert_allclose(limited.summary["fraction"], pooled.summary["fraction"],
+                               atol=1e-12)
+
+
+@pytest.mark.parametrize("n_atoms", [2, 5, 11])
+def test_pair_distances_match_scipy_pdist(n_atoms):
+    # reference library: scipy.spatial.distance.pdist (row-major i < j order)
+    X = np.random.default_rng(n_atoms).normal(scale=3.0, size=(17, n_atoms, 3))
+    i, j = K.pair_indices(n_atoms)
+    got = K.pair_distances(X, i, j)
+    np.testing.assert_allclose(got, np.stack([pdist(x) for x in X]), rtol=1e-14, atol=0)
+    # arbitrary index arrays (bond lists) with repeats
+    ii, jj = np.array([0, 1, 0, 1]), np.array([1, 0, n_atoms - 1, 1])
+    expect = np.linalg.norm(X[:, ii] - X[:, jj], axis=-1)
+    np.testing.assert_allclose(K.pair_distances(X, ii, jj), expect, rtol=1e-14, atol=0)
+
+
+def test_report_times_sections_and_shows_progress(tmp_path, capsys):
+    from ensemblelab.report import build_report
+
+    ens = make_toy_ensemble(10, seed=2, t_max=100.0, dt=4.0)
+    timings: dict[str, float] = {}
+    build_report(ens, tmp_path / "r", energies=np.linspace(0, 2.5, 41),
+                 delays=np.arange(-40.0, 101.0, 20.0), n_boot=20, timings=timings)
+    assert {"Flagged trajectories", "Time-resolved photoelectron spectrum", "Populations",
+            "Clusters", "Page"} <= set(timings)
+    assert all(v >= 0 for v in timings.values())
+    assert "report" in capsys.readouterr().err  # the tqdm bar goes to stderr
+    build_report(ens, tmp_path / "q", energies=np.linspace(0, 2.5, 41),
+                 delays=np.arange(-40.0, 101.0, 20.0), n_boot=20, progress=False)
+    assert "report" not in capsys.readouterr().err
+
+
+def test_fast_csv_text_equals_pandas():
+    # reference library: pandas.DataFrame.to_csv of the neutralised frame, cell for cell
+    import pandas as pd
+
+    from ensemblelab._csv import neutralise_frame, to_csv_text
+
+    rng = np.random.default_rng(11)
+    n = 3000
+    with np.errstate(over="ignore"):
+        v = rng.normal(size=n) * 10.0 ** rng.integers(-320, 300, n)
+    v[::7], v[::11], v[::13], v[5] = np.nan, np.inf, -0.0, 5e-324
+    words = np.array(["S0", "a,b", 'say "hi"', "two\nlines", "cr\rhere", " pad ",
+                      "=SUM(A1)", "-x", "", "'q"],
+                     dtype=object)
+    text = pd.array(words[rng.integers(0, len(words), n)], dtype="string")
+    text[3] = pd.NA
+    df = pd.DataFrame({"delay, fs": v, "n": rng.integers(-10**12, 10**12, n),
+                       "u": rng.integers(0, 5, n).astype(np.uint8), "flag": rng.random(n) > 0.5,
+                       "=label": text, "obj": words[rng.integers(0, len(words), n)]})
+    assert to_csv_text(df) == neutralise_frame(df).to_csv(index=False)
+    for sub in (["delay, fs"], ["=label", "n"], ["obj"]):
+        assert to_csv_text(df[sub]) == neutralise_frame(df[sub]).to_csv(index=False)
+
+
+def test_bench_report_smoke(tmp_path):
+    # the benchmark's in-process timing runs on a small written ensemble (keeps it alive)
+    import importlib.util
+    from pathlib import Path
+
+    from ensemblelab.io import write_extxyz
+
+    path = Path(__file__).resolve().parents[1] / "benchmarks" / "bench_report.py"
+    spec = importlib.util.spec_from_file_location("bench_report", path)
+    mod = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(mod)
+    data = write_extxyz(make_toy_ensemble(6, seed=1, t_max=60.0, dt=4.0), tmp_path / "d" / "x")
+    t = mod.in_process(tmp_path / "r", data=data)
+    assert t["total"] > 0 and "Clusters" in t and "Populations" in t
