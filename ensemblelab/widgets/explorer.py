@@ -46,6 +46,11 @@ class Explorer:
         Flagged-trajectory table (default: computed by ``flag_trajectories``).
     measured : TRPESMap, optional
         A measured map to overlay in the map view.
+    exclude : iterable of int or DataFrame, optional
+        Trajectory ids to leave out from the start (for example the flagged rows of a
+        ``flag_trajectories`` table, the same ones a notebook's fit leaves out). Every
+        view uses one exclusion state (:attr:`SelectionModel.excluded`, shown in the
+        header); a restored session replaces it.
     data_path : path, optional
         Where the ensemble was loaded from: the session file goes beside it.
     session_path : path, optional
@@ -85,6 +90,7 @@ class Explorer:
         cluster_kwargs: dict[str, Any] | None = None,
         flags: Any = None,
         measured: Any = None,
+        exclude: Any = None,
         data_path: str | os.PathLike[str] | None = None,
         session_path: str | os.PathLike[str] | None = None,
         restore: bool = True,
@@ -101,6 +107,13 @@ class Explorer:
 
         self.messages = MessageArea()
         self.model = SelectionModel(ens)
+        if exclude is not None:
+            if hasattr(exclude, "columns"):  # a flags table: its flagged rows
+                table = exclude
+                if "flagged" in table.columns:
+                    table = table.loc[table["flagged"].astype(bool)]
+                exclude = table["traj"].to_numpy()
+            self.model.excluded = tuple(int(t) for t in exclude)
         self.data_path = None if data_path is None else Path(data_path)
         if session_path is not None:
             self.session_path = Path(session_path)
@@ -187,9 +200,9 @@ class Explorer:
 
     def header_text(self) -> str:
         """The header: trajectories and snapshots used by every view, and the exclusions."""
-        ens, cur = self.model.ens, self.model.current
+        ens, m = self.model.ens, self.model
         excluded = self.model.excluded
-        text = (f"{cur.n_trajectories} trajectories, {cur.n_snapshots} snapshots, "
+        text = (f"{m.n_trajectories} trajectories, {m.n_snapshots} snapshots, "
                 f"{ens.n_atoms} atoms")
         if excluded:
             listed = ", ".join(str(t) for t in excluded[:12]) + (" ..." if len(excluded) > 12

@@ -283,7 +283,8 @@ class MapView(View):
         return energies, delays
 
     def recompute(self) -> Any:
-        """Compute the map of ``model.current`` with the current controls; returns it."""
+        """Compute the map of ``model.ens`` without ``model.excluded`` (``exclude=``, a mask,
+        no copy) with the current controls; returns it."""
         from ..compute.spectroscopy import compute_trpes
 
         probe, pump = self.pulses()
@@ -296,10 +297,10 @@ class MapView(View):
                 warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
             trpes, sticks = compute_trpes(
-                self.model.current, probe=probe, pump=pump, kinetic_energies=energies,
+                self.model.ens, probe=probe, pump=pump, kinetic_energies=energies,
                 delays=delays, resolution=float(self.resolution.value),
                 convolve=bool(self.convolve.value), decompose=by, progress=False,
-                return_model=True, **kwargs,
+                exclude=list(self.model.excluded), return_model=True, **kwargs,
             )
         for w in caught:
             self.messages.warning(f"map: {w.message}")

@@ -177,7 +177,7 @@ class PopulationView(View):
     def _grid(self) -> np.ndarray:
         if self.time_grid is not None:
             return self.time_grid
-        t = self.model.current.times
+        t = self.model.ens.times
         t = t[np.isfinite(t)]
         if t.size > _MAX_TIMES:
             t = t[np.linspace(0, t.size - 1, _MAX_TIMES).round().astype(int)]
@@ -185,12 +185,13 @@ class PopulationView(View):
         return t
 
     def recompute(self) -> pd.DataFrame:
-        """Recompute populations (and the fit) of ``model.current``; returns the table."""
+        """Recompute populations (and the fit) of ``model.ens`` without ``model.excluded``
+        (passed as ``exclude=``: weight 0, no copy); returns the table."""
         from ..compute.kinetics.populations import populations
 
-        ens = self.model.current
         with busy(self.status, "computing populations ..."):
-            table = populations(ens, kind=self.kind.value, time_grid=self._grid())
+            table = populations(self.model.ens, kind=self.kind.value, time_grid=self._grid(),
+                                exclude=list(self.model.excluded))
             self.table = table
             self.fit_result = None
             self._fit_problem = ""
@@ -205,11 +206,15 @@ class PopulationView(View):
     def default_fit_states(self) -> list[int]:
         """States in the roles A, B, C by default: the most populated state at the start,
         then the others from the highest to the lowest (a cascade down the ladder)."""
-        ens = self.model.current
+        ens = self.model.ens
         n_states = ens.n_states
         snap = ens.snapshots
         t = snap["time"].to_numpy()
-        first = snap["active"].to_numpy()[t == np.nanmin(t)] if t.size else np.zeros(0, int)
+        used = np.isin(snap["traj"].to_numpy(), np.asarray(self.model.excluded, int),
+                       invert=True)
+        t_used = t[used]
+        first = snap["active"].to_numpy()[used & (t == np.nanmin(t_used))] if t_used.size \
+            else np.zeros(0, int)
         start = int(np.bincount(first, minlength=n_states).argmax()) if first.size else \
             n_states - 1
         return [start] + [k for k in range(n_states - 1, -1, -1) if k != start][:2]

@@ -50,11 +50,23 @@ from .pulses import GaussianPulse
 from .sticks import block_sticks, check_trpes_inputs, energy_range
 from .weights import ground_state_ionisation_fraction, trajectory_weights, weights_word
 
-__all__ = ["compute_trpes", "trpes_model", "time_grid", "trpes_partial", "TRPES_FIELDS"]
+__all__ = ["compute_trpes", "trpes_model", "time_grid", "trpes_partial", "TRPES_FIELDS",
+           "excluded_ids"]
 
 #: arrays a TRPES block reads (the diabatic decomposition adds ``adt``, ``adt_cation``)
 TRPES_FIELDS = ("energies", "cation_energies", "dyson", "excitation_energies",
                 "transition_dipoles", "oscillator_strengths")
+
+
+def excluded_ids(exclude: npt.ArrayLike | None) -> np.ndarray:
+    """Sorted distinct trajectory ids of an ``exclude=`` argument, int64 (empty for None)."""
+    if exclude is None:
+        return np.zeros(0, dtype=np.int64)
+    ids = np.asarray(exclude).reshape(-1)
+    if ids.size and not np.issubdtype(ids.dtype, np.integer):
+        raise SchemaError("The 'exclude' parameter must hold integer trajectory ids. Got "
+                          f"{ids.dtype} values instead.")
+    return np.unique(ids.astype(np.int64))
 
 
 def time_grid(source: BlockSource, time_step: float | None, *, client: Any = None,
@@ -111,8 +123,13 @@ def trpes_partial(block: Any, span: BlockSpan, opts: dict[str, Any]) -> dict[str
     With ``keep_sticks`` the block's :class:`~.sticks.BlockSticks` come back too.
     """
     w_traj, _ = trajectory_weights(block, weights=opts["weights"], pump=opts["pump"])
+    keep = None
+    excluded = opts.get("exclude")
+    if excluded is not None and len(excluded):  # excluded trajectories: weight 0, not alive
+        keep = ~np.isin(block.trajectories["traj"].to_numpy(), excluded)
+        w_traj = np.where(keep, w_traj, 0.0)
     bs = block_sticks(block, probe=opts["probe"], cross_section=opts["cross_section"],
-                      w_traj=w_traj, weights_used=opts["weights_used"],
+                      w_traj=w_traj, keep=keep, weights_used=opts["weights_used"],
                       decompose=opts["decompose"], start=opts["start"], dt=opts["dt"],
                       n_time=opts["n_time"])
     grid = {"n_time": opts["n_time"], "e_lo": opts["e_lo"], "h": opts["h"],
@@ -149,6 +166,7 @@ def trpes_model(
     progress: bool = True,
     client: Any = None,
     scheduler: Any = None,
+    exclude: npt.ArrayLike | None = None,
 ) -> TRPESModel:
     """The stick model of an ensemble or chunked store, moments deposited (the reduction).
 
@@ -173,7 +191,9 @@ def trpes_model(
     n_fine = int(math.floor((e_hi - e_lo) / h + 0.5)) + 2
     labels = component_labels(source, decompose)
     in_memory = isinstance(ens, Ensemble)
+    excluded = excluded_ids(exclude)
     opts = {"probe": probe, "pump": pump, "cross_section": cs, "weights": weights,
+            "exclude": excluded,
             "weights_used": used, "decompose": decompose, "n_comp": len(labels), **grid,
             "e_lo": e_lo, "h": h, "n_fine": n_fine, "order": DEFAULT_ORDER,
             "keep_sticks": in_memory, "progress": progress and in_memory}
@@ -194,7 +214,9 @@ def trpes_model(
         comp_weight=None if bs is None else bs.comp_weight,
         info={"cross_section": describe_cross_section(cs), "weights": used,
               "n_sticks": int(total["n_sticks"]), "n_snapshots": n,
-              "n_trajectories": source.n_trajectories, "progress": progress and in_memory,
+              "n_trajectories": source.n_trajectories - int(np.isin(
+                  source.trajectories["traj"].to_numpy(), excluded).sum()),
+              "excluded": excluded.tolist(), "progress": progress and in_memory,
               "n_states": source.n_states, "n_cation": source.n_cation},
         order=DEFAULT_ORDER, bins_per_fwhm=DEFAULT_BINS_PER_FWHM, n_snapshots=n,
     )
@@ -221,6 +243,7 @@ def compute_trpes(
     time_step: float | None = None,
     client: Any = None,
     scheduler: Any = None,
+    exclude: npt.ArrayLike | None = None,
     return_model: Literal[False] = False,
 ) -> TRPESMap: ...
 
@@ -243,6 +266,7 @@ def compute_trpes(
     time_step: float | None = None,
     client: Any = None,
     scheduler: Any = None,
+    exclude: npt.ArrayLike | None = None,
     return_model: Literal[True],
 ) -> tuple[TRPESMap, TRPESModel]: ...
 
@@ -265,6 +289,7 @@ def compute_trpes(
     time_step: float | None = None,
     client: Any = None,
     scheduler: Any = None,
+    exclude: npt.ArrayLike | None = None,
     return_model: bool = False,
 ) -> TRPESMap | tuple[TRPESMap, TRPESModel]: ...
 
@@ -286,6 +311,7 @@ def compute_trpes(
     time_step: float | None = None,
     client: Any = None,
     scheduler: Any = None,
+    exclude: npt.ArrayLike | None = None,
     return_model: bool = False,
 ) -> TRPESMap | tuple[TRPESMap, TRPESModel]:
     """Simulated TRPES map of an ensemble (classical doorway-window).
@@ -326,6 +352,10 @@ def compute_trpes(
         For a lazy ensemble: run the per-chunk reduction on this cluster.
     scheduler : str, optional
         For a lazy ensemble without a client: the Dask scheduler.
+    exclude : array_like of int, optional
+        Trajectory ids left out (a mask, not a copy): their weight is 0 and they are not
+        counted alive, so the map equals that of ``ens.without(exclude)`` (up to the
+        order of floating-point additions); recorded in ``params["excluded"]``.
     return_model : bool
         Also return the :class:`~.model.TRPESModel` (for re-broadening and for
         ``contributions(..., model=...)``).
@@ -358,7 +388,7 @@ def compute_trpes(
     model = trpes_model(ens, probe=probe, pump=pump, resolution=resolution,
                         cross_section=cross_section, weights=weights, decompose=decompose,
                         time_step=time_step, progress=progress, client=client,
-                        scheduler=scheduler)
+                        scheduler=scheduler, exclude=exclude)
     if isinstance(ens, Ensemble):
         fraction = ground_state_ionisation_fraction(ens, probe=probe)
         if fraction > 0:

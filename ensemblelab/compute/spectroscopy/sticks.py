@@ -116,7 +116,8 @@ def energy_range(block: Any, span: Any, total_energy: float) -> dict[str, float]
 
 def block_sticks(block: Any, *, probe: GaussianPulse, cross_section: CrossSection,
                  w_traj: np.ndarray, weights_used: str, decompose: str | None,
-                 start: float, dt: float, n_time: int) -> BlockSticks:
+                 start: float, dt: float, n_time: int,
+                 keep: np.ndarray | None = None) -> BlockSticks:
     """The sticks of a block (an Ensemble or a chunk of one) on the time grid.
 
     Parameters
@@ -138,6 +139,8 @@ def block_sticks(block: Any, *, probe: GaussianPulse, cross_section: CrossSectio
         Time grid ``start + j * dt`` (fs).
     n_time : int
         Size of the time grid.
+    keep : ndarray of bool, shape (n_trajectories,), optional
+        Trajectories counted alive (excluded ones: False, with weight 0 in `w_traj`).
 
     Returns
     -------
@@ -150,7 +153,8 @@ def block_sticks(block: Any, *, probe: GaussianPulse, cross_section: CrossSectio
     time = block.snapshots["time"].to_numpy()
     tbin_snap, tfrac_snap = time_bins(time, start, dt)
     alive = deposit_counts(tbin_snap, w_snap, n_time=n_time, tfrac=tfrac_snap)
-    alive_count = deposit_counts(tbin_snap, np.ones(n), n_time=n_time, tfrac=tfrac_snap)
+    ones = np.ones(n) if keep is None else keep[block.traj_index].astype(float)
+    alive_count = deposit_counts(tbin_snap, ones, n_time=n_time, tfrac=tfrac_snap)
     total_energy = probe.total_energy
     active, ip, ekin = _ionisation(block, total_energy)
     snap, chan = np.nonzero(ekin > 0)
