@@ -20,7 +20,11 @@ Figures printed:
   same trajectories, the copy of every array the explorer made per exclusion before
   exclusions became a mask (the views now pass ``exclude=`` to the computations);
 * resident memory (RSS) growth from the first exclusion to the last (goal: no growth
-  beyond noise; the first exclusion allocates its working arrays once).
+  beyond noise; the first exclusion allocates its working arrays once);
+* time until the explorer is built with the map usable, clustering and trajectory flags
+  running in the background as in a kernel (goal <= 5 s at 1000 trajectories), beside
+  the peer: the same explorer built with them computed first (``background=False``),
+  and how long the background jobs then took.
 """
 
 from __future__ import annotations
@@ -95,6 +99,32 @@ def run(*, quick: bool = False, n_trajectories: int | None = None,
             "n_exclusions": float(len(ids))}
 
 
+def run_build(*, quick: bool = False, n_trajectories: int | None = None) -> dict[str, float]:
+    """Time to a usable map with background jobs, and the synchronous build as the peer."""
+    import asyncio
+
+    from ensemblelab.widgets import Explorer
+
+    n_traj = n_trajectories or (40 if quick else 1000)
+    ens = synthetic_ensemble(n_traj, t_max=60.0 if quick else 250.0)
+
+    async def build() -> Any:
+        start = time.perf_counter()
+        app = Explorer(ens, restore=False, debounce=0.0, background=True)
+        usable = time.perf_counter() - start
+        while not app.jobs.done.is_set():
+            await asyncio.sleep(0.05)
+        return app, usable, time.perf_counter() - start
+
+    app, usable, total = asyncio.run(build())
+    assert app.messages.errors == [], app.messages.errors
+    start = time.perf_counter()
+    Explorer(ens, restore=False, debounce=0.0, background=False)
+    peer = time.perf_counter() - start
+    return {"usable_s": usable, "all_done_s": total, "synchronous_s": peer,
+            "ratio": usable / peer, **{f"job {k}": v for k, v in app.jobs.seconds.items()}}
+
+
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--quick", action="store_true", help="small smoke run")
@@ -109,6 +139,12 @@ def main(argv: list[str] | None = None) -> int:
           f"ratio exclusion / copy = {r['ratio']:.2f}")
     print(f"resident memory growth over exclusions 2-{r['n_exclusions']:.0f}: "
           f"{r['rss_growth_mb']:+.1f} MB")
+    b = run_build(quick=args.quick, n_trajectories=args.n_trajectories)
+    print(f"explorer built, map usable: {b['usable_s']:.1f} s (goal <= 5 s at 1000 "
+          f"trajectories); clustering and flags done in the background at "
+          f"{b['all_done_s']:.1f} s")
+    print(f"peer: the same explorer with clustering and flags first: {b['synchronous_s']:.1f} s;"
+          f" ratio usable / peer = {b['ratio']:.2f}")
     return 0
 
 

@@ -9,7 +9,7 @@ from typing import Any
 
 import ipywidgets as widgets
 
-__all__ = ["Debouncer", "busy", "format_percent", "trait_default"]
+__all__ = ["Debouncer", "busy", "format_percent", "trait_default", "running_loop"]
 
 
 class Debouncer:
@@ -72,6 +72,11 @@ def _running_loop() -> asyncio.AbstractEventLoop | None:
     except Exception:  # noqa: BLE001 - no kernel: run synchronously
         return None
     return None
+
+
+def running_loop() -> asyncio.AbstractEventLoop | None:
+    """The event loop of the running kernel (None in plain Python and in tests)."""
+    return _running_loop()
 
 
 @contextlib.contextmanager

@@ -18,3 +18,15 @@ def test_bench_exclusion_quick_run_measures_time_memory_and_peer(capsys):
     assert r["n_exclusions"] == 3  # the quick run's count (common practice: a smoke size)
     assert bench.main(["--quick"]) == 0
     assert "ratio exclusion / copy" in capsys.readouterr().out
+
+
+def test_bench_exclusion_build_figure_has_its_peer():
+    spec = importlib.util.spec_from_file_location("bench_exclusion", BENCH)
+    bench = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(bench)
+    b = bench.run_build(quick=True)
+    # the background build returns before its jobs finish (common practice: a usable
+    # map first), and the jobs' own times are reported
+    assert 0 < b["usable_s"] <= b["all_done_s"]
+    assert b["ratio"] == b["usable_s"] / b["synchronous_s"]
+    assert "job clustering the snapshots" in b and "job checking the trajectories" in b

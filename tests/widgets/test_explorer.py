@@ -278,3 +278,46 @@ def test_explorer_exclude_argument_starts_with_one_exclusion_state(toy, tmp_path
                     exclude=[1], export_folder=tmp_path / "export2")
     assert app2.model.excluded == (1,) and app2.model.n_trajectories == toy.n_trajectories - 1
     assert app2.model.n_snapshots == toy.without([1]).n_snapshots
+
+
+def test_explorer_clusters_and_flags_in_the_background(toy, tmp_path):
+    """Inside a running event loop (as in a kernel) the explorer returns with the map
+    usable, then clustering and flags arrive from a worker thread with a status line."""
+    import asyncio
+
+    async def main():
+        app = Explorer(toy, map_kwargs=MAP, debounce=0, restore=False, background=True,
+                       export_folder=tmp_path / "export")
+        # built: the map is there, the background results are not applied yet (they are
+        # handed to this loop, which has not run since)
+        state = (app.model.trpes_map is not None, app.model.clusters, app.model.flags,
+                 "in the background" in app.jobs.status.value,
+                 "checking the trajectories" in app.quality_view.summary.value)
+        app.brush((1.35, 1.65), (0.0, 60.0))  # usable while the jobs run
+        for _ in range(600):
+            if app.jobs.done.is_set():
+                break
+            await asyncio.sleep(0.05)
+        return app, state
+
+    app, state = asyncio.run(main())
+    assert state == (True, None, None, True, True)
+    assert app.jobs.done.is_set() and app.jobs.status.value == ""
+    assert app.model.clusters is not None and app.model.flags is not None
+    assert set(app.jobs.seconds) == {"clustering the snapshots", "checking the trajectories"}
+    # the band brushed meanwhile keeps its snapshots (the medoid does not replace them)
+    assert app.model.selected == tuple(app.model.band["snapshot"][:len(app.model.selected)])
+    assert "trajectories flagged" in app.quality_view.summary.value
+    assert app.messages.errors == []
+
+
+def test_explorer_without_a_loop_starts_with_the_largest_clusters_medoid(toy, tmp_path):
+    app = Explorer(toy, map_kwargs=MAP, debounce=0, restore=False,
+                   export_folder=tmp_path / "export")
+    assert not app.jobs.background and app.jobs.done.is_set()
+    summary = app.cluster_result.summary
+    biggest = int(summary.sort_values("fraction", ascending=False)["medoid_snapshot"].iloc[0])
+    assert app.model.selected == (biggest,)
+    with pytest.raises(RuntimeError, match="running event loop"):
+        Explorer(toy, map_kwargs=MAP, debounce=0, restore=False, background=True,
+                 export_folder=tmp_path / "export2")
