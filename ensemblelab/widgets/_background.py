@@ -81,8 +81,8 @@ class BackgroundJobs:
     # ------------------------------------------------------------------ internals
     def _text(self, name: str, index: int, total: int) -> str:
         step = f" ({index + 1} of {total})" if total > 1 else ""
-        where = "in the background; the map is ready to use" if self.background else ""
-        return (f"<span class='ensemblelab-busy'>&#8987; {html.escape(name)}{step} "
+        where = "... (in the background; the map is ready to use)" if self.background else "..."
+        return (f"<span class='ensemblelab-busy'>{html.escape(name)}{step} "
                 f"{where}</span>")
 
     def _show(self, text: str) -> None:

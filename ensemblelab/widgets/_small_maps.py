@@ -11,13 +11,14 @@ import ipywidgets as widgets
 import numpy as np
 
 __all__ = ["nice_ticks", "tick_format", "set_round_ticks", "short_title", "SmallMaps",
+           "ColorBar",
            "range_mask", "outside", "cut_text", "comparison_text", "INTENSITY",
            "INTENSITY_ARB", "RESIDUAL", "ENERGY", "DELAY"]
 
 #: axis labels, "quantity / unit" as in the exported figures
 INTENSITY = "intensity / eV⁻¹"
 INTENSITY_ARB = "intensity / arb. u."
-RESIDUAL = "measured − model / arb. u."
+RESIDUAL = "residual / arb. u."
 ENERGY = "kinetic energy / eV"
 DELAY = "delay / fs"
 
@@ -119,6 +120,49 @@ def short_title(label: str) -> str:
     return "->".join(parts)
 
 
+class ColorBar:
+    """A colour bar: a strip of a colour scale beside a value axis with label and unit.
+
+    A figure of its own (a heat map strip and an ordinary axis), so its ticks are round
+    values set from Python and its label runs along it.
+
+    Attributes
+    ----------
+    figure : bqplot.Figure
+    axis : bqplot.Axis
+        The value axis (``label``, ``tick_values``).
+    """
+
+    def __init__(self, scale: bqplot.ColorScale, *, height: int, margin_top: int = 20,
+                 margin_bottom: int = 45, width: int = 120) -> None:
+        self._y = bqplot.LinearScale()
+        values = np.linspace(0.0, 1.0, 64)
+        self._strip = bqplot.HeatMap(x=np.array([0.0, 1.0]), y=values,
+                                     color=np.tile(values[:, None], (1, 2)),
+                                     scales={"x": bqplot.LinearScale(), "y": self._y,
+                                             "color": scale})
+        self.axis = bqplot.Axis(scale=self._y, side="right", label=INTENSITY, num_ticks=5)
+        self.figure = bqplot.Figure(
+            marks=[self._strip], axes=[self.axis], display_toolbar=False,
+            padding_x=0, padding_y=0,
+            layout=widgets.Layout(width=f"{width}px", height=f"{height}px"),
+            fig_margin={"top": margin_top, "bottom": margin_bottom, "left": 8,
+                        "right": width - 28})
+
+    def draw(self, lo: float, hi: float, label: str, *, n_ticks: int = 5) -> None:
+        """Span ``[lo, hi]`` with round ticks and the given label."""
+        values = np.linspace(lo, hi, 64)
+        ticks = nice_ticks(lo, hi, n_ticks)
+        with self.figure.hold_sync():
+            self._y.min, self._y.max = float(lo), float(hi)
+            self._strip.y = values
+            self._strip.color = np.tile(values[:, None], (1, 2))
+            self.axis.label = label
+            if ticks.size:
+                self.axis.tick_values = ticks
+                self.axis.tick_format = tick_format(ticks)
+
+
 class SmallMaps:
     """Small multiples of a decomposition on one colour scale, made once and then reused.
 
@@ -143,17 +187,16 @@ class SmallMaps:
             grid_template_columns=f"repeat({self.n_columns}, {width + 2}px)", grid_gap="2px"))
         self.figures: list[bqplot.Figure] = []
         self._marks: list[bqplot.HeatMap] = []
-        self.color_axis = bqplot.ColorAxis(scale=self.scale, side="right", label=INTENSITY,
-                                           num_ticks=5)
-        self.colorbar = bqplot.Figure(
-            marks=[], axes=[self.color_axis], display_toolbar=False,
-            layout=widgets.Layout(width="110px", height=f"{height}px"),
-            fig_margin={"top": 25, "bottom": 25, "left": 5, "right": 85})
+        # the shared colour bar
+        self.bar = ColorBar(self.scale, height=height, margin_top=25, margin_bottom=40)
+        self.color_axis = self.bar.axis
+        self.colorbar = self.bar.figure
         self.colorbar.add_class("ensemblelab-small-colorbar")
         self.key = widgets.HTML()
         self.key.add_class("ensemblelab-small-key")
-        self.widget = widgets.VBox([widgets.HBox([self.grid, self.colorbar]), self.key])
-        self.widget.layout.display = "none"
+        self._row = widgets.HBox([self.grid, self.colorbar])
+        # empty until drawn: figures inside a hidden box get no size (negative rects)
+        self.widget = widgets.VBox([])
 
     def panel(self, i: int) -> tuple[bqplot.Figure, bqplot.HeatMap]:
         """The `i`-th panel (made once, then reused)."""
@@ -176,7 +219,7 @@ class SmallMaps:
     def clear(self) -> None:
         """Show no panel."""
         self.grid.children = ()
-        self.widget.layout.display = "none"
+        self.widget.children = ()
 
     def draw(self, labels: list[str], values: np.ndarray, energies: np.ndarray,
              delays: np.ndarray, window: tuple[float, float], *,
@@ -202,11 +245,7 @@ class SmallMaps:
             lo = 0.0  # numerical tails of the broadening kernel
         hi = hi if hi > lo else lo + 1.0
         self.scale.min, self.scale.max = lo, hi
-        ticks = nice_ticks(lo, hi, 4)
-        self.color_axis.label = label
-        if ticks.size:
-            self.color_axis.tick_values = ticks
-            self.color_axis.tick_format = tick_format(ticks)
+        self.bar.draw(lo, hi, label, n_ticks=4)
         n = len(labels)
         n_rows = math.ceil(n / self.n_columns)
         key = []
@@ -231,4 +270,4 @@ class SmallMaps:
                 key.append(f"<b>{html.escape(short)}</b>: {html.escape(str(name))}")
         self.grid.children = tuple(self.figures[:n])
         self.key.value = ("<small>" + "; ".join(key) + "</small>") if key else ""
-        self.widget.layout.display = "flex" if n else "none"
+        self.widget.children = (self._row, self.key) if n else ()

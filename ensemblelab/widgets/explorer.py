@@ -267,7 +267,8 @@ class Explorer:
         self._on_excluded_change()
         self.model.observe(self.messages.guard(self._on_excluded_change), names="excluded")
         title = widgets.VBox([widgets.HTML("<h3 style='margin:4px 0'>ensemblelab explorer</h3>"),
-                              self.header, self.jobs.status])
+                              widgets.HBox([self.header, self.jobs.status],
+                                           layout=widgets.Layout(grid_gap="16px"))])
         top = widgets.HBox([self._panel(self.map_view, "map view"),
                             self._panel(self.structure_view, "structure view")])
         middle = widgets.HBox([

@@ -19,16 +19,15 @@ from ._small_maps import (
     INTENSITY,
     INTENSITY_ARB,
     RESIDUAL,
+    ColorBar,
     SmallMaps,
     comparison_text,
     cut_text,
-    nice_ticks,
     outside,
     range_mask,
     set_round_ticks,
-    tick_format,
 )
-from ._util import Debouncer, busy
+from ._util import Debouncer, busy, legend_html
 
 __all__ = ["MapView", "DECOMPOSITIONS"]
 
@@ -244,12 +243,14 @@ class MapView(View):
                                                     color="white")
         self.x_axis = ax = bqplot.Axis(scale=self.x, label=ENERGY)
         self.y_axis = ay = bqplot.Axis(scale=self.y, side="left", label=DELAY)
-        self.color_axis = ac = bqplot.ColorAxis(scale=self.c, side="right", label=INTENSITY,
-                                                num_ticks=6, label_offset="50px")
+        # the colour bar: its own figure beside the map (label along it, round ticks)
+        self.colorbar = ColorBar(self.c, height=420, margin_top=20, margin_bottom=45)
+        self.colorbar.figure.add_class("ensemblelab-map-colorbar")
+        self.color_axis = self.colorbar.axis
         self.figure = bqplot.Figure(
-            marks=[self.heatmap, self.box], axes=[ax, ay, ac], interaction=self.brush,
-            layout=widgets.Layout(width="560px", height="420px"),
-            fig_margin={"top": 20, "bottom": 45, "left": 60, "right": 110},
+            marks=[self.heatmap, self.box], axes=[ax, ay], interaction=self.brush,
+            layout=widgets.Layout(width="500px", height="420px"),
+            fig_margin={"top": 20, "bottom": 45, "left": 60, "right": 15},
             padding_x=0, padding_y=0, display_toolbar=False,  # no toolbar over the map
         )
         self.figure.add_class("ensemblelab-map")
@@ -265,7 +266,7 @@ class MapView(View):
         self.ty = bqplot.LinearScale(min=0.0)
         def line(x_scale: Any, y_scale: Any, color: str, label: str) -> bqplot.Lines:
             return bqplot.Lines(x=e0, y=np.zeros(3), scales={"x": x_scale, "y": y_scale},
-                                colors=[color], labels=[label], display_legend=True)
+                                colors=[color], labels=[label])
 
         self.delay_cut_line = line(self.cx, self.cy, "#1f77b4", "simulated")
         self.delay_cut_measured = line(self.cx, self.cy, "black", "measured")
@@ -273,7 +274,11 @@ class MapView(View):
         self.energy_cut_measured = line(self.tx, self.ty, "black", "measured")
         for mark in (self.delay_cut_measured, self.energy_cut_measured):
             mark.visible = measured is not None
-            mark.display_legend = measured is not None
+        self.cut_legend = widgets.HTML(legend_html(
+            [("simulated", "#1f77b4", "solid")]
+            + ([("measured (scaled to the model)", "black", "solid")] if measured is not None
+               else [])))
+        self.cut_legend.add_class("ensemblelab-cut-legend")
         small = widgets.Layout(width="300px", height="210px")
         margin = {"top": 10, "bottom": 40, "left": 60, "right": 10}
         self._cut_axes = {
@@ -284,11 +289,11 @@ class MapView(View):
         self.delay_cut = bqplot.Figure(
             marks=[self.delay_cut_line, self.delay_cut_measured], layout=small,
             fig_margin=margin, axes=[self._cut_axes["cx"], self._cut_axes["cy"]],
-            legend_location="top-right", display_toolbar=False)
+            display_toolbar=False)
         self.energy_cut = bqplot.Figure(
             marks=[self.energy_cut_line, self.energy_cut_measured], layout=small,
             fig_margin=margin, axes=[self._cut_axes["tx"], self._cut_axes["ty"]],
-            legend_location="top-right", display_toolbar=False)
+            display_toolbar=False)
 
         self.delay_cut.add_class("ensemblelab-delay-cut")
         self.energy_cut.add_class("ensemblelab-energy-cut")
@@ -309,8 +314,9 @@ class MapView(View):
             widgets.HBox([self.decomposition, self.energy_axis, self.status]),
             self.layer,
         ])
-        cuts = widgets.VBox([self.delay_cut, self.energy_cut, self.cut_caption])
-        self._finish(controls, widgets.HBox([self.figure, cuts]), self.band_label,
+        cuts = widgets.VBox([self.cut_legend, self.delay_cut, self.energy_cut, self.cut_caption])
+        self._finish(controls, widgets.HBox([self.figure, self.colorbar.figure, cuts]),
+                     self.band_label,
                      self.comparison_label, self.small_maps.widget)
         if compute:
             if self.model.trpes_map is None:
@@ -440,18 +446,12 @@ class MapView(View):
         elif lo < 0 and abs(lo) < 1e-4 * abs(hi):
             lo = 0.0  # numerical tails of the broadening kernel: not worth a colour
         hi = hi if hi > lo else lo + 1.0
-        ticks = nice_ticks(lo, hi, 5)
         window = self.energy_window(trpes)
         # one set of axes for every layer: the simulated map's grid
         d_sim = np.asarray(trpes.delays, float)
         with self.figure.hold_sync():
             self.c.scheme = "RdBu" if self.layer.value == "residual" else "viridis"
             self.c.min, self.c.max = lo, hi
-            self.color_axis.label = {"residual": RESIDUAL, "measured": INTENSITY_ARB}.get(
-                self.layer.value if self.measured is not None else "", INTENSITY)
-            if ticks.size:
-                self.color_axis.tick_values = ticks
-                self.color_axis.tick_format = tick_format(ticks)
             self.heatmap.x = energies
             self.heatmap.y = delays
             self.heatmap.color = np.nan_to_num(values)
@@ -459,6 +459,8 @@ class MapView(View):
             self.y.min, self.y.max = float(d_sim[0]), float(d_sim[-1])
             set_round_ticks(self.x_axis, *window, 6)
             set_round_ticks(self.y_axis, float(d_sim[0]), float(d_sim[-1]), 6)
+        self.colorbar.draw(lo, hi, {"residual": RESIDUAL, "measured": INTENSITY_ARB}.get(
+            self.layer.value if self.measured is not None else "", INTENSITY))
         self._draw_grid(trpes)
         self._draw_comparison()
         self._draw_box()
@@ -566,7 +568,6 @@ class MapView(View):
             for mark, data in ((self.delay_cut_measured, measured_e),
                                (self.energy_cut_measured, measured_d)):
                 mark.visible = data is not None
-                mark.display_legend = data is not None
                 if data is not None:
                     mark.x, mark.y = data
             # the cuts span the map's axes (the energy window, every delay)

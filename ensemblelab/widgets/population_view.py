@@ -14,7 +14,7 @@ from ..data.ensemble import Ensemble
 from ._base import View
 from ._messages import MessageArea
 from ._selection import SelectionModel
-from ._util import Debouncer, busy
+from ._util import Debouncer, busy, legend_html
 from .trajectory_view import STATE_COLORS
 
 __all__ = ["PopulationView"]
@@ -140,7 +140,7 @@ class PopulationView(View):
             for c in colors
         ]
         self.lines = bqplot.Lines(x=zero, y=np.zeros((n_states, 2)), scales=sc, colors=colors,
-                                  labels=list(ens.state_labels), display_legend=True,
+                                  labels=list(ens.state_labels),
                                   stroke_width=2.0)
         self.fit_lines = bqplot.Lines(x=zero, y=np.zeros((1, 2)), scales=sc, colors=["black"],
                                       line_style="dashed", stroke_width=1.5)
@@ -153,7 +153,7 @@ class PopulationView(View):
             axes=[bqplot.Axis(scale=self.x, label="time / fs"),
                   bqplot.Axis(scale=self.y, side="left", label="population",
                               tick_format=".1f")],
-            interaction=self.selector, legend_location="top-right",
+            interaction=self.selector,
             layout=widgets.Layout(width="100%", height="320px"),
             fig_margin={"top": 20, "bottom": 45, "left": 60, "right": 20},
         )
@@ -168,8 +168,12 @@ class PopulationView(View):
         self._observe(lambda change: self._recompute_later(), "excluded")
         self._observe(self._on_delay_range_change, "delay_range")
         self._observe(self._on_time_change, "time")
+        # the legend beside the plot, never over the curves
+        self.legend = widgets.HTML(legend_html(
+            [(str(lab), c, "solid") for lab, c in zip(ens.state_labels, colors, strict=True)]
+            + [("fit", "black", "dashed")]))
         self._finish(widgets.HBox([self.kind, self.fit, self.roles_box, self.status]),
-                     self.figure, self.fit_label)
+                     self.figure, self.legend, self.fit_label)
         self.recompute()
         self._on_delay_range_change()
 
@@ -268,10 +272,28 @@ class PopulationView(View):
                  "tau1": f"{a} → {rest[0]}" if rest else a,
                  "tau2": f"{rest[0]} → {rest[1]}" if len(rest) > 1 else
                  (f"{rest[0]} decay" if rest else "")}
-        parts = [f"{k} ({where.get(k, k)}) = {v:.1f} fs" for k, v in res.time_constants.items()]
+        def interval(name: str, scale: float = 1.0) -> str:
+            try:
+                lo, hi = res.interval(name)
+            except (KeyError, ValueError):
+                return ""
+            if not (np.isfinite(lo) and np.isfinite(hi)):
+                return " (no interval)"
+            return f" [{scale * lo:.1f}, {scale * hi:.1f}]"
+
+        parts = [f"{k} ({where.get(k, k)}) = {v:.1f} fs{interval(k)}"
+                 for k, v in res.time_constants.items()]
         if res.scheme == "parallel" and "branching" in res.params and rest:
-            parts.append(f"branching to {rest[0]} = {100 * res.params['branching']:.1f} %")
-        return f"{res.scheme} fit: " + ", ".join(parts)
+            parts.append(f"branching to {rest[0]} = {100 * res.params['branching']:.1f} %"
+                         f"{interval('branching', 100.0)}")
+        level = f"{100 * res.ci:.0f} %" if np.isfinite(res.ci) else ""
+        how = str(res.interval_method).split(" (", 1)[0]
+        note = (f"; [{level} interval, {how}: covers the fit only, not the sampling of "
+                "trajectories]" if how == "covariance" else
+                f"; [{level} interval, {how}]" if how != "none" else "")
+        if all(interval(k) in ("", " (no interval)") for k in res.time_constants):
+            note = ""
+        return f"{res.scheme} fit: " + ", ".join(parts) + note
 
     # ------------------------------------------------------------------ drawing
     def _draw(self) -> None:

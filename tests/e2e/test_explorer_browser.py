@@ -113,7 +113,8 @@ def test_browser_excluding_a_flagged_trajectory_changes_the_map(browser_page):
 
 def test_browser_console_has_no_unexpected_errors(browser_page):
     assert "error" not in browser_page.locator(".ensemblelab-messages").inner_text().lower()
-    assert unexpected(browser_page.errors) == []
+    errs = unexpected(browser_page.errors)
+    assert errs == [], "\n".join(errs)
 
 
 def test_browser_server_refuses_requests_without_its_token(explore_server):

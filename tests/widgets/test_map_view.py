@@ -46,15 +46,17 @@ def test_mapview_measured_overlay_and_residual(model, toy):
                                atol=1e-9)
     view.layer.value = "residual"
     assert np.abs(view.heatmap.color).max() < 1e-6 * np.abs(sim.intensity).max()
-    # simulated and measured cuts, each with its legend entry
-    assert view.delay_cut_measured.visible and view.delay_cut_measured.display_legend
+    # simulated and measured cuts, each with its legend entry (beside the plots)
+    assert view.delay_cut_measured.visible
+    assert "simulated" in view.cut_legend.value and "measured" in view.cut_legend.value
+    assert "measured" not in first.cut_legend.value  # no measured map, no such entry
     assert view.delay_cut_line.labels == ["simulated"]
     assert view.delay_cut_measured.labels == ["measured"]
     # the residual's sign and the comparison's numbers are stated
     text = view.comparison_label.value
     assert "residual = measured − model" in text
     assert "scale 2" in text and "R² = 1.000" in text  # measured = 2 x simulated, exact fit
-    assert view.color_axis.label == "measured − model / arb. u."
+    assert view.color_axis.label == "residual / arb. u."  # its sign stated beside the map
     view.layer.value = "simulated"
     assert view.color_axis.label == "intensity / eV⁻¹" and view.comparison_label.value == ""
     assert first.messages.errors == [] and view.messages.errors == []
