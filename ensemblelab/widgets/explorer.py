@@ -286,6 +286,13 @@ class Explorer:
         if self.quality_view is not None:
             self.quality_view.on_show(self._show_trajectory)
         head = widgets.HTML("<b>messages</b>")
+
+        def show_head(change: Any = None) -> None:  # no empty message area
+            head.layout.display = "block" if self.messages.messages else "none"
+
+        show_head()
+        self.messages.widget.observe(show_head, names="value")
+        self.messages_head = head
         return widgets.VBox([title, top, middle, tabs, head, self.messages.widget])
 
     def _repr_mimebundle_(self, **kwargs: Any) -> Any:

@@ -42,9 +42,12 @@ class SelectionTable(View):
     table : DataFrame or None
         The grouped contributions shown (see :func:`ensemblelab.compute.bands.group_band`).
     rows : ipywidgets.Select
-        One option per group; choosing one selects its snapshots.
+        The one table: one row per group (label, share, snapshots, trajectories);
+        choosing one selects its snapshots. Hidden while there is no band.
     summary : ipywidgets.HTML
-        The band and its total; ``html`` holds the table.
+        The band and its total.
+    html : ipywidgets.HTML
+        The table's column heads (above :attr:`rows`).
     """
 
     title = "selection table"
@@ -59,7 +62,7 @@ class SelectionTable(View):
         self.summary = widgets.HTML(value="<i>No band selected.</i>")
         self.summary.add_class("ensemblelab-selection-summary")
         self.rows = widgets.Select(options=[], rows=8,
-                                   layout=widgets.Layout(width="100%"))
+                                   layout=widgets.Layout(width="100%", display="none"))
         self.rows.add_class("ensemblelab-selection-rows")
         self.html = widgets.HTML()
         self.html.add_class("ensemblelab-selection-table")
@@ -67,7 +70,7 @@ class SelectionTable(View):
         self.group.observe(self._guard(self._on_group_click), names="value")
         self.rows.observe(self._guard(self._on_row_change), names="value")
         self._observe(self._on_band_change, ["band", "group_by"])
-        self._finish(self.group, self.summary, self.rows, self.html)
+        self._finish(self.group, self.summary, self.html, self.rows)
         self._render()
 
     def _on_group_click(self, change: dict) -> None:
@@ -98,6 +101,7 @@ class SelectionTable(View):
             if band is None or band.empty:
                 self.table = None
                 self.rows.options = []
+                self.rows.layout.display = "none"  # no empty box before the first band
                 self.html.value = ""
                 if band is None:
                     self.summary.value = "<i>No band selected.</i>"
@@ -130,13 +134,11 @@ class SelectionTable(View):
                 for r in rows
             ]
             self.rows.value = None
-            head = "".join(f"<th>{h}</th>" for h in (
-                _GROUP_LABELS[self.model.group_by], "share", "snapshots", "trajectories"))
-            body = "".join(
-                f"<tr><td>{html.escape(r.label)}</td><td>{format_percent(r.share)}</td>"
-                f"<td>{r.n_snapshots}</td><td>{r.n_trajectories}</td></tr>"
-                for r in rows)
-            self.html.value = f"<table style='font-size:12px'><tr>{head}</tr>{body}</table>"
+            self.rows.layout.display = "flex"
+            # one table: the rows are the clickable list; here only its column heads
+            self.html.value = (
+                f"<small><b>{html.escape(_GROUP_LABELS[self.model.group_by])}</b> · share · "
+                "(snapshots, trajectories); choose a row to see its structures</small>")
         finally:
             self._syncing = False
 

@@ -321,3 +321,9 @@ def test_explorer_without_a_loop_starts_with_the_largest_clusters_medoid(toy, tm
     with pytest.raises(RuntimeError, match="running event loop"):
         Explorer(toy, map_kwargs=MAP, debounce=0, restore=False, background=True,
                  export_folder=tmp_path / "export2")
+
+
+def test_explorer_message_heading_only_with_messages(app):
+    assert app.messages.messages == [] and app.messages_head.layout.display == "none"
+    app.messages.info("invented message")
+    assert app.messages_head.layout.display == "block"
