@@ -155,7 +155,7 @@ class PopulationView(View):
                               tick_format=".1f")],
             interaction=self.selector,
             layout=widgets.Layout(width="100%", height="320px"),
-            fig_margin={"top": 20, "bottom": 45, "left": 60, "right": 20},
+            fig_margin={"top": 20, "bottom": 45, "left": 60, "right": 36},
         )
         self.figure.add_class("ensemblelab-populations")
 

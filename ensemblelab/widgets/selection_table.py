@@ -58,7 +58,7 @@ class SelectionTable(View):
         self.table: pd.DataFrame | None = None
         self.group = widgets.ToggleButtons(
             options=[("cluster", "cluster"), ("state", "state"), ("trajectory", "traj")],
-            value=self.model.group_by, description="group by", style={"button_width": "80px"})
+            value=self.model.group_by, description="group by", style={"button_width": "92px"})
         self.summary = widgets.HTML(value="<i>No band selected.</i>")
         self.summary.add_class("ensemblelab-selection-summary")
         self.rows = widgets.Select(options=[], rows=8,

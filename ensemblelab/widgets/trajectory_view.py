@@ -81,7 +81,7 @@ class TrajectoryView(View):
         self.figure = bqplot.Figure(
             marks=[self.lines, self.active_line, self.hop_marks, self.cursor], axes=[ax, ay],
             layout=widgets.Layout(width="100%", height="300px"),
-            fig_margin={"top": 20, "bottom": 40, "left": 60, "right": 20},
+            fig_margin={"top": 20, "bottom": 40, "left": 60, "right": 36},
         )
         # the legend beside the plot, never over the curves
         self.legend = widgets.HTML(legend_html(

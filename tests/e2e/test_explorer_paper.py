@@ -135,9 +135,13 @@ def test_paper_toggle_keeps_axes_and_moves_the_brush(paper_page):
         page.locator(f"{MAP} button", has_text=layer).first.click()
         _wait(lambda old=image: _map_image(page) != old, f"the {layer} map drawn", page=page)
         page.wait_for_timeout(300)
-        now_ticks = _x_ticks(page)  # one set of axes for every layer (to a pixel)
-        assert [t for t, _ in now_ticks] == [t for t, _ in ticks], layer
-        assert all(abs(a - b) <= 2 for (_, a), (_, b) in zip(now_ticks, ticks, strict=True))
+        def same_axes() -> bool:  # one set of axes for every layer (to two pixels)
+            now = _x_ticks(page)
+            return [t for t, _ in now] == [t for t, _ in ticks] and all(
+                abs(a - b) <= 2 for (_, a), (_, b) in zip(now, ticks, strict=True))
+
+        _wait(same_axes, f"the {layer} map on the simulated map's axes {ticks}", timeout=10,
+              page=page)
         now = _brush_rects(page)
         assert len(now) == 1, (layer, now)  # one brush, no ghost
         for key in ("x", "y", "width", "height"):
@@ -234,3 +238,21 @@ def test_paper_photon_energy_change_draws_cleanly(paper_page):
     assert "error" not in page.locator(".ensemblelab-messages").inner_text().lower()
     screenshot(page, "11_map_6.2eV", MAP)
     assert np.isfinite(float(box.input_value()))
+
+
+def test_paper_button_labels_and_ticks_are_not_cut(paper_page):
+    page = paper_page
+    # toggle-button labels fit their buttons (no "simula...")
+    cut = page.evaluate("""() => Array.from(document.querySelectorAll(
+        '.ensemblelab-explorer .widget-toggle-button')).filter(
+        b => b.offsetParent !== null && b.scrollWidth > b.clientWidth + 1).map(
+        b => b.textContent.trim())""")
+    assert cut == [], cut
+    # the populations' last time tick sits inside its figure (not clipped at the right)
+    fig = page.locator(".ensemblelab-populations").first
+    fig.scroll_into_view_if_needed()
+    box = fig.bounding_box()
+    ticks = fig.locator("g.axis g.tick text")
+    rights = [b["x"] + b["width"] for b in (ticks.nth(i).bounding_box()
+                                            for i in range(ticks.count())) if b]
+    assert rights and max(rights) <= box["x"] + box["width"], (max(rights), box)
