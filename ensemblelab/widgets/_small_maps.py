@@ -176,7 +176,7 @@ class SmallMaps:
     colorbar : bqplot.Figure
         The shared colour bar (labelled, with its unit).
     key : ipywidgets.HTML
-        Short title -> full label, where they differ (also each panel's tooltip).
+        Short title -> full label, where they differ (a bqplot figure has no tooltip).
     """
 
     def __init__(self, *, n_columns: int = 3, width: int = 238, height: int = 200) -> None:
@@ -192,7 +192,7 @@ class SmallMaps:
         self.color_axis = self.bar.axis
         self.colorbar = self.bar.figure
         self.colorbar.add_class("ensemblelab-small-colorbar")
-        self.key = widgets.HTML()
+        self.key = widgets.HTML(layout=widgets.Layout(max_width="900px"))  # wraps
         self.key.add_class("ensemblelab-small-key")
         self._row = widgets.HBox([self.grid, self.colorbar])
         # empty until drawn: figures inside a hidden box get no size (negative rects)
@@ -211,7 +211,7 @@ class SmallMaps:
                 axes=[bqplot.Axis(scale=xs, num_ticks=3),
                       bqplot.Axis(scale=ys, side="left", num_ticks=3)],
                 layout=widgets.Layout(width=f"{w}px", height=f"{h}px"),
-                fig_margin={"top": 25, "bottom": 40, "left": 55, "right": 8})
+                fig_margin={"top": 32, "bottom": 40, "left": 55, "right": 8})
             self.figures.append(fig)
             self._marks.append(hm)
         return self.figures[i], self._marks[i]
@@ -265,7 +265,6 @@ class SmallMaps:
                 ax.label = ENERGY if row == n_rows - 1 or i + self.n_columns >= n else ""
                 ay.label = DELAY if col == 0 else ""
                 fig.title = short
-                fig.tooltip = str(name)
             if short != str(name):
                 key.append(f"<b>{html.escape(short)}</b>: {html.escape(str(name))}")
         self.grid.children = tuple(self.figures[:n])

@@ -222,9 +222,9 @@ class MapView(View):
         self.energy_axis = widgets.Dropdown(options=options, value=window_value,
                                             description="energies",
                                             layout=widgets.Layout(width="200px"))
-        self.comparison_label = widgets.HTML()
+        self.comparison_label = widgets.HTML(layout=widgets.Layout(max_width="900px"))
         self.comparison_label.add_class("ensemblelab-comparison")
-        self.cut_caption = widgets.HTML()
+        self.cut_caption = widgets.HTML(layout=widgets.Layout(max_width="300px"))
         self.cut_caption.add_class("ensemblelab-cut-caption")
         self.status = widgets.HTML()
         self.status.add_class("ensemblelab-map-status")
@@ -508,17 +508,23 @@ class MapView(View):
                 self.brush.selected_x, self.brush.selected_y = None, None
             self.band_label.value = "<i>Drag a box over a band to see what makes it.</i>"
             return
-        self.box.x = np.array([e[0], e[1], e[1], e[0], e[0]])
-        self.box.y = np.array([d[0], d[0], d[1], d[1], d[0]])
+        lo, hi = (self.x.min, self.x.max)
+        hidden = lo is not None and hi is not None and (e[1] < lo or e[0] > hi)
+        if hidden:  # the band lies outside the energies shown: no box clipped at the edge
+            self.box.x, self.box.y = np.zeros(0), np.zeros(0)
+        else:
+            self.box.x = np.array([e[0], e[1], e[1], e[0], e[0]])
+            self.box.y = np.array([d[0], d[0], d[1], d[1], d[0]])
         if not self.brush.brushing:  # the brush moves with the data (no ghost box)
             with self.figure.hold_sync():
-                self.brush.selected_x = np.array(e, dtype=float)
-                self.brush.selected_y = np.array(d, dtype=float)
+                self.brush.selected_x = None if hidden else np.array(e, dtype=float)
+                self.brush.selected_y = None if hidden else np.array(d, dtype=float)
         band = self.model.band
         empty = band is not None and bool(band.attrs.get("no_signal", False))
         self.band_label.value = (
             f"band: {e[0]:.2f}–{e[1]:.2f} eV, {d[0]:.0f}–{d[1]:.0f} fs"
-            + (" · <i>no signal here</i>" if empty else ""))
+            + (" · <i>no signal here</i>" if empty else "")
+            + (" · <i>outside the energies shown</i>" if hidden else ""))
 
     def cuts(self) -> tuple[np.ndarray, np.ndarray]:
         """Spectrum averaged over the selected delays and trace averaged over the energies.

@@ -256,3 +256,36 @@ def test_paper_button_labels_and_ticks_are_not_cut(paper_page):
     rights = [b["x"] + b["width"] for b in (ticks.nth(i).bounding_box()
                                             for i in range(ticks.count())) if b]
     assert rights and max(rights) <= box["x"] + box["width"], (max(rights), box)
+
+
+def test_paper_decomposition_small_multiples(paper_page):
+    page = paper_page
+    _dropdown(page, MAP, "show").select_option("diabatic pair")
+    grid = ".ensemblelab-small-colorbar"
+    _wait(lambda: page.locator(grid).count() > 0, "the decomposition grid shown", page=page)
+    page.wait_for_timeout(1500)
+    # one shared colour bar with its label and unit; axis labels on the outer panels only
+    assert page.locator(f"{grid} text", has_text="intensity / eV⁻¹").count() == 1
+    screenshot(page, "12_decomposition", grid)
+    panels = page.locator(f"{MAP} .widget-gridbox .plotarea_background")
+    n = panels.count()
+    assert n >= 2, (n, page.errors[-5:])
+    y_labels = page.locator(f"{MAP} .widget-gridbox text", has_text="delay / fs").count()
+    assert 1 <= y_labels < n  # left column only
+    titles = page.locator(f"{MAP} .widget-gridbox text.mainheading").all_text_contents()
+    assert all(len(t) <= 12 for t in titles), titles  # short titles (full ones on hover)
+    errors = page.locator(".ensemblelab-messages").inner_text().lower()
+    assert "error" not in errors
+    _dropdown(page, MAP, "show").select_option("total")
+
+
+def test_paper_structure_view_stays_on_the_page(paper_page):
+    """Long captions wrap: the structure viewer keeps its place beside the map at 1600 px."""
+    page = paper_page
+    _dropdown(page, MAP, "show").select_option("diabatic pair")
+    _wait(lambda: page.locator(".ensemblelab-small-colorbar").count() > 0,
+          "the decomposition grid shown", page=page)
+    page.wait_for_timeout(1000)
+    canvas = page.locator(".ensemblelab-ngl").first.bounding_box()
+    assert canvas["x"] + canvas["width"] <= 1600, canvas
+    _dropdown(page, MAP, "show").select_option("total")

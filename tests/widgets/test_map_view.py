@@ -190,5 +190,17 @@ def test_mapview_small_multiples_share_a_labelled_colour_bar(model):
     sm.draw(["G (closed shell)->D0 (doublet)"], np.ones((1, 2, 2)), np.array([0.0, 1.0]),
             np.array([0.0, 10.0]), (0.0, 1.0))
     fig = sm.grid.children[0]
-    assert fig.title == "G->D0" and fig.tooltip == "G (closed shell)->D0 (doublet)"
+    assert fig.title == "G->D0"  # the full label in the key below the grid
     assert "G (closed shell)-&gt;D0 (doublet)" in sm.key.value  # escaped HTML
+
+
+def test_mapview_band_outside_the_energies_shown_has_no_clipped_box(model):
+    view = MapView(model, debounce=0, energy_window=(0.0, 2.0), **GRID)
+    model.select_band(energy_range=(1.3, 1.7), delay_range=(20.0, 60.0))
+    assert tuple(view.brush.selected_x) == (1.3, 1.7) and len(view.box.x) == 5
+    model.select_band(energy_range=(2.2, 2.4), delay_range=(20.0, 60.0))  # beyond 2.0 eV
+    assert view.brush.selected_x is None and len(view.box.x) == 0
+    assert "outside the energies shown" in view.band_label.value
+    view.energy_axis.value = "full grid"  # widen: the box comes back with the data
+    assert tuple(view.brush.selected_x) == (2.2, 2.4)
+    assert view.messages.errors == []
