@@ -8,9 +8,11 @@ import nglview
 import numpy as np
 import numpy.typing as npt
 
-__all__ = ["EnsembleStructure", "pdb_block"]
+__all__ = ["EnsembleStructure", "pdb_block", "CHAINS"]
 
 _CHAINS = "ABCDEFGHIJKLMNOPQRSTUVWXYZabcdefghijklmnopqrstuvwxyz0123456789"
+#: chain name of each overlaid copy (copy ``c`` is chain ``CHAINS[c % len(CHAINS)]``)
+CHAINS = _CHAINS
 
 
 def pdb_block(

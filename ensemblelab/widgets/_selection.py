@@ -47,7 +47,8 @@ class SelectionModel(HasTraits):
     Parameters
     ----------
     ens : Ensemble
-        The full ensemble (never modified; exclusions make new Ensembles).
+        The full ensemble (never modified; exclusions are a mask that every
+        computation of the views honours, not a copy).
     **traits
         Initial values of the traits below.
 
@@ -56,9 +57,12 @@ class SelectionModel(HasTraits):
     ens : Ensemble
         The full ensemble.
     excluded : tuple of int
-        Trajectory ids the user excluded (sorted); :attr:`current` lacks them.
+        Trajectory ids the user excluded (sorted). The views pass them as
+        ``exclude=`` to the computations (weight 0, not counted); :attr:`current`
+        is a copy without them, made only on request.
     trpes_map : TRPESMap or None
-        The map currently shown (of :attr:`current`), set by the map view.
+        The map currently shown (of :attr:`ens` without :attr:`excluded`), set by
+        the map view.
     energy_range : (float, float) or None
         Selected photoelectron kinetic-energy interval in eV.
     delay_range : (float, float) or None
@@ -141,9 +145,13 @@ class SelectionModel(HasTraits):
         self._weights = ens.snapshot_weights()  # per snapshot row (the ensemble is frozen)
         self._analysis: BandAnalysis | None = None  # behind band (see analysis)
         self._analysis_band: pd.DataFrame | None = None
-        self._analysis_for: Ensemble | None = None
+        self._analysis_for: tuple[int, ...] | None = None
         self._groups_cache: SnapshotGroups | None = None
-        self._groups_key: tuple[int, int] = (0, 0)
+        self._groups_key: int = 0
+        traj_col = ens.snapshots["traj"].to_numpy()
+        self._traj_ids = ens.trajectories["traj"].to_numpy()
+        self._snapshots_per_traj = pd.Series(traj_col).value_counts().reindex(
+            self._traj_ids, fill_value=0).to_numpy()
 
     # ------------------------------------------------------------------ validation
     @validate("excluded")
@@ -183,22 +191,27 @@ class SelectionModel(HasTraits):
         return arr
 
     def remember_stick_model(self, trpes_map: Any, model: Any) -> None:
-        """Keep the stick model of `trpes_map` (made from :attr:`current`) for band queries."""
-        self._stick_models = (trpes_map, self.current, model)
+        """Keep the stick model of `trpes_map` (made from :attr:`ens` with the current
+        exclusions as ``exclude=``) for band queries."""
+        self._stick_models = (trpes_map, tuple(self.excluded), model)
 
     def stick_model(self) -> Any:
-        """The stick model of :attr:`trpes_map` for :attr:`current` (built once per map).
+        """The stick model of :attr:`trpes_map` (built once per map and exclusion set).
 
-        An explicit cache on this (mutable) model, valid while both stay the same
-        objects; the map itself carries no model.
+        An explicit cache on this (mutable) model, valid while the map stays the same
+        object and the exclusions the same; the map itself carries no model.
         """
-        from ..compute.spectroscopy import model_for_map
-
         cached = getattr(self, "_stick_models", None)
-        if cached is None or cached[0] is not self.trpes_map or cached[1] is not self.current:
-            cached = (self.trpes_map, self.current, model_for_map(self.current, self.trpes_map))
+        key = tuple(self.excluded)
+        if cached is None or cached[0] is not self.trpes_map or cached[1] != key:
+            cached = (self.trpes_map, key, _rebuild_model(self.ens, self.trpes_map, key))
             self._stick_models = cached
         return cached[2]
+
+    @observe("excluded")
+    def _on_excluded_change(self, change: Any) -> None:
+        # the copy of :attr:`current` is made again only when asked for (no memory kept)
+        self._current, self._current_key = None, None
 
     @observe("trpes_map")
     def _on_trpes_map_change(self, change: Any) -> None:
@@ -207,8 +220,27 @@ class SelectionModel(HasTraits):
 
     # ------------------------------------------------------------------ derived
     @property
+    def used(self) -> np.ndarray:
+        """Whether each trajectory (row of ``ens.trajectories``) is used, shape (n_traj,)."""
+        return ~np.isin(self._traj_ids, np.asarray(self.excluded, dtype=np.int64))
+
+    @property
+    def n_trajectories(self) -> int:
+        """Trajectories used by every view (all but the excluded ones)."""
+        return int(self._traj_ids.size - len(self.excluded))
+
+    @property
+    def n_snapshots(self) -> int:
+        """Snapshots used by every view (those of the trajectories not excluded)."""
+        return int(self._snapshots_per_traj[self.used].sum())
+
+    @property
     def current(self) -> Ensemble:
-        """The ensemble without the excluded trajectories (cached)."""
+        """A copy of the ensemble without the excluded trajectories (made on request, cached).
+
+        The views do not use it (they pass :attr:`excluded` to the computations);
+        it is for user code that wants the reduced ensemble itself.
+        """
         key = tuple(self.excluded)
         if self._current is None or key != self._current_key:
             self._current = self.ens.without(key) if key else self.ens
@@ -276,7 +308,7 @@ class SelectionModel(HasTraits):
     ) -> pd.DataFrame:
         """Select a band of the current map and find what contributes to it.
 
-        Calls :func:`ensemblelab.compute.bands.analyse_band` on :attr:`current` and
+        Calls :func:`ensemblelab.compute.bands.analyse_band` on :attr:`ens` and
         :attr:`trpes_map` (every snapshot's band intensity, unsorted; held as
         :attr:`analysis`), keeps the :attr:`band_rows` strongest snapshots as
         :attr:`band`, then updates :attr:`energy_range`, :attr:`delay_range`,
@@ -299,7 +331,7 @@ class SelectionModel(HasTraits):
             raise ValueError("no map is shown yet: select_band needs trpes_map to be set.")
         e_rng = _range(energy_range, "energy_range")
         d_rng = _range(delay_range, "delay_range")
-        analysis = analyse_band(self.current, self.trpes_map, energy_range=e_rng,
+        analysis = analyse_band(self.ens, self.trpes_map, energy_range=e_rng,
                                 delay_range=d_rng, groups=self._groups(),
                                 model=self.stick_model())
         fraction = _signal_fraction(analysis.total, self.trpes_map)
@@ -307,7 +339,8 @@ class SelectionModel(HasTraits):
         band = self._decorate(analysis.table(
             0 if no_signal else max(self.band_rows, self.max_selected)))
         band.attrs.update(signal_fraction=fraction, no_signal=no_signal)
-        self._analysis, self._analysis_band, self._analysis_for = analysis, band, self.current
+        self._analysis, self._analysis_band = analysis, band
+        self._analysis_for = tuple(self.excluded)
         with self.hold_trait_notifications():
             self.energy_range = e_rng
             self.delay_range = d_rng
@@ -441,7 +474,7 @@ class SelectionModel(HasTraits):
         """
         analysis = self._analysis
         if analysis is None or self._analysis_band is not self.band or \
-                self._analysis_for is not self.current:
+                self._analysis_for != tuple(self.excluded):
             return None
         groups = self._groups()
         if analysis.groups is not groups:  # new cluster labels: same band, new groups
@@ -452,16 +485,15 @@ class SelectionModel(HasTraits):
         return analysis
 
     def _groups(self) -> SnapshotGroups:
-        """Group keys of the rows of :attr:`current` (kept while it and the clusters hold)."""
-        cur = self.current
-        key = (id(cur), id(self.clusters))
+        """Group keys of the rows of :attr:`ens` (kept while the clusters hold).
+
+        Excluded trajectories stay in the groups: their intensity is zero, so they
+        never contribute to a band.
+        """
+        key = id(self.clusters)
         if self._groups_cache is None or self._groups_key != key:
-            labels = None
-            if self.clusters is not None:
-                rows = None if cur is self.ens else self.rows(cur.snapshots["snapshot"].to_numpy())
-                labels = np.asarray(self.clusters) if rows is None else \
-                    np.asarray(self.clusters)[rows]
-            self._groups_cache = SnapshotGroups.from_ensemble(cur, clusters=labels)
+            labels = None if self.clusters is None else np.asarray(self.clusters)
+            self._groups_cache = SnapshotGroups.from_ensemble(self.ens, clusters=labels)
             self._groups_key = key
         return self._groups_cache
 
@@ -475,6 +507,22 @@ class SelectionModel(HasTraits):
             if column not in table.columns:
                 table[column] = self.ens.snapshots[column].to_numpy()[rows]
         return table
+
+
+def _rebuild_model(ens: Ensemble, trpes_map: Any, excluded: tuple[int, ...]) -> Any:
+    """The stick model of `trpes_map`, rebuilt from its params with the exclusions."""
+    from ..compute.spectroscopy import model_for_map
+
+    if not excluded:
+        return model_for_map(ens, trpes_map)
+    from ..compute.spectroscopy._checks import settings_from_params
+    from ..compute.spectroscopy.maps import trpes_model
+
+    p = trpes_map.params
+    probe, pump, cs, weights = settings_from_params(p)
+    return trpes_model(ens, probe=probe, pump=pump, resolution=float(p.get("resolution", 0.0)),
+                       cross_section=cs, weights=weights, decompose=None,
+                       time_step=p.get("time_step"), progress=False, exclude=excluded)
 
 
 def _signal_fraction(band_total: float, trpes_map: Any) -> float:

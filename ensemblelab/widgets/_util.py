@@ -9,7 +9,8 @@ from typing import Any
 
 import ipywidgets as widgets
 
-__all__ = ["Debouncer", "busy", "format_percent", "trait_default"]
+__all__ = ["Debouncer", "busy", "format_percent", "trait_default", "running_loop",
+           "legend_html"]
 
 
 class Debouncer:
@@ -72,6 +73,30 @@ def _running_loop() -> asyncio.AbstractEventLoop | None:
     except Exception:  # noqa: BLE001 - no kernel: run synchronously
         return None
     return None
+
+
+def legend_html(entries: list[tuple[str, str, str]]) -> str:
+    """A legend beside a figure (never over its curves): ``(label, colour, style)`` entries,
+    style ``"solid"``, ``"dashed"`` or ``"marker"``."""
+    import html as _html
+
+    parts = []
+    for label, color, style in entries:
+        if style == "marker":
+            swatch = f"<span style='color:{color}'>&#9670;</span>"
+        else:
+            border = "dashed" if style == "dashed" else "solid"
+            swatch = (f"<span style='display:inline-block;width:18px;height:0;vertical-align:"
+                      f"middle;border-top:2px {border} {color}'></span>")
+        parts.append(f"<span style='margin-right:12px;white-space:nowrap'>{swatch} "
+                     f"{_html.escape(label)}</span>")
+    return "<div class='ensemblelab-legend' style='font-size:12px'>" + "".join(parts) + \
+        "</div>"
+
+
+def running_loop() -> asyncio.AbstractEventLoop | None:
+    """The event loop of the running kernel (None in plain Python and in tests)."""
+    return _running_loop()
 
 
 @contextlib.contextmanager

@@ -46,6 +46,11 @@ class Explorer:
         Flagged-trajectory table (default: computed by ``flag_trajectories``).
     measured : TRPESMap, optional
         A measured map to overlay in the map view.
+    exclude : iterable of int or DataFrame, optional
+        Trajectory ids to leave out from the start (for example the flagged rows of a
+        ``flag_trajectories`` table, the same ones a notebook's fit leaves out). Every
+        view uses one exclusion state (:attr:`SelectionModel.excluded`, shown in the
+        header); a restored session replaces it.
     data_path : path, optional
         Where the ensemble was loaded from: the session file goes beside it.
     session_path : path, optional
@@ -56,6 +61,12 @@ class Explorer:
         Folder of the export buttons.
     debounce : float
         Seconds of quiet before a recomputation after a control change.
+    background : bool, optional
+        Cluster the snapshots and flag the trajectories after the explorer is shown,
+        in a worker thread with a status line (default: inside a kernel). The map,
+        populations and band table are usable at once; the selection table gains its
+        clusters and the quality tab its flags when they are ready. False: compute
+        them before returning (plain Python and tests do).
 
     Attributes
     ----------
@@ -72,6 +83,10 @@ class Explorer:
     last_update_ms : float or None
         In-kernel time of the last band selection, from the brush event to every
         view updated.
+    jobs : BackgroundJobs
+        The clustering and flagging run after building (:meth:`wait` waits for them).
+    build_seconds : float
+        Time to build the views (the map usable), without the background jobs.
     """
 
     def __init__(
@@ -85,12 +100,20 @@ class Explorer:
         cluster_kwargs: dict[str, Any] | None = None,
         flags: Any = None,
         measured: Any = None,
+        exclude: Any = None,
         data_path: str | os.PathLike[str] | None = None,
         session_path: str | os.PathLike[str] | None = None,
         restore: bool = True,
         export_folder: str | os.PathLike[str] | None = None,
         debounce: float = 0.3,
+        background: bool | None = None,
     ) -> None:
+        # imported here, on the widget thread: a module first imported by the worker
+        # thread while a view imports it too would be seen half initialised
+        from ..compute.structures.clustering import cluster_snapshots  # noqa: F401
+        from ..compute.structures.geometry import kabsch_align  # noqa: F401
+        from ..compute.structures.outliers import flag_trajectories  # noqa: F401
+        from ._background import BackgroundJobs, Job
         from .export import ExportPanel
         from .map_view import MapView
         from .population_view import PopulationView
@@ -101,6 +124,13 @@ class Explorer:
 
         self.messages = MessageArea()
         self.model = SelectionModel(ens)
+        if exclude is not None:
+            if hasattr(exclude, "columns"):  # a flags table: its flagged rows
+                table = exclude
+                if "flagged" in table.columns:
+                    table = table.loc[table["flagged"].astype(bool)]
+                exclude = table["traj"].to_numpy()
+            self.model.excluded = tuple(int(t) for t in exclude)
         self.data_path = None if data_path is None else Path(data_path)
         if session_path is not None:
             self.session_path = Path(session_path)
@@ -109,9 +139,21 @@ class Explorer:
         else:
             self.session_path = Path.cwd() / "ensemblelab.session.json"
         self.last_update_ms: float | None = None
-        self._set_clusters(clusters, cluster_kwargs)
+        start = time.perf_counter()
+        self.jobs = BackgroundJobs(self.messages, background=background)
+        jobs: list[Job] = []
+        if isinstance(clusters, str):
+            if clusters != "auto":
+                raise ValueError(f"clusters must be 'auto', labels or False; got {clusters!r}.")
+            options = {"n_clusters": 3, **dict(cluster_kwargs or {})}
+            jobs.append(("clustering the snapshots",
+                         lambda: self._cluster(options), self._apply_clusters))
+        else:
+            self._set_clusters(clusters)
         if flags is not None:
             self.model.flags = flags
+        else:
+            jobs.append(("checking the trajectories", self._flags, self._apply_flags))
 
         m, msg = self.model, self.messages
         mk = {"debounce": debounce, "measured": measured, **dict(map_kwargs or {})}
@@ -126,7 +168,8 @@ class Explorer:
                                            lambda: SelectionTable(m, messages=msg))
         self.trajectory_view = self._build("trajectory view",
                                            lambda: TrajectoryView(m, messages=msg))
-        self.quality_view = self._build("quality view", lambda: QualityView(m, messages=msg))
+        self.quality_view = self._build("quality view", lambda: QualityView(
+            m, messages=msg, compute_flags=False))
         self.export = self._build("export", lambda: ExportPanel(
             m, messages=msg, folder=export_folder, populations=self._populations,
             save_session=self.save_session, restore_session=self.restore_session))
@@ -138,33 +181,45 @@ class Explorer:
                 self.restore_session()
             except Exception as exc:  # noqa: BLE001 - shown, the explorer still works
                 self.messages.exception(exc, where="restoring the session")
-        if not self.model.selected and self.model.cluster_medoids and \
-                self.structure_view is not None:
-            # something to look at before the first band: the cluster medoids
-            self.model.selected = tuple(self.model.cluster_medoids)
+        self.build_seconds = time.perf_counter() - start
+        self.jobs.run(jobs)
+
+    def wait(self, timeout: float | None = None) -> bool:
+        """Wait for the background clustering and flags; True when they are applied."""
+        return self.jobs.wait(timeout)
 
     # ------------------------------------------------------------------ building
-    def _set_clusters(self, clusters: Any, kwargs: dict[str, Any] | None) -> None:
-        if clusters is None or clusters is False:
-            return
-        if isinstance(clusters, str):
-            if clusters != "auto":
-                raise ValueError(f"clusters must be 'auto', labels or False; got {clusters!r}.")
-            try:
-                from ..compute.structures.clustering import cluster_snapshots
+    def _cluster(self, options: dict[str, Any]) -> Any:
+        from ..compute.structures.clustering import cluster_snapshots
 
-                options = {"n_clusters": 3, **dict(kwargs or {})}
-                result = cluster_snapshots(self.model.ens, **options)
-                self.cluster_result = result
-                summary = result.summary
-                self.model.clusters = np.asarray(result.codes)
-                self.model.cluster_names = {str(int(c)): str(n) for c, n in
-                                            zip(summary["code"], summary["cluster"],
-                                                strict=True)}
-                self.model.cluster_medoids = tuple(
-                    int(s) for s in summary["medoid_snapshot"].to_numpy() if s >= 0)
-            except Exception as exc:  # noqa: BLE001 - shown; views work without clusters
-                self.messages.exception(exc, where="clustering the snapshots")
+        return cluster_snapshots(self.model.ens, **options)
+
+    def _apply_clusters(self, result: Any) -> None:
+        self.cluster_result = result
+        summary = result.summary
+        with self.model.hold_trait_notifications():
+            self.model.cluster_names = {str(int(c)): str(n) for c, n in
+                                        zip(summary["code"], summary["cluster"], strict=True)}
+            self.model.cluster_medoids = tuple(
+                int(s) for s in summary["medoid_snapshot"].to_numpy() if s >= 0)
+            self.model.clusters = np.asarray(result.codes)
+        if not self.model.selected and self.structure_view is not None:
+            # something to look at before the first band: the strongest group's medoid
+            order = summary.sort_values("fraction", ascending=False)
+            medoids = [int(s) for s in order["medoid_snapshot"].to_numpy() if s >= 0]
+            if medoids:
+                self.model.selected = (medoids[0],)
+
+    def _flags(self) -> Any:
+        from ..compute.structures.outliers import flag_trajectories
+
+        return flag_trajectories(self.model.ens)
+
+    def _apply_flags(self, table: Any) -> None:
+        self.model.flags = table
+
+    def _set_clusters(self, clusters: Any) -> None:
+        if clusters is None or clusters is False:
             return
         codes, names = np.unique(np.asarray(clusters), return_inverse=True)
         if np.issubdtype(codes.dtype, np.integer):
@@ -187,9 +242,9 @@ class Explorer:
 
     def header_text(self) -> str:
         """The header: trajectories and snapshots used by every view, and the exclusions."""
-        ens, cur = self.model.ens, self.model.current
+        ens, m = self.model.ens, self.model
         excluded = self.model.excluded
-        text = (f"{cur.n_trajectories} trajectories, {cur.n_snapshots} snapshots, "
+        text = (f"{m.n_trajectories} trajectories, {m.n_snapshots} snapshots, "
                 f"{ens.n_atoms} atoms")
         if excluded:
             listed = ", ".join(str(t) for t in excluded[:12]) + (" ..." if len(excluded) > 12
@@ -212,7 +267,8 @@ class Explorer:
         self._on_excluded_change()
         self.model.observe(self.messages.guard(self._on_excluded_change), names="excluded")
         title = widgets.VBox([widgets.HTML("<h3 style='margin:4px 0'>ensemblelab explorer</h3>"),
-                              self.header])
+                              widgets.HBox([self.header, self.jobs.status],
+                                           layout=widgets.Layout(grid_gap="16px"))])
         top = widgets.HBox([self._panel(self.map_view, "map view"),
                             self._panel(self.structure_view, "structure view")])
         middle = widgets.HBox([
@@ -230,6 +286,13 @@ class Explorer:
         if self.quality_view is not None:
             self.quality_view.on_show(self._show_trajectory)
         head = widgets.HTML("<b>messages</b>")
+
+        def show_head(change: Any = None) -> None:  # no empty message area
+            head.layout.display = "block" if self.messages.messages else "none"
+
+        show_head()
+        self.messages.widget.observe(show_head, names="value")
+        self.messages_head = head
         return widgets.VBox([title, top, middle, tabs, head, self.messages.widget])
 
     def _repr_mimebundle_(self, **kwargs: Any) -> Any:

@@ -13,7 +13,21 @@ from ..data.ensemble import Ensemble
 from ._base import View
 from ._messages import MessageArea
 from ._selection import SelectionModel
-from ._util import Debouncer, busy
+from ._small_maps import (
+    DELAY,
+    ENERGY,
+    INTENSITY,
+    INTENSITY_ARB,
+    RESIDUAL,
+    ColorBar,
+    SmallMaps,
+    comparison_text,
+    cut_text,
+    outside,
+    range_mask,
+    set_round_ticks,
+)
+from ._util import Debouncer, busy, legend_html
 
 __all__ = ["MapView", "DECOMPOSITIONS"]
 
@@ -27,6 +41,8 @@ DECOMPOSITIONS = {
 }
 
 _MAX_SMALL_MAPS = 12
+#: energy-axis menu: what the map's kinetic-energy axis spans
+ENERGY_WINDOWS = ("with signal", "full grid")
 
 
 def _heatmap(x_scale: Any, y_scale: Any, c_scale: Any, energies: np.ndarray,
@@ -74,6 +90,10 @@ class MapView(View):
         Kinetic-energy grid (eV) and delay grid (fs) of the map.
     decomposition : str
         One of :data:`DECOMPOSITIONS`.
+    energy_window : {"with signal", "full grid"} or (float, float), optional
+        Kinetic-energy range shown: where the map has signal (default for the
+        default grid, from :func:`ensemblelab.compute.spectroscopy.extent.signal_extent`),
+        the whole grid (default when `kinetic_energies` is given), or a range in eV.
     measured : TRPESMap, optional
         A measured map; shown on request with the residual.
     trpes_kwargs : dict, optional
@@ -92,10 +112,21 @@ class MapView(View):
         The main map; ``figure.interaction`` is the :class:`bqplot.interacts.BrushSelector`.
     heatmap : bqplot.HeatMap
     brush : bqplot.interacts.BrushSelector
+    small_maps : SmallMaps
+        Small maps of the decomposition on a shared, labelled colour scale.
     grid : ipywidgets.GridBox
-        Small maps of the decomposition on a shared colour scale.
+        Their grid (``small_maps.grid``).
+    color_axis : bqplot.ColorAxis
+        The map's colour bar (labelled with the quantity and its unit, round ticks).
+    energy_axis : ipywidgets.Dropdown
+        What the kinetic-energy axis spans (:data:`ENERGY_WINDOWS`).
     delay_cut, energy_cut : bqplot.Figure
-        Spectrum averaged over the selected delays; trace averaged over the selected energies.
+        Spectrum averaged over the selected delays; trace averaged over the selected
+        energies; simulated and measured lines with a legend.
+    cut_caption : ipywidgets.HTML
+        The ranges the cuts average over.
+    comparison_label : ipywidgets.HTML
+        With a measured map: the residual's sign and the comparison's numbers.
     status : ipywidgets.HTML
         Progress of a recomputation.
     n_computed : int
@@ -117,6 +148,7 @@ class MapView(View):
         kinetic_energies: Any = None,
         delays: Any = None,
         decomposition: str = "total",
+        energy_window: Any = None,
         measured: Any = None,
         trpes_kwargs: dict[str, Any] | None = None,
         debounce: float = 0.3,
@@ -167,7 +199,33 @@ class MapView(View):
                                                   width="220px"))
         self.layer = widgets.ToggleButtons(
             options=["simulated", "measured", "residual"], value="simulated",
-            style={"button_width": "80px"}, disabled=measured is None)
+            style={"button_width": "88px"}, disabled=measured is None,
+            tooltips=["the simulated map", "the measured map (resampled)",
+                      "measured − model (scaled)"])
+        self._window: tuple[float, float] | None = None
+        options = list(ENERGY_WINDOWS)
+        if isinstance(energy_window, str):
+            if energy_window not in ENERGY_WINDOWS:
+                raise ValueError(f"energy_window must be one of {list(ENERGY_WINDOWS)} or "
+                                 f"(low, high) in eV; got {energy_window!r}.")
+            window_value = energy_window
+        elif energy_window is not None:
+            lo_w, hi_w = (float(v) for v in energy_window)
+            if not hi_w > lo_w:
+                raise ValueError(f"energy_window must be (low, high) with low < high; got "
+                                 f"{energy_window!r}.")
+            self._window = (lo_w, hi_w)
+            options.append("as set")
+            window_value = "as set"
+        else:
+            window_value = "full grid" if kinetic_energies is not None else "with signal"
+        self.energy_axis = widgets.Dropdown(options=options, value=window_value,
+                                            description="energies",
+                                            layout=widgets.Layout(width="200px"))
+        self.comparison_label = widgets.HTML(layout=widgets.Layout(max_width="900px"))
+        self.comparison_label.add_class("ensemblelab-comparison")
+        self.cut_caption = widgets.HTML(layout=widgets.Layout(max_width="300px"))
+        self.cut_caption.add_class("ensemblelab-cut-caption")
         self.status = widgets.HTML()
         self.status.add_class("ensemblelab-map-status")
         self.band_label = widgets.HTML()
@@ -183,48 +241,59 @@ class MapView(View):
                                 colors=["white"], stroke_width=2.0, line_style="dashed")
         self.brush = bqplot.interacts.BrushSelector(x_scale=self.x, y_scale=self.y,
                                                     color="white")
-        ax = bqplot.Axis(scale=self.x, label="kinetic energy / eV")
-        ay = bqplot.Axis(scale=self.y, side="left", label="delay / fs")
-        ac = bqplot.ColorAxis(scale=self.c, side="right", num_ticks=6, tick_format=".2g")
+        self.x_axis = ax = bqplot.Axis(scale=self.x, label=ENERGY)
+        self.y_axis = ay = bqplot.Axis(scale=self.y, side="left", label=DELAY)
+        # the colour bar: its own figure beside the map (label along it, round ticks)
+        self.colorbar = ColorBar(self.c, height=420, margin_top=20, margin_bottom=45)
+        self.colorbar.figure.add_class("ensemblelab-map-colorbar")
+        self.color_axis = self.colorbar.axis
         self.figure = bqplot.Figure(
-            marks=[self.heatmap, self.box], axes=[ax, ay, ac], interaction=self.brush,
-            layout=widgets.Layout(width="520px", height="420px"),
-            fig_margin={"top": 20, "bottom": 45, "left": 60, "right": 70},
+            marks=[self.heatmap, self.box], axes=[ax, ay], interaction=self.brush,
+            layout=widgets.Layout(width="500px", height="420px"),
+            fig_margin={"top": 20, "bottom": 45, "left": 60, "right": 15},
             padding_x=0, padding_y=0, display_toolbar=False,  # no toolbar over the map
         )
         self.figure.add_class("ensemblelab-map")
 
-        # decomposition grid (filled on demand)
-        self.grid = widgets.GridBox(layout=widgets.Layout(
-            grid_template_columns="repeat(3, 240px)", grid_gap="2px"))
-        self._small_scale = bqplot.ColorScale(scheme="viridis")
-        self._small_maps: list[tuple[bqplot.Figure, bqplot.HeatMap]] = []  # reused
+        # decomposition grid (filled on demand, panels reused)
+        self.small_maps = SmallMaps()
+        self.grid = self.small_maps.grid
 
         # cuts
         self.cx = bqplot.LinearScale()
         self.cy = bqplot.LinearScale(min=0.0)
         self.tx = bqplot.LinearScale()
         self.ty = bqplot.LinearScale(min=0.0)
-        self.delay_cut_line = bqplot.Lines(x=e0, y=np.zeros((1, 3)),
-                                           scales={"x": self.cx, "y": self.cy},
-                                           colors=["#1f77b4", "black"], labels=["simulated",
-                                                                                 "measured"])
-        self.energy_cut_line = bqplot.Lines(x=e0, y=np.zeros((1, 3)),
-                                            scales={"x": self.tx, "y": self.ty},
-                                            colors=["#1f77b4", "black"], labels=["simulated",
-                                                                                  "measured"])
-        small = widgets.Layout(width="260px", height="200px")
-        margin = {"top": 25, "bottom": 40, "left": 50, "right": 10}
+        def line(x_scale: Any, y_scale: Any, color: str, label: str) -> bqplot.Lines:
+            return bqplot.Lines(x=e0, y=np.zeros(3), scales={"x": x_scale, "y": y_scale},
+                                colors=[color], labels=[label])
+
+        self.delay_cut_line = line(self.cx, self.cy, "#1f77b4", "simulated")
+        self.delay_cut_measured = line(self.cx, self.cy, "black", "measured")
+        self.energy_cut_line = line(self.tx, self.ty, "#1f77b4", "simulated")
+        self.energy_cut_measured = line(self.tx, self.ty, "black", "measured")
+        for mark in (self.delay_cut_measured, self.energy_cut_measured):
+            mark.visible = measured is not None
+        self.cut_legend = widgets.HTML(legend_html(
+            [("simulated", "#1f77b4", "solid")]
+            + ([("measured (scaled to the model)", "black", "solid")] if measured is not None
+               else [])))
+        self.cut_legend.add_class("ensemblelab-cut-legend")
+        small = widgets.Layout(width="300px", height="210px")
+        margin = {"top": 10, "bottom": 40, "left": 60, "right": 10}
+        self._cut_axes = {
+            "cx": bqplot.Axis(scale=self.cx, label=ENERGY),
+            "cy": bqplot.Axis(scale=self.cy, side="left", label=INTENSITY),
+            "tx": bqplot.Axis(scale=self.tx, label=DELAY),
+            "ty": bqplot.Axis(scale=self.ty, side="left", label=INTENSITY)}
         self.delay_cut = bqplot.Figure(
-            marks=[self.delay_cut_line], layout=small, fig_margin=margin,
-            title="delay cut",
-            axes=[bqplot.Axis(scale=self.cx, label="kinetic energy / eV", num_ticks=6),
-                  bqplot.Axis(scale=self.cy, side="left", tick_format=".2g", num_ticks=5)])
+            marks=[self.delay_cut_line, self.delay_cut_measured], layout=small,
+            fig_margin=margin, axes=[self._cut_axes["cx"], self._cut_axes["cy"]],
+            display_toolbar=False)
         self.energy_cut = bqplot.Figure(
-            marks=[self.energy_cut_line], layout=small, fig_margin=margin,
-            title="energy cut",
-            axes=[bqplot.Axis(scale=self.tx, label="delay / fs", num_ticks=6),
-                  bqplot.Axis(scale=self.ty, side="left", tick_format=".2g", num_ticks=5)])
+            marks=[self.energy_cut_line, self.energy_cut_measured], layout=small,
+            fig_margin=margin, axes=[self._cut_axes["tx"], self._cut_axes["ty"]],
+            display_toolbar=False)
 
         self.delay_cut.add_class("ensemblelab-delay-cut")
         self.energy_cut.add_class("ensemblelab-energy-cut")
@@ -233,6 +302,7 @@ class MapView(View):
                   self.resolution, self.convolve, self.decomposition):
             w.observe(lambda change: self._recompute_later(), names="value")
         self.layer.observe(self._guard(self._on_layer_change), names="value")
+        self.energy_axis.observe(self._guard(self._on_layer_change), names="value")
         self.brush.observe(self._guard(self._on_brushing_change), names="brushing")
         self._observe(self._on_excluded_change, "excluded")
         self._observe(self._on_map_change, "trpes_map")
@@ -241,10 +311,13 @@ class MapView(View):
         controls = widgets.VBox([
             widgets.HBox([self.photon_energy, self.n_photons, self.probe_fwhm]),
             widgets.HBox([self.pump_fwhm, self.resolution, self.convolve]),
-            widgets.HBox([self.decomposition, self.layer, self.status]),
+            widgets.HBox([self.decomposition, self.energy_axis, self.status]),
+            self.layer,
         ])
-        cuts = widgets.VBox([self.delay_cut, self.energy_cut])
-        self._finish(controls, widgets.HBox([self.figure, cuts]), self.band_label, self.grid)
+        cuts = widgets.VBox([self.cut_legend, self.delay_cut, self.energy_cut, self.cut_caption])
+        self._finish(controls, widgets.HBox([self.figure, self.colorbar.figure, cuts]),
+                     self.band_label,
+                     self.comparison_label, self.small_maps.widget)
         if compute:
             if self.model.trpes_map is None:
                 self.recompute()
@@ -283,7 +356,8 @@ class MapView(View):
         return energies, delays
 
     def recompute(self) -> Any:
-        """Compute the map of ``model.current`` with the current controls; returns it."""
+        """Compute the map of ``model.ens`` without ``model.excluded`` (``exclude=``, a mask,
+        no copy) with the current controls; returns it."""
         from ..compute.spectroscopy import compute_trpes
 
         probe, pump = self.pulses()
@@ -296,10 +370,10 @@ class MapView(View):
                 warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
             trpes, sticks = compute_trpes(
-                self.model.current, probe=probe, pump=pump, kinetic_energies=energies,
+                self.model.ens, probe=probe, pump=pump, kinetic_energies=energies,
                 delays=delays, resolution=float(self.resolution.value),
                 convolve=bool(self.convolve.value), decompose=by, progress=False,
-                return_model=True, **kwargs,
+                exclude=list(self.model.excluded), return_model=True, **kwargs,
             )
         for w in caught:
             self.messages.warning(f"map: {w.message}")
@@ -371,55 +445,60 @@ class MapView(View):
             lo, hi = -m, m
         elif lo < 0 and abs(lo) < 1e-4 * abs(hi):
             lo = 0.0  # numerical tails of the broadening kernel: not worth a colour
+        hi = hi if hi > lo else lo + 1.0
+        window = self.energy_window(trpes)
+        # one set of axes for every layer: the simulated map's grid
+        d_sim = np.asarray(trpes.delays, float)
         with self.figure.hold_sync():
             self.c.scheme = "RdBu" if self.layer.value == "residual" else "viridis"
-            self.c.min, self.c.max = lo, (hi if hi > lo else lo + 1.0)
+            self.c.min, self.c.max = lo, hi
             self.heatmap.x = energies
             self.heatmap.y = delays
             self.heatmap.color = np.nan_to_num(values)
-            # one set of axes for every layer: the simulated map's grid
-            e_sim = np.asarray(trpes.kinetic_energies, float)
-            d_sim = np.asarray(trpes.delays, float)
-            self.x.min, self.x.max = float(e_sim[0]), float(e_sim[-1])
+            self.x.min, self.x.max = window
             self.y.min, self.y.max = float(d_sim[0]), float(d_sim[-1])
+            set_round_ticks(self.x_axis, *window, 6)
+            set_round_ticks(self.y_axis, float(d_sim[0]), float(d_sim[-1]), 6)
+        self.colorbar.draw(lo, hi, {"residual": RESIDUAL, "measured": INTENSITY_ARB}.get(
+            self.layer.value if self.measured is not None else "", INTENSITY))
         self._draw_grid(trpes)
+        self._draw_comparison()
         self._draw_box()
         self._draw_cuts()
+
+    def energy_window(self, trpes: Any = None) -> tuple[float, float]:
+        """The kinetic-energy range shown (eV): see the `energy_window` parameter."""
+        trpes = self.model.trpes_map if trpes is None else trpes
+        e = np.asarray(trpes.kinetic_energies, float)
+        full = (float(e[0]), float(e[-1]))
+        choice = self.energy_axis.value
+        if choice == "as set" and self._window is not None:
+            return self._window
+        if choice == "with signal":
+            from ..compute.spectroscopy.extent import signal_extent
+
+            lo, hi = signal_extent(trpes, axis="energy")
+            if hi > lo:
+                return (max(full[0], float(lo)), min(full[1], float(hi)))
+        return full
+
+    def _draw_comparison(self) -> None:
+        """The residual's sign and the comparison's numbers (with a measured map)."""
+        if self.measured is None or self.layer.value == "simulated":
+            self.comparison_label.value = ""
+            return
+        self.comparison_label.value = comparison_text(self.comparison(),
+                                                      residual=self.layer.value == "residual")
 
     def _draw_grid(self, trpes: Any) -> None:
         comps = dict(getattr(trpes, "components", {}) or {})
         if DECOMPOSITIONS[self.decomposition.value] is None or not comps:
-            self.grid.children = ()
+            self.small_maps.clear()
             return
         names = list(comps)[:_MAX_SMALL_MAPS]
         stack = np.stack([np.asarray(comps[k], float) for k in names])
-        finite = stack[np.isfinite(stack)]
-        lo = float(finite.min()) if finite.size else 0.0
-        hi = float(finite.max()) if finite.size else 1.0
-        self._small_scale.min, self._small_scale.max = lo, (hi if hi > lo else lo + 1.0)
-        e = np.asarray(trpes.kinetic_energies, float)
-        d = np.asarray(trpes.delays, float)
-        for i, (name, values) in enumerate(zip(names, stack, strict=True)):
-            fig, hm = self._small_map(i)
-            with fig.hold_sync():
-                hm.x, hm.y, hm.color = e, d, np.nan_to_num(values)
-                fig.title = str(name)
-        self.grid.children = tuple(fig for fig, _ in self._small_maps[: len(names)])
-
-    def _small_map(self, i: int) -> tuple[bqplot.Figure, bqplot.HeatMap]:
-        """The `i`-th small map of the decomposition grid (made once, then reused)."""
-        while len(self._small_maps) <= i:
-            xs, ys = bqplot.LinearScale(), bqplot.LinearScale()
-            e0 = np.linspace(0, 1, 3)
-            hm = _heatmap(xs, ys, self._small_scale, e0, e0, np.zeros((3, 3)))
-            fig = bqplot.Figure(
-                marks=[hm], padding_x=0, padding_y=0, display_toolbar=False,
-                axes=[bqplot.Axis(scale=xs, num_ticks=3),
-                      bqplot.Axis(scale=ys, side="left", num_ticks=3)],
-                layout=widgets.Layout(width="238px", height="200px"),
-                fig_margin={"top": 25, "bottom": 25, "left": 40, "right": 8})
-            self._small_maps.append((fig, hm))
-        return self._small_maps[i]
+        self.small_maps.draw(names, stack, np.asarray(trpes.kinetic_energies, float),
+                             np.asarray(trpes.delays, float), self.energy_window(trpes))
 
     def _draw_box(self) -> None:
         e, d = self.model.energy_range, self.model.delay_range
@@ -429,17 +508,23 @@ class MapView(View):
                 self.brush.selected_x, self.brush.selected_y = None, None
             self.band_label.value = "<i>Drag a box over a band to see what makes it.</i>"
             return
-        self.box.x = np.array([e[0], e[1], e[1], e[0], e[0]])
-        self.box.y = np.array([d[0], d[0], d[1], d[1], d[0]])
+        lo, hi = (self.x.min, self.x.max)
+        hidden = lo is not None and hi is not None and (e[1] < lo or e[0] > hi)
+        if hidden:  # the band lies outside the energies shown: no box clipped at the edge
+            self.box.x, self.box.y = np.zeros(0), np.zeros(0)
+        else:
+            self.box.x = np.array([e[0], e[1], e[1], e[0], e[0]])
+            self.box.y = np.array([d[0], d[0], d[1], d[1], d[0]])
         if not self.brush.brushing:  # the brush moves with the data (no ghost box)
             with self.figure.hold_sync():
-                self.brush.selected_x = np.array(e, dtype=float)
-                self.brush.selected_y = np.array(d, dtype=float)
+                self.brush.selected_x = None if hidden else np.array(e, dtype=float)
+                self.brush.selected_y = None if hidden else np.array(d, dtype=float)
         band = self.model.band
         empty = band is not None and bool(band.attrs.get("no_signal", False))
         self.band_label.value = (
             f"band: {e[0]:.2f}–{e[1]:.2f} eV, {d[0]:.0f}–{d[1]:.0f} fs"
-            + (" · <i>no signal here</i>" if empty else ""))
+            + (" · <i>no signal here</i>" if empty else "")
+            + (" · <i>outside the energies shown</i>" if hidden else ""))
 
     def cuts(self) -> tuple[np.ndarray, np.ndarray]:
         """Spectrum averaged over the selected delays and trace averaged over the energies.
@@ -452,8 +537,8 @@ class MapView(View):
         """
         trpes = self.model.trpes_map
         values = np.asarray(trpes.intensity, float)
-        d_mask = _mask(np.asarray(trpes.delays, float), self.model.delay_range)
-        e_mask = _mask(np.asarray(trpes.kinetic_energies, float), self.model.energy_range)
+        d_mask = range_mask(np.asarray(trpes.delays, float), self.model.delay_range)
+        e_mask = range_mask(np.asarray(trpes.kinetic_energies, float), self.model.energy_range)
         return values[d_mask].mean(axis=0), values[:, e_mask].mean(axis=1)
 
     def _draw_cuts(self) -> None:
@@ -463,46 +548,47 @@ class MapView(View):
         spectrum, trace = self.cuts()
         e = np.asarray(trpes.kinetic_energies, float)
         d = np.asarray(trpes.delays, float)
-        ys, yt = [spectrum], [trace]
+        window = self.energy_window(trpes)
+        measured_e: tuple[np.ndarray, np.ndarray] | None = None
+        measured_d: tuple[np.ndarray, np.ndarray] | None = None
         if self.measured is not None:
             try:
                 result = self.comparison()
             except Exception as exc:  # noqa: BLE001 - shown, the cuts still draw
                 self.messages.exception(exc, where="measured map")
             else:
-                # the measured cuts, on the simulated scale, drawn where both grids overlap
+                # the measured cuts on the simulated scale, over the measured grid only; a
+                # selection outside the measured grid shows no measured cut (not its edge)
                 m = result.measured
                 me, md = np.asarray(m.kinetic_energies, float), np.asarray(m.delays, float)
                 values = np.nan_to_num(np.asarray(m.intensity, float)) / max(result.scale,
                                                                                1e-300)
-                ie = (e >= me.min()) & (e <= me.max())
-                idl = (d >= md.min()) & (d <= md.max())
-                if ie.sum() >= 2 and idl.sum() >= 2:
-                    e, d = e[ie], d[idl]
-                    ys, yt = [spectrum[ie]], [trace[idl]]
-                    # a selection outside the measured grid: no measured cut (not its edge)
-                    if not _outside(md, self.model.delay_range):
-                        cut_e = values[_mask(md, self.model.delay_range)].mean(axis=0)
-                        ys.append(np.interp(e, me, cut_e))
-                    if not _outside(me, self.model.energy_range):
-                        cut_d = values[:, _mask(me, self.model.energy_range)].mean(axis=1)
-                        yt.append(np.interp(d, md, cut_d))
+                e_rng, d_rng = self.model.energy_range, self.model.delay_range
+                if not outside(md, d_rng):
+                    measured_e = (me, values[range_mask(md, d_rng)].mean(axis=0))
+                if not outside(me, e_rng):
+                    measured_d = (md, values[:, range_mask(me, e_rng)].mean(axis=1))
         with self.delay_cut.hold_sync(), self.energy_cut.hold_sync():
-            self.delay_cut_line.x = e
-            self.delay_cut_line.y = np.vstack(ys)
-            self.energy_cut_line.x = d
-            self.energy_cut_line.y = np.vstack(yt)
+            self.delay_cut_line.x, self.delay_cut_line.y = e, spectrum
+            self.energy_cut_line.x, self.energy_cut_line.y = d, trace
+            for mark, data in ((self.delay_cut_measured, measured_e),
+                               (self.energy_cut_measured, measured_d)):
+                mark.visible = data is not None
+                if data is not None:
+                    mark.x, mark.y = data
+            # the cuts span the map's axes (the energy window, every delay)
+            self.cx.min, self.cx.max = window
+            self.tx.min, self.tx.max = float(d[0]), float(d[-1])
+            set_round_ticks(self._cut_axes["cx"], *window, 4)
+            set_round_ticks(self._cut_axes["tx"], float(d[0]), float(d[-1]), 4)
+            for axis, ys in ((self._cut_axes["cy"], [spectrum, measured_e]),
+                             (self._cut_axes["ty"], [trace, measured_d])):
+                top = max(float(np.nanmax(y if isinstance(y, np.ndarray) else y[1]))
+                          for y in ys if y is not None and np.size(y))
+                axis.scale.min, axis.scale.max = 0.0, (top if top > 0 else 1.0)
+                set_round_ticks(axis, 0.0, top if top > 0 else 1.0, 4)
+        self.cut_caption.value = self.cut_text()
 
-
-def _mask(grid: np.ndarray, rng: tuple[float, float] | None) -> np.ndarray:
-    if rng is None:
-        return np.ones(grid.size, bool)
-    m = (grid >= rng[0]) & (grid <= rng[1])
-    if not m.any():
-        m[np.argmin(np.abs(grid - 0.5 * (rng[0] + rng[1])))] = True
-    return m
-
-
-def _outside(grid: np.ndarray, rng: tuple[float, float] | None) -> bool:
-    """True when the range `rng` does not overlap the span of `grid`."""
-    return rng is not None and (rng[1] < grid.min() or rng[0] > grid.max())
+    def cut_text(self) -> str:
+        """What the cuts average over, as stated under them."""
+        return cut_text(self.model.energy_range, self.model.delay_range)

@@ -14,7 +14,7 @@ from ..data.ensemble import Ensemble
 from ._base import View
 from ._messages import MessageArea
 from ._selection import SelectionModel
-from ._util import Debouncer, busy
+from ._util import Debouncer, busy, legend_html
 from .trajectory_view import STATE_COLORS
 
 __all__ = ["PopulationView"]
@@ -140,7 +140,7 @@ class PopulationView(View):
             for c in colors
         ]
         self.lines = bqplot.Lines(x=zero, y=np.zeros((n_states, 2)), scales=sc, colors=colors,
-                                  labels=list(ens.state_labels), display_legend=True,
+                                  labels=list(ens.state_labels),
                                   stroke_width=2.0)
         self.fit_lines = bqplot.Lines(x=zero, y=np.zeros((1, 2)), scales=sc, colors=["black"],
                                       line_style="dashed", stroke_width=1.5)
@@ -153,9 +153,9 @@ class PopulationView(View):
             axes=[bqplot.Axis(scale=self.x, label="time / fs"),
                   bqplot.Axis(scale=self.y, side="left", label="population",
                               tick_format=".1f")],
-            interaction=self.selector, legend_location="top-right",
+            interaction=self.selector,
             layout=widgets.Layout(width="100%", height="320px"),
-            fig_margin={"top": 20, "bottom": 45, "left": 60, "right": 20},
+            fig_margin={"top": 20, "bottom": 45, "left": 60, "right": 36},
         )
         self.figure.add_class("ensemblelab-populations")
 
@@ -168,8 +168,12 @@ class PopulationView(View):
         self._observe(lambda change: self._recompute_later(), "excluded")
         self._observe(self._on_delay_range_change, "delay_range")
         self._observe(self._on_time_change, "time")
+        # the legend beside the plot, never over the curves
+        self.legend = widgets.HTML(legend_html(
+            [(str(lab), c, "solid") for lab, c in zip(ens.state_labels, colors, strict=True)]
+            + [("fit", "black", "dashed")]))
         self._finish(widgets.HBox([self.kind, self.fit, self.roles_box, self.status]),
-                     self.figure, self.fit_label)
+                     self.figure, self.legend, self.fit_label)
         self.recompute()
         self._on_delay_range_change()
 
@@ -177,7 +181,7 @@ class PopulationView(View):
     def _grid(self) -> np.ndarray:
         if self.time_grid is not None:
             return self.time_grid
-        t = self.model.current.times
+        t = self.model.ens.times
         t = t[np.isfinite(t)]
         if t.size > _MAX_TIMES:
             t = t[np.linspace(0, t.size - 1, _MAX_TIMES).round().astype(int)]
@@ -185,12 +189,13 @@ class PopulationView(View):
         return t
 
     def recompute(self) -> pd.DataFrame:
-        """Recompute populations (and the fit) of ``model.current``; returns the table."""
+        """Recompute populations (and the fit) of ``model.ens`` without ``model.excluded``
+        (passed as ``exclude=``: weight 0, no copy); returns the table."""
         from ..compute.kinetics.populations import populations
 
-        ens = self.model.current
         with busy(self.status, "computing populations ..."):
-            table = populations(ens, kind=self.kind.value, time_grid=self._grid())
+            table = populations(self.model.ens, kind=self.kind.value, time_grid=self._grid(),
+                                exclude=list(self.model.excluded))
             self.table = table
             self.fit_result = None
             self._fit_problem = ""
@@ -205,11 +210,15 @@ class PopulationView(View):
     def default_fit_states(self) -> list[int]:
         """States in the roles A, B, C by default: the most populated state at the start,
         then the others from the highest to the lowest (a cascade down the ladder)."""
-        ens = self.model.current
+        ens = self.model.ens
         n_states = ens.n_states
         snap = ens.snapshots
         t = snap["time"].to_numpy()
-        first = snap["active"].to_numpy()[t == np.nanmin(t)] if t.size else np.zeros(0, int)
+        used = np.isin(snap["traj"].to_numpy(), np.asarray(self.model.excluded, int),
+                       invert=True)
+        t_used = t[used]
+        first = snap["active"].to_numpy()[used & (t == np.nanmin(t_used))] if t_used.size \
+            else np.zeros(0, int)
         start = int(np.bincount(first, minlength=n_states).argmax()) if first.size else \
             n_states - 1
         return [start] + [k for k in range(n_states - 1, -1, -1) if k != start][:2]
@@ -263,10 +272,28 @@ class PopulationView(View):
                  "tau1": f"{a} → {rest[0]}" if rest else a,
                  "tau2": f"{rest[0]} → {rest[1]}" if len(rest) > 1 else
                  (f"{rest[0]} decay" if rest else "")}
-        parts = [f"{k} ({where.get(k, k)}) = {v:.1f} fs" for k, v in res.time_constants.items()]
+        def interval(name: str, scale: float = 1.0) -> str:
+            try:
+                lo, hi = res.interval(name)
+            except (KeyError, ValueError):
+                return ""
+            if not (np.isfinite(lo) and np.isfinite(hi)):
+                return " (no interval)"
+            return f" [{scale * lo:.1f}, {scale * hi:.1f}]"
+
+        parts = [f"{k} ({where.get(k, k)}) = {v:.1f} fs{interval(k)}"
+                 for k, v in res.time_constants.items()]
         if res.scheme == "parallel" and "branching" in res.params and rest:
-            parts.append(f"branching to {rest[0]} = {100 * res.params['branching']:.1f} %")
-        return f"{res.scheme} fit: " + ", ".join(parts)
+            parts.append(f"branching to {rest[0]} = {100 * res.params['branching']:.1f} %"
+                         f"{interval('branching', 100.0)}")
+        level = f"{100 * res.ci:.0f} %" if np.isfinite(res.ci) else ""
+        how = str(res.interval_method).split(" (", 1)[0]
+        note = (f"; [{level} interval, {how}: covers the fit only, not the sampling of "
+                "trajectories]" if how == "covariance" else
+                f"; [{level} interval, {how}]" if how != "none" else "")
+        if all(interval(k) in ("", " (no interval)") for k in res.time_constants):
+            note = ""
+        return f"{res.scheme} fit: " + ", ".join(parts) + note
 
     # ------------------------------------------------------------------ drawing
     def _draw(self) -> None:

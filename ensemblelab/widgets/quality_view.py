@@ -32,6 +32,9 @@ class QualityView(View):
         ``model.ens`` when neither this nor ``model.flags`` is given.
     flag_kwargs : dict, optional
         Keyword arguments of ``flag_trajectories``.
+    compute_flags : bool
+        Compute the flags when none are given (False: wait for ``model.flags``, as the
+        explorer does while it checks the trajectories in the background).
     messages : MessageArea, optional
         Where callback errors go.
 
@@ -47,11 +50,12 @@ class QualityView(View):
 
     def __init__(self, model: SelectionModel | Ensemble, *, flags: pd.DataFrame | None = None,
                  flag_kwargs: dict[str, Any] | None = None,
+                 compute_flags: bool = True,
                  messages: MessageArea | None = None) -> None:
         super().__init__(model, messages=messages)
         if flags is not None:
             self.model.flags = flags
-        elif self.model.flags is None:
+        elif self.model.flags is None and compute_flags:
             from ..compute.structures.outliers import flag_trajectories
 
             self.model.flags = flag_trajectories(self.model.ens, **dict(flag_kwargs or {}))
@@ -131,8 +135,10 @@ class QualityView(View):
         self.rows.options = options
         self.rows.value = keep
         n_total = self.model.ens.n_trajectories
+        checked = ("<i>checking the trajectories ...</i> " if self.model.flags is None else
+                   f"<b>{len(flagged)}</b> of {n_total} trajectories flagged; ")
         self.summary.value = (
-            f"<b>{len(flagged)}</b> of {n_total} trajectories flagged; "
-            f"<b class='ensemblelab-n-excluded'>{len(excluded)}</b> excluded"
+            checked
+            + f"<b class='ensemblelab-n-excluded'>{len(excluded)}</b> excluded"
             + (": " + html.escape(", ".join(str(t) for t in sorted(excluded)[:30]))
                if excluded else ""))

@@ -43,9 +43,12 @@ class SelectionTable(View):
     table : DataFrame or None
         The grouped contributions shown (see :func:`ensemblelab.compute.bands.group_band`).
     rows : ipywidgets.Select
-        One option per group; choosing one selects its snapshots.
+        The one table: one row per group (label, share, snapshots, trajectories);
+        choosing one selects its snapshots. Hidden while there is no band.
     summary : ipywidgets.HTML
-        The band and its total; ``html`` holds the table.
+        The band and its total.
+    html : ipywidgets.HTML
+        The table's column heads (above :attr:`rows`).
     """
 
     title = "selection table"
@@ -56,11 +59,11 @@ class SelectionTable(View):
         self.table: pd.DataFrame | None = None
         self.group = widgets.ToggleButtons(
             options=[("cluster", "cluster"), ("state", "state"), ("trajectory", "traj")],
-            value=self.model.group_by, description="group by", style={"button_width": "80px"})
+            value=self.model.group_by, description="group by", style={"button_width": "92px"})
         self.summary = widgets.HTML(value="<i>No band selected.</i>")
         self.summary.add_class("ensemblelab-selection-summary")
         self.rows = widgets.Select(options=[], rows=8,
-                                   layout=widgets.Layout(width="100%"))
+                                   layout=widgets.Layout(width="100%", display="none"))
         self.rows.add_class("ensemblelab-selection-rows")
         self.html = widgets.HTML()
         self.html.add_class("ensemblelab-selection-table")
@@ -68,7 +71,7 @@ class SelectionTable(View):
         self.group.observe(self._guard(self._on_group_click), names="value")
         self.rows.observe(self._guard(self._on_row_change), names="value")
         self._observe(self._on_band_change, ["band", "group_by"])
-        self._finish(self.group, self.summary, self.rows, self.html)
+        self._finish(self.group, self.summary, self.html, self.rows)
         self._render()
 
     def _on_group_click(self, change: dict) -> None:
@@ -99,6 +102,7 @@ class SelectionTable(View):
             if band is None or band.empty:
                 self.table = None
                 self.rows.options = []
+                self.rows.layout.display = "none"  # no empty box before the first band
                 self.html.value = ""
                 if band is None:
                     self.summary.value = "<i>No band selected.</i>"
@@ -130,19 +134,23 @@ class SelectionTable(View):
             rows: list[Any] = list(shown.itertuples())  # fields of mixed types
             self.rows.options = [
                 (f"{format_share(r.label, r.share, *_bounds(r))}  ({r.n_snapshots} snapshots, "
-                 f"{r.n_trajectories} traj.)", _plain(r.key))
+                 f"{r.n_trajectories} traj.)"
+                 + ("  · may be 0" if bool(getattr(r, "includes_zero", False)) else ""),
+                 _plain(r.key))
                 for r in rows
             ]
             self.rows.value = None
-            head = "".join(f"<th>{h}</th>" for h in (
-                _GROUP_LABELS[self.model.group_by], "share", "snapshots", "trajectories"))
-            body = "".join(
-                f"<tr{_GREY if getattr(r, 'includes_zero', False) else ''}>"
-                f"<td>{html.escape(r.label)}</td>"
-                f"<td>{format_share('', r.share, *_bounds(r)).strip()}</td>"
-                f"<td>{r.n_snapshots}</td><td>{r.n_trajectories}</td></tr>"
-                for r in rows)
-            self.html.value = f"<table style='font-size:12px'><tr>{head}</tr>{body}</table>"
+            self.rows.layout.display = "flex"
+            # one table: the rows are the clickable list; here only its column heads, and
+            # (greyed) the groups whose interval reaches zero: they may not contribute
+            zero = [r for r in rows if bool(getattr(r, "includes_zero", False))]
+            grey = ", ".join(f"<span{_GREY}>{html.escape(str(r.label))}</span>" for r in zero)
+            self.html.value = (
+                f"<small><b>{html.escape(_GROUP_LABELS[self.model.group_by])}</b> · share "
+                "[95% interval over trajectories] · (snapshots, trajectories); choose a row "
+                "to see its structures"
+                + (f"<br>interval reaches 0 (may not contribute): {grey}" if zero else "")
+                + "</small>")
         finally:
             self._syncing = False
 

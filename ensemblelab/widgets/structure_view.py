@@ -12,11 +12,15 @@ import numpy as np
 from ..data.ensemble import Ensemble
 from ._base import View
 from ._messages import MessageArea
-from ._ngl import EnsembleStructure
+from ._ngl import CHAINS, EnsembleStructure
 from ._selection import SelectionModel
 from ._util import format_percent
 
-__all__ = ["StructureView"]
+__all__ = ["StructureView", "OVERLAY_COLORS"]
+
+#: colour of each overlaid copy (its row in the table carries the same colour)
+OVERLAY_COLORS = ("#1f77b4", "#ff7f0e", "#2ca02c", "#d62728", "#9467bd", "#8c564b",
+                  "#e377c2", "#7f7f7f", "#bcbd22", "#17becf")
 
 
 class StructureView(View):
@@ -36,6 +40,10 @@ class StructureView(View):
         Overlay the top `n_top` geometries, or show one at a time.
     align : bool
         Align every shown geometry onto the first one (Kabsch, mass-weighted).
+    mirror : bool
+        When aligning, also allow a reflection, so that mirror-image geometries (a
+        +25 and a -25 degree twist) are shown with one handedness (display only;
+        the data keep theirs). Off by default: the user allows it.
     width, height : str
         Size of the 3-D viewer (CSS).
     messages : MessageArea, optional
@@ -60,6 +68,7 @@ class StructureView(View):
         n_top: int = 8,
         mode: str = "overlay",
         align: bool = True,
+        mirror: bool = False,
         width: str = "420px",
         height: str = "360px",
         messages: MessageArea | None = None,
@@ -77,6 +86,10 @@ class StructureView(View):
                                             layout=widgets.Layout(width="140px"))
         self.align = widgets.Checkbox(value=align, description="align", indent=False,
                                       layout=widgets.Layout(width="70px"))
+        self.mirror = widgets.Checkbox(
+            value=mirror, description="mirror images as one", indent=False,
+            tooltip="align mirror images onto one handedness (display only)",
+            layout=widgets.Layout(width="170px"))
         self.medoids = widgets.Button(description="cluster medoids",
                                       tooltip="show the medoid geometry of every cluster")
         self.step = widgets.IntSlider(value=0, min=0, max=0, description="frame",
@@ -89,11 +102,13 @@ class StructureView(View):
         self.mode.observe(self._guard(self._redraw), names="value")
         self.n_top.observe(self._guard(self._redraw), names="value")
         self.align.observe(self._guard(self._redraw), names="value")
+        self.mirror.observe(self._guard(self._redraw), names="value")
         self.medoids.on_click(self._guard(self._on_medoids_click))
         self.step.observe(self._guard(self._on_step_change), names="value")
         self._observe(self._on_selected_change, "selected")
         self._observe(self._on_frame_change, "frame")
-        controls = widgets.HBox([self.mode, self.n_top, self.align, self.medoids])
+        controls = widgets.VBox([widgets.HBox([self.mode, self.n_top]),
+                                 widgets.HBox([self.align, self.mirror, self.medoids])])
         self._finish(controls, self.view, self.step, self.caption)
         if self.model.selected:
             self._redraw()
@@ -180,7 +195,8 @@ class StructureView(View):
             from ..compute.structures.geometry import kabsch_align
 
             result = kabsch_align(xyz, reference=xyz[0], weights="mass",
-                                  masses=self.model.ens.masses)
+                                  masses=self.model.ens.masses,
+                                  allow_reflection=bool(self.mirror.value))
             xyz = np.asarray(result.aligned, dtype=np.float64)
         return xyz
 
@@ -217,8 +233,15 @@ class StructureView(View):
             self.view.remove_component(self._component)
         self._component = self.view.add_trajectory(struct, default_representation=False)
         self._struct = struct
-        scheme = "chainid" if struct.copies > 1 else "element"
-        self._component.add_representation("ball+stick", colorScheme=scheme)
+        if struct.copies > 1:  # one colour per copy, the same as its row's key in the table
+            self.overlay_colors = [OVERLAY_COLORS[c % len(OVERLAY_COLORS)]
+                                   for c in range(struct.copies)]
+            for c, color in enumerate(self.overlay_colors):
+                self._component.add_representation(
+                    "ball+stick", selection=f":{CHAINS[c % len(CHAINS)]}", color=color)
+        else:
+            self.overlay_colors = []
+            self._component.add_representation("ball+stick", colorScheme="element")
         self.view.center()
 
     def _set_index(self, index: int) -> None:
@@ -247,11 +270,17 @@ class StructureView(View):
             frame = model.frame if model.frame in self.shown_ids else self.shown_ids[0]
             self.caption.value = _caption_line(model.snapshot_info(frame))
             return
-        rows = "".join(
-            "<tr>" + "".join(f"<td>{html.escape(str(v))}</td>" for v in _cells(
-                i + 1, model.snapshot_info(s))) + "</tr>"
-            for i, s in enumerate(self.shown_ids)
-        )
+        colors = list(getattr(self, "overlay_colors", [])) or ["#888"] * len(self.shown_ids)
+
+        def key(i: int) -> str:  # the colour of copy i in the viewer
+            return (f"<span class='ensemblelab-overlay-key' style='color:{colors[i]}'>"
+                    f"&#9632;</span> ")
+
+        rows = ""
+        for i, s in enumerate(self.shown_ids):
+            cells = [html.escape(str(v)) for v in _cells(i + 1, model.snapshot_info(s))]
+            cells[0] = key(i) + cells[0]
+            rows += "<tr>" + "".join(f"<td>{c}</td>" for c in cells) + "</tr>"
         head = "".join(f"<th>{h}</th>" for h in
                        ("#", "trajectory", "time / fs", "state", "cluster", "weight", "share"))
         first = _caption_line(model.snapshot_info(self.shown_ids[0]))

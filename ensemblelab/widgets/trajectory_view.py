@@ -12,6 +12,7 @@ from ..data.ensemble import Ensemble
 from ._base import View
 from ._messages import MessageArea
 from ._selection import SelectionModel
+from ._util import legend_html
 
 __all__ = ["TrajectoryView", "STATE_COLORS"]
 
@@ -65,14 +66,13 @@ class TrajectoryView(View):
         self.lines = bqplot.Lines(x=np.zeros(1), y=np.zeros((n_states, 1)),
                                   scales={"x": self.x, "y": self.y}, colors=colors,
                                   stroke_width=1.2, labels=list(ens.state_labels),
-                                  display_legend=True, opacities=[0.8] * n_states)
+                                  opacities=[0.8] * n_states)
         self.active_line = bqplot.Lines(x=np.zeros(1), y=np.zeros(1),
                                         scales={"x": self.x, "y": self.y}, colors=["black"],
-                                        stroke_width=3.0, labels=["active"], display_legend=True)
+                                        stroke_width=3.0, labels=["active"])
         self.hop_marks = bqplot.Scatter(x=np.zeros(0), y=np.zeros(0),
                                         scales={"x": self.x, "y": self.y}, colors=["red"],
-                                        marker="diamond", default_size=60, labels=["hops"],
-                                        display_legend=True)
+                                        marker="diamond", default_size=60, labels=["hops"])
         self.cursor = bqplot.Lines(x=[0.0, 0.0], y=[0.0, 1.0],
                                    scales={"x": self.x, "y": self.y}, colors=["#555"],
                                    line_style="dashed")
@@ -81,9 +81,12 @@ class TrajectoryView(View):
         self.figure = bqplot.Figure(
             marks=[self.lines, self.active_line, self.hop_marks, self.cursor], axes=[ax, ay],
             layout=widgets.Layout(width="100%", height="300px"),
-            fig_margin={"top": 20, "bottom": 40, "left": 60, "right": 20},
-            legend_location="top-right",
+            fig_margin={"top": 20, "bottom": 40, "left": 60, "right": 36},
         )
+        # the legend beside the plot, never over the curves
+        self.legend = widgets.HTML(legend_html(
+            [(str(lab), c, "solid") for lab, c in zip(ens.state_labels, colors, strict=True)]
+            + [("active state", "black", "solid"), ("hop", "red", "marker")]))
         self.choose = widgets.Dropdown(options=[int(i) for i in ids], description="trajectory",
                                        layout=widgets.Layout(width="220px"))
         self.player = widgets.Play(value=0, min=0, max=0, interval=100, description="play")
@@ -103,7 +106,7 @@ class TrajectoryView(View):
         self._observe(self._on_trajectory_change, "trajectory")
         self._observe(self._on_frame_change, "frame")
         self._finish(widgets.HBox([self.choose, self.player, self.slider]), self.figure,
-                     self.info)
+                     self.legend, self.info)
         first = trajectory if trajectory is not None else (
             self.model.trajectory if self.model.trajectory is not None else
             (int(ids[0]) if len(ids) else None))

@@ -70,17 +70,41 @@ def explore_server(tmp_path_factory):
         stop_process_group(proc)
 
 
+#: where the tests write their screenshots for review (gitignored)
+SCREENSHOTS = Path(os.environ.get("ENSEMBLELAB_E2E_SCREENSHOTS",
+                                  Path(__file__).resolve().parent / "screenshots"))
+
+
+def screenshot(page, name: str, selector: str | None = None) -> Path:
+    """Save a PNG of the viewport (scrolled to `selector`'s element, if given) for review."""
+    SCREENSHOTS.mkdir(parents=True, exist_ok=True)
+    path = SCREENSHOTS / f"{name}.png"
+    if selector is not None:
+        page.locator(selector).first.scroll_into_view_if_needed()
+    page.screenshot(path=str(path))
+    return path
+
+
 @pytest.fixture(scope="module")
 def browser_page(explore_server):
     """A chromium page with the explorer rendered; console errors collected in page.errors."""
+    yield from _page(explore_server, {"width": 1400, "height": 1800})
+
+
+@pytest.fixture(scope="module")
+def paper_page(explore_server):
+    """The explorer at 1600 x 1000 (the size of the screenshots for review)."""
+    yield from _page(explore_server, {"width": 1600, "height": 1000})
+
+
+def _page(explore_server, viewport):
     from playwright.sync_api import sync_playwright
 
     url, _ = explore_server
     exe = _chromium()
     with sync_playwright() as pw, tempfile.TemporaryDirectory() as profile:
         ctx = pw.chromium.launch_persistent_context(
-            profile, executable_path=exe, args=CHROMIUM_ARGS,
-            viewport={"width": 1400, "height": 1800})
+            profile, executable_path=exe, args=CHROMIUM_ARGS, viewport=viewport)
         page = ctx.pages[0] if ctx.pages else ctx.new_page()
         errors: list[str] = []
         page.on("console", lambda m: errors.append(m.text) if m.type == "error" else None)

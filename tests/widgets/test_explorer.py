@@ -223,3 +223,107 @@ def test_explorer_header_counts_after_exclusion_and_show_switches_tabs(app, toy)
     assert app.tabs.selected_index == 0
     assert app.model.trajectory == key and app.trajectory_view.shown == key
     assert app.messages.errors == []
+
+
+def test_explorer_exclusion_is_a_mask_not_a_copy(toy, tmp_path, monkeypatch):
+    """Exclusions reach every computation as ``exclude=`` (no Ensemble copy is made), and
+    give the numbers of the reduced ensemble (computed independently (not published):
+    the same functions on ``toy.without(...)``)."""
+    from ensemblelab.compute.kinetics.populations import populations
+    from ensemblelab.compute.spectroscopy import compute_trpes
+    from ensemblelab.data.ensemble import Ensemble
+
+    app = Explorer(toy, map_kwargs=MAP, debounce=0, restore=False, clusters=False,
+                   export_folder=tmp_path / "export")
+    app.brush((1.35, 1.65), (0.0, 60.0))
+
+    def no_copy(self, rows):
+        raise AssertionError("an exclusion copied the ensemble")
+
+    monkeypatch.setattr(Ensemble, "_take", no_copy)
+    app.model.exclude([3, 5])
+    monkeypatch.undo()
+    assert app.messages.errors == []
+    reduced = toy.without([3, 5])
+    probe, pump = app.map_view.pulses()
+    energies, delays = app.map_view.grids()
+    ref = compute_trpes(reduced, probe=probe, pump=pump, kinetic_energies=energies,
+                        delays=delays, progress=False)
+    shown = app.model.trpes_map
+    np.testing.assert_allclose(shown.intensity, ref.intensity, rtol=0,
+                               atol=1e-12 * np.abs(ref.intensity).max())
+    pop = populations(reduced, time_grid=app.population_view.table["time"].unique())
+    np.testing.assert_allclose(app.population_view.table["population"].to_numpy(),
+                               pop["population"].to_numpy(), atol=1e-12)
+    band = app.model.band
+    assert not set(band["traj"]) & {3, 5}  # excluded trajectories never contribute
+    assert app.model.band_summary()["n_trajectories"] <= toy.n_trajectories - 2
+
+
+def test_explorer_exclude_argument_starts_with_one_exclusion_state(toy, tmp_path):
+    import pandas as pd
+
+    flags = pd.DataFrame({"traj": [2, 4, 9], "flagged": [True, False, True],
+                          "reason": ["invented", "", "invented"]})
+    app = Explorer(toy, map_kwargs=MAP, debounce=0, restore=False, clusters=False,
+                   flags=flags, exclude=flags, export_folder=tmp_path / "export")
+    assert app.model.excluded == (2, 9)  # the flagged rows of the table
+    n_left = toy.n_trajectories - 2
+    assert f"{n_left} trajectories" in app.header.value
+    assert app.model.trpes_map.params["n_trajectories"] == n_left
+    assert app.population_view.table.attrs["excluded"] == [2, 9]
+    assert "<b class='ensemblelab-n-excluded'>2</b> excluded: 2, 9" in \
+        app.quality_view.summary.value
+    app2 = Explorer(toy, map_kwargs=MAP, debounce=0, restore=False, clusters=False,
+                    exclude=[1], export_folder=tmp_path / "export2")
+    assert app2.model.excluded == (1,) and app2.model.n_trajectories == toy.n_trajectories - 1
+    assert app2.model.n_snapshots == toy.without([1]).n_snapshots
+
+
+def test_explorer_clusters_and_flags_in_the_background(toy, tmp_path):
+    """Inside a running event loop (as in a kernel) the explorer returns with the map
+    usable, then clustering and flags arrive from a worker thread with a status line."""
+    import asyncio
+
+    async def main():
+        app = Explorer(toy, map_kwargs=MAP, debounce=0, restore=False, background=True,
+                       export_folder=tmp_path / "export")
+        # built: the map is there, the background results are not applied yet (they are
+        # handed to this loop, which has not run since)
+        state = (app.model.trpes_map is not None, app.model.clusters, app.model.flags,
+                 "in the background" in app.jobs.status.value,
+                 "checking the trajectories" in app.quality_view.summary.value)
+        app.brush((1.35, 1.65), (0.0, 60.0))  # usable while the jobs run
+        for _ in range(600):
+            if app.jobs.done.is_set():
+                break
+            await asyncio.sleep(0.05)
+        return app, state
+
+    app, state = asyncio.run(main())
+    assert state == (True, None, None, True, True)
+    assert app.jobs.done.is_set() and app.jobs.status.value == ""
+    assert app.model.clusters is not None and app.model.flags is not None
+    assert set(app.jobs.seconds) == {"clustering the snapshots", "checking the trajectories"}
+    # the band brushed meanwhile keeps its snapshots (the medoid does not replace them)
+    assert app.model.selected == tuple(app.model.band["snapshot"][:len(app.model.selected)])
+    assert "trajectories flagged" in app.quality_view.summary.value
+    assert app.messages.errors == []
+
+
+def test_explorer_without_a_loop_starts_with_the_largest_clusters_medoid(toy, tmp_path):
+    app = Explorer(toy, map_kwargs=MAP, debounce=0, restore=False,
+                   export_folder=tmp_path / "export")
+    assert not app.jobs.background and app.jobs.done.is_set()
+    summary = app.cluster_result.summary
+    biggest = int(summary.sort_values("fraction", ascending=False)["medoid_snapshot"].iloc[0])
+    assert app.model.selected == (biggest,)
+    with pytest.raises(RuntimeError, match="running event loop"):
+        Explorer(toy, map_kwargs=MAP, debounce=0, restore=False, background=True,
+                 export_folder=tmp_path / "export2")
+
+
+def test_explorer_message_heading_only_with_messages(app):
+    assert app.messages.messages == [] and app.messages_head.layout.display == "none"
+    app.messages.info("invented message")
+    assert app.messages_head.layout.display == "block"

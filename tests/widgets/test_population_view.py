@@ -62,6 +62,8 @@ def test_populationview_sequential_fit_states_chosen_in_the_view(model, toy):
     assert "tau1 (S2 → S1)" in label and "tau2 (S1 → S0)" in label
     # the toy S2 lifetime is 100 fs (ensemblelab.testing ground truth); 24 trajectories
     assert 50.0 < res.time_constants["tau1"] < 200.0
+    # the toy has no S1 -> S0 decay: no finite interval there, said so
+    assert "(no interval)" in label
     # a two-state chain: C left empty in the menu
     view.fit_roles[2].value = -1
     assert tuple(view.fit_result.states) == (2, 1)
@@ -71,6 +73,11 @@ def test_populationview_sequential_fit_states_chosen_in_the_view(model, toy):
     assert view.messages.errors == []
     view.fit.value = "single"
     assert view.fit_label.value.startswith("single fit: tau (S2 decay)")
+    # each time constant carries its interval and says how it was made
+    lo, hi = view.fit_result.interval("tau")
+    assert np.isfinite(lo) and np.isfinite(hi)
+    assert f"[{lo:.1f}, {hi:.1f}]" in view.fit_label.value
+    assert "95 % interval, covariance" in view.fit_label.value
 
 
 def test_populationview_fit_states_by_label(model):

@@ -58,3 +58,22 @@ def test_format_percent_has_sensible_digits():
     assert format_percent(6.7e-19) == "< 0.001 %"
     assert format_percent(0.0) == "0 %"
     assert format_percent(None) == "-" and format_percent(float("nan")) == "-"
+
+
+def test_selectiontable_is_one_table_hidden_before_a_band(model, toy):
+    """Before a band: no empty bordered list; after: one table (the clickable rows) with
+    its column heads, not the same rows twice (common practice: show data once)."""
+    from ensemblelab.widgets import SelectionTable
+
+    model.group_by = "state"
+    view = SelectionTable(model)
+    assert view.rows.layout.display == "none" and view.html.value == ""
+    shares = np.linspace(0.1, 0.9, toy.n_snapshots)  # an invented band: weights by row
+    band = toy.snapshots.assign(share=shares / shares.sum(), intensity=shares,
+                                state=toy.snapshots["active"], cluster=-1)
+    model.band = band
+    assert view.rows.layout.display == "flex"
+    assert len(view.rows.options) == len(view.table) > 0
+    assert "<tr>" not in view.html.value and "share" in view.html.value
+    model.band = None
+    assert view.rows.layout.display == "none"

@@ -39,6 +39,31 @@ def test_structureview_overlays_top_n_of_selection(model, toy):
     assert model.frame == 10
 
 
+def test_structureview_overlay_colours_match_their_table_rows(model, monkeypatch):
+    """Each overlaid copy has one fixed colour (an NGL representation selecting its chain)
+    and its table row carries the same colour as a key (common practice for overlays)."""
+    from ensemblelab.widgets._ngl import CHAINS
+    from ensemblelab.widgets.structure_view import OVERLAY_COLORS
+
+    view = StructureView(model, n_top=3, align=False)
+    calls = []
+    real_add = view.view.add_trajectory
+
+    def add_trajectory(*args, **kwargs):
+        comp = real_add(*args, **kwargs)
+        monkeypatch.setattr(comp, "add_representation",
+                            lambda *a, **k: calls.append((a, k)))
+        return comp
+
+    monkeypatch.setattr(view.view, "add_trajectory", add_trajectory)
+    model.selected = (10, 40, 70)
+    assert [k["selection"] for _, k in calls] == [f":{c}" for c in CHAINS[:3]]
+    assert [k["color"] for _, k in calls] == list(OVERLAY_COLORS[:3])
+    rows = view.caption.value.split("<tr>")[2:]  # after the header row
+    for row, color in zip(rows, OVERLAY_COLORS[:3], strict=True):
+        assert f"color:{color}" in row
+
+
 def test_structureview_aligns_rigidly_moved_copies(rigid):
     model = SelectionModel(rigid)
     view = StructureView(model, n_top=6, align=True)
@@ -81,3 +106,24 @@ def test_structureview_medoids_need_clusters(model):
     model.cluster_medoids = (3, 30, 300)
     view.medoids.click()
     assert model.selected == (3, 30, 300) and view.shown_ids == (3, 30, 300)
+
+
+def test_structureview_mirror_images_shown_with_one_handedness():
+    """A molecule and its mirror image (z -> -z), rigidly moved: proper rotations cannot
+    superpose them, a reflection can (analytic: Kabsch with an improper rotation; computed
+    independently (not published)). Only when the user allows it."""
+    rng = np.random.default_rng(3)
+    base = rng.normal(size=(5, 3))
+    mirror = base * np.array([1.0, 1.0, -1.0])
+    frames = np.stack([base, mirror @ _rotation(0.7).T + 2.0])
+    ens = Ensemble.from_arrays(traj=[0, 1], time=[0.0, 0.0], active=[1, 1], geometries=frames,
+                               symbols=["C", "N", "O", "H", "H"], energies=np.zeros((2, 2)))
+    model = SelectionModel(ens)
+    view = StructureView(model, n_top=2, align=True)
+    model.selected = (0, 1)
+    xyz = view.coordinates()[0].reshape(2, 5, 3)
+    assert np.abs(xyz[1] - xyz[0]).max() > 0.1  # handedness kept by default
+    view.mirror.value = True
+    xyz = view.coordinates()[0].reshape(2, 5, 3)
+    assert np.abs(xyz[1] - xyz[0]).max() < 1e-4  # one handedness (float32 storage)
+    np.testing.assert_allclose(ens.geometries[1], frames[1], atol=1e-6)  # data untouched

@@ -67,11 +67,23 @@ from .weights import (
     weights_word,
 )
 
-__all__ = ["compute_trpes", "trpes_model", "time_grid", "trpes_partial", "TRPES_FIELDS"]
+__all__ = ["compute_trpes", "trpes_model", "time_grid", "trpes_partial", "TRPES_FIELDS",
+           "excluded_ids"]
 
 #: arrays a TRPES block reads (the diabatic decomposition adds ``adt``, ``adt_cation``)
 TRPES_FIELDS = ("energies", "cation_energies", "dyson", "excitation_energies",
                 "transition_dipoles", "oscillator_strengths")
+
+
+def excluded_ids(exclude: npt.ArrayLike | None) -> np.ndarray:
+    """Sorted distinct trajectory ids of an ``exclude=`` argument, int64 (empty for None)."""
+    if exclude is None:
+        return np.zeros(0, dtype=np.int64)
+    ids = np.asarray(exclude).reshape(-1)
+    if ids.size and not np.issubdtype(ids.dtype, np.integer):
+        raise SchemaError("The 'exclude' parameter must hold integer trajectory ids. Got "
+                          f"{ids.dtype} values instead.")
+    return np.unique(ids.astype(np.int64))
 
 
 def time_grid(source: BlockSource, time_step: float | None, *, client: Any = None,
@@ -145,8 +157,13 @@ def trpes_partial(block: Any, span: BlockSpan, opts: dict[str, Any]) -> dict[str
     With ``keep_sticks`` the block's :class:`~.sticks.BlockSticks` come back too.
     """
     w_traj, _ = trajectory_weights(block, weights=opts["weights"], pump=opts["pump"])
+    keep = None
+    excluded = opts.get("exclude")
+    if excluded is not None and len(excluded):  # excluded trajectories: weight 0, not alive
+        keep = ~np.isin(block.trajectories["traj"].to_numpy(), excluded)
+        w_traj = np.where(keep, w_traj, 0.0)
     bs = block_sticks(block, probe=opts["probe"], cross_section=opts["cross_section"],
-                      w_traj=w_traj, weights_used=opts["weights_used"],
+                      w_traj=w_traj, keep=keep, weights_used=opts["weights_used"],
                       decompose=opts["decompose"], start=opts["start"], dt=opts["dt"],
                       n_time=opts["n_time"], **stick_options(opts))
     grid = {"n_time": opts["n_time"], "e_lo": opts["e_lo"], "h": opts["h"],
@@ -188,6 +205,7 @@ def trpes_model(
     scheduler: Any = None,
     ionisation_shifts: Sequence[float] | Mapping[int, float] | None = None,
     absorbing: str = "zero",
+    exclude: npt.ArrayLike | None = None,
 ) -> TRPESModel:
     """The stick model of an ensemble or chunked store, moments deposited (the reduction).
 
@@ -222,7 +240,9 @@ def trpes_model(
     labels = component_labels(source, decompose)
     in_memory = isinstance(ens, Ensemble)
     absorbing_state = ensemble_absorbing_state(ens if in_memory else source)
+    excluded = excluded_ids(exclude)
     opts = {"probe": probe, "pump": pump, "cross_section": cs, "weights": kind,
+            "exclude": excluded,
             "weights_used": used, "decompose": decompose, "n_comp": len(labels), **grid,
             "e_lo": e_lo, "h": h, "n_fine": n_fine, "order": DEFAULT_ORDER,
             "keep_sticks": in_memory, "progress": progress and in_memory,
@@ -245,7 +265,9 @@ def trpes_model(
     counts = {k: int(v) for k, v in total["counts"].items()}
     ess = (float(total["total_weight"]) ** 2 / float(total["weight_sq"])
            if float(total["weight_sq"]) > 0 else 0.0)
-    _warn_map(ess, source.n_trajectories, counts, n, absorbing_state, absorbing)
+    n_used = source.n_trajectories - int(np.isin(source.trajectories["traj"].to_numpy(),
+                                                 excluded).sum())
+    _warn_map(ess, n_used, counts, n, absorbing_state, absorbing)
     model = TRPESModel(
         sticks=None if bs is None else bs.sticks, probe=probe, decompose=decompose,
         labels=labels, grid_start=grid["start"], time_step=grid["dt"], n_time=grid["n_time"],
@@ -258,7 +280,8 @@ def trpes_model(
         comp_weight=None if bs is None else bs.comp_weight,
         info={"cross_section": describe_cross_section(cs), "weights": used,
               "n_sticks": int(total["n_sticks"]), "n_snapshots": n,
-              "n_trajectories": source.n_trajectories, "progress": progress and in_memory,
+              "n_trajectories": n_used, "excluded": excluded.tolist(),
+              "progress": progress and in_memory,
               "n_states": source.n_states, "n_cation": source.n_cation,
               "effective_sample_size": ess, "sampling": sampling_of(source),
               "ionisation_shifts": None if shifts is None else shifts.tolist(),
@@ -315,6 +338,7 @@ def compute_trpes(
     scheduler: Any = None,
     ionisation_shifts: Sequence[float] | Mapping[int, float] | None = None,
     absorbing: str = "zero",
+    exclude: npt.ArrayLike | None = None,
     return_model: Literal[False] = False,
 ) -> TRPESMap: ...
 
@@ -339,6 +363,7 @@ def compute_trpes(
     scheduler: Any = None,
     ionisation_shifts: Sequence[float] | Mapping[int, float] | None = None,
     absorbing: str = "zero",
+    exclude: npt.ArrayLike | None = None,
     return_model: Literal[True],
 ) -> tuple[TRPESMap, TRPESModel]: ...
 
@@ -363,6 +388,7 @@ def compute_trpes(
     scheduler: Any = None,
     ionisation_shifts: Sequence[float] | Mapping[int, float] | None = None,
     absorbing: str = "zero",
+    exclude: npt.ArrayLike | None = None,
     return_model: bool = False,
 ) -> TRPESMap | tuple[TRPESMap, TRPESModel]: ...
 
@@ -386,6 +412,7 @@ def compute_trpes(
     scheduler: Any = None,
     ionisation_shifts: Sequence[float] | Mapping[int, float] | None = None,
     absorbing: str = "zero",
+    exclude: npt.ArrayLike | None = None,
     return_model: bool = False,
 ) -> TRPESMap | tuple[TRPESMap, TRPESModel]:
     """Simulated TRPES map of an ensemble (classical doorway-window).
@@ -466,6 +493,10 @@ def compute_trpes(
         before the threshold test (the sticks are recomputed, not the pixels moved).
     absorbing : {"zero", "carry", "end"}
         What a trajectory stopped in the absorbing state contributes after its stop.
+    exclude : array_like of int, optional
+        Trajectory ids left out (a mask, not a copy): their weight is 0 and they are not
+        counted alive, so the map equals that of ``ens.without(exclude)`` (up to the
+        order of floating-point additions); recorded in ``params["excluded"]``.
     return_model : bool
         Also return the :class:`~.model.TRPESModel` (for re-broadening and for
         ``contributions(..., model=...)``).
@@ -500,7 +531,7 @@ def compute_trpes(
                         cross_section=cross_section, weights=weights, decompose=decompose,
                         time_step=time_step, progress=progress, client=client,
                         scheduler=scheduler, ionisation_shifts=ionisation_shifts,
-                        absorbing=absorbing)
+                        absorbing=absorbing, exclude=exclude)
     if isinstance(ens, Ensemble):
         fraction = ground_state_ionisation_fraction(ens, probe=probe)
         if fraction > 0:

@@ -216,7 +216,7 @@ class BlockAlive(NamedTuple):
 def block_alive(block: Any, *, w_traj: np.ndarray, probe: GaussianPulse, start: float,
                 dt: float, n_time: int, ionisation_shifts: np.ndarray | None = None,
                 absorbing_state: int | None = None, absorbing: str = "zero",
-                t_end: float | None = None) -> BlockAlive:
+                t_end: float | None = None, keep: np.ndarray | None = None) -> BlockAlive:
     """Alive weight of a block on the time grid, with missing data and absorbing states.
 
     A snapshot counts in the alive weight of a cation channel only if its ionisation
@@ -224,7 +224,8 @@ def block_alive(block: Any, *, w_traj: np.ndarray, probe: GaussianPulse, start: 
     any channel does not count at all ("not computed" is not "no signal"). A
     trajectory whose last snapshot is in ``absorbing_state`` and that stops before
     ``t_end`` stays in the alive weight (every channel) after its stop, unless
-    ``absorbing == "end"``.
+    ``absorbing == "end"``. Trajectories with ``keep`` False (shape
+    (n_trajectories,); excluded, weight 0 in `w_traj`) are not counted alive.
     """
     from ._kernels_deposit import deposit_counts
 
@@ -239,7 +240,8 @@ def block_alive(block: Any, *, w_traj: np.ndarray, probe: GaussianPulse, start: 
     any_data = has.any(axis=1)
     wk = np.where(any_data, w_snap, 0.0)
     alive = deposit_counts(tbin, wk, n_time=n_time, tfrac=tfrac)
-    alive_count = deposit_counts(tbin, any_data.astype(float), n_time=n_time, tfrac=tfrac)
+    kept = any_data if keep is None else any_data & keep[block.traj_index]
+    alive_count = deposit_counts(tbin, kept.astype(float), n_time=n_time, tfrac=tfrac)
     partial = bool(np.any(has != any_data[:, None]))
     alive_channel = (np.stack([deposit_counts(tbin, np.where(has[:, k], w_snap, 0.0),
                                               n_time=n_time, tfrac=tfrac)
@@ -253,6 +255,8 @@ def block_alive(block: Any, *, w_traj: np.ndarray, probe: GaussianPulse, start: 
         last = _last_rows(block, time)
         last = last[last >= 0]
         stop = (active[last] == absorbing_state) & (time[last] < t_end - 1e-9 * dt)
+        if keep is not None:
+            stop &= keep[block.traj_index[last]]
         absorbed = last[stop]
         f = np.zeros(absorbed.size) if tfrac is None else tfrac[absorbed]
         ext_bin = tbin[absorbed] + 1
@@ -285,7 +289,8 @@ def block_sticks(block: Any, *, probe: GaussianPulse, cross_section: CrossSectio
                  ionisation_shifts: np.ndarray | None = None,
                  absorbing_state: int | None = None, absorbing: str = "zero",
                  t_end: float | None = None, fill: TimeFill | None = None,
-                 local_fill: bool = True) -> BlockSticks:
+                 local_fill: bool = True,
+                 keep: np.ndarray | None = None) -> BlockSticks:
     """The sticks of a block (an Ensemble or a chunk of one) on the time grid.
 
     Parameters
@@ -317,6 +322,8 @@ def block_sticks(block: Any, *, probe: GaussianPulse, cross_section: CrossSectio
         :func:`.gaps.time_fill` of the whole source (per-channel alive weights and
         gaps in the data); without it, that of this block when `local_fill` (an
         in-memory ensemble is one block), else none.
+    keep : ndarray of bool, shape (n_trajectories,), optional
+        Trajectories counted alive (excluded ones: False, with weight 0 in `w_traj`).
 
     Returns
     -------
@@ -324,7 +331,7 @@ def block_sticks(block: Any, *, probe: GaussianPulse, cross_section: CrossSectio
     """
     al = block_alive(block, w_traj=w_traj, probe=probe, start=start, dt=dt, n_time=n_time,
                      ionisation_shifts=ionisation_shifts, absorbing_state=absorbing_state,
-                     absorbing=absorbing, t_end=t_end)
+                     absorbing=absorbing, t_end=t_end, keep=keep)
     w_snap = w_traj[block.traj_index]
     time = block.snapshots["time"].to_numpy()
     tbin_snap, tfrac_snap = time_bins(time, start, dt)
