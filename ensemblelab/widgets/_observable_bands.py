@@ -61,14 +61,17 @@ def default_axis(observable: str, ens: Ensemble) -> np.ndarray:
 
 
 def compute_map(observable: str, ens: Ensemble, *, probe: Any, pump: Any, delays: np.ndarray,
-                axis: np.ndarray, scattering_kind: str = "xray") -> Any:
+                axis: np.ndarray, scattering_kind: str = "xray", weights: str | None = None
+                ) -> Any:
     """The absorption or scattering map of `ens` (no bootstrap: the explorer stays quick).
 
-    ``weights="uniform"`` without a pump, as the map view does for the photoelectron map.
+    Trajectory weights as the map view's photoelectron map: `weights` when given, else
+    ``"auto"`` (from ``metadata["sampling"]``), ``"uniform"`` without a pump.
     """
     from ..compute.observables import compute_scattering, compute_transient_absorption
 
-    weights = "doorway" if pump is not None else "uniform"
+    if weights is None:
+        weights = "auto" if pump is not None else "uniform"
     if observable == "scattering":
         return compute_scattering(ens, kind=scattering_kind, q=axis, delays=delays, pump=pump,
                                   probe=probe, weights=weights)

@@ -11,6 +11,7 @@ its geometries, as for a photoelectron band.
 from __future__ import annotations
 
 import html
+import warnings
 from typing import Any
 
 import bqplot
@@ -176,10 +177,17 @@ class ObservableSwitch(View):
         key = (observable, self.kind.value, id(cur), repr(probe), repr(pump),
                delays.tobytes(), axis.tobytes())
         if key not in self._cache:
-            with busy(self.status, f"computing the {observable} map ..."):
+            weights = None
+            if self.map_view is not None:  # the same trajectory weights as the map view
+                weights = self.map_view.trpes_kwargs.get("weights")
+            with busy(self.status, f"computing the {observable} map ..."), \
+                    warnings.catch_warnings(record=True) as caught:
+                warnings.simplefilter("always")
                 self._cache = {key: compute_map(observable, cur, probe=probe, pump=pump,
-                                                delays=delays, axis=axis,
+                                                delays=delays, axis=axis, weights=weights,
                                                 scattering_kind=str(self.kind.value))}
+            for w in caught:
+                self.messages.warning(f"{observable} map: {w.message}")
             self.n_computed += 1
         return self._cache[key]
 
