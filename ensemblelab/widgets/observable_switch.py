@@ -27,6 +27,9 @@ from ._util import busy
 
 __all__ = ["ObservableSwitch", "SWITCH_OPTIONS"]
 
+#: colours of the difference maps at min, 0 and max: blue, white, red (less, none, more)
+DIVERGING = ("#2166ac", "#f7f7f7", "#b2182b")
+
 #: the switch's options, in order
 SWITCH_OPTIONS = ("photoelectron", "absorption", "scattering")
 
@@ -83,7 +86,7 @@ class ObservableSwitch(View):
 
         self.switch = widgets.ToggleButtons(options=list(SWITCH_OPTIONS), value="photoelectron",
                                             style={"button_width": "110px"})
-        self.switch.add_class("ensemblelab-observable-switch")
+        self.switch.add_class("ensemblelab-observable-toggle")
         self.kind = widgets.Dropdown(options=[("X-ray", "xray"), ("electron", "electron")],
                                      value=scattering_kind, description="probe",
                                      layout=widgets.Layout(width="170px"))
@@ -93,7 +96,8 @@ class ObservableSwitch(View):
         self.band_label.add_class("ensemblelab-observable-band")
 
         self.x, self.y = bqplot.LinearScale(), bqplot.LinearScale()
-        self.c = bqplot.ColorScale(scheme="RdBu", mid=0.0)
+        # red = more signal, blue = less (as the static figures of plotting.observables)
+        self.c = bqplot.ColorScale(colors=list(DIVERGING), mid=0.0)
         z = np.linspace(0, 1, 3)
         self.heatmap = bqplot.HeatMap(x=z, y=z, color=np.zeros((3, 3)),
                                       scales={"x": self.x, "y": self.y, "color": self.c})
@@ -257,6 +261,7 @@ class ObservableSwitch(View):
         top = top if top > 0 else 1.0
         with self.figure.hold_sync():
             self.c.min, self.c.max = -top, top
+            self.color_axis.tick_values = np.linspace(-top, top, 5)  # zero in the middle
             self.heatmap.x, self.heatmap.y = axis, delays
             self.heatmap.color = np.nan_to_num(values)
             self.x.min, self.x.max = float(axis[0]), float(axis[-1])

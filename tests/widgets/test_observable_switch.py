@@ -191,3 +191,17 @@ def test_electron_probe_recomputes_with_its_form_factors(app):
     assert electron is not xray and electron.kind == "electron"
     assert not np.allclose(electron.reference, xray.reference)
     _no_errors(app)
+
+
+def test_colour_scale_is_centred_with_red_for_more_signal(app):
+    sw = app.observable_switch
+    sw.show("scattering")
+    values = np.asarray(sw.heatmap.color, float)
+    top = float(np.abs(values).max())
+    # a diverging scale centred on zero, red at the positive end (common practice for
+    # difference maps; the same as the static figures)
+    assert sw.c.mid == 0.0
+    colors = [c.lower() for c in sw.c.colors]
+    assert colors[0].startswith("#21") and colors[-1].startswith("#b2")  # blue low, red high
+    assert sw.c.min == pytest.approx(-top) and sw.c.max == pytest.approx(top)
+    assert 0.0 in np.asarray(sw.color_axis.tick_values, float)
