@@ -205,3 +205,21 @@ def test_colour_scale_is_centred_with_red_for_more_signal(app):
     assert colors[0].startswith("#21") and colors[-1].startswith("#b2")  # blue low, red high
     assert sw.c.min == pytest.approx(-top) and sw.c.max == pytest.approx(top)
     assert 0.0 in np.asarray(sw.color_axis.tick_values, float)
+
+
+def test_demo_maps_weight_trajectories_as_the_photoelectron_map(tmp_path):
+    """On the demo (pump excitation data, no sampling metadata) all three maps use the same
+    trajectory weights: the pump is not applied again to one map only (common practice:
+    maps compared side by side describe the same sample)."""
+    import ensemblelab
+    from ensemblelab.cli._explore import default_data_path
+
+    ens = with_demo_transition_strengths(
+        ensemblelab.load(default_data_path(), nonfinite="keep", progress=False))
+    assert ens.excitation_energies is not None  # the doorway weights could be applied
+    app = Explorer(ens, debounce=0, clusters=False, data_path=tmp_path / "demo",
+                   export_folder=tmp_path / "export", restore=False)
+    word = app.model.trpes_map.params["weights"]
+    sw = app.observable_switch
+    assert sw.show("scattering").params["weights"] == word
+    assert sw.show("absorption").params["weights"] == word
