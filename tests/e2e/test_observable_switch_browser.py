@@ -96,6 +96,19 @@ def test_browser_scattering_band_lists_states_and_shows_geometries(browser_page)
           f"NGL canvas {100 * drawn:.1f} % drawn; screenshot {shot} (printed, not asserted)")
 
 
+def test_browser_absorption_map_of_the_demo_is_drawn(browser_page):
+    page = browser_page
+    image = page.locator(f"{MAP} image").first
+    before = image.get_attribute("href") or image.get_attribute("xlink:href")
+    page.locator(f"{SWITCH} button", has_text="absorption").click()
+    # the demo's explorer adds its invented transition strengths: a map, not a hint
+    _wait_for(page, lambda: (image.get_attribute("href") or image.get_attribute("xlink:href"))
+              != before, "the absorption map was not drawn")
+    status = page.locator(".ensemblelab-observable-status").inner_text()
+    assert "transition_strengths" not in status, status
+    assert "photon energy" in page.locator(MAP).inner_text()
+
+
 def test_browser_switching_back_to_photoelectrons(browser_page):
     page = browser_page
     page.locator(f"{SWITCH} button", has_text="photoelectron").click()
