@@ -195,10 +195,6 @@ class ObservableSwitch(View):
             self.n_computed += 1
         return self._cache[key]
 
-    def wrap(self) -> widgets.Widget:
-        """The switch above the shown map (the explorer puts this where the map view was)."""
-        return self.widget
-
     # ------------------------------------------------------------------ internals
     def _pulses(self) -> tuple[Any, Any]:
         if self.map_view is not None:
