@@ -223,3 +223,17 @@ def test_demo_maps_weight_trajectories_as_the_photoelectron_map(tmp_path):
     sw = app.observable_switch
     assert sw.show("scattering").params["weights"] == word
     assert sw.show("absorption").params["weights"] == word
+
+
+def test_switch_works_on_its_own_without_a_map_view(toy):
+    from ensemblelab.widgets import ObservableSwitch
+
+    sw = ObservableSwitch(toy)  # its own model; pulses from the metadata or defaults
+    m = sw.show("scattering")
+    a_rng, d_rng = (1.0, 3.0), (20.0, 120.0)
+    band = sw.brush_band(a_rng, d_rng)
+    assert band.total == pytest.approx(_drawn_box_sum(sw, a_rng, d_rng), rel=1e-8, abs=1e-9)
+    assert sw.model.band is not None and len(sw.model.selected) > 0
+    assert m.delays[0] < 0.0 < m.delays[-1]
+    with pytest.raises(ValueError, match="observable must be one of"):
+        sw.show("fluorescence")
