@@ -103,10 +103,16 @@ def absorption_section(ens: Ensemble, folder: Path, *, probe: Any, pump: Any,
             "more absorption). Components: ground-state bleach (GSB, &le; 0), stimulated "
             "emission (SE, &le; 0), excited-state absorption (ESA, &ge; 0); they sum to the "
             f"total. Window FWHM {m.params['fwhm_energy']:.3g} eV (probe spectrum); "
-            f"cross-correlation {html.escape(_cc_text(m.params))}.</p>"
+            f"cross-correlation {html.escape(_cc_text(m.params))}.{_strengths_note(ens)}</p>"
             "<img src='figures/transient_absorption.png' alt='transient absorption' "
             "style='width:1050px'><p><a href='tables/transient_absorption.csv'>"
             "tables/transient_absorption.csv</a></p>")
+
+
+def _strengths_note(ens: Ensemble) -> str:
+    """Where the transition strengths come from, when the metadata say (e.g. invented)."""
+    origin = ens.metadata.get("transition_strengths")
+    return f" Transition strengths: {html.escape(str(origin))}." if origin else ""
 
 
 def _cc_text(params: dict[str, Any]) -> str:

@@ -12,6 +12,7 @@ NOTEBOOKS = sorted((Path(__file__).resolve().parents[1] / "notebooks").glob("*.i
 def test_notebooks_exist():
     names = [p.name for p in NOTEBOOKS]
     assert len(names) >= 3, names
+    assert "04_three_observables.ipynb" in names, names  # the three maps side by side
 
 
 @pytest.mark.slow

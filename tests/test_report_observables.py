@@ -52,3 +52,17 @@ def test_without_transition_strengths_the_absorption_section_says_why(tmp_path):
     assert "<h2>Time-resolved X-ray scattering</h2>" in text
     assert re.search(r"Transient absorption</h2><p class='missing'>.*transition_strengths",
                      text)
+
+
+def test_absorption_section_names_where_the_strengths_come_from(tmp_path):
+    from ensemblelab.compute.spectroscopy.pulses import GaussianPulse
+    from ensemblelab.demo.strengths import with_demo_transition_strengths
+    from ensemblelab.report_observables import absorption_section
+
+    ens = with_demo_transition_strengths(make_toy_ensemble(8, seed=4, t_max=60.0, dt=2.0))
+    text = absorption_section(ens, tmp_path, probe=GaussianPulse(photon_energy=5.0, fwhm=30.0),
+                              pump=GaussianPulse(photon_energy=5.0, fwhm=30.0),
+                              delays=np.linspace(-30.0, 60.0, 19))
+    # invented strengths are labelled so on the page (house rule: demo data say they are
+    # invented; common practice)
+    assert "Transition strengths: invented" in text

@@ -70,6 +70,11 @@ def register(subparsers: Any) -> None:
                         "(default 1800)")
     p.add_argument("--max-kernels", type=int, default=4,
                    help="most explorer pages (kernels) served at once (default 4)")
+    p.add_argument("--observable", choices=("photoelectron", "absorption", "scattering"),
+                   default="photoelectron",
+                   help="the map shown first (the map view's observable switch; default "
+                        "photoelectron). The demo gets invented transition strengths for "
+                        "its absorption map; other data need their own")
     p.set_defaults(func=run)
 
 
@@ -94,8 +99,13 @@ def default_data_path() -> Path:
 
 
 def write_notebook(folder: str | os.PathLike[str], data_path: str | os.PathLike[str], *,
-                   nonfinite: str = "keep", explorer: dict[str, Any] | None = None) -> Path:
-    """Write the explorer notebook for `data_path` into `folder`; returns its path."""
+                   nonfinite: str = "keep", explorer: dict[str, Any] | None = None,
+                   observable: str = "photoelectron", demo_strengths: bool = False) -> Path:
+    """Write the explorer notebook for `data_path` into `folder`; returns its path.
+
+    `observable` is the map shown first; `demo_strengths` adds the invented transition
+    strengths of :mod:`ensemblelab.demo.strengths` when the data have none (the demo).
+    """
     import nbformat
 
     data_path = Path(data_path).resolve()
@@ -104,7 +114,8 @@ def write_notebook(folder: str | os.PathLike[str], data_path: str | os.PathLike[
              if data_path.is_dir() and p.is_file()]
     config = {"path": str(data_path), "nonfinite": nonfinite,
               "measured": str(found[0]) if found else None,
-              "explorer": dict(explorer or {})}
+              "explorer": dict(explorer or {}), "observable": str(observable),
+              "demo_strengths": bool(demo_strengths)}
     literal = json.dumps(json.dumps(config))
     cells = [
         nbformat.v4.new_code_cell(
@@ -114,12 +125,18 @@ def write_notebook(folder: str | os.PathLike[str], data_path: str | os.PathLike[
             f"config = json.loads({literal})\n"
             "ens = ensemblelab.load(config['path'], nonfinite=config['nonfinite'], "
             "progress=False)\n"
+            "if config['demo_strengths'] and ens.transition_strengths is None:\n"
+            "    # invented, labelled in ens.metadata (the demo's absorption map needs them)\n"
+            "    from ensemblelab.demo.strengths import with_demo_transition_strengths\n"
+            "    ens = with_demo_transition_strengths(ens)\n"
             "measured = None\n"
             "if config['measured']:\n"
             "    from ensemblelab.io.maps import load_measured_map\n"
             "    measured = load_measured_map(config['measured'])\n"
             "app = Explorer(ens, data_path=config['path'], measured=measured, "
             "**config['explorer'])\n"
+            "if config['observable'] != 'photoelectron' and app.observable_switch is not None:\n"
+            "    app.observable_switch.show(config['observable'])\n"
             "app"),
     ]
     nb = nbformat.v4.new_notebook(cells=cells)
@@ -238,7 +255,8 @@ def run(args: argparse.Namespace) -> int:
                else default_exports(data, demo=args.path is None)).resolve()
     exports.mkdir(parents=True, exist_ok=True)
     notebook = write_notebook(folder, data, nonfinite=args.nonfinite,
-                              explorer={"export_folder": str(exports)})
+                              explorer={"export_folder": str(exports)},
+                              observable=args.observable, demo_strengths=args.path is None)
     token = secrets.token_hex(24)
     write_server_config(folder, token=token, allow_hosts=list(args.allow_host),
                         idle_timeout=args.idle_timeout, max_kernels=args.max_kernels)

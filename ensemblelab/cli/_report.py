@@ -41,6 +41,11 @@ def run(args: argparse.Namespace) -> int:
 
     data = Path(args.path).expanduser() if args.path else default_data_path()
     ens = load(data, nonfinite=args.nonfinite, progress=True)
+    if args.path is None and ens.transition_strengths is None:
+        # the demo: its invented transition strengths, labelled in the metadata and the page
+        from ..demo.strengths import with_demo_transition_strengths
+
+        ens = with_demo_transition_strengths(ens)
     page = build_report(ens, args.out, photon_energy=args.photon_energy,
                         probe_fwhm=args.probe_fwhm, pump_fwhm=args.pump_fwhm,
                         n_clusters=args.clusters, source=str(data), overwrite=args.overwrite)

@@ -17,6 +17,7 @@ from ._selection import SelectionModel  # noqa: E402
 from .explorer import Explorer  # noqa: E402
 from .export import ExportPanel, export_figures, export_structures, export_tables  # noqa: E402
 from .map_view import MapView  # noqa: E402
+from .observable_switch import ObservableSwitch  # noqa: E402
 from .population_view import PopulationView  # noqa: E402
 from .quality_view import QualityView  # noqa: E402
 from .selection_table import SelectionTable, group_band  # noqa: E402
@@ -30,6 +31,7 @@ __all__ = [
     "MessageArea",
     "EnsembleStructure",
     "MapView",
+    "ObservableSwitch",
     "PopulationView",
     "StructureView",
     "SelectionTable",

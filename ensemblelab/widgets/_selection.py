@@ -349,6 +349,45 @@ class SelectionModel(HasTraits):
             self.selected = tuple(band["snapshot"].to_numpy()[: self.max_selected].tolist())
         return band
 
+    def show_band(self, analysis: BandAnalysis, *, delay_range: tuple[float, float],
+                  where: str = "") -> pd.DataFrame:
+        """Show a band found on another observable's map (absorption, scattering).
+
+        Like :meth:`select_band`, but the per-snapshot band terms come from the caller
+        (a :class:`~ensemblelab.compute.bands.BandAnalysis` of :attr:`current`, e.g. built
+        from ``observable_contributions``). :attr:`energy_range` becomes None (the box
+        is not on the photoelectron map), so a new photoelectron map does not replace it.
+
+        Parameters
+        ----------
+        analysis : BandAnalysis
+            Band terms of every row of :attr:`current` (:meth:`snapshot_groups`).
+        delay_range : (float, float)
+            Delay interval in fs.
+        where : str
+            Text naming the band (map and ranges with units), kept in ``band.attrs``.
+
+        Returns
+        -------
+        DataFrame
+            The strongest contributing snapshots, strongest first (:attr:`band`).
+        """
+        d_rng = _range(delay_range, "delay_range")
+        band = self._decorate(analysis.table(max(self.band_rows, self.max_selected)))
+        band.attrs.update(signal_fraction=float("nan"), no_signal=False, where=str(where))
+        self._analysis, self._analysis_band, self._analysis_for = analysis, band, self.current
+        with self.hold_trait_notifications():
+            self.energy_range = None
+            self.delay_range = d_rng
+            self.band = band
+            self.cluster = None
+            self.selected = tuple(band["snapshot"].to_numpy()[: self.max_selected].tolist())
+        return band
+
+    def snapshot_groups(self) -> SnapshotGroups:
+        """Group keys (trajectory, state, cluster) of the rows of :attr:`current`."""
+        return self._groups()
+
     def refresh_band(self) -> None:
         """Recompute :attr:`band` for the current ranges (after the map changed)."""
         if self.energy_range is None or self.delay_range is None or self.trpes_map is None:

@@ -74,6 +74,8 @@ class Explorer:
     messages : MessageArea
     map_view, population_view, structure_view, selection_table, trajectory_view,
     quality_view, export : the views (None where one failed to build; see :attr:`messages`)
+    observable_switch : ObservableSwitch or None
+        Photoelectron / absorption / scattering switch around the map view.
     widget : ipywidgets.VBox
     header : ipywidgets.HTML
         Trajectories and snapshots used by every view (after exclusions), and the
@@ -158,6 +160,10 @@ class Explorer:
         m, msg = self.model, self.messages
         mk = {"debounce": debounce, "measured": measured, **dict(map_kwargs or {})}
         self.map_view = self._build("map view", lambda: MapView(m, messages=msg, **mk))
+        # the observable switch (photoelectron / absorption / scattering) around the map view
+        from .observable_switch import ObservableSwitch
+        self.observable_switch = self._build("observable switch", lambda: ObservableSwitch(
+            m, self.map_view, messages=msg))
         pk = {"debounce": debounce, **dict(population_kwargs or {})}
         self.population_view = self._build(
             "population view", lambda: PopulationView(m, messages=msg, **pk))
@@ -269,7 +275,10 @@ class Explorer:
         title = widgets.VBox([widgets.HTML("<h3 style='margin:4px 0'>ensemblelab explorer</h3>"),
                               widgets.HBox([self.header, self.jobs.status],
                                            layout=widgets.Layout(grid_gap="16px"))])
-        top = widgets.HBox([self._panel(self.map_view, "map view"),
+        switch = self.observable_switch  # wraps the map view (observable switch)
+        map_panel = (switch.widget if switch is not None
+                     else self._panel(self.map_view, "map view"))
+        top = widgets.HBox([map_panel,
                             self._panel(self.structure_view, "structure view")])
         middle = widgets.HBox([
             widgets.VBox([self._panel(self.selection_table, "selection table")],

@@ -124,6 +124,7 @@ class SelectionTable(View):
             e, d = self.model.energy_range, self.model.delay_range
             where = (f"{e[0]:.2f}–{e[1]:.2f} eV, {d[0]:.0f}–{d[1]:.0f} fs"
                      if e is not None and d is not None else "")
+            where = str(band.attrs.get("where") or where)  # a band of another observable
             info = self.model.band_summary()
             assert info is not None  # a band is selected
             self.summary.value = (

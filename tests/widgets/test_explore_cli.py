@@ -189,3 +189,35 @@ def test_export_panel_never_writes_outside_its_folder(tmp_path):
     panel.folder.value = "ok"
     panel.click("structures XYZ")
     assert (root / "ok" / "selection.xyz").is_file()
+
+
+@pytest.mark.slow
+def test_explore_notebook_opens_on_the_chosen_observable(toy, tmp_path):
+    import nbformat
+    from nbclient import NotebookClient
+
+    import ensemblelab
+
+    store = ensemblelab.save(toy, tmp_path / "toy")
+    default = _explore.write_notebook(tmp_path / "nb0", store, nonfinite="keep")
+    literal = nbformat.read(str(default), as_version=4).cells[0].source.split(
+        "json.loads(", 1)[1].split(")\n", 1)[0]
+    config = json.loads(json.loads(literal))
+    # other data than the demo never get the invented strengths unless asked
+    assert config["observable"] == "photoelectron" and config["demo_strengths"] is False
+    path = _explore.write_notebook(tmp_path / "nb", store, nonfinite="keep",
+                                   explorer={"clusters": False}, observable="absorption",
+                                   demo_strengths=True)
+    nb = nbformat.read(str(path), as_version=4)
+    NotebookClient(nb, timeout=300, kernel_name="python3", store_widget_state=True,
+                   resources={"metadata": {"path": str(path.parent)}}).execute()
+    assert not [o for o in nb.cells[0].outputs if o.get("output_type") == "error"]
+    state = nb.metadata["widgets"]["application/vnd.jupyter.widget-state+json"]["state"]
+    toggles = [m["state"] for m in state.values()
+               if m["model_name"] == "ToggleButtonsModel"
+               and "scattering" in m["state"].get("_options_labels", [])]
+    assert len(toggles) == 1 and toggles[0]["index"] == 1  # "absorption"
+    # the toy has no strengths of its own: the invented ones made the map (no error text)
+    html_values = [m["state"].get("value", "") for m in state.values()
+                   if "ensemblelab-observable-status" in m["state"].get("_dom_classes", [])]
+    assert html_values and "transition_strengths" not in html_values[0]
