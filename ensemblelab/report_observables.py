@@ -51,8 +51,7 @@ def scattering_section(ens: Ensemble, folder: Path, *, probe: Any, pump: Any,
 
     try:
         m = compute_scattering(ens, kind="xray", q=REPORT_Q, delays=delays, pump=pump,
-                               probe=probe, weights="doorway" if pump is not None
-                               else "uniform")
+                               probe=probe)  # weights "auto", as the photoelectron map
     except MissingDependencyError as exc:
         raise ValueError(str(exc)) from exc
     from matplotlib.figure import Figure
@@ -87,8 +86,7 @@ def absorption_section(ens: Ensemble, folder: Path, *, probe: Any, pump: Any,
     lo = max(0.05, float(np.nanmin(gaps)) - 0.5) if gaps.size else 0.05
     energies = np.linspace(lo, max(hi, lo + 1.0), 221)
     m = compute_transient_absorption(ens, probe=probe, pump=pump, photon_energies=energies,
-                                      delays=delays, weights="doorway" if pump is not None
-                                      else "uniform")
+                                      delays=delays)  # weights "auto", as the map
     from matplotlib.figure import Figure
 
     fig = Figure(figsize=(7.0, 2.8))

@@ -14,6 +14,7 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
+import pandas as pd
 
 from ..compute.bands import BandAnalysis, SnapshotGroups
 from ..data.ensemble import Ensemble
@@ -131,7 +132,8 @@ def observable_band(ens: Ensemble, groups: SnapshotGroups, m: Any, observable: s
     ens : Ensemble
         The ensemble the map was computed from (the explorer's current one).
     groups : SnapshotGroups
-        Group keys of the rows of `ens` (same rows, same order).
+        Group keys of the rows of `ens`, or of a larger ensemble holding them (the
+        explorer's whole ensemble; rows not in `ens` get no term).
     m : ScatteringMap or AbsorptionMap
     observable : {"absorption", "scattering"}
     axis_range : (float, float)
@@ -148,13 +150,18 @@ def observable_band(ens: Ensemble, groups: SnapshotGroups, m: Any, observable: s
     a_rng = (float(min(axis_range)), float(max(axis_range)))
     d_rng = (float(min(delay_range)), float(max(delay_range)))
     terms = observable_contributions(ens, m, axis_range=a_rng, delay_range=d_rng)
-    if not np.array_equal(terms["snapshot"].to_numpy(), groups.snapshot):
+    # the groups may cover more rows than `ens` (the explorer's whole ensemble, with
+    # excluded trajectories): those rows get no band term
+    at = pd.Index(groups.snapshot).get_indexer(terms["snapshot"].to_numpy())
+    if np.any(at < 0):
         raise ValueError("the snapshot groups do not belong to the ensemble of the map.")
     total = float(terms.attrs["total"])
     sign = -1 if total < 0 else 1
-    analysis = BandAnalysis.from_intensity(groups, sign * terms["value"].to_numpy(float),
-                                           energy_range=a_rng, delay_range=d_rng)
-    against = float(np.abs(np.minimum(sign * terms["value"].to_numpy(float), 0.0)).sum())
+    values = np.zeros(len(groups.snapshot))
+    values[at] = sign * terms["value"].to_numpy(float)
+    analysis = BandAnalysis.from_intensity(groups, values, energy_range=a_rng,
+                                           delay_range=d_rng)
+    against = float(np.abs(np.minimum(values, 0.0)).sum())
     spec = OBSERVABLES[observable]
     unit = "%·cells" if observable == "scattering" else "Å²·cells"
     where = (f"{observable} band {a_rng[0]:.2f}–{a_rng[1]:.2f} {spec.axis_unit}, "

@@ -361,7 +361,8 @@ class SelectionModel(HasTraits):
         Parameters
         ----------
         analysis : BandAnalysis
-            Band terms of every row of :attr:`current` (:meth:`snapshot_groups`).
+            Band terms of every row of :attr:`ens` (:meth:`snapshot_groups`; excluded
+            rows hold 0).
         delay_range : (float, float)
             Delay interval in fs.
         where : str
@@ -375,7 +376,8 @@ class SelectionModel(HasTraits):
         d_rng = _range(delay_range, "delay_range")
         band = self._decorate(analysis.table(max(self.band_rows, self.max_selected)))
         band.attrs.update(signal_fraction=float("nan"), no_signal=False, where=str(where))
-        self._analysis, self._analysis_band, self._analysis_for = analysis, band, self.current
+        self._analysis, self._analysis_band = analysis, band
+        self._analysis_for = tuple(self.excluded)
         with self.hold_trait_notifications():
             self.energy_range = None
             self.delay_range = d_rng
@@ -385,7 +387,7 @@ class SelectionModel(HasTraits):
         return band
 
     def snapshot_groups(self) -> SnapshotGroups:
-        """Group keys (trajectory, state, cluster) of the rows of :attr:`current`."""
+        """Group keys (trajectory, state, cluster) of the rows of :attr:`ens`."""
         return self._groups()
 
     def refresh_band(self) -> None:

@@ -370,7 +370,7 @@ def test_doorway_weights_enter_average_and_reference():
                                excitation_energies=exc, oscillator_strengths=osc)
     pump = GaussianPulse(photon_energy=4.05, fwhm=30.0)
     q = np.linspace(0.5, 8.0, 12)
-    m = compute_scattering(ens, q=q, delays=t, pump=pump, convolve=False)
+    m = compute_scattering(ens, q=q, delays=t, pump=pump, convolve=False, weights="doorway")
     w = doorway_weights(ens, pump=pump)
     assert np.ptp(w) > 0.1 * w.max()  # the weights really differ
     per = debye_intensity(geoms, ["C", "O"], q)
@@ -378,3 +378,26 @@ def test_doorway_weights_enter_average_and_reference():
     assert np.allclose(m.reference, w @ per[0::2] / w.sum(), rtol=1e-12)
     assert np.allclose(m.intensity[1], w @ per[1::2] / w.sum(), rtol=1e-12)
     assert np.allclose(m.percent_difference[0], 0.0, atol=1e-12)
+
+
+def test_default_weights_never_apply_the_pump_twice():
+    # an ensemble already selected by the pump (metadata sampling="doorway-selected") is
+    # averaged uniformly by default, as compute_trpes does; an explicit "doorway" weights
+    # it again (method: J. Chem. Phys. 2004, classical doorway-window approximation)
+    t = np.array([0.0, 10.0])
+    r = np.array([[1.10, 1.30], [1.15, 1.45], [1.20, 1.25]])
+    geoms = np.zeros((6, 2, 3))
+    geoms[:, 1, 2] = r.ravel()
+    exc = np.array([[0.0, 4.0], [0.0, 4.1], [0.0, 4.4]])
+    osc = np.full((3, 2), 0.3)
+    ens = Ensemble.from_arrays(traj=np.repeat(np.arange(3), 2), time=np.tile(t, 3),
+                               active=np.ones(6, dtype=int), geometries=geoms,
+                               symbols=["C", "O"], energies=np.zeros((6, 2)),
+                               excitation_energies=exc, oscillator_strengths=osc,
+                               metadata={"sampling": "doorway-selected"})
+    pump = GaussianPulse(photon_energy=4.05, fwhm=30.0)
+    q = np.linspace(0.5, 8.0, 12)
+    m = compute_scattering(ens, q=q, delays=t, pump=pump, convolve=False)
+    per = debye_intensity(geoms, ["C", "O"], q)
+    assert m.params["weights"] == "uniform"
+    np.testing.assert_allclose(m.intensity[1], per[1::2].mean(axis=0), rtol=1e-12)

@@ -45,7 +45,7 @@ from ..engine import BlockSpan, add, as_source, is_chunked, reduce
 from ..spectroscopy._checks import check_grid, check_nonneg, check_pulse
 from ..spectroscopy.maps import time_grid
 from ..spectroscopy.pulses import GaussianPulse, gaussian
-from ..spectroscopy.weights import trajectory_weights, weights_word
+from ..spectroscopy.weights import resolve_weights, trajectory_weights, weights_word
 from ._timegrid import (
     EDGE_SIGMAS,
     alive_on_delays,
@@ -255,7 +255,7 @@ def compute_transient_absorption(
     convolve: bool = True,
     excitation_fraction: float | None = None,
     by: str | None = None,
-    weights: str = "doorway",
+    weights: str = "auto",
     time_step: float | None = None,
     n_boot: int = 0,
     ci: float = 0.95,
@@ -288,7 +288,9 @@ def compute_transient_absorption(
         Fraction of molecules excited (default 1); the whole signal scales with it.
     by : None or "state"
         Also give the SE and ESA components by active state (``"SE:S1"``, ``"ESA:S0"``).
-    weights : {"doorway", "uniform"} or str
+    weights : {"auto", "doorway", "uniform", "ensemble"} or str
+        Default "auto": sampling-aware, never applies the pump twice (as for
+        :func:`ensemblelab.compute_trpes`).
     time_step : float, optional
     n_boot : int, default 0
         Poisson-bootstrap replicates over trajectories for an interval of the total
@@ -319,6 +321,9 @@ def compute_transient_absorption(
         raise SchemaError(f"The 'excitation_fraction' parameter must be a float in (0, 1]. "
                           f"Got {excitation_fraction!r} instead.")
     source = as_source(ens)
+    weights, note = resolve_weights(source, weights=weights, pump=pump)
+    if note:  # the same sampling-aware default as compute_trpes: never the pump twice
+        warnings.warn(f"compute_transient_absorption: {note}", EnsembleWarning, stacklevel=2)
     if not source.has("transition_strengths"):
         raise SchemaError("compute_transient_absorption needs per-snapshot "
                           "transition_strengths (n_snapshots, n_states, n_states). Hint: "

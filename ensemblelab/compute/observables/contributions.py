@@ -78,7 +78,7 @@ def _weights_of(params: dict[str, Any]) -> str:
     word = str(params.get("weights", "ensemble"))
     if word.startswith("column:"):
         return word[len("column:"):]
-    return {"ensemble": "doorway"}.get(word, word)
+    return word  # "doorway", "ensemble" or "uniform": as resolved when the map was made
 
 
 def _pump_of(params: dict[str, Any]) -> Any:

@@ -32,6 +32,7 @@ damped to 10 % at the last q: a common-practice choice against truncation ripple
 from __future__ import annotations
 
 import math
+import warnings
 from collections.abc import Sequence
 from typing import Any
 
@@ -44,7 +45,7 @@ from ..engine import BlockSource, BlockSpan, add, as_source, is_chunked, reduce
 from ..spectroscopy._checks import check_grid, check_pulse
 from ..spectroscopy.maps import time_grid
 from ..spectroscopy.pulses import GaussianPulse
-from ..spectroscopy.weights import trajectory_weights, weights_word
+from ..spectroscopy.weights import resolve_weights, trajectory_weights, weights_word
 from ._kernels_scattering import molecular_intensity
 from ._timegrid import (
     EDGE_SIGMAS,
@@ -250,7 +251,7 @@ def compute_scattering(
     reference: str | npt.ArrayLike = "initial",
     by: str | npt.ArrayLike | None = None,
     excitation_fraction: float | None = None,
-    weights: str = "doorway",
+    weights: str = "auto",
     time_step: float | None = None,
     r: npt.ArrayLike | None = None,
     damping: float | None = None,
@@ -277,8 +278,7 @@ def compute_scattering(
     pump, probe : GaussianPulse, optional
         Their cross-correlation smears the signal in time (``convolve=True``); with one
         pulse its own width is used, with none the pure signal is returned. The pump also
-        gives doorway weights (``weights="doorway"``) when the ensemble has excitation
-        data.
+        gives doorway weights when ``weights`` resolves to them (see below).
     convolve : bool, default True
     reference : "initial" or array_like, shape (n_q,)
         Reference intensity of the percent difference: the ground-state initial
@@ -289,8 +289,9 @@ def compute_scattering(
         column, or by per-snapshot labels such as cluster labels.
     excitation_fraction : float in (0, 1], optional
         Fraction of molecules excited (default 1); the difference signal scales with it.
-    weights : {"doorway", "uniform"} or str
-        Trajectory weights, as for :func:`ensemblelab.compute_trpes`.
+    weights : {"auto", "doorway", "uniform", "ensemble"} or str
+        Default "auto": sampling-aware, never applies the pump twice (as for
+        :func:`ensemblelab.compute_trpes`).
     time_step : float, optional
         Internal time grid step (fs); default the trajectories' median output step.
     r : array_like, shape (n_r,), optional
@@ -335,6 +336,9 @@ def compute_scattering(
     probe = check_pulse(probe, "probe", optional=True)
     fraction = _check_fraction(excitation_fraction)
     source = as_source(ens)
+    weights, note = resolve_weights(source, weights=weights, pump=pump)
+    if note:  # the same sampling-aware default as compute_trpes: never the pump twice
+        warnings.warn(f"compute_scattering: {note}", EnsembleWarning, stacklevel=2)
     symbols = tuple(ens.symbols)
     _, index, table = form_factor_table(symbols, qa, kind=kind)
     atomic = (table[index] ** 2).sum(axis=0)
@@ -417,8 +421,6 @@ def compute_scattering(
                       "n_boot": n_boot, "ci": ci} if n_boot else
                      "none (pass n_boot > 0 for a bootstrap interval of percent_difference)"),
     }
-    import warnings
-
     if total["late_start"]:
         warnings.warn(f"{int(total['late_start'])} trajectory(ies) start after t = 0 (truncated "
                       "or strided at the start?); their first snapshot stands in for the "
