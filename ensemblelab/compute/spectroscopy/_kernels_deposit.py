@@ -43,6 +43,9 @@ __all__ = [
     "usable_cores",
     "deposit_moments",
     "deposit_counts",
+    "compiled_helpers",
+    "pooled_accumulators",
+    "release_accumulators",
 ]
 
 #: sticks per chunk in :func:`deposit_moments` (~2 MB per float64 buffer)
@@ -330,6 +333,33 @@ def _numba_kernel() -> Callable[..., int] | None:
                     _NUMBA["dep"] = numba.njit(cache=True, nogil=True, boundscheck=False)(
                         _dep_range)
     return _NUMBA["dep"]
+
+
+def compiled_helpers(numba):  # type: ignore[no-untyped-def]
+    """The numba intrinsics ``(prefetch(arr, i), add8(acc, row, v, d))`` of this module.
+
+    ``add8`` adds the 8 moments ``v d^k`` at ``acc[row:row + 8]`` (``row`` uint64), for
+    other compiled kernels that deposit moments (e.g. :mod:`._kernels_fused`).
+    """
+    return _make_prefetch(numba), _pick_add8(numba)
+
+
+def pooled_accumulators(size: int, count: int) -> list[np.ndarray]:
+    """`count` zeroed, 64-byte aligned float64 accumulators of `size` from the pool.
+
+    The first is leased (it re-enters the pool when nothing refers to it any more: return
+    it, or views of it, to callers); hand the others back with
+    :func:`release_accumulators`. Reused memory saves the page faults of fresh memory.
+    """
+    taken = _scratch_take(size, count)
+    for a in taken:
+        a.fill(0.0)
+    return [_lease(taken[0])] + taken[1:] if taken else []
+
+
+def release_accumulators(arrays: list[np.ndarray]) -> None:
+    """Give scratch accumulators from :func:`pooled_accumulators` back to the pool."""
+    _scratch_give(arrays)
 
 
 def numba_available() -> bool:
