@@ -41,7 +41,7 @@ import numpy as np
 from ...units import HARTREE_EV
 from .cross_sections import AnionThresholdLaw, DysonNorm, HydrogenicCoulomb, HydrogenicPWA
 
-__all__ = ["fusable", "cross_section_code", "fused_energy_range", "fused_pass",
+__all__ = ["fusable", "compiled_available", "cross_section_code", "fused_energy_range", "fused_pass",
            "last_rows", "MIN_SNAPSHOTS_PER_THREAD"]
 
 #: fewest snapshots per thread before a second thread is worth its accumulator
@@ -73,6 +73,11 @@ def cross_section_code(cs: Any) -> tuple[int, float, float] | None:
     if t is AnionThresholdLaw:
         return 3, cs.l + 0.5, 0.0
     return None
+
+
+def compiled_available() -> bool:
+    """True when the compiled fused kernels can be used (numba installed)."""
+    return _kernels() is not None
 
 
 def fusable(*, cross_section: Any, decompose: str | None, absorbing: str,

@@ -17,7 +17,7 @@ from typing import Any
 import numpy as np
 
 from ...errors import SchemaError
-from ._kernels_fused import fusable, fused_energy_range, fused_pass, last_rows
+from ._kernels_fused import compiled_available, fusable, fused_energy_range, fused_pass, last_rows
 from .gaps import time_fill
 from .pulses import FWHM_TO_SIGMA
 from .sticks import THRESHOLD_TAIL, absorbed_extension, energy_range
@@ -35,9 +35,7 @@ def use_fused(*, cross_section: Any, decompose: str | None, absorbing: str,
 def energy_range_partial(block: Any, span: Any, total_energy: float, tail: float = 0.0,
                          shifts: np.ndarray | None = None) -> dict[str, float]:
     """:func:`.sticks.energy_range`, compiled when numba is installed (same result)."""
-    from ._kernels_deposit import numba_available
-
-    if block.cation_energies is None or block.dyson is None or not numba_available():
+    if block.cation_energies is None or block.dyson is None or not compiled_available():
         return energy_range(block, span, total_energy, tail, shifts)
     return fused_energy_range(block, total_energy, tail, shifts)
 
