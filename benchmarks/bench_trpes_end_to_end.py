@@ -168,19 +168,8 @@ def main(argv: list[str] | None = None) -> int:
     peak = float(np.abs(b).max())
     print(f"  maps agree with the peer to {np.abs(a - b).max() / peak:.1e} of the peak "
           "(binning vs point sampling; a sanity check, not a test)")
-    # the model from compute_trpes(return_model=True) holds the numpy path's sticks
-    tb, e, w = model.tbin, model.sticks.energy, model.sticks.weight
-    c = model._cache
-    fns = {"peer": lambda: peer_map(ens), "ours": lambda: ours(ens),
-           "numpy_path": lambda: ours_numpy_path(ens),
-           "deposit": lambda: KD.deposit_moments(tb, e, w, n_time=model.n_time,
-                                                 e_lo=c["e_lo"], h=c["h"],
-                                                 n_fine=c["n_fine"], order=model.order,
-                                                 tfrac=model.tfrac)}
-    if compiled:
-        fns["fused"] = lambda: fused_only(ens, model)
-    t = best_interleaved(fns, rounds)
-    del model, fns, tb, e, w
+    t = time_paths(ens, model, rounds, compiled)
+    del model  # its sticks
     print(f"  end to end: compute_trpes {t['ours'] * 1e3:.0f} ms, peer (histogram2d + "
           f"gaussian_filter1d) {t['peer'] * 1e3:.0f} ms -> {t['peer'] / t['ours']:.1f}x "
           "(goal >= 20x)")
@@ -192,6 +181,36 @@ def main(argv: list[str] | None = None) -> int:
               f"{t['deposit'] * 1e3:.0f} ms")
     else:
         print(f"  in-kernel: deposit alone on prepared sticks {t['deposit'] * 1e3:.0f} ms")
+    r, n_pass = time_cache(ens, rounds)
+    print(f"  cached redraw ({n_pass} pass over the ensemble): probe width "
+          f"{r['width'] * 1e3:.0f} ms, resolution {r['resolution'] * 1e3:.0f} ms (goal <= 150 "
+          f"ms), photon energy {r['photon'] * 1e3:.0f} ms (goal <= 300 ms)")
+    mb_in = input_bytes(ens) / 1e6
+    p_ours, p_peer = peak_mb(lambda: ours(ens)), peak_mb(lambda: peer_map(ens))
+    print(f"  peak memory (tracemalloc): compute_trpes {p_ours:.0f} MB, peer {p_peer:.0f} MB; "
+          f"input arrays {mb_in:.0f} MB ({p_ours / mb_in:.2f}x and {p_peer / mb_in:.2f}x); "
+          "pooled deposit accumulators reused from earlier calls are not counted")
+    return 0
+
+
+def time_paths(ens: Ensemble, model, rounds: int, compiled: bool) -> dict[str, float]:
+    """Interleaved best times of the peer, compute_trpes, the numpy path and the kernels."""
+    # the model from compute_trpes(return_model=True) holds the numpy path's sticks
+    tb, e, w = model.tbin, model.sticks.energy, model.sticks.weight
+    c = model._cache
+    fns = {"peer": lambda: peer_map(ens), "ours": lambda: ours(ens),
+           "numpy_path": lambda: ours_numpy_path(ens),
+           "deposit": lambda: KD.deposit_moments(tb, e, w, n_time=model.n_time,
+                                                 e_lo=c["e_lo"], h=c["h"],
+                                                 n_fine=c["n_fine"], order=model.order,
+                                                 tfrac=model.tfrac)}
+    if compiled:
+        fns["fused"] = lambda: fused_only(ens, model)
+    return best_interleaved(fns, rounds)
+
+
+def time_cache(ens: Ensemble, rounds: int) -> tuple[dict[str, float], int]:
+    """Redraw times of a StickCache for a new width, resolution and photon energy."""
     cache = prepare_map_cache(ens, probe=PROBE, photon_energies=(4.8, 5.2), weights="uniform")
     kw = {"kinetic_energies": ENERGIES, "delays": DELAYS, "convolve": False}
     cache.map(**kw)
@@ -199,16 +218,7 @@ def main(argv: list[str] | None = None) -> int:
         "width": lambda: cache.map(probe_fwhm=40.0, **kw),
         "resolution": lambda: cache.map(resolution=0.05, **kw),
         "photon": lambda: cache.map(photon_energy=4.9, **kw)}, rounds)
-    print(f"  cached redraw ({cache.rebuilds} pass over the ensemble): probe width "
-          f"{r['width'] * 1e3:.0f} ms, resolution {r['resolution'] * 1e3:.0f} ms (goal <= 150 "
-          f"ms), photon energy {r['photon'] * 1e3:.0f} ms (goal <= 300 ms)")
-    del cache
-    mb_in = input_bytes(ens) / 1e6
-    p_ours, p_peer = peak_mb(lambda: ours(ens)), peak_mb(lambda: peer_map(ens))
-    print(f"  peak memory (tracemalloc): compute_trpes {p_ours:.0f} MB, peer {p_peer:.0f} MB; "
-          f"input arrays {mb_in:.0f} MB ({p_ours / mb_in:.2f}x and {p_peer / mb_in:.2f}x); "
-          "pooled deposit accumulators reused from earlier calls are not counted")
-    return 0
+    return r, cache.rebuilds
 
 
 if __name__ == "__main__":

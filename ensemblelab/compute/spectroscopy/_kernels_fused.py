@@ -41,8 +41,8 @@ import numpy as np
 from ...units import HARTREE_EV
 from .cross_sections import AnionThresholdLaw, DysonNorm, HydrogenicCoulomb, HydrogenicPWA
 
-__all__ = ["fusable", "compiled_available", "cross_section_code", "fused_energy_range", "fused_pass",
-           "last_rows", "MIN_SNAPSHOTS_PER_THREAD"]
+__all__ = ["fusable", "compiled_available", "cross_section_code", "fused_energy_range",
+           "fused_pass", "last_rows", "trajectory_rows", "MIN_SNAPSHOTS_PER_THREAD"]
 
 #: fewest snapshots per thread before a second thread is worth its accumulator
 MIN_SNAPSHOTS_PER_THREAD = 1 << 17
@@ -237,6 +237,20 @@ def _pass(time, active, tix, w_traj, energies, cat, dyson, by_state, shifts, kin
             vq *= buf_d[q]
 
 
+def _rows_of(ids, col, out):  # pragma: no cover - compiled by numba
+    """Row of ``ids`` (sorted, unique) holding each ``col`` value, for ``col`` sorted;
+    False (stop) at the first value out of order or not found."""
+    j = 0
+    for i in range(col.shape[0]):
+        v = col[i]
+        while j < ids.shape[0] and ids[j] < v:
+            j += 1
+        if j == ids.shape[0] or ids[j] != v:
+            return False
+        out[i] = j
+    return True
+
+
 def _range(active, energies, cat, dyson, by_state, shifts, total, tail,
            out):  # pragma: no cover - compiled by numba
     """Smallest and largest stick energy (excess above ``-tail``, data present)."""
@@ -277,14 +291,15 @@ def _kernels() -> dict[str, Callable[..., Any]] | None:
                 except ImportError:
                     _COMPILED["pass"] = None
                 else:
-                    from ._kernels_deposit import compiled_helpers
+                    from ._intrinsics import compiled_helpers
 
                     jit = numba.njit(nogil=True, boundscheck=False)
                     g = globals()
                     g["_prefetch"], g["_add8"] = compiled_helpers(numba)
                     inl = numba.njit(nogil=True, boundscheck=False, inline="always")
                     g["_sigma"] = inl(_sigma)
-                    _COMPILED.update({"range": jit(_range), "last": jit(_last)})
+                    _COMPILED.update({"range": jit(_range), "last": jit(_last),
+                                      "rows_of": jit(_rows_of)})
                     _COMPILED["pass"] = jit(_pass)
     return None if _COMPILED["pass"] is None else _COMPILED
 
@@ -314,6 +329,20 @@ def fused_energy_range(block: Any, total_energy: float, tail: float,
     k["range"](a["active"], a["energies"], a["cat"], a["dyson"], a["by_state"], a["shifts"],
                float(total_energy), float(tail), out)
     return {"e_min": float(out[0]), "e_max": float(out[1])}
+
+
+def trajectory_rows(block: Any) -> np.ndarray:
+    """``block.traj_index`` (trajectory row of each snapshot) by one compiled merge when
+    the snapshots are sorted by trajectory (as ensembles store them), else numpy's."""
+    k = _kernels()
+    ids = block.trajectories["traj"].to_numpy()
+    col = block.snapshots["traj"].to_numpy()
+    if k is not None and ids.dtype.kind in "iu" and col.dtype.kind in "iu":
+        out = np.empty(col.shape[0], dtype=np.int64)
+        if k["rows_of"](np.ascontiguousarray(ids, dtype=np.int64),
+                        np.ascontiguousarray(col, dtype=np.int64), out):
+            return out
+    return np.asarray(block.traj_index, dtype=np.int64)
 
 
 def last_rows(tix: np.ndarray, time: np.ndarray, n_trajectories: int) -> np.ndarray:

@@ -17,7 +17,14 @@ from typing import Any
 import numpy as np
 
 from ...errors import SchemaError
-from ._kernels_fused import compiled_available, fusable, fused_energy_range, fused_pass, last_rows
+from ._kernels_fused import (
+    compiled_available,
+    fusable,
+    fused_energy_range,
+    fused_pass,
+    last_rows,
+    trajectory_rows,
+)
 from .gaps import time_fill
 from .pulses import FWHM_TO_SIGMA
 from .sticks import THRESHOLD_TAIL, absorbed_extension, energy_range
@@ -69,7 +76,7 @@ def fused_partial(block: Any, opts: dict[str, Any], w_traj: np.ndarray) -> dict[
               "e_lo": opts["e_lo"], "h": opts["h"], "n_fine": opts["n_fine"],
               "order": opts["order"], "shifts": shifts}
     fill = opts.get("fill")
-    tix = np.ascontiguousarray(block.traj_index, dtype=np.int64)
+    tix = trajectory_rows(block)
     common["tix"] = tix
     try:
         r = fused_pass(block, deposit=True, alive=True, fill=fill, **common)
@@ -98,8 +105,9 @@ def fused_partial(block: Any, opts: dict[str, Any], w_traj: np.ndarray) -> dict[
             "counts": {k: np.int64(v) for k, v in counts.items()}}
 
 
-def _extension(block: Any, w_traj: np.ndarray, tix: np.ndarray, *, probe: Any, shifts: np.ndarray | None,
-               state: int, t_end: float, start: float, dt: float, n_time: int) -> Any:
+def _extension(block: Any, w_traj: np.ndarray, tix: np.ndarray, *, probe: Any,
+               shifts: np.ndarray | None, state: int, t_end: float, start: float, dt: float,
+               n_time: int) -> Any:
     """:func:`.sticks.absorbed_extension` from each trajectory's last row only."""
     time = block.snapshots["time"].to_numpy()
     rows = last_rows(tix, time, block.n_trajectories)
