@@ -131,7 +131,7 @@ def pick_add8(numba):
     return scalar  # pragma: no cover
 
 
-def compiled_helpers(numba):  # type: ignore[no-untyped-def]
+def compiled_helpers(numba):
     """The numba intrinsics ``(prefetch(arr, i), add8(acc, row, v, d))`` of this module.
 
     ``add8`` adds the 8 moments ``v d^k`` at ``acc[row:row + 8]`` (``row`` uint64), for

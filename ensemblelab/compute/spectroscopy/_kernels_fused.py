@@ -251,12 +251,13 @@ def _rows_of(ids, col, out):  # pragma: no cover - compiled by numba
     return True
 
 
-def _range(active, energies, cat, dyson, by_state, shifts, total, tail,
+def _range(active, energies, cat, dyson, by_state, shifts, total, tail, lo, hi,
            out):  # pragma: no cover - compiled by numba
-    """Smallest and largest stick energy (excess above ``-tail``, data present)."""
+    """Smallest and largest stick energy of snapshots ``lo:hi`` (excess above ``-tail``,
+    data present)."""
     lo_e = math.inf
     hi_e = -math.inf
-    for i in range(cat.shape[0]):
+    for i in range(lo, hi):
         a = active[i]
         en = energies[i, a]
         s = a if by_state else 0
@@ -324,11 +325,25 @@ def fused_energy_range(block: Any, total_energy: float, tail: float,
     """:func:`.sticks.energy_range` in one compiled pass (no ``n x n_cation`` arrays)."""
     k = _kernels()
     assert k is not None  # callers check fusable() / numba first
+    from ._kernels_deposit import usable_cores
+
     a = _arrays(block, shifts)
-    out = np.empty(2)
-    k["range"](a["active"], a["energies"], a["cat"], a["dyson"], a["by_state"], a["shifts"],
-               float(total_energy), float(tail), out)
-    return {"e_min": float(out[0]), "e_max": float(out[1])}
+    n = a["cat"].shape[0]
+    n_threads = max(1, min(usable_cores(), n // MIN_SNAPSHOTS_PER_THREAD))
+    bounds = [t * n // n_threads for t in range(n_threads + 1)]
+    out = np.empty((n_threads, 2))
+
+    def run(t: int) -> None:
+        k["range"](a["active"], a["energies"], a["cat"], a["dyson"], a["by_state"],
+                   a["shifts"], float(total_energy), float(tail), bounds[t], bounds[t + 1],
+                   out[t])
+
+    if n_threads == 1:
+        run(0)
+    else:
+        with ThreadPoolExecutor(n_threads) as pool:
+            list(pool.map(run, range(n_threads)))
+    return {"e_min": float(out[:, 0].min()), "e_max": float(out[:, 1].max())}
 
 
 def trajectory_rows(block: Any) -> np.ndarray:
