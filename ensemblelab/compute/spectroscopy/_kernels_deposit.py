@@ -219,15 +219,14 @@ def _numba_kernel() -> Callable[..., int] | None:
 
 
 def pooled_accumulators(size: int, count: int) -> list[np.ndarray]:
-    """`count` zeroed, 64-byte aligned float64 accumulators of `size` from the pool.
+    """`count` 64-byte aligned float64 accumulators of `size` from the pool (contents
+    undefined: zero them in the thread that uses them, as :func:`_deposit_numba` does).
 
     The first is leased (it re-enters the pool when nothing refers to it any more: return
     it, or views of it, to callers); hand the others back with
     :func:`release_accumulators`. Reused memory saves the page faults of fresh memory.
     """
     taken = _scratch_take(size, count)
-    for a in taken:
-        a.fill(0.0)
     return [_lease(taken[0])] + taken[1:] if taken else []
 
 

@@ -449,6 +449,7 @@ def fused_pass(block: Any, *, w_traj: np.ndarray, cross_section: Any, total_ener
 
     def run(t: int) -> tuple[np.ndarray, ...]:
         acc = accs[t]
+        acc.fill(0.0)  # in order, in the thread that will use the memory
         al, al_n = np.zeros(n_time + 1), np.zeros(n_time + 1)
         al_ch = np.zeros((n_time + 1, n_cat)) if alive else np.zeros((1, 1))
         counts = np.zeros(4, dtype=np.int64)
@@ -464,11 +465,17 @@ def fused_pass(block: Any, *, w_traj: np.ndarray, cross_section: Any, total_ener
         if n_threads == 1:
             parts = [run(0)]
         else:
+            cuts = [t * size // n_threads for t in range(n_threads + 1)]
+
+            def run_sum(t: int) -> None:  # accs[0] += accs[1] + ..., split over threads
+                sl = slice(cuts[t], cuts[t + 1])
+                for other in accs[1:]:
+                    accs[0][sl] += other[sl]
+
             with ThreadPoolExecutor(n_threads) as pool:
                 parts = list(pool.map(run, range(n_threads)))
+                list(pool.map(run_sum, range(n_threads)))
         acc, al, al_n, al_ch, counts = parts[0]
-        for p in parts[1:]:
-            acc += p[0]
     finally:
         release_accumulators(accs[1:])
     for p in parts[1:]:
