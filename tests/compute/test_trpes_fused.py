@@ -278,3 +278,21 @@ def test_sparse_time_matrix_assembly_equals_dense_product():
     expect = np.einsum("dt,cte->cde", cmat, full)
     np.testing.assert_allclose(KB.assemble(hist, bmat, cmat), expect, rtol=1e-12,
                                atol=1e-12 * np.abs(expect).max())
+
+
+def test_end_to_end_benchmark_quick_run(capsys):
+    import sys
+    from pathlib import Path
+
+    sys.path.insert(0, str(Path(__file__).resolve().parents[2] / "benchmarks"))
+    import bench_trpes_end_to_end as bench
+
+    assert bench.main(["--quick"]) == 0
+    out = capsys.readouterr().out
+    for text in ("end to end:", "in-kernel:", "cached redraw", "peak memory"):
+        assert text in out
+    # the peer and compute_trpes make the same physics: delay-averaged spectra agree
+    # (binning vs point sampling; tolerance common practice for such a sanity check)
+    ens = bench.make_ensemble(30, 400, seed=5)
+    a, b = bench.ours(ens).mean(axis=0), bench.peer_map(ens).mean(axis=0)
+    assert np.abs(a - b).max() < 0.05 * np.abs(b).max()
