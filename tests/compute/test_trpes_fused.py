@@ -296,3 +296,21 @@ def test_end_to_end_benchmark_quick_run(capsys):
     ens = bench.make_ensemble(30, 400, seed=5)
     a, b = bench.ours(ens).mean(axis=0), bench.peer_map(ens).mean(axis=0)
     assert np.abs(a - b).max() < 0.05 * np.abs(b).max()
+
+
+def test_fused_equals_numpy_on_the_demo_ensemble(monkeypatch):
+    # an ensemble from the package's own (invented) demo, with its faults and metadata
+    from pathlib import Path
+
+    demo = Path(__file__).resolve().parents[2] / "demo_data" / "ensemble"
+    if not demo.exists():
+        pytest.skip("demo data not present")
+    ens = load(demo, progress=False)
+    ens = ens.without([int(k) for k in ens.metadata.get("injected_faults", [])])
+    if ens.cation_energies is None:
+        pytest.skip("demo without cation energies")
+    probe = GaussianPulse(photon_energy=float(ens.cation_energies[0].max()) - 1.0, fwhm=35.0)
+    kw = {"probe": probe, "pump": GaussianPulse(photon_energy=3.0, fwhm=40.0),
+          "resolution": 0.05, "kinetic_energies": np.linspace(0.0, 4.0, 161),
+          "delays": np.arange(-50.0, 501.0, 10.0), "progress": False}
+    _same(*_pair(monkeypatch, ens, **kw))
