@@ -294,7 +294,7 @@ def _kernels() -> dict[str, Callable[..., Any]] | None:
                 else:
                     from ._intrinsics import compiled_helpers
 
-                    jit = numba.njit(nogil=True, boundscheck=False)
+                    jit = numba.njit(cache=True, nogil=True, boundscheck=False)
                     g = globals()
                     g["_prefetch"], g["_add8"] = compiled_helpers(numba)
                     inl = numba.njit(nogil=True, boundscheck=False, inline="always")
