@@ -140,6 +140,11 @@ def _pass(time, active, tix, w_traj, energies, cat, dyson, by_state, shifts, kin
     buf_d = np.zeros(BATCH)
     buf_v = np.zeros(BATCH)
     nb = 0
+    two_lines = order != 8 or acc.ctypes.data % 64 != 0
+    n_bad = 0
+    n_sig = 0
+    n_miss = 0
+    n_st = 0
     for i in range(lo, hi):
         a = active[i]
         en = energies[i, a]
@@ -150,7 +155,7 @@ def _pass(time, active, tix, w_traj, energies, cat, dyson, by_state, shifts, kin
         if abs(f) < 1e-9:
             f = 0.0
         if j < 0 or j >= n_time:
-            counts[0] += 1
+            n_bad += 1
             continue
         s = a if by_state else 0
         n_has = 0
@@ -169,23 +174,23 @@ def _pass(time, active, tix, w_traj, energies, cat, dyson, by_state, shifts, kin
                 continue
             sig = _sigma(kind, p1, p2, d, e if e > 0.0 else 0.0, ip, total)
             if not (math.isfinite(sig) and sig >= 0.0):
-                counts[1] += 1
+                n_sig += 1
                 continue
             v = w * sig
             p = e * inv_h + shift_e
             if not (p >= 0.0 and p < fn):
-                counts[0] += 1
+                n_bad += 1
                 continue
             b = np.int64(p)
             dd = p - b - 0.5
             if not fill_on:
-                counts[3] += 1
+                n_st += 1
             for part in range(2):  # the two grid points of the linear split
                 if part == 1 and not f > 0.0:
                     break
                 bb = j + part
                 if bb >= n_time:
-                    counts[0] += 1
+                    n_bad += 1
                     break
                 share = (1.0 - f) if part == 0 else f
                 c0 = 0
@@ -203,14 +208,15 @@ def _pass(time, active, tix, w_traj, energies, cat, dyson, by_state, shifts, kin
                         tgt = f_gap[c]
                         wt = v * share * f_fac[c]
                     if fill_on:
-                        counts[3] += 1
+                        n_st += 1
                     # queue the stick, its cell prefetched; add the queue when full
                     r = np.uint64((tgt * n_fine + b) * order)
                     buf_r[nb] = r
                     buf_d[nb] = dd
                     buf_v[nb] = wt
                     _prefetch(acc, r)
-                    _prefetch(acc, r + np.uint64(order - 1))
+                    if two_lines:
+                        _prefetch(acc, r + np.uint64(order - 1))
                     nb += 1
                     if nb == BATCH:
                         for q in range(nb):
@@ -223,13 +229,17 @@ def _pass(time, active, tix, w_traj, energies, cat, dyson, by_state, shifts, kin
                                     vq *= buf_d[q]
                         nb = 0
         if n_has < n_cat:
-            counts[2] += 1
+            n_miss += 1
         if do_alive and n_has > 0:
             alive[j] += w * (1.0 - f)
             alive_n[j] += 1.0 - f
             if f > 0.0 and j + 1 < n_time:
                 alive[j + 1] += w * f
                 alive_n[j + 1] += f
+    counts[0] += n_bad
+    counts[1] += n_sig
+    counts[2] += n_miss
+    counts[3] += n_st
     for q in range(nb):
         vq = buf_v[q]
         for m in range(order):
