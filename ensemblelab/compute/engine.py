@@ -304,7 +304,10 @@ def _time_stats_partial(block: Any, span: BlockSpan) -> dict[str, Any]:
     time = block.snapshots["time"].to_numpy()
     traj = block.snapshots["traj"].to_numpy()
     dt = np.diff(time)[traj[1:] == traj[:-1]]
-    u, c = np.unique(dt, return_counts=True)
+    if dt.size and dt.min() == dt.max():  # one step everywhere: no sort needed
+        u, c = dt[:1].copy(), np.array([dt.size], dtype=np.int64)
+    else:
+        u, c = np.unique(dt, return_counts=True)
     return {"t_min": float(time.min()) if time.size else math.inf,
             "t_max": float(time.max()) if time.size else -math.inf, "dt": (u, c)}
 

@@ -11,11 +11,14 @@ Modules: :mod:`.weights` (doorway and trajectory weights), :mod:`.sampling` (the
 a block of trajectories), :mod:`.model` (moment histograms and broadening),
 :mod:`.maps` (:func:`compute_trpes`), :mod:`.contributions` (region shares); the array
 kernels are ``_kernels_deposit`` and ``_kernels_broadening`` with their naive twins in
-``_reference_trpes``.
+``_reference_trpes``; :mod:`.fused` (``_kernels_fused``) forms and deposits the sticks
+in one compiled pass where it applies (the numpy stick path is its twin);
+:mod:`.cache` (:class:`StickCache`) redraws maps for new widths and photon energies.
 """
 
 from __future__ import annotations
 
+from .cache import StickCache, prepare_map_cache
 from .compare import MapComparison, compare_maps, resample_map
 from .contributions import contributions, model_for_map, region_intensity
 from .cross_sections import (
@@ -91,4 +94,6 @@ __all__ = [
     "signal_extent",
     "fit_measured_map",
     "MeasuredFitResult",
+    "StickCache",
+    "prepare_map_cache",
 ]

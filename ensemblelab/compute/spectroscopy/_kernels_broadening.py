@@ -334,6 +334,24 @@ def _single_thread_blas() -> Any:
     return contextlib.nullcontext() if ctl is None else ctl.limit(limits=1, user_api="blas")
 
 
+#: time matrices with at most this many nonzeros per output row (on average) are applied
+#: before the energy broadening, as sparse products (linear interpolation has 2)
+SPARSE_TIME_NNZ = 4
+
+
+def _sparse_rows(cmat: np.ndarray, m: np.ndarray) -> np.ndarray:
+    """``cmat @ m`` summing over the nonzeros of each row of `cmat` only."""
+    rows, cols = np.nonzero(cmat)
+    out = np.zeros((cmat.shape[0], m.shape[1]))
+    for r0 in range(int(np.bincount(rows).max()) if rows.size else 0):
+        # the r0-th nonzero of every row that has one: one gather-multiply-add each
+        first = np.r_[0, np.flatnonzero(np.diff(rows)) + 1]
+        counts = np.diff(np.r_[first, rows.size])
+        sel = first[counts > r0] + r0
+        out[rows[sel]] += cmat[rows[sel], cols[sel], None] * m[cols[sel]]
+    return out
+
+
 def _assemble(hist: np.ndarray, blocks: BroadeningBlocks, cmat: np.ndarray | None,
               n_threads: int | None) -> np.ndarray:
     order, n_comp, n_time, n_fine = hist.shape
@@ -347,6 +365,12 @@ def _assemble(hist: np.ndarray, blocks: BroadeningBlocks, cmat: np.ndarray | Non
     # deposit's layout, a copy for the numpy one)
     h2 = [np.moveaxis(hist[:, c], 0, -1).reshape(n_time, n_fine * order)
           for c in range(n_comp)]
+    if cmat is not None and np.count_nonzero(cmat) <= SPARSE_TIME_NNZ * n_out:
+        # a sparse time matrix (linear interpolation, no convolution): apply it first,
+        # on its nonzeros only, so the energy products run on n_delays rows, not n_time
+        h2 = [_sparse_rows(cmat, m) for m in h2]
+        cmat = None
+        n_time = n_out
     if n_threads is None:
         n_threads = max(1, min(usable_cores(), len(blocks),
                                (n_time * n_e * n_comp) // MIN_CELLS_PER_THREAD))

@@ -36,6 +36,8 @@ from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
 
+from ._intrinsics import add8_scalar, make_prefetch, pick_add8
+
 __all__ = [
     "DEFAULT_CHUNK",
     "BACKENDS",
@@ -43,6 +45,8 @@ __all__ = [
     "usable_cores",
     "deposit_moments",
     "deposit_counts",
+    "pooled_accumulators",
+    "release_accumulators",
 ]
 
 #: sticks per chunk in :func:`deposit_moments` (~2 MB per float64 buffer)
@@ -188,130 +192,12 @@ def _prefetch(arr, index):  # pragma: no cover - replaced by a numba intrinsic
     """Hint the CPU to fetch ``arr[index]`` into cache (no effect on results)."""
 
 
-def _add8_scalar(acc, row, v, d):  # pragma: no cover - compiled by numba
-    """``acc[row + k] += v d^k`` for k = 0..7 (the products of the vector version)."""
-    d2 = d * d
-    v1 = v * d
-    v2 = v * d2
-    v3 = v1 * d2
-    d4 = d2 * d2
-    acc[row] += v
-    acc[row + np.uint64(1)] += v1
-    acc[row + np.uint64(2)] += v2
-    acc[row + np.uint64(3)] += v3
-    acc[row + np.uint64(4)] += v * d4
-    acc[row + np.uint64(5)] += v1 * d4
-    acc[row + np.uint64(6)] += v2 * d4
-    acc[row + np.uint64(7)] += v3 * d4
-
-
 #: replaced by the vector intrinsic (or the compiled scalar version) on first use
-_add8 = _add8_scalar
-
-
-def _make_add8(numba):
-    """A numba intrinsic ``add8(acc, row, v, d)``: :func:`_add8_scalar` as one 8-wide
-    vector load, add and store (the same products, so the same numbers)."""
-    from llvmlite import ir
-    from numba.core import cgutils
-
-    @numba.extending.intrinsic
-    def add8(typingctx, arr, index, v, d):
-        sig = numba.types.void(arr, index, v, d)
-
-        def codegen(context, builder, signature, args):
-            aryty = signature.args[0]
-            ary = context.make_array(aryty)(context, builder, args[0])
-            ptr = cgutils.get_item_pointer(context, builder, aryty, ary, [args[1]],
-                                           wraparound=False)
-            i32 = ir.IntType(32)
-            v4t = ir.VectorType(ir.DoubleType(), 4)
-            v8t = ir.VectorType(ir.DoubleType(), 8)
-            vv, dd = args[2], args[3]
-            d2 = builder.fmul(dd, dd)
-            v1 = builder.fmul(vv, dd)
-            v2 = builder.fmul(vv, d2)
-            v3 = builder.fmul(v1, d2)
-            d4 = builder.fmul(d2, d2)
-            lo = ir.Constant(v4t, ir.Undefined)
-            for k, x in enumerate((vv, v1, v2, v3)):
-                lo = builder.insert_element(lo, x, ir.Constant(i32, k))
-            b4 = builder.insert_element(ir.Constant(v4t, ir.Undefined), d4, ir.Constant(i32, 0))
-            b4 = builder.shuffle_vector(b4, b4, ir.Constant(ir.VectorType(i32, 4), [0] * 4))
-            hi = builder.fmul(lo, b4)
-            full = builder.shuffle_vector(lo, hi, ir.Constant(ir.VectorType(i32, 8),
-                                                              list(range(8))))
-            if getattr(ptr.type, "is_opaque", False):
-                old = builder.load(ptr, align=8, typ=v8t)
-                vptr = ptr
-            else:
-                vptr = builder.bitcast(ptr, v8t.as_pointer())
-                old = builder.load(vptr, align=8)
-            builder.store(builder.fadd(old, full), vptr, align=8)
-            return context.get_dummy_value()
-
-        return sig, codegen
-
-    return add8
+_add8 = add8_scalar
 
 
 _NUMBA_LOCK = threading.Lock()
 _NUMBA: dict[str, Callable[..., int] | None] = {}
-
-
-def _make_prefetch(numba):
-    """A numba intrinsic ``prefetch(arr, index)``: LLVM's prefetch (write, keep in cache).
-
-    A prefetch never faults and never changes results; it lets the CPU fetch the
-    accumulator lines of sticks a few places ahead while the current one is added.
-    """
-    from llvmlite import ir
-    from numba.core import cgutils
-
-    @numba.extending.intrinsic
-    def prefetch(typingctx, arr, index):
-        sig = numba.types.void(arr, index)
-
-        def codegen(context, builder, signature, args):
-            aryty = signature.args[0]
-            ary = context.make_array(aryty)(context, builder, args[0])
-            ptr = cgutils.get_item_pointer(context, builder, aryty, ary, [args[1]],
-                                           wraparound=False)
-            i32 = ir.IntType(32)
-            name = "llvm.prefetch.p0" if getattr(ptr.type, "is_opaque", False) else \
-                "llvm.prefetch.p0i8"
-            if name.endswith("i8"):
-                ptr = builder.bitcast(ptr, ir.IntType(8).as_pointer())
-            fn = cgutils.get_or_insert_function(
-                builder.module, ir.FunctionType(ir.VoidType(), [ptr.type, i32, i32, i32]), name)
-            builder.call(fn, [ptr, ir.Constant(i32, 1), ir.Constant(i32, 3), ir.Constant(i32, 1)])
-            return context.get_dummy_value()
-
-        return sig, codegen
-
-    return prefetch
-
-
-def _pick_add8(numba):
-    """The vector :func:`_add8` intrinsic if it compiles and agrees with the scalar one,
-    else the compiled scalar version (older or newer llvmlite, other CPUs)."""
-    scalar = numba.njit(nogil=True, boundscheck=False)(_add8_scalar)
-    try:
-        vec = _make_add8(numba)
-
-        @numba.njit(nogil=True, boundscheck=False)
-        def probe(acc, row, v, d):
-            vec(acc, row, v, d)
-
-        a = np.arange(10.0)
-        b = a.copy()
-        probe(a, np.uint64(1), 0.7, -0.3)
-        scalar(b, np.uint64(1), 0.7, -0.3)
-        if np.array_equal(a, b):
-            return vec
-    except Exception:  # pragma: no cover - depends on the numba/llvmlite build
-        pass
-    return scalar  # pragma: no cover
 
 
 def _numba_kernel() -> Callable[..., int] | None:
@@ -325,11 +211,28 @@ def _numba_kernel() -> Callable[..., int] | None:
                 except ImportError:
                     _NUMBA["dep"] = None
                 else:
-                    _prefetch = _make_prefetch(numba)  # globals of _dep_range
-                    _add8 = _pick_add8(numba)
+                    _prefetch = make_prefetch(numba)  # globals of _dep_range
+                    _add8 = pick_add8(numba)
                     _NUMBA["dep"] = numba.njit(cache=True, nogil=True, boundscheck=False)(
                         _dep_range)
     return _NUMBA["dep"]
+
+
+def pooled_accumulators(size: int, count: int) -> list[np.ndarray]:
+    """`count` 64-byte aligned float64 accumulators of `size` from the pool (contents
+    undefined: zero them in the thread that uses them, as :func:`_deposit_numba` does).
+
+    The first is leased (it re-enters the pool when nothing refers to it any more: return
+    it, or views of it, to callers); hand the others back with
+    :func:`release_accumulators`. Reused memory saves the page faults of fresh memory.
+    """
+    taken = _scratch_take(size, count)
+    return [_lease(taken[0])] + taken[1:] if taken else []
+
+
+def release_accumulators(arrays: list[np.ndarray]) -> None:
+    """Give scratch accumulators from :func:`pooled_accumulators` back to the pool."""
+    _scratch_give(arrays)
 
 
 def numba_available() -> bool:

@@ -47,6 +47,7 @@ from ._checks import (
     grid_from_range,
 )
 from .cross_sections import CrossSection, describe_cross_section, resolve_cross_section
+from .fused import energy_range_partial, fused_partial, use_fused
 from .gaps import time_fill
 from .model import TRPESModel, deposit
 from .pulses import FWHM_TO_SIGMA, GaussianPulse
@@ -58,7 +59,6 @@ from .sticks import (
     check_absorbing,
     check_shifts,
     check_trpes_inputs,
-    energy_range,
 )
 from .weights import (
     ground_state_ionisation_fraction,
@@ -126,7 +126,7 @@ def _stick_energy_range(source: BlockSource, total_energy: float, *, tail: float
         else:
             pending.append(span.index)
     if pending:
-        rest = reduce(source, energy_range, _merge_range, args=(total_energy, tail, shifts),
+        rest = reduce(source, energy_range_partial, _merge_range, args=(total_energy, tail, shifts),
                       fields=["energies", "cation_energies"], indices=pending, client=client,
                       scheduler=scheduler, desc="energy range")
         lo, hi = min(lo, rest["e_min"]), max(hi, rest["e_max"])
@@ -162,6 +162,8 @@ def trpes_partial(block: Any, span: BlockSpan, opts: dict[str, Any]) -> dict[str
     if excluded is not None and len(excluded):  # excluded trajectories: weight 0, not alive
         keep = ~np.isin(block.trajectories["traj"].to_numpy(), excluded)
         w_traj = np.where(keep, w_traj, 0.0)
+    if opts.get("fused") and keep is None:  # compiled stick preparation + deposit
+        return fused_partial(block, opts, w_traj)  # (same numbers; exclusions: numpy path)
     bs = block_sticks(block, probe=opts["probe"], cross_section=opts["cross_section"],
                       w_traj=w_traj, keep=keep, weights_used=opts["weights_used"],
                       decompose=opts["decompose"], start=opts["start"], dt=opts["dt"],
@@ -206,11 +208,14 @@ def trpes_model(
     ionisation_shifts: Sequence[float] | Mapping[int, float] | None = None,
     absorbing: str = "zero",
     exclude: npt.ArrayLike | None = None,
+    keep_sticks: bool | None = None,
 ) -> TRPESModel:
     """The stick model of an ensemble or chunked store, moments deposited (the reduction).
 
     Parameters are those of :func:`compute_trpes`. An in-memory ensemble's model keeps
-    its sticks too; a chunked store's keeps the moments only. Warns (with the
+    its sticks too (unless ``keep_sticks=False``); a chunked store's keeps the moments
+    only. Without sticks to keep, the compiled fused pass (:mod:`.fused`) replaces the
+    numpy stick preparation where it applies. Warns (with the
     reason) when the weights' Kish effective size is below
     :data:`~.sampling.ESS_WARN_FRACTION` of the trajectories, when the sampling had to
     be assumed, and when the probe can ionise the absorbing state.
@@ -239,16 +244,19 @@ def trpes_model(
     n_fine = int(math.floor((e_hi - e_lo) / h + 0.5)) + 2
     labels = component_labels(source, decompose)
     in_memory = isinstance(ens, Ensemble)
+    keep = in_memory if keep_sticks is None else bool(keep_sticks) and in_memory
     absorbing_state = ensemble_absorbing_state(ens if in_memory else source)
     excluded = excluded_ids(exclude)
     opts = {"probe": probe, "pump": pump, "cross_section": cs, "weights": kind,
             "exclude": excluded,
             "weights_used": used, "decompose": decompose, "n_comp": len(labels), **grid,
             "e_lo": e_lo, "h": h, "n_fine": n_fine, "order": DEFAULT_ORDER,
-            "keep_sticks": in_memory, "progress": progress and in_memory,
+            "keep_sticks": keep, "progress": progress and in_memory,
             "ionisation_shifts": shifts, "absorbing_state": absorbing_state,
             "absorbing": absorbing, "t_end": grid["t_known"], "fill": None,
-            "local_fill": in_memory}
+            "local_fill": in_memory,
+            "fused": use_fused(cross_section=cs, decompose=decompose, absorbing=absorbing,
+                               keep_sticks=keep)}
     fields = [*TRPES_FIELDS, *(("adt", "adt_cation") if decompose == "diabatic" else ())]
     total = reduce(source, trpes_partial, add, args=(opts,), fields=fields, client=client,
                    scheduler=scheduler, progress=progress, desc="TRPES blocks")
@@ -531,7 +539,7 @@ def compute_trpes(
                         cross_section=cross_section, weights=weights, decompose=decompose,
                         time_step=time_step, progress=progress, client=client,
                         scheduler=scheduler, ionisation_shifts=ionisation_shifts,
-                        absorbing=absorbing, exclude=exclude)
+                        absorbing=absorbing, exclude=exclude, keep_sticks=return_model)
     if isinstance(ens, Ensemble):
         fraction = ground_state_ionisation_fraction(ens, probe=probe)
         if fraction > 0:

@@ -21,7 +21,7 @@ keeps the moments only.
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any
 
 import numpy as np
@@ -137,6 +137,24 @@ class TRPESModel:
         """
         self._cache.clear()
         self._cache.update(h=h, e_lo=e_lo, n_fine=n_fine, hist=hist, hist_comp=hist_comp)
+
+    def with_photon_energy(self, photon_energy: float) -> TRPESModel:
+        """This model's moments with every stick moved to another probe photon energy.
+
+        A stick sits at ``n h nu - IP``: a new photon energy moves all sticks by
+        ``n (h nu' - h nu)``, i.e. shifts the fine energy grid of the moments (exact).
+        Valid only when the cross section does not depend on the kinetic energy and
+        the channels open at ``h nu'`` are among the sticks (e.g. ``h nu' <= h nu``);
+        the caller checks both (see :class:`.cache.StickCache`). Moments-only models.
+        """
+        if self.sticks is not None or "e_lo" not in self._cache:
+            raise SchemaError("with_photon_energy needs a model holding moments only (made "
+                              "with keep_sticks=False). Hint: use prepare_map_cache().")
+        probe = GaussianPulse(photon_energy=photon_energy, fwhm=self.probe.fwhm,
+                              n_photons=self.probe.n_photons)
+        cache = dict(self._cache)
+        cache["e_lo"] = cache["e_lo"] + (probe.total_energy - self.probe.total_energy)
+        return replace(self, probe=probe, _cache=cache)
 
     @property
     def times(self) -> np.ndarray:

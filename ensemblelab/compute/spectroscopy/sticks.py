@@ -41,7 +41,7 @@ from .model import TRPESModel
 from .pulses import FWHM_TO_SIGMA, GaussianPulse
 from .weights import trajectory_weights
 
-__all__ = ["BlockSticks", "BlockAlive", "block_sticks", "block_alive",
+__all__ = ["BlockSticks", "BlockAlive", "block_sticks", "block_alive", "absorbed_extension",
            "prepare_sticks", "check_trpes_inputs", "check_shifts", "energy_range",
            "THRESHOLD_TAIL", "ABSORBING_MODES", "check_absorbing"]
 
@@ -213,6 +213,54 @@ class BlockAlive(NamedTuple):
     counts: dict[str, int]  # n_missing_data, n_absorbed, n_absorbed_ionisable
 
 
+class Extension(NamedTuple):
+    """Alive-weight extension of the trajectories stopped in the absorbing state."""
+
+    rows: np.ndarray  # (n_absorbed,) their last rows
+    ext_bin: np.ndarray  # (n_absorbed,) first grid index after the stop
+    ext_first: np.ndarray  # (n_absorbed,) share of that first grid point (1 - frac)
+    ext: np.ndarray  # (n_time,) added alive weight
+    ext_n: np.ndarray  # (n_time,) added alive count
+    counts: dict[str, int]  # n_absorbed, n_absorbed_ionisable
+
+
+def absorbed_extension(last: np.ndarray, active_last: np.ndarray, time_last: np.ndarray,
+                       w_last: np.ndarray, ekin_last: np.ndarray, *, probe: GaussianPulse,
+                       absorbing_state: int, t_end: float, start: float, dt: float,
+                       n_time: int) -> Extension:
+    """The alive weight a trajectory stopped in the absorbing state keeps after its stop.
+
+    Parameters
+    ----------
+    last : ndarray of int, shape (n_traj,)
+        Row of each trajectory's last snapshot.
+    active_last, time_last, w_last : ndarray, shape (n_traj,)
+        Its active state, time (fs) and trajectory weight.
+    ekin_last : ndarray, shape (n_traj, n_cation)
+        Its excess energies (eV; -inf where data are missing).
+    probe, absorbing_state, t_end, start, dt, n_time
+        As for :func:`block_alive`.
+    """
+    tbin, tfrac = time_bins(time_last, start, dt)
+    stop = (active_last == absorbing_state) & (time_last < t_end - 1e-9 * dt)
+    f = np.zeros(int(stop.sum())) if tfrac is None else tfrac[stop]
+    ext_bin = tbin[stop] + 1
+    ext_first = 1.0 - f
+    ok = ext_bin < n_time
+    rows, ext_bin, ext_first = last[stop][ok], ext_bin[ok], ext_first[ok]
+    wa, ek = w_last[stop][ok], ekin_last[stop][ok]
+    ext = np.zeros(n_time)
+    ext_n = np.zeros(n_time)
+    np.add.at(ext, ext_bin, -wa * (1.0 - ext_first))  # first point: the unsplit share
+    np.add.at(ext_n, ext_bin, -(1.0 - ext_first))
+    ext += np.cumsum(np.bincount(ext_bin, wa, minlength=n_time + 1)[:n_time])
+    ext_n += np.cumsum(np.bincount(ext_bin, minlength=n_time + 1)[:n_time].astype(float))
+    opened = probe.open_fraction(ek)
+    return Extension(rows=rows, ext_bin=ext_bin, ext_first=ext_first, ext=ext, ext_n=ext_n,
+                     counts={"n_absorbed": int(rows.size), "n_absorbed_ionisable": int(
+                         np.count_nonzero((opened > 1e-3).any(axis=1)))})
+
+
 def block_alive(block: Any, *, w_traj: np.ndarray, probe: GaussianPulse, start: float,
                 dt: float, n_time: int, ionisation_shifts: np.ndarray | None = None,
                 absorbing_state: int | None = None, absorbing: str = "zero",
@@ -254,30 +302,17 @@ def block_alive(block: Any, *, w_traj: np.ndarray, probe: GaussianPulse, start: 
     if absorbing_state is not None and absorbing != "end" and t_end is not None and n:
         last = _last_rows(block, time)
         last = last[last >= 0]
-        stop = (active[last] == absorbing_state) & (time[last] < t_end - 1e-9 * dt)
-        if keep is not None:
-            stop &= keep[block.traj_index[last]]
-        absorbed = last[stop]
-        f = np.zeros(absorbed.size) if tfrac is None else tfrac[absorbed]
-        ext_bin = tbin[absorbed] + 1
-        ext_first = 1.0 - f
-        ok = ext_bin < n_time
-        absorbed, ext_bin, ext_first = absorbed[ok], ext_bin[ok], ext_first[ok]
-        ext = np.zeros(n_time)
-        ext_n = np.zeros(n_time)
-        wa = w_snap[absorbed]
-        np.add.at(ext, ext_bin, -wa * (1.0 - ext_first))  # first point: the unsplit share
-        np.add.at(ext_n, ext_bin, -(1.0 - ext_first))
-        step = np.bincount(ext_bin, wa, minlength=n_time + 1)[:n_time]
-        step_n = np.bincount(ext_bin, minlength=n_time + 1)[:n_time].astype(float)
-        ext += np.cumsum(step)
-        ext_n += np.cumsum(step_n)
-        alive = alive + ext
-        alive_count = alive_count + ext_n
-        alive_channel = alive_channel + ext[:, None]
-        opened = probe.open_fraction(np.where(has[absorbed], ekin[absorbed], -np.inf))
-        counts["n_absorbed"] = int(absorbed.size)
-        counts["n_absorbed_ionisable"] = int(np.count_nonzero((opened > 1e-3).any(axis=1)))
+        if keep is not None:  # excluded trajectories do not stay alive either
+            last = last[keep[block.traj_index[last]]]
+        x = absorbed_extension(last, active[last], time[last], w_snap[last],
+                               np.where(has[last], ekin[last], -np.inf), probe=probe,
+                               absorbing_state=absorbing_state, t_end=t_end, start=start,
+                               dt=dt, n_time=n_time)
+        absorbed, ext_bin, ext_first = x.rows, x.ext_bin, x.ext_first
+        alive = alive + x.ext
+        alive_count = alive_count + x.ext_n
+        alive_channel = alive_channel + x.ext[:, None]
+        counts.update(x.counts)
     return BlockAlive(alive=alive, alive_count=alive_count, alive_channel=alive_channel,
                       has_data=has, ekin=ekin, ip=ip, active=active, absorbed=absorbed,
                       ext_bin=ext_bin, ext_first=ext_first, counts=counts)

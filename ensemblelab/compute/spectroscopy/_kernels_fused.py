@@ -1,0 +1,506 @@
+"""Fused compiled pass from ensemble arrays to TRPES moment histograms (private).
+
+The numpy path (:func:`.sticks.block_sticks` then :func:`.model.deposit`) builds every
+stick as a row of several arrays of length ``n_snapshots x n_cation`` (ionisation and
+kinetic energies, masks, cross sections, weights, time indices) before depositing
+them. For 10^7 (snapshot, channel) contributions those temporaries cost far more than
+the deposit itself. This module does the same arithmetic in one compiled pass per
+thread over the snapshots: for each snapshot and cation channel it forms
+
+* the ionisation energy ``IP = E_cation,k - E_neutral,active + shift_k`` (eV),
+* the excess energy ``E = n h nu - IP`` and the threshold test ``E > -tail``
+  (the erf open fraction is applied by the broadening, as on the numpy path),
+* the cross section (the built-in models only: squared Dyson norm, hydrogenic
+  Coulomb, hydrogenic plane wave, Wigner threshold law),
+* the stick weight ``w_traj * sigma``, its time-grid index and linear split,
+* the alive weights (total, count, per channel) of the snapshots with data,
+* and, with missing data, the per-channel rescaling and gap copies of
+  :class:`.gaps.TimeFill`,
+
+and adds the stick's ``order`` Taylor moments straight into the per-thread
+accumulator (same layout and definition as :mod:`._kernels_deposit`). Nothing of length
+``n_sticks`` is allocated. The numpy path stays the reference ("naive twin"): tests
+compare both on ensembles with missing data, absorbing trajectories, shifts, several
+cross-section models, in memory and chunked.
+
+Preconditions (:func:`fusable`): numba installed, no decomposition, ``absorbing`` not
+``"carry"``, a built-in cross-section model, and no sticks to keep. Otherwise the
+caller uses the numpy path.
+"""
+
+from __future__ import annotations
+
+import math
+import threading
+from collections.abc import Callable
+from concurrent.futures import ThreadPoolExecutor
+from typing import Any
+
+import numpy as np
+
+from ...units import HARTREE_EV
+from .cross_sections import AnionThresholdLaw, DysonNorm, HydrogenicCoulomb, HydrogenicPWA
+
+__all__ = ["fusable", "compiled_available", "cross_section_code", "fused_energy_range",
+           "fused_pass", "last_rows", "trajectory_rows", "MIN_SNAPSHOTS_PER_THREAD"]
+
+#: fewest snapshots per thread before a second thread is worth its accumulator
+MIN_SNAPSHOTS_PER_THREAD = 1 << 17
+
+_LOCK = threading.Lock()
+_COMPILED: dict[str, Any] = {}
+
+
+def cross_section_code(cs: Any) -> tuple[int, float, float] | None:
+    """``(kind, p1, p2)`` of a built-in cross-section model for the kernel, else None.
+
+    kind 0: squared Dyson norm; 1: hydrogenic Coulomb (p1 = sigma0 in Mb for Z = 1);
+    2: hydrogenic plane wave (p1 = zeta in bohr^-1, p2 = 1 for a fixed zeta);
+    3: Wigner threshold law (p1 = l + 1/2). Exact types only (a subclass may
+    override ``__call__``).
+    """
+    t = type(cs)
+    if t is DysonNorm:
+        return 0, 0.0, 0.0
+    if t is HydrogenicCoulomb:
+        from scipy.constants import physical_constants
+
+        alpha = physical_constants["fine-structure constant"][0]
+        a0_cm = physical_constants["Bohr radius"][0] * 100.0
+        return 1, 2.0**9 * math.pi**2 * alpha * a0_cm**2 / 3.0 / 1e-18, 0.0
+    if t is HydrogenicPWA:
+        return 2, 0.0 if cs.zeta is None else float(cs.zeta), 0.0 if cs.zeta is None else 1.0
+    if t is AnionThresholdLaw:
+        return 3, cs.l + 0.5, 0.0
+    return None
+
+
+def compiled_available() -> bool:
+    """True when the compiled fused kernels can be used (numba installed)."""
+    return _kernels() is not None
+
+
+def fusable(*, cross_section: Any, decompose: str | None, absorbing: str,
+            keep_sticks: bool) -> bool:
+    """True when the fused pass can replace the numpy stick preparation."""
+    return (not keep_sticks and decompose is None and absorbing != "carry"
+            and cross_section_code(cross_section) is not None and _kernels() is not None)
+
+
+# ----------------------------------------------------------------- compiled functions
+def _sigma(kind, p1, p2, d, e, ip, omega):  # pragma: no cover - compiled by numba
+    """Cross section of one stick (see :mod:`.cross_sections`); e >= 0 (eV)."""
+    if kind == 0:
+        return d
+    if kind == 1:
+        i = ip if ip > 1e-300 else 1e-300
+        z2 = 2.0 * i / HARTREE_EV
+        x = math.sqrt(e / i)
+        if x < 1e-6:
+            eac = 1.0 - x * x / 3.0
+            den = 1.0
+        else:
+            eac = math.atan(x) / x
+            den = -math.expm1(-2.0 * math.pi / x)
+        r = ip / (ip + e)
+        return d * (p1 / z2 * r * r * r * r * math.exp(-4.0 * eac) / den)
+    if kind == 2:
+        ea = e / HARTREE_EV
+        ia = ip / HARTREE_EV
+        z = p1 if p2 > 0.0 else math.sqrt(2.0 * (ia if ia > 0.0 else 0.0))
+        k2 = 2.0 * ea
+        return d * (omega / HARTREE_EV * k2**1.5 * z**5 / (z * z + k2) ** 6)
+    return d * e**p1
+
+
+#: sticks collected (their accumulator lines prefetched) before they are added
+BATCH = 64
+
+
+def _prefetch(arr, index):  # pragma: no cover - replaced by a numba intrinsic
+    """Hint the CPU to fetch ``arr[index]`` (no effect on results)."""
+
+
+def _add8(acc, row, v, d):  # pragma: no cover - replaced by a numba intrinsic
+    """``acc[row + k] += v d^k``, k = 0..7."""
+
+
+def _pass(time, active, tix, w_traj, energies, cat, dyson, by_state, shifts, kind, p1, p2,
+          total, tail, start, dt, n_time, shift_e, inv_h, n_fine, order, do_dep, acc,
+          do_alive, alive, alive_n, alive_ch, fill_on, scale, f_off, f_gap, f_fac,
+          lo, hi, counts):  # pragma: no cover - compiled by numba
+    """Snapshots ``lo:hi``: alive weights and/or moment deposit (see the module doc).
+
+    ``counts`` (int64, 4): sticks outside the grid, invalid cross sections, snapshots
+    lacking data for some channel, sticks deposited (as the numpy path counts them).
+    """
+    n_cat = cat.shape[1]
+    fn = float(n_fine)
+    buf_r = np.zeros(BATCH, np.uint64)
+    buf_d = np.zeros(BATCH)
+    buf_v = np.zeros(BATCH)
+    nb = 0
+    two_lines = order != 8 or acc.ctypes.data % 64 != 0
+    n_bad = 0
+    n_sig = 0
+    n_miss = 0
+    n_st = 0
+    for i in range(lo, hi):
+        a = active[i]
+        en = energies[i, a]
+        w = w_traj[tix[i]]
+        pos = (time[i] - start) / dt
+        j = np.int64(math.floor(pos + 1e-9))
+        f = pos - j
+        if abs(f) < 1e-9:
+            f = 0.0
+        if j < 0 or j >= n_time:
+            n_bad += 1
+            continue
+        s = a if by_state else 0
+        n_has = 0
+        for k in range(n_cat):
+            ip = cat[i, k] - en + shifts[k]
+            d = dyson[i, s, k]
+            if not (math.isfinite(ip) and math.isfinite(d)):
+                continue
+            n_has += 1
+            if do_alive:
+                alive_ch[j, k] += w * (1.0 - f)
+                if f > 0.0 and j + 1 < n_time:
+                    alive_ch[j + 1, k] += w * f
+            e = total - ip
+            if not do_dep or not e > -tail:
+                continue
+            sig = _sigma(kind, p1, p2, d, e if e > 0.0 else 0.0, ip, total)
+            if not (math.isfinite(sig) and sig >= 0.0):
+                n_sig += 1
+                continue
+            v = w * sig
+            p = e * inv_h + shift_e
+            if not (p >= 0.0 and p < fn):
+                n_bad += 1
+                continue
+            b = np.int64(p)
+            dd = p - b - 0.5
+            if not fill_on:
+                n_st += 1
+            for part in range(2):  # the two grid points of the linear split
+                if part == 1 and not f > 0.0:
+                    break
+                bb = j + part
+                if bb >= n_time:
+                    n_bad += 1
+                    break
+                share = (1.0 - f) if part == 0 else f
+                c0 = 0
+                c1 = 0
+                base = share
+                if fill_on:  # per-channel rescaling, then the copies into gaps
+                    base = share * scale[bb, k]
+                    c0 = f_off[k * n_time + bb]
+                    c1 = f_off[k * n_time + bb + 1]
+                for c in range(c0 - 1, c1):
+                    if c < c0:
+                        tgt = bb
+                        wt = v * base
+                    else:
+                        tgt = f_gap[c]
+                        wt = v * share * f_fac[c]
+                    if fill_on:
+                        n_st += 1
+                    # queue the stick, its cell prefetched; add the queue when full
+                    r = np.uint64((tgt * n_fine + b) * order)
+                    buf_r[nb] = r
+                    buf_d[nb] = dd
+                    buf_v[nb] = wt
+                    _prefetch(acc, r)
+                    if two_lines:
+                        _prefetch(acc, r + np.uint64(order - 1))
+                    nb += 1
+                    if nb == BATCH:
+                        for q in range(nb):
+                            if order == 8:
+                                _add8(acc, buf_r[q], buf_v[q], buf_d[q])
+                            else:
+                                vq = buf_v[q]
+                                for m in range(order):
+                                    acc[buf_r[q] + np.uint64(m)] += vq
+                                    vq *= buf_d[q]
+                        nb = 0
+        if n_has < n_cat:
+            n_miss += 1
+        if do_alive and n_has > 0:
+            alive[j] += w * (1.0 - f)
+            alive_n[j] += 1.0 - f
+            if f > 0.0 and j + 1 < n_time:
+                alive[j + 1] += w * f
+                alive_n[j + 1] += f
+    counts[0] += n_bad
+    counts[1] += n_sig
+    counts[2] += n_miss
+    counts[3] += n_st
+    for q in range(nb):
+        vq = buf_v[q]
+        for m in range(order):
+            acc[buf_r[q] + np.uint64(m)] += vq
+            vq *= buf_d[q]
+
+
+def _rows_of(ids, col, out):  # pragma: no cover - compiled by numba
+    """Row of ``ids`` (sorted, unique) holding each ``col`` value, for ``col`` sorted;
+    False (stop) at the first value out of order or not found."""
+    j = 0
+    for i in range(col.shape[0]):
+        v = col[i]
+        while j < ids.shape[0] and ids[j] < v:
+            j += 1
+        if j == ids.shape[0] or ids[j] != v:
+            return False
+        out[i] = j
+    return True
+
+
+def _range(active, energies, cat, dyson, by_state, shifts, total, tail, lo, hi,
+           out):  # pragma: no cover - compiled by numba
+    """Smallest and largest stick energy of snapshots ``lo:hi`` (excess above ``-tail``,
+    data present)."""
+    lo_e = math.inf
+    hi_e = -math.inf
+    for i in range(lo, hi):
+        a = active[i]
+        en = energies[i, a]
+        s = a if by_state else 0
+        for k in range(cat.shape[1]):
+            ip = cat[i, k] - en + shifts[k]
+            if not (math.isfinite(ip) and math.isfinite(dyson[i, s, k])):
+                continue
+            e = total - ip
+            if e > -tail:
+                lo_e = min(lo_e, e)
+                hi_e = max(hi_e, e)
+    out[0] = lo_e
+    out[1] = hi_e
+
+
+def _last(tix, time, out):  # pragma: no cover - compiled by numba
+    """Row of the latest snapshot of each trajectory (ties: the later row)."""
+    for i in range(tix.shape[0]):
+        t = tix[i]
+        r = out[t]
+        if r < 0 or time[i] >= time[r]:
+            out[t] = i
+
+
+def _kernels() -> dict[str, Callable[..., Any]] | None:
+    """The compiled functions, or None when numba is not installed."""
+    if "pass" not in _COMPILED:
+        with _LOCK:
+            if "pass" not in _COMPILED:
+                try:
+                    import numba
+                except ImportError:
+                    _COMPILED["pass"] = None
+                else:
+                    from ._intrinsics import compiled_helpers
+
+                    jit = numba.njit(cache=True, nogil=True, boundscheck=False)
+                    g = globals()
+                    g["_prefetch"], g["_add8"] = compiled_helpers(numba)
+                    inl = numba.njit(nogil=True, boundscheck=False, inline="always")
+                    g["_sigma"] = inl(_sigma)
+                    _COMPILED.update({"range": jit(_range), "last": jit(_last),
+                                      "rows_of": jit(_rows_of)})
+                    _COMPILED["pass"] = jit(_pass)
+    return None if _COMPILED["pass"] is None else _COMPILED
+
+
+# ----------------------------------------------------------------- array preparation
+def _arrays(block: Any, shifts: np.ndarray | None) -> dict[str, Any]:
+    """The block's arrays as the kernel reads them (no copies of the big ones)."""
+    n_cat = block.cation_energies.shape[1]
+    dyson = block.dyson
+    by_state = dyson.ndim == 3
+    return {"active": np.ascontiguousarray(block.snapshots["active"].to_numpy(),
+                                           dtype=np.int64),
+            "energies": np.asarray(block.energies, dtype=np.float64),
+            "cat": np.asarray(block.cation_energies, dtype=np.float64),
+            "dyson": np.asarray(dyson if by_state else dyson[:, None, :], dtype=np.float64),
+            "by_state": by_state,
+            "shifts": np.zeros(n_cat) if shifts is None else np.asarray(shifts, float)}
+
+
+def fused_energy_range(block: Any, total_energy: float, tail: float,
+                       shifts: np.ndarray | None) -> dict[str, float]:
+    """:func:`.sticks.energy_range` in one compiled pass (no ``n x n_cation`` arrays)."""
+    k = _kernels()
+    assert k is not None  # callers check fusable() / numba first
+    from ._kernels_deposit import usable_cores
+
+    a = _arrays(block, shifts)
+    n = a["cat"].shape[0]
+    n_threads = max(1, min(usable_cores(), n // MIN_SNAPSHOTS_PER_THREAD))
+    bounds = [t * n // n_threads for t in range(n_threads + 1)]
+    out = np.empty((n_threads, 2))
+
+    def run(t: int) -> None:
+        k["range"](a["active"], a["energies"], a["cat"], a["dyson"], a["by_state"],
+                   a["shifts"], float(total_energy), float(tail), bounds[t], bounds[t + 1],
+                   out[t])
+
+    if n_threads == 1:
+        run(0)
+    else:
+        with ThreadPoolExecutor(n_threads) as pool:
+            list(pool.map(run, range(n_threads)))
+    return {"e_min": float(out[:, 0].min()), "e_max": float(out[:, 1].max())}
+
+
+def trajectory_rows(block: Any) -> np.ndarray:
+    """``block.traj_index`` (trajectory row of each snapshot) by one compiled merge when
+    the snapshots are sorted by trajectory (as ensembles store them), else numpy's."""
+    k = _kernels()
+    ids = block.trajectories["traj"].to_numpy()
+    col = block.snapshots["traj"].to_numpy()
+    if k is not None and ids.dtype.kind in "iu" and col.dtype.kind in "iu":
+        out = np.empty(col.shape[0], dtype=np.int64)
+        if k["rows_of"](np.ascontiguousarray(ids, dtype=np.int64),
+                        np.ascontiguousarray(col, dtype=np.int64), out):
+            return out
+    return np.asarray(block.traj_index, dtype=np.int64)
+
+
+def last_rows(tix: np.ndarray, time: np.ndarray, n_trajectories: int) -> np.ndarray:
+    """Row of the last snapshot of each trajectory (-1: none), compiled.
+
+    ``tix`` (n_snapshots,) is each snapshot's trajectory row, ``time`` its time (fs).
+    """
+    k = _kernels()
+    assert k is not None
+    out = np.full(n_trajectories, -1, dtype=np.int64)
+    k["last"](np.ascontiguousarray(tix, dtype=np.int64),
+              np.ascontiguousarray(time, dtype=np.float64), out)
+    return out
+
+
+def fused_pass(block: Any, *, w_traj: np.ndarray, cross_section: Any, total_energy: float,
+               tail: float, start: float, dt: float, n_time: int, e_lo: float, h: float,
+               n_fine: int, order: int, shifts: np.ndarray | None, deposit: bool = True,
+               alive: bool = True, fill: Any = None, n_threads: int | None = None,
+               tix: np.ndarray | None = None) -> dict[str, Any]:
+    """One fused pass over a block: moment histogram and/or alive weights.
+
+    Parameters
+    ----------
+    block : Ensemble or block
+        With ``energies``, ``cation_energies``, ``dyson`` and the snapshot table.
+    w_traj : ndarray, shape (n_trajectories,)
+        Trajectory weights.
+    cross_section : CrossSection
+        A built-in model (:func:`cross_section_code` is not None).
+    total_energy, tail : float
+        ``n h nu`` of the probe and the threshold tail (eV).
+    start, dt, n_time : float, float, int
+        Time grid (fs).
+    e_lo, h, n_fine, order
+        Fine energy grid and moments (see :mod:`._kernels_deposit`).
+    shifts : ndarray, shape (n_cation,), optional
+        Ionisation-energy shifts (eV).
+    deposit, alive : bool
+        What to compute.
+    fill : TimeFill, optional
+        Missing-data rescaling and gap copies applied to the deposit.
+    tix : ndarray of int, shape (n_snapshots,), optional
+        Trajectory row of each snapshot (default ``block.traj_index``).
+    n_threads : int, optional
+        Threads (default: usable cores, one per ``MIN_SNAPSHOTS_PER_THREAD``).
+
+    Returns
+    -------
+    dict
+        ``hist`` (order, 1, n_time, n_fine) or None, ``alive``, ``alive_count``
+        (n_time,), ``alive_channel`` (n_time, n_cation) or None, ``n_missing``,
+        ``n_sticks``.
+
+    Raises
+    ------
+    ValueError
+        A stick outside the grid or an invalid cross section (the caller words it).
+    """
+    from ._kernels_deposit import pooled_accumulators, release_accumulators, usable_cores
+
+    k = _kernels()
+    assert k is not None
+    code = cross_section_code(cross_section)
+    assert code is not None
+    a = _arrays(block, shifts)
+    n = block.n_snapshots
+    n_cat = a["cat"].shape[1]
+    time = np.ascontiguousarray(block.snapshots["time"].to_numpy(), dtype=np.float64)
+    tix = np.ascontiguousarray(block.traj_index if tix is None else tix, dtype=np.int64)
+    w_traj = np.ascontiguousarray(w_traj, dtype=np.float64)
+    if n_threads is None:
+        n_threads = max(1, min(usable_cores(), n // MIN_SNAPSHOTS_PER_THREAD))
+    n_threads = max(1, min(int(n_threads), max(n, 1)))
+    bounds = [t * n // n_threads for t in range(n_threads + 1)]
+    size = n_time * n_fine * order if deposit else 1
+    if fill is not None:
+        scale = np.ascontiguousarray(fill.scale, dtype=np.float64)
+        f_off = np.searchsorted(fill.key, np.arange(n_cat * n_time + 1)).astype(np.int64)
+        f_gap, f_fac = fill.gap.astype(np.int64), fill.factor.astype(np.float64)
+    else:
+        scale = np.zeros((1, 1))
+        f_off, f_gap, f_fac = np.zeros(2, np.int64), np.zeros(1, np.int64), np.zeros(1)
+    inv_h = 1.0 / h
+    shift_e = 0.5 - e_lo * inv_h
+    kind, p1, p2 = code
+
+    accs = pooled_accumulators(size, n_threads)
+
+    def run(t: int) -> tuple[np.ndarray, ...]:
+        acc = accs[t]
+        acc.fill(0.0)  # in order, in the thread that will use the memory
+        al, al_n = np.zeros(n_time + 1), np.zeros(n_time + 1)
+        al_ch = np.zeros((n_time + 1, n_cat)) if alive else np.zeros((1, 1))
+        counts = np.zeros(4, dtype=np.int64)
+        k["pass"](time, a["active"], tix, w_traj, a["energies"], a["cat"], a["dyson"],
+                  a["by_state"], a["shifts"], kind, p1, p2, float(total_energy), float(tail),
+                  float(start), float(dt), int(n_time), shift_e, inv_h, int(n_fine),
+                  int(order), bool(deposit), acc, bool(alive), al, al_n, al_ch,
+                  fill is not None, scale, f_off, f_gap, f_fac, bounds[t], bounds[t + 1],
+                  counts)
+        return acc, al, al_n, al_ch, counts
+
+    try:
+        if n_threads == 1:
+            parts = [run(0)]
+        else:
+            cuts = [t * size // n_threads for t in range(n_threads + 1)]
+
+            def run_sum(t: int) -> None:  # accs[0] += accs[1] + ..., split over threads
+                sl = slice(cuts[t], cuts[t + 1])
+                for other in accs[1:]:
+                    accs[0][sl] += other[sl]
+
+            with ThreadPoolExecutor(n_threads) as pool:
+                parts = list(pool.map(run, range(n_threads)))
+                list(pool.map(run_sum, range(n_threads)))
+        acc, al, al_n, al_ch, counts = parts[0]
+    finally:
+        release_accumulators(accs[1:])
+    for p in parts[1:]:
+        al += p[1]
+        al_n += p[2]
+        al_ch += p[3]
+        counts += p[4]
+    if counts[1]:
+        raise ValueError("the cross-section model must return finite values >= 0, one per "
+                         "stick.")
+    if counts[0]:
+        raise ValueError(f"fused TRPES pass: {int(counts[0])} stick(s) or snapshot(s) outside "
+                         "the time or fine energy grid. Hint: size the grids from the data.")
+    hist = (acc.reshape(1, n_time, n_fine, order).transpose(3, 0, 1, 2) if deposit
+            else None)
+    return {"hist": hist, "alive": al[:n_time], "alive_count": al_n[:n_time],
+            "alive_channel": al_ch[:n_time] if alive else None,
+            "n_missing": int(counts[2]), "n_sticks": int(counts[3])}
