@@ -87,6 +87,13 @@ class TRPESMap:
         weights), interpolated to the delay grid; NaN where unknown.
     params : dict
         The parameters used (JSON-serialisable).
+    lower, upper : ndarray, shape (n_delays, n_energies), or None
+        Interval of `intensity` (``params["interval"]``, ``params["ci"]``); None
+        without one (``compute_trpes(..., interval="bootstrap")``).
+    rel_se : ndarray, shape (n_delays, n_energies), or None
+        Relative standard error of `intensity` per pixel (NaN where it is 0).
+    component_lower, component_upper : dict of str to ndarray
+        Interval of each component (empty without one).
 
     A map carries nothing besides these fields (``slots``): the stick model that made
     it is a separate object (``compute_trpes(..., return_model=True)``). Files:
@@ -110,6 +117,11 @@ class TRPESMap:
     alive: np.ndarray | None = None
     params: dict[str, Any] = field(default_factory=dict)
     alive_count: np.ndarray | None = None
+    lower: np.ndarray | None = None
+    upper: np.ndarray | None = None
+    rel_se: np.ndarray | None = None
+    component_lower: dict[str, np.ndarray] = field(default_factory=dict)
+    component_upper: dict[str, np.ndarray] = field(default_factory=dict)
 
     def __post_init__(self) -> None:
         set_ = object.__setattr__
@@ -141,6 +153,44 @@ class TRPESMap:
         set_(self, "alive", alive)
         set_(self, "alive_count", count)
         set_(self, "params", _json_safe(dict(self.params)))
+        self._set_intervals(shape, comps)
+
+    def _set_intervals(self, shape: tuple[int, int], comps: dict[str, np.ndarray]) -> None:
+        """Check and freeze ``lower`` / ``upper`` / ``rel_se`` and the component intervals."""
+        for name in ("lower", "upper", "rel_se"):
+            a = getattr(self, name)
+            if a is not None:
+                a = _ro(a, name, ndim=2)
+                if a.shape != shape:
+                    raise SchemaError(f"{name} must have shape {shape} like intensity; got "
+                                      f"{a.shape}.")
+                object.__setattr__(self, name, a)
+        for name in ("component_lower", "component_upper"):
+            out: dict[str, np.ndarray] = {}
+            for label, arr in dict(getattr(self, name)).items():
+                if str(label) not in comps:
+                    raise SchemaError(f"{name}[{label!r}] names no component; components: "
+                                      f"{sorted(comps)}.")
+                a = _ro(arr, f"{name}[{label!r}]", ndim=2)
+                if a.shape != shape:
+                    raise SchemaError(f"{name}[{label!r}] must have shape {shape}; got "
+                                      f"{a.shape}.")
+                out[str(label)] = a
+            object.__setattr__(self, name, out)
+
+    @property
+    def has_interval(self) -> bool:
+        """Whether the map carries ``lower`` / ``upper``."""
+        return self.lower is not None and self.upper is not None
+
+    def median_rel_se(self, *, threshold: float = 0.05) -> float | None:
+        """Median relative standard error over the pixels above ``threshold`` times the
+        peak of ``|intensity|`` (None without ``rel_se``)."""
+        if self.rel_se is None or not self.intensity.size:
+            return None
+        peak = float(np.max(np.abs(self.intensity)))
+        sel = (np.abs(self.intensity) > threshold * peak) & np.isfinite(self.rel_se)
+        return float(np.median(self.rel_se[sel])) if peak > 0 and sel.any() else None
 
     # ------------------------------------------------------------------ basics
     @property

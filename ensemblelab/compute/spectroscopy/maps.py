@@ -46,6 +46,7 @@ from ._checks import (
     component_labels,
     grid_from_range,
 )
+from .bootstrap import bootstrap_map, check_interval
 from .cross_sections import CrossSection, describe_cross_section, resolve_cross_section
 from .gaps import time_fill
 from .model import TRPESModel, deposit
@@ -315,6 +316,10 @@ def compute_trpes(
     scheduler: Any = None,
     ionisation_shifts: Sequence[float] | Mapping[int, float] | None = None,
     absorbing: str = "zero",
+    interval: str | None = None,
+    ci: float = 0.95,
+    n_boot: int = 200,
+    random_state: int | np.random.Generator | None = 0,
     return_model: Literal[False] = False,
 ) -> TRPESMap: ...
 
@@ -339,6 +344,10 @@ def compute_trpes(
     scheduler: Any = None,
     ionisation_shifts: Sequence[float] | Mapping[int, float] | None = None,
     absorbing: str = "zero",
+    interval: str | None = None,
+    ci: float = 0.95,
+    n_boot: int = 200,
+    random_state: int | np.random.Generator | None = 0,
     return_model: Literal[True],
 ) -> tuple[TRPESMap, TRPESModel]: ...
 
@@ -363,6 +372,10 @@ def compute_trpes(
     scheduler: Any = None,
     ionisation_shifts: Sequence[float] | Mapping[int, float] | None = None,
     absorbing: str = "zero",
+    interval: str | None = None,
+    ci: float = 0.95,
+    n_boot: int = 200,
+    random_state: int | np.random.Generator | None = 0,
     return_model: bool = False,
 ) -> TRPESMap | tuple[TRPESMap, TRPESModel]: ...
 
@@ -386,6 +399,10 @@ def compute_trpes(
     scheduler: Any = None,
     ionisation_shifts: Sequence[float] | Mapping[int, float] | None = None,
     absorbing: str = "zero",
+    interval: str | None = None,
+    ci: float = 0.95,
+    n_boot: int = 200,
+    random_state: int | np.random.Generator | None = 0,
     return_model: bool = False,
 ) -> TRPESMap | tuple[TRPESMap, TRPESModel]:
     """Simulated TRPES map of an ensemble (classical doorway-window).
@@ -466,6 +483,17 @@ def compute_trpes(
         before the threshold test (the sticks are recomputed, not the pixels moved).
     absorbing : {"zero", "carry", "end"}
         What a trajectory stopped in the absorbing state contributes after its stop.
+    interval : {None, "bootstrap"}
+        ``"bootstrap"``: percentile intervals from ``n_boot`` resamples of whole
+        trajectories (:mod:`.bootstrap`), in ``lower`` / ``upper`` (total),
+        ``component_lower`` / ``component_upper`` and ``rel_se`` (relative standard
+        error per pixel).
+    ci : float
+        Confidence level of the interval.
+    n_boot : int
+        Number of bootstrap resamples.
+    random_state : int, Generator or None
+        Seed of the resampling.
     return_model : bool
         Also return the :class:`~.model.TRPESModel` (for re-broadening and for
         ``contributions(..., model=...)``).
@@ -496,6 +524,7 @@ def compute_trpes(
     if normalise not in ("alive", "initial"):
         raise SchemaError(f"The 'normalise' parameter must be 'alive' or 'initial'. Got "
                           f"{normalise!r} instead.")
+    check_interval(interval, ci, n_boot)
     model = trpes_model(ens, probe=probe, pump=pump, resolution=resolution,
                         cross_section=cross_section, weights=weights, decompose=decompose,
                         time_step=time_step, progress=progress, client=client,
@@ -513,4 +542,14 @@ def compute_trpes(
                 "photon energy.", EnsembleWarning, stacklevel=2)
     m = model.broaden(kinetic_energies=kinetic_energies, delays=delays, pump=pump,
                       resolution=resolution, convolve=convolve, normalise=normalise)
+    if interval == "bootstrap":
+        m = bootstrap_map(  # type: ignore[assignment]
+            ens, model, m, probe=probe, pump=pump, kinetic_energies=kinetic_energies,
+            delays=delays, resolution=resolution, convolve=convolve, normalise=normalise,
+            cross_section=cross_section, weights=weights,
+            ionisation_shifts=ionisation_shifts, absorbing=absorbing,
+            fields=[*TRPES_FIELDS, *(("adt", "adt_cation") if decompose == "diabatic"
+                                     else ())], ci=ci, n_boot=n_boot,
+            random_state=random_state, client=client, scheduler=scheduler,
+            progress=progress)
     return (m, model) if return_model else m

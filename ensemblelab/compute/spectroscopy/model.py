@@ -138,6 +138,10 @@ class TRPESModel:
         self._cache.clear()
         self._cache.update(h=h, e_lo=e_lo, n_fine=n_fine, hist=hist, hist_comp=hist_comp)
 
+    def moment_grid(self, fwhm: float) -> tuple[float, float, int]:
+        """``(e_lo, h, n_fine)`` of the moment histograms used for a stick FWHM (eV)."""
+        return self._moments(fwhm)[2:]
+
     @property
     def times(self) -> np.ndarray:
         """Internal grid times (fs), shape (n_time,)."""

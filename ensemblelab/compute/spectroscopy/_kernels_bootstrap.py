@@ -1,0 +1,231 @@
+"""Array-level kernels of the trajectory bootstrap of TRPES maps (private).
+
+A bootstrap resample draws the ensemble's trajectories with replacement; trajectory
+``n`` appears ``c_bn`` times in resample ``b`` (a multinomial draw, as in
+:func:`ensemblelab.compute.kinetics.populations`). Everything a map is made of is
+linear in the trajectory weights *before* the normalisation, so resample ``b`` needs
+no new sticks: its moment histograms are those of the ensemble's sticks with weights
+``c_bn w_s`` (``n`` the stick's trajectory) and its alive weight is
+``A_b(t) = sum_n c_bn w_n a_n(t)`` with ``a_n`` the unit alive profile of trajectory
+``n`` (:func:`unit_alive`). The ratio ``numerator / alive`` is formed per resample,
+numerator and denominator from the same draw.
+
+* :func:`bootstrap_counts` draws the multiplicities, shape (n_boot, n_trajectories).
+* :func:`unit_alive` gives the per-trajectory alive profiles of a block.
+* :func:`deposit_replicates` deposits a block's sticks for a chunk of resamples at once
+  (compiled with numba when installed: one pass over the sticks, each stick adding
+  its ``order`` moments for every resample of the chunk into one contiguous row;
+  otherwise one :func:`._kernels_deposit.deposit_moments` call per resample).
+* :func:`replicate_chunk` says how many resamples fit a memory budget.
+* :func:`percentile_summary` turns replicate maps into percentile intervals and the
+  relative standard error.
+
+The naive reference twin is :mod:`._reference_bootstrap` (a loop over resampled
+ensembles, each through :func:`~.maps.compute_trpes`); tests compare the two.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from typing import Any
+
+import numpy as np
+
+from . import _kernels_deposit as KD
+
+__all__ = ["bootstrap_counts", "unit_alive", "deposit_replicates", "replicate_chunk",
+           "percentile_summary", "MEMORY_BUDGET"]
+
+#: bytes the replicate histograms of one chunk may take (the chunk of resamples shrinks
+#: to fit; at least one resample per chunk)
+MEMORY_BUDGET = 256 * 2**20
+
+
+def bootstrap_counts(n_traj: int, n_boot: int, rng: np.random.Generator) -> np.ndarray:
+    """How often each trajectory is drawn in each resample, shape (n_boot, n_traj).
+
+    Drawing ``n_traj`` trajectories with replacement, equal probabilities: a
+    multinomial draw per resample (row b equals ``np.bincount(indices_b)``).
+    """
+    return rng.multinomial(n_traj, np.full(n_traj, 1.0 / n_traj),
+                           size=n_boot).astype(np.float64)
+
+
+def unit_alive(traj_index: np.ndarray, tbin: np.ndarray, tfrac: np.ndarray | None,
+               has_any: np.ndarray, n_traj: int, n_time: int, *,
+               absorbed_traj: np.ndarray, ext_bin: np.ndarray,
+               ext_first: np.ndarray) -> np.ndarray:
+    """Alive profile of each trajectory of a block for unit weight, shape (n_traj, n_time).
+
+    Each snapshot with data for some channel adds 1 at its grid time (split linearly
+    between two grid points like the sticks); a trajectory stopped in the absorbing
+    state adds ``ext_first`` at its first grid point after the stop and 1 at every
+    later one (as :func:`.sticks.block_alive`). ``sum_n w_n a_n(t)`` is the block's
+    alive weight.
+    """
+    out = np.zeros(n_traj * n_time + 1)
+    w = has_any.astype(np.float64)
+    ok = (tbin >= 0) & (tbin < n_time)
+    key = traj_index * n_time + tbin
+    if tfrac is None:
+        np.add.at(out, key[ok], w[ok])
+    else:
+        np.add.at(out, key[ok], (w * (1.0 - tfrac))[ok])
+        later = ok & (tfrac > 0) & (tbin + 1 < n_time)
+        np.add.at(out, key[later] + 1, (w * tfrac)[later])
+    prof = out[:-1].reshape(n_traj, n_time)
+    for n, b0, f in zip(absorbed_traj, ext_bin, ext_first, strict=True):
+        prof[n, b0] += f
+        prof[n, b0 + 1:] += 1.0
+    return prof
+
+
+def replicate_chunk(n_boot: int, per_replicate_bytes: int,
+                    budget: int = MEMORY_BUDGET) -> int:
+    """Resamples per chunk so that their histograms fit ``budget`` bytes (>= 1)."""
+    return int(max(1, min(n_boot, budget // max(per_replicate_bytes, 1))))
+
+
+def _numba_replicates() -> Callable[..., int] | None:
+    if not KD.numba_available():
+        return None
+    if "kernel" in _COMPILED:
+        return _COMPILED["kernel"]
+    import numba
+
+    kernel = numba.njit(cache=True, nogil=True)(_dep_replicates)
+    _COMPILED["kernel"] = kernel
+    return kernel
+
+
+_COMPILED: dict[str, Any] = {}
+
+
+def _dep_replicates(tbin, energy, weight, src_traj, comp, tfrac, rw, acc, n_time, n_fine,
+                    n_comp, order, shift, inv_h):  # pragma: no cover - compiled by numba
+    """Deposit every stick for every resample of a chunk.
+
+    ``rw`` (n_traj, n_rep) holds the resample multiplicities of the block's trajectories;
+    ``acc`` is flat with layout (comp, time, fine bin, resample, moment): a stick's
+    moments for all resamples are one contiguous row. Returns the sticks out of range.
+    """
+    n_rep = rw.shape[1]
+    fn = float(n_fine)
+    row_t = n_fine * n_rep * order
+    mom = np.empty(order)
+    bad = 0
+    for i in range(energy.shape[0]):
+        p = energy[i] * inv_h + shift
+        tb = tbin[i]
+        c = 0 if n_comp == 1 else comp[i]
+        if not (p >= 0.0 and p < fn and tb >= 0 and tb < n_time and c >= 0 and c < n_comp):
+            bad += 1
+            continue
+        b = np.int64(p)
+        d = p - b - 0.5
+        v = weight[i]
+        for k in range(order):
+            mom[k] = v
+            v *= d
+        n = src_traj[i]
+        row = ((c * n_time + tb) * n_fine + b) * n_rep * order
+        f = tfrac[i] if tfrac.shape[0] else 0.0
+        if f > 0.0:
+            if tb + 1 >= n_time:
+                bad += 1
+                continue
+            f0 = 1.0 - f
+            for r in range(n_rep):
+                cr = rw[n, r]
+                if cr != 0.0:
+                    base = row + r * order
+                    for k in range(order):
+                        acc[base + k] += cr * f0 * mom[k]
+                        acc[base + row_t + k] += cr * f * mom[k]
+        else:
+            for r in range(n_rep):
+                cr = rw[n, r]
+                if cr != 0.0:
+                    base = row + r * order
+                    for k in range(order):
+                        acc[base + k] += cr * mom[k]
+    return bad
+
+
+def deposit_replicates(tbin: np.ndarray, energy: np.ndarray, weight: np.ndarray,
+                       src_traj: np.ndarray, rw: np.ndarray, *, n_time: int, e_lo: float,
+                       h: float, n_fine: int, order: int, comp: np.ndarray | None = None,
+                       n_comp: int = 1, tfrac: np.ndarray | None = None,
+                       backend: str = "auto") -> np.ndarray:
+    """Moment histograms of a chunk of resamples, shape (order, n_rep, n_comp, n_time, n_fine).
+
+    Resample ``r`` is :func:`._kernels_deposit.deposit_moments` of the sticks with
+    weights ``weight * rw[src_traj, r]``.
+
+    Parameters
+    ----------
+    tbin : ndarray of int, shape (n_sticks,)
+        Time-grid index of each stick.
+    energy, weight : ndarray, shape (n_sticks,)
+        Stick energies (eV) and weights.
+    src_traj : ndarray of int, shape (n_sticks,)
+        Block-local trajectory of each stick.
+    rw : ndarray, shape (n_traj, n_rep)
+        Multiplicity of each trajectory in each resample of the chunk.
+    n_time, e_lo, h, n_fine, order, comp, n_comp, tfrac
+        As :func:`._kernels_deposit.deposit_moments`.
+    backend : {"auto", "numba", "numpy"}
+        Compiled kernel (when numba is installed) or a loop of numpy deposits.
+    """
+    n_rep = rw.shape[1]
+    kernel = _numba_replicates() if backend in ("auto", "numba") else None
+    if kernel is None:
+        out = np.empty((order, n_rep, n_comp, n_time, n_fine))
+        for r in range(n_rep):
+            out[:, r] = KD.deposit_moments(tbin, energy, weight * rw[src_traj, r],
+                                           n_time=n_time, e_lo=e_lo, h=h, n_fine=n_fine,
+                                           order=order, comp=comp, n_comp=n_comp,
+                                           tfrac=tfrac, backend="numpy")
+        return out
+    acc = np.zeros(n_comp * n_time * n_fine * n_rep * order)
+    bad = kernel(np.ascontiguousarray(tbin, dtype=np.int64),
+                 np.ascontiguousarray(energy, dtype=np.float64),
+                 np.ascontiguousarray(weight, dtype=np.float64),
+                 np.ascontiguousarray(src_traj, dtype=np.int64),
+                 np.zeros(1, np.int64) if comp is None else
+                 np.ascontiguousarray(comp, dtype=np.int64),
+                 np.zeros(0) if tfrac is None else np.ascontiguousarray(tfrac, np.float64),
+                 np.ascontiguousarray(rw, dtype=np.float64), acc, n_time, n_fine,
+                 n_comp, order, 0.5 - e_lo / h, 1.0 / h)
+    if bad:
+        raise ValueError(f"{bad} sticks fall outside the moment grid (time bin or energy).")
+    acc5 = acc.reshape(n_comp, n_time, n_fine, n_rep, order)
+    return np.ascontiguousarray(np.transpose(acc5, (4, 3, 0, 1, 2)))
+
+
+def percentile_summary(reps: np.ndarray, estimate: np.ndarray, ci: float
+                       ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Percentile interval and relative standard error from replicate maps.
+
+    Parameters
+    ----------
+    reps : ndarray, shape (n_boot, ...)
+        Replicate values.
+    estimate : ndarray, shape (...)
+        The map itself.
+    ci : float
+        Confidence level.
+
+    Returns
+    -------
+    lower, upper : ndarray, shape (...)
+        The ``(1 - ci) / 2`` and ``(1 + ci) / 2`` quantiles over the replicates.
+    rel_se : ndarray, shape (...)
+        Bootstrap standard error over ``|estimate|``; NaN where the estimate is 0.
+    """
+    alpha = (1.0 - ci) / 2.0
+    lower, upper = np.quantile(reps, [alpha, 1.0 - alpha], axis=0)
+    se = reps.std(axis=0, ddof=1)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        rel = np.where(estimate != 0, se / np.abs(estimate), np.nan)
+    return lower, upper, rel
