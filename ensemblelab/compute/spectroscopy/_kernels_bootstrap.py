@@ -101,17 +101,20 @@ def _numba_replicates() -> Callable[..., int] | None:
 _COMPILED: dict[str, Any] = {}
 
 
-def _dep_replicates(tbin, energy, weight, src_traj, comp, tfrac, rw, acc, n_time, n_fine,
-                    n_comp, order, shift, inv_h):  # pragma: no cover - compiled by numba
+def _dep_replicates(tbin, energy, weight, src_traj, comp, tfrac, rw, acc, c0, n_comp,
+                    shift, inv_h):  # pragma: no cover - compiled by numba
     """Deposit every stick for every resample of a chunk.
 
     ``rw`` (n_traj, n_rep) holds the resample multiplicities of the block's trajectories;
-    ``acc`` is flat with layout (comp, time, fine bin, resample, moment): a stick's
-    moments for all resamples are one contiguous row. Returns the sticks out of range.
+    ``acc`` has the layout (resample, component, time, fine bin, moment) of
+    :func:`deposit_replicates`; the sticks go to components ``c0 + comp``. Returns the
+    number of sticks out of range.
     """
     n_rep = rw.shape[1]
+    n_time = acc.shape[2]
+    n_fine = acc.shape[3]
+    order = acc.shape[4]
     fn = float(n_fine)
-    row_t = n_fine * n_rep * order
     mom = np.empty(order)
     bad = 0
     for i in range(energy.shape[0]):
@@ -128,7 +131,7 @@ def _dep_replicates(tbin, energy, weight, src_traj, comp, tfrac, rw, acc, n_time
             mom[k] = v
             v *= d
         n = src_traj[i]
-        row = ((c * n_time + tb) * n_fine + b) * n_rep * order
+        cc = c0 + c
         f = tfrac[i] if tfrac.shape[0] else 0.0
         if f > 0.0:
             if tb + 1 >= n_time:
@@ -138,32 +141,35 @@ def _dep_replicates(tbin, energy, weight, src_traj, comp, tfrac, rw, acc, n_time
             for r in range(n_rep):
                 cr = rw[n, r]
                 if cr != 0.0:
-                    base = row + r * order
+                    a0 = cr * f0
+                    a1 = cr * f
                     for k in range(order):
-                        acc[base + k] += cr * f0 * mom[k]
-                        acc[base + row_t + k] += cr * f * mom[k]
+                        acc[r, cc, tb, b, k] += a0 * mom[k]
+                        acc[r, cc, tb + 1, b, k] += a1 * mom[k]
         else:
             for r in range(n_rep):
                 cr = rw[n, r]
                 if cr != 0.0:
-                    base = row + r * order
                     for k in range(order):
-                        acc[base + k] += cr * mom[k]
+                        acc[r, cc, tb, b, k] += cr * mom[k]
     return bad
 
 
-def deposit_replicates(tbin: np.ndarray, energy: np.ndarray, weight: np.ndarray,
-                       src_traj: np.ndarray, rw: np.ndarray, *, n_time: int, e_lo: float,
-                       h: float, n_fine: int, order: int, comp: np.ndarray | None = None,
-                       n_comp: int = 1, tfrac: np.ndarray | None = None,
-                       backend: str = "auto") -> np.ndarray:
-    """Moment histograms of a chunk of resamples, shape (order, n_rep, n_comp, n_time, n_fine).
+def deposit_replicates(acc: np.ndarray, tbin: np.ndarray, energy: np.ndarray,
+                       weight: np.ndarray, src_traj: np.ndarray, rw: np.ndarray, *,
+                       e_lo: float, h: float, comp: np.ndarray | None = None,
+                       n_comp: int = 1, c0: int = 0, tfrac: np.ndarray | None = None,
+                       backend: str = "auto") -> None:
+    """Add the moment histograms of a chunk of resamples to ``acc`` (in place).
 
-    Resample ``r`` is :func:`._kernels_deposit.deposit_moments` of the sticks with
-    weights ``weight * rw[src_traj, r]``.
+    Resample ``r`` adds :func:`._kernels_deposit.deposit_moments` of the sticks with
+    weights ``weight * rw[src_traj, r]`` to components ``c0 .. c0 + n_comp - 1``.
 
     Parameters
     ----------
+    acc : ndarray, shape (n_rep, n_components, n_time, n_fine, order)
+        Accumulator; ``np.moveaxis(acc[r], -1, 0)`` is resample r's histograms in the
+        layout of :func:`._kernels_broadening.assemble` (a view, no copy).
     tbin : ndarray of int, shape (n_sticks,)
         Time-grid index of each stick.
     energy, weight : ndarray, shape (n_sticks,)
@@ -172,22 +178,25 @@ def deposit_replicates(tbin: np.ndarray, energy: np.ndarray, weight: np.ndarray,
         Block-local trajectory of each stick.
     rw : ndarray, shape (n_traj, n_rep)
         Multiplicity of each trajectory in each resample of the chunk.
-    n_time, e_lo, h, n_fine, order, comp, n_comp, tfrac
-        As :func:`._kernels_deposit.deposit_moments`.
+    e_lo, h : float
+        First fine-bin centre and spacing (eV).
+    comp, n_comp, c0 : optional
+        Component of each stick (None: all 0), how many, and the first component of
+        ``acc`` they go to.
+    tfrac : ndarray, shape (n_sticks,), optional
+        Share of each stick going to the next time bin.
     backend : {"auto", "numba", "numpy"}
         Compiled kernel (when numba is installed) or a loop of numpy deposits.
     """
-    n_rep = rw.shape[1]
+    n_rep, _, n_time, n_fine, order = acc.shape
     kernel = _numba_replicates() if backend in ("auto", "numba") else None
     if kernel is None:
-        out = np.empty((order, n_rep, n_comp, n_time, n_fine))
         for r in range(n_rep):
-            out[:, r] = KD.deposit_moments(tbin, energy, weight * rw[src_traj, r],
-                                           n_time=n_time, e_lo=e_lo, h=h, n_fine=n_fine,
-                                           order=order, comp=comp, n_comp=n_comp,
-                                           tfrac=tfrac, backend="numpy")
-        return out
-    acc = np.zeros(n_comp * n_time * n_fine * n_rep * order)
+            part = KD.deposit_moments(tbin, energy, weight * rw[src_traj, r], n_time=n_time,
+                                      e_lo=e_lo, h=h, n_fine=n_fine, order=order, comp=comp,
+                                      n_comp=n_comp, tfrac=tfrac, backend="numpy")
+            acc[r, c0:c0 + n_comp] += np.moveaxis(part, 0, -1)
+        return
     bad = kernel(np.ascontiguousarray(tbin, dtype=np.int64),
                  np.ascontiguousarray(energy, dtype=np.float64),
                  np.ascontiguousarray(weight, dtype=np.float64),
@@ -195,12 +204,10 @@ def deposit_replicates(tbin: np.ndarray, energy: np.ndarray, weight: np.ndarray,
                  np.zeros(1, np.int64) if comp is None else
                  np.ascontiguousarray(comp, dtype=np.int64),
                  np.zeros(0) if tfrac is None else np.ascontiguousarray(tfrac, np.float64),
-                 np.ascontiguousarray(rw, dtype=np.float64), acc, n_time, n_fine,
-                 n_comp, order, 0.5 - e_lo / h, 1.0 / h)
+                 np.ascontiguousarray(rw, dtype=np.float64), acc, c0, n_comp,
+                 0.5 - e_lo / h, 1.0 / h)
     if bad:
         raise ValueError(f"{bad} sticks fall outside the moment grid (time bin or energy).")
-    acc5 = acc.reshape(n_comp, n_time, n_fine, n_rep, order)
-    return np.ascontiguousarray(np.transpose(acc5, (4, 3, 0, 1, 2)))
 
 
 def percentile_summary(reps: np.ndarray, estimate: np.ndarray, ci: float

@@ -23,7 +23,6 @@ per-channel rescaling of :mod:`.gaps` depends on the resample; a clear error say
 
 from __future__ import annotations
 
-import dataclasses
 from collections.abc import Sequence
 from typing import Any
 
@@ -33,11 +32,12 @@ from ...data.spectrum import TRPESMap
 from ...errors import SchemaError
 from ..engine import BlockSpan, add, as_source, reduce
 from . import _kernels_bootstrap as KBS
+from . import _kernels_broadening as KB
 from ._checks import time_bins
 from .cross_sections import resolve_cross_section
 from .model import TRPESModel
-from .pulses import GaussianPulse
-from .resolution import Resolution
+from .pulses import GaussianPulse, cross_correlation_sigma
+from .resolution import ProportionalResolution, Resolution, check_resolution, stick_fwhm
 from .sticks import block_alive, block_sticks, check_shifts
 from .weights import resolve_weights, trajectory_weights
 
@@ -67,9 +67,9 @@ def bootstrap_partial(block: Any, span: BlockSpan, opts: dict[str, Any]) -> dict
 
     ``opts["counts"]`` (n_rep, n_trajectories of the source) are the multiplicities of
     the chunk of resamples; the other keys are those of :func:`.maps.trpes_partial`.
-    Returns ``hist`` (order, n_rep, 1, n_time, n_fine), ``hist_comp`` (order, n_rep,
-    n_comp, n_time, n_fine) or None, ``alive`` (n_rep, n_time) and ``total``
-    (n_rep,) (the resamples' total trajectory weight).
+    Returns ``hist`` (n_rep, 1 + n_comp, n_time, n_fine, order) (the total, then each
+    component; see :func:`._kernels_bootstrap.deposit_replicates`), ``alive`` (n_rep,
+    n_time) and ``total`` (n_rep,) (the resamples' total trajectory weight).
     """
     n_traj = block.n_trajectories
     counts = opts["counts"][:, span.traj_start:span.traj_start + n_traj]
@@ -91,21 +91,21 @@ def bootstrap_partial(block: Any, span: BlockSpan, opts: dict[str, Any]) -> dict
     rw = np.ascontiguousarray(counts.T)
     s = bs.sticks
     src = tix[s.snapshot]
-    fine = {"n_time": opts["n_time"], "e_lo": opts["e_lo"], "h": opts["h"],
-            "n_fine": opts["n_fine"], "order": opts["order"], "backend": opts["backend"]}
-    hist = KBS.deposit_replicates(bs.tbin, s.energy, s.weight, src, rw, tfrac=bs.tfrac,
-                                  **fine)
-    hist_comp = None
+    n_lab = opts["n_comp"] if opts["decompose"] is not None else 0
+    acc = np.zeros((counts.shape[0], 1 + n_lab, opts["n_time"], opts["n_fine"],
+                    opts["order"]))
+    fine = {"e_lo": opts["e_lo"], "h": opts["h"], "backend": opts["backend"]}
+    KBS.deposit_replicates(acc, bs.tbin, s.energy, s.weight, src, rw, tfrac=bs.tfrac, **fine)
     if bs.comp is not None:
         cs = bs.comp_src
-        hist_comp = KBS.deposit_replicates(
-            bs.tbin if cs is None else bs.tbin[cs], s.energy if cs is None else s.energy[cs],
+        KBS.deposit_replicates(
+            acc, bs.tbin if cs is None else bs.tbin[cs],
+            s.energy if cs is None else s.energy[cs],
             s.weight if bs.comp_weight is None else bs.comp_weight,
-            src if cs is None else src[cs], rw, comp=bs.comp, n_comp=opts["n_comp"],
+            src if cs is None else src[cs], rw, comp=bs.comp, n_comp=n_lab, c0=1,
             tfrac=None if bs.tfrac is None else (bs.tfrac if cs is None else bs.tfrac[cs]),
             **fine)
-    return {"hist": hist, "hist_comp": hist_comp, "alive": (counts * w_traj) @ unit,
-            "total": counts @ w_traj}
+    return {"hist": acc, "alive": (counts * w_traj) @ unit, "total": counts @ w_traj}
 
 
 def _normalise(res: dict[str, Any], normalise: str) -> np.ndarray:
@@ -114,6 +114,31 @@ def _normalise(res: dict[str, Any], normalise: str) -> np.ndarray:
         res["total"][:, None], res["alive"].shape[1], axis=1)
     with np.errstate(divide="ignore"):
         return np.where(den > 0, 1.0 / np.where(den > 0, den, 1.0), 0.0)
+
+
+def _operators(model: TRPESModel, kinetic_energies: np.ndarray, delays: np.ndarray, *,
+               probe: GaussianPulse, pump: GaussianPulse | None, resolution: Resolution,
+               convolve: bool, e_lo: float, h: float, n_fine: int
+               ) -> tuple[Any, np.ndarray]:
+    """Energy broadening blocks and time matrix (without normaliser) of
+    :meth:`.model.TRPESModel.broaden` for these grids."""
+    resolution = check_resolution(resolution)
+    probe = probe or model.probe
+    sigma = None
+    if convolve:
+        sigma = (cross_correlation_sigma(pump, probe) if pump is not None
+                 else probe.effective_sigma)
+    cmat = model.time_weights(delays, sigma=sigma)
+    fwhm_of = None
+    if isinstance(resolution, ProportionalResolution):
+        res = resolution
+
+        def fwhm_of(c: np.ndarray) -> np.ndarray:
+            return np.asarray(stick_fwhm(probe, res, c))
+    bmat = KB.broadening_blocks(kinetic_energies, e_lo=e_lo, h=h, n_fine=n_fine,
+                                fwhm=model.fwhm(probe, resolution), order=model.order,
+                                fwhm_of=fwhm_of)
+    return bmat, cmat
 
 
 def bootstrap_map(
@@ -185,7 +210,10 @@ def bootstrap_map(
     rng = random_state if isinstance(random_state, np.random.Generator) else \
         np.random.default_rng(random_state)
     counts = KBS.bootstrap_counts(n_traj, int(n_boot), rng)
-    per_rep = 3 * 8 * order * (1 + n_lab) * n_time * n_fine
+    per_rep = 8 * order * (1 + n_lab) * n_time * n_fine
+    bmat, cmat = _operators(model, kinetic_energies, delays, probe=probe, pump=pump,
+                            resolution=resolution, convolve=convolve, e_lo=e_lo, h=h,
+                            n_fine=n_fine)
     chunk = KBS.replicate_chunk(int(n_boot), per_rep, budget)
     reps = np.empty((int(n_boot), *trpes_map.shape))
     reps_c = np.empty((int(n_boot), n_lab, *trpes_map.shape)) if n_lab else None
@@ -200,29 +228,13 @@ def bootstrap_map(
                      client=client, scheduler=scheduler, progress=False,
                      desc="bootstrap blocks")
         norm = _normalise(res, normalise)  # (n_rep, n_time)
-        parts = [res["hist"][:, :, 0]]
-        if n_lab:
-            hc = res["hist_comp"]
-            if hc is None:
-                hc = np.zeros((order, hi - lo, n_lab, n_time, n_fine))
-            parts.append(hc.reshape(order, (hi - lo) * n_lab, n_time, n_fine))
-            norm_c = np.repeat(norm, n_lab, axis=0)
-        stacked = np.concatenate(
-            [parts[0] * norm[None, :, :, None]]
-            + ([parts[1] * norm_c[None, :, :, None]] if n_lab else []), axis=1)
-        del res, parts
-        k = stacked.shape[1]
-        clone = dataclasses.replace(model, sticks=None, alive=np.ones(n_time),
-                                    labels=[str(i) for i in range(k)], _cache={})
-        clone.set_moments(e_lo=e_lo, h=h, n_fine=n_fine,
-                          hist=np.zeros((order, 1, n_time, n_fine)), hist_comp=stacked)
-        mm = clone.broaden(kinetic_energies=kinetic_energies, delays=delays, probe=probe,
-                           pump=pump, resolution=resolution, convolve=convolve,
-                           normalise="alive")
-        out = np.stack([mm.components[str(i)] for i in range(k)])
-        reps[lo:hi] = out[:hi - lo]
-        if reps_c is not None:
-            reps_c[lo:hi] = out[hi - lo:].reshape(hi - lo, n_lab, *trpes_map.shape)
+        for r in range(hi - lo):
+            hist_r = np.moveaxis(res["hist"][r], -1, 0)  # a view: (order, comp, time, fine)
+            out = KB.assemble(hist_r, bmat, cmat * norm[r][None, :])
+            reps[lo + r] = out[0]
+            if reps_c is not None:
+                reps_c[lo + r] = out[1:]
+        del res
     lower, upper, rel = KBS.percentile_summary(reps, trpes_map.intensity, ci)
     c_lo: dict[str, np.ndarray] = {}
     c_hi: dict[str, np.ndarray] = {}
