@@ -156,10 +156,12 @@ def save_map(trpes_map: TRPESMap, path: str | os.PathLike[str], *,
 
     NPZ keys: ``format``, ``kinetic_energies``, ``delays``, ``intensity``, ``alive``,
     ``alive_count``, ``component_labels`` (unicode array), ``components``
-    (n_components, n_delays, n_energies) and ``params`` (a JSON string). Written without
-    pickles, read back with ``allow_pickle=False``.
+    (n_components, n_delays, n_energies) and ``params`` (a JSON string); a map with an
+    interval adds ``lower``, ``upper``, ``rel_se`` (n_delays, n_energies) and
+    ``component_lower``, ``component_upper`` (n_components, n_delays, n_energies). Written
+    without pickles, read back with ``allow_pickle=False``.
 
-    CSV: comment lines ``# ensemblelab-trpes-map-v1``, ``# params: {json}``,
+    CSV (the total only; intervals are kept in NPZ files): comment lines ``# ensemblelab-trpes-map-v1``, ``# params: {json}``,
     ``# alive: v1,v2,...``, ``# alive_count: n1,n2,...``; then a grid whose first row is
     ``delay_fs`` followed by the kinetic energies (eV) and whose first column holds the
     delays (fs). The same grid layout is read by :func:`load_measured_map`.
@@ -195,7 +197,7 @@ def save_map(trpes_map: TRPESMap, path: str | os.PathLike[str], *,
             buf, format=np.array(TRPES_FORMAT), kinetic_energies=m.kinetic_energies,
             delays=m.delays, intensity=m.intensity, alive=m.alive, alive_count=m.alive_count,
             component_labels=np.array(labels, dtype=np.str_), components=comps,
-            params=np.array(json.dumps(m.params)))
+            params=np.array(json.dumps(m.params)), **_interval_arrays(m, labels))
         atomic_write_bytes(path, buf.getvalue())
         return path
     lines = [
@@ -209,6 +211,25 @@ def save_map(trpes_map: TRPESMap, path: str | os.PathLike[str], *,
         lines.append(repr(float(d)) + "," + ",".join(repr(float(v)) for v in row))
     atomic_write_bytes(path, ("\n".join(lines) + "\n").encode())
     return path
+
+
+def _interval_arrays(m: TRPESMap, labels: list[str]) -> dict[str, np.ndarray]:
+    """NPZ arrays of a map's interval (none without one)."""
+    out = {k: getattr(m, k) for k in ("lower", "upper", "rel_se") if getattr(m, k) is not None}
+    for name in ("component_lower", "component_upper"):
+        d = getattr(m, name)
+        if d:
+            out[name] = np.stack([d[k] for k in labels])
+    return out
+
+
+def _intervals_from(data: dict[str, np.ndarray], labels: list[str]) -> dict[str, Any]:
+    """TRPESMap keywords of the interval arrays of a saved map."""
+    out: dict[str, Any] = {k: data[k] for k in ("lower", "upper", "rel_se") if k in data}
+    for name in ("component_lower", "component_upper"):
+        if name in data and len(data[name]) == len(labels):
+            out[name] = {lab: data[name][i] for i, lab in enumerate(labels)}
+    return out
 
 
 def load_map(path: str | os.PathLike[str]) -> TRPESMap:
@@ -253,7 +274,7 @@ def load_map(path: str | os.PathLike[str]) -> TRPESMap:
                         intensity=data["intensity"],
                         components={lab: comps[i] for i, lab in enumerate(labels)},
                         alive=data.get("alive"), alive_count=data.get("alive_count"),
-                        params=params)
+                        params=params, **_intervals_from(data, labels))
     text = path.read_text()
     params = {}
     alive = count = None

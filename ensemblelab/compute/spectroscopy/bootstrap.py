@@ -165,14 +165,15 @@ def bootstrap_map(
     scheduler: Any = None,
     progress: bool = False,
     backend: str = "auto",
-    budget: int = KBS.MEMORY_BUDGET,
+    budget: int | None = None,
     return_replicates: bool = False,
 ) -> TRPESMap | tuple[TRPESMap, np.ndarray, np.ndarray | None]:
     """The map with percentile bootstrap intervals over whole trajectories.
 
     Parameters are those of :func:`.maps.compute_trpes` (``model`` and ``trpes_map``
     are its stick model and map); ``fields`` the arrays a block reads; ``budget`` the
-    bytes of replicate histograms per chunk; ``backend`` that of
+    bytes of replicate histograms per chunk (default
+    :data:`._kernels_bootstrap.MEMORY_BUDGET`); ``backend`` that of
     :func:`._kernels_bootstrap.deposit_replicates`.
 
     Returns
@@ -214,7 +215,8 @@ def bootstrap_map(
     bmat, cmat = _operators(model, kinetic_energies, delays, probe=probe, pump=pump,
                             resolution=resolution, convolve=convolve, e_lo=e_lo, h=h,
                             n_fine=n_fine)
-    chunk = KBS.replicate_chunk(int(n_boot), per_rep, budget)
+    chunk = KBS.replicate_chunk(int(n_boot), per_rep,
+                                KBS.MEMORY_BUDGET if budget is None else budget)
     reps = np.empty((int(n_boot), *trpes_map.shape))
     reps_c = np.empty((int(n_boot), n_lab, *trpes_map.shape)) if n_lab else None
     starts = range(0, int(n_boot), chunk)
