@@ -67,7 +67,7 @@ def bootstrap_partial(block: Any, span: BlockSpan, opts: dict[str, Any]) -> dict
 
     ``opts["counts"]`` (n_rep, n_trajectories of the source) are the multiplicities of
     the chunk of resamples; the other keys are those of :func:`.maps.trpes_partial`.
-    Returns ``hist`` (n_rep, 1 + n_comp, n_time, n_fine, order) (the total, then each
+    Returns ``hist`` (1 + n_comp, n_time, n_fine, n_rep, order) (the total, then each
     component; see :func:`._kernels_bootstrap.deposit_replicates`), ``alive`` (n_rep,
     n_time) and ``total`` (n_rep,) (the resamples' total trajectory weight).
     """
@@ -92,7 +92,7 @@ def bootstrap_partial(block: Any, span: BlockSpan, opts: dict[str, Any]) -> dict
     s = bs.sticks
     src = tix[s.snapshot]
     n_lab = opts["n_comp"] if opts["decompose"] is not None else 0
-    acc = np.zeros((counts.shape[0], 1 + n_lab, opts["n_time"], opts["n_fine"],
+    acc = np.zeros((1 + n_lab, opts["n_time"], opts["n_fine"], counts.shape[0],
                     opts["order"]))
     fine = {"e_lo": opts["e_lo"], "h": opts["h"], "backend": opts["backend"]}
     KBS.deposit_replicates(acc, bs.tbin, s.energy, s.weight, src, rw, tfrac=bs.tfrac, **fine)
@@ -230,13 +230,14 @@ def bootstrap_map(
                      client=client, scheduler=scheduler, progress=False,
                      desc="bootstrap blocks")
         norm = _normalise(res, normalise)  # (n_rep, n_time)
+        hist = KBS.per_resample(res.pop("hist"))
         for r in range(hi - lo):
-            hist_r = np.moveaxis(res["hist"][r], -1, 0)  # a view: (order, comp, time, fine)
+            hist_r = np.moveaxis(hist[r], -1, 0)  # a view: (order, comp, time, fine)
             out = KB.assemble(hist_r, bmat, cmat * norm[r][None, :])
             reps[lo + r] = out[0]
             if reps_c is not None:
                 reps_c[lo + r] = out[1:]
-        del res
+        del res, hist
     lower, upper, rel = KBS.percentile_summary(reps, trpes_map.intensity, ci)
     c_lo: dict[str, np.ndarray] = {}
     c_hi: dict[str, np.ndarray] = {}
