@@ -90,7 +90,7 @@ def main(argv: list[str] | None = None) -> int:
     n_rep = min(args.n_boot, KBS.replicate_chunk(
         args.n_boot, 8 * model.order * model.n_time * n_fine))
     rw = KBS.bootstrap_counts(ens.n_trajectories, n_rep, np.random.default_rng(0)).T.copy()
-    acc = np.zeros((1, model.n_time, n_fine, n_rep, model.order))
+    acc = np.zeros((1, model.n_time, n_rep, n_fine, model.order))
     t0 = time.perf_counter()
     KBS.deposit_replicates(acc, model.tbin, s.energy, s.weight, src, rw, e_lo=e_lo, h=h,
                            tfrac=model.tfrac)

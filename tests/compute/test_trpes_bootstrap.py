@@ -122,7 +122,7 @@ def test_replicate_deposit_equals_reweighted_deposits(with_tfrac):
     rw = KBS.bootstrap_counts(n_traj, 5, rng).T.copy()
     backends = ["numpy"] + (["numba"] if KD.numba_available() else [])
     for backend in backends:
-        acc = np.zeros((4, n_time, n_fine, 5, order))
+        acc = np.zeros((4, n_time, 5, n_fine, order))
         KBS.deposit_replicates(acc, tbin, energy, weight, src, rw, e_lo=0.0, h=0.05,
                                tfrac=tfrac, backend=backend)
         KBS.deposit_replicates(acc, tbin, energy, weight, src, rw, e_lo=0.0, h=0.05,
@@ -134,7 +134,7 @@ def test_replicate_deposit_equals_reweighted_deposits(with_tfrac):
             ref_c = KD.deposit_moments(tbin, energy, weight * rw[src, r], n_time=n_time,
                                        e_lo=0.0, h=0.05, n_fine=n_fine, order=order,
                                        comp=comp, n_comp=3, tfrac=tfrac)
-            got = np.moveaxis(KBS.per_resample(acc)[r], -1, 0)
+            got = KBS.per_resample(acc, r)
             np.testing.assert_allclose(got[:, :1], ref, rtol=1e-12, atol=1e-12)
             np.testing.assert_allclose(got[:, 1:], ref_c, rtol=1e-12, atol=1e-12)
 

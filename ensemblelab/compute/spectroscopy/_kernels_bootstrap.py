@@ -34,6 +34,7 @@ import numpy as np
 from . import _kernels_deposit as KD
 
 __all__ = ["bootstrap_counts", "unit_alive", "deposit_replicates", "per_resample",
+           "time_order",
            "replicate_chunk",
            "percentile_summary", "MEMORY_BUDGET"]
 
@@ -107,14 +108,14 @@ def _dep_replicates(tbin, energy, weight, src_traj, comp, tfrac, rw, acc, c0, n_
     """Deposit every stick for every resample of a chunk.
 
     ``rw`` (n_traj, n_rep) holds the resample multiplicities of the block's trajectories;
-    ``acc`` has the layout (component, time, fine bin, resample, moment) of
-    :func:`deposit_replicates` (a stick's moments for every resample: one contiguous
-    row); the sticks go to components ``c0 + comp``. Returns the
+    ``acc`` has the layout (component, time, resample, fine bin, moment) of
+    :func:`deposit_replicates` (the rows of one time bin stay in cache when the sticks
+    come in time order); the sticks go to components ``c0 + comp``. Returns the
     number of sticks out of range.
     """
     n_rep = rw.shape[1]
     n_time = acc.shape[1]
-    n_fine = acc.shape[2]
+    n_fine = acc.shape[3]
     order = acc.shape[4]
     fn = float(n_fine)
     mom = np.empty(order)
@@ -146,14 +147,14 @@ def _dep_replicates(tbin, energy, weight, src_traj, comp, tfrac, rw, acc, c0, n_
                     a0 = cr * f0
                     a1 = cr * f
                     for k in range(order):
-                        acc[cc, tb, b, r, k] += a0 * mom[k]
-                        acc[cc, tb + 1, b, r, k] += a1 * mom[k]
+                        acc[cc, tb, r, b, k] += a0 * mom[k]
+                        acc[cc, tb + 1, r, b, k] += a1 * mom[k]
         else:
             for r in range(n_rep):
                 cr = rw[n, r]
                 if cr != 0.0:
                     for k in range(order):
-                        acc[cc, tb, b, r, k] += cr * mom[k]
+                        acc[cc, tb, r, b, k] += cr * mom[k]
     return bad
 
 
@@ -169,7 +170,7 @@ def deposit_replicates(acc: np.ndarray, tbin: np.ndarray, energy: np.ndarray,
 
     Parameters
     ----------
-    acc : ndarray, shape (n_components, n_time, n_fine, n_rep, order)
+    acc : ndarray, shape (n_components, n_time, n_rep, n_fine, order)
         Accumulator (see :func:`per_resample` for the layout of
         :func:`._kernels_broadening.assemble`).
     tbin : ndarray of int, shape (n_sticks,)
@@ -190,14 +191,14 @@ def deposit_replicates(acc: np.ndarray, tbin: np.ndarray, energy: np.ndarray,
     backend : {"auto", "numba", "numpy"}
         Compiled kernel (when numba is installed) or a loop of numpy deposits.
     """
-    _, n_time, n_fine, n_rep, order = acc.shape
+    _, n_time, n_rep, n_fine, order = acc.shape
     kernel = _numba_replicates() if backend in ("auto", "numba") else None
     if kernel is None:
         for r in range(n_rep):
             part = KD.deposit_moments(tbin, energy, weight * rw[src_traj, r], n_time=n_time,
                                       e_lo=e_lo, h=h, n_fine=n_fine, order=order, comp=comp,
                                       n_comp=n_comp, tfrac=tfrac, backend="numpy")
-            acc[c0:c0 + n_comp, :, :, r] += np.moveaxis(part, 0, -1)
+            acc[c0:c0 + n_comp, :, r] += np.moveaxis(part, 0, -1)
         return
     bad = kernel(np.ascontiguousarray(tbin, dtype=np.int64),
                  np.ascontiguousarray(energy, dtype=np.float64),
@@ -212,11 +213,18 @@ def deposit_replicates(acc: np.ndarray, tbin: np.ndarray, energy: np.ndarray,
         raise ValueError(f"{bad} sticks fall outside the moment grid (time bin or energy).")
 
 
-def per_resample(acc: np.ndarray) -> np.ndarray:
-    """Accumulator (comp, time, fine, resample, moment) -> (resample, comp, time, fine,
-    moment), contiguous: ``np.moveaxis(out[r], -1, 0)`` is resample r's histograms in the
-    layout of :func:`._kernels_broadening.assemble` (a view)."""
-    return np.ascontiguousarray(np.moveaxis(acc, 3, 0))
+def per_resample(acc: np.ndarray, r: int) -> np.ndarray:
+    """Resample r's histograms (order, comp, time, fine) of an accumulator (comp, time,
+    resample, fine, moment): a view in the layout :func:`._kernels_broadening.assemble`
+    reads without copying (each time row's fine bins and moments are contiguous)."""
+    return np.moveaxis(acc[:, :, r], -1, 0)
+
+
+def time_order(tbin: np.ndarray) -> np.ndarray | None:
+    """Stable order of the sticks by time bin (None when they already are)."""
+    if tbin.size < 2 or np.all(tbin[1:] >= tbin[:-1]):
+        return None
+    return np.argsort(tbin, kind="stable")
 
 
 def percentile_summary(reps: np.ndarray, estimate: np.ndarray, ci: float

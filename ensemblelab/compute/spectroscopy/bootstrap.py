@@ -28,6 +28,7 @@ from typing import Any
 
 import numpy as np
 
+from ...data.ensemble import Ensemble
 from ...data.spectrum import TRPESMap
 from ...errors import SchemaError
 from ..engine import BlockSpan, add, as_source, reduce
@@ -41,7 +42,8 @@ from .resolution import ProportionalResolution, Resolution, check_resolution, st
 from .sticks import block_alive, block_sticks, check_shifts
 from .weights import resolve_weights, trajectory_weights
 
-__all__ = ["bootstrap_map", "bootstrap_partial", "check_interval", "INTERVALS"]
+__all__ = ["bootstrap_map", "bootstrap_partial", "block_resampling_inputs", "check_interval",
+           "INTERVALS"]
 
 #: accepted values of ``interval`` for maps
 INTERVALS = (None, "bootstrap")
@@ -62,17 +64,14 @@ def check_interval(interval: Any, ci: Any, n_boot: Any) -> None:
                           "95% intervals.")
 
 
-def bootstrap_partial(block: Any, span: BlockSpan, opts: dict[str, Any]) -> dict[str, Any]:
-    """Replicate moment histograms and alive weights of one block (a reduction partial).
+def _sorted(order: np.ndarray | None, *arrays: np.ndarray | None) -> list[Any]:
+    return [a if (a is None or order is None) else a[order] for a in arrays]
 
-    ``opts["counts"]`` (n_rep, n_trajectories of the source) are the multiplicities of
-    the chunk of resamples; the other keys are those of :func:`.maps.trpes_partial`.
-    Returns ``hist`` (1 + n_comp, n_time, n_fine, n_rep, order) (the total, then each
-    component; see :func:`._kernels_bootstrap.deposit_replicates`), ``alive`` (n_rep,
-    n_time) and ``total`` (n_rep,) (the resamples' total trajectory weight).
-    """
-    n_traj = block.n_trajectories
-    counts = opts["counts"][:, span.traj_start:span.traj_start + n_traj]
+
+def block_resampling_inputs(block: Any, opts: dict[str, Any]) -> dict[str, Any]:
+    """What a block's resamples are made of: its sticks in time order (total and
+    components), block-local trajectory of each, trajectory weights and unit alive
+    profiles (:func:`._kernels_bootstrap.unit_alive`)."""
     w_traj, _ = trajectory_weights(block, weights=opts["weights"], pump=opts["pump"])
     grid = {"start": opts["start"], "dt": opts["dt"], "n_time": opts["n_time"]}
     extra = {"ionisation_shifts": opts["ionisation_shifts"],
@@ -85,27 +84,57 @@ def bootstrap_partial(block: Any, span: BlockSpan, opts: dict[str, Any]) -> dict
                       **extra)
     tix = block.traj_index
     tbin_s, tfrac_s = time_bins(block.snapshots["time"].to_numpy(), opts["start"], opts["dt"])
-    unit = KBS.unit_alive(tix, tbin_s, tfrac_s, al.has_data.any(axis=1), n_traj,
-                          opts["n_time"], absorbed_traj=tix[al.absorbed], ext_bin=al.ext_bin,
+    unit = KBS.unit_alive(tix, tbin_s, tfrac_s, al.has_data.any(axis=1),
+                          block.n_trajectories, opts["n_time"],
+                          absorbed_traj=tix[al.absorbed], ext_bin=al.ext_bin,
                           ext_first=al.ext_first)
-    rw = np.ascontiguousarray(counts.T)
     s = bs.sticks
     src = tix[s.snapshot]
-    n_lab = opts["n_comp"] if opts["decompose"] is not None else 0
-    acc = np.zeros((1 + n_lab, opts["n_time"], opts["n_fine"], counts.shape[0],
-                    opts["order"]))
-    fine = {"e_lo": opts["e_lo"], "h": opts["h"], "backend": opts["backend"]}
-    KBS.deposit_replicates(acc, bs.tbin, s.energy, s.weight, src, rw, tfrac=bs.tfrac, **fine)
+    order = KBS.time_order(bs.tbin)
+    out: dict[str, Any] = {"w_traj": w_traj, "unit": unit,
+                           "total": _sorted(order, bs.tbin, s.energy, s.weight, src, bs.tfrac)}
     if bs.comp is not None:
         cs = bs.comp_src
-        KBS.deposit_replicates(
-            acc, bs.tbin if cs is None else bs.tbin[cs],
-            s.energy if cs is None else s.energy[cs],
-            s.weight if bs.comp_weight is None else bs.comp_weight,
-            src if cs is None else src[cs], rw, comp=bs.comp, n_comp=n_lab, c0=1,
-            tfrac=None if bs.tfrac is None else (bs.tfrac if cs is None else bs.tfrac[cs]),
-            **fine)
-    return {"hist": acc, "alive": (counts * w_traj) @ unit, "total": counts @ w_traj}
+        tb = bs.tbin if cs is None else bs.tbin[cs]
+        arrays = (tb, s.energy if cs is None else s.energy[cs],
+                  s.weight if bs.comp_weight is None else bs.comp_weight,
+                  src if cs is None else src[cs], bs.comp,
+                  None if bs.tfrac is None else (bs.tfrac if cs is None else bs.tfrac[cs]))
+        out["comp"] = _sorted(KBS.time_order(tb), *arrays)
+    return out
+
+
+def bootstrap_partial(block: Any, span: BlockSpan, opts: dict[str, Any]) -> dict[str, Any]:
+    """Replicate moment histograms and alive weights of one block (a reduction partial).
+
+    ``opts["counts"]`` (n_rep, n_trajectories of the source) are the multiplicities of
+    the chunk of resamples; the other keys are those of :func:`.maps.trpes_partial`
+    (with ``opts["cache"]``, a dict, the block's sticks are kept there for the next
+    chunk: in-memory ensembles). Returns ``hist`` (1 + n_comp, n_time, n_rep, n_fine,
+    order) (the total, then each component; see
+    :func:`._kernels_bootstrap.deposit_replicates`), ``alive`` (n_rep, n_time) and
+    ``total`` (n_rep,) (the resamples' total trajectory weight).
+    """
+    counts = opts["counts"][:, span.traj_start:span.traj_start + block.n_trajectories]
+    cache = opts.get("cache")
+    inp = None if cache is None else cache.get(span.index)
+    if inp is None:
+        inp = block_resampling_inputs(block, opts)
+        if cache is not None:
+            cache[span.index] = inp
+    rw = np.ascontiguousarray(counts.T)
+    n_lab = opts["n_comp"] if opts["decompose"] is not None else 0
+    acc = np.zeros((1 + n_lab, opts["n_time"], counts.shape[0], opts["n_fine"],
+                    opts["order"]))
+    fine = {"e_lo": opts["e_lo"], "h": opts["h"], "backend": opts["backend"]}
+    tb, e, w, src, tf = inp["total"]
+    KBS.deposit_replicates(acc, tb, e, w, src, rw, tfrac=tf, **fine)
+    if "comp" in inp:
+        tb, e, w, src, comp, tf = inp["comp"]
+        KBS.deposit_replicates(acc, tb, e, w, src, rw, comp=comp, n_comp=n_lab, c0=1,
+                               tfrac=tf, **fine)
+    w_traj = inp["w_traj"]
+    return {"hist": acc, "alive": (counts * w_traj) @ inp["unit"], "total": counts @ w_traj}
 
 
 def _normalise(res: dict[str, Any], normalise: str) -> np.ndarray:
@@ -207,7 +236,8 @@ def bootstrap_map(
         "order": order, "ionisation_shifts": check_shifts(ionisation_shifts,
                                                           source.n_cation),
         "absorbing_state": model.info.get("absorbing_state"), "absorbing": absorbing,
-        "t_end": model.t_known, "backend": backend}
+        "t_end": model.t_known, "backend": backend,
+        "cache": {} if isinstance(ens, Ensemble) else None}
     rng = random_state if isinstance(random_state, np.random.Generator) else \
         np.random.default_rng(random_state)
     counts = KBS.bootstrap_counts(n_traj, int(n_boot), rng)
@@ -230,10 +260,9 @@ def bootstrap_map(
                      client=client, scheduler=scheduler, progress=False,
                      desc="bootstrap blocks")
         norm = _normalise(res, normalise)  # (n_rep, n_time)
-        hist = KBS.per_resample(res.pop("hist"))
+        hist = res.pop("hist")
         for r in range(hi - lo):
-            hist_r = np.moveaxis(hist[r], -1, 0)  # a view: (order, comp, time, fine)
-            out = KB.assemble(hist_r, bmat, cmat * norm[r][None, :])
+            out = KB.assemble(KBS.per_resample(hist, r), bmat, cmat * norm[r][None, :])
             reps[lo + r] = out[0]
             if reps_c is not None:
                 reps_c[lo + r] = out[1:]
