@@ -87,13 +87,18 @@ def main(argv: list[str] | None = None) -> int:
     assert s is not None and model.tbin is not None
     e_lo, h, n_fine = model.moment_grid(model.fwhm())
     src = np.searchsorted(ens.trajectories["traj"].to_numpy(), s.traj)
+    order = KBS.time_order(model.tbin)  # the bootstrap deposits sticks in time order
+    tb, en, wt = model.tbin, s.energy, s.weight
+    tf = model.tfrac
+    if order is not None:
+        tb, en, wt, src = tb[order], en[order], wt[order], src[order]
+        tf = None if tf is None else tf[order]
     n_rep = min(args.n_boot, KBS.replicate_chunk(
         args.n_boot, 8 * model.order * model.n_time * n_fine))
     rw = KBS.bootstrap_counts(ens.n_trajectories, n_rep, np.random.default_rng(0)).T.copy()
     acc = np.zeros((1, model.n_time, n_rep, n_fine, model.order))
     t0 = time.perf_counter()
-    KBS.deposit_replicates(acc, model.tbin, s.energy, s.weight, src, rw, e_lo=e_lo, h=h,
-                           tfrac=model.tfrac)
+    KBS.deposit_replicates(acc, tb, en, wt, src, rw, e_lo=e_lo, h=h, tfrac=tf)
     t_rep = (time.perf_counter() - t0) / n_rep
     t0 = time.perf_counter()
     KD.deposit_moments(model.tbin, s.energy, s.weight, n_time=model.n_time, e_lo=e_lo, h=h,

@@ -13,9 +13,10 @@ numerator and denominator from the same draw.
 * :func:`bootstrap_counts` draws the multiplicities, shape (n_boot, n_trajectories).
 * :func:`unit_alive` gives the per-trajectory alive profiles of a block.
 * :func:`deposit_replicates` deposits a block's sticks for a chunk of resamples at once
-  (compiled with numba when installed: one pass over the sticks, each stick adding
-  its ``order`` moments for every resample of the chunk into one contiguous row;
-  otherwise one :func:`._kernels_deposit.deposit_moments` call per resample).
+  (compiled with numba when installed: one pass over the sticks, in time order, each
+  stick adding its ``order`` moments for every resample of the chunk; the accumulator
+  keeps a time bin's rows of all resamples together so they stay in cache; otherwise
+  one :func:`._kernels_deposit.deposit_moments` call per resample).
 * :func:`replicate_chunk` says how many resamples fit a memory budget.
 * :func:`percentile_summary` turns replicate maps into percentile intervals and the
   relative standard error.
@@ -27,6 +28,7 @@ ensembles, each through :func:`~.maps.compute_trpes`); tests compare the two.
 from __future__ import annotations
 
 from collections.abc import Callable
+from concurrent.futures import ThreadPoolExecutor
 from typing import Any
 
 import numpy as np
@@ -104,20 +106,24 @@ _COMPILED: dict[str, Any] = {}
 
 
 def _dep_replicates(tbin, energy, weight, src_traj, comp, tfrac, rw, acc, c0, n_comp,
-                    shift, inv_h):  # pragma: no cover - compiled by numba
+                    shift, inv_h, r_lo, r_hi):  # pragma: no cover - compiled by numba
     """Deposit every stick for every resample of a chunk.
 
     ``rw`` (n_traj, n_rep) holds the resample multiplicities of the block's trajectories;
     ``acc`` has the layout (component, time, resample, fine bin, moment) of
     :func:`deposit_replicates` (the rows of one time bin stay in cache when the sticks
-    come in time order); the sticks go to components ``c0 + comp``. Returns the
-    number of sticks out of range.
+    come in time order); the sticks go to components ``c0 + comp``, for resamples
+    ``r_lo .. r_hi - 1`` only (threads take disjoint ranges). Returns the number of
+    sticks out of range.
     """
     n_rep = rw.shape[1]
     n_time = acc.shape[1]
     n_fine = acc.shape[3]
     order = acc.shape[4]
+    flat = acc.reshape(-1)
     fn = float(n_fine)
+    s_rep = np.uint64(n_fine * order)
+    s_time = np.uint64(n_rep) * s_rep
     mom = np.empty(order)
     bad = 0
     for i in range(energy.shape[0]):
@@ -134,27 +140,29 @@ def _dep_replicates(tbin, energy, weight, src_traj, comp, tfrac, rw, acc, c0, n_
             mom[k] = v
             v *= d
         n = src_traj[i]
-        cc = c0 + c
+        row = (np.uint64((c0 + c) * n_time + tb) * s_time + np.uint64(b * order))
         f = tfrac[i] if tfrac.shape[0] else 0.0
         if f > 0.0:
             if tb + 1 >= n_time:
                 bad += 1
                 continue
             f0 = 1.0 - f
-            for r in range(n_rep):
+            for r in range(r_lo, r_hi):
                 cr = rw[n, r]
                 if cr != 0.0:
                     a0 = cr * f0
                     a1 = cr * f
+                    base = row + np.uint64(r) * s_rep
                     for k in range(order):
-                        acc[cc, tb, r, b, k] += a0 * mom[k]
-                        acc[cc, tb + 1, r, b, k] += a1 * mom[k]
+                        flat[base + np.uint64(k)] += a0 * mom[k]
+                        flat[base + s_time + np.uint64(k)] += a1 * mom[k]
         else:
-            for r in range(n_rep):
+            for r in range(r_lo, r_hi):
                 cr = rw[n, r]
                 if cr != 0.0:
+                    base = row + np.uint64(r) * s_rep
                     for k in range(order):
-                        acc[cc, tb, r, b, k] += cr * mom[k]
+                        flat[base + np.uint64(k)] += cr * mom[k]
     return bad
 
 
@@ -192,6 +200,8 @@ def deposit_replicates(acc: np.ndarray, tbin: np.ndarray, energy: np.ndarray,
         Compiled kernel (when numba is installed) or a loop of numpy deposits.
     """
     _, n_time, n_rep, n_fine, order = acc.shape
+    if not acc.flags.c_contiguous or acc.dtype != np.float64:
+        raise ValueError("acc must be a C-contiguous float64 array.")
     kernel = _numba_replicates() if backend in ("auto", "numba") else None
     if kernel is None:
         for r in range(n_rep):
@@ -200,15 +210,23 @@ def deposit_replicates(acc: np.ndarray, tbin: np.ndarray, energy: np.ndarray,
                                       n_comp=n_comp, tfrac=tfrac, backend="numpy")
             acc[c0:c0 + n_comp, :, r] += np.moveaxis(part, 0, -1)
         return
-    bad = kernel(np.ascontiguousarray(tbin, dtype=np.int64),
-                 np.ascontiguousarray(energy, dtype=np.float64),
-                 np.ascontiguousarray(weight, dtype=np.float64),
-                 np.ascontiguousarray(src_traj, dtype=np.int64),
-                 np.zeros(1, np.int64) if comp is None else
-                 np.ascontiguousarray(comp, dtype=np.int64),
-                 np.zeros(0) if tfrac is None else np.ascontiguousarray(tfrac, np.float64),
-                 np.ascontiguousarray(rw, dtype=np.float64), acc, c0, n_comp,
-                 0.5 - e_lo / h, 1.0 / h)
+    args = (np.ascontiguousarray(tbin, dtype=np.int64),
+            np.ascontiguousarray(energy, dtype=np.float64),
+            np.ascontiguousarray(weight, dtype=np.float64),
+            np.ascontiguousarray(src_traj, dtype=np.int64),
+            np.zeros(1, np.int64) if comp is None else np.ascontiguousarray(comp, dtype=np.int64),
+            np.zeros(0) if tfrac is None else np.ascontiguousarray(tfrac, np.float64),
+            np.ascontiguousarray(rw, dtype=np.float64), acc, c0, n_comp, 0.5 - e_lo / h,
+            1.0 / h)
+    n_threads = (1 if energy.size * n_rep < KD.MIN_STICKS_PER_THREAD
+                 else max(1, min(KD.usable_cores(), n_rep)))
+    edges = np.linspace(0, n_rep, n_threads + 1).astype(int)
+    if n_threads == 1:
+        bad = kernel(*args, 0, n_rep)
+    else:  # disjoint resample ranges: no two threads write the same cell
+        with ThreadPoolExecutor(n_threads) as pool:
+            bad = sum(pool.map(lambda t: kernel(*args, edges[t], edges[t + 1]),
+                               range(n_threads))) // n_threads
     if bad:
         raise ValueError(f"{bad} sticks fall outside the moment grid (time bin or energy).")
 

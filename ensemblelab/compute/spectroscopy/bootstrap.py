@@ -68,20 +68,24 @@ def _sorted(order: np.ndarray | None, *arrays: np.ndarray | None) -> list[Any]:
     return [a if (a is None or order is None) else a[order] for a in arrays]
 
 
-def block_resampling_inputs(block: Any, opts: dict[str, Any]) -> dict[str, Any]:
+def block_resampling_inputs(block: Any, opts: dict[str, Any],
+                            model: TRPESModel | None = None) -> dict[str, Any]:
     """What a block's resamples are made of: its sticks in time order (total and
     components), block-local trajectory of each, trajectory weights and unit alive
-    profiles (:func:`._kernels_bootstrap.unit_alive`)."""
+    profiles (:func:`._kernels_bootstrap.unit_alive`). With ``model`` (made from this
+    block, an in-memory ensemble) its sticks are used instead of being made again."""
     w_traj, _ = trajectory_weights(block, weights=opts["weights"], pump=opts["pump"])
     grid = {"start": opts["start"], "dt": opts["dt"], "n_time": opts["n_time"]}
     extra = {"ionisation_shifts": opts["ionisation_shifts"],
              "absorbing_state": opts["absorbing_state"], "absorbing": opts["absorbing"],
              "t_end": opts["t_end"]}
     al = block_alive(block, w_traj=w_traj, probe=opts["probe"], **grid, **extra)
-    bs = block_sticks(block, probe=opts["probe"], cross_section=opts["cross_section"],
-                      w_traj=w_traj, weights_used=opts["weights_used"],
-                      decompose=opts["decompose"], fill=None, local_fill=False, **grid,
-                      **extra)
+    bs: Any = model
+    if model is None or model.sticks is None or model.tbin is None:
+        bs = block_sticks(block, probe=opts["probe"], cross_section=opts["cross_section"],
+                          w_traj=w_traj, weights_used=opts["weights_used"],
+                          decompose=opts["decompose"], fill=None, local_fill=False, **grid,
+                          **extra)
     tix = block.traj_index
     tbin_s, tfrac_s = time_bins(block.snapshots["time"].to_numpy(), opts["start"], opts["dt"])
     unit = KBS.unit_alive(tix, tbin_s, tfrac_s, al.has_data.any(axis=1),
@@ -238,6 +242,8 @@ def bootstrap_map(
         "absorbing_state": model.info.get("absorbing_state"), "absorbing": absorbing,
         "t_end": model.t_known, "backend": backend,
         "cache": {} if isinstance(ens, Ensemble) else None}
+    if isinstance(ens, Ensemble):  # one block: the model's own sticks
+        opts["cache"][0] = block_resampling_inputs(ens, opts, model)
     rng = random_state if isinstance(random_state, np.random.Generator) else \
         np.random.default_rng(random_state)
     counts = KBS.bootstrap_counts(n_traj, int(n_boot), rng)
