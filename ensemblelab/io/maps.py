@@ -161,9 +161,9 @@ def save_map(trpes_map: TRPESMap, path: str | os.PathLike[str], *,
     ``component_lower``, ``component_upper`` (n_components, n_delays, n_energies). Written
     without pickles, read back with ``allow_pickle=False``.
 
-    CSV (the total only; intervals are kept in NPZ files): comment lines ``# ensemblelab-trpes-map-v1``, ``# params: {json}``,
-    ``# alive: v1,v2,...``, ``# alive_count: n1,n2,...``; then a grid whose first row is
-    ``delay_fs`` followed by the kinetic energies (eV) and whose first column holds the
+    CSV (the total only; intervals are kept in NPZ files): comment lines
+    ``# ensemblelab-trpes-map-v1``, ``# params: {json}``, ``# alive: v1,v2,...``,
+    ``# alive_count: n1,n2,...``; then a grid whose first row is ``delay_fs`` followed by the kinetic energies (eV) and whose first column holds the
     delays (fs). The same grid layout is read by :func:`load_measured_map`.
 
     Parameters
@@ -197,7 +197,8 @@ def save_map(trpes_map: TRPESMap, path: str | os.PathLike[str], *,
             buf, format=np.array(TRPES_FORMAT), kinetic_energies=m.kinetic_energies,
             delays=m.delays, intensity=m.intensity, alive=m.alive, alive_count=m.alive_count,
             component_labels=np.array(labels, dtype=np.str_), components=comps,
-            params=np.array(json.dumps(m.params)), **_interval_arrays(m, labels))
+            params=np.array(json.dumps(m.params)),
+            **_interval_arrays(m, labels))  # type: ignore[arg-type]
         atomic_write_bytes(path, buf.getvalue())
         return path
     lines = [

@@ -88,7 +88,7 @@ def block_resampling_inputs(block: Any, opts: dict[str, Any],
                           **extra)
     tix = block.traj_index
     tbin_s, tfrac_s = time_bins(block.snapshots["time"].to_numpy(), opts["start"], opts["dt"])
-    unit = KBS.unit_alive(tix, tbin_s, tfrac_s, al.has_data.any(axis=1),
+    unit = KBS.unit_alive(tix, tbin_s, tfrac_s, np.asarray(al.has_data.any(axis=1)),
                           block.n_trajectories, opts["n_time"],
                           absorbed_traj=tix[al.absorbed], ext_bin=al.ext_bin,
                           ext_first=al.ext_first)
