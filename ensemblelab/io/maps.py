@@ -164,7 +164,8 @@ def save_map(trpes_map: TRPESMap, path: str | os.PathLike[str], *,
     CSV (the total only; intervals are kept in NPZ files): comment lines
     ``# ensemblelab-trpes-map-v1``, ``# params: {json}``, ``# alive: v1,v2,...``,
     ``# alive_count: n1,n2,...``; then a grid whose first row is ``delay_fs`` followed
-    by the kinetic energies (eV) and whose first column holds the delays (fs). The same grid layout is read by :func:`load_measured_map`.
+    by the kinetic energies (eV) and whose first column holds the delays (fs). The same
+    grid layout is read by :func:`load_measured_map`.
 
     Parameters
     ----------
