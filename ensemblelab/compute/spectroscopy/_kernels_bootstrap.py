@@ -97,7 +97,7 @@ def _numba_replicates() -> Callable[..., int] | None:
         return _COMPILED["kernel"]
     import numba
 
-    kernel = numba.njit(cache=True, nogil=True)(_dep_replicates)
+    kernel = numba.njit(cache=True, nogil=True, fastmath=True)(_dep_replicates)
     _COMPILED["kernel"] = kernel
     return kernel
 
@@ -156,6 +156,21 @@ def _dep_replicates(tbin, energy, weight, src_traj, comp, tfrac, rw, acc, c0, n_
                     for k in range(order):
                         flat[base + np.uint64(k)] += a0 * mom[k]
                         flat[base + s_time + np.uint64(k)] += a1 * mom[k]
+        elif order == 8:  # unrolled: the common case (8 moments, one cache line)
+            m0, m1, m2, m3 = mom[0], mom[1], mom[2], mom[3]
+            m4, m5, m6, m7 = mom[4], mom[5], mom[6], mom[7]
+            base = row + np.uint64(r_lo) * s_rep
+            for r in range(r_lo, r_hi):
+                cr = rw[n, r]
+                flat[base] += cr * m0
+                flat[base + np.uint64(1)] += cr * m1
+                flat[base + np.uint64(2)] += cr * m2
+                flat[base + np.uint64(3)] += cr * m3
+                flat[base + np.uint64(4)] += cr * m4
+                flat[base + np.uint64(5)] += cr * m5
+                flat[base + np.uint64(6)] += cr * m6
+                flat[base + np.uint64(7)] += cr * m7
+                base += s_rep
         else:
             for r in range(r_lo, r_hi):
                 cr = rw[n, r]
