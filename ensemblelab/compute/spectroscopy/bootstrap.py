@@ -23,7 +23,9 @@ per-channel rescaling of :mod:`.gaps` depends on the resample; a clear error say
 
 from __future__ import annotations
 
+import contextlib
 from collections.abc import Sequence
+from concurrent.futures import ThreadPoolExecutor
 from typing import Any
 
 import numpy as np
@@ -34,6 +36,7 @@ from ...errors import SchemaError
 from ..engine import BlockSpan, add, as_source, reduce
 from . import _kernels_bootstrap as KBS
 from . import _kernels_broadening as KB
+from . import _kernels_deposit as KD
 from ._checks import time_bins
 from .cross_sections import resolve_cross_section
 from .model import TRPESModel
@@ -139,6 +142,17 @@ def bootstrap_partial(block: Any, span: BlockSpan, opts: dict[str, Any]) -> dict
                                tfrac=tf, **fine)
     w_traj = inp["w_traj"]
     return {"hist": acc, "alive": (counts * w_traj) @ inp["unit"], "total": counts @ w_traj}
+
+
+def _one_blas_thread() -> Any:
+    """Context holding BLAS at one thread for the whole loop (threadpoolctl, installed
+    with scikit-learn; else nothing), so that the per-call limits of concurrent
+    ``assemble`` calls nest inside it and the caller's setting comes back at the end."""
+    try:
+        from threadpoolctl import threadpool_limits
+    except ImportError:  # pragma: no cover - threadpoolctl comes with scikit-learn
+        return contextlib.nullcontext()
+    return threadpool_limits(limits=1, user_api="blas")
 
 
 def _normalise(res: dict[str, Any], normalise: str) -> np.ndarray:
@@ -267,11 +281,17 @@ def bootstrap_map(
                      desc="bootstrap blocks")
         norm = _normalise(res, normalise)  # (n_rep, n_time)
         hist = res.pop("hist")
-        for r in range(hi - lo):
-            out = KB.assemble(KBS.per_resample(hist, r), bmat, cmat * norm[r][None, :])
+
+        def one(r: int, hist: np.ndarray = hist, norm: np.ndarray = norm,
+                lo: int = lo) -> None:
+            out = KB.assemble(KBS.per_resample(hist, r), bmat, cmat * norm[r][None, :],
+                              n_threads=1)
             reps[lo + r] = out[0]
             if reps_c is not None:
                 reps_c[lo + r] = out[1:]
+
+        with _one_blas_thread(), ThreadPoolExecutor(max(1, KD.usable_cores())) as pool:
+            list(pool.map(one, range(hi - lo)))  # resamples side by side, BLAS 1 thread
         del res, hist
     lower, upper, rel = KBS.percentile_summary(reps, trpes_map.intensity, ci)
     c_lo: dict[str, np.ndarray] = {}
