@@ -109,8 +109,11 @@ def test_resampled_ensemble_copies_whole_trajectories():
 
 
 # ------------------------------------------------------------------ kernels
-@pytest.mark.parametrize("with_tfrac", [False, True])
-def test_replicate_deposit_equals_reweighted_deposits(with_tfrac):
+@pytest.mark.parametrize("with_tfrac,threads", [(False, False), (True, False), (True, True)])
+def test_replicate_deposit_equals_reweighted_deposits(with_tfrac, threads, monkeypatch):
+    if threads:  # resamples split over the usable cores even for few sticks
+        monkeypatch.setattr(KD, "MIN_STICKS_PER_THREAD", 1)
+        monkeypatch.setattr(KD, "usable_cores", lambda: 2)
     rng = np.random.default_rng(0)
     n, n_traj, n_time, n_fine, order = 3000, 9, 12, 40, 8
     tbin = rng.integers(0, n_time - 1, n)

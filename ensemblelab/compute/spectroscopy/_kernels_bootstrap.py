@@ -105,18 +105,18 @@ def _numba_replicates() -> Callable[..., int] | None:
 _COMPILED: dict[str, Any] = {}
 
 
-def _dep_replicates(tbin, energy, weight, src_traj, comp, tfrac, rw, acc, c0, n_comp,
-                    shift, inv_h, r_lo, r_hi):  # pragma: no cover - compiled by numba
+def _dep_replicates(tbin, energy, weight, src_traj, comp, tfrac, ridx, rval, nnz, acc, c0,
+                    n_comp, shift, inv_h):  # pragma: no cover - compiled by numba
     """Deposit every stick for every resample of a chunk.
 
-    ``rw`` (n_traj, n_rep) holds the resample multiplicities of the block's trajectories;
+    Trajectory ``n`` appears in the resamples ``ridx[n, :nnz[n]]`` with multiplicities
+    ``rval[n, :nnz[n]]`` (the non-zero ones: a third of the pairs are zero);
     ``acc`` has the layout (component, time, resample, fine bin, moment) of
     :func:`deposit_replicates` (the rows of one time bin stay in cache when the sticks
-    come in time order); the sticks go to components ``c0 + comp``, for resamples
-    ``r_lo .. r_hi - 1`` only (threads take disjoint ranges). Returns the number of
-    sticks out of range.
+    come in time order); the sticks go to components ``c0 + comp`` (threads take
+    disjoint sets of resamples). Returns the number of sticks out of range.
     """
-    n_rep = rw.shape[1]
+    n_rep = acc.shape[2]
     n_time = acc.shape[1]
     n_fine = acc.shape[3]
     order = acc.shape[4]
@@ -147,8 +147,9 @@ def _dep_replicates(tbin, energy, weight, src_traj, comp, tfrac, rw, acc, c0, n_
                 bad += 1
                 continue
             f0 = 1.0 - f
-            for r in range(r_lo, r_hi):
-                cr = rw[n, r]
+            for j in range(nnz[n]):
+                r = ridx[n, j]
+                cr = rval[n, j]
                 if cr != 0.0:
                     a0 = cr * f0
                     a1 = cr * f
@@ -159,9 +160,9 @@ def _dep_replicates(tbin, energy, weight, src_traj, comp, tfrac, rw, acc, c0, n_
         elif order == 8:  # unrolled: the common case (8 moments, one cache line)
             m0, m1, m2, m3 = mom[0], mom[1], mom[2], mom[3]
             m4, m5, m6, m7 = mom[4], mom[5], mom[6], mom[7]
-            base = row + np.uint64(r_lo) * s_rep
-            for r in range(r_lo, r_hi):
-                cr = rw[n, r]
+            for j in range(nnz[n]):
+                cr = rval[n, j]
+                base = row + np.uint64(ridx[n, j]) * s_rep
                 flat[base] += cr * m0
                 flat[base + np.uint64(1)] += cr * m1
                 flat[base + np.uint64(2)] += cr * m2
@@ -170,15 +171,27 @@ def _dep_replicates(tbin, energy, weight, src_traj, comp, tfrac, rw, acc, c0, n_
                 flat[base + np.uint64(5)] += cr * m5
                 flat[base + np.uint64(6)] += cr * m6
                 flat[base + np.uint64(7)] += cr * m7
-                base += s_rep
         else:
-            for r in range(r_lo, r_hi):
-                cr = rw[n, r]
+            for j in range(nnz[n]):
+                r = ridx[n, j]
+                cr = rval[n, j]
                 if cr != 0.0:
                     base = row + np.uint64(r) * s_rep
                     for k in range(order):
                         flat[base + np.uint64(k)] += cr * mom[k]
     return bad
+
+
+def _nonzero_resamples(rw: np.ndarray, lo: int, hi: int
+                       ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Per trajectory, the resamples ``lo <= r < hi`` it appears in (ascending), their
+    multiplicities and how many: ``ridx``, ``rval`` (n_traj, hi - lo), ``nnz`` (n_traj,)."""
+    sub = rw[:, lo:hi]
+    keep = sub != 0
+    order = np.argsort(~keep, axis=1, kind="stable")  # non-zero first, in resample order
+    ridx = np.ascontiguousarray(order + lo, dtype=np.int64)
+    rval = np.ascontiguousarray(np.take_along_axis(sub, order, axis=1))
+    return ridx, rval, keep.sum(axis=1).astype(np.int64)
 
 
 def deposit_replicates(acc: np.ndarray, tbin: np.ndarray, energy: np.ndarray,
@@ -230,17 +243,18 @@ def deposit_replicates(acc: np.ndarray, tbin: np.ndarray, energy: np.ndarray,
             np.ascontiguousarray(weight, dtype=np.float64),
             np.ascontiguousarray(src_traj, dtype=np.int64),
             np.zeros(1, np.int64) if comp is None else np.ascontiguousarray(comp, dtype=np.int64),
-            np.zeros(0) if tfrac is None else np.ascontiguousarray(tfrac, np.float64),
-            np.ascontiguousarray(rw, dtype=np.float64), acc, c0, n_comp, 0.5 - e_lo / h,
-            1.0 / h)
+            np.zeros(0) if tfrac is None else np.ascontiguousarray(tfrac, np.float64))
+    tail = (acc, c0, n_comp, 0.5 - e_lo / h, 1.0 / h)
     n_threads = (1 if energy.size * n_rep < KD.MIN_STICKS_PER_THREAD
                  else max(1, min(KD.usable_cores(), n_rep)))
     edges = np.linspace(0, n_rep, n_threads + 1).astype(int)
+    parts = [_nonzero_resamples(np.asarray(rw, dtype=np.float64), edges[t], edges[t + 1])
+             for t in range(n_threads)]
     if n_threads == 1:
-        bad = kernel(*args, 0, n_rep)
+        bad = kernel(*args, *parts[0], *tail)
     else:  # disjoint resample ranges: no two threads write the same cell
         with ThreadPoolExecutor(n_threads) as pool:
-            bad = sum(pool.map(lambda t: kernel(*args, edges[t], edges[t + 1]),
+            bad = sum(pool.map(lambda t: kernel(*args, *parts[t], *tail),
                                range(n_threads))) // n_threads
     if bad:
         raise ValueError(f"{bad} sticks fall outside the moment grid (time bin or energy).")
