@@ -230,8 +230,21 @@ class TRPESMap:
         return total
 
     def replace(self, **changes: Any) -> TRPESMap:
-        """Return a new TRPESMap with some fields replaced."""
+        """Return a new TRPESMap with some fields replaced.
+
+        An interval describes the values it was made for: replacing the intensity,
+        components or grids without new ``lower`` / ``upper`` / ``rel_se`` /
+        ``component_lower`` / ``component_upper`` drops it (and the interval fields of
+        ``params``)."""
         fields_ = {name: getattr(self, name) for name in self.__dataclass_fields__}
+        interval = ("lower", "upper", "rel_se", "component_lower", "component_upper")
+        if (set(changes) & {"intensity", "components", "kinetic_energies", "delays"}
+                and not set(changes) & set(interval)):
+            fields_.update(lower=None, upper=None, rel_se=None, component_lower={},
+                           component_upper={})
+            fields_["params"] = {k: v for k, v in self.params.items()
+                                 if k not in ("interval", "ci", "n_boot", "random_state",
+                                              "interval_method")}
         fields_.update(changes)
         return type(self)(**fields_)
 

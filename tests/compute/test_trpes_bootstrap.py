@@ -269,3 +269,15 @@ def test_interval_shape_is_checked():
     with pytest.raises(SchemaError, match="lower"):
         TRPESMap(kinetic_energies=[0.0, 1.0], delays=[0.0], intensity=np.ones((1, 2)),
                  lower=np.ones((2, 2)))
+
+
+def test_replacing_the_values_drops_a_stale_interval():
+    ens = make_toy_ensemble(8, seed=3, t_max=60.0)
+    m = _quiet(compute_trpes, ens, interval="bootstrap", n_boot=5, progress=False, **SMALL)
+    assert m.has_interval
+    scaled = m.replace(intensity=2 * m.intensity)
+    assert not scaled.has_interval and scaled.rel_se is None
+    assert "interval" not in scaled.params
+    kept = m.replace(params={**m.params, "note": "x"})
+    assert kept.has_interval
+
