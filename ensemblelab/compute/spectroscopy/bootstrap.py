@@ -8,17 +8,20 @@ says) and recomputes the map of each resample on the same grids. The map is a ra
 (signal over alive weight, or over the total weight): numerator and denominator come
 from the same resample. The interval is the percentile interval of the replicate maps
 (pixel by pixel), for the total and every component; ``rel_se`` is the replicate
-standard deviation over the map (Efron and Tibshirani's percentile bootstrap;
-Stat. Sci. 1986, "Bootstrap methods for standard errors, confidence intervals, and
+standard deviation over the map (the percentile bootstrap; Stat. Sci. 1986, "Bootstrap methods for standard errors, confidence intervals, and
 other measures of statistical accuracy").
 
 No sticks are made again: the sticks are linear in the trajectory weights, so each
 resample's moment histograms are deposited from the same sticks with the resample's
 multiplicities (:mod:`._kernels_bootstrap`), a chunk of resamples at a time within a
-memory budget; a chunked store is read once per chunk.
+memory budget (an in-memory ensemble reuses the map's own sticks; a chunked store is
+read once per chunk). Memory: the chunk's histograms plus the replicate maps
+(``n_boot x (1 + n_components) x n_delays x n_energies`` floats, for the percentiles).
 
-Not covered: ensembles with missing electronic data or grid times without data (the
-per-channel rescaling of :mod:`.gaps` depends on the resample; a clear error says so).
+Snapshots without data for every channel leave numerator and alive weight in each
+resample as in the map. Not covered: data missing for some cation channels only, or
+grid times without data (the per-channel rescaling of :mod:`.gaps` depends on the
+resample; a clear error says so).
 """
 
 from __future__ import annotations
@@ -237,8 +240,8 @@ def bootstrap_map(
     if model.fill is not None:
         raise SchemaError(
             "compute_trpes(interval='bootstrap') does not yet handle missing electronic "
-            "data or grid times without data (their per-channel rescaling depends on the "
-            "resample). Hint: pass time_step= equal to the output step, or drop the "
+            "data for some cation channels only, or grid times without data (their "
+            "per-channel rescaling depends on the resample). Hint: pass time_step= equal to the output step, or drop the "
             "trajectories with NaN data (ens.without(...)).")
     source = as_source(ens)
     n_traj = source.n_trajectories
