@@ -8,8 +8,9 @@ says) and recomputes the map of each resample on the same grids. The map is a ra
 (signal over alive weight, or over the total weight): numerator and denominator come
 from the same resample. The interval is the percentile interval of the replicate maps
 (pixel by pixel), for the total and every component; ``rel_se`` is the replicate
-standard deviation over the map (the percentile bootstrap; Stat. Sci. 1986, "Bootstrap methods for standard errors, confidence intervals, and
-other measures of statistical accuracy").
+standard deviation over the map (the percentile bootstrap; Stat. Sci. 1986, "Bootstrap
+methods for standard errors, confidence intervals, and other measures of statistical
+accuracy").
 
 No sticks are made again: the sticks are linear in the trajectory weights, so each
 resample's moment histograms are deposited from the same sticks with the resample's
@@ -241,8 +242,9 @@ def bootstrap_map(
         raise SchemaError(
             "compute_trpes(interval='bootstrap') does not yet handle missing electronic "
             "data for some cation channels only, or grid times without data (their "
-            "per-channel rescaling depends on the resample). Hint: pass time_step= equal to the output step, or drop the "
-            "trajectories with NaN data (ens.without(...)).")
+            "per-channel rescaling depends on the resample). Hint: pass time_step= equal "
+            "to the output step, or drop the trajectories with NaN data "
+            "(ens.without(...)).")
     source = as_source(ens)
     n_traj = source.n_trajectories
     kind, _ = resolve_weights(source, weights=weights, pump=pump)
