@@ -46,7 +46,7 @@ from ._atomic import atomic_write_text, replace_folder
 from ._csv import neutralise_csv_text, to_csv_text
 from .compute._threads import few_threads
 from .data.ensemble import Ensemble
-from .errors import StoreError
+from .errors import SchemaError, StoreError
 from .plotting.populations import savefig, scheme_name
 from .plotting.spectra import plot_components, plot_map, resolve_energy_range
 from .report_convergence import convergence_section
@@ -372,9 +372,16 @@ def build_report(
                                    f"x {d_grid.size} delays); pass non-empty energies and "
                                    "delays.")
                 weighting: dict[str, Any] = {} if pump is not None else {"weights": "uniform"}
-                trpes = compute_trpes(clean, probe=probe, pump=pump, kinetic_energies=e_grid,
-                                      delays=d_grid, decompose="neutral", progress=False,
-                                      **weighting)
+                kw = dict(probe=probe, pump=pump, kinetic_energies=e_grid, delays=d_grid,
+                          decompose="neutral", progress=False, **weighting)
+                try:  # 100 resamples of whole trajectories: the map's uncertainty
+                    trpes = compute_trpes(clean, interval="bootstrap", n_boot=100, **kw)
+                    rse = trpes.median_rel_se()
+                    unc = ("" if rse is None else f"Median relative standard error over the "
+                           f"pixels above 5 % of the peak: {100 * rse:.1f} % (percentile "
+                           "bootstrap, 100 resamples of whole trajectories, seed 0).")
+                except SchemaError as exc:
+                    trpes, unc = compute_trpes(clean, **kw), f"No uncertainty: {exc}"
                 if not np.any(np.isfinite(trpes.intensity) & (trpes.intensity != 0)):
                     raise _Missing("the map has no signal on its grid (every cell is zero or "
                                    "undefined); check the photon energy and the grids.")
@@ -405,6 +412,7 @@ def build_report(
                     + _img("figures/trpes_map.png", "TRPES map")
                     + "<h3>Decomposition by neutral state</h3>"
                     + _img("figures/trpes_by_state.png", "decomposition by state", "double")
+                    + f"<p>{html.escape(unc)}</p>"
                     + "<p><a href='tables/trpes_map.csv'>tables/trpes_map.csv</a></p>")
 
             sections.append(_section("Time-resolved photoelectron spectrum", trpes_section,

@@ -222,3 +222,15 @@ def test_report_with_an_empty_map_grid_says_why(toy, tmp_path):
     assert "Section missing: the map's grid is empty (241 kinetic energies x 0 delays)" in text
     assert "Populations" in text and "Representative structures" in text  # rest written
     assert not (tmp_path / "rep" / "figures" / "trpes_map.png").exists()
+
+
+def test_report_states_the_map_median_relative_standard_error(report):
+    # the percentile bootstrap of the map (Stat. Sci. 1986, "Bootstrap methods for standard
+    # errors, confidence intervals, and other measures of statistical accuracy"); 30
+    # trajectories: a few to some tens of percent (computed independently (not published))
+    _, page = report
+    found = re.search(r"Median relative standard error over the pixels above 5 % of the "
+                      r"peak: ([0-9.]+) %", page.read_text())
+    assert found is not None
+    assert 0.5 < float(found.group(1)) < 60.0
+

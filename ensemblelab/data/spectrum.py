@@ -90,6 +90,13 @@ class TRPESMap:
         None when unknown. NaN or 0 marks a pixel without a usable uncertainty.
     params : dict
         The parameters used (JSON-serialisable).
+    lower, upper : ndarray, shape (n_delays, n_energies), or None
+        Interval of `intensity` (``params["interval"]``, ``params["ci"]``); None
+        without one (``compute_trpes(..., interval="bootstrap")``).
+    rel_se : ndarray, shape (n_delays, n_energies), or None
+        Relative standard error of `intensity` per pixel (NaN where it is 0).
+    component_lower, component_upper : dict of str to ndarray
+        Interval of each component (empty without one).
 
     A map carries nothing besides these fields (``slots``): the stick model that made
     it is a separate object (``compute_trpes(..., return_model=True)``). Files:
@@ -114,6 +121,11 @@ class TRPESMap:
     params: dict[str, Any] = field(default_factory=dict)
     alive_count: np.ndarray | None = None
     uncertainty: np.ndarray | None = None
+    lower: np.ndarray | None = None
+    upper: np.ndarray | None = None
+    rel_se: np.ndarray | None = None
+    component_lower: dict[str, np.ndarray] = field(default_factory=dict)
+    component_upper: dict[str, np.ndarray] = field(default_factory=dict)
 
     def __post_init__(self) -> None:
         set_ = object.__setattr__
@@ -153,6 +165,44 @@ class TRPESMap:
                 raise SchemaError("uncertainty must be >= 0 (one standard deviation).")
             set_(self, "uncertainty", unc)
         set_(self, "params", _json_safe(dict(self.params)))
+        self._set_intervals(shape, comps)
+
+    def _set_intervals(self, shape: tuple[int, int], comps: dict[str, np.ndarray]) -> None:
+        """Check and freeze ``lower`` / ``upper`` / ``rel_se`` and the component intervals."""
+        for name in ("lower", "upper", "rel_se"):
+            a = getattr(self, name)
+            if a is not None:
+                a = _ro(a, name, ndim=2)
+                if a.shape != shape:
+                    raise SchemaError(f"{name} must have shape {shape} like intensity; got "
+                                      f"{a.shape}.")
+                object.__setattr__(self, name, a)
+        for name in ("component_lower", "component_upper"):
+            out: dict[str, np.ndarray] = {}
+            for label, arr in dict(getattr(self, name)).items():
+                if str(label) not in comps:
+                    raise SchemaError(f"{name}[{label!r}] names no component; components: "
+                                      f"{sorted(comps)}.")
+                a = _ro(arr, f"{name}[{label!r}]", ndim=2)
+                if a.shape != shape:
+                    raise SchemaError(f"{name}[{label!r}] must have shape {shape}; got "
+                                      f"{a.shape}.")
+                out[str(label)] = a
+            object.__setattr__(self, name, out)
+
+    @property
+    def has_interval(self) -> bool:
+        """Whether the map carries ``lower`` / ``upper``."""
+        return self.lower is not None and self.upper is not None
+
+    def median_rel_se(self, *, threshold: float = 0.05) -> float | None:
+        """Median relative standard error over the pixels above ``threshold`` times the
+        peak of ``|intensity|`` (None without ``rel_se``)."""
+        if self.rel_se is None or not self.intensity.size:
+            return None
+        peak = float(np.max(np.abs(self.intensity)))
+        sel = (np.abs(self.intensity) > threshold * peak) & np.isfinite(self.rel_se)
+        return float(np.median(self.rel_se[sel])) if peak > 0 and sel.any() else None
 
     # ------------------------------------------------------------------ basics
     @property
@@ -192,8 +242,21 @@ class TRPESMap:
         return total
 
     def replace(self, **changes: Any) -> TRPESMap:
-        """Return a new TRPESMap with some fields replaced."""
+        """Return a new TRPESMap with some fields replaced.
+
+        An interval describes the values it was made for: replacing the intensity,
+        components or grids without new ``lower`` / ``upper`` / ``rel_se`` /
+        ``component_lower`` / ``component_upper`` drops it (and the interval fields of
+        ``params``)."""
         fields_ = {name: getattr(self, name) for name in self.__dataclass_fields__}
+        interval = ("lower", "upper", "rel_se", "component_lower", "component_upper")
+        if (set(changes) & {"intensity", "components", "kinetic_energies", "delays"}
+                and not set(changes) & set(interval)):
+            fields_.update(lower=None, upper=None, rel_se=None, component_lower={},
+                           component_upper={})
+            fields_["params"] = {k: v for k, v in self.params.items()
+                                 if k not in ("interval", "ci", "n_boot", "random_state",
+                                              "interval_method")}
         fields_.update(changes)
         return type(self)(**fields_)
 

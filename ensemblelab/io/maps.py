@@ -320,13 +320,16 @@ def save_map(trpes_map: TRPESMap, path: str | os.PathLike[str], *,
     NPZ keys: ``format``, ``kinetic_energies``, ``delays``, ``intensity``, ``alive``,
     ``alive_count``, ``component_labels`` (unicode array), ``components``
     (n_components, n_delays, n_energies), ``params`` (a JSON string) and, when the map
-    has one, ``uncertainty``. The CSV holds the total only (no uncertainty). Written without
-    pickles, read back with ``allow_pickle=False``.
+    has one, ``uncertainty``; a map with an interval adds ``lower``, ``upper``, ``rel_se``
+    (n_delays, n_energies) and ``component_lower``, ``component_upper`` (n_components,
+    n_delays, n_energies). The CSV holds the total only (no uncertainty, no interval).
+    Written without pickles, read back with ``allow_pickle=False``.
 
-    CSV: comment lines ``# ensemblelab-trpes-map-v1``, ``# params: {json}``,
-    ``# alive: v1,v2,...``, ``# alive_count: n1,n2,...``; then a grid whose first row is
-    ``delay_fs`` followed by the kinetic energies (eV) and whose first column holds the
-    delays (fs). The same grid layout is read by :func:`load_measured_map`.
+    CSV (the total only; intervals are kept in NPZ files): comment lines
+    ``# ensemblelab-trpes-map-v1``, ``# params: {json}``, ``# alive: v1,v2,...``,
+    ``# alive_count: n1,n2,...``; then a grid whose first row is ``delay_fs`` followed
+    by the kinetic energies (eV) and whose first column holds the delays (fs). The same
+    grid layout is read by :func:`load_measured_map`.
 
     Parameters
     ----------
@@ -360,6 +363,7 @@ def save_map(trpes_map: TRPESMap, path: str | os.PathLike[str], *,
             "delays": m.delays, "intensity": m.intensity, "alive": m.alive,
             "alive_count": m.alive_count, "component_labels": np.array(labels, dtype=np.str_),
             "components": comps, "params": np.array(json.dumps(m.params))}
+        arrays.update(_interval_arrays(m, labels))
         if m.uncertainty is not None:
             arrays["uncertainty"] = m.uncertainty
         np.savez_compressed(buf, **arrays)  # type: ignore[arg-type]
@@ -376,6 +380,25 @@ def save_map(trpes_map: TRPESMap, path: str | os.PathLike[str], *,
         lines.append(repr(float(d)) + "," + ",".join(repr(float(v)) for v in row))
     atomic_write_bytes(path, ("\n".join(lines) + "\n").encode())
     return path
+
+
+def _interval_arrays(m: TRPESMap, labels: list[str]) -> dict[str, np.ndarray]:
+    """NPZ arrays of a map's interval (none without one)."""
+    out = {k: getattr(m, k) for k in ("lower", "upper", "rel_se") if getattr(m, k) is not None}
+    for name in ("component_lower", "component_upper"):
+        d = getattr(m, name)
+        if d:
+            out[name] = np.stack([d[k] for k in labels])
+    return out
+
+
+def _intervals_from(data: dict[str, np.ndarray], labels: list[str]) -> dict[str, Any]:
+    """TRPESMap keywords of the interval arrays of a saved map."""
+    out: dict[str, Any] = {k: data[k] for k in ("lower", "upper", "rel_se") if k in data}
+    for name in ("component_lower", "component_upper"):
+        if name in data and len(data[name]) == len(labels):
+            out[name] = {lab: data[name][i] for i, lab in enumerate(labels)}
+    return out
 
 
 def load_map(path: str | os.PathLike[str]) -> TRPESMap:
@@ -420,7 +443,8 @@ def load_map(path: str | os.PathLike[str]) -> TRPESMap:
                         intensity=data["intensity"],
                         components={lab: comps[i] for i, lab in enumerate(labels)},
                         alive=data.get("alive"), alive_count=data.get("alive_count"),
-                        params=params, uncertainty=data.get("uncertainty"))
+                        params=params, uncertainty=data.get("uncertainty"),
+                        **_intervals_from(data, labels))
     text = path.read_text()
     params = {}
     alive = count = None

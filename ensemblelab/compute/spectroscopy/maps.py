@@ -46,13 +46,14 @@ from ._checks import (
     component_labels,
     grid_from_range,
 )
+from .bootstrap import bootstrap_map, check_interval
 from .cross_sections import CrossSection, describe_cross_section, resolve_cross_section
 from .fused import energy_range_partial, fused_partial, use_fused
 from .gaps import time_fill
 from .model import TRPESModel, deposit
 from .pulses import FWHM_TO_SIGMA, GaussianPulse
 from .resolution import Resolution, check_resolution, min_stick_fwhm
-from .sampling import ESS_WARN_FRACTION, ensemble_absorbing_state, sampling_of
+from .sampling import ESS_WARN_FRACTION, ensemble_absorbing_state, excluded_ids, sampling_of
 from .sticks import (
     THRESHOLD_TAIL,
     block_sticks,
@@ -73,17 +74,6 @@ __all__ = ["compute_trpes", "trpes_model", "time_grid", "trpes_partial", "TRPES_
 #: arrays a TRPES block reads (the diabatic decomposition adds ``adt``, ``adt_cation``)
 TRPES_FIELDS = ("energies", "cation_energies", "dyson", "excitation_energies",
                 "transition_dipoles", "oscillator_strengths")
-
-
-def excluded_ids(exclude: npt.ArrayLike | None) -> np.ndarray:
-    """Sorted distinct trajectory ids of an ``exclude=`` argument, int64 (empty for None)."""
-    if exclude is None:
-        return np.zeros(0, dtype=np.int64)
-    ids = np.asarray(exclude).reshape(-1)
-    if ids.size and not np.issubdtype(ids.dtype, np.integer):
-        raise SchemaError("The 'exclude' parameter must hold integer trajectory ids. Got "
-                          f"{ids.dtype} values instead.")
-    return np.unique(ids.astype(np.int64))
 
 
 def time_grid(source: BlockSource, time_step: float | None, *, client: Any = None,
@@ -347,6 +337,10 @@ def compute_trpes(
     ionisation_shifts: Sequence[float] | Mapping[int, float] | None = None,
     absorbing: str = "zero",
     exclude: npt.ArrayLike | None = None,
+    interval: str | None = None,
+    ci: float = 0.95,
+    n_boot: int = 200,
+    random_state: int | np.random.Generator | None = 0,
     return_model: Literal[False] = False,
 ) -> TRPESMap: ...
 
@@ -372,6 +366,10 @@ def compute_trpes(
     ionisation_shifts: Sequence[float] | Mapping[int, float] | None = None,
     absorbing: str = "zero",
     exclude: npt.ArrayLike | None = None,
+    interval: str | None = None,
+    ci: float = 0.95,
+    n_boot: int = 200,
+    random_state: int | np.random.Generator | None = 0,
     return_model: Literal[True],
 ) -> tuple[TRPESMap, TRPESModel]: ...
 
@@ -397,6 +395,10 @@ def compute_trpes(
     ionisation_shifts: Sequence[float] | Mapping[int, float] | None = None,
     absorbing: str = "zero",
     exclude: npt.ArrayLike | None = None,
+    interval: str | None = None,
+    ci: float = 0.95,
+    n_boot: int = 200,
+    random_state: int | np.random.Generator | None = 0,
     return_model: bool = False,
 ) -> TRPESMap | tuple[TRPESMap, TRPESModel]: ...
 
@@ -421,6 +423,10 @@ def compute_trpes(
     ionisation_shifts: Sequence[float] | Mapping[int, float] | None = None,
     absorbing: str = "zero",
     exclude: npt.ArrayLike | None = None,
+    interval: str | None = None,
+    ci: float = 0.95,
+    n_boot: int = 200,
+    random_state: int | np.random.Generator | None = 0,
     return_model: bool = False,
 ) -> TRPESMap | tuple[TRPESMap, TRPESModel]:
     """Simulated TRPES map of an ensemble (classical doorway-window).
@@ -505,6 +511,17 @@ def compute_trpes(
         Trajectory ids left out (a mask, not a copy): their weight is 0 and they are not
         counted alive, so the map equals that of ``ens.without(exclude)`` (up to the
         order of floating-point additions); recorded in ``params["excluded"]``.
+    interval : {None, "bootstrap"}
+        ``"bootstrap"``: percentile intervals from ``n_boot`` resamples of whole
+        trajectories (:mod:`.bootstrap`), in ``lower`` / ``upper`` (total),
+        ``component_lower`` / ``component_upper`` and ``rel_se`` (relative standard
+        error per pixel).
+    ci : float
+        Confidence level of the interval.
+    n_boot : int
+        Number of bootstrap resamples.
+    random_state : int, Generator or None
+        Seed of the resampling.
     return_model : bool
         Also return the :class:`~.model.TRPESModel` (for re-broadening and for
         ``contributions(..., model=...)``).
@@ -535,11 +552,21 @@ def compute_trpes(
     if normalise not in ("alive", "initial"):
         raise SchemaError(f"The 'normalise' parameter must be 'alive' or 'initial'. Got "
                           f"{normalise!r} instead.")
+    check_interval(interval, ci, n_boot)
+    if interval == "bootstrap" and len(excluded_ids(exclude)):
+        # the resampling draws whole trajectories of the ensemble it is given: leave the
+        # excluded ones out of it (a copy, small beside the resamples)
+        if not isinstance(ens, Ensemble):
+            raise SchemaError("compute_trpes(interval='bootstrap') with exclude= needs an "
+                              "in-memory ensemble. Hint: ens.without(...) first, or save the "
+                              "reduced ensemble as its own store.")
+        ens, exclude = ens.without(excluded_ids(exclude).tolist()), None
     model = trpes_model(ens, probe=probe, pump=pump, resolution=resolution,
                         cross_section=cross_section, weights=weights, decompose=decompose,
                         time_step=time_step, progress=progress, client=client,
                         scheduler=scheduler, ionisation_shifts=ionisation_shifts,
-                        absorbing=absorbing, exclude=exclude, keep_sticks=return_model)
+                        absorbing=absorbing, exclude=exclude,
+                        keep_sticks=return_model or interval == "bootstrap")
     if isinstance(ens, Ensemble):
         fraction = ground_state_ionisation_fraction(ens, probe=probe)
         if fraction > 0:
@@ -552,4 +579,14 @@ def compute_trpes(
                 "photon energy.", EnsembleWarning, stacklevel=2)
     m = model.broaden(kinetic_energies=kinetic_energies, delays=delays, pump=pump,
                       resolution=resolution, convolve=convolve, normalise=normalise)
+    if interval == "bootstrap":
+        m = bootstrap_map(  # type: ignore[assignment]
+            ens, model, m, probe=probe, pump=pump, kinetic_energies=kinetic_energies,
+            delays=delays, resolution=resolution, convolve=convolve, normalise=normalise,
+            cross_section=cross_section, weights=weights,
+            ionisation_shifts=ionisation_shifts, absorbing=absorbing,
+            fields=[*TRPES_FIELDS, *(("adt", "adt_cation") if decompose == "diabatic"
+                                     else ())], ci=ci, n_boot=n_boot,
+            random_state=random_state, client=client, scheduler=scheduler,
+            progress=progress)
     return (m, model) if return_model else m

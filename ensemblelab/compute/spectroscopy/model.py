@@ -156,6 +156,10 @@ class TRPESModel:
         cache["e_lo"] = cache["e_lo"] + (probe.total_energy - self.probe.total_energy)
         return replace(self, probe=probe, _cache=cache)
 
+    def moment_grid(self, fwhm: float) -> tuple[float, float, int]:
+        """``(e_lo, h, n_fine)`` of the moment histograms used for a stick FWHM (eV)."""
+        return self._moments(fwhm)[2:]
+
     @property
     def times(self) -> np.ndarray:
         """Internal grid times (fs), shape (n_time,)."""

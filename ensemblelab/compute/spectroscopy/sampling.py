@@ -32,7 +32,7 @@ import numpy.typing as npt
 from ...errors import SchemaError
 
 __all__ = ["SAMPLING_KINDS", "sampling_of", "ensemble_absorbing_state", "kish_effective_size",
-           "ESS_WARN_FRACTION"]
+           "ESS_WARN_FRACTION", "excluded_ids"]
 
 #: the values of the ``sampling`` metadata key
 SAMPLING_KINDS = ("doorway-selected", "weighted", "uniform")
@@ -117,3 +117,14 @@ def kish_effective_size(weights: npt.ArrayLike) -> float:
     w = np.asarray(weights, dtype=float)
     s2 = float(np.sum(w * w))
     return float(np.sum(w)) ** 2 / s2 if s2 > 0 else 0.0
+
+
+def excluded_ids(exclude: npt.ArrayLike | None) -> np.ndarray:
+    """Sorted distinct trajectory ids of an ``exclude=`` argument, int64 (empty for None)."""
+    if exclude is None:
+        return np.zeros(0, dtype=np.int64)
+    ids = np.asarray(exclude).reshape(-1)
+    if ids.size and not np.issubdtype(ids.dtype, np.integer):
+        raise SchemaError("The 'exclude' parameter must hold integer trajectory ids. Got "
+                          f"{ids.dtype} values instead.")
+    return np.unique(ids.astype(np.int64))
