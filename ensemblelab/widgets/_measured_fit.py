@@ -44,23 +44,25 @@ def fit_text(result: Any) -> str:
     pct = int(round(float(result.ci) * 100))
     labels = {"time_zero": "time zero", "xcorr_fwhm": "cross-correlation FWHM",
               "scale": "scale", "background": "background"}
-    parts = []
+    shifts, others = [], []
     for r in result.parameters.itertuples():
         name = str(r.parameter)
         label = (f"shift {name[len('shift_'):]}" if name.startswith("shift_")
                  else labels.get(name, name))
-        unit = f" {r.unit}" if str(r.unit) else ""
+        unit = f" {r.unit}" if str(r.unit) not in ("", "1") else ""  # no unit: none shown
         if bool(r.fixed):
             iv = " (fixed)"
         elif math.isfinite(r.lower) and math.isfinite(r.upper):
             iv = f" [{_num(r.lower)}, {_num(r.upper)}]"
         else:
             iv = " (no interval: not computed)"
-        parts.append(f"{html.escape(label)} {_num(r.value)}{html.escape(unit)}{iv}")
+        (shifts if name.startswith("shift_") else others).append(
+            f"{html.escape(label)} {_num(r.value)}{html.escape(unit)}{iv}")
+    method = str(result.interval_method).split(" (")[0]
     notes = "".join(f"<br><i>note: {html.escape(str(n))}</i>" for n in result.notes)
-    return (f"<b>channel fit</b> ({pct}% intervals, {html.escape(result.interval_method)}; "
-            f"{result.n_points} pixels): " + " · ".join(parts)
-            + f" · R² = {result.r2:.3f} (a score, no interval)" + notes)
+    return (f"<b>channel fit</b> ({pct}% intervals, {html.escape(method)}; "
+            f"{result.n_points} pixels)<br>" + " · ".join(shifts) + "<br>"
+            + " · ".join(others) + f" · R² = {result.r2:.3f} (a score, no interval)" + notes)
 
 
 class MeasuredFitPanel:
