@@ -44,7 +44,8 @@ def fit_text(result: Any) -> str:
     pct = int(round(float(result.ci) * 100))
     labels = {"time_zero": "time zero", "xcorr_fwhm": "cross-correlation FWHM",
               "scale": "scale", "background": "background"}
-    shifts, others = [], []
+    shifts: list[str] = []
+    others: list[str] = []
     for r in result.parameters.itertuples():
         name = str(r.parameter)
         label = (f"shift {name[len('shift_'):]}" if name.startswith("shift_")
