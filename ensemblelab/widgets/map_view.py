@@ -11,6 +11,7 @@ import numpy as np
 
 from ..data.ensemble import Ensemble
 from ._base import View
+from ._measured_fit import MeasuredFitPanel  # channel fit (own module)
 from ._messages import MessageArea
 from ._selection import SelectionModel
 from ._small_maps import (
@@ -228,6 +229,7 @@ class MapView(View):
         self.cut_caption.add_class("ensemblelab-cut-caption")
         self.status = widgets.HTML()
         self.status.add_class("ensemblelab-map-status")
+        self.fit_panel = MeasuredFitPanel(self, self._on_layer_change)  # channel fit, numbers
         self.band_label = widgets.HTML()
         self.band_label.add_class("ensemblelab-band-label")
 
@@ -317,7 +319,7 @@ class MapView(View):
         cuts = widgets.VBox([self.cut_legend, self.delay_cut, self.energy_cut, self.cut_caption])
         self._finish(controls, widgets.HBox([self.figure, self.colorbar.figure, cuts]),
                      self.band_label,
-                     self.comparison_label, self.small_maps.widget)
+                     self.comparison_label, self.fit_panel.widget, self.small_maps.widget)
         if compute:
             if self.model.trpes_map is None:
                 self.recompute()
@@ -429,6 +431,8 @@ class MapView(View):
         """The map drawn: simulated, measured (resampled) or residual (measured - model)."""
         if self.layer.value == "simulated" or self.measured is None:
             return trpes
+        if self.layer.value == "residual" and self.fit_panel.residual() is not None:
+            return self.fit_panel.residual()  # measured - model of the channel fit
         result = self.comparison()
         return result.measured if self.layer.value == "measured" else result.residual
 
@@ -484,6 +488,7 @@ class MapView(View):
 
     def _draw_comparison(self) -> None:
         """The residual's sign and the comparison's numbers (with a measured map)."""
+        self.fit_panel.refresh_label()
         if self.measured is None or self.layer.value == "simulated":
             self.comparison_label.value = ""
             return
