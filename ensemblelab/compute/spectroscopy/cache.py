@@ -34,7 +34,7 @@ from ...data.ensemble import Ensemble
 from ...data.spectrum import TRPESMap
 from ...errors import SchemaError
 from .cross_sections import DysonNorm, resolve_cross_section
-from .maps import trpes_model
+from .maps import excluded_ids, trpes_model
 from .model import TRPESModel
 from .pulses import GaussianPulse
 from .resolution import Resolution, check_resolution, min_stick_fwhm
@@ -59,8 +59,9 @@ class StickCache:
     photon_energies : (float, float), optional
         Range of probe photon energies (eV) to serve without a new pass; default the
         probe's photon energy only.
-    pump, cross_section, weights, time_step, ionisation_shifts, absorbing
-        As for :func:`~.maps.compute_trpes`.
+    pump, cross_section, weights, time_step, ionisation_shifts, absorbing, exclude
+        As for :func:`~.maps.compute_trpes` (``exclude``: trajectory ids left out, a
+        mask; every map of the cache leaves them out).
     resolution : float or ProportionalResolution
         The instrument resolution the fine grid is sized for (default 0).
     progress : bool
@@ -73,7 +74,7 @@ class StickCache:
                  weights: str = "auto", time_step: float | None = None,
                  ionisation_shifts: Sequence[float] | Mapping[int, float] | None = None,
                  absorbing: str = "zero", resolution: Resolution = 0.0,
-                 progress: bool = False) -> None:
+                 progress: bool = False, exclude: npt.ArrayLike | None = None) -> None:
         if not isinstance(ens, Ensemble):
             raise SchemaError(f"StickCache needs an in-memory Ensemble; got "
                               f"{type(ens).__name__}. Hint: for a chunked store call "
@@ -91,7 +92,8 @@ class StickCache:
         self.photon_energies = (min(lo, probe.photon_energy), max(hi, probe.photon_energy))
         self._kw = {"pump": pump, "cross_section": cross_section, "weights": weights,
                     "time_step": time_step, "ionisation_shifts": ionisation_shifts,
-                    "absorbing": absorbing, "progress": progress}
+                    "absorbing": absorbing, "progress": progress,
+                    "exclude": None if exclude is None else excluded_ids(exclude)}
         self._shiftable = type(resolve_cross_section(cross_section)) is DysonNorm
         self.rebuilds = 0
         self._build(self.photon_energies[1], probe.fwhm, check_resolution(resolution))
