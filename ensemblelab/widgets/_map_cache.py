@@ -4,8 +4,9 @@
 of the shown ensemble. A new probe width, instrument resolution or probe photon energy
 (within :data:`PHOTON_ENERGY_SPAN` of the photon energy the cache was made for, with
 the squared-Dyson-norm cross section) is a re-broadening of the cached moment
-histograms: no pass over the ensemble. New exclusions, weights, cross section, pump or
-photon count make a new cache (one pass). A decomposition, or settings the cache does
+histograms: no pass over the ensemble. So is a new pump, unless the trajectory weights
+depend on it (doorway weights). New exclusions, weights, cross section or photon count
+make a new cache (one pass). A decomposition, or settings the cache does
 not take, use :func:`~ensemblelab.compute.spectroscopy.compute_trpes` as before.
 
 The band analysis needs the sticks themselves. A map from the cache comes without
@@ -120,7 +121,7 @@ class LiveMaps:
                                  delays=delays, resolution=resolution, convolve=convolve,
                                  decompose=decompose, progress=False, exclude=list(excluded),
                                  return_model=True, **kwargs)
-        key = (id(ens), probe.n_photons, pump, excluded, _frozen(build_kw))
+        key = (id(ens), probe.n_photons, excluded, _frozen(build_kw))
         if self.cache is None or key != self._key or self.cache.ens is not ens:
             from ..compute.spectroscopy.cache import prepare_map_cache
 
@@ -131,6 +132,7 @@ class LiveMaps:
                                  hv + PHOTON_ENERGY_SPAN), **build_kw)
             self._key = key
             self.n_caches += 1
+        self.cache.set_pump(pump)  # a new pass only when the weights depend on it
         trpes = self.cache.map(kinetic_energies=kinetic_energies, delays=delays,
                                probe_fwhm=probe.fwhm, resolution=resolution,
                                photon_energy=probe.photon_energy, convolve=convolve,

@@ -38,6 +38,7 @@ from .maps import excluded_ids, trpes_model
 from .model import TRPESModel
 from .pulses import GaussianPulse
 from .resolution import Resolution, check_resolution, min_stick_fwhm
+from .weights import weights_word
 
 __all__ = ["StickCache", "prepare_map_cache", "WIDEN_LIMIT"]
 
@@ -96,6 +97,7 @@ class StickCache:
                     "exclude": None if exclude is None else excluded_ids(exclude)}
         self._shiftable = type(resolve_cross_section(cross_section)) is DysonNorm
         self.rebuilds = 0
+        self._stale = False
         self._build(self.photon_energies[1], probe.fwhm, check_resolution(resolution))
 
     def _build(self, photon_energy: float, fwhm: float, resolution: Resolution) -> None:
@@ -110,6 +112,7 @@ class StickCache:
                                                  keep_sticks=False, **self._kw)
         self.build_fwhm = self.model.fwhm(probe, resolution)
         self.rebuilds += 1
+        self._stale = False
 
     def map(self, *, kinetic_energies: npt.ArrayLike, delays: npt.ArrayLike,
             probe_fwhm: float | None = None, resolution: Resolution = 0.0,
@@ -143,6 +146,8 @@ class StickCache:
                               fwhm=self.probe.fwhm if probe_fwhm is None else probe_fwhm,
                               n_photons=self.probe.n_photons)
         lo, hi = self.photon_energies
+        if self._stale:  # a pump that changes the trajectory weights (set_pump)
+            self._build(self.model.probe.photon_energy, probe.fwhm, resolution)
         if not lo <= hv <= hi or (not self._shiftable and hv != self.model.probe.photon_energy):
             self.photon_energies = (min(lo, hv), max(hi, hv)) if self._shiftable else (hv, hv)
             self._build(self.photon_energies[1], probe.fwhm, resolution)
@@ -159,6 +164,25 @@ class StickCache:
             return self._shifted(probe).broaden(
                 kinetic_energies=kinetic_energies, delays=delays, probe=probe, pump=self.pump,
                 resolution=resolution, convolve=convolve, normalise=normalise)
+
+    def set_pump(self, pump: GaussianPulse | None) -> None:
+        """Use `pump` for the maps from now on (its cross-correlation and ``params``).
+
+        The deposited sticks do not depend on the pump unless the trajectory weights do:
+        a new pass follows (on the next :meth:`map`) only when the weighting the pump
+        gives differs from the cache's, or is the pump's doorway weighting.
+        """
+        if pump is not None and not isinstance(pump, GaussianPulse):
+            raise SchemaError(f"pump must be a GaussianPulse or None; got {type(pump).__name__}.")
+        if pump == self.pump:
+            return
+        w = self._kw["weights"]
+        before = weights_word(self.ens, weights=w, pump=self.pump)
+        after = weights_word(self.ens, weights=w, pump=pump)
+        self.pump = pump
+        self._kw["pump"] = pump
+        if before != after or after == "doorway":
+            self._stale = True
 
     def _shifted(self, probe: GaussianPulse) -> TRPESModel:
         """The model with every stick moved to `probe`'s photon energy (a grid shift)."""
