@@ -19,6 +19,10 @@ histograms on a fine energy grid and redraws maps from them:
   :data:`WIDEN_LIMIT` times wider (channels the build probe's threshold tail left out
   would then matter at the 1e-6 level) rebuilds too.
 
+A new pump (:meth:`StickCache.set_pump`) only changes the cross-correlation, unless the
+trajectory weights depend on it (doorway weights): then one new pass. ``exclude=`` leaves
+trajectories out of every map of the cache, as in ``compute_trpes``.
+
 ``cache.rebuilds`` counts the passes over the ensemble since construction.
 """
 
