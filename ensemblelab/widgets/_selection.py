@@ -195,6 +195,15 @@ class SelectionModel(HasTraits):
         exclusions as ``exclude=``) for band queries."""
         self._stick_models = (trpes_map, tuple(self.excluded), model)
 
+    def known_stick_model(self) -> Any:
+        """The stick model held for :attr:`trpes_map` and the current exclusions, or None
+        (none is built: see :meth:`stick_model`)."""
+        cached = self._stick_models
+        if cached is None or cached[0] is not self.trpes_map or cached[1] != tuple(
+                self.excluded):
+            return None
+        return cached[2]
+
     def stick_model(self) -> Any:
         """The stick model of :attr:`trpes_map` (built once per map and exclusion set).
 

@@ -11,6 +11,7 @@ import numpy as np
 
 from ..data.ensemble import Ensemble
 from ._base import View
+from ._map_cache import LiveMaps, default_delays, default_energies
 from ._measured_fit import MeasuredFitPanel  # channel fit (own module)
 from ._messages import MessageArea
 from ._selection import SelectionModel
@@ -50,18 +51,6 @@ def _heatmap(x_scale: Any, y_scale: Any, c_scale: Any, energies: np.ndarray,
              delays: np.ndarray, values: np.ndarray) -> bqplot.HeatMap:
     return bqplot.HeatMap(x=energies, y=delays, color=values,
                           scales={"x": x_scale, "y": y_scale, "color": c_scale})
-
-
-def _default_energies(photon_energy: float, n_photons: int) -> np.ndarray:
-    return np.linspace(0.0, float(photon_energy) * int(n_photons), 241)
-
-
-def _default_delays(ens: Ensemble, fwhm_cc: float) -> np.ndarray:
-    t = ens.snapshots["time"].to_numpy()
-    t = t[np.isfinite(t)]
-    lo = float(t.min()) - 1.5 * fwhm_cc if t.size else -50.0
-    hi = float(t.max()) if t.size else 500.0
-    return np.linspace(lo, hi, 161)
 
 
 class MapView(View):
@@ -132,6 +121,8 @@ class MapView(View):
         Progress of a recomputation.
     n_computed : int
         How many maps were computed (for tests and benchmarks).
+    live : LiveMaps
+        The stick cache of fast redraws (``live.cache.rebuilds``).
     """
 
     title = "map view"
@@ -174,6 +165,7 @@ class MapView(View):
         self.trpes_kwargs = dict(trpes_kwargs or {})
         self.measured = measured
         self.n_computed = 0
+        self.live = LiveMaps()
         self._fixed_energies = (None if kinetic_energies is None
                                 else np.asarray(kinetic_energies, float))
         self._fixed_delays = None if delays is None else np.asarray(delays, float)
@@ -350,37 +342,34 @@ class MapView(View):
         probe, pump = self.pulses()
         energies = self._fixed_energies
         if energies is None:
-            energies = _default_energies(probe.photon_energy, probe.n_photons)
+            energies = default_energies(probe.photon_energy, probe.n_photons)
         delays = self._fixed_delays
         if delays is None:
             fwhm_cc = float(np.hypot(probe.fwhm, pump.fwhm if pump is not None else 0.0))
-            delays = _default_delays(self.model.ens, fwhm_cc)
+            delays = default_delays(self.model.ens, fwhm_cc)
         return energies, delays
 
     def recompute(self) -> Any:
         """Compute the map of ``model.ens`` without ``model.excluded`` (``exclude=``, a mask,
-        no copy) with the current controls; returns it."""
-        from ..compute.spectroscopy import compute_trpes
-
+        no copy) with the current controls; returns it. A new probe width, resolution or
+        photon energy redraws from cached sticks (:class:`._map_cache.LiveMaps`)."""
         probe, pump = self.pulses()
         energies, delays = self.grids()
-        by = DECOMPOSITIONS[self.decomposition.value]
         kwargs = dict(self.trpes_kwargs)
         if pump is None and "weights" not in kwargs:
             kwargs["weights"] = "uniform"
         with busy(self.status, "computing the map ..."), \
                 warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
-            trpes, sticks = compute_trpes(
-                self.model.ens, probe=probe, pump=pump, kinetic_energies=energies,
-                delays=delays, resolution=float(self.resolution.value),
-                convolve=bool(self.convolve.value), decompose=by, progress=False,
-                exclude=list(self.model.excluded), return_model=True, **kwargs,
-            )
+            trpes, sticks = self.live.compute(
+                self.model, probe=probe, pump=pump, kinetic_energies=energies, delays=delays,
+                resolution=float(self.resolution.value), convolve=bool(self.convolve.value),
+                decompose=DECOMPOSITIONS[self.decomposition.value], kwargs=kwargs)
         for w in caught:
             self.messages.warning(f"map: {w.message}")
         self.n_computed += 1
-        self.model.remember_stick_model(trpes, sticks)
+        if sticks is not None:
+            self.model.remember_stick_model(trpes, sticks)
         self.model.trpes_map = trpes
         return trpes
 

@@ -19,6 +19,10 @@ histograms on a fine energy grid and redraws maps from them:
   :data:`WIDEN_LIMIT` times wider (channels the build probe's threshold tail left out
   would then matter at the 1e-6 level) rebuilds too.
 
+A new pump (:meth:`StickCache.set_pump`) only changes the cross-correlation, unless the
+trajectory weights depend on it (doorway weights): then one new pass. ``exclude=`` leaves
+trajectories out of every map of the cache, as in ``compute_trpes``.
+
 ``cache.rebuilds`` counts the passes over the ensemble since construction.
 """
 
@@ -34,10 +38,11 @@ from ...data.ensemble import Ensemble
 from ...data.spectrum import TRPESMap
 from ...errors import SchemaError
 from .cross_sections import DysonNorm, resolve_cross_section
-from .maps import trpes_model
+from .maps import excluded_ids, trpes_model
 from .model import TRPESModel
 from .pulses import GaussianPulse
 from .resolution import Resolution, check_resolution, min_stick_fwhm
+from .weights import weights_word
 
 __all__ = ["StickCache", "prepare_map_cache", "WIDEN_LIMIT"]
 
@@ -59,8 +64,9 @@ class StickCache:
     photon_energies : (float, float), optional
         Range of probe photon energies (eV) to serve without a new pass; default the
         probe's photon energy only.
-    pump, cross_section, weights, time_step, ionisation_shifts, absorbing
-        As for :func:`~.maps.compute_trpes`.
+    pump, cross_section, weights, time_step, ionisation_shifts, absorbing, exclude
+        As for :func:`~.maps.compute_trpes` (``exclude``: trajectory ids left out, a
+        mask; every map of the cache leaves them out).
     resolution : float or ProportionalResolution
         The instrument resolution the fine grid is sized for (default 0).
     progress : bool
@@ -73,7 +79,7 @@ class StickCache:
                  weights: str = "auto", time_step: float | None = None,
                  ionisation_shifts: Sequence[float] | Mapping[int, float] | None = None,
                  absorbing: str = "zero", resolution: Resolution = 0.0,
-                 progress: bool = False) -> None:
+                 progress: bool = False, exclude: npt.ArrayLike | None = None) -> None:
         if not isinstance(ens, Ensemble):
             raise SchemaError(f"StickCache needs an in-memory Ensemble; got "
                               f"{type(ens).__name__}. Hint: for a chunked store call "
@@ -91,9 +97,11 @@ class StickCache:
         self.photon_energies = (min(lo, probe.photon_energy), max(hi, probe.photon_energy))
         self._kw = {"pump": pump, "cross_section": cross_section, "weights": weights,
                     "time_step": time_step, "ionisation_shifts": ionisation_shifts,
-                    "absorbing": absorbing, "progress": progress}
+                    "absorbing": absorbing, "progress": progress,
+                    "exclude": None if exclude is None else excluded_ids(exclude)}
         self._shiftable = type(resolve_cross_section(cross_section)) is DysonNorm
         self.rebuilds = 0
+        self._stale = False
         self._build(self.photon_energies[1], probe.fwhm, check_resolution(resolution))
 
     def _build(self, photon_energy: float, fwhm: float, resolution: Resolution) -> None:
@@ -108,6 +116,7 @@ class StickCache:
                                                  keep_sticks=False, **self._kw)
         self.build_fwhm = self.model.fwhm(probe, resolution)
         self.rebuilds += 1
+        self._stale = False
 
     def map(self, *, kinetic_energies: npt.ArrayLike, delays: npt.ArrayLike,
             probe_fwhm: float | None = None, resolution: Resolution = 0.0,
@@ -141,6 +150,8 @@ class StickCache:
                               fwhm=self.probe.fwhm if probe_fwhm is None else probe_fwhm,
                               n_photons=self.probe.n_photons)
         lo, hi = self.photon_energies
+        if self._stale:  # a pump that changes the trajectory weights (set_pump)
+            self._build(self.model.probe.photon_energy, probe.fwhm, resolution)
         if not lo <= hv <= hi or (not self._shiftable and hv != self.model.probe.photon_energy):
             self.photon_energies = (min(lo, hv), max(hi, hv)) if self._shiftable else (hv, hv)
             self._build(self.photon_energies[1], probe.fwhm, resolution)
@@ -157,6 +168,25 @@ class StickCache:
             return self._shifted(probe).broaden(
                 kinetic_energies=kinetic_energies, delays=delays, probe=probe, pump=self.pump,
                 resolution=resolution, convolve=convolve, normalise=normalise)
+
+    def set_pump(self, pump: GaussianPulse | None) -> None:
+        """Use `pump` for the maps from now on (its cross-correlation and ``params``).
+
+        The deposited sticks do not depend on the pump unless the trajectory weights do:
+        a new pass follows (on the next :meth:`map`) only when the weighting the pump
+        gives differs from the cache's, or is the pump's doorway weighting.
+        """
+        if pump is not None and not isinstance(pump, GaussianPulse):
+            raise SchemaError(f"pump must be a GaussianPulse or None; got {type(pump).__name__}.")
+        if pump == self.pump:
+            return
+        w = self._kw["weights"]
+        before = weights_word(self.ens, weights=w, pump=self.pump)
+        after = weights_word(self.ens, weights=w, pump=pump)
+        self.pump = pump
+        self._kw["pump"] = pump
+        if before != after or after == "doorway":
+            self._stale = True
 
     def _shifted(self, probe: GaussianPulse) -> TRPESModel:
         """The model with every stick moved to `probe`'s photon energy (a grid shift)."""

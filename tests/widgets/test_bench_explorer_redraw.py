@@ -1,0 +1,24 @@
+"""Smoke test of benchmarks/bench_explorer_redraw.py at tiny size (keeps it from rotting)."""
+
+from __future__ import annotations
+
+import importlib.util
+import sys
+from pathlib import Path
+
+BENCH = Path(__file__).resolve().parents[2] / "benchmarks" / "bench_explorer_redraw.py"
+
+
+def test_bench_explorer_redraw_quick_run(capsys):
+    sys.path.insert(0, str(BENCH.parent))
+    spec = importlib.util.spec_from_file_location("bench_explorer_redraw", BENCH)
+    bench = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(bench)
+    res = bench.run(quick=True, rounds=1)
+    for name in ("width", "resolution", "photon energy"):
+        r = res[name]
+        assert r["redraw_ms"] > 0 and r["old_ms"] > 0
+        assert r["rebuilds"] == 1  # every change served by the first cache
+    assert bench.main(["--quick", "--rounds", "1"]) == 0
+    out = capsys.readouterr().out
+    assert "width change: redraw" in out and "old full recompute" in out
