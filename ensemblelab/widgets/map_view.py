@@ -13,6 +13,7 @@ from ..data.ensemble import Ensemble
 from ._base import View
 from ._messages import MessageArea
 from ._selection import SelectionModel
+from ._uncertainty_view import UncertaintyView  # uncertainty hook (issue 17)
 from ._small_maps import (
     DELAY,
     ENERGY,
@@ -297,6 +298,7 @@ class MapView(View):
 
         self.delay_cut.add_class("ensemblelab-delay-cut")
         self.energy_cut.add_class("ensemblelab-energy-cut")
+        self.uncertainty = UncertaintyView(self)  # uncertainty hook: toggle, layer, cut bands
         self._recompute_later = Debouncer(self._guard(self.recompute), delay=debounce)
         for w in (self.photon_energy, self.probe_fwhm, self.pump_fwhm, self.n_photons,
                   self.resolution, self.convolve, self.decomposition):
@@ -312,7 +314,7 @@ class MapView(View):
             widgets.HBox([self.photon_energy, self.n_photons, self.probe_fwhm]),
             widgets.HBox([self.pump_fwhm, self.resolution, self.convolve]),
             widgets.HBox([self.decomposition, self.energy_axis, self.status]),
-            self.layer,
+            widgets.HBox([self.layer, self.uncertainty.widget]),
         ])
         cuts = widgets.VBox([self.cut_legend, self.delay_cut, self.energy_cut, self.cut_caption])
         self._finish(controls, widgets.HBox([self.figure, self.colorbar.figure, cuts]),
@@ -461,6 +463,7 @@ class MapView(View):
             set_round_ticks(self.y_axis, float(d_sim[0]), float(d_sim[-1]), 6)
         self.colorbar.draw(lo, hi, {"residual": RESIDUAL, "measured": INTENSITY_ARB}.get(
             self.layer.value if self.measured is not None else "", INTENSITY))
+        self.uncertainty.draw(trpes)  # uncertainty hook: stale interval, its layer
         self._draw_grid(trpes)
         self._draw_comparison()
         self._draw_box()
@@ -588,6 +591,7 @@ class MapView(View):
                 axis.scale.min, axis.scale.max = 0.0, (top if top > 0 else 1.0)
                 set_round_ticks(axis, 0.0, top if top > 0 else 1.0, 4)
         self.cut_caption.value = self.cut_text()
+        self.uncertainty.draw_bands()  # uncertainty hook: interval bands on the cuts
 
     def cut_text(self) -> str:
         """What the cuts average over, as stated under them."""
