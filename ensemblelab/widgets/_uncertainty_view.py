@@ -148,7 +148,7 @@ class UncertaintyView:
         from ..compute.spectroscopy.replicates import trpes_with_replicates
 
         args = self.arguments(trpes)  # read on the widget thread
-        opts = {"n_boot": self.n_boot, "ci": self.ci, "random_state": self.random_state}
+        n_boot, ci, seed = self.n_boot, self.ci, self.random_state
 
         def compute() -> Any:
             import warnings
@@ -156,7 +156,8 @@ class UncertaintyView:
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore")  # the map's own warnings were shown with it
                 try:
-                    return trpes_with_replicates(self.view.model.ens, **args, **opts)
+                    return trpes_with_replicates(self.view.model.ens, n_boot=n_boot, ci=ci,
+                                                 random_state=seed, **args)
                 except Exception as exc:  # noqa: BLE001 - reported on the widget thread
                     return exc
 

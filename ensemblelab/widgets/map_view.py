@@ -13,7 +13,6 @@ from ..data.ensemble import Ensemble
 from ._base import View
 from ._messages import MessageArea
 from ._selection import SelectionModel
-from ._uncertainty_view import UncertaintyView  # uncertainty hook (issue 17)
 from ._small_maps import (
     DELAY,
     ENERGY,
@@ -28,6 +27,7 @@ from ._small_maps import (
     range_mask,
     set_round_ticks,
 )
+from ._uncertainty_view import UncertaintyView  # uncertainty hook (issue 17)
 from ._util import Debouncer, busy, legend_html
 
 __all__ = ["MapView", "DECOMPOSITIONS"]
