@@ -16,6 +16,7 @@ from __future__ import annotations
 
 import html
 import math
+from collections.abc import Callable
 from typing import Any
 
 import bqplot
@@ -51,6 +52,10 @@ class UncertaintyView:
     ----------
     view : MapView
         The view whose map, cuts and colour bar are drawn on.
+    redraw : callable
+        Draws a map in the view (``redraw(trpes)``), this view's hooks included.
+    cut_axes : dict of str to bqplot.Axis
+        The cuts' intensity axes, ``"cy"`` (delay cut) and ``"ty"`` (energy cut).
     n_boot : int
         Bootstrap resamples of whole trajectories.
     ci : float
@@ -79,9 +84,11 @@ class UncertaintyView:
         How many intervals were computed.
     """
 
-    def __init__(self, view: Any, *, n_boot: int = 200, ci: float = 0.95,
+    def __init__(self, view: Any, redraw: Callable[[Any], None],
+                 cut_axes: dict[str, bqplot.Axis], *, n_boot: int = 200, ci: float = 0.95,
                  random_state: int = 0, background: bool | None = None) -> None:
         self.view = view
+        self._redraw, self._cut_axes = redraw, cut_axes
         self.n_boot, self.ci, self.random_state = int(n_boot), float(ci), int(random_state)
         self.toggle = widgets.ToggleButton(
             value=False, description="uncertainty", icon="",
@@ -187,7 +194,7 @@ class UncertaintyView:
             + f" <i>(pixels above {100 * SIGNAL_FRACTION:.0f} % of the peak; "
             f"{self.n_boot} resamples of whole trajectories)</i>")
         if self.layer.value != "map":
-            self.view._draw(source)
+            self._redraw(source)
         else:
             self.draw_bands()
 
@@ -207,7 +214,7 @@ class UncertaintyView:
 
     def _on_layer(self, change: dict) -> None:
         if self.view.model.trpes_map is not None:
-            self.view._draw(self.view.model.trpes_map)
+            self._redraw(self.view.model.trpes_map)
 
     # ------------------------------------------------------------------ drawing hooks
     def draw(self, trpes: Any) -> None:
@@ -271,7 +278,7 @@ class UncertaintyView:
         trpes = self.interval
         grids = {"delay": np.asarray(trpes.kinetic_energies, float),
                  "energy": np.asarray(trpes.delays, float)}
-        axes = {"delay": view._cut_axes["cy"], "energy": view._cut_axes["ty"]}
+        axes = {"delay": self._cut_axes["cy"], "energy": self._cut_axes["ty"]}
         with view.delay_cut.hold_sync(), view.energy_cut.hold_sync():
             for key, mark in (("delay", self.delay_band), ("energy", self.energy_band)):
                 lo, hi = bounds[key]

@@ -298,7 +298,7 @@ class MapView(View):
 
         self.delay_cut.add_class("ensemblelab-delay-cut")
         self.energy_cut.add_class("ensemblelab-energy-cut")
-        self.uncertainty = UncertaintyView(self)  # uncertainty hook: toggle, layer, cut bands
+        self.uncertainty = UncertaintyView(self, self._draw, self._cut_axes)  # uncertainty
         self._recompute_later = Debouncer(self._guard(self.recompute), delay=debounce)
         for w in (self.photon_energy, self.probe_fwhm, self.pump_fwhm, self.n_photons,
                   self.resolution, self.convolve, self.decomposition):
