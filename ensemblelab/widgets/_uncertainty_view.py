@@ -34,6 +34,8 @@ REL_SE_LABEL = "relative standard error / %"
 LAYERS = ("map", "relative uncertainty")
 #: pixels below this fraction of the peak are left out of the median and the colour range
 SIGNAL_FRACTION = 0.05
+#: colour scheme of the relative-uncertainty layer
+LAYER_SCHEME = "YlOrRd"
 _BAND = "#1f77b4"
 
 
@@ -218,14 +220,17 @@ class UncertaintyView:
 
     # ------------------------------------------------------------------ drawing hooks
     def draw(self, trpes: Any) -> None:
-        """Called by the view after it drew `trpes`: drop a stale interval (recompute when
-        on) and draw the relative-uncertainty layer when chosen."""
+        """Called by the view after it drew its cuts of `trpes` (after every map drawing):
+        drop a stale interval (recompute when on), draw the relative-uncertainty layer
+        when chosen and the view drew over it, and the bands."""
         if self._source is not None and self._source is not trpes:
             self._invalidate()
         if self.toggle.value and not self.available:
             self.start()  # at once without a kernel loop: the interval is there below
-        if self.toggle.value and self.available and self.layer.value == "relative uncertainty":
+        if self.toggle.value and self.available and self.layer.value == "relative uncertainty" \
+                and self.view.c.scheme != LAYER_SCHEME:  # the view drew its own layer
             self._draw_layer(trpes)
+        self.draw_bands()
 
     def layer_values(self) -> tuple[np.ndarray, float]:
         """The relative standard error drawn (%, shape (n_delays, n_energies)) and the top of
@@ -247,7 +252,7 @@ class UncertaintyView:
         view = self.view
         values, top = self.layer_values()
         with view.figure.hold_sync():
-            view.c.scheme = "YlOrRd"
+            view.c.scheme = LAYER_SCHEME
             view.c.min, view.c.max = 0.0, top
             view.heatmap.x = np.asarray(trpes.kinetic_energies, float)
             view.heatmap.y = np.asarray(trpes.delays, float)

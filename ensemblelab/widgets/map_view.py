@@ -463,7 +463,6 @@ class MapView(View):
             set_round_ticks(self.y_axis, float(d_sim[0]), float(d_sim[-1]), 6)
         self.colorbar.draw(lo, hi, {"residual": RESIDUAL, "measured": INTENSITY_ARB}.get(
             self.layer.value if self.measured is not None else "", INTENSITY))
-        self.uncertainty.draw(trpes)  # uncertainty hook: stale interval, its layer
         self._draw_grid(trpes)
         self._draw_comparison()
         self._draw_box()
@@ -591,7 +590,7 @@ class MapView(View):
                 axis.scale.min, axis.scale.max = 0.0, (top if top > 0 else 1.0)
                 set_round_ticks(axis, 0.0, top if top > 0 else 1.0, 4)
         self.cut_caption.value = self.cut_text()
-        self.uncertainty.draw_bands()  # uncertainty hook: interval bands on the cuts
+        self.uncertainty.draw(trpes)  # uncertainty hook: its layer, bands on the cuts
 
     def cut_text(self) -> str:
         """What the cuts average over, as stated under them."""

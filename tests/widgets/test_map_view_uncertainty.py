@@ -97,6 +97,12 @@ def test_toggle_on_gives_layer_equal_to_rel_se_and_status(model):
     ticks = np.asarray(view.color_axis.tick_values, float)
     np.testing.assert_allclose(ticks, nice_ticks(0.0, top, 5))
     assert ticks[-1] == pytest.approx(top)
+    # the layer stays when the view draws again (another energy window, a selected band)
+    view.energy_axis.value = "full grid"
+    model.select_band(energy_range=(1.2, 1.8), delay_range=(0.0, 60.0))
+    np.testing.assert_allclose(np.asarray(view.heatmap.color, float)[signal], rel[signal],
+                               rtol=1e-10)
+    assert view.color_axis.label == "relative standard error / %"
     # back to the map: the intensity again
     unc.layer.value = "map"
     np.testing.assert_allclose(view.heatmap.color, np.nan_to_num(shown.intensity))
