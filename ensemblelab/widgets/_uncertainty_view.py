@@ -98,7 +98,7 @@ class UncertaintyView:
                     "trajectories): a layer of the relative standard error, bands on the cuts",
             layout=widgets.Layout(width="110px"))
         self.layer = widgets.ToggleButtons(options=list(LAYERS), value="map", disabled=True,
-                                           style={"button_width": "125px"})
+                                           style={"button_width": "150px"})
         self.status = widgets.HTML()
         self.status.add_class("ensemblelab-uncertainty-status")
         self._jobs = BackgroundJobs(view.messages, background=background)
