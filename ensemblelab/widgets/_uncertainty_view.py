@@ -124,8 +124,9 @@ class UncertaintyView:
         return self.interval is not None and trpes is not None and self._source is trpes
 
     def arguments(self, trpes: Any) -> dict[str, Any]:
-        """Arguments of ``compute_trpes`` that made `trpes` (grids, pulses, decomposition,
-        exclusions from its ``params``; further ones from the view's ``trpes_kwargs``)."""
+        """Arguments of ``compute_trpes`` that made `trpes` (grids, pulses, exclusions from
+        its ``params``; further ones from the view's ``trpes_kwargs``), without its
+        decomposition (the total map is the same)."""
         from ..compute.spectroscopy.pulses import GaussianPulse
 
         p = trpes.params
@@ -140,7 +141,9 @@ class UncertaintyView:
             "delays": np.asarray(trpes.delays, float),
             "resolution": float(res) if isinstance(res, int | float) else
             float(self.view.resolution.value),
-            "convolve": bool(p.get("convolve", True)), "decompose": p.get("decompose"),
+            # the total only: the layer and the cuts use it (components would multiply the
+            # replicate memory by their number)
+            "convolve": bool(p.get("convolve", True)), "decompose": None,
             "exclude": list(p.get("excluded") or []), "progress": False}
 
     def _invalidate(self) -> None:

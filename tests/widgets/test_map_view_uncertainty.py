@@ -166,13 +166,17 @@ def test_recompute_invalidates_and_recomputes_when_on(model):
     assert unc.n_computed == 2 and unc.interval is not first and unc.available
     assert unc.interval.params["convolve"] is False
     np.testing.assert_allclose(unc.interval.intensity, model.trpes_map.intensity, rtol=1e-12)
+    view.decomposition.value = "neutral state"  # decomposed map: the interval of its total
+    assert unc.n_computed == 3 and model.trpes_map.components
+    np.testing.assert_allclose(unc.interval.intensity, model.trpes_map.intensity, rtol=1e-12)
+    assert unc.delay_band.visible
     model.excluded = (1,)  # exclusions: new map, new interval without trajectory 1
-    assert unc.n_computed == 3 and unc.interval.params["excluded"] == [1]
+    assert unc.n_computed == 4 and unc.interval.params["excluded"] == [1]
     direct = _direct(model, model.trpes_map, interval="bootstrap", n_boot=N_BOOT,
                      random_state=SEED)
     np.testing.assert_allclose(unc.interval.upper, direct.upper, rtol=1e-10, atol=1e-14)
     # off: a new map drops the interval and computes none
     unc.toggle.value = False
     view.convolve.value = True
-    assert unc.n_computed == 3 and unc.interval is None and not unc.delay_band.visible
+    assert unc.n_computed == 4 and unc.interval is None and not unc.delay_band.visible
     assert view.messages.errors == []
