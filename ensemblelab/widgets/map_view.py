@@ -29,6 +29,7 @@ from ._small_maps import (
     range_mask,
     set_round_ticks,
 )
+from ._uncertainty_view import UncertaintyView  # uncertainty hook (issue 17)
 from ._util import Debouncer, busy, legend_html
 
 __all__ = ["MapView", "DECOMPOSITIONS"]
@@ -291,6 +292,7 @@ class MapView(View):
 
         self.delay_cut.add_class("ensemblelab-delay-cut")
         self.energy_cut.add_class("ensemblelab-energy-cut")
+        self.uncertainty = UncertaintyView(self, self._draw, self._cut_axes)  # uncertainty
         self._recompute_later = Debouncer(self._guard(self.recompute), delay=debounce)
         for w in (self.photon_energy, self.probe_fwhm, self.pump_fwhm, self.n_photons,
                   self.resolution, self.convolve, self.decomposition):
@@ -306,7 +308,7 @@ class MapView(View):
             widgets.HBox([self.photon_energy, self.n_photons, self.probe_fwhm]),
             widgets.HBox([self.pump_fwhm, self.resolution, self.convolve]),
             widgets.HBox([self.decomposition, self.energy_axis, self.status]),
-            self.layer,
+            widgets.HBox([self.layer, self.uncertainty.widget]),
         ])
         cuts = widgets.VBox([self.cut_legend, self.delay_cut, self.energy_cut, self.cut_caption])
         self._finish(controls, widgets.HBox([self.figure, self.colorbar.figure, cuts]),
@@ -582,6 +584,7 @@ class MapView(View):
                 axis.scale.min, axis.scale.max = 0.0, (top if top > 0 else 1.0)
                 set_round_ticks(axis, 0.0, top if top > 0 else 1.0, 4)
         self.cut_caption.value = self.cut_text()
+        self.uncertainty.draw(trpes)  # uncertainty hook: its layer, bands on the cuts
 
     def cut_text(self) -> str:
         """What the cuts average over, as stated under them."""
