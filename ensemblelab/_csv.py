@@ -58,11 +58,26 @@ def _text_columns(frame: pd.DataFrame) -> list[Any]:
             if frame[c].dtype == object or pd.api.types.is_string_dtype(frame[c].dtype)]
 
 
+def _neutralised_column(col: Any) -> Any:
+    # long tables repeat a few labels: neutralise each distinct text once (same cells as
+    # col.map(neutralise_cell)); anything but plain text cells takes the per-cell path
+    if isinstance(col, pd.Series) and col.dtype == object and len(col) > 64:
+        try:
+            codes, uniques = pd.factorize(col, use_na_sentinel=True)
+        except TypeError:  # unhashable cells
+            codes = None
+        if codes is not None and codes.min(initial=0) >= 0 and all(
+                type(u) is str for u in uniques):
+            table = np.array([neutralise_cell(u) for u in uniques], dtype=object)
+            return pd.Series(table[codes], index=col.index, name=col.name, dtype=object)
+    return col.map(neutralise_cell)
+
+
 def neutralise_frame(frame: pd.DataFrame) -> pd.DataFrame:
     """A copy of `frame` with every text cell and column name neutralised."""
     out = frame.copy()
     for c in _text_columns(out):
-        out[c] = out[c].map(neutralise_cell)
+        out[c] = _neutralised_column(out[c])
     out.columns = [neutralise_cell(c) if isinstance(c, str) else c for c in out.columns]
     return out
 

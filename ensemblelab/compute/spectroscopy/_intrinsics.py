@@ -109,10 +109,22 @@ def make_prefetch(numba):
     return prefetch
 
 
+#: the choice of :func:`pick_add8`, per numba module (made once per process)
+_PICKED: dict[int, object] = {}
+
+
 def pick_add8(numba):
     """The vector :func:`_add8` intrinsic if it compiles and agrees with the scalar one,
-    else the compiled scalar version (older or newer llvmlite, other CPUs)."""
-    scalar = numba.njit(nogil=True, boundscheck=False)(add8_scalar)
+    else the compiled scalar version (older or newer llvmlite, other CPUs).
+
+    Decided once per process (one small probe compile); the scalar reference is run as
+    plain Python, whose float64 products are the compiled scalar kernel's (no fastmath).
+    """
+    key = id(numba)
+    if key in _PICKED:
+        return _PICKED[key]
+    scalar = numba.njit(nogil=True, boundscheck=False)(add8_scalar)  # compiled on first use
+    picked = scalar
     try:
         vec = make_add8(numba)
 
@@ -123,12 +135,13 @@ def pick_add8(numba):
         a = np.arange(10.0)
         b = a.copy()
         probe(a, np.uint64(1), 0.7, -0.3)
-        scalar(b, np.uint64(1), 0.7, -0.3)
+        add8_scalar(b, np.uint64(1), 0.7, -0.3)
         if np.array_equal(a, b):
-            return vec
+            picked = vec
     except Exception:  # pragma: no cover - depends on the numba/llvmlite build
         pass
-    return scalar  # pragma: no cover
+    _PICKED[key] = picked
+    return picked
 
 
 def compiled_helpers(numba):
