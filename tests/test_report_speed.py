@@ -205,3 +205,29 @@ def test_neutralise_frame_long_text_columns_cell_by_cell_equal():
         assert got[name].tolist() == want.tolist()
         assert got[name].dtype == want.dtype
     assert got["component"].tolist().count("'=SUM(A1)") == col.count("=SUM(A1)")
+
+
+@pytest.mark.parametrize("element", ["H", "D", "C", "N", "O", "F", "S", "Cl", "Fe", "Br", "I"])
+def test_xray_form_factor_read_without_xraydb_equals_xraydb(element):
+    # reference library: xraydb.f0 (Waasmaier-Kirfel fits), bit for bit
+    xraydb = pytest.importorskip("xraydb")
+    from ensemblelab.compute.observables.form_factors import q_to_x, xray_form_factor
+
+    q = np.linspace(0.0, 25.0, 257)
+    want = np.asarray(xraydb.f0("H" if element == "D" else element, q_to_x(q)), dtype=float)
+    assert np.array_equal(xray_form_factor(element, q), want)
+
+
+def test_xray_form_factor_does_not_import_xraydb():
+    # common practice: measured by importing in a fresh interpreter
+    import subprocess
+    import sys
+
+    pytest.importorskip("xraydb")
+    code = ("import sys, numpy as np\n"
+            "from ensemblelab.compute.observables.form_factors import xray_form_factor\n"
+            "xray_form_factor('C', np.linspace(0.5, 10, 5))\n"
+            "print('xraydb' in sys.modules, 'sqlalchemy' in sys.modules)\n")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                         check=True).stdout.split()
+    assert out == ["False", "False"]
