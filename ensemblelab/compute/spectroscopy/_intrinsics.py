@@ -8,6 +8,8 @@ llvmlite are imported only by the factories (called on a kernel's first use).
 
 from __future__ import annotations
 
+from typing import Any
+
 import numpy as np
 
 __all__ = ["add8_scalar", "make_add8", "make_prefetch", "pick_add8", "compiled_helpers"]
@@ -109,6 +111,13 @@ def make_prefetch(numba):
     return prefetch
 
 
+_VEC_ADD8: Any = None  # the vector intrinsic, a global of _probe_vec while it compiles
+
+
+def _probe_vec(acc, row, v, d):  # pragma: no cover - compiled by numba
+    _VEC_ADD8(acc, row, v, d)
+
+
 #: the choice of :func:`pick_add8`, per numba module (made once per process)
 _PICKED: dict[int, object] = {}
 
@@ -123,15 +132,13 @@ def pick_add8(numba):
     key = id(numba)
     if key in _PICKED:
         return _PICKED[key]
+    global _VEC_ADD8
     scalar = numba.njit(nogil=True, boundscheck=False)(add8_scalar)  # compiled on first use
     picked = scalar
     try:
-        vec = make_add8(numba)
-
-        @numba.njit(nogil=True, boundscheck=False)
-        def probe(acc, row, v, d):
-            vec(acc, row, v, d)
-
+        vec = _VEC_ADD8 = make_add8(numba)
+        # cached on disk like the kernels (a later process loads it instead of compiling)
+        probe = numba.njit(cache=True, nogil=True, boundscheck=False)(_probe_vec)
         a = np.arange(10.0)
         b = a.copy()
         probe(a, np.uint64(1), 0.7, -0.3)
