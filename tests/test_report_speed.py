@@ -231,3 +231,19 @@ def test_xray_form_factor_does_not_import_xraydb():
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
                          check=True).stdout.split()
     assert out == ["False", "False"]
+
+
+def test_csv_text_of_repeated_grid_columns_equals_pandas():
+    # reference library: pandas.DataFrame.to_csv (shortest round-trip floats, NaN empty)
+    import pandas as pd
+
+    from ensemblelab._csv import to_csv_text
+
+    rng = np.random.default_rng(3)
+    grid = np.array([-0.0, 0.0, 0.1, 1e-300, -2.5, np.nan, np.inf, 1 / 3])
+    frame = pd.DataFrame({"delay": rng.choice(grid, size=2000),
+                          "energy": np.repeat(np.linspace(0.0, 5.0, 20), 100),
+                          "value": rng.normal(size=2000)})
+    text = to_csv_text(frame)
+    assert text == frame.to_csv(index=False)
+    assert "-0.0," in text and "\n0.0," in text.replace("\r\n", "\n")
