@@ -58,11 +58,26 @@ def _text_columns(frame: pd.DataFrame) -> list[Any]:
             if frame[c].dtype == object or pd.api.types.is_string_dtype(frame[c].dtype)]
 
 
+def _neutralised_column(col: Any) -> Any:
+    # long tables repeat a few labels: neutralise each distinct text once (same cells as
+    # col.map(neutralise_cell)); anything but plain text cells takes the per-cell path
+    if isinstance(col, pd.Series) and col.dtype == object and len(col) > 64:
+        try:
+            codes, uniques = pd.factorize(col, use_na_sentinel=True)
+        except TypeError:  # unhashable cells
+            codes = None
+        if codes is not None and codes.min(initial=0) >= 0 and all(
+                type(u) is str for u in uniques):
+            table = np.array([neutralise_cell(u) for u in uniques], dtype=object)
+            return pd.Series(table[codes], index=col.index, name=col.name, dtype=object)
+    return col.map(neutralise_cell)
+
+
 def neutralise_frame(frame: pd.DataFrame) -> pd.DataFrame:
     """A copy of `frame` with every text cell and column name neutralised."""
     out = frame.copy()
     for c in _text_columns(out):
-        out[c] = out[c].map(neutralise_cell)
+        out[c] = _neutralised_column(out[c])
     out.columns = [neutralise_cell(c) if isinstance(c, str) else c for c in out.columns]
     return out
 
@@ -85,6 +100,20 @@ def _quoted(text: str) -> str:
     return buf.getvalue()[: -len(os.linesep)]
 
 
+def _float_texts(vals: np.ndarray) -> list[str]:
+    """``repr`` of every float64 in `vals` (shortest round trip); a column of few
+    distinct values (the grid columns of a tidy map) formats each distinct bit pattern
+    once (so -0.0 and 0.0 keep their own text)."""
+    n = vals.size
+    if n > 256:
+        bits = np.ascontiguousarray(vals).view(np.int64)
+        uniq, inverse = np.unique(bits, return_inverse=True)
+        if 4 * uniq.size < n:
+            table = np.array(list(map(repr, uniq.view(np.float64).tolist())), dtype=object)
+            return table[inverse.ravel()].tolist()
+    return list(map(repr, vals.tolist()))
+
+
 def _numeric_csv(frame: pd.DataFrame) -> str | None:
     """``frame.to_csv(index=False)`` for numeric and text columns, else None.
 
@@ -104,7 +133,7 @@ def _numeric_csv(frame: pd.DataFrame) -> str | None:
         dt = col.dtype
         if dt == np.float64:
             vals = col.to_numpy()
-            txt = list(map(repr, vals.tolist()))
+            txt = _float_texts(vals)
             for i in np.flatnonzero(np.isnan(vals)).tolist():
                 txt[i] = ""
         elif dt == np.bool_ or (isinstance(dt, np.dtype) and dt.kind in "iu"):

@@ -133,3 +133,117 @@ def test_bench_report_smoke(tmp_path):
     data = write_extxyz(make_toy_ensemble(6, seed=1, t_max=60.0, dt=4.0), tmp_path / "d" / "x")
     t = mod.in_process(tmp_path / "r", data=data)
     assert t["total"] > 0 and "Clusters" in t and "Populations" in t
+
+
+def test_trapezoid_weights_match_numpy_trapezoid():
+    # reference library: numpy.trapezoid on a non-uniform grid (rows with NaN stay NaN)
+    from ensemblelab.compute.observables.scattering import trapezoid_weights
+
+    rng = np.random.default_rng(4)
+    x = np.sort(rng.uniform(0.5, 10.0, size=37))
+    y = rng.normal(size=(6, 37, 11))
+    y[2, 5, :] = np.nan
+    got = np.einsum("q,tqr->tr", trapezoid_weights(x), y)
+    want = np.trapezoid(y, x, axis=1)
+    np.testing.assert_allclose(got, want, rtol=1e-12, atol=1e-14)
+    assert np.isnan(got[2]).all() and np.isnan(want[2]).all()
+    assert trapezoid_weights(x[:1]).tolist() == [0.0]  # common practice: no interval
+
+
+def test_scattering_pdf_equals_trapezoid_of_its_integrand():
+    # reference library: numpy.trapezoid of delta_sm(q) sin(q r) exp(-k q^2) over q
+    from ensemblelab.compute.observables import compute_scattering
+
+    ens = make_toy_ensemble(6, seed=7, t_max=60.0)
+    q = np.linspace(0.5, 8.0, 41)
+    m = compute_scattering(ens, kind="xray", q=q, delays=np.linspace(0.0, 60.0, 7),
+                           damping=0.03)
+    kern = np.sin(q[:, None] * m.r[None, :]) * np.exp(-0.03 * q**2)[:, None]
+    want = np.trapezoid(m.delta_sm[:, :, None] * kern[None], q, axis=1)
+    np.testing.assert_allclose(m.delta_pdf, want, rtol=1e-10, atol=1e-12 * np.abs(want).max())
+
+
+def test_vector_add8_decided_once_and_equal_to_scalar():
+    # computed independently (not published): the scalar products, compiled and in Python
+    numba = pytest.importorskip("numba")
+    from ensemblelab.compute.spectroscopy._intrinsics import add8_scalar, pick_add8
+
+    first = pick_add8(numba)
+    assert pick_add8(numba) is first  # one probe compile per process, not one per kernel
+    compiled = numba.njit(add8_scalar)
+
+    @numba.njit
+    def use(acc, row, v, d):
+        first(acc, row, v, d)
+
+    rng = np.random.default_rng(11)
+    for _ in range(50):
+        acc = rng.normal(size=12)
+        a, b, c = acc.copy(), acc.copy(), acc.copy()
+        v, d = rng.normal(size=2) * 5.0
+        compiled(a, np.uint64(3), v, d)
+        add8_scalar(b, np.uint64(3), v, d)
+        use(c, np.uint64(3), v, d)
+        assert np.array_equal(a, b) and np.array_equal(a, c)
+
+
+def test_neutralise_frame_long_text_columns_cell_by_cell_equal():
+    # computed independently (not published): the per-cell path on the same labels
+    import pandas as pd
+
+    from ensemblelab._csv import neutralise_cell, neutralise_frame
+
+    labels = ["total", "=SUM(A1)", "+1.5", "-x", "'quoted", "@cmd", "S1"]
+    rng = np.random.default_rng(2)
+    col = [labels[i] for i in rng.integers(0, len(labels), size=300)]
+    mixed = list(col)
+    mixed[7], mixed[9] = None, 3  # non-text cells: per-cell path
+    frame = pd.DataFrame({"component": col, "mixed": mixed, "value": rng.normal(size=300)})
+    got = neutralise_frame(frame)
+    for name in ("component", "mixed"):
+        want = frame[name].map(neutralise_cell)
+        assert got[name].tolist() == want.tolist()
+        assert got[name].dtype == want.dtype
+    assert got["component"].tolist().count("'=SUM(A1)") == col.count("=SUM(A1)")
+
+
+@pytest.mark.parametrize("element", ["H", "D", "C", "N", "O", "F", "S", "Cl", "Fe", "Br", "I"])
+def test_xray_form_factor_read_without_xraydb_equals_xraydb(element):
+    # reference library: xraydb.f0 (Waasmaier-Kirfel fits), bit for bit
+    xraydb = pytest.importorskip("xraydb")
+    from ensemblelab.compute.observables.form_factors import q_to_x, xray_form_factor
+
+    q = np.linspace(0.0, 25.0, 257)
+    want = np.asarray(xraydb.f0("H" if element == "D" else element, q_to_x(q)), dtype=float)
+    assert np.array_equal(xray_form_factor(element, q), want)
+
+
+def test_xray_form_factor_does_not_import_xraydb():
+    # common practice: measured by importing in a fresh interpreter
+    import subprocess
+    import sys
+
+    pytest.importorskip("xraydb")
+    code = ("import sys, numpy as np\n"
+            "from ensemblelab.compute.observables.form_factors import xray_form_factor\n"
+            "xray_form_factor('C', np.linspace(0.5, 10, 5))\n"
+            "print('xraydb' in sys.modules, 'sqlalchemy' in sys.modules)\n")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                         check=True).stdout.split()
+    assert out == ["False", "False"]
+
+
+def test_csv_text_of_repeated_grid_columns_equals_pandas():
+    # reference library: pandas.DataFrame.to_csv (shortest round-trip floats, NaN empty)
+    import pandas as pd
+
+    from ensemblelab._csv import to_csv_text
+
+    rng = np.random.default_rng(3)
+    grid = np.array([-0.0, 0.0, 0.1, 1e-300, -2.5, np.nan, np.inf, 1 / 3])
+    frame = pd.DataFrame({"delay": rng.choice(grid, size=2000),
+                          "energy": np.repeat(np.linspace(0.0, 5.0, 20), 100),
+                          "value": rng.normal(size=2000)})
+    text = to_csv_text(frame)
+    assert text == frame.to_csv(index=False)
+    assert "-0.0," in text and "\n0.0," in text.replace("\r\n", "\n")

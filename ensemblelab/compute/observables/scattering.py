@@ -62,7 +62,7 @@ from ._timegrid import (
 )
 from .form_factors import form_factor_table
 
-__all__ = ["compute_scattering", "debye_intensity", "scattering_partial"]
+__all__ = ["compute_scattering", "debye_intensity", "scattering_partial", "trapezoid_weights"]
 
 #: snapshots per kernel call inside a block (bounds the (chunk, n_q) temporaries)
 CHUNK = 4096
@@ -239,6 +239,22 @@ def _check_fraction(value: float | None) -> float:
     return f
 
 
+def trapezoid_weights(x: np.ndarray) -> np.ndarray:
+    """Weights ``w`` with ``w @ y == np.trapezoid(y, x)`` (up to rounding), shape (n,).
+
+    ``w_0 = (x_1 - x_0)/2``, ``w_i = (x_{i+1} - x_{i-1})/2``, ``w_{n-1} = (x_{n-1} -
+    x_{n-2})/2`` (the trapezoidal rule written as a dot product; common practice): one
+    matrix product instead of a (n_delays, n_q, n_r) temporary.
+    """
+    x = np.asarray(x, dtype=float)
+    w = np.zeros(x.size)
+    if x.size > 1:
+        dx = np.diff(x)
+        w[:-1] += 0.5 * dx
+        w[1:] += 0.5 * dx
+    return w
+
+
 def compute_scattering(
     ens: Any,
     *,
@@ -400,7 +416,7 @@ def compute_scattering(
         raise SchemaError(f"The 'damping' parameter must be a float >= 0 (Angstrom^2). Got "
                           f"{damping!r} instead.")
     kern = np.sin(qa[:, None] * r_a[None, :]) * np.exp(-k * qa**2)[:, None]
-    delta_pdf = (np.trapezoid(delta_sm[:, :, None] * kern[None], qa, axis=1)
+    delta_pdf = (delta_sm @ (trapezoid_weights(qa)[:, None] * kern)
                  if qa.size > 1 else np.zeros((delays_a.size, r_a.size)))
     t_known = grid["t_known"]
     params = {

@@ -8,6 +8,8 @@ llvmlite are imported only by the factories (called on a kernel's first use).
 
 from __future__ import annotations
 
+from typing import Any
+
 import numpy as np
 
 __all__ = ["add8_scalar", "make_add8", "make_prefetch", "pick_add8", "compiled_helpers"]
@@ -109,26 +111,44 @@ def make_prefetch(numba):
     return prefetch
 
 
+_VEC_ADD8: Any = None  # the vector intrinsic, a global of _probe_vec while it compiles
+
+
+def _probe_vec(acc, row, v, d):  # pragma: no cover - compiled by numba
+    _VEC_ADD8(acc, row, v, d)
+
+
+#: the choice of :func:`pick_add8`, per numba module (made once per process)
+_PICKED: dict[int, object] = {}
+
+
 def pick_add8(numba):
     """The vector :func:`_add8` intrinsic if it compiles and agrees with the scalar one,
-    else the compiled scalar version (older or newer llvmlite, other CPUs)."""
-    scalar = numba.njit(nogil=True, boundscheck=False)(add8_scalar)
+    else the compiled scalar version (older or newer llvmlite, other CPUs).
+
+    Decided once per process (one small probe compile); the scalar reference is run as
+    plain Python, whose float64 products are the compiled scalar kernel's (no fastmath).
+    """
+    key = id(numba)
+    if key in _PICKED:
+        return _PICKED[key]
+    global _VEC_ADD8
+    scalar = numba.njit(nogil=True, boundscheck=False)(add8_scalar)  # compiled on first use
+    picked = scalar
     try:
-        vec = make_add8(numba)
-
-        @numba.njit(nogil=True, boundscheck=False)
-        def probe(acc, row, v, d):
-            vec(acc, row, v, d)
-
+        vec = _VEC_ADD8 = make_add8(numba)
+        # cached on disk like the kernels (a later process loads it instead of compiling)
+        probe = numba.njit(cache=True, nogil=True, boundscheck=False)(_probe_vec)
         a = np.arange(10.0)
         b = a.copy()
         probe(a, np.uint64(1), 0.7, -0.3)
-        scalar(b, np.uint64(1), 0.7, -0.3)
+        add8_scalar(b, np.uint64(1), 0.7, -0.3)
         if np.array_equal(a, b):
-            return vec
+            picked = vec
     except Exception:  # pragma: no cover - depends on the numba/llvmlite build
         pass
-    return scalar  # pragma: no cover
+    _PICKED[key] = picked
+    return picked
 
 
 def compiled_helpers(numba):
