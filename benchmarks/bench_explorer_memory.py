@@ -106,6 +106,7 @@ def _child(store: str, traced: bool) -> dict[str, float]:
            "rss_done": float(done - base), "errors": float(len(app.messages.errors))}
     if traced:
         current, peak = tracemalloc.get_traced_memory()
+        tracemalloc.stop()
         out.update(traced_done=float(current - base_traced), traced_peak=float(peak - base_traced))
     return out
 
