@@ -102,8 +102,17 @@ class Featuriser:
         F = np.asarray(self.transformer.transform(self.source(rows)), dtype=np.float64)
         if self.standardise:
             assert self.mean_ is not None and self.scale_ is not None
-            F = (F - self.mean_) / self.scale_
+            if isinstance(self.transformer, _OWN_TRANSFORMERS) and F.flags.writeable:
+                # our transformers return a fresh array (the source's rows are a copy):
+                # standardise in place, the same operations without two temporaries
+                F -= self.mean_
+                F /= self.scale_
+            else:
+                F = (F - self.mean_) / self.scale_
         return F
+
+
+_OWN_TRANSFORMERS = (InverseDistances, CoulombEigenvalues, AlignedCartesian, _ColumnFeatures)
 
 
 def build_featuriser(ens: Ensemble, features: FeaturesLike, standardise: bool,

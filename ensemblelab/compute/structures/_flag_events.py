@@ -12,7 +12,11 @@ from . import _kernels_geometry as _k
 if TYPE_CHECKING:
     from ...data.ensemble import Ensemble
 
-__all__ = ["FlagEvents", "first_per_traj", "fmt", "topology_flags"]
+__all__ = ["TOPOLOGY_CHUNK_ELEMENTS", "FlagEvents", "first_per_traj", "fmt", "topology_flags"]
+
+#: snapshot x atom-pair elements per chunk of the topology check (about 2 MB per float
+#: temporary; the check is row by row, so the chunk size does not change its result)
+TOPOLOGY_CHUNK_ELEMENTS = 1 << 18
 
 
 class FlagEvents:
@@ -76,8 +80,10 @@ def topology_flags(ens: Ensemble, th: Any, tix: np.ndarray, time: np.ndarray,
     first_pair = {"broken": np.zeros(n, np.int64), "formed": np.zeros(n, np.int64)}
     dist = {"broken": np.zeros(n), "formed": np.zeros(n)}
     over = {"broken": np.zeros(n), "formed": np.zeros(n)}
-    for s in range(0, n, chunk_size):
-        sl = slice(s, min(n, s + chunk_size))
+    # a handful of (rows, pairs) float temporaries live per chunk: bound their size
+    step = max(1, min(int(chunk_size), TOPOLOGY_CHUNK_ELEMENTS // max(1, len(i))))
+    for s in range(0, n, step):
+        sl = slice(s, min(n, s + step))
         r = _k.pair_distances(ens.geometries[sl], i, j)
         t_ix = tix[sl]
         b0 = bonded0[t_ix]

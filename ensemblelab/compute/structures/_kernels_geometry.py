@@ -15,6 +15,7 @@ from __future__ import annotations
 import numpy as np
 
 __all__ = [
+    "PAIR_BLOCK_ELEMENTS",
     "weighted_centre",
     "covariance",
     "kabsch_rotations",
@@ -203,6 +204,10 @@ def qcp_rmsd(
 
 
 # ---------------------------------------------------------------------- descriptors
+#: row x atom-pair elements per block of :func:`pair_distances` (about 2 MB per temporary)
+PAIR_BLOCK_ELEMENTS = 1 << 18
+
+
 def pair_indices(n_atoms: int) -> tuple[np.ndarray, np.ndarray]:
     """Upper-triangle atom pairs (i < j) in row-major order."""
     return np.triu_indices(n_atoms, k=1)
@@ -211,23 +216,32 @@ def pair_indices(n_atoms: int) -> tuple[np.ndarray, np.ndarray]:
 def pair_distances(X: np.ndarray, i: np.ndarray, j: np.ndarray) -> np.ndarray:
     """|X[:, i] - X[:, j]| for index arrays i, j, shape (n, n_pairs).
 
-    One coordinate at a time from a (3, n, n_atoms) copy: every gather and sum runs
+    One coordinate at a time from a (3, rows, n_atoms) copy: every gather and sum runs
     over contiguous rows (2-3x faster than gathering (n, n_pairs, 3) and reducing the
-    last axis of length 3); no (n, n_pairs, 3) temporary.
+    last axis of length 3); no (n, n_pairs, 3) temporary. Rows go in blocks of about
+    ``PAIR_BLOCK_ELEMENTS`` row x pair elements, so the temporaries stay a few MB
+    whatever n (each row is computed alone: the blocks do not change the result).
     """
-    Xt = np.ascontiguousarray(np.moveaxis(X, -1, 0))
-    d2 = np.zeros((X.shape[0], len(i)))
-    for c in range(3):
-        diff = Xt[c][:, i] - Xt[c][:, j]
-        diff *= diff
-        d2 += diff
+    n = X.shape[0]
+    d2 = np.zeros((n, len(i)))
+    step = max(1, PAIR_BLOCK_ELEMENTS // max(1, len(i)))
+    for s in range(0, n, step):
+        Xt = np.ascontiguousarray(np.moveaxis(X[s:s + step], -1, 0))
+        out = d2[s:s + step]
+        for c in range(3):
+            diff = Xt[c][:, i]  # a gathered copy: subtract in place (one temporary fewer)
+            diff -= Xt[c][:, j]
+            diff *= diff
+            out += diff
     return np.sqrt(d2, out=d2)
 
 
 def inverse_distances(X: np.ndarray, *, min_distance: float = 1e-8) -> np.ndarray:
     """1 / r_ij for all pairs i < j, shape (n, n_atoms (n_atoms - 1) / 2)."""
     i, j = pair_indices(X.shape[1])
-    return 1.0 / np.maximum(pair_distances(X, i, j), min_distance)
+    r = pair_distances(X, i, j)  # a fresh array: clip and invert it in place
+    np.maximum(r, min_distance, out=r)
+    return np.divide(1.0, r, out=r)
 
 
 def coulomb_eigenvalues(

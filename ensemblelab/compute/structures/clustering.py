@@ -253,13 +253,22 @@ class HopClusterResult:
 
 
 # ---------------------------------------------------------------------- public API
+#: scikit-learn working memory (MB) of the silhouette's chunked pair distances
+SILHOUETTE_WORKING_MB = 8
+
+
 def _silhouette(F: np.ndarray, labels: np.ndarray) -> tuple[float, dict[int, float]]:
     from sklearn.metrics import silhouette_samples
 
     ok = labels >= 0
     if len(np.unique(labels[ok])) < 2 or ok.sum() <= len(np.unique(labels[ok])):
         return np.nan, {}
-    s = silhouette_samples(F[ok], labels[ok])
+    from sklearn import config_context
+
+    # pair distances a few MB at a time instead of the whole (n, n) matrix at once
+    # (reduced row by row, so the chunking does not change the result)
+    with config_context(working_memory=SILHOUETTE_WORKING_MB):
+        s = silhouette_samples(F[ok], labels[ok])
     per = {int(c): float(s[labels[ok] == c].mean()) for c in np.unique(labels[ok])}
     return float(s.mean()), per
 
