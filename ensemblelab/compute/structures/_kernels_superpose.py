@@ -40,7 +40,7 @@ _CACHE: dict[str, tuple[Callable[..., None], Callable[..., None]] | None] = {}
 # first call. They call each other through these module globals, which the build
 # rebinds to the compiled helpers (a module-level call graph keeps numba's on-disk
 # cache valid, so later processes load the machine code instead of compiling).
-_load = _inner = _lambda_max = _kabsch_msd = None
+_load = _inner = _lambda_max = _kabsch_msd = _frame_rmsd = None
 
 
 def _load_py(p, sel, whole, w, wsum, x, y, z):
@@ -196,6 +196,21 @@ def _kabsch_msd_py(x, y, z, cx, cy, cz, qx, qy, qz, w, wsum, h, reflect):
     return acc / wsum
 
 
+def _frame_rmsd_py(x, y, z, cx, cy, cz, qx, qy, qz, gq, w, wsum, h, method, reflect):
+    """RMSD of one loaded frame (rows x, y, z, centre c) to the centred reference rows q
+    (``gq`` its weighted square sum): QCP (``method == 0``) or Kabsch; fills ``h``."""
+    gp = _inner(x, y, z, cx, cy, cz, qx, qy, qz, w, h)
+    if method == 0:
+        e0 = 0.5 * (gp + gq)
+        lam = _lambda_max(h, e0, False)
+        if reflect:
+            lam = max(lam, _lambda_max(h, e0, True))
+        msd = (gp + gq - 2.0 * lam) / wsum
+    else:
+        msd = _kabsch_msd(x, y, z, cx, cy, cz, qx, qy, qz, w, wsum, h, reflect)
+    return np.sqrt(max(msd, 0.0))
+
+
 def _rmsd_one_ref_py(P, sel, whole, w, qx, qy, qz, gq, method, reflect, out):
     """RMSD of every frame of P (n, a, 3) to one centred reference (rows qx, qy, qz)."""
     n = P.shape[0]
@@ -209,16 +224,8 @@ def _rmsd_one_ref_py(P, sel, whole, w, qx, qy, qz, gq, method, reflect, out):
         z = np.empty(m)
         h = np.empty(9)
         cx, cy, cz = _load(P[f], sel, whole, w, wsum, x, y, z)
-        gp = _inner(x, y, z, cx, cy, cz, qx, qy, qz, w, h)
-        if method == 0:
-            e0 = 0.5 * (gp + gq)
-            lam = _lambda_max(h, e0, False)
-            if reflect:
-                lam = max(lam, _lambda_max(h, e0, True))
-            msd = (gp + gq - 2.0 * lam) / wsum
-        else:
-            msd = _kabsch_msd(x, y, z, cx, cy, cz, qx, qy, qz, w, wsum, h, reflect)
-        out[f] = np.sqrt(max(msd, 0.0))
+        out[f] = _frame_rmsd(x, y, z, cx, cy, cz, qx, qy, qz, gq, w, wsum, h, method,
+                             reflect)
 
 
 def _rmsd_per_frame_py(P, Q, sel, whole, w, method, reflect, out):
@@ -244,16 +251,8 @@ def _rmsd_per_frame_py(P, Q, sel, whole, w, method, reflect, out):
             qz[k] -= dz
             gq += w[k] * (qx[k] * qx[k] + qy[k] * qy[k] + qz[k] * qz[k])
         cx, cy, cz = _load(P[f], sel, whole, w, wsum, x, y, z)
-        gp = _inner(x, y, z, cx, cy, cz, qx, qy, qz, w, h)
-        if method == 0:
-            e0 = 0.5 * (gp + gq)
-            lam = _lambda_max(h, e0, False)
-            if reflect:
-                lam = max(lam, _lambda_max(h, e0, True))
-            msd = (gp + gq - 2.0 * lam) / wsum
-        else:
-            msd = _kabsch_msd(x, y, z, cx, cy, cz, qx, qy, qz, w, wsum, h, reflect)
-        out[f] = np.sqrt(max(msd, 0.0))
+        out[f] = _frame_rmsd(x, y, z, cx, cy, cz, qx, qy, qz, gq, w, wsum, h, method,
+                             reflect)
 
 
 _prange = range  # rebound to numba.prange by the build
@@ -261,13 +260,14 @@ _prange = range  # rebound to numba.prange by the build
 
 def _build(numba):
     """Compile the kernels (helpers first, so the kernels see them as globals)."""
-    global _load, _inner, _lambda_max, _kabsch_msd, _prange
+    global _load, _inner, _lambda_max, _kabsch_msd, _frame_rmsd, _prange
     opts = {"boundscheck": False, "nogil": True, "cache": True}
     _prange = numba.prange
     _load = numba.njit(fastmath=True, **opts)(_load_py)
     _inner = numba.njit(fastmath=True, **opts)(_inner_py)
     _lambda_max = numba.njit(**opts)(_lambda_max_py)
     _kabsch_msd = numba.njit(**opts)(_kabsch_msd_py)
+    _frame_rmsd = numba.njit(**opts)(_frame_rmsd_py)
     one = numba.njit(parallel=True, **opts)(_rmsd_one_ref_py)
     per = numba.njit(parallel=True, **opts)(_rmsd_per_frame_py)
     return one, per
