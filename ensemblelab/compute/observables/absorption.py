@@ -275,7 +275,7 @@ def compute_transient_absorption(
         with the pump, the cross-correlation (its photon energy is not used: the map is
         resolved in probe photon energy).
     pump : GaussianPulse, optional
-        Cross-correlation and doorway weights (``weights="doorway"``).
+        Cross-correlation, and doorway weights when ``weights`` resolves to them.
     photon_energies : array_like, shape (n_energies,)
         Probe photon energies in eV, increasing.
     delays : array_like, shape (n_delays,)
