@@ -123,6 +123,41 @@ def test_float64_no_full_size_temporaries():
         assert peak < 0.1 * X.nbytes, (method, peak)
 
 
+@pytest.mark.parametrize("dtype", [np.float64, np.float32])
+def test_qcp_chunks_and_threads_do_not_change_results(monkeypatch, dtype):
+    # computed independently (not published): the numpy batched QCP twin; every split of
+    # the frames into chunks shared by 1-3 threads, odd frame counts (the last frame of a
+    # chunk paired with itself), atom subsets, mass-like weights and reflections
+    monkeypatch.setattr(S, "SERIAL_ATOMS", 0)  # thread even these small inputs
+    X, ref = walk(37, 64, 11)
+    X = X.astype(dtype)
+    rng = np.random.default_rng(11)
+    w = rng.uniform(1.0, 16.0, 64)
+    sub = np.sort(rng.choice(64, 40, replace=False))
+    for kw in ({}, {"weights": w, "atoms": sub}, {"allow_reflection": True}):
+        slow = rmsd(X, ref, backend="numpy", **kw)
+        ws = w[sub] if "atoms" in kw else (w if "weights" in kw else np.ones(64))
+        sel = sub if "atoms" in kw else np.arange(64)
+        for n_threads in (1, 2, 3):
+            for chunk in (1, 2, 3, 7, None):
+                got = S.compiled_rmsd(X, ref, ws, sel, n_threads=n_threads, chunk_frames=chunk,
+                                      allow_reflection=kw.get("allow_reflection", False))
+                np.testing.assert_allclose(got, slow, atol=1e-10, rtol=0,
+                                           err_msg=f"{kw.keys()} {n_threads} {chunk}")
+
+
+@pytest.mark.parametrize("offset", [0.0, 1e3, 3e4])
+def test_qcp_far_from_origin(offset):
+    # computed independently (not published): the Kabsch path (rotated residual) on the
+    # same coordinates; the one-pass QCP shifts each frame by its first atom, so a box
+    # coordinate of 3e4 Angstrom loses no more than float64 rounding of the input
+    X, ref = walk(30, 500, 12)
+    X = X + offset
+    ref = ref - offset
+    kabsch = rmsd(X, ref, method="kabsch", backend="numba")
+    np.testing.assert_allclose(rmsd(X, ref), kabsch, atol=1e-9, rtol=0)
+
+
 def test_fallback_without_numba(monkeypatch):
     # the numpy fallback gives the same numbers; asking for numba without it is an error
     X, ref = walk(20, 30, 10)
