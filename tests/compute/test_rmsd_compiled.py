@@ -123,27 +123,30 @@ def test_float64_no_full_size_temporaries():
         assert peak < 0.1 * X.nbytes, (method, peak)
 
 
+@pytest.mark.parametrize("method", ["qcp", "kabsch"])
 @pytest.mark.parametrize("dtype", [np.float64, np.float32])
-def test_qcp_chunks_and_threads_do_not_change_results(monkeypatch, dtype):
-    # computed independently (not published): the numpy batched QCP twin; every split of
-    # the frames into chunks shared by 1-3 threads, odd frame counts (the last frame of a
-    # chunk paired with itself), atom subsets, mass-like weights and reflections
+def test_chunks_and_threads_do_not_change_results(monkeypatch, method, dtype):
+    # computed independently (not published): the numpy batched twins; every split of the
+    # frames into chunks shared by 1-3 threads, odd frame counts (the last frame of a QCP
+    # chunk paired with itself), atom subsets, weights, reflections, per-frame references
     monkeypatch.setattr(S, "SERIAL_ATOMS", 0)  # thread even these small inputs
     X, ref = walk(37, 64, 11)
     X = X.astype(dtype)
     rng = np.random.default_rng(11)
     w = rng.uniform(1.0, 16.0, 64)
     sub = np.sort(rng.choice(64, 40, replace=False))
-    for kw in ({}, {"weights": w, "atoms": sub}, {"allow_reflection": True}):
-        slow = rmsd(X, ref, backend="numpy", **kw)
-        ws = w[sub] if "atoms" in kw else (w if "weights" in kw else np.ones(64))
-        sel = sub if "atoms" in kw else np.arange(64)
-        for n_threads in (1, 2, 3):
-            for chunk in (1, 2, 3, 7, None):
-                got = S.compiled_rmsd(X, ref, ws, sel, n_threads=n_threads, chunk_frames=chunk,
-                                      allow_reflection=kw.get("allow_reflection", False))
-                np.testing.assert_allclose(got, slow, atol=1e-10, rtol=0,
-                                           err_msg=f"{kw.keys()} {n_threads} {chunk}")
+    for Q in (ref, np.roll(X, 1, axis=0).astype(np.float64)):
+        for kw in ({}, {"weights": w, "atoms": sub}, {"allow_reflection": True}):
+            slow = rmsd(X, Q, method=method, backend="numpy", **kw)
+            ws = w[sub] if "atoms" in kw else np.ones(64)
+            sel = sub if "atoms" in kw else np.arange(64)
+            for n_threads in (1, 2, 3):
+                for chunk in (1, 2, 3, 7, None):
+                    got = S.compiled_rmsd(X, Q, ws, sel, method=method, n_threads=n_threads,
+                                          chunk_frames=chunk,
+                                          allow_reflection=kw.get("allow_reflection", False))
+                    np.testing.assert_allclose(got, slow, atol=1e-10, rtol=0,
+                                               err_msg=f"{list(kw)} {n_threads} {chunk}")
 
 
 @pytest.mark.parametrize("offset", [0.0, 1e3, 3e4])

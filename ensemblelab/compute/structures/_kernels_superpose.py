@@ -20,7 +20,7 @@ loop over atoms is vectorised (contiguous reference rows, stride-3 frame reads).
 are split into chunks that worker threads take in turn (a persistent pool, the kernels
 release the GIL), so a core busy with another program delays only its current chunk.
 
-Kabsch and per-frame references (frames in parallel, ``numba.prange``) read the selected
+Kabsch and per-frame references (frame chunks shared by the same threads) read the selected
 atoms into three contiguous float64 scratch rows (x, y, z) while the weighted centroid is
 summed, centre them in place and form ``H`` and ``G_P`` over the rows.
 
@@ -344,38 +344,36 @@ def _qcp_chunk_py(P, sel, whole, ux, uy, uz, w, wsum, gq, reflect, out, lo, hi):
         out[f2] = _qcp_msd(h[13:], wsum, gq, reflect)
 
 
-def _rmsd_one_ref_py(P, sel, whole, w, qx, qy, qz, gq, method, reflect, out):
-    """RMSD of every frame of P (n, a, 3) to one centred reference (rows qx, qy, qz)."""
-    n = P.shape[0]
+def _rmsd_one_ref_py(P, sel, whole, w, qx, qy, qz, gq, method, reflect, out, lo, hi):
+    """RMSD of frames lo..hi-1 of P (n, a, 3) to one centred reference (rows qx, qy, qz)."""
     m = sel.shape[0]
     wsum = 0.0
     for k in range(m):
         wsum += w[k]
-    for f in _prange(n):
-        x = np.empty(m)
-        y = np.empty(m)
-        z = np.empty(m)
-        h = np.empty(9)
+    x = np.empty(m)
+    y = np.empty(m)
+    z = np.empty(m)
+    h = np.empty(9)
+    for f in range(lo, hi):
         cx, cy, cz = _load(P[f], sel, whole, w, wsum, x, y, z)
         out[f] = _frame_rmsd(x, y, z, cx, cy, cz, qx, qy, qz, gq, w, wsum, h, method,
                              reflect)
 
 
-def _rmsd_per_frame_py(P, Q, sel, whole, w, method, reflect, out):
-    """RMSD of every frame of P (n, a, 3) to the same frame of Q (n, a, 3)."""
-    n = P.shape[0]
+def _rmsd_per_frame_py(P, Q, sel, whole, w, method, reflect, out, lo, hi):
+    """RMSD of frames lo..hi-1 of P (n, a, 3) to the same frames of Q (n, a, 3)."""
     m = sel.shape[0]
     wsum = 0.0
     for k in range(m):
         wsum += w[k]
-    for f in _prange(n):
-        x = np.empty(m)
-        y = np.empty(m)
-        z = np.empty(m)
-        qx = np.empty(m)
-        qy = np.empty(m)
-        qz = np.empty(m)
-        h = np.empty(9)
+    x = np.empty(m)
+    y = np.empty(m)
+    z = np.empty(m)
+    qx = np.empty(m)
+    qy = np.empty(m)
+    qz = np.empty(m)
+    h = np.empty(9)
+    for f in range(lo, hi):
         dx, dy, dz = _load(Q[f], sel, whole, w, wsum, qx, qy, qz)
         gq = 0.0
         for k in range(m):
@@ -388,14 +386,10 @@ def _rmsd_per_frame_py(P, Q, sel, whole, w, method, reflect, out):
                              reflect)
 
 
-_prange = range  # rebound to numba.prange by the build
-
-
 def _build(numba):
     """Compile the kernels (helpers first, so the kernels see them as globals)."""
-    global _load, _inner, _lambda_max, _kabsch_msd, _frame_rmsd, _prange, _sums2, _qcp_msd
+    global _load, _inner, _lambda_max, _kabsch_msd, _frame_rmsd, _sums2, _qcp_msd
     opts = {"boundscheck": False, "nogil": True, "cache": True}
-    _prange = numba.prange
     _load = numba.njit(fastmath=True, **opts)(_load_py)
     _inner = numba.njit(fastmath=True, **opts)(_inner_py)
     _lambda_max = numba.njit(**opts)(_lambda_max_py)
@@ -404,8 +398,8 @@ def _build(numba):
     _sums2 = numba.njit(fastmath=True, **opts)(_sums2_py)
     _qcp_msd = numba.njit(**opts)(_qcp_msd_py)
     chunk = numba.njit(**opts)(_qcp_chunk_py)
-    one = numba.njit(parallel=True, **opts)(_rmsd_one_ref_py)
-    per = numba.njit(parallel=True, **opts)(_rmsd_per_frame_py)
+    one = numba.njit(**opts)(_rmsd_one_ref_py)
+    per = numba.njit(**opts)(_rmsd_per_frame_py)
     return one, per, chunk, numba.get_num_threads
 
 
@@ -494,7 +488,7 @@ def compiled_rmsd(
     method : {"qcp", "kabsch"}
     allow_reflection : bool
     n_threads : int, optional
-        Threads for QCP to one reference (default ``numba.get_num_threads()``).
+        Threads sharing the frames (default ``numba.get_num_threads()``).
     chunk_frames : int, optional
         Frames per chunk the threads take in turn (default ~2.6e5 frame-atoms).
 
@@ -512,7 +506,10 @@ def compiled_rmsd(
     whole = sel.shape[0] == P.shape[1] and bool(np.all(sel == np.arange(P.shape[1])))
     w = np.ascontiguousarray(w, dtype=np.float64)
     code = 0 if method == "qcp" else 1
-    out = np.empty(P.shape[0])
+    n, m = P.shape[0], sel.shape[0]
+    out = np.empty(n)
+    threads = max(1, int(n_threads if n_threads is not None else get_threads()))
+    reflect = bool(allow_reflection)
     if Q.ndim == 2:
         q = np.asarray(Q, dtype=np.float64)[sel]
         wsum = float(w.sum())
@@ -521,16 +518,16 @@ def compiled_rmsd(
         if code == 0:
             u = w[:, None] * qc
             ux, uy, uz = (np.ascontiguousarray(u[:, i]) for i in range(3))
-            flat = P.reshape(P.shape[0], -1)  # a view: P is C-contiguous here
-            threads = max(1, int(n_threads if n_threads is not None else get_threads()))
-            _run_chunks(chunk, P.shape[0], sel.shape[0],
-                        (flat, sel, whole, ux, uy, uz, w, wsum, gq, bool(allow_reflection),
-                         out), threads, chunk_frames)
+            flat = P.reshape(n, -1)  # a view: P is C-contiguous here
+            _run_chunks(chunk, n, m, (flat, sel, whole, ux, uy, uz, w, wsum, gq, reflect, out),
+                        threads, chunk_frames)
             return out
         qx, qy, qz = (np.ascontiguousarray(qc[:, i]) for i in range(3))
-        one(P, sel, whole, w, qx, qy, qz, gq, code, bool(allow_reflection), out)
+        _run_chunks(one, n, m, (P, sel, whole, w, qx, qy, qz, gq, code, reflect, out),
+                    threads, chunk_frames)
     else:
         if Q.dtype != P.dtype or not Q.flags.c_contiguous:
             Q = np.ascontiguousarray(Q, dtype=P.dtype)
-        per(P, Q, sel, whole, w, code, bool(allow_reflection), out)
+        _run_chunks(per, n, m, (P, Q, sel, whole, w, code, reflect, out), threads,
+                    chunk_frames)
     return out
