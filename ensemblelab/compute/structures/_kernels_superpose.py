@@ -38,13 +38,14 @@ import itertools
 import threading
 from collections.abc import Callable
 from concurrent.futures import Future, ThreadPoolExecutor
+from typing import Any
 
 import numpy as np
 
 __all__ = ["compiled_available", "compiled_rmsd"]
 
 _LOCK = threading.Lock()
-_CACHE: dict[str, tuple[Callable[..., None], ...] | None] = {}
+_CACHE: dict[str, tuple[Callable[..., Any], ...] | None] = {}
 _POOL: list[tuple[int, ThreadPoolExecutor]] = []  # (size, pool): persistent, made lazily
 
 #: frame-atoms per chunk of the QCP pass (~0.1-0.3 ms of work; the unit the threads share)
@@ -403,7 +404,7 @@ def _build(numba):
     return one, per, chunk, numba.get_num_threads
 
 
-def _kernels() -> tuple[Callable[..., None], ...] | None:
+def _kernels() -> tuple[Callable[..., Any], ...] | None:
     if "rmsd" not in _CACHE:
         with _LOCK:
             if "rmsd" not in _CACHE:
