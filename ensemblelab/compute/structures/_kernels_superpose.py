@@ -37,7 +37,7 @@ from __future__ import annotations
 import itertools
 import threading
 from collections.abc import Callable
-from concurrent.futures import Future, ThreadPoolExecutor
+from concurrent.futures import ThreadPoolExecutor
 from typing import Any
 
 import numpy as np
@@ -446,22 +446,36 @@ def _run_chunks(kernel: Callable[..., None], n: int, n_atoms: int, args: tuple,
         kernel(*args, 0, n)
         return
     counter = itertools.count()
+    lock = threading.Lock()
+    finished = threading.Event()
+    done = [0]
+    errors: list[BaseException] = []
 
     def work() -> None:
-        while True:
-            c = next(counter)  # atomic under the GIL: each chunk goes to one thread
-            if c >= n_chunks:
-                return
-            kernel(*args, c * size, min(n, (c + 1) * size))
+        try:
+            while True:
+                c = next(counter)  # atomic under the GIL: each chunk goes to one thread
+                if c >= n_chunks:
+                    return
+                kernel(*args, c * size, min(n, (c + 1) * size))
+                with lock:
+                    done[0] += 1
+                    if done[0] == n_chunks:
+                        finished.set()
+        except BaseException as exc:  # pragma: no cover - the kernels do not raise
+            errors.append(exc)
+            finished.set()
 
     pool = _pool(n_threads - 1)
-    futures: list[Future[None]] = [pool.submit(work) for _ in range(min(n_threads, n_chunks) - 1)]
-    try:
-        work()
-    finally:
-        for fut in futures:
-            fut.result()
-
+    for _ in range(min(n_threads, n_chunks) - 1):
+        pool.submit(work)
+    work()
+    # wait for the chunks other threads have taken, not for threads that have not started
+    # (on a busy machine a worker may wake only after the caller has done every chunk;
+    # it then finds none left and touches nothing)
+    finished.wait()
+    if errors:
+        raise errors[0]
 
 def compiled_rmsd(
     P: np.ndarray,
