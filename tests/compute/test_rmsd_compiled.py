@@ -149,6 +149,40 @@ def test_chunks_and_threads_do_not_change_results(monkeypatch, method, dtype):
                                                err_msg=f"{list(kw)} {n_threads} {chunk}")
 
 
+def test_caller_does_not_wait_for_a_worker_that_has_not_started(monkeypatch):
+    # on a busy machine a pool thread may wake only after the caller has done every chunk;
+    # the call must return (with every frame computed) without waiting for it
+    import threading
+
+    gate = threading.Event()
+    started: list[threading.Thread] = []
+
+    class LatePool:
+        def submit(self, fn):
+            def late():
+                gate.wait()
+                fn()
+            t = threading.Thread(target=late, daemon=True)
+            t.start()
+            started.append(t)
+
+    monkeypatch.setattr(S, "SERIAL_ATOMS", 0)
+    monkeypatch.setattr(S, "_pool", lambda workers: LatePool())
+    X, ref = walk(40, 50, 13)
+    expect = rmsd(X, ref, backend="numpy")
+    box: list[np.ndarray] = []
+    caller = threading.Thread(target=lambda: box.append(
+        S.compiled_rmsd(X, ref, np.ones(50), np.arange(50), n_threads=2, chunk_frames=4)))
+    caller.start()
+    caller.join(timeout=60)
+    finished = not caller.is_alive()
+    gate.set()  # let the late worker run: it must find no chunk left
+    for t in started:
+        t.join(timeout=60)
+    assert finished and started
+    np.testing.assert_allclose(box[0], expect, atol=1e-10, rtol=0)
+
+
 @pytest.mark.parametrize("offset", [0.0, 1e3, 3e4])
 def test_qcp_far_from_origin(offset):
     # computed independently (not published): the Kabsch path (rotated residual) on the

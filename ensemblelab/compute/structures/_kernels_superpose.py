@@ -35,6 +35,7 @@ summed, centre them in place and form ``H`` and ``G_P`` over the rows.
 from __future__ import annotations
 
 import itertools
+import os
 import threading
 from collections.abc import Callable
 from concurrent.futures import ThreadPoolExecutor
@@ -47,6 +48,8 @@ __all__ = ["compiled_available", "compiled_rmsd"]
 _LOCK = threading.Lock()
 _CACHE: dict[str, tuple[Callable[..., Any], ...] | None] = {}
 _POOL: list[tuple[int, ThreadPoolExecutor]] = []  # (size, pool): persistent, made lazily
+if hasattr(os, "register_at_fork"):  # a forked child has none of the parent's threads
+    os.register_at_fork(after_in_child=_POOL.clear)
 
 #: frame-atoms per chunk of the QCP pass (~0.1-0.3 ms of work; the unit the threads share)
 CHUNK_ATOMS = 1 << 18
