@@ -189,6 +189,19 @@ def test_caller_does_not_wait_for_a_worker_that_has_not_started(monkeypatch):
     np.testing.assert_allclose(box[0], expect, atol=1e-10, rtol=0)
 
 
+def test_equal_weights_take_the_unweighted_pass():
+    # analytic: equal weights of any size give the unweighted RMSD; the compiled pass for
+    # equal weights (no weight row) against the numpy twin with the same weights
+    X, ref = walk(25, 80, 14)
+    plain = rmsd(X, ref, backend="numpy")
+    for value in (1.0, 2.5, 1e-3):
+        w = np.full(80, value)
+        np.testing.assert_allclose(rmsd(X, ref, weights=w), plain, atol=1e-10, rtol=0)
+        np.testing.assert_allclose(rmsd(X.astype(np.float32), ref, weights=w),
+                                   rmsd(X.astype(np.float32), ref, backend="numpy"),
+                                   atol=1e-10, rtol=0)
+
+
 @pytest.mark.parametrize("offset", [0.0, 1e3, 3e4])
 def test_qcp_far_from_origin(offset):
     # computed independently (not published): the Kabsch path (rotated residual) on the

@@ -235,7 +235,8 @@ def _sums2_py(p, r, ux, uy, uz, w, h):
     """One pass over two frames (flat, x0 y0 z0 x1 ...): h[0:13] for p, h[13:26] for r.
 
     Per frame: H (9, row-major, frame index first) with the weighted centred reference
-    rows u, then s (3) and g (1) of the frame shifted by its first atom.
+    rows u, then s (3) and g (1) of the frame shifted by its first atom. ``w`` None: unit
+    weights (numba compiles that variant without the weight row).
     """
     ox = np.float64(p[0])
     oy = np.float64(p[1])
@@ -250,7 +251,6 @@ def _sums2_py(p, r, ux, uy, uz, w, h):
         a = ux[k]
         b = uy[k]
         c = uz[k]
-        wk = w[k]
         x = np.float64(p[3 * k]) - ox
         y = np.float64(p[3 * k + 1]) - oy
         z = np.float64(p[3 * k + 2]) - oz
@@ -263,10 +263,16 @@ def _sums2_py(p, r, ux, uy, uz, w, h):
         h20 += z * a
         h21 += z * b
         h22 += z * c
-        sx += wk * x
-        sy += wk * y
-        sz += wk * z
-        g += wk * (x * x + y * y + z * z)
+        if w is None:  # unit weights: a compiled variant without the weight row
+            sx += x
+            sy += y
+            sz += z
+            g += x * x + y * y + z * z
+        else:
+            sx += w[k] * x
+            sy += w[k] * y
+            sz += w[k] * z
+            g += w[k] * (x * x + y * y + z * z)
         x = np.float64(r[3 * k]) - vx
         y = np.float64(r[3 * k + 1]) - vy
         z = np.float64(r[3 * k + 2]) - vz
@@ -279,10 +285,16 @@ def _sums2_py(p, r, ux, uy, uz, w, h):
         e20 += z * a
         e21 += z * b
         e22 += z * c
-        tx += wk * x
-        ty += wk * y
-        tz += wk * z
-        gr += wk * (x * x + y * y + z * z)
+        if w is None:
+            tx += x
+            ty += y
+            tz += z
+            gr += x * x + y * y + z * z
+        else:
+            tx += w[k] * x
+            ty += w[k] * y
+            tz += w[k] * z
+            gr += w[k] * (x * x + y * y + z * z)
     h[0] = h00
     h[1] = h01
     h[2] = h02
@@ -537,7 +549,11 @@ def compiled_rmsd(
             u = w[:, None] * qc
             ux, uy, uz = (np.ascontiguousarray(u[:, i]) for i in range(3))
             flat = P.reshape(n, -1)  # a view: P is C-contiguous here
-            _run_chunks(chunk, n, m, (flat, sel, whole, ux, uy, uz, w, wsum, gq, reflect, out),
+            wu = None if bool(np.all(w == w[0])) else w  # equal weights: the unweighted pass
+            if wu is None:
+                ux, uy, uz = ux / w[0], uy / w[0], uz / w[0]
+                wsum, gq = wsum / w[0], gq / w[0]
+            _run_chunks(chunk, n, m, (flat, sel, whole, ux, uy, uz, wu, wsum, gq, reflect, out),
                         threads, chunk_frames)
             return out
         qx, qy, qz = (np.ascontiguousarray(qc[:, i]) for i in range(3))
