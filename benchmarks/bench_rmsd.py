@@ -33,6 +33,7 @@ compiles on the first call (or loads its cache); that time is printed separately
 from __future__ import annotations
 
 import argparse
+import os
 import random
 import time
 from collections.abc import Callable
@@ -117,6 +118,11 @@ def run(n_atoms: int, n_frames: int, repeat: int, rounds: int) -> None:
     rmsd(X32[:2], ref)
     rmsd(X[:2], ref, method="kabsch")
     print(f"  first call (compile or load kernels): {time.perf_counter() - t0:.2f} s")
+    import numba
+
+    load = os.getloadavg()[0] if hasattr(os, "getloadavg") else float("nan")
+    print(f"  threads: ensemblelab {numba.get_num_threads()} (numba.get_num_threads), "
+          f"{os.cpu_count()} CPUs, 1-min load average {load:.1f} at the start")
 
     import mdtraj as md
     from MDAnalysis.analysis import align, rms
