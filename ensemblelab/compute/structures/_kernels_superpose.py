@@ -492,6 +492,7 @@ def _run_chunks(kernel: Callable[..., None], n: int, n_atoms: int, args: tuple,
     if errors:
         raise errors[0]
 
+
 def compiled_rmsd(
     P: np.ndarray,
     Q: np.ndarray,
