@@ -106,7 +106,13 @@ def test_float32_read_as_stored():
     _, peak = tracemalloc.get_traced_memory()
     tracemalloc.stop()
     np.testing.assert_allclose(got, exact, atol=1e-9, rtol=0)
-    np.testing.assert_allclose(got, rmsd(X, ref), atol=1e-5, rtol=0)
+    # analytic (triangle inequality; rotations keep norms, centring does not expand): the
+    # RMSD moves by at most the RMS displacement that float32 storage gives each frame
+    # (<= sqrt(3) * 2^-24 * 64 ~ 6.6e-6 A for coordinates below 128 A: half a float32 ulp,
+    # common practice)
+    moved = np.sqrt(np.mean(np.sum((X32.astype(np.float64) - X) ** 2, axis=2), axis=1))
+    assert np.all(np.abs(got - rmsd(X, ref)) <= moved + 1e-9)
+    assert moved.max() < 6.6e-6
     # common practice: no step allocates more than a small fraction of the input here
     assert peak < 0.1 * X32.nbytes, peak
 
@@ -121,6 +127,91 @@ def test_float64_no_full_size_temporaries():
         _, peak = tracemalloc.get_traced_memory()
         tracemalloc.stop()
         assert peak < 0.1 * X.nbytes, (method, peak)
+
+
+@pytest.mark.parametrize("method", ["qcp", "kabsch"])
+@pytest.mark.parametrize("dtype", [np.float64, np.float32])
+def test_chunks_and_threads_do_not_change_results(monkeypatch, method, dtype):
+    # computed independently (not published): the numpy batched twins; every split of the
+    # frames into chunks shared by 1-3 threads, odd frame counts (the last frame of a QCP
+    # chunk paired with itself), atom subsets, weights, reflections, per-frame references
+    monkeypatch.setattr(S, "SERIAL_ATOMS", 0)  # thread even these small inputs
+    X, ref = walk(37, 64, 11)
+    X = X.astype(dtype)
+    rng = np.random.default_rng(11)
+    w = rng.uniform(1.0, 16.0, 64)
+    sub = np.sort(rng.choice(64, 40, replace=False))
+    for Q in (ref, np.roll(X, 1, axis=0).astype(np.float64)):
+        for kw in ({}, {"weights": w, "atoms": sub}, {"allow_reflection": True}):
+            slow = rmsd(X, Q, method=method, backend="numpy", **kw)
+            ws = w[sub] if "atoms" in kw else np.ones(64)
+            sel = sub if "atoms" in kw else np.arange(64)
+            for n_threads in (1, 2, 3):
+                for chunk in (1, 2, 3, 7, None):
+                    got = S.compiled_rmsd(X, Q, ws, sel, method=method, n_threads=n_threads,
+                                          chunk_frames=chunk,
+                                          allow_reflection=kw.get("allow_reflection", False))
+                    np.testing.assert_allclose(got, slow, atol=1e-10, rtol=0,
+                                               err_msg=f"{list(kw)} {n_threads} {chunk}")
+
+
+def test_caller_does_not_wait_for_a_worker_that_has_not_started(monkeypatch):
+    # on a busy machine a pool thread may wake only after the caller has done every chunk;
+    # the call must return (with every frame computed) without waiting for it
+    import threading
+
+    gate = threading.Event()
+    started: list[threading.Thread] = []
+
+    class LatePool:
+        def submit(self, fn):
+            def late():
+                gate.wait()
+                fn()
+            t = threading.Thread(target=late, daemon=True)
+            t.start()
+            started.append(t)
+
+    monkeypatch.setattr(S, "SERIAL_ATOMS", 0)
+    monkeypatch.setattr(S, "_pool", lambda workers: LatePool())
+    X, ref = walk(40, 50, 13)
+    expect = rmsd(X, ref, backend="numpy")
+    box: list[np.ndarray] = []
+    caller = threading.Thread(target=lambda: box.append(
+        S.compiled_rmsd(X, ref, np.ones(50), np.arange(50), n_threads=2, chunk_frames=4)))
+    caller.start()
+    caller.join(timeout=60)
+    finished = not caller.is_alive()
+    gate.set()  # let the late worker run: it must find no chunk left
+    for t in started:
+        t.join(timeout=60)
+    assert finished and started
+    np.testing.assert_allclose(box[0], expect, atol=1e-10, rtol=0)
+
+
+def test_equal_weights_take_the_unweighted_pass():
+    # analytic: equal weights of any size give the unweighted RMSD; the compiled pass for
+    # equal weights (no weight row) against the numpy twin with the same weights
+    X, ref = walk(25, 80, 14)
+    plain = rmsd(X, ref, backend="numpy")
+    for value in (1.0, 2.5, 1e-3):
+        w = np.full(80, value)
+        np.testing.assert_allclose(rmsd(X, ref, weights=w), plain, atol=1e-10, rtol=0)
+        np.testing.assert_allclose(rmsd(X.astype(np.float32), ref, weights=w),
+                                   rmsd(X.astype(np.float32), ref, backend="numpy"),
+                                   atol=1e-10, rtol=0)
+
+
+@pytest.mark.parametrize("offset", [0.0, 1e3, 3e4])
+def test_qcp_far_from_origin(offset):
+    # computed independently (not published): the Kabsch path (rotated residual) on the
+    # same coordinates; the one-pass QCP shifts each frame by its first atom, so a box
+    # coordinate of 3e4 Angstrom loses no more than float64 rounding of the input
+    X, ref = walk(30, 500, 12)
+    X = X + offset
+    ref = ref - offset
+    kabsch = rmsd(X, ref, method="kabsch", backend="numba")
+    np.testing.assert_allclose(rmsd(X, ref), kabsch, atol=1e-9, rtol=0)
 
 
 def test_fallback_without_numba(monkeypatch):
