@@ -20,7 +20,13 @@ speed drifts by tens of percent over seconds and is shared):
   new probe width, a new resolution (goal <= 150 ms) and a new photon energy
   (goal <= 300 ms);
 * **peak memory** (tracemalloc) of one end-to-end call and of the peer, against the
-  bytes of the input arrays.
+  bytes of the input arrays;
+* **read floor**: the time to read the input arrays once (energies, cation energies,
+  Dyson norms, time, active state, trajectory id): numpy sums over each array (the
+  memory-bandwidth floor) and a compiled single pass over the snapshots, in the usable
+  threads, that only reads them row by row (the access pattern of the fused pass): how
+  far ``compute_trpes`` is from a pass that does no work at all, against the goal's
+  time budget (peer / 20).
 
 Usage: python benchmarks/bench_trpes_end_to_end.py [--quick] [--rounds 5]
 """
@@ -123,6 +129,51 @@ def fused_only(ens: Ensemble, model) -> None:
                   shifts=None)
 
 
+def floor_arrays(ens: Ensemble) -> list[np.ndarray]:
+    """The arrays one map reads (as the fused pass sees them)."""
+    snap = ens.snapshots
+    return [ens.energies, ens.cation_energies, ens.dyson, snap["time"].to_numpy(),
+            snap["active"].to_numpy(), snap["traj"].to_numpy()]
+
+
+def floor_numpy(arrays: list[np.ndarray]) -> float:
+    """Read every input array once (numpy sums: the memory-bandwidth floor)."""
+    return float(sum(float(a.sum()) for a in arrays))
+
+
+_FLOOR: dict = {}
+
+
+def floor_compiled(arrays: list[np.ndarray]) -> float:
+    """One compiled pass over the snapshots, split over the usable threads, that reads
+    each snapshot's row of every array and does nothing else (sums, reassociated)."""
+    if "pass" not in _FLOOR:
+        import numba
+
+        @numba.njit(nogil=True, fastmath=True, cache=True)
+        def read_rows(en, cat, dy, t, act, tr, lo, hi):  # pragma: no cover - compiled
+            s = 0.0
+            for i in range(lo, hi):
+                s += t[i] + act[i] + tr[i]
+                for k in range(en.shape[1]):
+                    s += en[i, k]
+                for k in range(cat.shape[1]):
+                    s += cat[i, k] + dy[i, k]
+            return s
+
+        _FLOOR["pass"] = read_rows
+    from concurrent.futures import ThreadPoolExecutor
+
+    en, cat, dy, t, act, tr = arrays
+    dy = dy if dy.ndim == 2 else dy.reshape(dy.shape[0], -1)
+    n = t.shape[0]
+    n_thr = KD.usable_cores()
+    b = [i * n // n_thr for i in range(n_thr + 1)]
+    with ThreadPoolExecutor(n_thr) as pool:
+        return float(sum(pool.map(lambda i: _FLOOR["pass"](en, cat, dy, t, act, tr, b[i],
+                                                            b[i + 1]), range(n_thr))))
+
+
 def best_interleaved(fns: dict, rounds: int) -> dict[str, float]:
     best = {k: float("inf") for k in fns}
     for _ in range(rounds):
@@ -181,6 +232,12 @@ def main(argv: list[str] | None = None) -> int:
               f"{t['deposit'] * 1e3:.0f} ms")
     else:
         print(f"  in-kernel: deposit alone on prepared sticks {t['deposit'] * 1e3:.0f} ms")
+    budget = t["peer"] / 20.0
+    fl = (f"compiled row pass ({KD.usable_cores()} threads) {t['floor_compiled'] * 1e3:.1f} ms, "
+          if compiled else "")
+    print(f"  read floor (input arrays read once, no work): numpy sums "
+          f"{t['floor_numpy'] * 1e3:.1f} ms, {fl}goal budget peer/20 = {budget * 1e3:.1f} ms; "
+          f"compute_trpes = {t['ours'] / t['floor_numpy']:.1f}x the numpy floor")
     r, n_pass = time_cache(ens, rounds)
     print(f"  cached redraw ({n_pass} pass over the ensemble): probe width "
           f"{r['width'] * 1e3:.0f} ms, resolution {r['resolution'] * 1e3:.0f} ms (goal <= 150 "
@@ -204,8 +261,12 @@ def time_paths(ens: Ensemble, model, rounds: int, compiled: bool) -> dict[str, f
                                                  e_lo=c["e_lo"], h=c["h"],
                                                  n_fine=c["n_fine"], order=model.order,
                                                  tfrac=model.tfrac)}
+    arrays = floor_arrays(ens)
+    fns["floor_numpy"] = lambda: floor_numpy(arrays)
     if compiled:
         fns["fused"] = lambda: fused_only(ens, model)
+        floor_compiled(arrays)  # compile
+        fns["floor_compiled"] = lambda: floor_compiled(arrays)
     return best_interleaved(fns, rounds)
 
 
