@@ -34,6 +34,7 @@ __all__ = [
     "BroadeningBlocks",
     "time_matrix",
     "assemble",
+    "sparse_rows",
 ]
 
 
@@ -339,6 +340,61 @@ def _single_thread_blas() -> Any:
 SPARSE_TIME_NNZ = 4
 
 
+def _combine_rows(indptr, cols, vals, m, out, r_lo, r_hi):  # pragma: no cover - numba
+    """``out[r] = sum_q vals[q] m[cols[q]]`` over ``q in indptr[r]:indptr[r + 1]``, for
+    rows ``r_lo:r_hi`` (in the order of the nonzeros, as :func:`_sparse_rows` adds)."""
+    n = m.shape[1]
+    for r in range(r_lo, r_hi):
+        for e in range(n):
+            out[r, e] = 0.0
+        for q in range(indptr[r], indptr[r + 1]):
+            c = vals[q]
+            src = cols[q]
+            for e in range(n):
+                out[r, e] += c * m[src, e]
+
+
+_COMBINE: dict[str, Any] = {}
+
+
+def _combine_kernel() -> Any:
+    """The compiled :func:`_combine_rows`, or None without numba."""
+    if "k" not in _COMBINE:
+        try:
+            import numba
+        except ImportError:
+            _COMBINE["k"] = None
+        else:
+            _COMBINE["k"] = numba.njit(cache=True, nogil=True, boundscheck=False)(_combine_rows)
+    return _COMBINE["k"]
+
+
+def sparse_rows(cmat: np.ndarray, m: np.ndarray, n_threads: int | None = None) -> np.ndarray:
+    """``cmat @ m`` over the nonzeros of each row of `cmat` only: compiled, output rows
+    split over the usable cores, when numba is installed; else :func:`_sparse_rows`
+    (the numpy twin, tests compare both)."""
+    kernel = _combine_kernel()
+    m = np.ascontiguousarray(m)
+    if kernel is None:
+        return _sparse_rows(cmat, m)
+    rows, cols = np.nonzero(cmat)
+    vals = np.ascontiguousarray(cmat[rows, cols])
+    n_out = cmat.shape[0]
+    indptr = np.searchsorted(rows, np.arange(n_out + 1)).astype(np.int64)
+    cols = cols.astype(np.int64)
+    out = np.empty((n_out, m.shape[1]))
+    if n_threads is None:
+        n_threads = max(1, min(usable_cores(), (n_out * m.shape[1]) // MIN_CELLS_PER_THREAD))
+    cuts = [t * n_out // n_threads for t in range(n_threads + 1)]
+    if n_threads == 1:
+        kernel(indptr, cols, vals, m, out, 0, n_out)
+    else:
+        with ThreadPoolExecutor(n_threads) as pool:
+            list(pool.map(lambda t: kernel(indptr, cols, vals, m, out, cuts[t], cuts[t + 1]),
+                          range(n_threads)))
+    return out
+
+
 def _sparse_rows(cmat: np.ndarray, m: np.ndarray) -> np.ndarray:
     """``cmat @ m`` summing over the nonzeros of each row of `cmat` only."""
     rows, cols = np.nonzero(cmat)
@@ -368,7 +424,7 @@ def _assemble(hist: np.ndarray, blocks: BroadeningBlocks, cmat: np.ndarray | Non
     if cmat is not None and np.count_nonzero(cmat) <= SPARSE_TIME_NNZ * n_out:
         # a sparse time matrix (linear interpolation, no convolution): apply it first,
         # on its nonzeros only, so the energy products run on n_delays rows, not n_time
-        h2 = [_sparse_rows(cmat, m) for m in h2]
+        h2 = [sparse_rows(cmat, m) for m in h2]
         cmat = None
         n_time = n_out
     if n_threads is None:
