@@ -34,6 +34,8 @@ Usage: python benchmarks/bench_trpes_end_to_end.py [--quick] [--rounds 5]
 from __future__ import annotations
 
 import argparse
+import math
+import os
 import sys
 import time
 import tracemalloc
@@ -232,6 +234,16 @@ def main(argv: list[str] | None = None) -> int:
               f"{t['deposit'] * 1e3:.0f} ms")
     else:
         print(f"  in-kernel: deposit alone on prepared sticks {t['deposit'] * 1e3:.0f} ms")
+    rest = t["ours"] - t.get("fused", 0.0) - t["s_layout"] - t["s_range"] - t["s_broaden"] \
+        - t["s_ground"]
+    print(f"  steps of compute_trpes, each alone: layout pass (trajectory starts, time grid) "
+          f"{t['s_layout'] * 1e3:.1f} ms, stick energy range {t['s_range'] * 1e3:.1f} ms, "
+          f"fused pass {t.get('fused', math.nan) * 1e3:.1f} ms, broadening {t['s_broaden'] * 1e3:.1f}"
+          f" ms, ground-state check {t['s_ground'] * 1e3:.1f} ms; the rest (Python, weights, "
+          f"absorbing-state extension, fill check) {rest * 1e3:.1f} ms")
+    print(f"  compute_trpes pinned to one core {t['ours_1core'] * 1e3:.0f} ms, on "
+          f"{KD.usable_cores()} cores {t['ours'] * 1e3:.0f} ms "
+          f"({t['ours_1core'] / t['ours']:.2f}x)")
     budget = t["peer"] / 20.0
     fl = (f"compiled row pass ({KD.usable_cores()} threads) {t['floor_compiled'] * 1e3:.1f} ms, "
           if compiled else "")
@@ -256,6 +268,7 @@ def time_paths(ens: Ensemble, model, rounds: int, compiled: bool) -> dict[str, f
     tb, e, w = model.tbin, model.sticks.energy, model.sticks.weight
     c = model._cache
     fns = {"peer": lambda: peer_map(ens), "ours": lambda: ours(ens),
+           "ours_1core": one_core(lambda: ours(ens)),
            "numpy_path": lambda: ours_numpy_path(ens),
            "deposit": lambda: KD.deposit_moments(tb, e, w, n_time=model.n_time,
                                                  e_lo=c["e_lo"], h=c["h"],
@@ -267,7 +280,40 @@ def time_paths(ens: Ensemble, model, rounds: int, compiled: bool) -> dict[str, f
         fns["fused"] = lambda: fused_only(ens, model)
         floor_compiled(arrays)  # compile
         fns["floor_compiled"] = lambda: floor_compiled(arrays)
+    fns.update(stage_fns(ens))
     return best_interleaved(fns, rounds)
+
+
+def stage_fns(ens: Ensemble) -> dict:
+    """The steps of compute_trpes besides the fused pass, each alone: the layout pass
+    (trajectory starts + time grid statistics), the stick energy range, the broadening
+    of the moments into the map and the ground-state check."""
+    from ensemblelab.compute.engine import as_source
+    from ensemblelab.compute.spectroscopy.fused import block_layout, stick_energy_range
+    from ensemblelab.compute.spectroscopy.maps import trpes_model
+    from ensemblelab.compute.spectroscopy.weights import ground_state_ionisation_fraction
+
+    source = as_source(ens)
+    tail = THRESHOLD_TAIL * PROBE.effective_spectral_fwhm * FWHM_TO_SIGMA
+    m = trpes_model(ens, probe=PROBE, weights="uniform", progress=False, keep_sticks=False)
+    kw = {"kinetic_energies": ENERGIES, "delays": DELAYS, "convolve": False}
+    return {"s_layout": lambda: block_layout(ens),
+            "s_range": lambda: stick_energy_range(source, PROBE.total_energy, tail=tail,
+                                                  shifts=None, client=None, scheduler=None),
+            "s_broaden": lambda: m.broaden(**kw),
+            "s_ground": lambda: ground_state_ionisation_fraction(ens, probe=PROBE)}
+
+
+def one_core(fn):
+    """``fn`` run with this process pinned to one CPU (every stage single-threaded)."""
+    def run():
+        cpus = os.sched_getaffinity(0)
+        os.sched_setaffinity(0, {min(cpus)})
+        try:
+            return fn()
+        finally:
+            os.sched_setaffinity(0, cpus)
+    return run
 
 
 def time_cache(ens: Ensemble, rounds: int) -> tuple[dict[str, float], int]:
