@@ -181,3 +181,23 @@ def test_compiled_sparse_rows_equal_the_numpy_twin():
     expect = KB._sparse_rows(cmat, m)
     for n_threads in (1, 2, 3):
         np.testing.assert_array_equal(KB.sparse_rows(cmat, m, n_threads=n_threads), expect)
+
+
+def test_interpolation_rows_equal_the_dense_time_matrix():
+    rng = np.random.default_rng(7)
+    times = np.arange(0.0, 100.0, 0.5)
+    # off-grid, on-grid, before the grid, beyond t_known and at the last point
+    delays = np.r_[rng.uniform(-5.0, 110.0, 60), times[::17], -1e-12, 80.0, 99.5]
+    scale = rng.uniform(0.5, 2.0, times.size)
+    scale[::9] = 0.0  # grid times without alive weight
+    for t_known in (80.0, 99.5):
+        # reference: the dense matrix of time_matrix times the scale (computed
+        # independently), and its nonzeros in np.nonzero's order
+        dense = KB.time_matrix(delays, times, sigma=None, t_known=t_known) * scale[None, :]
+        got = KB.interpolation_rows(delays, times, t_known=t_known, col_scale=scale)
+        np.testing.assert_array_equal(got.dense(), dense)
+        rows, cols = np.nonzero(dense)
+        np.testing.assert_array_equal(got.cols, cols)
+        np.testing.assert_array_equal(got.vals, dense[rows, cols])
+        m = rng.standard_normal((times.size, 40))
+        np.testing.assert_array_equal(KB.sparse_rows(got, m), KB._sparse_rows(dense, m))
