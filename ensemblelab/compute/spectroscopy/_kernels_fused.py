@@ -17,9 +17,13 @@ thread over the snapshots: for each snapshot and cation channel it forms
 * and, with missing data, the per-channel rescaling and gap copies of
   :class:`.gaps.TimeFill`,
 
-and adds the stick's ``order`` Taylor moments straight into the per-thread
-accumulator (same layout and definition as :mod:`._kernels_deposit`). Nothing of length
-``n_sticks`` is allocated. The numpy path stays the reference ("naive twin"): tests
+and adds the stick's ``order`` Taylor moments straight into the accumulator (same
+layout and definition as :mod:`._kernels_deposit`). Nothing of length ``n_sticks`` is
+allocated. Threads: when the snapshots are grouped by trajectory and sorted by time
+(:func:`._kernels_layout.block_layout`) and no missing-data fill applies, each thread
+takes a range of grid times (each trajectory's snapshots in it found by bisection) and
+fills those rows of one shared accumulator; otherwise each takes whole trajectories
+with an accumulator of its own, added at the end. The numpy path stays the reference ("naive twin"): tests
 compare both on ensembles with missing data, absorbing trajectories, shifts, several
 cross-section models, in memory and chunked.
 
