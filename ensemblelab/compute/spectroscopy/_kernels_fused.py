@@ -23,9 +23,10 @@ allocated. Threads: when the snapshots are grouped by trajectory and sorted by t
 (:func:`._kernels_layout.block_layout`) and no missing-data fill applies, each thread
 takes a range of grid times (each trajectory's snapshots in it found by bisection) and
 fills those rows of one shared accumulator; otherwise each takes whole trajectories
-with an accumulator of its own, added at the end. The numpy path stays the reference ("naive twin"): tests
-compare both on ensembles with missing data, absorbing trajectories, shifts, several
-cross-section models, in memory and chunked.
+with an accumulator of its own, added at the end. The numpy path stays the reference
+("naive twin"): tests compare both on ensembles with missing data, absorbing
+trajectories, shifts, several cross-section models, in memory and chunked, on one
+thread and several.
 
 Preconditions (:func:`fusable`): numba installed, no decomposition, ``absorbing`` not
 ``"carry"``, a built-in cross-section model, and no sticks to keep. Otherwise the
@@ -414,7 +415,8 @@ def fused_pass(block: Any, *, w_traj: np.ndarray, cross_section: Any, total_ener
     n_threads = max(1, min(int(n_threads), max(n, 1)))
     line = n_fine * order
     by_time = deposit and fill is None and layout is not None and layout.sorted
-    no_tix = np.zeros(0, dtype=np.int64)
+    no_tix: np.ndarray = np.zeros(0, dtype=np.int64)
+    jobs: list[tuple[np.ndarray, np.ndarray, int, int, int, int]]
     if by_time:
         assert layout is not None and layout.starts is not None
         cuts = _time_cuts(time, layout.starts, start, dt, n_time, n_threads)
