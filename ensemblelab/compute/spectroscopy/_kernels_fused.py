@@ -128,6 +128,9 @@ def _sigma(kind, p1, p2, d, e, ip, omega):  # pragma: no cover - compiled by num
 #: sticks collected (their accumulator lines prefetched) before they are added
 BATCH = 64
 
+#: time ranges per thread of the time-split pass (taken in turn by the threads)
+JOBS_PER_THREAD = 2
+
 
 def _prefetch(arr, index):  # pragma: no cover - replaced by a numba intrinsic
     """Hint the CPU to fetch ``arr[index]`` (no effect on results)."""
@@ -419,10 +422,12 @@ def fused_pass(block: Any, *, w_traj: np.ndarray, cross_section: Any, total_ener
     jobs: list[tuple[np.ndarray, np.ndarray, int, int, int, int]]
     if by_time:
         assert layout is not None and layout.starts is not None
-        cuts = _time_cuts(time, layout.starts, start, dt, n_time, n_threads)
-        n_threads = len(cuts) - 1
+        # more time ranges than threads, taken in turn: a thread held up by other work
+        # on a shared machine leaves its share to the others
+        cuts = _time_cuts(time, layout.starts, start, dt, n_time,
+                          n_threads * (JOBS_PER_THREAD if n_threads > 1 else 1))
         jobs = [(layout.starts, no_tix, 0, block.n_trajectories, cuts[t], cuts[t + 1])
-                for t in range(n_threads)]
+                for t in range(len(cuts) - 1)]
     elif layout is not None and layout.starts is not None:
         r_cut = np.searchsorted(layout.starts, [t * n // n_threads
                                                 for t in range(n_threads + 1)])
@@ -445,8 +450,8 @@ def fused_pass(block: Any, *, w_traj: np.ndarray, cross_section: Any, total_ener
     kind, p1, p2 = code
     if not deposit:
         accs = [np.zeros(1) for _ in range(n_threads)]
-    elif by_time:  # one accumulator; a spill row per thread after the grid's rows
-        accs = pooled_accumulators((n_time + n_threads) * line, 1) * n_threads
+    elif by_time:  # one accumulator; a spill row per time range after the grid's rows
+        accs = pooled_accumulators((n_time + len(jobs)) * line, 1) * len(jobs)
     else:
         accs = pooled_accumulators(n_time * line, n_threads)
 
@@ -468,8 +473,8 @@ def fused_pass(block: Any, *, w_traj: np.ndarray, cross_section: Any, total_ener
         return acc, al, al_n, al_ch, counts
 
     try:
-        if n_threads == 1:
-            parts = [run(0)]
+        if n_threads == 1 or len(jobs) == 1:
+            parts = [run(t) for t in range(len(jobs))]
         else:
             size = accs[0].size
             cuts_s = [t * size // n_threads for t in range(n_threads + 1)]
@@ -480,15 +485,15 @@ def fused_pass(block: Any, *, w_traj: np.ndarray, cross_section: Any, total_ener
                     accs[0][sl] += other[sl]
 
             with ThreadPoolExecutor(n_threads) as pool:
-                parts = list(pool.map(run, range(n_threads)))
+                parts = list(pool.map(run, range(len(jobs))))
                 if deposit and not by_time:
                     list(pool.map(run_sum, range(n_threads)))
         acc, al, al_n, al_ch, counts = parts[0]
     finally:
         if deposit and not by_time:
             release_accumulators(accs[1:])
-    if by_time:  # the spill rows: second shares of a split past a thread's last row
-        for t in range(n_threads - 1):
+    if by_time:  # the spill rows: second shares of a split past a range's last row
+        for t in range(len(jobs) - 1):
             j = jobs[t][5]
             acc[j * line:(j + 1) * line] += acc[(n_time + t) * line:(n_time + t + 1) * line]
     for p in parts[1:]:
