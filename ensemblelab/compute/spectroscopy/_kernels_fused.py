@@ -128,8 +128,12 @@ def _sigma(kind, p1, p2, d, e, ip, omega):  # pragma: no cover - compiled by num
 #: sticks collected (their accumulator lines prefetched) before they are added
 BATCH = 64
 
-#: time ranges per thread of the time-split pass (taken in turn by the threads)
+#: time ranges per thread of the time-split pass (taken in turn by the threads), at
+#: least; and accumulator bytes per time range, at most (1 thread, 38 MB accumulator
+#: of the end-to-end benchmark: 116 ms CPU in one range, 92-94 ms in 2-4, 104 ms in 16;
+#: 2 threads: 2 ranges each best)
 JOBS_PER_THREAD = 2
+JOB_BYTES = 16 << 20
 
 
 def _prefetch(arr, index):  # pragma: no cover - replaced by a numba intrinsic
@@ -422,10 +426,13 @@ def fused_pass(block: Any, *, w_traj: np.ndarray, cross_section: Any, total_ener
     jobs: list[tuple[np.ndarray, np.ndarray, int, int, int, int]]
     if by_time:
         assert layout is not None and layout.starts is not None
-        # more time ranges than threads, taken in turn: a thread held up by other work
-        # on a shared machine leaves its share to the others
+        # time ranges taken in turn by the threads: their rows of the accumulator stay
+        # in the shared cache while filled, and a thread held up by other work on a
+        # shared machine leaves its share to the others
+        n_jobs = max(JOBS_PER_THREAD * n_threads if n_threads > 1 else 1,
+                     -(-8 * n_time * line // JOB_BYTES))
         cuts = _time_cuts(time, layout.starts, start, dt, n_time,
-                          n_threads * (JOBS_PER_THREAD if n_threads > 1 else 1))
+                          -(-n_jobs // n_threads) * n_threads)
         jobs = [(layout.starts, no_tix, 0, block.n_trajectories, cuts[t], cuts[t + 1])
                 for t in range(len(cuts) - 1)]
     elif layout is not None and layout.starts is not None:
