@@ -201,3 +201,16 @@ def test_interpolation_rows_equal_the_dense_time_matrix():
         np.testing.assert_array_equal(got.vals, dense[rows, cols])
         m = rng.standard_normal((times.size, 40))
         np.testing.assert_array_equal(KB.sparse_rows(got, m), KB._sparse_rows(dense, m))
+
+
+def test_energy_range_on_several_threads_equals_numpy(monkeypatch):
+    from ensemblelab.compute.spectroscopy import _kernels_layout as KL
+    from ensemblelab.compute.spectroscopy.sticks import energy_range
+
+    ens = _ensemble(8, missing=True)
+    monkeypatch.setattr(KL, "MIN_SNAPSHOTS_PER_THREAD", 1)
+    monkeypatch.setattr(KD, "usable_cores", lambda: 3)
+    shifts = np.array([0.1, -0.2, 0.3])
+    # reference: the numpy energy_range (computed independently)
+    assert KL.fused_energy_range(ens, 5.0, 0.2, shifts) == energy_range(ens, None, 5.0, 0.2,
+                                                                        shifts)

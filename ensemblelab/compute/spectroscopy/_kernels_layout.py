@@ -222,19 +222,20 @@ def fused_energy_range(block: Any, total_energy: float, tail: float,
     a = block_arrays(block, shifts)
     n = a["cat"].shape[0]
     n_threads = max(1, min(usable_cores(), n // MIN_SNAPSHOTS_PER_THREAD))
-    bounds = [t * n // n_threads for t in range(n_threads + 1)]
-    out = np.empty((n_threads, 2))
+    n_jobs = 2 * n_threads if n_threads > 1 else 1  # taken in turn (shared machines)
+    bounds = [t * n // n_jobs for t in range(n_jobs + 1)]
+    out = np.empty((n_jobs, 2))
 
     def run(t: int) -> None:
         k["range"](a["active"], a["energies"], a["cat"], a["dyson"], a["by_state"],
                    a["shifts"], float(total_energy), float(tail), bounds[t], bounds[t + 1],
                    out[t])
 
-    if n_threads == 1:
+    if n_jobs == 1:
         run(0)
     else:
         with ThreadPoolExecutor(n_threads) as pool:
-            list(pool.map(run, range(n_threads)))
+            list(pool.map(run, range(n_jobs)))
     return {"e_min": float(out[:, 0].min()), "e_max": float(out[:, 1].max())}
 
 
