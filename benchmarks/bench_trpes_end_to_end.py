@@ -240,8 +240,8 @@ def main(argv: list[str] | None = None) -> int:
           f"{t['s_layout'] * 1e3:.1f} ms, stick energy range {t['s_range'] * 1e3:.1f} ms, "
           f"fused pass {t.get('fused', math.nan) * 1e3:.1f} ms, broadening "
           f"{t['s_broaden'] * 1e3:.1f} ms, ground-state check {t['s_ground'] * 1e3:.1f} ms; "
-          f"the rest (Python, weights, absorbing-state extension, fill check) "
-          f"{rest * 1e3:.1f} ms")
+          f"the rest (Python, weights, absorbing-state extension, fill check; a difference "
+          f"of separately timed bests, noisy on a busy machine) {rest * 1e3:.1f} ms")
     print(f"  compute_trpes pinned to one core {t['ours_1core'] * 1e3:.0f} ms, on "
           f"{KD.usable_cores()} cores {t['ours'] * 1e3:.0f} ms "
           f"({t['ours_1core'] / t['ours']:.2f}x)")
