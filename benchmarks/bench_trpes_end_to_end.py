@@ -16,6 +16,9 @@ speed drifts by tens of percent over seconds and is shared):
   ``return_model=True`` keeps the sticks) for reference;
 * **in-kernel**: the fused compiled pass alone (stick preparation + moment deposit +
   alive weights) and the deposit kernel alone on prepared sticks;
+* **steps**: each other step of ``compute_trpes`` timed alone (layout pass giving the
+  trajectory starts and the time grid, stick energy range, broadening, ground-state
+  check) and ``compute_trpes`` with the process pinned to one core against all cores;
 * **cached redraws** (:class:`~ensemblelab.compute.spectroscopy.cache.StickCache`): a
   new probe width, a new resolution (goal <= 150 ms) and a new photon energy
   (goal <= 300 ms);
