@@ -16,11 +16,20 @@ speed drifts by tens of percent over seconds and is shared):
   ``return_model=True`` keeps the sticks) for reference;
 * **in-kernel**: the fused compiled pass alone (stick preparation + moment deposit +
   alive weights) and the deposit kernel alone on prepared sticks;
+* **steps**: each other step of ``compute_trpes`` timed alone (layout pass giving the
+  trajectory starts and the time grid, stick energy range, broadening, ground-state
+  check) and ``compute_trpes`` with the process pinned to one core against all cores;
 * **cached redraws** (:class:`~ensemblelab.compute.spectroscopy.cache.StickCache`): a
   new probe width, a new resolution (goal <= 150 ms) and a new photon energy
   (goal <= 300 ms);
 * **peak memory** (tracemalloc) of one end-to-end call and of the peer, against the
-  bytes of the input arrays.
+  bytes of the input arrays;
+* **read floor**: the time to read the input arrays once (energies, cation energies,
+  Dyson norms, time, active state, trajectory id): numpy sums over each array (the
+  memory-bandwidth floor) and a compiled single pass over the snapshots, in the usable
+  threads, that only reads them row by row (the access pattern of the fused pass): how
+  far ``compute_trpes`` is from a pass that does no work at all, against the goal's
+  time budget (peer / 20).
 
 Usage: python benchmarks/bench_trpes_end_to_end.py [--quick] [--rounds 5]
 """
@@ -28,6 +37,8 @@ Usage: python benchmarks/bench_trpes_end_to_end.py [--quick] [--rounds 5]
 from __future__ import annotations
 
 import argparse
+import math
+import os
 import sys
 import time
 import tracemalloc
@@ -123,6 +134,51 @@ def fused_only(ens: Ensemble, model) -> None:
                   shifts=None)
 
 
+def floor_arrays(ens: Ensemble) -> list[np.ndarray]:
+    """The arrays one map reads (as the fused pass sees them)."""
+    snap = ens.snapshots
+    return [ens.energies, ens.cation_energies, ens.dyson, snap["time"].to_numpy(),
+            snap["active"].to_numpy(), snap["traj"].to_numpy()]
+
+
+def floor_numpy(arrays: list[np.ndarray]) -> float:
+    """Read every input array once (numpy sums: the memory-bandwidth floor)."""
+    return float(sum(float(a.sum()) for a in arrays))
+
+
+_FLOOR: dict = {}
+
+
+def floor_compiled(arrays: list[np.ndarray]) -> float:
+    """One compiled pass over the snapshots, split over the usable threads, that reads
+    each snapshot's row of every array and does nothing else (sums, reassociated)."""
+    if "pass" not in _FLOOR:
+        import numba
+
+        @numba.njit(nogil=True, fastmath=True, cache=True)
+        def read_rows(en, cat, dy, t, act, tr, lo, hi):  # pragma: no cover - compiled
+            s = 0.0
+            for i in range(lo, hi):
+                s += t[i] + act[i] + tr[i]
+                for k in range(en.shape[1]):
+                    s += en[i, k]
+                for k in range(cat.shape[1]):
+                    s += cat[i, k] + dy[i, k]
+            return s
+
+        _FLOOR["pass"] = read_rows
+    from concurrent.futures import ThreadPoolExecutor
+
+    en, cat, dy, t, act, tr = arrays
+    dy = dy if dy.ndim == 2 else dy.reshape(dy.shape[0], -1)
+    n = t.shape[0]
+    n_thr = KD.usable_cores()
+    b = [i * n // n_thr for i in range(n_thr + 1)]
+    with ThreadPoolExecutor(n_thr) as pool:
+        return float(sum(pool.map(lambda i: _FLOOR["pass"](en, cat, dy, t, act, tr, b[i],
+                                                            b[i + 1]), range(n_thr))))
+
+
 def best_interleaved(fns: dict, rounds: int) -> dict[str, float]:
     best = {k: float("inf") for k in fns}
     for _ in range(rounds):
@@ -181,6 +237,23 @@ def main(argv: list[str] | None = None) -> int:
               f"{t['deposit'] * 1e3:.0f} ms")
     else:
         print(f"  in-kernel: deposit alone on prepared sticks {t['deposit'] * 1e3:.0f} ms")
+    rest = t["ours"] - t.get("fused", 0.0) - t["s_layout"] - t["s_range"] - t["s_broaden"] \
+        - t["s_ground"]
+    print(f"  steps of compute_trpes, each alone: layout pass (trajectory starts, time grid) "
+          f"{t['s_layout'] * 1e3:.1f} ms, stick energy range {t['s_range'] * 1e3:.1f} ms, "
+          f"fused pass {t.get('fused', math.nan) * 1e3:.1f} ms, broadening "
+          f"{t['s_broaden'] * 1e3:.1f} ms, ground-state check {t['s_ground'] * 1e3:.1f} ms; "
+          f"the rest (Python, weights, absorbing-state extension, fill check; a difference "
+          f"of separately timed bests, noisy on a busy machine) {rest * 1e3:.1f} ms")
+    print(f"  compute_trpes pinned to one core {t['ours_1core'] * 1e3:.0f} ms, on "
+          f"{KD.usable_cores()} cores {t['ours'] * 1e3:.0f} ms "
+          f"({t['ours_1core'] / t['ours']:.2f}x)")
+    budget = t["peer"] / 20.0
+    fl = (f"compiled row pass ({KD.usable_cores()} threads) {t['floor_compiled'] * 1e3:.1f} ms, "
+          if compiled else "")
+    print(f"  read floor (input arrays read once, no work): numpy sums "
+          f"{t['floor_numpy'] * 1e3:.1f} ms, {fl}goal budget peer/20 = {budget * 1e3:.1f} ms; "
+          f"compute_trpes = {t['ours'] / t['floor_numpy']:.1f}x the numpy floor")
     r, n_pass = time_cache(ens, rounds)
     print(f"  cached redraw ({n_pass} pass over the ensemble): probe width "
           f"{r['width'] * 1e3:.0f} ms, resolution {r['resolution'] * 1e3:.0f} ms (goal <= 150 "
@@ -199,14 +272,52 @@ def time_paths(ens: Ensemble, model, rounds: int, compiled: bool) -> dict[str, f
     tb, e, w = model.tbin, model.sticks.energy, model.sticks.weight
     c = model._cache
     fns = {"peer": lambda: peer_map(ens), "ours": lambda: ours(ens),
+           "ours_1core": one_core(lambda: ours(ens)),
            "numpy_path": lambda: ours_numpy_path(ens),
            "deposit": lambda: KD.deposit_moments(tb, e, w, n_time=model.n_time,
                                                  e_lo=c["e_lo"], h=c["h"],
                                                  n_fine=c["n_fine"], order=model.order,
                                                  tfrac=model.tfrac)}
+    arrays = floor_arrays(ens)
+    fns["floor_numpy"] = lambda: floor_numpy(arrays)
     if compiled:
         fns["fused"] = lambda: fused_only(ens, model)
+        floor_compiled(arrays)  # compile
+        fns["floor_compiled"] = lambda: floor_compiled(arrays)
+    fns.update(stage_fns(ens))
     return best_interleaved(fns, rounds)
+
+
+def stage_fns(ens: Ensemble) -> dict:
+    """The steps of compute_trpes besides the fused pass, each alone: the layout pass
+    (trajectory starts + time grid statistics), the stick energy range, the broadening
+    of the moments into the map and the ground-state check."""
+    from ensemblelab.compute.engine import as_source
+    from ensemblelab.compute.spectroscopy.fused import block_layout, stick_energy_range
+    from ensemblelab.compute.spectroscopy.maps import trpes_model
+    from ensemblelab.compute.spectroscopy.weights import ground_state_ionisation_fraction
+
+    source = as_source(ens)
+    tail = THRESHOLD_TAIL * PROBE.effective_spectral_fwhm * FWHM_TO_SIGMA
+    m = trpes_model(ens, probe=PROBE, weights="uniform", progress=False, keep_sticks=False)
+    kw = {"kinetic_energies": ENERGIES, "delays": DELAYS, "convolve": False}
+    return {"s_layout": lambda: block_layout(ens),
+            "s_range": lambda: stick_energy_range(source, PROBE.total_energy, tail=tail,
+                                                  shifts=None, client=None, scheduler=None),
+            "s_broaden": lambda: m.broaden(**kw),
+            "s_ground": lambda: ground_state_ionisation_fraction(ens, probe=PROBE)}
+
+
+def one_core(fn):
+    """``fn`` run with this process pinned to one CPU (every stage single-threaded)."""
+    def run():
+        cpus = os.sched_getaffinity(0)
+        os.sched_setaffinity(0, {min(cpus)})
+        try:
+            return fn()
+        finally:
+            os.sched_setaffinity(0, cpus)
+    return run
 
 
 def time_cache(ens: Ensemble, rounds: int) -> tuple[dict[str, float], int]:

@@ -20,7 +20,7 @@ from __future__ import annotations
 import contextlib
 import math
 from concurrent.futures import ThreadPoolExecutor
-from typing import Any
+from typing import Any, NamedTuple
 
 import numpy as np
 
@@ -34,6 +34,9 @@ __all__ = [
     "BroadeningBlocks",
     "time_matrix",
     "assemble",
+    "sparse_rows",
+    "SparseTime",
+    "interpolation_rows",
 ]
 
 
@@ -157,6 +160,50 @@ def time_matrix(delays: np.ndarray, times: np.ndarray, *, sigma: float | None,
         c = c / norm[:, None]
     c[~np.isfinite(c)] = 0.0
     return c
+
+
+class SparseTime(NamedTuple):
+    """A time matrix (n_delays, n_time) by rows: the nonzeros of row ``d`` are
+    ``vals[q]`` at columns ``cols[q]``, ``q in indptr[d]:indptr[d + 1]`` (columns
+    ascending), as ``np.nonzero`` lists those of the dense matrix."""
+
+    indptr: np.ndarray
+    cols: np.ndarray
+    vals: np.ndarray
+    n_time: int
+
+    def dense(self) -> np.ndarray:
+        """The dense matrix, shape (n_delays, n_time)."""
+        out = np.zeros((self.indptr.size - 1, self.n_time))
+        rows = np.repeat(np.arange(self.indptr.size - 1), np.diff(self.indptr))
+        out[rows, self.cols] = self.vals
+        return out
+
+
+def interpolation_rows(delays: np.ndarray, times: np.ndarray, *, t_known: float,
+                       col_scale: np.ndarray | None = None) -> SparseTime:
+    """``time_matrix(delays, times, sigma=None, t_known=t_known)`` times
+    ``col_scale[None, :]``, by rows (at most two nonzeros each), without the dense
+    (n_delays, n_time) matrix: the same values, zeros left out."""
+    n = times.size
+    dt = times[1] - times[0] if n > 1 else 1.0
+    x = (delays - times[0]) / dt
+    j = np.floor(x).astype(np.int64)
+    f = x - j
+    ok = ~((delays < times[0] - 1e-9 * dt) | (delays > t_known + 1e-9 * dt))
+    jd = np.clip(j, 0, n - 1)
+    two = ok & (jd + 1 < n) & (f > 1e-12)
+    one = ok & ~two
+    c1 = np.where(two, jd, np.minimum(jd + np.round(f).astype(np.int64), n - 1))
+    v1 = np.where(two, 1.0 - f, 1.0)
+    cols = np.stack([c1, jd + 1], axis=1)
+    vals = np.stack([v1, f], axis=1)
+    if col_scale is not None:
+        vals = vals * col_scale[np.minimum(cols, n - 1)]
+    keep = np.stack([two | one, two], axis=1) & (vals != 0.0)
+    counts = keep.sum(axis=1)
+    indptr = np.r_[0, np.cumsum(counts)].astype(np.int64)
+    return SparseTime(indptr, cols[keep].astype(np.int64), vals[keep], n)
 
 
 #: output energies per block of the banded broadening (see :func:`broadening_blocks`)
@@ -286,8 +333,9 @@ def _blocks_from_dense(bmat: np.ndarray, block: int) -> BroadeningBlocks:
     return out
 
 
-def assemble(hist: np.ndarray, bmat: np.ndarray | BroadeningBlocks, cmat: np.ndarray | None,
-             *, n_threads: int | None = None) -> np.ndarray:
+def assemble(hist: np.ndarray, bmat: np.ndarray | BroadeningBlocks,
+             cmat: np.ndarray | SparseTime | None, *, n_threads: int | None = None
+             ) -> np.ndarray:
     """Combine normalised moment histograms into maps.
 
     The energy broadening is banded (see :func:`broadening_blocks`); the time matrix is
@@ -300,7 +348,7 @@ def assemble(hist: np.ndarray, bmat: np.ndarray | BroadeningBlocks, cmat: np.nda
         Moment histograms already divided by the alive weight per time bin.
     bmat : ndarray, shape (order, n_fine, n_energies), or BroadeningBlocks
         Dense matrices (:func:`energy_matrices`) or their blocks.
-    cmat : ndarray, shape (n_delays, n_time), or None
+    cmat : ndarray, shape (n_delays, n_time), SparseTime, or None
         None means the identity (maps on the internal time grid).
     n_threads : int, optional
         Threads (default: the usable cores, at most 8, fewer for small maps).
@@ -339,6 +387,65 @@ def _single_thread_blas() -> Any:
 SPARSE_TIME_NNZ = 4
 
 
+def _combine_rows(indptr, cols, vals, m, out, r_lo, r_hi):  # pragma: no cover - numba
+    """``out[r] = sum_q vals[q] m[cols[q]]`` over ``q in indptr[r]:indptr[r + 1]``, for
+    rows ``r_lo:r_hi`` (in the order of the nonzeros, as :func:`_sparse_rows` adds)."""
+    n = m.shape[1]
+    for r in range(r_lo, r_hi):
+        for e in range(n):
+            out[r, e] = 0.0
+        for q in range(indptr[r], indptr[r + 1]):
+            c = vals[q]
+            src = cols[q]
+            for e in range(n):
+                out[r, e] += c * m[src, e]
+
+
+_COMBINE: dict[str, Any] = {}
+
+
+def _combine_kernel() -> Any:
+    """The compiled :func:`_combine_rows`, or None without numba."""
+    if "k" not in _COMBINE:
+        try:
+            import numba
+        except ImportError:
+            _COMBINE["k"] = None
+        else:
+            _COMBINE["k"] = numba.njit(cache=True, nogil=True, boundscheck=False)(_combine_rows)
+    return _COMBINE["k"]
+
+
+def sparse_rows(cmat: np.ndarray | SparseTime, m: np.ndarray,
+                n_threads: int | None = None) -> np.ndarray:
+    """``cmat @ m`` over the nonzeros of each row of `cmat` only: compiled, output rows
+    split over the usable cores, when numba is installed; else :func:`_sparse_rows`
+    (the numpy twin, tests compare both)."""
+    kernel = _combine_kernel()
+    m = np.ascontiguousarray(m)
+    if kernel is None:
+        return _sparse_rows(cmat.dense() if isinstance(cmat, SparseTime) else cmat, m)
+    if isinstance(cmat, SparseTime):
+        indptr, cols, vals = cmat.indptr, cmat.cols, cmat.vals
+    else:
+        rows, cols = np.nonzero(cmat)
+        vals = np.ascontiguousarray(cmat[rows, cols])
+        indptr = np.searchsorted(rows, np.arange(cmat.shape[0] + 1)).astype(np.int64)
+        cols = cols.astype(np.int64)
+    n_out = indptr.size - 1
+    out = np.empty((n_out, m.shape[1]))
+    if n_threads is None:
+        n_threads = max(1, min(usable_cores(), (n_out * m.shape[1]) // MIN_CELLS_PER_THREAD))
+    cuts = [t * n_out // n_threads for t in range(n_threads + 1)]
+    if n_threads == 1:
+        kernel(indptr, cols, vals, m, out, 0, n_out)
+    else:
+        with ThreadPoolExecutor(n_threads) as pool:
+            list(pool.map(lambda t: kernel(indptr, cols, vals, m, out, cuts[t], cuts[t + 1]),
+                          range(n_threads)))
+    return out
+
+
 def _sparse_rows(cmat: np.ndarray, m: np.ndarray) -> np.ndarray:
     """``cmat @ m`` summing over the nonzeros of each row of `cmat` only."""
     rows, cols = np.nonzero(cmat)
@@ -352,23 +459,25 @@ def _sparse_rows(cmat: np.ndarray, m: np.ndarray) -> np.ndarray:
     return out
 
 
-def _assemble(hist: np.ndarray, blocks: BroadeningBlocks, cmat: np.ndarray | None,
-              n_threads: int | None) -> np.ndarray:
+def _assemble(hist: np.ndarray, blocks: BroadeningBlocks,
+              cmat: np.ndarray | SparseTime | None, n_threads: int | None) -> np.ndarray:
     order, n_comp, n_time, n_fine = hist.shape
     if (order, n_fine) != (blocks.order, blocks.n_fine):
         raise ValueError(f"assemble: histograms (order {order}, {n_fine} fine bins) do not "
                          f"match the broadening ({blocks.order}, {blocks.n_fine}).")
     n_e = blocks.n_energies
-    n_out = n_time if cmat is None else cmat.shape[0]
+    n_out = (n_time if cmat is None else
+             cmat.indptr.size - 1 if isinstance(cmat, SparseTime) else cmat.shape[0])
     out = np.zeros((n_comp, n_out, n_e))
     # one (n_time, n_fine * order) matrix per component (a view for the compiled
     # deposit's layout, a copy for the numpy one)
     h2 = [np.moveaxis(hist[:, c], 0, -1).reshape(n_time, n_fine * order)
           for c in range(n_comp)]
-    if cmat is not None and np.count_nonzero(cmat) <= SPARSE_TIME_NNZ * n_out:
+    if isinstance(cmat, SparseTime) or (cmat is not None and
+                                        np.count_nonzero(cmat) <= SPARSE_TIME_NNZ * n_out):
         # a sparse time matrix (linear interpolation, no convolution): apply it first,
         # on its nonzeros only, so the energy products run on n_delays rows, not n_time
-        h2 = [_sparse_rows(cmat, m) for m in h2]
+        h2 = [sparse_rows(cmat, m) for m in h2]
         cmat = None
         n_time = n_out
     if n_threads is None:

@@ -48,7 +48,7 @@ from ._checks import (
 )
 from .bootstrap import bootstrap_map, check_interval
 from .cross_sections import CrossSection, describe_cross_section, resolve_cross_section
-from .fused import energy_range_partial, fused_partial, use_fused
+from .fused import block_layout, fused_partial, stick_energy_range, use_fused
 from .gaps import time_fill
 from .model import TRPESModel, deposit
 from .pulses import FWHM_TO_SIGMA, GaussianPulse
@@ -77,54 +77,18 @@ TRPES_FIELDS = ("energies", "cation_energies", "dyson", "excitation_energies",
 
 
 def time_grid(source: BlockSource, time_step: float | None, *, client: Any = None,
-              scheduler: Any = None) -> dict[str, Any]:
-    """The internal time grid of a source: ``start``, ``dt``, ``n_time``, ``t_known`` (fs)."""
-    st = time_statistics(source, client=client, scheduler=scheduler)
+              scheduler: Any = None, stats: dict[str, Any] | None = None) -> dict[str, Any]:
+    """The internal time grid of a source: ``start``, ``dt``, ``n_time``, ``t_known`` (fs).
+
+    ``stats``: the source's :func:`~ensemblelab.compute.engine.time_statistics` when
+    already known (e.g. from :func:`.fused.block_layout`)."""
+    st = stats or time_statistics(source, client=client, scheduler=scheduler)
     dt = check_time_step(time_step)
     if dt is None:
         dt = st["median_step"] if math.isfinite(st["median_step"]) else 1.0
     start, n_time = grid_from_range(st["t_min"], st["t_max"], dt)
     t_known = float(st["t_max"]) if math.isfinite(st["t_max"]) else 0.0
     return {"start": start, "dt": dt, "n_time": n_time, "t_known": t_known}
-
-
-def _stick_energy_range(source: BlockSource, total_energy: float, *, tail: float,
-                        shifts: np.ndarray | None, client: Any,
-                        scheduler: Any) -> tuple[float, float]:
-    """Range of the stick energies ``total_energy - IP`` over the channels that give sticks
-    (excess energy above ``-tail``; IP shifted by ``shifts``).
-
-    From each block's ``ip_min`` / ``ip_max`` summary where known: a block whose every
-    channel gives sticks yields ``top - ip_max`` and ``top - ip_min`` (with the shifts'
-    extremes: a cover, exact without shifts), a block without any gives nothing; only
-    blocks that are partly open at this photon energy (or lack the summary) are read.
-    """
-    lo, hi = math.inf, -math.inf
-    s_lo = 0.0 if shifts is None else float(shifts.min())
-    s_hi = 0.0 if shifts is None else float(shifts.max())
-    top = total_energy + tail
-    pending = []
-    for span in source.spans():
-        s = span.summary
-        if "ip_min" not in s:
-            pending.append(span.index)
-        elif s["ip_min"] is None or s["ip_min"] + s_lo >= top:
-            continue  # no finite IP, or every channel closed
-        elif s["ip_max"] + s_hi < top:
-            lo = min(lo, total_energy - (s["ip_max"] + s_hi))
-            hi = max(hi, total_energy - (s["ip_min"] + s_lo))
-        else:
-            pending.append(span.index)
-    if pending:
-        rest = reduce(source, energy_range_partial, _merge_range, args=(total_energy, tail, shifts),
-                      fields=["energies", "cation_energies"], indices=pending, client=client,
-                      scheduler=scheduler, desc="energy range")
-        lo, hi = min(lo, rest["e_min"]), max(hi, rest["e_max"])
-    return (lo if math.isfinite(lo) else 0.0), (hi if math.isfinite(hi) else 0.0)
-
-
-def _merge_range(a: dict[str, float], b: dict[str, float]) -> dict[str, float]:
-    return {"e_min": min(a["e_min"], b["e_min"]), "e_max": max(a["e_max"], b["e_max"])}
 
 
 #: the counts every map reports (see :class:`.sticks.BlockSticks`)
@@ -220,7 +184,10 @@ def trpes_model(
     resolution = check_resolution(resolution)
     absorbing = check_absorbing(absorbing)
     shifts = check_shifts(ionisation_shifts, source.n_cation)
-    grid = time_grid(source, time_step, client=client, scheduler=scheduler)
+    in_memory = isinstance(ens, Ensemble)
+    layout = block_layout(ens) if in_memory else None  # one compiled pass (numba), or None
+    grid = time_grid(source, time_step, client=client, scheduler=scheduler,
+                     stats=None if layout is None else layout.stats)
     cs = resolve_cross_section(cross_section)
     kind, note = resolve_weights(source, weights=weights, pump=pump)
     if note:
@@ -229,12 +196,11 @@ def trpes_model(
     fwhm = min_stick_fwhm(probe, resolution)
     h = fwhm / DEFAULT_BINS_PER_FWHM
     tail = THRESHOLD_TAIL * probe.effective_spectral_fwhm * FWHM_TO_SIGMA
-    e_lo, e_hi = _stick_energy_range(source, probe.total_energy, tail=tail, shifts=shifts,
-                                     client=client, scheduler=scheduler)
+    keep = in_memory if keep_sticks is None else bool(keep_sticks) and in_memory
+    e_lo, e_hi = stick_energy_range(source, probe.total_energy, tail=tail, shifts=shifts,
+                                    client=client, scheduler=scheduler)
     n_fine = int(math.floor((e_hi - e_lo) / h + 0.5)) + 2
     labels = component_labels(source, decompose)
-    in_memory = isinstance(ens, Ensemble)
-    keep = in_memory if keep_sticks is None else bool(keep_sticks) and in_memory
     absorbing_state = ensemble_absorbing_state(ens if in_memory else source)
     excluded = excluded_ids(exclude)
     opts = {"probe": probe, "pump": pump, "cross_section": cs, "weights": kind,
@@ -244,7 +210,7 @@ def trpes_model(
             "keep_sticks": keep, "progress": progress and in_memory,
             "ionisation_shifts": shifts, "absorbing_state": absorbing_state,
             "absorbing": absorbing, "t_end": grid["t_known"], "fill": None,
-            "local_fill": in_memory,
+            "local_fill": in_memory, "layout": layout,
             "fused": use_fused(cross_section=cs, decompose=decompose, absorbing=absorbing,
                                keep_sticks=keep)}
     fields = [*TRPES_FIELDS, *(("adt", "adt_cation") if decompose == "diabatic" else ())]

@@ -295,8 +295,12 @@ class TRPESModel:
                      else probe.effective_sigma)
         else:
             sigma = None
-        cmat = self.time_weights(delays, sigma=sigma)
-        cmat = cmat * norm[None, :]
+        cmat: np.ndarray | KB.SparseTime
+        if sigma is None:  # linear interpolation: two nonzeros a row, kept by rows
+            cmat = KB.interpolation_rows(delays, self.times, t_known=self.t_known,
+                                         col_scale=norm)
+        else:
+            cmat = self.time_weights(delays, sigma=sigma) * norm[None, :]
         fwhm_of = None
         if isinstance(resolution, ProportionalResolution):
             def fwhm_of(c: np.ndarray) -> np.ndarray:
