@@ -27,9 +27,11 @@ ensembles, each through :func:`~.maps.compute_trpes`); tests compare the two.
 
 from __future__ import annotations
 
+import contextlib
+import math
 from collections.abc import Callable
 from concurrent.futures import ThreadPoolExecutor
-from typing import Any
+from typing import Any, NamedTuple
 
 import numpy as np
 
@@ -90,125 +92,210 @@ def replicate_chunk(n_boot: int, per_replicate_bytes: int,
     return int(max(1, min(n_boot, budget // max(per_replicate_bytes, 1))))
 
 
-def _numba_replicates() -> Callable[..., int] | None:
-    if not KD.numba_available():
-        return None
-    if "kernel" in _COMPILED:
-        return _COMPILED["kernel"]
-    import numba
+def chunk_plan(n_boot: int, n_time: int, per_bin_bytes: int, budget: int = MEMORY_BUDGET,
+               *, split_time: bool = True) -> list[tuple[int, int, int, int]]:
+    """Chunks ``(r0, r1, t0, t1)`` of resamples and time bins whose histograms fit
+    ``budget`` bytes (``per_bin_bytes``: one resample's histograms of one time bin).
 
-    kernel = numba.njit(cache=True, nogil=True, fastmath=True)(_dep_replicates)
-    _COMPILED["kernel"] = kernel
-    return kernel
+    With ``split_time`` (the sticks are at hand, an in-memory ensemble) as many
+    resamples as fit one time bin, then as many time bins as fit (each stick is read
+    once per chunk of resamples); otherwise whole time ranges and
+    :func:`replicate_chunk` resamples (a chunked store is read once per chunk).
+    """
+    if split_time:
+        n_rep = int(max(1, min(n_boot, budget // max(per_bin_bytes, 1))))
+        n_win = int(max(1, min(n_time, budget // max(per_bin_bytes * n_rep, 1))))
+    else:
+        n_rep, n_win = replicate_chunk(n_boot, per_bin_bytes * n_time, budget), n_time
+    return [(r0, min(r0 + n_rep, n_boot), t0, min(t0 + n_win, n_time))
+            for r0 in range(0, n_boot, n_rep) for t0 in range(0, n_time, n_win)]
+
+
+class CellSticks(NamedTuple):
+    """Sticks sorted by accumulator cell (time bin, component, fine bin): see
+    :func:`sort_cells`. ``start[k]:start[k + 1]`` are the sticks of cell ``k = (t *
+    n_comp + c) * n_fine + b``; ``delta`` their offset from the bin centre over ``h``
+    (in [-1/2, 1/2)), ``weight``, ``src`` (block-local trajectory) and ``tfrac`` (share
+    going to the next time bin; empty: none)."""
+
+    start: np.ndarray
+    delta: np.ndarray
+    weight: np.ndarray
+    src: np.ndarray
+    tfrac: np.ndarray
+    n_comp: int
+    n_fine: int
+    n_bad: int
+
+
+def _cell_keys(tbin, energy, comp, tfrac, n_time, n_comp, n_fine, shift, inv_h, key, delta
+               ):  # pragma: no cover - compiled by numba
+    """Cell of every stick (-1 out of range) and its offset; returns the cell counts."""
+    counts = np.zeros(n_time * n_comp * n_fine + 1, np.int64)
+    fn = float(n_fine)
+    for i in range(energy.shape[0]):
+        p = energy[i] * inv_h + shift
+        tb = tbin[i]
+        c = comp[i] if comp.shape[0] else 0
+        ok = p >= 0.0 and p < fn and tb >= 0 and tb < n_time and c >= 0 and c < n_comp
+        if ok and tfrac.shape[0] and tfrac[i] > 0.0 and tb + 1 >= n_time:
+            ok = False
+        if not ok:
+            key[i] = -1
+            continue
+        b = np.int64(p)  # p >= 0: truncation = floor = nearest bin centre
+        k = (tb * n_comp + c) * n_fine + b
+        key[i] = k
+        delta[i] = p - b - 0.5
+        counts[k + 1] += 1
+    return counts
+
+
+def _cell_scatter(key, start, delta, weight, src, tfrac, o_delta, o_weight, o_src, o_tfrac
+                  ):  # pragma: no cover - compiled by numba
+    """Counting sort: stick ``i`` goes to the next free slot of its cell."""
+    nxt = start[:-1].copy()
+    for i in range(key.shape[0]):
+        k = key[i]
+        if k < 0:
+            continue
+        j = nxt[k]
+        nxt[k] = j + 1
+        o_delta[j] = delta[i]
+        o_weight[j] = weight[i]
+        o_src[j] = src[i]
+        if tfrac.shape[0]:
+            o_tfrac[j] = tfrac[i]
+
+
+def _dep_cells(start, delta, weight, src, tfrac, rw, acc, t0, t_lo, t_hi, n_comp, c0
+               ):  # pragma: no cover - compiled by numba
+    """Deposit the sticks of :func:`sort_cells` for every resample of a chunk.
+
+    ``acc`` (component, time - t0, fine bin, moment, resample) gets the contributions
+    landing in time bins ``t_lo <= t < t_hi`` (a stick of bin t adds ``1 - tfrac`` of
+    itself to t and ``tfrac`` to t + 1; threads take disjoint time ranges). Each stick
+    adds ``moment_k * rw[src, :]`` to a contiguous row of all resamples (vector
+    multiply-adds, zeros included), and the sticks of one cell come one after another,
+    so the cell's rows stay in the first-level cache.
+    """
+    n_fine = acc.shape[2]
+    order = acc.shape[3]
+    n_rep = acc.shape[4]
+    per_t = n_comp * n_fine
+    mom = np.empty(order)
+    split = tfrac.shape[0] > 0
+    for cell in range(max(t_lo - 1, 0) * per_t, t_hi * per_t):
+        s0 = start[cell]
+        s1 = start[cell + 1]
+        if s0 == s1:
+            continue
+        t = cell // per_t
+        rem = cell - t * per_t
+        c = rem // n_fine
+        b = rem - c * n_fine
+        in0 = t >= t_lo
+        in1 = split and t + 1 >= t_lo and t + 1 < t_hi
+        blk0 = acc[c0 + c, t - t0, b] if in0 else acc[0, 0, 0]
+        blk1 = acc[c0 + c, t + 1 - t0, b] if in1 else acc[0, 0, 0]
+        for s in range(s0, s1):
+            d = delta[s]
+            v = weight[s]
+            for k in range(order):
+                mom[k] = v
+                v *= d
+            w = rw[src[s]]
+            f = tfrac[s] if split else 0.0
+            if in0:
+                g = 1.0 - f
+                for k in range(order):
+                    mk = mom[k] * g
+                    row = blk0[k]
+                    for r in range(n_rep):
+                        row[r] += mk * w[r]
+            if in1 and f > 0.0:
+                for k in range(order):
+                    mk = mom[k] * f
+                    row = blk1[k]
+                    for r in range(n_rep):
+                        row[r] += mk * w[r]
 
 
 _COMPILED: dict[str, Any] = {}
 
 
-def _dep_replicates(tbin, energy, weight, src_traj, comp, tfrac, ridx, rval, nnz, acc, c0,
-                    n_comp, shift, inv_h):  # pragma: no cover - compiled by numba
-    """Deposit every stick for every resample of a chunk.
+def _compiled(name: str) -> Callable[..., Any] | None:
+    """The numba-compiled kernel ``name`` (None without numba)."""
+    if not KD.numba_available():
+        return None
+    if name not in _COMPILED:
+        import numba
 
-    Trajectory ``n`` appears in the resamples ``ridx[n, :nnz[n]]`` with multiplicities
-    ``rval[n, :nnz[n]]`` (the non-zero ones: a third of the pairs are zero);
-    ``acc`` has the layout (component, time, resample, fine bin, moment) of
-    :func:`deposit_replicates` (the rows of one time bin stay in cache when the sticks
-    come in time order); the sticks go to components ``c0 + comp`` (threads take
-    disjoint sets of resamples). Returns the number of sticks out of range.
+        fn = {"keys": _cell_keys, "scatter": _cell_scatter, "deposit": _dep_cells}[name]
+        _COMPILED[name] = numba.njit(cache=True, nogil=True, fastmath=True,
+                                     boundscheck=False)(fn)
+    return _COMPILED[name]
+
+
+def sort_cells(tbin: np.ndarray, energy: np.ndarray, weight: np.ndarray,
+               src_traj: np.ndarray, *, n_time: int, e_lo: float, h: float, n_fine: int,
+               comp: np.ndarray | None = None, n_comp: int = 1,
+               tfrac: np.ndarray | None = None) -> CellSticks | None:
+    """Sticks ordered by accumulator cell, for :func:`deposit_replicates` (compiled
+    counting sort, O(n_sticks + n_cells); None without numba).
+
+    Parameters are those of :func:`deposit_replicates`; ``n_time`` the size of the
+    whole time grid. Sticks outside the grid (energy, time bin, component, or a time
+    split past the last bin) are left out and counted in ``n_bad``.
     """
-    n_rep = acc.shape[2]
-    n_time = acc.shape[1]
-    n_fine = acc.shape[3]
-    order = acc.shape[4]
-    flat = acc.reshape(-1)
-    fn = float(n_fine)
-    s_rep = np.uint64(n_fine * order)
-    s_time = np.uint64(n_rep) * s_rep
-    mom = np.empty(order)
-    bad = 0
-    for i in range(energy.shape[0]):
-        p = energy[i] * inv_h + shift
-        tb = tbin[i]
-        c = 0 if n_comp == 1 else comp[i]
-        if not (p >= 0.0 and p < fn and tb >= 0 and tb < n_time and c >= 0 and c < n_comp):
-            bad += 1
-            continue
-        b = np.int64(p)
-        d = p - b - 0.5
-        v = weight[i]
-        for k in range(order):
-            mom[k] = v
-            v *= d
-        n = src_traj[i]
-        row = (np.uint64((c0 + c) * n_time + tb) * s_time + np.uint64(b * order))
-        f = tfrac[i] if tfrac.shape[0] else 0.0
-        if f > 0.0:
-            if tb + 1 >= n_time:
-                bad += 1
-                continue
-            f0 = 1.0 - f
-            for j in range(nnz[n]):
-                r = ridx[n, j]
-                cr = rval[n, j]
-                if cr != 0.0:
-                    a0 = cr * f0
-                    a1 = cr * f
-                    base = row + np.uint64(r) * s_rep
-                    for k in range(order):
-                        flat[base + np.uint64(k)] += a0 * mom[k]
-                        flat[base + s_time + np.uint64(k)] += a1 * mom[k]
-        elif order == 8:  # unrolled: the common case (8 moments, one cache line)
-            m0, m1, m2, m3 = mom[0], mom[1], mom[2], mom[3]
-            m4, m5, m6, m7 = mom[4], mom[5], mom[6], mom[7]
-            for j in range(nnz[n]):
-                cr = rval[n, j]
-                base = row + np.uint64(ridx[n, j]) * s_rep
-                flat[base] += cr * m0
-                flat[base + np.uint64(1)] += cr * m1
-                flat[base + np.uint64(2)] += cr * m2
-                flat[base + np.uint64(3)] += cr * m3
-                flat[base + np.uint64(4)] += cr * m4
-                flat[base + np.uint64(5)] += cr * m5
-                flat[base + np.uint64(6)] += cr * m6
-                flat[base + np.uint64(7)] += cr * m7
-        else:
-            for j in range(nnz[n]):
-                r = ridx[n, j]
-                cr = rval[n, j]
-                if cr != 0.0:
-                    base = row + np.uint64(r) * s_rep
-                    for k in range(order):
-                        flat[base + np.uint64(k)] += cr * mom[k]
-    return bad
+    keys_fn, scatter_fn = _compiled("keys"), _compiled("scatter")
+    if keys_fn is None or scatter_fn is None:
+        return None
+    n = energy.shape[0]
+    i64 = np.int64
+    tf = np.zeros(0) if tfrac is None else np.ascontiguousarray(tfrac, np.float64)
+    key = np.empty(n, i64)
+    delta = np.empty(n)
+    counts = keys_fn(np.ascontiguousarray(tbin, i64), np.ascontiguousarray(energy, np.float64),
+                     np.zeros(0, i64) if comp is None else np.ascontiguousarray(comp, i64),
+                     tf, n_time, n_comp, n_fine, 0.5 - e_lo / h, 1.0 / h, key, delta)
+    start = np.cumsum(counts)
+    m = int(start[-1])
+    out = CellSticks(start=start, delta=np.empty(m), weight=np.empty(m),
+                     src=np.empty(m, np.int32), tfrac=np.empty(m if tf.size else 0),
+                     n_comp=n_comp, n_fine=n_fine, n_bad=n - m)
+    scatter_fn(key, start, delta, np.ascontiguousarray(weight, np.float64),
+               np.ascontiguousarray(src_traj, i64), tf, out.delta, out.weight, out.src,
+               out.tfrac)
+    return out
 
 
-def _nonzero_resamples(rw: np.ndarray, lo: int, hi: int
-                       ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Per trajectory, the resamples ``lo <= r < hi`` it appears in (ascending), their
-    multiplicities and how many: ``ridx``, ``rval`` (n_traj, hi - lo), ``nnz`` (n_traj,)."""
-    sub = rw[:, lo:hi]
-    keep = sub != 0
-    order = np.argsort(~keep, axis=1, kind="stable")  # non-zero first, in resample order
-    ridx = np.ascontiguousarray(order + lo, dtype=np.int64)
-    rval = np.ascontiguousarray(np.take_along_axis(sub, order, axis=1))
-    return ridx, rval, keep.sum(axis=1).astype(np.int64)
+def _time_split(start: np.ndarray, per_t: int, t0: int, t1: int, n_threads: int) -> list[int]:
+    """Edges splitting time bins t0..t1 into ``n_threads`` ranges of similar stick counts."""
+    at = start[np.arange(t0, t1 + 1) * per_t].astype(float)
+    goal = np.linspace(at[0], at[-1], n_threads + 1)
+    edges = t0 + np.searchsorted(at, goal[1:-1])
+    return [t0, *np.clip(edges, t0, t1).tolist(), t1]
 
 
 def deposit_replicates(acc: np.ndarray, tbin: np.ndarray, energy: np.ndarray,
                        weight: np.ndarray, src_traj: np.ndarray, rw: np.ndarray, *,
                        e_lo: float, h: float, comp: np.ndarray | None = None,
                        n_comp: int = 1, c0: int = 0, tfrac: np.ndarray | None = None,
-                       backend: str = "auto") -> None:
+                       t0: int = 0, n_time: int | None = None, backend: str = "auto",
+                       cells: CellSticks | None = None) -> None:
     """Add the moment histograms of a chunk of resamples to ``acc`` (in place).
 
     Resample ``r`` adds :func:`._kernels_deposit.deposit_moments` of the sticks with
-    weights ``weight * rw[src_traj, r]`` to components ``c0 .. c0 + n_comp - 1``.
+    weights ``weight * rw[src_traj, r]`` to components ``c0 .. c0 + n_comp - 1``, time
+    bins ``t0 .. t0 + acc.shape[1] - 1`` of the grid.
 
     Parameters
     ----------
-    acc : ndarray, shape (n_components, n_time, n_rep, n_fine, order)
-        Accumulator (see :func:`per_resample` for the layout of
-        :func:`._kernels_broadening.assemble`).
+    acc : ndarray, shape (n_components, n_window, n_fine, order, n_rep)
+        Accumulator: the resamples innermost (a stick adds one contiguous row of
+        resamples per moment); :func:`per_resample` gives one resample's histograms in
+        the layout of :func:`._kernels_broadening.assemble`.
     tbin : ndarray of int, shape (n_sticks,)
         Time-grid index of each stick.
     energy, weight : ndarray, shape (n_sticks,)
@@ -224,47 +311,54 @@ def deposit_replicates(acc: np.ndarray, tbin: np.ndarray, energy: np.ndarray,
         ``acc`` they go to.
     tfrac : ndarray, shape (n_sticks,), optional
         Share of each stick going to the next time bin.
+    t0, n_time : int
+        First time bin held by ``acc`` and size of the whole grid (default
+        ``t0 + acc.shape[1]``).
     backend : {"auto", "numba", "numpy"}
         Compiled kernel (when numba is installed) or a loop of numpy deposits.
+    cells : CellSticks, optional
+        :func:`sort_cells` of these sticks, made once and reused for every chunk.
     """
-    _, n_time, n_rep, n_fine, order = acc.shape
+    _, n_win, n_fine, order, n_rep = acc.shape
+    n_time = t0 + n_win if n_time is None else n_time
     if not acc.flags.c_contiguous or acc.dtype != np.float64:
         raise ValueError("acc must be a C-contiguous float64 array.")
-    kernel = _numba_replicates() if backend in ("auto", "numba") else None
-    if kernel is None:
+    kernel = _compiled("deposit") if backend in ("auto", "numba") else None
+    if kernel is not None and cells is None:
+        cells = sort_cells(tbin, energy, weight, src_traj, n_time=n_time, e_lo=e_lo, h=h,
+                           n_fine=n_fine, comp=comp, n_comp=n_comp, tfrac=tfrac)
+    if kernel is None or cells is None:
         for r in range(n_rep):
             part = KD.deposit_moments(tbin, energy, weight * rw[src_traj, r], n_time=n_time,
                                       e_lo=e_lo, h=h, n_fine=n_fine, order=order, comp=comp,
                                       n_comp=n_comp, tfrac=tfrac, backend="numpy")
-            acc[c0:c0 + n_comp, :, r] += np.moveaxis(part, 0, -1)
+            acc[c0:c0 + n_comp, :, :, :, r] += np.moveaxis(part, 0, -1)[:, t0:t0 + n_win]
         return
-    args = (np.ascontiguousarray(tbin, dtype=np.int64),
-            np.ascontiguousarray(energy, dtype=np.float64),
-            np.ascontiguousarray(weight, dtype=np.float64),
-            np.ascontiguousarray(src_traj, dtype=np.int64),
-            np.zeros(1, np.int64) if comp is None else np.ascontiguousarray(comp, dtype=np.int64),
-            np.zeros(0) if tfrac is None else np.ascontiguousarray(tfrac, np.float64))
-    tail = (acc, c0, n_comp, 0.5 - e_lo / h, 1.0 / h)
-    n_threads = (1 if energy.size * n_rep < KD.MIN_STICKS_PER_THREAD
-                 else max(1, min(KD.usable_cores(), n_rep)))
-    edges = np.linspace(0, n_rep, n_threads + 1).astype(int)
-    parts = [_nonzero_resamples(np.asarray(rw, dtype=np.float64), edges[t], edges[t + 1])
-             for t in range(n_threads)]
+    if cells.n_bad:
+        raise ValueError(f"{cells.n_bad} sticks fall outside the moment grid (time bin or "
+                         "energy).")
+    rw = np.ascontiguousarray(rw, dtype=np.float64)
+    per_t = cells.n_comp * cells.n_fine
+    n_here = int(cells.start[(t0 + n_win) * per_t] - cells.start[max(t0 - 1, 0) * per_t])
+    n_threads = (1 if n_here * n_rep < KD.MIN_STICKS_PER_THREAD or n_win < 2
+                 else max(1, min(KD.usable_cores(), n_win)))
+    edges = _time_split(cells.start, per_t, t0, t0 + n_win, n_threads)
+    args = (cells.start, cells.delta, cells.weight, cells.src, cells.tfrac, rw, acc, t0)
+
+    def run(t: int) -> None:
+        kernel(*args, edges[t], edges[t + 1], cells.n_comp, c0)
+
     if n_threads == 1:
-        bad = kernel(*args, *parts[0], *tail)
-    else:  # disjoint resample ranges: no two threads write the same cell
+        run(0)
+    else:  # disjoint time ranges: no two threads write the same cell
         with ThreadPoolExecutor(n_threads) as pool:
-            bad = sum(pool.map(lambda t: kernel(*args, *parts[t], *tail),
-                               range(n_threads))) // n_threads
-    if bad:
-        raise ValueError(f"{bad} sticks fall outside the moment grid (time bin or energy).")
+            list(pool.map(run, range(n_threads)))
 
 
 def per_resample(acc: np.ndarray, r: int) -> np.ndarray:
     """Resample r's histograms (order, comp, time, fine) of an accumulator (comp, time,
-    resample, fine, moment): a view in the layout :func:`._kernels_broadening.assemble`
-    reads without copying (each time row's fine bins and moments are contiguous)."""
-    return np.moveaxis(acc[:, :, r], -1, 0)
+    fine, moment, resample): a strided view."""
+    return np.moveaxis(acc[..., r], -1, 0)
 
 
 def time_order(tbin: np.ndarray) -> np.ndarray | None:
@@ -274,29 +368,110 @@ def time_order(tbin: np.ndarray) -> np.ndarray | None:
     return np.argsort(tbin, kind="stable")
 
 
-def percentile_summary(reps: np.ndarray, estimate: np.ndarray, ci: float
-                       ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Percentile interval and relative standard error from replicate maps.
+def assemble_replicates(acc: np.ndarray, blocks: Any, cmat: np.ndarray, norm: np.ndarray,
+                        out: np.ndarray, *, n_threads: int | None = None) -> None:
+    """Add the maps of a chunk of resamples, from their histograms, to ``out`` (in place).
+
+    What :func:`._kernels_broadening.assemble` does for one resample (banded energy
+    broadening, normaliser, time matrix), for all resamples of the chunk at once: the
+    energy products take each time bin's (fine bin x moment, resample) block as one
+    matrix (the resamples are the columns), and the time matrix is one product over
+    the time bins of the window.
 
     Parameters
     ----------
-    reps : ndarray, shape (n_boot, ...)
-        Replicate values.
-    estimate : ndarray, shape (...)
-        The map itself.
+    acc : ndarray, shape (n_comp, n_window, n_fine, order, n_rep)
+        Histograms of time bins ``t0 .. t0 + n_window - 1`` (:func:`deposit_replicates`).
+    blocks : BroadeningBlocks
+        :func:`._kernels_broadening.broadening_blocks` (rows bin-major, moment-minor).
+    cmat : ndarray, shape (n_delays, n_window)
+        The time matrix's columns of the window.
+    norm : ndarray, shape (n_rep, n_window)
+        1 / normaliser of each resample and time bin.
+    out : ndarray, shape (n_comp, n_delays, n_energies, n_rep)
+        Replicate maps, added to (eV^-1).
+    n_threads : int, optional
+        Threads for the energy products (default: the usable cores).
+    """
+    n_c, n_win, _, order, n_rep = acc.shape
+    rows = np.flatnonzero(np.any(cmat != 0, axis=1))
+    if rows.size == 0 or n_win == 0:
+        return
+    d0, d1 = int(rows[0]), int(rows[-1]) + 1
+    n_e = blocks.n_energies
+    scale = np.ascontiguousarray(norm.T)[:, None, :]  # (n_window, 1, n_rep)
+    n_threads = max(1, min(KD.usable_cores() if n_threads is None else n_threads,
+                           len(blocks)))
+    parts = [blocks[t::n_threads] for t in range(n_threads)]
+    y = np.empty((n_win, n_e, n_rep))
+    for c in range(n_c):
+        y.fill(0.0)
+
+        def run(t: int, c: int = c, y: np.ndarray = y) -> None:
+            for j0, j1, lo, hi, mat in parts[t]:
+                x = acc[c, :, lo:hi].reshape(n_win, (hi - lo) * order, n_rep)
+                y[:, j0:j1, :] = np.matmul(mat.T, x)
+
+        with _single_blas():
+            if n_threads == 1:
+                run(0)
+            else:
+                with ThreadPoolExecutor(n_threads) as pool:
+                    list(pool.map(run, range(n_threads)))
+        y *= scale
+        out[c, d0:d1] += (cmat[d0:d1] @ y.reshape(n_win, n_e * n_rep)).reshape(
+            d1 - d0, n_e, n_rep)
+
+
+def _single_blas() -> Any:
+    """Context holding BLAS at one thread (threadpoolctl, installed with scikit-learn;
+    else nothing): many small products side by side, where BLAS threads only cost."""
+    try:
+        from threadpoolctl import threadpool_limits
+    except ImportError:  # pragma: no cover - threadpoolctl comes with scikit-learn
+        return contextlib.nullcontext()
+    return threadpool_limits(limits=1, user_api="blas")
+
+
+def percentile_summary(reps: np.ndarray, estimate: np.ndarray, ci: float, *, axis: int = 0
+                       ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Percentile interval and relative standard error from replicate maps.
+
+    The quantiles are those of ``np.quantile`` (linear interpolation between order
+    statistics), found by one ``np.partition`` of the replicates of every pixel
+    (cheaper than a sort; fastest with the replicates on the last, contiguous axis).
+
+    Parameters
+    ----------
+    reps : ndarray
+        Replicate values, the replicates along ``axis``.
+    estimate : ndarray
+        The map itself (the shape of ``reps`` without ``axis``).
     ci : float
         Confidence level.
+    axis : int
+        Axis of the replicates.
 
     Returns
     -------
-    lower, upper : ndarray, shape (...)
+    lower, upper : ndarray, shape of ``estimate``
         The ``(1 - ci) / 2`` and ``(1 + ci) / 2`` quantiles over the replicates.
-    rel_se : ndarray, shape (...)
+    rel_se : ndarray, shape of ``estimate``
         Bootstrap standard error over ``|estimate|``; NaN where the estimate is 0.
     """
+    r = np.moveaxis(np.asarray(reps, dtype=float), axis, -1)
+    n = r.shape[-1]
     alpha = (1.0 - ci) / 2.0
-    lower, upper = np.quantile(reps, [alpha, 1.0 - alpha], axis=0)
-    se = reps.std(axis=0, ddof=1)
+    pos = [q * (n - 1) for q in (alpha, 1.0 - alpha)]  # np.quantile's "linear" method
+    lo_i = [min(int(math.floor(p)), n - 1) for p in pos]
+    hi_i = [min(i + 1, n - 1) for i in lo_i]
+    part = np.partition(r, sorted(set(lo_i + hi_i)), axis=-1)
+    qs = []
+    for p, i, j in zip(pos, lo_i, hi_i, strict=True):
+        a, b, g = part[..., i], part[..., j], p - i
+        diff = b - a  # as numpy's lerp: from the nearer end
+        qs.append(a + diff * g if g < 0.5 else b - diff * (1.0 - g))
+    se = r.std(axis=-1, ddof=1)
     with np.errstate(divide="ignore", invalid="ignore"):
         rel = np.where(estimate != 0, se / np.abs(estimate), np.nan)
-    return lower, upper, rel
+    return qs[0], qs[1], rel

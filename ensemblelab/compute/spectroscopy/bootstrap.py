@@ -27,9 +27,7 @@ resample; a clear error says so).
 
 from __future__ import annotations
 
-import contextlib
 from collections.abc import Sequence
-from concurrent.futures import ThreadPoolExecutor
 from typing import Any
 
 import numpy as np
@@ -40,7 +38,6 @@ from ...errors import SchemaError
 from ..engine import BlockSpan, add, as_source, reduce
 from . import _kernels_bootstrap as KBS
 from . import _kernels_broadening as KB
-from . import _kernels_deposit as KD
 from ._checks import time_bins
 from .cross_sections import resolve_cross_section
 from .model import TRPESModel
@@ -71,14 +68,11 @@ def check_interval(interval: Any, ci: Any, n_boot: Any) -> None:
                           "95% intervals.")
 
 
-def _sorted(order: np.ndarray | None, *arrays: np.ndarray | None) -> list[Any]:
-    return [a if (a is None or order is None) else a[order] for a in arrays]
-
-
 def block_resampling_inputs(block: Any, opts: dict[str, Any],
                             model: TRPESModel | None = None) -> dict[str, Any]:
-    """What a block's resamples are made of: its sticks in time order (total and
-    components), block-local trajectory of each, trajectory weights and unit alive
+    """What a block's resamples are made of: its sticks (total and components) with the
+    block-local trajectory of each, sorted by accumulator cell when compiled
+    (:func:`._kernels_bootstrap.sort_cells`), trajectory weights and unit alive
     profiles (:func:`._kernels_bootstrap.unit_alive`). With ``model`` (made from this
     block, an in-memory ensemble) its sticks are used instead of being made again."""
     w_traj, _ = trajectory_weights(block, weights=opts["weights"], pump=opts["pump"])
@@ -100,18 +94,27 @@ def block_resampling_inputs(block: Any, opts: dict[str, Any],
                           absorbed_traj=tix[al.absorbed], ext_bin=al.ext_bin,
                           ext_first=al.ext_first)
     s = bs.sticks
-    src = tix[s.snapshot]
-    order = KBS.time_order(bs.tbin)
-    out: dict[str, Any] = {"w_traj": w_traj, "unit": unit,
-                           "total": _sorted(order, bs.tbin, s.energy, s.weight, src, bs.tfrac)}
+    src = tix[s.snapshot].astype(np.int32)
+    fine = {"n_time": opts["n_time"], "e_lo": opts["e_lo"], "h": opts["h"],
+            "n_fine": opts["n_fine"]}
+    compiled = opts["backend"] in ("auto", "numba")
+    out: dict[str, Any] = {"w_traj": w_traj, "unit": unit}
+    arrays = (bs.tbin, s.energy, s.weight, src)
+    out["total"] = {"args": arrays, "kw": {"tfrac": bs.tfrac}}
     if bs.comp is not None:
         cs = bs.comp_src
         tb = bs.tbin if cs is None else bs.tbin[cs]
         arrays = (tb, s.energy if cs is None else s.energy[cs],
                   s.weight if bs.comp_weight is None else bs.comp_weight,
-                  src if cs is None else src[cs], bs.comp,
-                  None if bs.tfrac is None else (bs.tfrac if cs is None else bs.tfrac[cs]))
-        out["comp"] = _sorted(KBS.time_order(tb), *arrays)
+                  src if cs is None else src[cs])
+        out["comp"] = {"args": arrays, "kw": {
+            "comp": bs.comp, "n_comp": opts["n_comp"],
+            "tfrac": None if bs.tfrac is None else (bs.tfrac if cs is None else bs.tfrac[cs])}}
+    for part in ("total", "comp"):
+        if part in out:
+            kw = out[part]["kw"]
+            kw["cells"] = KBS.sort_cells(*out[part]["args"], **fine, **kw) if compiled \
+                else None
     return out
 
 
@@ -119,14 +122,16 @@ def bootstrap_partial(block: Any, span: BlockSpan, opts: dict[str, Any]) -> dict
     """Replicate moment histograms and alive weights of one block (a reduction partial).
 
     ``opts["counts"]`` (n_rep, n_trajectories of the source) are the multiplicities of
-    the chunk of resamples; the other keys are those of :func:`.maps.trpes_partial`
-    (with ``opts["cache"]``, a dict, the block's sticks are kept there for the next
-    chunk: in-memory ensembles). Returns ``hist`` (1 + n_comp, n_time, n_rep, n_fine,
-    order) (the total, then each component; see
-    :func:`._kernels_bootstrap.deposit_replicates`), ``alive`` (n_rep, n_time) and
-    ``total`` (n_rep,) (the resamples' total trajectory weight).
+    the chunk of resamples and ``opts["t0"]``, ``opts["t1"]`` the time bins it covers;
+    the other keys are those of :func:`.maps.trpes_partial` (with ``opts["cache"]``, a
+    dict, the block's sorted sticks are kept there for the next chunk: in-memory
+    ensembles). Returns ``hist`` (1 + n_comp, t1 - t0, n_fine, order, n_rep) (the
+    total, then each component; see :func:`._kernels_bootstrap.deposit_replicates`),
+    ``alive`` (n_rep, t1 - t0) and ``total`` (n_rep,) (the resamples' total trajectory
+    weight).
     """
     counts = opts["counts"][:, span.traj_start:span.traj_start + block.n_trajectories]
+    t0, t1 = opts.get("t0", 0), opts.get("t1", opts["n_time"])
     cache = opts.get("cache")
     inp = None if cache is None else cache.get(span.index)
     if inp is None:
@@ -135,28 +140,16 @@ def bootstrap_partial(block: Any, span: BlockSpan, opts: dict[str, Any]) -> dict
             cache[span.index] = inp
     rw = np.ascontiguousarray(counts.T)
     n_lab = opts["n_comp"] if opts["decompose"] is not None else 0
-    acc = np.zeros((1 + n_lab, opts["n_time"], counts.shape[0], opts["n_fine"],
-                    opts["order"]))
-    fine = {"e_lo": opts["e_lo"], "h": opts["h"], "backend": opts["backend"]}
-    tb, e, w, src, tf = inp["total"]
-    KBS.deposit_replicates(acc, tb, e, w, src, rw, tfrac=tf, **fine)
+    acc = np.zeros((1 + n_lab, t1 - t0, opts["n_fine"], opts["order"], counts.shape[0]))
+    fine = {"e_lo": opts["e_lo"], "h": opts["h"], "backend": opts["backend"], "t0": t0,
+            "n_time": opts["n_time"]}
+    KBS.deposit_replicates(acc, *inp["total"]["args"], rw, **inp["total"]["kw"], **fine)
     if "comp" in inp:
-        tb, e, w, src, comp, tf = inp["comp"]
-        KBS.deposit_replicates(acc, tb, e, w, src, rw, comp=comp, n_comp=n_lab, c0=1,
-                               tfrac=tf, **fine)
+        KBS.deposit_replicates(acc, *inp["comp"]["args"], rw, c0=1, **inp["comp"]["kw"],
+                               **fine)
     w_traj = inp["w_traj"]
-    return {"hist": acc, "alive": (counts * w_traj) @ inp["unit"], "total": counts @ w_traj}
-
-
-def _one_blas_thread() -> Any:
-    """Context holding BLAS at one thread for the whole loop (threadpoolctl, installed
-    with scikit-learn; else nothing), so that the per-call limits of concurrent
-    ``assemble`` calls nest inside it and the caller's setting comes back at the end."""
-    try:
-        from threadpoolctl import threadpool_limits
-    except ImportError:  # pragma: no cover - threadpoolctl comes with scikit-learn
-        return contextlib.nullcontext()
-    return threadpool_limits(limits=1, user_api="blas")
+    return {"hist": acc, "alive": (counts * w_traj) @ inp["unit"][:, t0:t1],
+            "total": counts @ w_traj}
 
 
 def _normalise(res: dict[str, Any], normalise: str) -> np.ndarray:
@@ -266,45 +259,33 @@ def bootstrap_map(
     rng = random_state if isinstance(random_state, np.random.Generator) else \
         np.random.default_rng(random_state)
     counts = KBS.bootstrap_counts(n_traj, int(n_boot), rng)
-    per_rep = 8 * order * (1 + n_lab) * n_time * n_fine
     bmat, cmat = _operators(model, kinetic_energies, delays, probe=probe, pump=pump,
                             resolution=resolution, convolve=convolve, e_lo=e_lo, h=h,
                             n_fine=n_fine)
-    chunk = KBS.replicate_chunk(int(n_boot), per_rep,
-                                KBS.MEMORY_BUDGET if budget is None else budget)
-    reps = np.empty((int(n_boot), *trpes_map.shape))
-    reps_c = np.empty((int(n_boot), n_lab, *trpes_map.shape)) if n_lab else None
-    starts = range(0, int(n_boot), chunk)
+    plan = KBS.chunk_plan(int(n_boot), n_time, 8 * order * (1 + n_lab) * n_fine,
+                          KBS.MEMORY_BUDGET if budget is None else budget,
+                          split_time=isinstance(ens, Ensemble))
+    # replicate maps, the resamples last (contiguous for the percentiles)
+    reps = np.zeros((1 + n_lab, *trpes_map.shape, int(n_boot)))
+    steps: Any = plan
     if progress:
         from tqdm.auto import tqdm
-        starts = tqdm(starts, desc="bootstrap chunks", unit="chunk")
-    for lo in starts:
-        hi = min(lo + chunk, int(n_boot))
-        opts["counts"] = counts[lo:hi]
+        steps = tqdm(plan, desc="bootstrap chunks", unit="chunk")
+    for r0, r1, t0, t1 in steps:
+        opts["counts"], opts["t0"], opts["t1"] = counts[r0:r1], t0, t1
         res = reduce(source, bootstrap_partial, add, args=(opts,), fields=list(fields),
                      client=client, scheduler=scheduler, progress=False,
                      desc="bootstrap blocks")
-        norm = _normalise(res, normalise)  # (n_rep, n_time)
-        hist = res.pop("hist")
-
-        def one(r: int, hist: np.ndarray = hist, norm: np.ndarray = norm,
-                lo: int = lo) -> None:
-            out = KB.assemble(KBS.per_resample(hist, r), bmat, cmat * norm[r][None, :],
-                              n_threads=1)
-            reps[lo + r] = out[0]
-            if reps_c is not None:
-                reps_c[lo + r] = out[1:]
-
-        with _one_blas_thread(), ThreadPoolExecutor(max(1, KD.usable_cores())) as pool:
-            list(pool.map(one, range(hi - lo)))  # resamples side by side, BLAS 1 thread
-        del res, hist
-    lower, upper, rel = KBS.percentile_summary(reps, trpes_map.intensity, ci)
+        KBS.assemble_replicates(res.pop("hist"), bmat, cmat[:, t0:t1],
+                                _normalise(res, normalise), reps[..., r0:r1])
+        del res
+    lower, upper, rel = KBS.percentile_summary(reps[0], trpes_map.intensity, ci, axis=-1)
     c_lo: dict[str, np.ndarray] = {}
     c_hi: dict[str, np.ndarray] = {}
     for i, lab in enumerate(labels):
-        assert reps_c is not None
-        c_lo[lab], c_hi[lab], _ = KBS.percentile_summary(reps_c[:, i],
-                                                         trpes_map.components[lab], ci)
+        c_lo[lab], c_hi[lab], _ = KBS.percentile_summary(reps[1 + i],
+                                                         trpes_map.components[lab], ci,
+                                                         axis=-1)
     seed = random_state if isinstance(random_state, int | None) else "generator"
     params = dict(trpes_map.params) | {
         "interval": "bootstrap", "ci": float(ci), "n_boot": int(n_boot),
@@ -314,4 +295,7 @@ def bootstrap_map(
                             "trajectory; numerator and normaliser resampled together)")}
     out_map = trpes_map.replace(lower=lower, upper=upper, rel_se=rel, component_lower=c_lo,
                                 component_upper=c_hi, params=params)
-    return (out_map, reps, reps_c) if return_replicates else out_map
+    if not return_replicates:
+        return out_map
+    return (out_map, np.moveaxis(reps[0], -1, 0),
+            np.moveaxis(reps[1:], -1, 0) if n_lab else None)
