@@ -92,23 +92,35 @@ def replicate_chunk(n_boot: int, per_replicate_bytes: int,
     return int(max(1, min(n_boot, budget // max(per_replicate_bytes, 1))))
 
 
-def chunk_plan(n_boot: int, n_time: int, per_bin_bytes: int, budget: int = MEMORY_BUDGET,
-               *, split_time: bool = True) -> list[tuple[int, int, int, int]]:
-    """Chunks ``(r0, r1, t0, t1)`` of resamples and time bins whose histograms fit
-    ``budget`` bytes (``per_bin_bytes``: one resample's histograms of one time bin).
+def chunk_plan(n_boot: int, n_time: int, per_bin_bytes: int, budget: int = MEMORY_BUDGET
+               ) -> list[tuple[int, int]]:
+    """Chunks ``(r0, r1)`` of resamples whose histograms over the whole time grid fit
+    ``budget`` bytes (``per_bin_bytes``: one resample's histograms of one time bin); a
+    chunked store is read once per chunk."""
+    n_rep = replicate_chunk(n_boot, per_bin_bytes * n_time, budget)
+    return [(r0, min(r0 + n_rep, n_boot)) for r0 in range(0, n_boot, n_rep)]
 
-    With ``split_time`` (the sticks are at hand, an in-memory ensemble) as many
-    resamples as fit one time bin, then as many time bins as fit (each stick is read
-    once per chunk of resamples); otherwise whole time ranges and
-    :func:`replicate_chunk` resamples (a chunked store is read once per chunk).
+
+#: bytes of replicate histograms deposited and broadened in one go when the sticks are at
+#: hand (:func:`stream_plan`): small enough to stay in the last-level cache
+WINDOW_BYTES = 16 * 2**20
+
+
+def stream_plan(n_boot: int, n_time: int, per_bin_bytes: int, y_bin_bytes: int,
+                budget: int = MEMORY_BUDGET) -> tuple[int, int, int]:
+    """Resamples per chunk, time bins per histogram window and per broadened window.
+
+    For an in-memory ensemble (its sorted sticks at hand): the histograms of a few
+    time bins (``per_bin_bytes`` each per resample, at most :data:`WINDOW_BYTES` and a
+    quarter of ``budget``) are deposited and broadened in energy at once, into a window
+    of broadened rows (``y_bin_bytes`` per bin and resample, at most half of
+    ``budget``) that then gets the normaliser and the time matrix.
     """
-    if split_time:
-        n_rep = int(max(1, min(n_boot, budget // max(per_bin_bytes, 1))))
-        n_win = int(max(1, min(n_time, budget // max(per_bin_bytes * n_rep, 1))))
-    else:
-        n_rep, n_win = replicate_chunk(n_boot, per_bin_bytes * n_time, budget), n_time
-    return [(r0, min(r0 + n_rep, n_boot), t0, min(t0 + n_win, n_time))
-            for r0 in range(0, n_boot, n_rep) for t0 in range(0, n_time, n_win)]
+    n_rep = int(max(1, min(n_boot, budget // max(8 * per_bin_bytes, 1))))
+    one = per_bin_bytes * n_rep
+    n_sub = int(max(1, min(n_time, WINDOW_BYTES // one, (budget // 4) // one)))
+    n_big = int(max(n_sub, min(n_time, (budget // 2) // max(y_bin_bytes * n_rep, 1))))
+    return n_rep, n_sub, (n_big // n_sub) * n_sub
 
 
 class CellSticks(NamedTuple):
@@ -174,17 +186,20 @@ def _dep_cells(start, delta, weight, src, tfrac, rw, acc, t0, t_lo, t_hi, n_comp
 
     ``acc`` (component, time - t0, fine bin, moment, resample) gets the contributions
     landing in time bins ``t_lo <= t < t_hi`` (a stick of bin t adds ``1 - tfrac`` of
-    itself to t and ``tfrac`` to t + 1; threads take disjoint time ranges). Each stick
-    adds ``moment_k * rw[src, :]`` to a contiguous row of all resamples (vector
-    multiply-adds, zeros included), and the sticks of one cell come one after another,
-    so the cell's rows stay in the first-level cache.
+    itself to t and ``tfrac`` to t + 1; threads take disjoint time ranges). The sticks
+    of one cell come one after another, so the cell's rows (moment, resample) stay in
+    the first-level cache; they are added four sticks at a time, each moment's row
+    getting ``sum_j moment_jk * rw[src_j, :]`` as contiguous vector multiply-adds over
+    the resamples (zeros included): four multiply-adds per load and store of the row.
+    ``rw`` (n_traj, n_rep) may hold small integers (int8: a smaller table in cache).
     """
     n_fine = acc.shape[2]
     order = acc.shape[3]
     n_rep = acc.shape[4]
     per_t = n_comp * n_fine
-    mom = np.empty(order)
     split = tfrac.shape[0] > 0
+    mom = np.zeros((2, 4, order))  # (share to t / to t + 1, stick of the group, moment)
+    wb = np.zeros((4, n_rep))  # the group's multiplicities as float64
     for cell in range(max(t_lo - 1, 0) * per_t, t_hi * per_t):
         s0 = start[cell]
         s1 = start[cell + 1]
@@ -196,29 +211,68 @@ def _dep_cells(start, delta, weight, src, tfrac, rw, acc, t0, t_lo, t_hi, n_comp
         b = rem - c * n_fine
         in0 = t >= t_lo
         in1 = split and t + 1 >= t_lo and t + 1 < t_hi
-        blk0 = acc[c0 + c, t - t0, b] if in0 else acc[0, 0, 0]
-        blk1 = acc[c0 + c, t + 1 - t0, b] if in1 else acc[0, 0, 0]
-        for s in range(s0, s1):
-            d = delta[s]
-            v = weight[s]
-            for k in range(order):
-                mom[k] = v
-                v *= d
-            w = rw[src[s]]
-            f = tfrac[s] if split else 0.0
-            if in0:
-                g = 1.0 - f
-                for k in range(order):
-                    mk = mom[k] * g
-                    row = blk0[k]
+        for g0 in range(s0, s1, 4):
+            n_g = min(4, s1 - g0)
+            any1 = False
+            for j in range(4):
+                if j < n_g:
+                    s = g0 + j
+                    f = tfrac[s] if split else 0.0
+                    any1 = any1 or f > 0.0
+                    d = delta[s]
+                    v = weight[s]
+                    for k in range(order):
+                        mom[0, j, k] = v * (1.0 - f)
+                        mom[1, j, k] = v * f
+                        v *= d
+                    w = rw[src[s]]
                     for r in range(n_rep):
-                        row[r] += mk * w[r]
-            if in1 and f > 0.0:
-                for k in range(order):
-                    mk = mom[k] * f
-                    row = blk1[k]
+                        wb[j, r] = w[r]
+                else:
+                    for k in range(order):
+                        mom[0, j, k] = 0.0
+                        mom[1, j, k] = 0.0
                     for r in range(n_rep):
-                        row[r] += mk * w[r]
+                        wb[j, r] = 0.0
+            for side in range(2):
+                if side == 0 and not in0:
+                    continue
+                if side == 1 and not (in1 and any1):
+                    continue
+                blk = acc[c0 + c, t + side - t0, b]
+                if order == 8:  # unrolled: the common case
+                    m = mom[side]
+                    m00, m01, m02, m03 = m[0, 0], m[0, 1], m[0, 2], m[0, 3]
+                    m04, m05, m06, m07 = m[0, 4], m[0, 5], m[0, 6], m[0, 7]
+                    m10, m11, m12, m13 = m[1, 0], m[1, 1], m[1, 2], m[1, 3]
+                    m14, m15, m16, m17 = m[1, 4], m[1, 5], m[1, 6], m[1, 7]
+                    m20, m21, m22, m23 = m[2, 0], m[2, 1], m[2, 2], m[2, 3]
+                    m24, m25, m26, m27 = m[2, 4], m[2, 5], m[2, 6], m[2, 7]
+                    m30, m31, m32, m33 = m[3, 0], m[3, 1], m[3, 2], m[3, 3]
+                    m34, m35, m36, m37 = m[3, 4], m[3, 5], m[3, 6], m[3, 7]
+                    for r in range(n_rep):
+                        x0 = wb[0, r]
+                        x1 = wb[1, r]
+                        x2 = wb[2, r]
+                        x3 = wb[3, r]
+                        blk[0, r] += m00 * x0 + m10 * x1 + m20 * x2 + m30 * x3
+                        blk[1, r] += m01 * x0 + m11 * x1 + m21 * x2 + m31 * x3
+                        blk[2, r] += m02 * x0 + m12 * x1 + m22 * x2 + m32 * x3
+                        blk[3, r] += m03 * x0 + m13 * x1 + m23 * x2 + m33 * x3
+                        blk[4, r] += m04 * x0 + m14 * x1 + m24 * x2 + m34 * x3
+                        blk[5, r] += m05 * x0 + m15 * x1 + m25 * x2 + m35 * x3
+                        blk[6, r] += m06 * x0 + m16 * x1 + m26 * x2 + m36 * x3
+                        blk[7, r] += m07 * x0 + m17 * x1 + m27 * x2 + m37 * x3
+                else:
+                    for k in range(order):
+                        a0 = mom[side, 0, k]
+                        a1 = mom[side, 1, k]
+                        a2 = mom[side, 2, k]
+                        a3 = mom[side, 3, k]
+                        row = blk[k]
+                        for r in range(n_rep):
+                            row[r] += (a0 * wb[0, r] + a1 * wb[1, r] + a2 * wb[2, r]
+                                       + a3 * wb[3, r])
 
 
 _COMPILED: dict[str, Any] = {}
@@ -231,9 +285,9 @@ def _compiled(name: str) -> Callable[..., Any] | None:
     if name not in _COMPILED:
         import numba
 
+        jit = numba.njit(cache=True, nogil=True, fastmath=True, boundscheck=False)
         fn = {"keys": _cell_keys, "scatter": _cell_scatter, "deposit": _dep_cells}[name]
-        _COMPILED[name] = numba.njit(cache=True, nogil=True, fastmath=True,
-                                     boundscheck=False)(fn)
+        _COMPILED[name] = jit(fn)
     return _COMPILED[name]
 
 
@@ -268,6 +322,14 @@ def sort_cells(tbin: np.ndarray, energy: np.ndarray, weight: np.ndarray,
                np.ascontiguousarray(src_traj, i64), tf, out.delta, out.weight, out.src,
                out.tfrac)
     return out
+
+
+def _compact(rw: np.ndarray) -> np.ndarray:
+    """The multiplicities as int8 when they are small integers (exact; an eighth of the
+    cache footprint), else contiguous float64."""
+    if rw.size and rw.min() >= 0 and rw.max() <= 127 and np.all(rw == np.floor(rw)):
+        return np.ascontiguousarray(rw, dtype=np.int8)
+    return np.ascontiguousarray(rw)
 
 
 def _time_split(start: np.ndarray, per_t: int, t0: int, t1: int, n_threads: int) -> list[int]:
@@ -337,7 +399,7 @@ def deposit_replicates(acc: np.ndarray, tbin: np.ndarray, energy: np.ndarray,
     if cells.n_bad:
         raise ValueError(f"{cells.n_bad} sticks fall outside the moment grid (time bin or "
                          "energy).")
-    rw = np.ascontiguousarray(rw, dtype=np.float64)
+    rw = _compact(np.asarray(rw, dtype=np.float64))
     per_t = cells.n_comp * cells.n_fine
     n_here = int(cells.start[(t0 + n_win) * per_t] - cells.start[max(t0 - 1, 0) * per_t])
     n_threads = (1 if n_here * n_rep < KD.MIN_STICKS_PER_THREAD or n_win < 2
@@ -368,59 +430,97 @@ def time_order(tbin: np.ndarray) -> np.ndarray | None:
     return np.argsort(tbin, kind="stable")
 
 
-def assemble_replicates(acc: np.ndarray, blocks: Any, cmat: np.ndarray, norm: np.ndarray,
-                        out: np.ndarray, *, n_threads: int | None = None) -> None:
-    """Add the maps of a chunk of resamples, from their histograms, to ``out`` (in place).
+class ReplicateBlocks(list):
+    """Banded broadening blocks ``(j0, j1, lo, hi, mat_t)`` for :func:`broaden_energy`:
+    those of :class:`._kernels_broadening.BroadeningBlocks` with each matrix transposed
+    and contiguous, shape (j1 - j0, (hi - lo) * order); ``n_energies`` as there."""
 
-    What :func:`._kernels_broadening.assemble` does for one resample (banded energy
-    broadening, normaliser, time matrix), for all resamples of the chunk at once: the
-    energy products take each time bin's (fine bin x moment, resample) block as one
-    matrix (the resamples are the columns), and the time matrix is one product over
-    the time bins of the window.
+    n_energies: int
+
+
+def replicate_blocks(blocks: Any) -> ReplicateBlocks:
+    """:class:`ReplicateBlocks` of :func:`._kernels_broadening.broadening_blocks`."""
+    out = ReplicateBlocks((j0, j1, lo, hi, np.ascontiguousarray(mat.T))
+                          for j0, j1, lo, hi, mat in blocks)
+    out.n_energies = blocks.n_energies
+    return out
+
+
+def broaden_energy(acc: np.ndarray, blocks: ReplicateBlocks, y: np.ndarray, *,
+                   n_threads: int | None = None) -> None:
+    """Energy broadening of a chunk of replicate histograms, all resamples at once.
+
+    Each time bin's (fine bin x moment, resample) block is one matrix, the resamples
+    its columns, multiplied by the banded broadening blocks (one single-threaded BLAS
+    product per time bin and energy block; energy blocks side by side in threads).
 
     Parameters
     ----------
     acc : ndarray, shape (n_comp, n_window, n_fine, order, n_rep)
-        Histograms of time bins ``t0 .. t0 + n_window - 1`` (:func:`deposit_replicates`).
-    blocks : BroadeningBlocks
-        :func:`._kernels_broadening.broadening_blocks` (rows bin-major, moment-minor).
+        Histograms (:func:`deposit_replicates`).
+    blocks : ReplicateBlocks
+        :func:`replicate_blocks` of the broadening blocks.
+    y : ndarray, shape (n_comp, n_window, n_energies, n_rep)
+        Output (overwritten; eV^-1 before the normaliser); ``y[c, t]`` contiguous.
+    n_threads : int, optional
+        Threads (default: the usable cores).
+    """
+    n_c, n_win, _, order, n_rep = acc.shape
+    n_threads = max(1, min(KD.usable_cores() if n_threads is None else n_threads,
+                           len(blocks)))
+    parts = [blocks[t::n_threads] for t in range(n_threads)]
+    y[...] = 0.0
+
+    def run(t: int) -> None:
+        for c in range(n_c):
+            for j0, j1, lo, hi, mat_t in parts[t]:
+                for i in range(n_win):
+                    np.dot(mat_t, acc[c, i, lo:hi].reshape((hi - lo) * order, n_rep),
+                           out=y[c, i, j0:j1])
+
+    with _single_blas():
+        if n_threads == 1:
+            run(0)
+        else:
+            with ThreadPoolExecutor(n_threads) as pool:
+                list(pool.map(run, range(n_threads)))
+
+
+def apply_time(y: np.ndarray, cmat: np.ndarray, norm: np.ndarray, out: np.ndarray) -> None:
+    """Normalise energy-broadened replicates and add their time convolution to ``out``.
+
+    Parameters
+    ----------
+    y : ndarray, shape (n_comp, n_window, n_energies, n_rep)
+        :func:`broaden_energy` of time bins ``t0 .. t0 + n_window - 1`` (scaled in place).
     cmat : ndarray, shape (n_delays, n_window)
         The time matrix's columns of the window.
     norm : ndarray, shape (n_rep, n_window)
         1 / normaliser of each resample and time bin.
     out : ndarray, shape (n_comp, n_delays, n_energies, n_rep)
         Replicate maps, added to (eV^-1).
-    n_threads : int, optional
-        Threads for the energy products (default: the usable cores).
     """
-    n_c, n_win, _, order, n_rep = acc.shape
+    n_c, n_win, n_e, n_rep = y.shape
     rows = np.flatnonzero(np.any(cmat != 0, axis=1))
     if rows.size == 0 or n_win == 0:
         return
     d0, d1 = int(rows[0]), int(rows[-1]) + 1
-    n_e = blocks.n_energies
-    scale = np.ascontiguousarray(norm.T)[:, None, :]  # (n_window, 1, n_rep)
-    n_threads = max(1, min(KD.usable_cores() if n_threads is None else n_threads,
-                           len(blocks)))
-    parts = [blocks[t::n_threads] for t in range(n_threads)]
-    y = np.empty((n_win, n_e, n_rep))
+    y *= norm.T[None, :, None, :]
     for c in range(n_c):
-        y.fill(0.0)
-
-        def run(t: int, c: int = c, y: np.ndarray = y) -> None:
-            for j0, j1, lo, hi, mat in parts[t]:
-                x = acc[c, :, lo:hi].reshape(n_win, (hi - lo) * order, n_rep)
-                y[:, j0:j1, :] = np.matmul(mat.T, x)
-
-        with _single_blas():
-            if n_threads == 1:
-                run(0)
-            else:
-                with ThreadPoolExecutor(n_threads) as pool:
-                    list(pool.map(run, range(n_threads)))
-        y *= scale
-        out[c, d0:d1] += (cmat[d0:d1] @ y.reshape(n_win, n_e * n_rep)).reshape(
+        out[c, d0:d1] += (cmat[d0:d1] @ y[c].reshape(n_win, n_e * n_rep)).reshape(
             d1 - d0, n_e, n_rep)
+
+
+def assemble_replicates(acc: np.ndarray, blocks: Any, cmat: np.ndarray, norm: np.ndarray,
+                        out: np.ndarray) -> None:
+    """Add the maps of a chunk of resamples, from their histograms, to ``out`` (in place):
+    what :func:`._kernels_broadening.assemble` does for one resample (banded energy
+    broadening, normaliser, time matrix), for all at once (:func:`broaden_energy`, then
+    :func:`apply_time`; arguments as there)."""
+    n_c, n_win, _, _, n_rep = acc.shape
+    y = np.empty((n_c, n_win, blocks.n_energies, n_rep))
+    broaden_energy(acc, blocks, y)
+    apply_time(y, cmat, norm, out)
 
 
 def _single_blas() -> Any:

@@ -152,6 +152,55 @@ def bootstrap_partial(block: Any, span: BlockSpan, opts: dict[str, Any]) -> dict
             "total": counts @ w_traj}
 
 
+def _stream(inp: dict[str, Any], counts: np.ndarray, opts: dict[str, Any], bmat: Any,
+            cmat: np.ndarray, normalise: str, reps: np.ndarray, *, budget: int,
+            progress: bool) -> None:
+    """Replicate maps of an in-memory ensemble (one block, its sorted sticks in ``inp``),
+    added to ``reps`` (1 + n_comp, n_delays, n_energies, n_boot).
+
+    Per chunk of resamples (:func:`._kernels_bootstrap.stream_plan`): the histograms of
+    a few time bins at a time are deposited into one reused buffer and broadened in
+    energy while in cache, then each window of broadened rows gets its normaliser and
+    its share of the time matrix.
+    """
+    n_boot = counts.shape[0]
+    n_c, n_time = reps.shape[0], opts["n_time"]
+    n_e = reps.shape[2]
+    n_rep, n_sub, n_big = KBS.stream_plan(n_boot, n_time,
+                                          8 * opts["order"] * n_c * opts["n_fine"],
+                                          8 * n_c * n_e, budget)
+    buf = np.zeros(n_c * n_sub * opts["n_fine"] * opts["order"] * n_rep)
+    fine = {"e_lo": opts["e_lo"], "h": opts["h"], "backend": opts["backend"],
+            "n_time": n_time}
+    w_traj = inp["w_traj"]
+    steps: Any = [(r0, t0) for r0 in range(0, n_boot, n_rep) for t0 in range(0, n_time, n_big)]
+    if progress:
+        from tqdm.auto import tqdm
+        steps = tqdm(steps, desc="bootstrap chunks", unit="chunk")
+    for r0, big0 in steps:
+        sub = counts[r0:r0 + n_rep]
+        rw = np.ascontiguousarray(sub.T)
+        r1, big1 = r0 + sub.shape[0], min(big0 + n_big, n_time)
+        if big0 == 0 or "norm" not in inp or inp["norm"][0] != r0:
+            res = {"alive": (sub * w_traj) @ inp["unit"], "total": sub @ w_traj}
+            inp["norm"] = (r0, _normalise(res, normalise))
+        y = np.empty((n_c, big1 - big0, n_e, r1 - r0))
+        for t0 in range(big0, big1, n_sub):
+            t1 = min(t0 + n_sub, big1)
+            acc = buf[:n_c * (t1 - t0) * opts["n_fine"] * opts["order"] * (r1 - r0)]
+            acc = acc.reshape(n_c, t1 - t0, opts["n_fine"], opts["order"], r1 - r0)
+            acc[...] = 0.0
+            KBS.deposit_replicates(acc, *inp["total"]["args"], rw, **inp["total"]["kw"],
+                                   t0=t0, **fine)
+            if "comp" in inp:
+                KBS.deposit_replicates(acc, *inp["comp"]["args"], rw, c0=1,
+                                       **inp["comp"]["kw"], t0=t0, **fine)
+            KBS.broaden_energy(acc, bmat, y[:, t0 - big0:t1 - big0])
+        KBS.apply_time(y, cmat[:, big0:big1], inp["norm"][1][:, big0:big1],
+                       reps[..., r0:r1])
+    inp.pop("norm", None)
+
+
 def _normalise(res: dict[str, Any], normalise: str) -> np.ndarray:
     """1 / normaliser per resample and grid time, shape (n_rep, n_time)."""
     den = res["alive"] if normalise == "alive" else np.repeat(
@@ -182,7 +231,7 @@ def _operators(model: TRPESModel, kinetic_energies: np.ndarray, delays: np.ndarr
     bmat = KB.broadening_blocks(kinetic_energies, e_lo=e_lo, h=h, n_fine=n_fine,
                                 fwhm=model.fwhm(probe, resolution), order=model.order,
                                 fwhm_of=fwhm_of)
-    return bmat, cmat
+    return KBS.replicate_blocks(bmat), cmat
 
 
 def bootstrap_map(
@@ -262,23 +311,26 @@ def bootstrap_map(
     bmat, cmat = _operators(model, kinetic_energies, delays, probe=probe, pump=pump,
                             resolution=resolution, convolve=convolve, e_lo=e_lo, h=h,
                             n_fine=n_fine)
-    plan = KBS.chunk_plan(int(n_boot), n_time, 8 * order * (1 + n_lab) * n_fine,
-                          KBS.MEMORY_BUDGET if budget is None else budget,
-                          split_time=isinstance(ens, Ensemble))
     # replicate maps, the resamples last (contiguous for the percentiles)
     reps = np.zeros((1 + n_lab, *trpes_map.shape, int(n_boot)))
-    steps: Any = plan
-    if progress:
-        from tqdm.auto import tqdm
-        steps = tqdm(plan, desc="bootstrap chunks", unit="chunk")
-    for r0, r1, t0, t1 in steps:
-        opts["counts"], opts["t0"], opts["t1"] = counts[r0:r1], t0, t1
-        res = reduce(source, bootstrap_partial, add, args=(opts,), fields=list(fields),
-                     client=client, scheduler=scheduler, progress=False,
-                     desc="bootstrap blocks")
-        KBS.assemble_replicates(res.pop("hist"), bmat, cmat[:, t0:t1],
-                                _normalise(res, normalise), reps[..., r0:r1])
-        del res
+    budget = KBS.MEMORY_BUDGET if budget is None else budget
+    per_bin = 8 * order * (1 + n_lab) * n_fine
+    if isinstance(ens, Ensemble):
+        _stream(opts["cache"][0], counts, opts, bmat, cmat, normalise, reps, budget=budget,
+                progress=progress)
+    else:
+        steps: Any = KBS.chunk_plan(int(n_boot), n_time, per_bin, budget)
+        if progress:
+            from tqdm.auto import tqdm
+            steps = tqdm(steps, desc="bootstrap chunks", unit="chunk")
+        for r0, r1 in steps:
+            opts["counts"] = counts[r0:r1]
+            res = reduce(source, bootstrap_partial, add, args=(opts,), fields=list(fields),
+                         client=client, scheduler=scheduler, progress=False,
+                         desc="bootstrap blocks")
+            KBS.assemble_replicates(res.pop("hist"), bmat, cmat, _normalise(res, normalise),
+                                    reps[..., r0:r1])
+            del res
     lower, upper, rel = KBS.percentile_summary(reps[0], trpes_map.intensity, ci, axis=-1)
     c_lo: dict[str, np.ndarray] = {}
     c_hi: dict[str, np.ndarray] = {}
