@@ -315,7 +315,7 @@ def bootstrap_map(
     reps = np.zeros((1 + n_lab, *trpes_map.shape, int(n_boot)))
     budget = KBS.MEMORY_BUDGET if budget is None else budget
     per_bin = 8 * order * (1 + n_lab) * n_fine
-    if isinstance(ens, Ensemble):
+    if isinstance(ens, Ensemble) and opts["cache"][0]["total"]["kw"]["cells"] is not None:
         _stream(opts["cache"][0], counts, opts, bmat, cmat, normalise, reps, budget=budget,
                 progress=progress)
     else:
