@@ -80,7 +80,12 @@ def block_resampling_inputs(block: Any, opts: dict[str, Any],
     extra = {"ionisation_shifts": opts["ionisation_shifts"],
              "absorbing_state": opts["absorbing_state"], "absorbing": opts["absorbing"],
              "t_end": opts["t_end"]}
-    al = block_alive(block, w_traj=w_traj, probe=opts["probe"], **grid, **extra)
+    if model is not None and model.alive_parts is not None:  # kept by the map
+        has_any, absorbed, ext_bin, ext_first = model.alive_parts
+    else:
+        al = block_alive(block, w_traj=w_traj, probe=opts["probe"], **grid, **extra)
+        has_any, absorbed, ext_bin, ext_first = (al.has_data.any(axis=1), al.absorbed,
+                                                 al.ext_bin, al.ext_first)
     bs: Any = model
     if model is None or model.sticks is None or model.tbin is None:
         bs = block_sticks(block, probe=opts["probe"], cross_section=opts["cross_section"],
@@ -89,10 +94,9 @@ def block_resampling_inputs(block: Any, opts: dict[str, Any],
                           **extra)
     tix = block.traj_index
     tbin_s, tfrac_s = time_bins(block.snapshots["time"].to_numpy(), opts["start"], opts["dt"])
-    unit = KBS.unit_alive(tix, tbin_s, tfrac_s, np.asarray(al.has_data.any(axis=1)),
-                          block.n_trajectories, opts["n_time"],
-                          absorbed_traj=tix[al.absorbed], ext_bin=al.ext_bin,
-                          ext_first=al.ext_first)
+    unit = KBS.unit_alive(tix, tbin_s, tfrac_s, np.asarray(has_any), block.n_trajectories,
+                          opts["n_time"], absorbed_traj=tix[absorbed], ext_bin=ext_bin,
+                          ext_first=ext_first)
     s = bs.sticks
     src = tix[s.snapshot].astype(np.int32)
     fine = {"n_time": opts["n_time"], "e_lo": opts["e_lo"], "h": opts["h"],

@@ -76,6 +76,11 @@ class BlockSticks(NamedTuple):
         Sum of the squared trajectory weights (for the Kish effective size).
     fill : TimeFill or None
         The missing-data rescaling applied (its ``alive`` is the map's normaliser).
+    alive_parts : tuple or None
+        What the alive weight is made of, per snapshot and trajectory (for resampling
+        it, :mod:`.bootstrap`): snapshots with data for some channel (bool,
+        (n_snapshots,)), and the absorbed trajectories' last rows, first grid index
+        after the stop and share of it (:class:`BlockAlive`).
     """
 
     sticks: StickSpectrum
@@ -91,6 +96,7 @@ class BlockSticks(NamedTuple):
     counts: dict[str, int] | None = None
     weight_sq: float = 0.0
     fill: TimeFill | None = None
+    alive_parts: tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray] | None = None
 
 
 def check_trpes_inputs(source: Any, *, probe: Any, pump: Any, decompose: Any
@@ -447,7 +453,9 @@ def block_sticks(block: Any, *, probe: GaussianPulse, cross_section: CrossSectio
                        comp_src=comp_src, comp_weight=comp_weight, alive=al.alive,
                        alive_count=al.alive_count, total_weight=float(w_traj.sum()),
                        alive_channel=al.alive_channel, counts=al.counts,
-                       weight_sq=float(np.sum(w_traj * w_traj)), fill=fill)
+                       weight_sq=float(np.sum(w_traj * w_traj)), fill=fill,
+                       alive_parts=(al.has_data.any(axis=1), al.absorbed, al.ext_bin,
+                                    al.ext_first))
 
 
 def prepare_sticks(
