@@ -310,8 +310,8 @@ def sort_cells(tbin: np.ndarray, energy: np.ndarray, weight: np.ndarray,
     tf = np.zeros(0) if tfrac is None else np.ascontiguousarray(tfrac, np.float64)
     key = np.empty(n, i64)
     delta = np.empty(n)
-    counts = keys_fn(np.ascontiguousarray(tbin, i64), np.ascontiguousarray(energy, np.float64),
-                     np.zeros(0, i64) if comp is None else np.ascontiguousarray(comp, i64),
+    counts = keys_fn(_int_array(tbin), np.ascontiguousarray(energy, np.float64),
+                     np.zeros(0, i64) if comp is None else _int_array(comp),
                      tf, n_time, n_comp, n_fine, 0.5 - e_lo / h, 1.0 / h, key, delta)
     start = np.cumsum(counts)
     m = int(start[-1])
@@ -319,9 +319,14 @@ def sort_cells(tbin: np.ndarray, energy: np.ndarray, weight: np.ndarray,
                      src=np.empty(m, np.int32), tfrac=np.empty(m if tf.size else 0),
                      n_comp=n_comp, n_fine=n_fine, n_bad=n - m)
     scatter_fn(key, start, delta, np.ascontiguousarray(weight, np.float64),
-               np.ascontiguousarray(src_traj, i64), tf, out.delta, out.weight, out.src,
-               out.tfrac)
+               _int_array(src_traj), tf, out.delta, out.weight, out.src, out.tfrac)
     return out
+
+
+def _int_array(a: np.ndarray) -> np.ndarray:
+    """Contiguous 32- or 64-bit integers (no copy when already so)."""
+    a = np.asarray(a)
+    return np.ascontiguousarray(a if a.dtype in (np.int32, np.int64) else a.astype(np.int64))
 
 
 def _compact(rw: np.ndarray) -> np.ndarray:
