@@ -329,9 +329,13 @@ def _int_array(a: np.ndarray) -> np.ndarray:
     return np.ascontiguousarray(a if a.dtype in (np.int32, np.int64) else a.astype(np.int64))
 
 
-def _compact(rw: np.ndarray) -> np.ndarray:
-    """The multiplicities as int8 when they are small integers (exact; an eighth of the
-    cache footprint), else contiguous float64."""
+def compact_counts(rw: np.ndarray) -> np.ndarray:
+    """Multiplicities (n_traj, n_rep) as int8 when they are small integers (exact; an
+    eighth of the cache footprint of :func:`deposit_replicates`), else contiguous
+    float64; convert once per chunk of resamples."""
+    if rw.dtype == np.int8 and rw.flags.c_contiguous:
+        return rw
+    rw = np.asarray(rw, dtype=np.float64)
     if rw.size and rw.min() >= 0 and rw.max() <= 127 and np.all(rw == np.floor(rw)):
         return np.ascontiguousarray(rw, dtype=np.int8)
     return np.ascontiguousarray(rw)
@@ -404,7 +408,7 @@ def deposit_replicates(acc: np.ndarray, tbin: np.ndarray, energy: np.ndarray,
     if cells.n_bad:
         raise ValueError(f"{cells.n_bad} sticks fall outside the moment grid (time bin or "
                          "energy).")
-    rw = _compact(np.asarray(rw, dtype=np.float64))
+    rw = compact_counts(rw)
     per_t = cells.n_comp * cells.n_fine
     n_here = int(cells.start[(t0 + n_win) * per_t] - cells.start[max(t0 - 1, 0) * per_t])
     n_threads = (1 if n_here * n_rep < KD.MIN_STICKS_PER_THREAD or n_win < 2
@@ -528,14 +532,22 @@ def assemble_replicates(acc: np.ndarray, blocks: Any, cmat: np.ndarray, norm: np
     apply_time(y, cmat, norm, out)
 
 
+_BLAS: dict[str, Any] = {}
+
+
 def _single_blas() -> Any:
     """Context holding BLAS at one thread (threadpoolctl, installed with scikit-learn;
-    else nothing): many small products side by side, where BLAS threads only cost."""
-    try:
-        from threadpoolctl import threadpool_limits
-    except ImportError:  # pragma: no cover - threadpoolctl comes with scikit-learn
-        return contextlib.nullcontext()
-    return threadpool_limits(limits=1, user_api="blas")
+    else nothing): many small products side by side, where BLAS threads only cost. The
+    controller (which scans the loaded libraries) is made once."""
+    if "ctl" not in _BLAS:
+        try:
+            import threadpoolctl
+
+            _BLAS["ctl"] = threadpoolctl.ThreadpoolController()
+        except Exception:  # pragma: no cover - threadpoolctl missing or failing
+            _BLAS["ctl"] = None
+    ctl = _BLAS["ctl"]
+    return contextlib.nullcontext() if ctl is None else ctl.limit(limits=1, user_api="blas")
 
 
 def percentile_summary(reps: np.ndarray, estimate: np.ndarray, ci: float, *, axis: int = 0

@@ -183,7 +183,7 @@ def _stream(inp: dict[str, Any], counts: np.ndarray, opts: dict[str, Any], bmat:
         steps = tqdm(steps, desc="bootstrap chunks", unit="chunk")
     for r0, big0 in steps:
         sub = counts[r0:r0 + n_rep]
-        rw = np.ascontiguousarray(sub.T)
+        rw = KBS.compact_counts(sub.T)
         r1, big1 = r0 + sub.shape[0], min(big0 + n_big, n_time)
         if big0 == 0 or "norm" not in inp or inp["norm"][0] != r0:
             res = {"alive": (sub * w_traj) @ inp["unit"], "total": sub @ w_traj}

@@ -196,6 +196,12 @@ def _last_rows(block: Any, time: np.ndarray) -> np.ndarray:
     """Row of the last snapshot of each trajectory of a block, shape (n_trajectories,)."""
     tix = block.traj_index
     out = np.full(block.n_trajectories, -1, dtype=np.int64)
+    if time.size and np.all(tix[1:] >= tix[:-1]):  # trajectory-major (the usual case)
+        same = tix[1:] == tix[:-1]
+        if np.all(time[1:][same] >= time[:-1][same]):  # ... and in time order: no sort
+            rows = np.flatnonzero(np.r_[~same, True])
+            out[tix[rows]] = rows
+            return out
     if time.size:
         order = np.lexsort((time, tix))
         ends = np.r_[tix[order][1:] != tix[order][:-1], True]
