@@ -16,7 +16,9 @@ import numpy as np
 import pytest
 
 from ensemblelab.compute.spectroscopy import _kernels_bootstrap as KBS
+from ensemblelab.compute.spectroscopy import _kernels_broadening as KB
 from ensemblelab.compute.spectroscopy import _kernels_deposit as KD
+from ensemblelab.compute.spectroscopy import _kernels_replicate_maps as KRM
 from ensemblelab.compute.spectroscopy._reference_bootstrap import naive_bootstrap_maps
 from ensemblelab.compute.spectroscopy.pulses import GaussianPulse
 from ensemblelab.compute.spectroscopy.replicates import trpes_with_replicates
@@ -158,3 +160,28 @@ def test_numpy_fallback_equals_the_compiled_path(monkeypatch):
     for lab in fast.component_lower:
         np.testing.assert_allclose(slow.component_upper[lab], fast.component_upper[lab],
                                    rtol=0, atol=1e-12 * peak)
+
+
+@pytest.mark.parametrize("convolve", [True, False])
+def test_replicate_maps_equal_one_assemble_per_resample(convolve):
+    """All resamples at once (energy products per time bin, one time product) against
+    _kernels_broadening.assemble called once per resample with its normaliser."""
+    rng = np.random.default_rng(7)
+    n_c, n_time, n_fine, order, n_rep, h = 2, 9, 40, 8, 5, 0.05
+    acc = rng.random((n_c, n_time, n_fine, order, n_rep))
+    energies = np.linspace(0.1, 1.9, 23)
+    blocks = KB.broadening_blocks(energies, e_lo=0.0, h=h, n_fine=n_fine, fwhm=4 * h,
+                                  order=order)
+    times = np.arange(n_time) * 2.0
+    delays = np.linspace(0.0, 16.0, 6)
+    cmat = KB.time_matrix(delays, times, sigma=3.0 if convolve else None, t_known=16.0)
+    norm = rng.uniform(0.5, 2.0, (n_rep, n_time))
+    norm[1, 3] = 0.0  # a time with no alive weight
+    out = np.zeros((n_c, delays.size, energies.size, n_rep))
+    for t0, t1 in ((0, 4), (4, n_time)):  # two time windows add up
+        KRM.assemble_replicates(np.ascontiguousarray(acc[:, t0:t1]),
+                                KRM.replicate_blocks(blocks), cmat[:, t0:t1],
+                                norm[:, t0:t1], out)
+    for r in range(n_rep):
+        ref = KB.assemble(KBS.per_resample(acc, r), blocks, cmat * norm[r][None, :])
+        np.testing.assert_allclose(out[..., r], ref, rtol=0, atol=1e-12 * np.abs(ref).max())

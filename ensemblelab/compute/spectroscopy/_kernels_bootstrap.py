@@ -12,22 +12,30 @@ numerator and denominator from the same draw.
 
 * :func:`bootstrap_counts` draws the multiplicities, shape (n_boot, n_trajectories).
 * :func:`unit_alive` gives the per-trajectory alive profiles of a block.
-* :func:`deposit_replicates` deposits a block's sticks for a chunk of resamples at once
-  (compiled with numba when installed: one pass over the sticks, in time order, each
-  stick adding its ``order`` moments for every resample of the chunk; the accumulator
-  keeps a time bin's rows of all resamples together so they stay in cache; otherwise
-  one :func:`._kernels_deposit.deposit_moments` call per resample).
-* :func:`replicate_chunk` says how many resamples fit a memory budget.
-* :func:`percentile_summary` turns replicate maps into percentile intervals and the
-  relative standard error.
+* :func:`sort_cells` orders a block's sticks by accumulator cell (time bin,
+  component, fine bin; a compiled counting sort, made once and reused).
+* :func:`deposit_replicates` deposits them for a chunk of resamples and a window of
+  time bins at once into an accumulator (component, time, fine bin, moment, resample):
+  the resamples innermost, so a stick adds ``moment_k * c[n, :]`` as one contiguous
+  vector multiply-add per moment over every resample of the chunk (zeros included;
+  the multiplicities as int8 when small integers), four sticks of a cell at a time
+  while the cell's rows sit in the first-level cache; threads take disjoint time
+  ranges. Compiled with numba when installed (compute-bound: a few times fewer
+  cycles per stick and resample than touching one cache line per resample, see
+  ``benchmarks/bench_trpes_bootstrap.py``); otherwise one
+  :func:`._kernels_deposit.deposit_moments` call per resample.
+* :func:`chunk_plan` / :func:`stream_plan` size the chunks of resamples and windows
+  of time bins to a memory budget (:func:`replicate_chunk`: resamples per chunk).
+* :func:`percentile_summary` turns replicate maps into percentile intervals (those of
+  ``np.quantile``, by one partition per pixel) and the relative standard error.
 
+:mod:`._kernels_replicate_maps` turns the histograms into maps, all resamples at once.
 The naive reference twin is :mod:`._reference_bootstrap` (a loop over resampled
 ensembles, each through :func:`~.maps.compute_trpes`); tests compare the two.
 """
 
 from __future__ import annotations
 
-import contextlib
 import math
 from collections.abc import Callable
 from concurrent.futures import ThreadPoolExecutor
@@ -37,10 +45,10 @@ import numpy as np
 
 from . import _kernels_deposit as KD
 
-__all__ = ["bootstrap_counts", "unit_alive", "deposit_replicates", "per_resample",
-           "time_order",
-           "replicate_chunk",
-           "percentile_summary", "MEMORY_BUDGET"]
+__all__ = ["bootstrap_counts", "unit_alive", "CellSticks", "sort_cells",
+           "deposit_replicates", "compact_counts", "per_resample", "replicate_chunk",
+           "chunk_plan", "stream_plan", "percentile_summary", "MEMORY_BUDGET",
+           "WINDOW_BYTES"]
 
 #: bytes the replicate histograms of one chunk may take (the chunk of resamples shrinks
 #: to fit; at least one resample per chunk)
@@ -430,124 +438,6 @@ def per_resample(acc: np.ndarray, r: int) -> np.ndarray:
     """Resample r's histograms (order, comp, time, fine) of an accumulator (comp, time,
     fine, moment, resample): a strided view."""
     return np.moveaxis(acc[..., r], -1, 0)
-
-
-def time_order(tbin: np.ndarray) -> np.ndarray | None:
-    """Stable order of the sticks by time bin (None when they already are)."""
-    if tbin.size < 2 or np.all(tbin[1:] >= tbin[:-1]):
-        return None
-    return np.argsort(tbin, kind="stable")
-
-
-class ReplicateBlocks(list):
-    """Banded broadening blocks ``(j0, j1, lo, hi, mat_t)`` for :func:`broaden_energy`:
-    those of :class:`._kernels_broadening.BroadeningBlocks` with each matrix transposed
-    and contiguous, shape (j1 - j0, (hi - lo) * order); ``n_energies`` as there."""
-
-    n_energies: int
-
-
-def replicate_blocks(blocks: Any) -> ReplicateBlocks:
-    """:class:`ReplicateBlocks` of :func:`._kernels_broadening.broadening_blocks`."""
-    out = ReplicateBlocks((j0, j1, lo, hi, np.ascontiguousarray(mat.T))
-                          for j0, j1, lo, hi, mat in blocks)
-    out.n_energies = blocks.n_energies
-    return out
-
-
-def broaden_energy(acc: np.ndarray, blocks: ReplicateBlocks, y: np.ndarray, *,
-                   n_threads: int | None = None) -> None:
-    """Energy broadening of a chunk of replicate histograms, all resamples at once.
-
-    Each time bin's (fine bin x moment, resample) block is one matrix, the resamples
-    its columns, multiplied by the banded broadening blocks (one single-threaded BLAS
-    product per time bin and energy block; energy blocks side by side in threads).
-
-    Parameters
-    ----------
-    acc : ndarray, shape (n_comp, n_window, n_fine, order, n_rep)
-        Histograms (:func:`deposit_replicates`).
-    blocks : ReplicateBlocks
-        :func:`replicate_blocks` of the broadening blocks.
-    y : ndarray, shape (n_comp, n_window, n_energies, n_rep)
-        Output (overwritten; eV^-1 before the normaliser); ``y[c, t]`` contiguous.
-    n_threads : int, optional
-        Threads (default: the usable cores).
-    """
-    n_c, n_win, _, order, n_rep = acc.shape
-    n_threads = max(1, min(KD.usable_cores() if n_threads is None else n_threads,
-                           len(blocks)))
-    parts = [blocks[t::n_threads] for t in range(n_threads)]
-    y[...] = 0.0
-
-    def run(t: int) -> None:
-        for c in range(n_c):
-            for j0, j1, lo, hi, mat_t in parts[t]:
-                for i in range(n_win):
-                    np.dot(mat_t, acc[c, i, lo:hi].reshape((hi - lo) * order, n_rep),
-                           out=y[c, i, j0:j1])
-
-    with _single_blas():
-        if n_threads == 1:
-            run(0)
-        else:
-            with ThreadPoolExecutor(n_threads) as pool:
-                list(pool.map(run, range(n_threads)))
-
-
-def apply_time(y: np.ndarray, cmat: np.ndarray, norm: np.ndarray, out: np.ndarray) -> None:
-    """Normalise energy-broadened replicates and add their time convolution to ``out``.
-
-    Parameters
-    ----------
-    y : ndarray, shape (n_comp, n_window, n_energies, n_rep)
-        :func:`broaden_energy` of time bins ``t0 .. t0 + n_window - 1`` (scaled in place).
-    cmat : ndarray, shape (n_delays, n_window)
-        The time matrix's columns of the window.
-    norm : ndarray, shape (n_rep, n_window)
-        1 / normaliser of each resample and time bin.
-    out : ndarray, shape (n_comp, n_delays, n_energies, n_rep)
-        Replicate maps, added to (eV^-1).
-    """
-    n_c, n_win, n_e, n_rep = y.shape
-    rows = np.flatnonzero(np.any(cmat != 0, axis=1))
-    if rows.size == 0 or n_win == 0:
-        return
-    d0, d1 = int(rows[0]), int(rows[-1]) + 1
-    y *= norm.T[None, :, None, :]
-    for c in range(n_c):
-        out[c, d0:d1] += (cmat[d0:d1] @ y[c].reshape(n_win, n_e * n_rep)).reshape(
-            d1 - d0, n_e, n_rep)
-
-
-def assemble_replicates(acc: np.ndarray, blocks: Any, cmat: np.ndarray, norm: np.ndarray,
-                        out: np.ndarray) -> None:
-    """Add the maps of a chunk of resamples, from their histograms, to ``out`` (in place):
-    what :func:`._kernels_broadening.assemble` does for one resample (banded energy
-    broadening, normaliser, time matrix), for all at once (:func:`broaden_energy`, then
-    :func:`apply_time`; arguments as there)."""
-    n_c, n_win, _, _, n_rep = acc.shape
-    y = np.empty((n_c, n_win, blocks.n_energies, n_rep))
-    broaden_energy(acc, blocks, y)
-    apply_time(y, cmat, norm, out)
-
-
-_BLAS: dict[str, Any] = {}
-
-
-def _single_blas() -> Any:
-    """Context holding BLAS at one thread (threadpoolctl, installed with scikit-learn;
-    else nothing): many small products side by side, where BLAS threads only cost. The
-    controller (which scans the loaded libraries) is made once."""
-    if "ctl" not in _BLAS:
-        try:
-            import threadpoolctl
-
-            _BLAS["ctl"] = threadpoolctl.ThreadpoolController()
-        except Exception:  # pragma: no cover - threadpoolctl missing or failing
-            _BLAS["ctl"] = None
-    ctl = _BLAS["ctl"]
-    return contextlib.nullcontext() if ctl is None else ctl.limit(limits=1, user_api="blas")
 
 
 def percentile_summary(reps: np.ndarray, estimate: np.ndarray, ci: float, *, axis: int = 0

@@ -14,10 +14,16 @@ accuracy").
 
 No sticks are made again: the sticks are linear in the trajectory weights, so each
 resample's moment histograms are deposited from the same sticks with the resample's
-multiplicities (:mod:`._kernels_bootstrap`), a chunk of resamples at a time within a
-memory budget (an in-memory ensemble reuses the map's own sticks; a chunked store is
-read once per chunk). Memory: the chunk's histograms plus the replicate maps
-(``n_boot x (1 + n_components) x n_delays x n_energies`` floats, for the percentiles).
+multiplicities (:mod:`._kernels_bootstrap`, all resamples of a chunk in one pass, the
+sticks sorted by cell once), and broadened into maps for all resamples at once
+(:mod:`._kernels_replicate_maps`). An in-memory ensemble reuses the map's own sticks
+and alive inputs and streams over windows of time bins (histograms of a few bins at a
+time, broadened while in cache; :func:`_stream`); a chunked store is read once per
+chunk of resamples (:func:`bootstrap_partial`, histograms over the whole time grid).
+Memory: within :data:`._kernels_bootstrap.MEMORY_BUDGET` for the histograms and
+broadened rows, plus the replicate maps (``(1 + n_components) x n_delays x n_energies
+x n_boot`` floats, for the percentiles) and, in memory, the sorted sticks (28 bytes
+each).
 
 Snapshots without data for every channel leave numerator and alive weight in each
 resample as in the map. Not covered: data missing for some cation channels only, or
@@ -38,6 +44,7 @@ from ...errors import SchemaError
 from ..engine import BlockSpan, add, as_source, reduce
 from . import _kernels_bootstrap as KBS
 from . import _kernels_broadening as KB
+from . import _kernels_replicate_maps as KRM
 from ._checks import time_bins
 from .cross_sections import resolve_cross_section
 from .model import TRPESModel
@@ -176,33 +183,37 @@ def _stream(inp: dict[str, Any], counts: np.ndarray, opts: dict[str, Any], bmat:
     buf = np.zeros(n_c * n_sub * opts["n_fine"] * opts["order"] * n_rep)
     fine = {"e_lo": opts["e_lo"], "h": opts["h"], "backend": opts["backend"],
             "n_time": n_time}
-    w_traj = inp["w_traj"]
-    steps: Any = [(r0, t0) for r0 in range(0, n_boot, n_rep) for t0 in range(0, n_time, n_big)]
+    w_traj, size = inp["w_traj"], opts["n_fine"] * opts["order"]
+    bar = None
     if progress:
         from tqdm.auto import tqdm
-        steps = tqdm(steps, desc="bootstrap chunks", unit="chunk")
-    for r0, big0 in steps:
+        bar = tqdm(total=-(-n_boot // n_rep) * -(-n_time // n_big), desc="bootstrap windows",
+                   unit="window")
+    for r0 in range(0, n_boot, n_rep):
         sub = counts[r0:r0 + n_rep]
+        r1 = r0 + sub.shape[0]
         rw = KBS.compact_counts(sub.T)
-        r1, big1 = r0 + sub.shape[0], min(big0 + n_big, n_time)
-        if big0 == 0 or "norm" not in inp or inp["norm"][0] != r0:
-            res = {"alive": (sub * w_traj) @ inp["unit"], "total": sub @ w_traj}
-            inp["norm"] = (r0, _normalise(res, normalise))
-        y = np.empty((n_c, big1 - big0, n_e, r1 - r0))
-        for t0 in range(big0, big1, n_sub):
-            t1 = min(t0 + n_sub, big1)
-            acc = buf[:n_c * (t1 - t0) * opts["n_fine"] * opts["order"] * (r1 - r0)]
-            acc = acc.reshape(n_c, t1 - t0, opts["n_fine"], opts["order"], r1 - r0)
-            acc[...] = 0.0
-            KBS.deposit_replicates(acc, *inp["total"]["args"], rw, **inp["total"]["kw"],
-                                   t0=t0, **fine)
-            if "comp" in inp:
-                KBS.deposit_replicates(acc, *inp["comp"]["args"], rw, c0=1,
-                                       **inp["comp"]["kw"], t0=t0, **fine)
-            KBS.broaden_energy(acc, bmat, y[:, t0 - big0:t1 - big0])
-        KBS.apply_time(y, cmat[:, big0:big1], inp["norm"][1][:, big0:big1],
-                       reps[..., r0:r1])
-    inp.pop("norm", None)
+        norm = _normalise({"alive": (sub * w_traj) @ inp["unit"], "total": sub @ w_traj},
+                          normalise)
+        for big0 in range(0, n_time, n_big):
+            big1 = min(big0 + n_big, n_time)
+            y = np.empty((n_c, big1 - big0, n_e, r1 - r0))
+            for t0 in range(big0, big1, n_sub):
+                t1 = min(t0 + n_sub, big1)
+                acc = buf[:n_c * (t1 - t0) * size * (r1 - r0)].reshape(
+                    n_c, t1 - t0, opts["n_fine"], opts["order"], r1 - r0)
+                acc[...] = 0.0
+                KBS.deposit_replicates(acc, *inp["total"]["args"], rw,
+                                       **inp["total"]["kw"], t0=t0, **fine)
+                if "comp" in inp:
+                    KBS.deposit_replicates(acc, *inp["comp"]["args"], rw, c0=1,
+                                           **inp["comp"]["kw"], t0=t0, **fine)
+                KRM.broaden_energy(acc, bmat, y[:, t0 - big0:t1 - big0])
+            KRM.apply_time(y, cmat[:, big0:big1], norm[:, big0:big1], reps[..., r0:r1])
+            if bar is not None:
+                bar.update()
+    if bar is not None:
+        bar.close()
 
 
 def _normalise(res: dict[str, Any], normalise: str) -> np.ndarray:
@@ -235,7 +246,7 @@ def _operators(model: TRPESModel, kinetic_energies: np.ndarray, delays: np.ndarr
     bmat = KB.broadening_blocks(kinetic_energies, e_lo=e_lo, h=h, n_fine=n_fine,
                                 fwhm=model.fwhm(probe, resolution), order=model.order,
                                 fwhm_of=fwhm_of)
-    return KBS.replicate_blocks(bmat), cmat
+    return KRM.replicate_blocks(bmat), cmat
 
 
 def bootstrap_map(
@@ -332,7 +343,7 @@ def bootstrap_map(
             res = reduce(source, bootstrap_partial, add, args=(opts,), fields=list(fields),
                          client=client, scheduler=scheduler, progress=False,
                          desc="bootstrap blocks")
-            KBS.assemble_replicates(res.pop("hist"), bmat, cmat, _normalise(res, normalise),
+            KRM.assemble_replicates(res.pop("hist"), bmat, cmat, _normalise(res, normalise),
                                     reps[..., r0:r1])
             del res
     lower, upper, rel = KBS.percentile_summary(reps[0], trpes_map.intensity, ci, axis=-1)
