@@ -110,22 +110,20 @@ def block_resampling_inputs(block: Any, opts: dict[str, Any],
             "n_fine": opts["n_fine"]}
     compiled = opts["backend"] in ("auto", "numba")
     out: dict[str, Any] = {"w_traj": w_traj, "unit": unit}
-    arrays = (bs.tbin, s.energy, s.weight, src)
-    out["total"] = {"args": arrays, "kw": {"tfrac": bs.tfrac}}
+    out["total"] = {"tbin": bs.tbin, "energy": s.energy, "weight": s.weight,
+                    "src_traj": src, "tfrac": bs.tfrac}
     if bs.comp is not None:
         cs = bs.comp_src
-        tb = bs.tbin if cs is None else bs.tbin[cs]
-        arrays = (tb, s.energy if cs is None else s.energy[cs],
-                  s.weight if bs.comp_weight is None else bs.comp_weight,
-                  src if cs is None else src[cs])
-        out["comp"] = {"args": arrays, "kw": {
-            "comp": bs.comp, "n_comp": opts["n_comp"],
-            "tfrac": None if bs.tfrac is None else (bs.tfrac if cs is None else bs.tfrac[cs])}}
-    for part in ("total", "comp"):
+        out["comp"] = {"tbin": bs.tbin if cs is None else bs.tbin[cs],
+                       "energy": s.energy if cs is None else s.energy[cs],
+                       "weight": s.weight if bs.comp_weight is None else bs.comp_weight,
+                       "src_traj": src if cs is None else src[cs], "comp": bs.comp,
+                       "n_comp": opts["n_comp"],
+                       "tfrac": None if bs.tfrac is None else (
+                           bs.tfrac if cs is None else bs.tfrac[cs])}
+    for part in ("total", "comp"):  # stick arrays (and cells) as deposit_replicates takes
         if part in out:
-            kw = out[part]["kw"]
-            kw["cells"] = KBS.sort_cells(*out[part]["args"], **fine, **kw) if compiled \
-                else None
+            out[part]["cells"] = KBS.sort_cells(**out[part], **fine) if compiled else None
     return out
 
 
@@ -154,10 +152,9 @@ def bootstrap_partial(block: Any, span: BlockSpan, opts: dict[str, Any]) -> dict
     acc = np.zeros((1 + n_lab, t1 - t0, opts["n_fine"], opts["order"], counts.shape[0]))
     fine = {"e_lo": opts["e_lo"], "h": opts["h"], "backend": opts["backend"], "t0": t0,
             "n_time": opts["n_time"]}
-    KBS.deposit_replicates(acc, *inp["total"]["args"], rw, **inp["total"]["kw"], **fine)
+    KBS.deposit_replicates(acc, rw=rw, **inp["total"], **fine)
     if "comp" in inp:
-        KBS.deposit_replicates(acc, *inp["comp"]["args"], rw, c0=1, **inp["comp"]["kw"],
-                               **fine)
+        KBS.deposit_replicates(acc, rw=rw, c0=1, **inp["comp"], **fine)
     w_traj = inp["w_traj"]
     return {"hist": acc, "alive": (counts * w_traj) @ inp["unit"][:, t0:t1],
             "total": counts @ w_traj}
@@ -203,11 +200,9 @@ def _stream(inp: dict[str, Any], counts: np.ndarray, opts: dict[str, Any], bmat:
                 acc = buf[:n_c * (t1 - t0) * size * (r1 - r0)].reshape(
                     n_c, t1 - t0, opts["n_fine"], opts["order"], r1 - r0)
                 acc[...] = 0.0
-                KBS.deposit_replicates(acc, *inp["total"]["args"], rw,
-                                       **inp["total"]["kw"], t0=t0, **fine)
+                KBS.deposit_replicates(acc, rw=rw, t0=t0, **inp["total"], **fine)
                 if "comp" in inp:
-                    KBS.deposit_replicates(acc, *inp["comp"]["args"], rw, c0=1,
-                                           **inp["comp"]["kw"], t0=t0, **fine)
+                    KBS.deposit_replicates(acc, rw=rw, c0=1, t0=t0, **inp["comp"], **fine)
                 KRM.broaden_energy(acc, bmat, y[:, t0 - big0:t1 - big0])
             KRM.apply_time(y, cmat[:, big0:big1], norm[:, big0:big1], reps[..., r0:r1])
             if bar is not None:
@@ -330,7 +325,7 @@ def bootstrap_map(
     reps = np.zeros((1 + n_lab, *trpes_map.shape, int(n_boot)))
     budget = KBS.MEMORY_BUDGET if budget is None else budget
     per_bin = 8 * order * (1 + n_lab) * n_fine
-    if isinstance(ens, Ensemble) and opts["cache"][0]["total"]["kw"]["cells"] is not None:
+    if isinstance(ens, Ensemble) and opts["cache"][0]["total"]["cells"] is not None:
         _stream(opts["cache"][0], counts, opts, bmat, cmat, normalise, reps, budget=budget,
                 progress=progress)
     else:

@@ -460,8 +460,8 @@ def block_sticks(block: Any, *, probe: GaussianPulse, cross_section: CrossSectio
                        alive_count=al.alive_count, total_weight=float(w_traj.sum()),
                        alive_channel=al.alive_channel, counts=al.counts,
                        weight_sq=float(np.sum(w_traj * w_traj)), fill=fill,
-                       alive_parts=(al.has_data.any(axis=1), al.absorbed, al.ext_bin,
-                                    al.ext_first))
+                       alive_parts=(np.asarray(al.has_data.any(axis=1)), al.absorbed,
+                                    al.ext_bin, al.ext_first))
 
 
 def prepare_sticks(
