@@ -275,9 +275,11 @@ def bootstrap_map(
 
     Parameters are those of :func:`.maps.compute_trpes` (``model`` and ``trpes_map``
     are its stick model and map); ``fields`` the arrays a block reads; ``budget`` the
-    bytes of replicate histograms per chunk (default
-    :data:`._kernels_bootstrap.MEMORY_BUDGET`); ``backend`` that of
-    :func:`._kernels_bootstrap.deposit_replicates`.
+    bytes of replicate histograms (and, in memory, broadened rows) per chunk (default
+    :data:`._kernels_bootstrap.MEMORY_BUDGET`; see
+    :func:`._kernels_bootstrap.stream_plan` and :func:`._kernels_bootstrap.chunk_plan`);
+    ``backend`` that of :func:`._kernels_bootstrap.deposit_replicates` (``"numpy"``:
+    the loop of numpy deposits, whole time grid per chunk of resamples).
 
     Returns
     -------
