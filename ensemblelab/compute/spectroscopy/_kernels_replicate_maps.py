@@ -48,7 +48,8 @@ def broaden_energy(acc: np.ndarray, blocks: ReplicateBlocks, y: np.ndarray, *,
 
     Each time bin's (fine bin x moment, resample) block is one matrix, the resamples
     its columns, multiplied by the banded broadening blocks (one single-threaded BLAS
-    product per time bin and energy block; energy blocks side by side in threads).
+    product per time bin and energy block; time bins, or energy blocks when there are
+    fewer bins than threads, side by side in threads).
 
     Parameters
     ----------
@@ -63,14 +64,17 @@ def broaden_energy(acc: np.ndarray, blocks: ReplicateBlocks, y: np.ndarray, *,
     """
     n_c, n_win, _, order, n_rep = acc.shape
     n_threads = max(1, min(KD.usable_cores() if n_threads is None else n_threads,
-                           len(blocks)))
-    parts = [blocks[t::n_threads] for t in range(n_threads)]
+                           max(n_win, len(blocks))))
+    # threads take time bins (even shares) when there are enough, else energy blocks
+    by_time = n_win >= n_threads
     y[...] = 0.0
 
     def run(t: int) -> None:
+        times = range(t, n_win, n_threads) if by_time else range(n_win)
+        mine = blocks if by_time else blocks[t::n_threads]
         for c in range(n_c):
-            for j0, j1, lo, hi, mat_t in parts[t]:
-                for i in range(n_win):
+            for j0, j1, lo, hi, mat_t in mine:
+                for i in times:
                     np.dot(mat_t, acc[c, i, lo:hi].reshape((hi - lo) * order, n_rep),
                            out=y[c, i, j0:j1])
 
