@@ -162,10 +162,12 @@ def test_numpy_fallback_equals_the_compiled_path(monkeypatch):
                                    rtol=0, atol=1e-12 * peak)
 
 
-@pytest.mark.parametrize("convolve", [True, False])
-def test_replicate_maps_equal_one_assemble_per_resample(convolve):
-    """All resamples at once (energy products per time bin, one time product) against
-    _kernels_broadening.assemble called once per resample with its normaliser."""
+@pytest.mark.parametrize("convolve,chunk", [(True, 64), (False, 64), (True, 2)])
+def test_replicate_maps_equal_one_assemble_per_resample(convolve, chunk, monkeypatch):
+    """All resamples at once (energy products per time bin, time products over chunks
+    of bins) against _kernels_broadening.assemble called once per resample with its
+    normaliser."""
+    monkeypatch.setattr(KRM, "TIME_CHUNK", chunk)
     rng = np.random.default_rng(7)
     n_c, n_time, n_fine, order, n_rep, h = 2, 9, 40, 8, 5, 0.05
     acc = rng.random((n_c, n_time, n_fine, order, n_rep))

@@ -86,6 +86,11 @@ def broaden_energy(acc: np.ndarray, blocks: ReplicateBlocks, y: np.ndarray, *,
                 list(pool.map(run, range(n_threads)))
 
 
+#: time bins per product of :func:`apply_time` (the time matrix is banded: a chunk of
+#: bins meets only the delays within the cross-correlation's reach)
+TIME_CHUNK = 64
+
+
 def apply_time(y: np.ndarray, cmat: np.ndarray, norm: np.ndarray, out: np.ndarray) -> None:
     """Normalise energy-broadened replicates and add their time convolution to ``out``.
 
@@ -101,14 +106,16 @@ def apply_time(y: np.ndarray, cmat: np.ndarray, norm: np.ndarray, out: np.ndarra
         Replicate maps, added to (eV^-1).
     """
     n_c, n_win, n_e, n_rep = y.shape
-    rows = np.flatnonzero(np.any(cmat != 0, axis=1))
-    if rows.size == 0 or n_win == 0:
-        return
-    d0, d1 = int(rows[0]), int(rows[-1]) + 1
     y *= norm.T[None, :, None, :]
-    for c in range(n_c):
-        out[c, d0:d1] += (cmat[d0:d1] @ y[c].reshape(n_win, n_e * n_rep)).reshape(
-            d1 - d0, n_e, n_rep)
+    for a in range(0, n_win, TIME_CHUNK):  # time bins in chunks: each meets a band of delays
+        b = min(a + TIME_CHUNK, n_win)
+        rows = np.flatnonzero(np.any(cmat[:, a:b] != 0, axis=1))
+        if rows.size == 0:
+            continue
+        d0, d1 = int(rows[0]), int(rows[-1]) + 1
+        for c in range(n_c):
+            out[c, d0:d1] += (cmat[d0:d1, a:b] @ y[c, a:b].reshape(b - a, n_e * n_rep)
+                              ).reshape(d1 - d0, n_e, n_rep)
 
 
 def assemble_replicates(acc: np.ndarray, blocks: Any, cmat: np.ndarray, norm: np.ndarray,
