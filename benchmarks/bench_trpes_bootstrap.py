@@ -137,7 +137,8 @@ def main(argv: list[str] | None = None) -> int:
     print(f"  replicate work alone                      : {t_boot - t_stick:.2f} s = "
           f"{(t_boot - t_stick) / t_one:.1f}x one map")
     print(f"  kernel: replicate deposit {t_dep:.2f} s for {pairs:.2e} (stick, resample) "
-          f"pairs = {t_dep / pairs * 1e9:.3f} ns per stick and resample "
+          f"pairs = {t_dep / pairs * 1e9:.3f} ns per stick and resample (wall, "
+          f"{KD.usable_cores()} threads) "
           f"({t_dep / n_rep * 1e3:.1f} ms per resample vs one deposit "
           f"{t_one_dep * 1e3:.1f} ms: {t_dep / n_rep / t_one_dep:.2f}x; "
           f"cell sort {t_sort:.2f} s once)")
