@@ -101,7 +101,7 @@ def main(argv: list[str] | None = None) -> int:
     s = model.sticks
     assert s is not None and model.tbin is not None
     e_lo, h, n_fine = model.moment_grid(model.fwhm())
-    src = np.searchsorted(ens.trajectories["traj"].to_numpy(), s.traj)
+    src = np.searchsorted(ens.trajectories["traj"].to_numpy(), s.traj).astype(np.int32)
     n_rep, n_sub, _ = KBS.stream_plan(args.n_boot, model.n_time,
                                       8 * model.order * n_fine, 8 * N_ENERGIES)
     rw = KBS.bootstrap_counts(ens.n_trajectories, n_rep, np.random.default_rng(0)).T.copy()
