@@ -3,12 +3,15 @@
 Prints, from one run on an invented ensemble with ~N (snapshot, channel) sticks (3
 cation channels):
 
-* one map, end to end (``compute_trpes``), the peer (best of two runs before and one
-  after the bootstrap);
+* one map, end to end (``compute_trpes``, the compiled fused path), the peer (best of
+  two runs before and one after the bootstrap), and the same map keeping its sticks
+  (``return_model=True``: the stick path the bootstrap needs, best of two);
 * the same call with ``interval="bootstrap", n_boot=200`` (the map and its 200
-  replicates), as a ratio to the peer (goal <= 3x), and the replicate work alone;
-* the kernel figure: the replicate deposit of all sticks for one chunk of resamples,
-  per resample, against one ordinary deposit of the same sticks;
+  replicates), as a ratio to both (goal <= 3x one map), and the replicate work alone
+  (beyond the map keeping its sticks);
+* the kernel figure: the replicate deposit of all sticks for all resamples (in the
+  bootstrap's time windows), in ns per stick and resample, and per resample against
+  one ordinary deposit of the same sticks;
 * the growth of the peak resident memory during the bootstrap call (the replicate
   histograms are chunked to :data:`._kernels_bootstrap.MEMORY_BUDGET`; the replicate
   maps, n_boot x n_delays x n_energies, are kept for the percentiles).
@@ -74,12 +77,16 @@ def main(argv: list[str] | None = None) -> int:
               delays=np.linspace(-100.0, 500.0, N_DELAYS), progress=False)
     warnings.simplefilter("ignore")
     small = make_ensemble(3000)
-    compute_trpes(small, interval="bootstrap", n_boot=4, **kw)  # compile / cache load
-    t_ones = []
-    for _ in range(2):  # the peer: best of the runs before and after (shared machines drift)
+    compute_trpes(small, **kw)  # compile / cache load: the fused map ...
+    compute_trpes(small, interval="bootstrap", n_boot=4, **kw)  # ... and the bootstrap
+    t_ones, t_sticks = [], []
+    for _ in range(2):  # the peers: best of the runs before and after (machines drift)
+        t0 = time.perf_counter()
+        compute_trpes(ens, **kw)
+        t_ones.append(time.perf_counter() - t0)
         t0 = time.perf_counter()
         m, model = compute_trpes(ens, return_model=True, **kw)
-        t_ones.append(time.perf_counter() - t0)
+        t_sticks.append(time.perf_counter() - t0)
     rss0 = _rss_mb()
     t0 = time.perf_counter()
     mb = compute_trpes(ens, interval="bootstrap", n_boot=args.n_boot, random_state=0, **kw)
@@ -88,43 +95,55 @@ def main(argv: list[str] | None = None) -> int:
     t0 = time.perf_counter()
     compute_trpes(ens, **kw)
     t_ones.append(time.perf_counter() - t0)
-    t_one = min(t_ones)
-    # kernel figure: one chunk of replicate deposits vs one ordinary deposit
+    t_one, t_stick = min(t_ones), min(t_sticks)
+    # kernel figure: the replicate deposit of all sticks for all resamples, in the time
+    # windows of the bootstrap, per stick and resample
     s = model.sticks
     assert s is not None and model.tbin is not None
     e_lo, h, n_fine = model.moment_grid(model.fwhm())
-    src = np.searchsorted(ens.trajectories["traj"].to_numpy(), s.traj)
-    order = KBS.time_order(model.tbin)  # the bootstrap deposits sticks in time order
-    tb, en, wt = model.tbin, s.energy, s.weight
-    tf = model.tfrac
-    if order is not None:
-        tb, en, wt, src = tb[order], en[order], wt[order], src[order]
-        tf = None if tf is None else tf[order]
-    n_rep = min(args.n_boot, KBS.replicate_chunk(
-        args.n_boot, 8 * model.order * model.n_time * n_fine))
+    src = np.searchsorted(ens.trajectories["traj"].to_numpy(), s.traj).astype(np.int32)
+    n_rep, n_sub, _ = KBS.stream_plan(args.n_boot, model.n_time,
+                                      8 * model.order * n_fine, 8 * N_ENERGIES)
     rw = KBS.bootstrap_counts(ens.n_trajectories, n_rep, np.random.default_rng(0)).T.copy()
-    acc = np.zeros((1, model.n_time, n_rep, n_fine, model.order))
+    grid = {"e_lo": e_lo, "h": h, "n_time": model.n_time, "tfrac": model.tfrac}
     t0 = time.perf_counter()
-    KBS.deposit_replicates(acc, tb, en, wt, src, rw, e_lo=e_lo, h=h, tfrac=tf)
-    t_rep = (time.perf_counter() - t0) / n_rep
+    cells = KBS.sort_cells(model.tbin, s.energy, s.weight, src, n_fine=n_fine, **grid)
+    t_sort = time.perf_counter() - t0
+    acc = np.zeros((1, n_sub, n_fine, model.order, n_rep))
+    t_dep = 0.0
+    for w0 in range(0, model.n_time, n_sub):
+        part = acc[:, :min(n_sub, model.n_time - w0)]
+        part[...] = 0.0
+        t0 = time.perf_counter()
+        KBS.deposit_replicates(part, model.tbin, s.energy, s.weight, src, rw, t0=w0,
+                               cells=cells, **grid)
+        t_dep += time.perf_counter() - t0
     t0 = time.perf_counter()
     KD.deposit_moments(model.tbin, s.energy, s.weight, n_time=model.n_time, e_lo=e_lo, h=h,
                        n_fine=n_fine, order=model.order, tfrac=model.tfrac)
-    t_dep = time.perf_counter() - t0
+    t_one_dep = time.perf_counter() - t0
+    pairs = s.n_sticks * n_rep
     print(f"TRPES map bootstrap benchmark: {s.n_sticks:.2e} sticks, "
           f"{ens.n_trajectories} trajectories, map {N_DELAYS} x {N_ENERGIES}, "
           f"{args.n_boot} resamples (deposit backend "
-          f"{'numba' if KD.numba_available() else 'numpy'})")
-    print(f"  one map (peer, best of 3 runs)      : {t_one:.2f} s "
+          f"{'numba' if KD.numba_available() else 'numpy'}, {KD.usable_cores()} cores)")
+    print(f"  one map (peer, fused path, best of 3)     : {t_one:.2f} s "
           f"(runs {', '.join(f'{t:.2f}' for t in t_ones)} s)")
-    print(f"  map + {args.n_boot} bootstrap replicates     : {t_boot:.2f} s = "
-          f"{t_boot / t_one:.2f}x one map (goal <= 3x)")
-    print(f"  replicate work alone                : {t_boot - t_one:.2f} s = "
-          f"{(t_boot - t_one) / t_one:.2f}x one map")
-    print(f"  kernel: replicate deposit per resample {t_rep * 1e3:.1f} ms vs one deposit "
-          f"{t_dep * 1e3:.1f} ms ({t_rep / t_dep:.2f}x; chunk of {n_rep})")
-    print(f"  peak resident memory growth         : {rss1 - rss0:.0f} MB (budget for the "
-          f"replicate histograms {KBS.MEMORY_BUDGET / 2**20:.0f} MB; replicate maps "
+    print(f"  one map keeping its sticks (best of 2)    : {t_stick:.2f} s "
+          f"(runs {', '.join(f'{t:.2f}' for t in t_sticks)} s)")
+    print(f"  map + {args.n_boot} bootstrap replicates          : {t_boot:.2f} s = "
+          f"{t_boot / t_one:.1f}x one map (goal <= 3x); "
+          f"{t_boot / t_stick:.2f}x the map keeping its sticks")
+    print(f"  replicate work alone                      : {t_boot - t_stick:.2f} s = "
+          f"{(t_boot - t_stick) / t_one:.1f}x one map")
+    print(f"  kernel: replicate deposit {t_dep:.2f} s for {pairs:.2e} (stick, resample) "
+          f"pairs = {t_dep / pairs * 1e9:.3f} ns per stick and resample (wall, "
+          f"{KD.usable_cores()} threads) "
+          f"({t_dep / n_rep * 1e3:.1f} ms per resample vs one deposit "
+          f"{t_one_dep * 1e3:.1f} ms: {t_dep / n_rep / t_one_dep:.2f}x; "
+          f"cell sort {t_sort:.2f} s once)")
+    print(f"  peak resident memory growth               : {rss1 - rss0:.0f} MB (budget for "
+          f"the replicate histograms {KBS.MEMORY_BUDGET / 2**20:.0f} MB; replicate maps "
           f"{args.n_boot * N_DELAYS * N_ENERGIES * 8 / 2**20:.0f} MB)")
     print(f"  median relative standard error (pixels > 5% of peak): "
           f"{mb.median_rel_se():.4f}")

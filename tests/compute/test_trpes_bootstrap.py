@@ -125,7 +125,7 @@ def test_replicate_deposit_equals_reweighted_deposits(with_tfrac, threads, monke
     rw = KBS.bootstrap_counts(n_traj, 5, rng).T.copy()
     backends = ["numpy"] + (["numba"] if KD.numba_available() else [])
     for backend in backends:
-        acc = np.zeros((4, n_time, 5, n_fine, order))
+        acc = np.zeros((4, n_time, n_fine, order, 5))
         KBS.deposit_replicates(acc, tbin, energy, weight, src, rw, e_lo=0.0, h=0.05,
                                tfrac=tfrac, backend=backend)
         KBS.deposit_replicates(acc, tbin, energy, weight, src, rw, e_lo=0.0, h=0.05,

@@ -14,10 +14,16 @@ accuracy").
 
 No sticks are made again: the sticks are linear in the trajectory weights, so each
 resample's moment histograms are deposited from the same sticks with the resample's
-multiplicities (:mod:`._kernels_bootstrap`), a chunk of resamples at a time within a
-memory budget (an in-memory ensemble reuses the map's own sticks; a chunked store is
-read once per chunk). Memory: the chunk's histograms plus the replicate maps
-(``n_boot x (1 + n_components) x n_delays x n_energies`` floats, for the percentiles).
+multiplicities (:mod:`._kernels_bootstrap`, all resamples of a chunk in one pass, the
+sticks sorted by cell once), and broadened into maps for all resamples at once
+(:mod:`._kernels_replicate_maps`). An in-memory ensemble reuses the map's own sticks
+and alive inputs and streams over windows of time bins (histograms of a few bins at a
+time, broadened while in cache; :func:`_stream`); a chunked store is read once per
+chunk of resamples (:func:`bootstrap_partial`, histograms over the whole time grid).
+Memory: within :data:`._kernels_bootstrap.MEMORY_BUDGET` for the histograms and
+broadened rows, plus the replicate maps (``(1 + n_components) x n_delays x n_energies
+x n_boot`` floats, for the percentiles) and, in memory, the sorted sticks (28 bytes
+each).
 
 Snapshots without data for every channel leave numerator and alive weight in each
 resample as in the map. Not covered: data missing for some cation channels only, or
@@ -27,9 +33,7 @@ resample; a clear error says so).
 
 from __future__ import annotations
 
-import contextlib
 from collections.abc import Sequence
-from concurrent.futures import ThreadPoolExecutor
 from typing import Any
 
 import numpy as np
@@ -40,7 +44,7 @@ from ...errors import SchemaError
 from ..engine import BlockSpan, add, as_source, reduce
 from . import _kernels_bootstrap as KBS
 from . import _kernels_broadening as KB
-from . import _kernels_deposit as KD
+from . import _kernels_replicate_maps as KRM
 from ._checks import time_bins
 from .cross_sections import resolve_cross_section
 from .model import TRPESModel
@@ -71,14 +75,11 @@ def check_interval(interval: Any, ci: Any, n_boot: Any) -> None:
                           "95% intervals.")
 
 
-def _sorted(order: np.ndarray | None, *arrays: np.ndarray | None) -> list[Any]:
-    return [a if (a is None or order is None) else a[order] for a in arrays]
-
-
 def block_resampling_inputs(block: Any, opts: dict[str, Any],
                             model: TRPESModel | None = None) -> dict[str, Any]:
-    """What a block's resamples are made of: its sticks in time order (total and
-    components), block-local trajectory of each, trajectory weights and unit alive
+    """What a block's resamples are made of: its sticks (total and components) with the
+    block-local trajectory of each, sorted by accumulator cell when compiled
+    (:func:`._kernels_bootstrap.sort_cells`), trajectory weights and unit alive
     profiles (:func:`._kernels_bootstrap.unit_alive`). With ``model`` (made from this
     block, an in-memory ensemble) its sticks are used instead of being made again."""
     w_traj, _ = trajectory_weights(block, weights=opts["weights"], pump=opts["pump"])
@@ -86,7 +87,12 @@ def block_resampling_inputs(block: Any, opts: dict[str, Any],
     extra = {"ionisation_shifts": opts["ionisation_shifts"],
              "absorbing_state": opts["absorbing_state"], "absorbing": opts["absorbing"],
              "t_end": opts["t_end"]}
-    al = block_alive(block, w_traj=w_traj, probe=opts["probe"], **grid, **extra)
+    if model is not None and model.alive_parts is not None:  # kept by the map
+        has_any, absorbed, ext_bin, ext_first = model.alive_parts
+    else:
+        al = block_alive(block, w_traj=w_traj, probe=opts["probe"], **grid, **extra)
+        has_any, absorbed, ext_bin, ext_first = (al.has_data.any(axis=1), al.absorbed,
+                                                 al.ext_bin, al.ext_first)
     bs: Any = model
     if model is None or model.sticks is None or model.tbin is None:
         bs = block_sticks(block, probe=opts["probe"], cross_section=opts["cross_section"],
@@ -95,23 +101,29 @@ def block_resampling_inputs(block: Any, opts: dict[str, Any],
                           **extra)
     tix = block.traj_index
     tbin_s, tfrac_s = time_bins(block.snapshots["time"].to_numpy(), opts["start"], opts["dt"])
-    unit = KBS.unit_alive(tix, tbin_s, tfrac_s, np.asarray(al.has_data.any(axis=1)),
-                          block.n_trajectories, opts["n_time"],
-                          absorbed_traj=tix[al.absorbed], ext_bin=al.ext_bin,
-                          ext_first=al.ext_first)
+    unit = KBS.unit_alive(tix, tbin_s, tfrac_s, np.asarray(has_any), block.n_trajectories,
+                          opts["n_time"], absorbed_traj=tix[absorbed], ext_bin=ext_bin,
+                          ext_first=ext_first)
     s = bs.sticks
-    src = tix[s.snapshot]
-    order = KBS.time_order(bs.tbin)
-    out: dict[str, Any] = {"w_traj": w_traj, "unit": unit,
-                           "total": _sorted(order, bs.tbin, s.energy, s.weight, src, bs.tfrac)}
+    src = tix[s.snapshot].astype(np.int32)
+    fine = {"n_time": opts["n_time"], "e_lo": opts["e_lo"], "h": opts["h"],
+            "n_fine": opts["n_fine"]}
+    compiled = opts["backend"] in ("auto", "numba")
+    out: dict[str, Any] = {"w_traj": w_traj, "unit": unit}
+    out["total"] = {"tbin": bs.tbin, "energy": s.energy, "weight": s.weight,
+                    "src_traj": src, "tfrac": bs.tfrac}
     if bs.comp is not None:
         cs = bs.comp_src
-        tb = bs.tbin if cs is None else bs.tbin[cs]
-        arrays = (tb, s.energy if cs is None else s.energy[cs],
-                  s.weight if bs.comp_weight is None else bs.comp_weight,
-                  src if cs is None else src[cs], bs.comp,
-                  None if bs.tfrac is None else (bs.tfrac if cs is None else bs.tfrac[cs]))
-        out["comp"] = _sorted(KBS.time_order(tb), *arrays)
+        out["comp"] = {"tbin": bs.tbin if cs is None else bs.tbin[cs],
+                       "energy": s.energy if cs is None else s.energy[cs],
+                       "weight": s.weight if bs.comp_weight is None else bs.comp_weight,
+                       "src_traj": src if cs is None else src[cs], "comp": bs.comp,
+                       "n_comp": opts["n_comp"],
+                       "tfrac": None if bs.tfrac is None else (
+                           bs.tfrac if cs is None else bs.tfrac[cs])}
+    for part in ("total", "comp"):  # stick arrays (and cells) as deposit_replicates takes
+        if part in out:
+            out[part]["cells"] = KBS.sort_cells(**out[part], **fine) if compiled else None
     return out
 
 
@@ -119,14 +131,16 @@ def bootstrap_partial(block: Any, span: BlockSpan, opts: dict[str, Any]) -> dict
     """Replicate moment histograms and alive weights of one block (a reduction partial).
 
     ``opts["counts"]`` (n_rep, n_trajectories of the source) are the multiplicities of
-    the chunk of resamples; the other keys are those of :func:`.maps.trpes_partial`
-    (with ``opts["cache"]``, a dict, the block's sticks are kept there for the next
-    chunk: in-memory ensembles). Returns ``hist`` (1 + n_comp, n_time, n_rep, n_fine,
-    order) (the total, then each component; see
-    :func:`._kernels_bootstrap.deposit_replicates`), ``alive`` (n_rep, n_time) and
-    ``total`` (n_rep,) (the resamples' total trajectory weight).
+    the chunk of resamples and ``opts["t0"]``, ``opts["t1"]`` the time bins it covers;
+    the other keys are those of :func:`.maps.trpes_partial` (with ``opts["cache"]``, a
+    dict, the block's sorted sticks are kept there for the next chunk: in-memory
+    ensembles). Returns ``hist`` (1 + n_comp, t1 - t0, n_fine, order, n_rep) (the
+    total, then each component; see :func:`._kernels_bootstrap.deposit_replicates`),
+    ``alive`` (n_rep, t1 - t0) and ``total`` (n_rep,) (the resamples' total trajectory
+    weight).
     """
     counts = opts["counts"][:, span.traj_start:span.traj_start + block.n_trajectories]
+    t0, t1 = opts.get("t0", 0), opts.get("t1", opts["n_time"])
     cache = opts.get("cache")
     inp = None if cache is None else cache.get(span.index)
     if inp is None:
@@ -135,28 +149,66 @@ def bootstrap_partial(block: Any, span: BlockSpan, opts: dict[str, Any]) -> dict
             cache[span.index] = inp
     rw = np.ascontiguousarray(counts.T)
     n_lab = opts["n_comp"] if opts["decompose"] is not None else 0
-    acc = np.zeros((1 + n_lab, opts["n_time"], counts.shape[0], opts["n_fine"],
-                    opts["order"]))
-    fine = {"e_lo": opts["e_lo"], "h": opts["h"], "backend": opts["backend"]}
-    tb, e, w, src, tf = inp["total"]
-    KBS.deposit_replicates(acc, tb, e, w, src, rw, tfrac=tf, **fine)
+    acc = np.zeros((1 + n_lab, t1 - t0, opts["n_fine"], opts["order"], counts.shape[0]))
+    fine = {"e_lo": opts["e_lo"], "h": opts["h"], "backend": opts["backend"], "t0": t0,
+            "n_time": opts["n_time"]}
+    KBS.deposit_replicates(acc, rw=rw, **inp["total"], **fine)
     if "comp" in inp:
-        tb, e, w, src, comp, tf = inp["comp"]
-        KBS.deposit_replicates(acc, tb, e, w, src, rw, comp=comp, n_comp=n_lab, c0=1,
-                               tfrac=tf, **fine)
+        KBS.deposit_replicates(acc, rw=rw, c0=1, **inp["comp"], **fine)
     w_traj = inp["w_traj"]
-    return {"hist": acc, "alive": (counts * w_traj) @ inp["unit"], "total": counts @ w_traj}
+    return {"hist": acc, "alive": (counts * w_traj) @ inp["unit"][:, t0:t1],
+            "total": counts @ w_traj}
 
 
-def _one_blas_thread() -> Any:
-    """Context holding BLAS at one thread for the whole loop (threadpoolctl, installed
-    with scikit-learn; else nothing), so that the per-call limits of concurrent
-    ``assemble`` calls nest inside it and the caller's setting comes back at the end."""
-    try:
-        from threadpoolctl import threadpool_limits
-    except ImportError:  # pragma: no cover - threadpoolctl comes with scikit-learn
-        return contextlib.nullcontext()
-    return threadpool_limits(limits=1, user_api="blas")
+def _stream(inp: dict[str, Any], counts: np.ndarray, opts: dict[str, Any], bmat: Any,
+            cmat: np.ndarray, normalise: str, reps: np.ndarray, *, budget: int,
+            progress: bool) -> None:
+    """Replicate maps of an in-memory ensemble (one block, its sorted sticks in ``inp``),
+    added to ``reps`` (1 + n_comp, n_delays, n_energies, n_boot).
+
+    Per chunk of resamples (:func:`._kernels_bootstrap.stream_plan`): the histograms of
+    a few time bins at a time are deposited into one reused buffer and broadened in
+    energy while in cache, then each window of broadened rows gets its normaliser and
+    its share of the time matrix.
+    """
+    n_boot = counts.shape[0]
+    n_c, n_time = reps.shape[0], opts["n_time"]
+    n_e = reps.shape[2]
+    n_rep, n_sub, n_big = KBS.stream_plan(n_boot, n_time,
+                                          8 * opts["order"] * n_c * opts["n_fine"],
+                                          8 * n_c * n_e, budget)
+    buf = np.zeros(n_c * n_sub * opts["n_fine"] * opts["order"] * n_rep)
+    fine = {"e_lo": opts["e_lo"], "h": opts["h"], "backend": opts["backend"],
+            "n_time": n_time}
+    w_traj, size = inp["w_traj"], opts["n_fine"] * opts["order"]
+    bar = None
+    if progress:
+        from tqdm.auto import tqdm
+        bar = tqdm(total=-(-n_boot // n_rep) * -(-n_time // n_big), desc="bootstrap windows",
+                   unit="window")
+    for r0 in range(0, n_boot, n_rep):
+        sub = counts[r0:r0 + n_rep]
+        r1 = r0 + sub.shape[0]
+        rw = KBS.compact_counts(sub.T)
+        norm = _normalise({"alive": (sub * w_traj) @ inp["unit"], "total": sub @ w_traj},
+                          normalise)
+        for big0 in range(0, n_time, n_big):
+            big1 = min(big0 + n_big, n_time)
+            y = np.empty((n_c, big1 - big0, n_e, r1 - r0))
+            for t0 in range(big0, big1, n_sub):
+                t1 = min(t0 + n_sub, big1)
+                acc = buf[:n_c * (t1 - t0) * size * (r1 - r0)].reshape(
+                    n_c, t1 - t0, opts["n_fine"], opts["order"], r1 - r0)
+                acc[...] = 0.0
+                KBS.deposit_replicates(acc, rw=rw, t0=t0, **inp["total"], **fine)
+                if "comp" in inp:
+                    KBS.deposit_replicates(acc, rw=rw, c0=1, t0=t0, **inp["comp"], **fine)
+                KRM.broaden_energy(acc, bmat, y[:, t0 - big0:t1 - big0])
+            KRM.apply_time(y, cmat[:, big0:big1], norm[:, big0:big1], reps[..., r0:r1])
+            if bar is not None:
+                bar.update()
+    if bar is not None:
+        bar.close()
 
 
 def _normalise(res: dict[str, Any], normalise: str) -> np.ndarray:
@@ -189,7 +241,7 @@ def _operators(model: TRPESModel, kinetic_energies: np.ndarray, delays: np.ndarr
     bmat = KB.broadening_blocks(kinetic_energies, e_lo=e_lo, h=h, n_fine=n_fine,
                                 fwhm=model.fwhm(probe, resolution), order=model.order,
                                 fwhm_of=fwhm_of)
-    return bmat, cmat
+    return KRM.replicate_blocks(bmat), cmat
 
 
 def bootstrap_map(
@@ -223,9 +275,11 @@ def bootstrap_map(
 
     Parameters are those of :func:`.maps.compute_trpes` (``model`` and ``trpes_map``
     are its stick model and map); ``fields`` the arrays a block reads; ``budget`` the
-    bytes of replicate histograms per chunk (default
-    :data:`._kernels_bootstrap.MEMORY_BUDGET`); ``backend`` that of
-    :func:`._kernels_bootstrap.deposit_replicates`.
+    bytes of replicate histograms (and, in memory, broadened rows) per chunk (default
+    :data:`._kernels_bootstrap.MEMORY_BUDGET`; see
+    :func:`._kernels_bootstrap.stream_plan` and :func:`._kernels_bootstrap.chunk_plan`);
+    ``backend`` that of :func:`._kernels_bootstrap.deposit_replicates` (``"numpy"``:
+    the loop of numpy deposits, whole time grid per chunk of resamples).
 
     Returns
     -------
@@ -266,45 +320,36 @@ def bootstrap_map(
     rng = random_state if isinstance(random_state, np.random.Generator) else \
         np.random.default_rng(random_state)
     counts = KBS.bootstrap_counts(n_traj, int(n_boot), rng)
-    per_rep = 8 * order * (1 + n_lab) * n_time * n_fine
     bmat, cmat = _operators(model, kinetic_energies, delays, probe=probe, pump=pump,
                             resolution=resolution, convolve=convolve, e_lo=e_lo, h=h,
                             n_fine=n_fine)
-    chunk = KBS.replicate_chunk(int(n_boot), per_rep,
-                                KBS.MEMORY_BUDGET if budget is None else budget)
-    reps = np.empty((int(n_boot), *trpes_map.shape))
-    reps_c = np.empty((int(n_boot), n_lab, *trpes_map.shape)) if n_lab else None
-    starts = range(0, int(n_boot), chunk)
-    if progress:
-        from tqdm.auto import tqdm
-        starts = tqdm(starts, desc="bootstrap chunks", unit="chunk")
-    for lo in starts:
-        hi = min(lo + chunk, int(n_boot))
-        opts["counts"] = counts[lo:hi]
-        res = reduce(source, bootstrap_partial, add, args=(opts,), fields=list(fields),
-                     client=client, scheduler=scheduler, progress=False,
-                     desc="bootstrap blocks")
-        norm = _normalise(res, normalise)  # (n_rep, n_time)
-        hist = res.pop("hist")
-
-        def one(r: int, hist: np.ndarray = hist, norm: np.ndarray = norm,
-                lo: int = lo) -> None:
-            out = KB.assemble(KBS.per_resample(hist, r), bmat, cmat * norm[r][None, :],
-                              n_threads=1)
-            reps[lo + r] = out[0]
-            if reps_c is not None:
-                reps_c[lo + r] = out[1:]
-
-        with _one_blas_thread(), ThreadPoolExecutor(max(1, KD.usable_cores())) as pool:
-            list(pool.map(one, range(hi - lo)))  # resamples side by side, BLAS 1 thread
-        del res, hist
-    lower, upper, rel = KBS.percentile_summary(reps, trpes_map.intensity, ci)
+    # replicate maps, the resamples last (contiguous for the percentiles)
+    reps = np.zeros((1 + n_lab, *trpes_map.shape, int(n_boot)))
+    budget = KBS.MEMORY_BUDGET if budget is None else budget
+    per_bin = 8 * order * (1 + n_lab) * n_fine
+    if isinstance(ens, Ensemble) and opts["cache"][0]["total"]["cells"] is not None:
+        _stream(opts["cache"][0], counts, opts, bmat, cmat, normalise, reps, budget=budget,
+                progress=progress)
+    else:
+        steps: Any = KBS.chunk_plan(int(n_boot), n_time, per_bin, budget)
+        if progress:
+            from tqdm.auto import tqdm
+            steps = tqdm(steps, desc="bootstrap chunks", unit="chunk")
+        for r0, r1 in steps:
+            opts["counts"] = counts[r0:r1]
+            res = reduce(source, bootstrap_partial, add, args=(opts,), fields=list(fields),
+                         client=client, scheduler=scheduler, progress=False,
+                         desc="bootstrap blocks")
+            KRM.assemble_replicates(res.pop("hist"), bmat, cmat, _normalise(res, normalise),
+                                    reps[..., r0:r1])
+            del res
+    lower, upper, rel = KBS.percentile_summary(reps[0], trpes_map.intensity, ci, axis=-1)
     c_lo: dict[str, np.ndarray] = {}
     c_hi: dict[str, np.ndarray] = {}
     for i, lab in enumerate(labels):
-        assert reps_c is not None
-        c_lo[lab], c_hi[lab], _ = KBS.percentile_summary(reps_c[:, i],
-                                                         trpes_map.components[lab], ci)
+        c_lo[lab], c_hi[lab], _ = KBS.percentile_summary(reps[1 + i],
+                                                         trpes_map.components[lab], ci,
+                                                         axis=-1)
     seed = random_state if isinstance(random_state, int | None) else "generator"
     params = dict(trpes_map.params) | {
         "interval": "bootstrap", "ci": float(ci), "n_boot": int(n_boot),
@@ -314,4 +359,7 @@ def bootstrap_map(
                             "trajectory; numerator and normaliser resampled together)")}
     out_map = trpes_map.replace(lower=lower, upper=upper, rel_se=rel, component_lower=c_lo,
                                 component_upper=c_hi, params=params)
-    return (out_map, reps, reps_c) if return_replicates else out_map
+    if not return_replicates:
+        return out_map
+    return (out_map, np.moveaxis(reps[0], -1, 0),
+            np.moveaxis(reps[1:], -1, 0) if n_lab else None)

@@ -251,7 +251,7 @@ def trpes_model(
               "ionisation_shifts": None if shifts is None else shifts.tolist(),
               "absorbing_state": absorbing_state, "absorbing": absorbing, **counts},
         order=DEFAULT_ORDER, bins_per_fwhm=DEFAULT_BINS_PER_FWHM, n_snapshots=n,
-        fill=fill,
+        fill=fill, alive_parts=None if bs is None else bs.alive_parts,
     )
     model.set_moments(e_lo=e_lo, h=h, n_fine=n_fine, hist=total["hist"],
                       hist_comp=total["hist_comp"] if decompose is not None else None)

@@ -118,6 +118,7 @@ class TRPESModel:
     alive_count: np.ndarray | None = None  # trajectories alive per grid time (unweighted)
     n_snapshots: int = 0
     fill: Any = None  # gaps.TimeFill of the missing data, or None
+    alive_parts: Any = None  # sticks.BlockSticks.alive_parts of an in-memory ensemble
     _cache: dict[str, Any] = field(default_factory=dict)
 
     def set_moments(self, *, e_lo: float, h: float, n_fine: int, hist: np.ndarray,

@@ -76,6 +76,11 @@ class BlockSticks(NamedTuple):
         Sum of the squared trajectory weights (for the Kish effective size).
     fill : TimeFill or None
         The missing-data rescaling applied (its ``alive`` is the map's normaliser).
+    alive_parts : tuple or None
+        What the alive weight is made of, per snapshot and trajectory (for resampling
+        it, :mod:`.bootstrap`): snapshots with data for some channel (bool,
+        (n_snapshots,)), and the absorbed trajectories' last rows, first grid index
+        after the stop and share of it (:class:`BlockAlive`).
     """
 
     sticks: StickSpectrum
@@ -91,6 +96,7 @@ class BlockSticks(NamedTuple):
     counts: dict[str, int] | None = None
     weight_sq: float = 0.0
     fill: TimeFill | None = None
+    alive_parts: tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray] | None = None
 
 
 def check_trpes_inputs(source: Any, *, probe: Any, pump: Any, decompose: Any
@@ -190,6 +196,12 @@ def _last_rows(block: Any, time: np.ndarray) -> np.ndarray:
     """Row of the last snapshot of each trajectory of a block, shape (n_trajectories,)."""
     tix = block.traj_index
     out = np.full(block.n_trajectories, -1, dtype=np.int64)
+    if time.size and np.all(tix[1:] >= tix[:-1]):  # trajectory-major (the usual case)
+        same = tix[1:] == tix[:-1]
+        if np.all(time[1:][same] >= time[:-1][same]):  # ... and in time order: no sort
+            rows = np.flatnonzero(np.r_[~same, True])
+            out[tix[rows]] = rows
+            return out
     if time.size:
         order = np.lexsort((time, tix))
         ends = np.r_[tix[order][1:] != tix[order][:-1], True]
@@ -447,7 +459,9 @@ def block_sticks(block: Any, *, probe: GaussianPulse, cross_section: CrossSectio
                        comp_src=comp_src, comp_weight=comp_weight, alive=al.alive,
                        alive_count=al.alive_count, total_weight=float(w_traj.sum()),
                        alive_channel=al.alive_channel, counts=al.counts,
-                       weight_sq=float(np.sum(w_traj * w_traj)), fill=fill)
+                       weight_sq=float(np.sum(w_traj * w_traj)), fill=fill,
+                       alive_parts=(np.asarray(al.has_data.any(axis=1)), al.absorbed,
+                                    al.ext_bin, al.ext_first))
 
 
 def prepare_sticks(

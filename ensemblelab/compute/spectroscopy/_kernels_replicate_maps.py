@@ -1,0 +1,148 @@
+"""Array-level kernels turning replicate moment histograms into replicate maps (private).
+
+The maps of many bootstrap resamples at once (:mod:`.bootstrap`): the histograms of
+:func:`._kernels_bootstrap.deposit_replicates` keep the resamples innermost, so each
+time bin's (fine bin x moment, resample) block is one matrix whose columns are the
+resamples. :func:`broaden_energy` multiplies it by the banded energy-broadening blocks
+of :func:`._kernels_broadening.broadening_blocks` (one BLAS product per time bin and
+energy block); :func:`apply_time` applies each resample's normaliser and the time
+matrix as one product over the time bins of a window. Together
+(:func:`assemble_replicates`) they do what :func:`._kernels_broadening.assemble` does
+for one resample, with the same banded blocks (so the same numbers up to summation
+order); tests compare them with the one-resample path.
+"""
+
+from __future__ import annotations
+
+import contextlib
+from concurrent.futures import ThreadPoolExecutor
+from typing import Any
+
+import numpy as np
+
+from . import _kernels_deposit as KD
+
+__all__ = ["ReplicateBlocks", "replicate_blocks", "broaden_energy", "apply_time",
+           "assemble_replicates"]
+
+
+class ReplicateBlocks(list):
+    """Banded broadening blocks ``(j0, j1, lo, hi, mat_t)`` for :func:`broaden_energy`:
+    those of :class:`._kernels_broadening.BroadeningBlocks` with each matrix transposed
+    and contiguous, shape (j1 - j0, (hi - lo) * order); ``n_energies`` as there."""
+
+    n_energies: int
+
+
+def replicate_blocks(blocks: Any) -> ReplicateBlocks:
+    """:class:`ReplicateBlocks` of :func:`._kernels_broadening.broadening_blocks`."""
+    out = ReplicateBlocks((j0, j1, lo, hi, np.ascontiguousarray(mat.T))
+                          for j0, j1, lo, hi, mat in blocks)
+    out.n_energies = blocks.n_energies
+    return out
+
+
+def broaden_energy(acc: np.ndarray, blocks: ReplicateBlocks, y: np.ndarray, *,
+                   n_threads: int | None = None) -> None:
+    """Energy broadening of a chunk of replicate histograms, all resamples at once.
+
+    Each time bin's (fine bin x moment, resample) block is one matrix, the resamples
+    its columns, multiplied by the banded broadening blocks (one single-threaded BLAS
+    product per time bin and energy block; time bins, or energy blocks when there are
+    fewer bins than threads, side by side in threads).
+
+    Parameters
+    ----------
+    acc : ndarray, shape (n_comp, n_window, n_fine, order, n_rep)
+        Histograms (:func:`deposit_replicates`).
+    blocks : ReplicateBlocks
+        :func:`replicate_blocks` of the broadening blocks.
+    y : ndarray, shape (n_comp, n_window, n_energies, n_rep)
+        Output (overwritten; eV^-1 before the normaliser); ``y[c, t]`` contiguous.
+    n_threads : int, optional
+        Threads (default: the usable cores).
+    """
+    n_c, n_win, _, order, n_rep = acc.shape
+    n_threads = max(1, min(KD.usable_cores() if n_threads is None else n_threads,
+                           max(n_win, len(blocks))))
+    # threads take time bins (even shares) when there are enough, else energy blocks
+    by_time = n_win >= n_threads
+    y[...] = 0.0
+
+    def run(t: int) -> None:
+        times = range(t, n_win, n_threads) if by_time else range(n_win)
+        mine = blocks if by_time else blocks[t::n_threads]
+        for c in range(n_c):
+            for j0, j1, lo, hi, mat_t in mine:
+                for i in times:
+                    np.dot(mat_t, acc[c, i, lo:hi].reshape((hi - lo) * order, n_rep),
+                           out=y[c, i, j0:j1])
+
+    with _single_blas():
+        if n_threads == 1:
+            run(0)
+        else:
+            with ThreadPoolExecutor(n_threads) as pool:
+                list(pool.map(run, range(n_threads)))
+
+
+#: time bins per product of :func:`apply_time` (the time matrix is banded: a chunk of
+#: bins meets only the delays within the cross-correlation's reach)
+TIME_CHUNK = 64
+
+
+def apply_time(y: np.ndarray, cmat: np.ndarray, norm: np.ndarray, out: np.ndarray) -> None:
+    """Normalise energy-broadened replicates and add their time convolution to ``out``.
+
+    Parameters
+    ----------
+    y : ndarray, shape (n_comp, n_window, n_energies, n_rep)
+        :func:`broaden_energy` of time bins ``t0 .. t0 + n_window - 1`` (scaled in place).
+    cmat : ndarray, shape (n_delays, n_window)
+        The time matrix's columns of the window.
+    norm : ndarray, shape (n_rep, n_window)
+        1 / normaliser of each resample and time bin.
+    out : ndarray, shape (n_comp, n_delays, n_energies, n_rep)
+        Replicate maps, added to (eV^-1).
+    """
+    n_c, n_win, n_e, n_rep = y.shape
+    y *= norm.T[None, :, None, :]
+    for a in range(0, n_win, TIME_CHUNK):  # time bins in chunks: each meets a band of delays
+        b = min(a + TIME_CHUNK, n_win)
+        rows = np.flatnonzero(np.any(cmat[:, a:b] != 0, axis=1))
+        if rows.size == 0:
+            continue
+        d0, d1 = int(rows[0]), int(rows[-1]) + 1
+        for c in range(n_c):
+            out[c, d0:d1] += (cmat[d0:d1, a:b] @ y[c, a:b].reshape(b - a, n_e * n_rep)
+                              ).reshape(d1 - d0, n_e, n_rep)
+
+
+def assemble_replicates(acc: np.ndarray, blocks: Any, cmat: np.ndarray, norm: np.ndarray,
+                        out: np.ndarray) -> None:
+    """Add the maps of a chunk of resamples, from their histograms, to ``out`` (in place):
+    what :func:`._kernels_broadening.assemble` does for one resample (banded energy
+    broadening, normaliser, time matrix), for all at once (:func:`broaden_energy`, then
+    :func:`apply_time`; arguments as there)."""
+    n_c, n_win, _, _, n_rep = acc.shape
+    y = np.empty((n_c, n_win, blocks.n_energies, n_rep))
+    broaden_energy(acc, blocks, y)
+    apply_time(y, cmat, norm, out)
+
+
+_BLAS: dict[str, Any] = {}
+
+
+def _single_blas() -> Any:
+    """Context holding BLAS at one thread (threadpoolctl, installed with scikit-learn;
+    else nothing): many small products side by side, where BLAS threads only cost. The
+    controller (which scans the loaded libraries) is made once."""
+    if "ctl" not in _BLAS:
+        try:
+            import threadpoolctl
+
+            _BLAS["ctl"] = threadpoolctl.ThreadpoolController()
+        except Exception:  # pragma: no cover - threadpoolctl missing or failing
+            _BLAS["ctl"] = None
+    ctl = _BLAS["ctl"]
+    return contextlib.nullcontext() if ctl is None else ctl.limit(limits=1, user_api="blas")

@@ -1,0 +1,189 @@
+"""The replicate deposit (resamples innermost, sticks sorted by cell, time windows) and
+the streamed replicate maps against the numpy path and the naive loop.
+
+Check values: the moment histograms of each resample computed one resample at a time
+by the numpy deposit with the resample's weights (the reference path; computed
+independently (not published)); maps of explicitly resampled ensembles run through
+compute_trpes (the naive reference twin; computed independently (not published));
+quantiles from ``np.quantile`` (reference library).
+"""
+
+from __future__ import annotations
+
+import warnings
+
+import numpy as np
+import pytest
+
+from ensemblelab.compute.spectroscopy import _kernels_bootstrap as KBS
+from ensemblelab.compute.spectroscopy import _kernels_broadening as KB
+from ensemblelab.compute.spectroscopy import _kernels_deposit as KD
+from ensemblelab.compute.spectroscopy import _kernels_replicate_maps as KRM
+from ensemblelab.compute.spectroscopy._reference_bootstrap import naive_bootstrap_maps
+from ensemblelab.compute.spectroscopy.pulses import GaussianPulse
+from ensemblelab.compute.spectroscopy.replicates import trpes_with_replicates
+from ensemblelab.testing import make_toy_ensemble
+
+needs_numba = pytest.mark.skipif(not KD.numba_available(), reason="numba not installed")
+
+
+def _ragged_sticks(seed=3, n_traj=11, n_time=14, n_fine=30, h=0.05):
+    """Sticks of trajectories of uneven lengths (1 to 40 sticks each), some on the
+    last time bin, split between time bins, in three components."""
+    rng = np.random.default_rng(seed)
+    per = rng.integers(1, 41, n_traj)
+    src = np.repeat(np.arange(n_traj), per)
+    n = src.size
+    tbin = rng.integers(0, n_time, n)
+    tfrac = np.where(rng.random(n) < 0.6, rng.uniform(0, 1, n), 0.0)
+    tfrac[tbin == n_time - 1] = 0.0  # no split past the grid
+    energy = rng.uniform(0.0, (n_fine - 1) * h, n)
+    weight = rng.uniform(0.1, 2.0, n)
+    comp = rng.integers(0, 3, n)
+    return tbin, energy, weight, src, comp, tfrac, n_traj, n_time, n_fine, h
+
+
+@needs_numba
+@pytest.mark.parametrize("threads", [False, True])
+def test_windowed_replicate_deposit_equals_the_numpy_path(threads, monkeypatch):
+    if threads:  # time ranges split over two threads even for few sticks
+        monkeypatch.setattr(KD, "MIN_STICKS_PER_THREAD", 1)
+        monkeypatch.setattr(KD, "usable_cores", lambda: 2)
+    tbin, energy, weight, src, comp, tfrac, n_traj, n_time, n_fine, h = _ragged_sticks()
+    order, n_rep = 8, 7
+    rw = KBS.bootstrap_counts(n_traj, n_rep, np.random.default_rng(1)).T.copy()
+    rw[0, 0] = 0.5  # not a small integer: the float64 multiplicity path too
+    grid = {"e_lo": 0.0, "h": h, "n_time": n_time}
+    ref = np.zeros((4, n_time, n_fine, order, n_rep))
+    for r in range(n_rep):  # one resample at a time, numpy deposit (the old path)
+        part = KD.deposit_moments(tbin, energy, weight * rw[src, r], n_time=n_time, e_lo=0.0,
+                                  h=h, n_fine=n_fine, order=order, tfrac=tfrac,
+                                  backend="numpy")
+        part_c = KD.deposit_moments(tbin, energy, weight * rw[src, r], n_time=n_time,
+                                    e_lo=0.0, h=h, n_fine=n_fine, order=order, comp=comp,
+                                    n_comp=3, tfrac=tfrac, backend="numpy")
+        ref[:1, ..., r] = np.moveaxis(part, 0, -1)
+        ref[1:, ..., r] = np.moveaxis(part_c, 0, -1)
+    for rws in (rw, np.rint(rw)):  # float64 and int8 multiplicities
+        cells = KBS.sort_cells(tbin, energy, weight, src, n_time=n_time, e_lo=0.0, h=h,
+                               n_fine=n_fine, tfrac=tfrac)
+        cells_c = KBS.sort_cells(tbin, energy, weight, src, n_time=n_time, e_lo=0.0, h=h,
+                                 n_fine=n_fine, comp=comp, n_comp=3, tfrac=tfrac)
+        if rws is not rw:  # the reference for the rounded multiplicities
+            ref = np.zeros_like(ref)
+            for r in range(n_rep):
+                ref[:1, ..., r] = np.moveaxis(KD.deposit_moments(
+                    tbin, energy, weight * rws[src, r], n_time=n_time, e_lo=0.0, h=h,
+                    n_fine=n_fine, order=order, tfrac=tfrac, backend="numpy"), 0, -1)
+                ref[1:, ..., r] = np.moveaxis(KD.deposit_moments(
+                    tbin, energy, weight * rws[src, r], n_time=n_time, e_lo=0.0, h=h,
+                    n_fine=n_fine, order=order, comp=comp, n_comp=3, tfrac=tfrac,
+                    backend="numpy"), 0, -1)
+        for t0, t1 in ((0, 5), (5, 6), (6, n_time)):  # windows cut through time splits
+            acc = np.zeros((4, t1 - t0, n_fine, order, n_rep))
+            KBS.deposit_replicates(acc, tbin, energy, weight, src, rws, t0=t0, cells=cells,
+                                   tfrac=tfrac, **grid)
+            KBS.deposit_replicates(acc, tbin, energy, weight, src, rws, comp=comp, n_comp=3,
+                                   c0=1, t0=t0, cells=cells_c, tfrac=tfrac, **grid)
+            peak = np.abs(ref).max()
+            np.testing.assert_allclose(acc, ref[:, t0:t1], rtol=0, atol=1e-13 * peak)
+            for r in (0, n_rep - 1):  # the per-resample view assemble() reads
+                np.testing.assert_array_equal(KBS.per_resample(acc, r),
+                                              np.moveaxis(acc[..., r], -1, 0))
+
+
+@needs_numba
+def test_out_of_grid_sticks_are_refused():
+    tbin, energy, weight, src, *_ = _ragged_sticks()
+    energy = energy.copy()
+    energy[3] = 99.0
+    acc = np.zeros((1, 14, 30, 8, 2))
+    with pytest.raises(ValueError, match="outside the moment grid"):
+        KBS.deposit_replicates(acc, tbin, energy, weight, src, np.ones((11, 2)), e_lo=0.0,
+                               h=0.05)
+
+
+def test_streamed_replicate_maps_equal_the_naive_loop(monkeypatch):
+    """Ragged trajectories, snapshots between grid points (time splits), components,
+    and budgets small enough for several chunks of resamples and time windows."""
+    monkeypatch.setattr(KBS, "MEMORY_BUDGET", 8 * 8 * 3 * 4 * 60)  # a few resamples/bins
+    monkeypatch.setattr(KBS, "WINDOW_BYTES", 1)
+    ens = make_toy_ensemble(16, seed=8, t_max=90.0, dt=0.6, ragged=True)
+    kw = {"kinetic_energies": np.linspace(0.0, 2.0, 31),
+          "delays": np.arange(-30.0, 121.0, 15.0), "time_step": 1.0,
+          "probe": GaussianPulse(photon_energy=5.0, fwhm=30.0),
+          "pump": GaussianPulse(photon_energy=4.0, fwhm=30.0), "decompose": "neutral"}
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        m, reps = trpes_with_replicates(ens, n_boot=9, random_state=4, progress=False, **kw)
+        counts = KBS.bootstrap_counts(ens.n_trajectories, 9, np.random.default_rng(4))
+        tot, comps = naive_bootstrap_maps(ens, counts, **kw)
+    assert ens.trajectories["n_steps"].nunique() > 1  # ragged indeed
+    peak = np.abs(tot).max()
+    np.testing.assert_allclose(reps, tot, rtol=0, atol=1e-10 * peak)
+    for lab in comps:
+        lo, hi = np.quantile(comps[lab], [0.025, 0.975], axis=0)
+        np.testing.assert_allclose(m.component_lower[lab], lo, rtol=0, atol=1e-10 * peak)
+        np.testing.assert_allclose(m.component_upper[lab], hi, rtol=0, atol=1e-10 * peak)
+
+
+@pytest.mark.parametrize("n,ci", [(200, 0.95), (7, 0.9), (2, 0.5), (50, 0.99)])
+def test_percentiles_equal_numpy_quantile(n, ci):
+    rng = np.random.default_rng(n)
+    reps = rng.normal(size=(5, 6, n))
+    reps[0, 0] = 1.0  # ties
+    est = reps.mean(axis=-1)
+    lo, hi, rel = KBS.percentile_summary(reps, est, ci, axis=-1)
+    a = (1 - ci) / 2
+    qlo, qhi = np.quantile(reps, [a, 1 - a], axis=-1)
+    np.testing.assert_allclose(lo, qlo, rtol=1e-14, atol=1e-15)
+    np.testing.assert_allclose(hi, qhi, rtol=1e-14, atol=1e-15)
+    np.testing.assert_allclose(rel, reps.std(axis=-1, ddof=1) / np.abs(est), rtol=1e-12)
+    lo0, hi0, _ = KBS.percentile_summary(np.moveaxis(reps, -1, 0), est, ci)  # axis 0
+    np.testing.assert_array_equal(lo0, lo)
+    np.testing.assert_array_equal(hi0, hi)
+
+
+@needs_numba
+def test_numpy_fallback_equals_the_compiled_path(monkeypatch):
+    ens = make_toy_ensemble(12, seed=5, t_max=60.0, dt=0.6, ragged=True)
+    kw = {"kinetic_energies": np.linspace(0.0, 2.0, 21), "delays": np.arange(0.0, 61.0, 10.0),
+          "time_step": 1.0, "probe": GaussianPulse(photon_energy=5.0, fwhm=30.0),
+          "decompose": "neutral", "n_boot": 6, "random_state": 2, "progress": False}
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        fast, reps_fast = trpes_with_replicates(ens, **kw)
+        monkeypatch.setattr(KD, "numba_available", lambda: False)
+        slow, reps_slow = trpes_with_replicates(ens, **kw)
+    peak = np.abs(reps_fast).max()
+    np.testing.assert_allclose(reps_slow, reps_fast, rtol=0, atol=1e-12 * peak)
+    for lab in fast.component_lower:
+        np.testing.assert_allclose(slow.component_upper[lab], fast.component_upper[lab],
+                                   rtol=0, atol=1e-12 * peak)
+
+
+@pytest.mark.parametrize("convolve,chunk", [(True, 64), (False, 64), (True, 2)])
+def test_replicate_maps_equal_one_assemble_per_resample(convolve, chunk, monkeypatch):
+    """All resamples at once (energy products per time bin, time products over chunks
+    of bins) against _kernels_broadening.assemble called once per resample with its
+    normaliser."""
+    monkeypatch.setattr(KRM, "TIME_CHUNK", chunk)
+    rng = np.random.default_rng(7)
+    n_c, n_time, n_fine, order, n_rep, h = 2, 9, 40, 8, 5, 0.05
+    acc = rng.random((n_c, n_time, n_fine, order, n_rep))
+    energies = np.linspace(0.1, 1.9, 23)
+    blocks = KB.broadening_blocks(energies, e_lo=0.0, h=h, n_fine=n_fine, fwhm=4 * h,
+                                  order=order)
+    times = np.arange(n_time) * 2.0
+    delays = np.linspace(0.0, 16.0, 6)
+    cmat = KB.time_matrix(delays, times, sigma=3.0 if convolve else None, t_known=16.0)
+    norm = rng.uniform(0.5, 2.0, (n_rep, n_time))
+    norm[1, 3] = 0.0  # a time with no alive weight
+    out = np.zeros((n_c, delays.size, energies.size, n_rep))
+    for t0, t1 in ((0, 4), (4, n_time)):  # two time windows add up
+        KRM.assemble_replicates(np.ascontiguousarray(acc[:, t0:t1]),
+                                KRM.replicate_blocks(blocks), cmat[:, t0:t1],
+                                norm[:, t0:t1], out)
+    for r in range(n_rep):
+        ref = KB.assemble(KBS.per_resample(acc, r), blocks, cmat * norm[r][None, :])
+        np.testing.assert_allclose(out[..., r], ref, rtol=0, atol=1e-12 * np.abs(ref).max())
