@@ -407,6 +407,7 @@ def analyse_band(
     clusters: npt.ArrayLike | None = None,
     groups: SnapshotGroups | None = None,
     model: Any = None,
+    sticks: Any = None,
 ) -> BandAnalysis:
     """Find what makes one band of a map: per-snapshot intensities, groups, shares.
 
@@ -428,6 +429,10 @@ def analyse_band(
     model : TRPESModel, optional
         The stick model the map was made with (``compute_trpes(..., return_model=True)``);
         without it the model is rebuilt from the map's parameters.
+    sticks : BandSticks, optional
+        Sticks of `ens` indexed for band queries (:func:`.band_sticks.prepare_band_sticks`)
+        that serve this map (``sticks.serves(trpes_map)`` is empty): used instead of
+        `model`, so a map of another probe width or photon energy needs no new sticks.
 
     Returns
     -------
@@ -455,7 +460,15 @@ def analyse_band(
         raise SchemaError(f"The 'groups' parameter of analyse_band holds "
                           f"{groups.n_snapshots} rows; ens has {ens.n_snapshots}. Hint: "
                           "pass the groups of the same ensemble (or none).")
-    x = region_intensity(ens, trpes_map, energy_range=e_rng, delay_range=d_rng, model=model)
+    if sticks is not None:
+        if sticks.n_snapshots != ens.n_snapshots:
+            raise SchemaError(f"The 'sticks' parameter of analyse_band holds sticks of "
+                              f"{sticks.n_snapshots} snapshots; ens has {ens.n_snapshots}. "
+                              "Hint: pass the sticks of the same ensemble (or none).")
+        x = sticks.region_intensity(trpes_map, energy_range=e_rng, delay_range=d_rng)
+    else:
+        x = region_intensity(ens, trpes_map, energy_range=e_rng, delay_range=d_rng,
+                             model=model)
     return BandAnalysis.from_intensity(groups, x, energy_range=e_rng, delay_range=d_rng)
 
 
