@@ -7,8 +7,9 @@ weight ``tw`` is not zero and, within each, the energy slice ``[lo - 9 s, hi + 9
 found by bisection: no pass over the other sticks. Per stick the term is the one of
 ``contributions._region_per_snapshot`` (its naive twin, which the tests compare):
 ``w * ew(x) * dw(t)`` with the energy weight ``ew = Phi((hi - x) / s) - Phi((lo - x) / s)``
-(exactly 1 further than 9 s inside the window, as there) and the time weight ``dw``
-interpolated between neighbouring grid times by the stick's time fraction.
+(exactly 1 further than 9 s inside the window and one-sided at each edge when some
+stick lies there, as there) and the time weight ``dw`` interpolated between
+neighbouring grid times by the stick's time fraction.
 
 Two interchangeable implementations: a compiled pass (numba, the ``fast`` extra) and
 numpy on the contiguous block of sticks inside the delay window (the fallback).
@@ -61,9 +62,31 @@ def index_sticks(tbin: np.ndarray, energy: np.ndarray, n_time: int
     return order, starts
 
 
-def _region_kernel(energy, weight, snap, tfrac, has_frac, starts, tw, lo, hi, sigma,
-                   out):  # pragma: no cover - compiled by numba
-    """Add every stick's band term to ``out[snap]`` (see the module docstring)."""
+def _has_interior(energy, starts, lo, hi, sigma):  # pragma: no cover - compiled by numba
+    """Whether any stick lies further than 9 sigma inside ``[lo, hi]`` (any time)."""
+    span = 9.0 * sigma
+    a_hi = lo + span
+    b_lo = hi - span
+    if not a_hi < b_lo:
+        return False
+    for j in range(starts.shape[0] - 1):
+        s = starts[j]
+        e = starts[j + 1]
+        if e > s:
+            seg = energy[s:e]
+            if np.searchsorted(seg, b_lo) > np.searchsorted(seg, a_hi):
+                return True
+    return False
+
+
+def _region_kernel(energy, weight, snap, tfrac, has_frac, starts, tw, lo, hi, sigma, floor,
+                   interior, out):  # pragma: no cover - compiled by numba
+    """Add every stick's band term to ``out[snap]`` (see the module docstring).
+
+    Sticks at or below `floor` are left out. With `interior` (a stick lies further than
+    9 sigma inside the window, so the window is wider than 18 sigma) each edge takes its
+    one-sided error function and the inside weighs 1, as the naive twin does.
+    """
     n_time = tw.shape[0]
     span = 9.0 * sigma
     a_lo = lo - span
@@ -81,14 +104,18 @@ def _region_kernel(energy, weight, snap, tfrac, has_frac, starts, tw, lo, hi, si
         if e <= s:
             continue
         seg = energy[s:e]
-        i0 = s + np.searchsorted(seg, a_lo)
+        i0 = s + max(np.searchsorted(seg, a_lo), np.searchsorted(seg, floor, side="right"))
         i1 = s + np.searchsorted(seg, b_hi)
         for i in range(i0, i1):
             x = energy[i]
-            if x >= a_hi and x < b_lo:
+            if not interior:
+                ew = 0.5 * math.erfc((x - hi) * inv) - 0.5 * math.erfc((x - lo) * inv)
+            elif x < a_hi:
+                ew = 0.5 * math.erfc((lo - x) * inv)
+            elif x < b_lo:
                 ew = 1.0
             else:
-                ew = 0.5 * math.erfc((x - hi) * inv) - 0.5 * math.erfc((x - lo) * inv)
+                ew = 0.5 * math.erfc((x - hi) * inv)
             if has_frac:
                 f = tfrac[i]
                 dw = (1.0 - f) * t0 + f * t1
@@ -107,8 +134,9 @@ def _compiled() -> Callable[..., None] | None:
                 except ImportError:
                     _COMPILED["kernel"] = None
                 else:
-                    _COMPILED["kernel"] = numba.njit(cache=True, nogil=True,
-                                                     boundscheck=False)(_region_kernel)
+                    jit = numba.njit(cache=True, nogil=True, boundscheck=False)
+                    _COMPILED["interior"] = jit(_has_interior)
+                    _COMPILED["kernel"] = jit(_region_kernel)
     return _COMPILED["kernel"]
 
 
@@ -124,7 +152,7 @@ def region_backend(backend: str = "auto") -> str:
 def _numpy_sums(energy: np.ndarray, weight: np.ndarray, snap: np.ndarray,
                 tfrac: np.ndarray | None, starts: np.ndarray, tw: np.ndarray, lo: float,
                 hi: float, sigma: float | Callable[[np.ndarray], np.ndarray], shift: float,
-                n_snapshots: int) -> np.ndarray:
+                floor: float, n_snapshots: int) -> np.ndarray:
     """numpy twin of the kernel on the block of sticks inside the delay window."""
     n_time = tw.size
     live = tw != 0.0
@@ -138,16 +166,19 @@ def _numpy_sums(energy: np.ndarray, weight: np.ndarray, snap: np.ndarray,
     tb = np.repeat(np.arange(j0, j1), np.diff(starts[j0:j1 + 1]))
     x = energy[s:e]
     if callable(sigma):  # energy-dependent width: every stick, both error functions
-        xs = x + shift
+        keep = np.flatnonzero(x > floor)
+        xs = x[keep] + shift
         sig = np.asarray(sigma(xs), dtype=float)
         ew = ndtr((hi + shift - xs) / sig) - ndtr((lo + shift - xs) / sig)
-        keep = np.arange(x.size)
     else:
         span = EDGE_SIGMAS * sigma
-        keep = np.flatnonzero((x >= lo - span) & (x < hi + span))
+        keep = np.flatnonzero((x >= lo - span) & (x < hi + span) & (x > floor))
         xk = x[keep]
-        inside = (xk >= lo + span) & (xk < hi - span)
-        ew = np.where(inside, 1.0, ndtr((hi - xk) / sigma) - ndtr((lo - xk) / sigma))
+        if np.any((energy >= lo + span) & (energy < hi - span)):  # as the naive twin
+            ew = np.where(xk < lo + span, ndtr((xk - lo) / sigma),
+                          np.where(xk < hi - span, 1.0, ndtr((hi - xk) / sigma)))
+        else:
+            ew = ndtr((hi - xk) / sigma) - ndtr((lo - xk) / sigma)
     tbk = tb[keep]
     if tfrac is None:
         dw = tw[tbk]
@@ -160,7 +191,8 @@ def _numpy_sums(energy: np.ndarray, weight: np.ndarray, snap: np.ndarray,
 def region_sums(energy: np.ndarray, weight: np.ndarray, snap: np.ndarray,
                 tfrac: np.ndarray | None, starts: np.ndarray, tw: np.ndarray, *, lo: float,
                 hi: float, sigma: float | Callable[[np.ndarray], np.ndarray],
-                n_snapshots: int, shift: float = 0.0, backend: str = "auto") -> np.ndarray:
+                n_snapshots: int, shift: float = 0.0, floor: float = -np.inf,
+                backend: str = "auto") -> np.ndarray:
     """Band intensity of every snapshot from sticks indexed by :func:`index_sticks`.
 
     Parameters
@@ -185,6 +217,9 @@ def region_sums(energy: np.ndarray, weight: np.ndarray, snap: np.ndarray,
         Length of the result.
     shift : float
         Map-frame energy minus stick-frame energy (eV); used only by a callable `sigma`.
+    floor : float
+        Sticks at or below this energy (eV, sticks' frame) are left out (channels a
+        fresh model of the map's probe would not hold).
     backend : {"auto", "numba", "numpy"}
 
     Returns
@@ -193,11 +228,14 @@ def region_sums(energy: np.ndarray, weight: np.ndarray, snap: np.ndarray,
     """
     if callable(sigma) or region_backend(backend) == "numpy":
         return _numpy_sums(energy, weight, snap, tfrac, starts, tw, lo, hi, sigma, shift,
-                           n_snapshots)
+                           floor, n_snapshots)
     kernel = _compiled()
     assert kernel is not None  # region_backend said numba
     out = np.zeros(n_snapshots)
     frac = tfrac if tfrac is not None else np.zeros(1)
+    lo, hi, sigma = float(lo), float(hi), float(sigma)
+    interior = bool(_COMPILED["interior"](energy, starts, lo, hi, sigma))
     kernel(energy, weight, snap, frac, tfrac is not None, starts,
-           np.ascontiguousarray(tw, dtype=np.float64), float(lo), float(hi), float(sigma), out)
+           np.ascontiguousarray(tw, dtype=np.float64), lo, hi, sigma, float(floor), interior,
+           out)
     return out

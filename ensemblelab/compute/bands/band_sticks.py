@@ -16,9 +16,9 @@ serves the band intensities of every map whose settings only move or re-broaden 
 The sticks are made at the highest photon energy of ``photon_energies`` with a
 threshold tail :data:`TAIL_WIDEN` times wider than the probe's (all channels within
 ``THRESHOLD_TAIL`` standard deviations of threshold for every probe up to that much
-broader in energy): a channel kept here but left out of a fresh model lies more than
-``THRESHOLD_TAIL`` standard deviations below threshold and adds less than 1e-15 of its
-weight (computed independently). They are indexed by (time-grid index, energy)
+broader in energy); a query leaves out the channels a fresh model of the map's probe
+leaves out (more than ``THRESHOLD_TAIL`` of its standard deviations below threshold),
+so the sticks summed are the same. They are indexed by (time-grid index, energy)
 (:mod:`._kernels_region`), so a query touches only the sticks inside the band.
 ``exclude=`` leaves trajectories out as in ``compute_trpes``.
 """
@@ -41,6 +41,7 @@ from ..spectroscopy.cross_sections import DysonNorm, resolve_cross_section
 from ..spectroscopy.maps import excluded_ids, trpes_model
 from ..spectroscopy.pulses import FWHM_TO_SIGMA, GaussianPulse
 from ..spectroscopy.resolution import ProportionalResolution, resolution_from_params, stick_fwhm
+from ..spectroscopy.sticks import THRESHOLD_TAIL
 from ._kernels_region import index_sticks, region_sums
 
 __all__ = ["BandSticks", "prepare_band_sticks", "TAIL_WIDEN"]
@@ -204,9 +205,12 @@ class BandSticks:
         if isinstance(res, ProportionalResolution):  # per-stick width, from its energy
             def sigma(x: np.ndarray) -> np.ndarray:
                 return np.asarray(stick_fwhm(probe, res, x)) * FWHM_TO_SIGMA
+        # the channels a fresh model of this probe holds: above -THRESHOLD_TAIL sigma
+        floor = -THRESHOLD_TAIL * probe.effective_spectral_fwhm * FWHM_TO_SIGMA - shift
         return region_sums(self._energy, self._weight, self._snap, self._tfrac, self._starts,
                            tw, lo=max(e1, 0.0) - shift, hi=e2 - shift, sigma=sigma,
-                           n_snapshots=self.n_snapshots, shift=shift, backend=backend)
+                           n_snapshots=self.n_snapshots, shift=shift, floor=floor,
+                           backend=backend)
 
 
 def prepare_band_sticks(ens: Ensemble, *, probe: GaussianPulse, **kwargs: Any) -> BandSticks:
