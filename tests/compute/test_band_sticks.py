@@ -193,3 +193,15 @@ def test_index_and_kernel_against_a_direct_sum():
         x = KR.region_sums(energy[order], weight[order], snap[order], tfrac[order], starts,
                            tw, lo=lo, hi=hi, sigma=s, n_snapshots=n_snap, backend=backend)
         np.testing.assert_allclose(x, ref, rtol=0, atol=1e-12 * ref.max())
+
+
+def test_cell_sums_equal_bincount():
+    # the one-pass group sums against numpy's bincount (its naive twin)
+    from ensemblelab.compute.bands._kernels_bands import cell_sums
+
+    rng = np.random.default_rng(12)
+    codes = rng.integers(0, 57, 20_000)
+    x = np.where(rng.random(codes.size) < 0.6, 0.0, rng.exponential(1.0, codes.size))
+    sums, counts = cell_sums(codes, x, 60)
+    np.testing.assert_allclose(sums, np.bincount(codes, x, minlength=60), rtol=1e-14)
+    np.testing.assert_array_equal(counts, np.bincount(codes[x > 0], minlength=60))

@@ -22,7 +22,7 @@ import numpy.typing as npt
 import pandas as pd
 
 from ...errors import SchemaError
-from ._kernels_bands import integer_codes, pair_counts, top_k_indices
+from ._kernels_bands import cell_sums, integer_codes, pair_counts, top_k_indices
 
 if TYPE_CHECKING:
     from ...data.ensemble import Ensemble
@@ -346,16 +346,15 @@ class BandAnalysis:
         t_codes, t_values = self.groups.codes("traj")
         n_t = t_values.size
         if group_by == "traj":
-            inten = np.bincount(t_codes, x, minlength=n_t)
-            n_snap = self.traj_counts
+            inten, n_snap = cell_sums(t_codes, x, n_t)  # one pass: sums and counts
+            n_snap = self._cache.setdefault("traj_counts", n_snap)
             out = (inten, n_snap, (n_snap > 0).astype(np.int64), t_values)
         else:
             codes, values = self.groups.codes(group_by)
             n_g = values.size
             if n_g * n_t <= _MAX_PAIR_CELLS:
-                pairs = self.groups.pair_codes(group_by)
-                per_pair = np.bincount(pairs[mask], minlength=n_g * n_t).reshape(n_g, n_t)
-                inten = np.bincount(pairs, x, minlength=n_g * n_t).reshape(n_g, n_t).sum(axis=1)
+                pair_int, per_pair = self.pair_sums(group_by)
+                inten = pair_int.sum(axis=1)
                 self._cache.setdefault("traj_counts", per_pair.sum(axis=0))
                 out = (inten, per_pair.sum(axis=1), np.count_nonzero(per_pair, axis=1), values)
             else:
@@ -365,6 +364,31 @@ class BandAnalysis:
                        values)
         self._cache[key] = out
         return out
+
+    def pair_sums(self, group_by: str) -> tuple[np.ndarray, np.ndarray]:
+        """Band intensity and contributing snapshots of every (group, trajectory) pair.
+
+        Parameters
+        ----------
+        group_by : {"cluster", "state"}
+
+        Returns
+        -------
+        intensity : ndarray of float, shape (n_codes, n_trajectory_codes)
+        n_snapshots : ndarray of int, shape (n_codes, n_trajectory_codes)
+            Computed in one pass over the rows and kept.
+        """
+        if _check_group_by(group_by, "BandAnalysis.pair_sums") == "traj":
+            raise ValueError("pair_sums groups by cluster or state (a trajectory's pairs "
+                             "are group_sums('traj')).")
+        key = f"pair_sums:{group_by}"
+        if key not in self._cache:
+            n_g = self.groups.codes(group_by)[1].size
+            n_t = self.groups.codes("traj")[1].size
+            sums, counts = cell_sums(self.groups.pair_codes(group_by), self.intensity,
+                                     n_g * n_t)
+            self._cache[key] = (sums.reshape(n_g, n_t), counts.reshape(n_g, n_t))
+        return self._cache[key]
 
     def group_table(self, group_by: str, *, cluster_names: dict[str, str] | None = None
                     ) -> pd.DataFrame:
