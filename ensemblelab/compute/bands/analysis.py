@@ -262,8 +262,9 @@ class BandAnalysis:
             k = rows.size if k is None else k
             return rows[top_k_indices(x[rows], k)]
         k = self.n_snapshots if k is None else min(int(k), self.n_snapshots)
-        # fewer than all contributing rows: the top k are all contributing anyway
-        rows = np.flatnonzero(self.mask) if k == self.n_snapshots else np.arange(x.size)
+        if k < self.n_snapshots:  # the top k are all contributing anyway: no gather
+            return top_k_indices(x, k)
+        rows = np.flatnonzero(self.mask)
         return rows[top_k_indices(x[rows], k)]
 
     def strongest(self, k: int | None = None, *, group_by: str | None = None,
