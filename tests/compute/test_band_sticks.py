@@ -7,8 +7,7 @@ published): the region integral decomposed exactly into sticks, J. Chem. Phys. 2
 photon energy moves every stick by ``n (h nu' - h nu)`` (energy conservation,
 ``E_kin = n h nu - IP``); the part of a stick's line above 0 eV is its open fraction.
 Agreement to 1e-9 relative to the band's largest snapshot term (common practice for
-sums of the same terms in another order; the threshold tail the sticks keep beyond a
-fresh model's adds < 1e-15 of a stick's weight, computed independently).
+sums of the same terms in another order), and the same contributing snapshots.
 """
 
 from __future__ import annotations
@@ -19,8 +18,8 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from ensemblelab.compute.bands import analyse_band, prepare_band_sticks
 from ensemblelab.compute.bands import _kernels_region as KR
+from ensemblelab.compute.bands import analyse_band, prepare_band_sticks
 from ensemblelab.compute.spectroscopy import compute_trpes, region_intensity
 from ensemblelab.compute.spectroscopy.pulses import GaussianPulse
 from ensemblelab.data.ensemble import Ensemble
