@@ -85,6 +85,7 @@ class LiveMaps:
         self.band: Any = None
         self.n_band_builds = 0
         self._band_key: Any = None
+        self._band_for: Any = None
         self._band_kw: dict[str, Any] = {}
 
     def compute(self, model: Any, *, probe: Any, pump: Any, kinetic_energies: np.ndarray,
@@ -161,12 +162,14 @@ class LiveMaps:
         if cache is None:
             return None
         key = (self.n_caches, cache.rebuilds)
-        if self.band is None or self._band_key != key or self.band.serves(trpes_map):
+        if self.band is None or self._band_key != key or (
+                self.band.serves(trpes_map) and self._band_for is not trpes_map):
             self.band = None  # the old sticks go before the new ones are made
             self.band = prepare_band_sticks(
                 cache.ens, probe=GaussianPulse(**trpes_map.params["probe"]), pump=cache.pump,
                 photon_energies=cache.photon_energies, **self._band_kw)
             self._band_key = key
+            self._band_for = trpes_map  # made for this map: not made again for it
             self.n_band_builds += 1
         return None if self.band.serves(trpes_map) else self.band
 
