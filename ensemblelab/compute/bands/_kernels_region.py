@@ -55,11 +55,31 @@ def index_sticks(tbin: np.ndarray, energy: np.ndarray, n_time: int
     starts : ndarray of int64, shape (n_time + 1,)
         ``order[starts[j]:starts[j + 1]]`` are the sticks of grid time ``j``.
     """
-    order = np.argsort(energy, kind="stable")
-    order = order[np.argsort(tbin[order], kind="stable")]  # stable: energy order kept
     starts = np.zeros(n_time + 1, dtype=np.int64)
     np.cumsum(np.bincount(tbin, minlength=n_time)[:n_time], out=starts[1:])
-    return order, starts
+    if _compiled() is not None:  # counting sort by time index, then each slice by energy
+        order = np.empty(tbin.size, dtype=np.int64)
+        _COMPILED["index"](np.ascontiguousarray(tbin, dtype=np.int64),
+                           np.ascontiguousarray(energy, dtype=np.float64), starts, order)
+        return order, starts
+    order = np.argsort(energy, kind="stable")
+    return order[np.argsort(tbin[order], kind="stable")], starts  # stable: energy order kept
+
+
+def _index_kernel(tbin, energy, starts, order):  # pragma: no cover - compiled by numba
+    """``order``: sticks by time index (a counting sort, stable), each slice by energy."""
+    fill = starts[:-1].copy()
+    for i in range(tbin.shape[0]):
+        j = tbin[i]
+        order[fill[j]] = i
+        fill[j] += 1
+    for j in range(starts.shape[0] - 1):
+        s = starts[j]
+        e = starts[j + 1]
+        if e - s > 1:
+            part = order[s:e].copy()
+            o = np.argsort(energy[part], kind="mergesort")  # stable: ties keep stick order
+            order[s:e] = part[o]
 
 
 def _has_interior(energy, starts, lo, hi, sigma):  # pragma: no cover - compiled by numba
@@ -136,6 +156,7 @@ def _compiled() -> Callable[..., None] | None:
                 else:
                     jit = numba.njit(cache=True, nogil=True, boundscheck=False)
                     _COMPILED["interior"] = jit(_has_interior)
+                    _COMPILED["index"] = jit(_index_kernel)
                     _COMPILED["kernel"] = jit(_region_kernel)
     return _COMPILED["kernel"]
 

@@ -38,10 +38,11 @@ from ...data.spectrum import TRPESMap
 from ...errors import SchemaError
 from ..spectroscopy.contributions import delay_window_weights
 from ..spectroscopy.cross_sections import DysonNorm, resolve_cross_section
-from ..spectroscopy.maps import excluded_ids, trpes_model
+from ..spectroscopy.maps import excluded_ids
 from ..spectroscopy.pulses import FWHM_TO_SIGMA, GaussianPulse
 from ..spectroscopy.resolution import ProportionalResolution, resolution_from_params, stick_fwhm
-from ..spectroscopy.sticks import THRESHOLD_TAIL
+from ..spectroscopy.sticks import THRESHOLD_TAIL, prepare_sticks
+from ..spectroscopy.weights import resolve_weights
 from ._kernels_region import index_sticks, region_sums
 
 __all__ = ["BandSticks", "prepare_band_sticks", "TAIL_WIDEN"]
@@ -107,11 +108,11 @@ class BandSticks:
         self._excluded = excluded_ids(exclude) if exclude is not None else np.zeros(0, int)
         with warnings.catch_warnings():  # the map warned already
             warnings.simplefilter("ignore")
-            model = trpes_model(ens, probe=self._build_probe, pump=pump,
-                                cross_section=cross_section, weights=weights,
-                                time_step=time_step, ionisation_shifts=ionisation_shifts,
-                                absorbing=absorbing, exclude=exclude, keep_sticks=True,
-                                progress=progress)
+            kind, _ = resolve_weights(ens, weights=weights, pump=pump)  # as compute_trpes
+            model = prepare_sticks(ens, probe=self._build_probe, pump=pump,
+                                   cross_section=cross_section, weights=kind,
+                                   time_step=time_step, ionisation_shifts=ionisation_shifts,
+                                   absorbing=absorbing, exclude=exclude, progress=progress)
         sticks = model.sticks
         assert sticks is not None and model.tbin is not None  # kept: in-memory ensemble
         order, self._starts = index_sticks(np.asarray(model.tbin), sticks.energy,
