@@ -187,7 +187,9 @@ def test_index_and_kernel_against_a_direct_sum():
     dw = (1 - tfrac) * tw[tbin] + tfrac * tw[np.minimum(tbin + 1, n_time - 1)]
     ref = np.bincount(snap, weight * ew * dw, minlength=n_snap)
     order, starts = KR.index_sticks(tbin, energy, n_time)
-    assert np.all(np.diff(tbin[order]) >= 0)
+    # the order of a stable sort by (time index, energy): numpy's lexsort
+    np.testing.assert_array_equal(order, np.lexsort((energy, tbin)))
+    np.testing.assert_array_equal(starts, np.searchsorted(tbin[order], np.arange(n_time + 1)))
     for backend in ("numba", "numpy"):
         x = KR.region_sums(energy[order], weight[order], snap[order], tfrac[order], starts,
                            tw, lo=lo, hi=hi, sigma=s, n_snapshots=n_snap, backend=backend)
@@ -204,3 +206,26 @@ def test_cell_sums_equal_bincount():
     sums, counts = cell_sums(codes, x, 60)
     np.testing.assert_allclose(sums, np.bincount(codes, x, minlength=60), rtol=1e-14)
     np.testing.assert_array_equal(counts, np.bincount(codes[x > 0], minlength=60))
+
+
+def test_prepare_sticks_exclude_equals_the_copy():
+    # trajectories excluded by weight 0 give the map of the ensemble without them (a
+    # weighted mean over trajectories; computed independently (not published))
+    from ensemblelab.compute.spectroscopy import prepare_sticks
+
+    ens = invented_ensemble(13)
+    ids = [2, 3, 10]
+    kw = {"probe": PROBE, "weights": "ensemble", "progress": False}
+    a = prepare_sticks(ens, exclude=ids, **kw)
+    b = prepare_sticks(ens.without(ids), **kw)
+    np.testing.assert_allclose(a.alive, b.alive, rtol=0, atol=1e-12 * b.alive.max())
+    assert a.total_weight == pytest.approx(b.total_weight, rel=1e-12)
+    kept = ~np.isin(a.sticks.traj, ids)
+    assert np.all(a.sticks.weight[~kept] == 0)
+
+    def table(s, rows):
+        cols = [s.traj[rows], s.time[rows], s.channel[rows], s.energy[rows], s.weight[rows]]
+        return np.array(cols)[:, np.lexsort(cols[3::-1])]
+
+    np.testing.assert_allclose(table(a.sticks, kept), table(b.sticks, slice(None)),
+                               rtol=1e-10)  # alive-weight ratios: rounding (common practice)
