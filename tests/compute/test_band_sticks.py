@@ -229,3 +229,20 @@ def test_prepare_sticks_exclude_equals_the_copy():
 
     np.testing.assert_allclose(table(a.sticks, kept), table(b.sticks, slice(None)),
                                rtol=1e-10)  # alive-weight ratios: rounding (common practice)
+
+
+def test_without_numba_the_numpy_twins_give_the_same(monkeypatch):
+    # the fallbacks of a platform without numba: numpy's stable sorts and bincount
+    from ensemblelab.compute.bands import _kernels_bands as KB
+
+    rng = np.random.default_rng(5)
+    tbin, energy = rng.integers(0, 40, 3000), rng.normal(1.0, 0.5, 3000)
+    codes, x = rng.integers(0, 9, 3000), np.where(rng.random(3000) < 0.5, 0.0, 1.0)
+    compiled = KR.index_sticks(tbin, energy, 40), KB.cell_sums(codes, x, 9)
+    monkeypatch.setitem(KR._COMPILED, "kernel", None)
+    monkeypatch.setitem(KB._COMPILED, "kernel", None)
+    assert KR.region_backend() == "numpy"
+    plain = KR.index_sticks(tbin, energy, 40), KB.cell_sums(codes, x, 9)
+    for a, b in zip(compiled, plain, strict=True):
+        np.testing.assert_array_equal(a[0], b[0])
+        np.testing.assert_array_equal(a[1], b[1])
