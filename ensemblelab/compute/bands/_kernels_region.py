@@ -58,10 +58,10 @@ def index_sticks(tbin: np.ndarray, energy: np.ndarray, n_time: int
     starts = np.zeros(n_time + 1, dtype=np.int64)
     np.cumsum(np.bincount(tbin, minlength=n_time)[:n_time], out=starts[1:])
     if _compiled() is not None:  # counting sort by time index, then each slice by energy
-        order = np.empty(tbin.size, dtype=np.int64)
+        out = np.empty(tbin.size, dtype=np.int64)
         _COMPILED["index"](np.ascontiguousarray(tbin, dtype=np.int64),
-                           np.ascontiguousarray(energy, dtype=np.float64), starts, order)
-        return order, starts
+                           np.ascontiguousarray(energy, dtype=np.float64), starts, out)
+        return out, starts
     order = np.argsort(energy, kind="stable")
     return order[np.argsort(tbin[order], kind="stable")], starts  # stable: energy order kept
 
