@@ -143,6 +143,7 @@ class LiveMaps:
             self._key = key
             self.n_caches += 1
             self._band_kw = {"exclude": list(excluded), **build_kw}
+            self.band = None  # the old cache's band sticks: made again when asked for
         self.cache.set_pump(pump)  # a new pass only when the weights depend on it
         trpes = self.cache.map(kinetic_energies=kinetic_energies, delays=delays,
                                probe_fwhm=probe.fwhm, resolution=resolution,
