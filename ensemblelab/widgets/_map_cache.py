@@ -136,6 +136,7 @@ class LiveMaps:
             from ..compute.spectroscopy.cache import prepare_map_cache
 
             hv = probe.photon_energy
+            self.band = None  # the old cache's band sticks go first (made again if asked)
             self.cache = prepare_map_cache(
                 ens, probe=probe, pump=pump, resolution=resolution, exclude=list(excluded),
                 photon_energies=(max(0.5 * hv, hv - PHOTON_ENERGY_SPAN),
@@ -143,7 +144,6 @@ class LiveMaps:
             self._key = key
             self.n_caches += 1
             self._band_kw = {"exclude": list(excluded), **build_kw}
-            self.band = None  # the old cache's band sticks: made again when asked for
         self.cache.set_pump(pump)  # a new pass only when the weights depend on it
         trpes = self.cache.map(kinetic_energies=kinetic_energies, delays=delays,
                                probe_fwhm=probe.fwhm, resolution=resolution,
