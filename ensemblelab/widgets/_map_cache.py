@@ -9,12 +9,13 @@ depend on it (doorway weights). New exclusions, weights, cross section or photon
 make a new cache (one pass). A decomposition, or settings the cache does
 not take, use :func:`~ensemblelab.compute.spectroscopy.compute_trpes` as before.
 
-The band analysis needs the sticks themselves. A map from the cache comes without
-them: the selection model builds them on the first brush after the change
-(:meth:`.SelectionModel.stick_model`), except after a change of the resolution alone
-(or of the convolution or grids), which leaves every stick as it was, so the sticks
-already held are kept for the new map. (A new probe width changes the sticks' open
-fractions near threshold, so it needs new sticks.)
+The band analysis needs the sticks themselves. A map from the cache comes with a
+source of them (:meth:`LiveMaps.band_sticks`, kept by the selection model): indexed
+:class:`~ensemblelab.compute.bands.BandSticks` made on the first brush after the cache
+changed (one pass) and reused for every later map of the cache, so a new probe width,
+resolution or photon energy with a band selected redraws the band from the same
+sticks (moved by the photon-energy difference, re-broadened). Maps the cache does not
+make (decompositions) use :meth:`.SelectionModel.stick_model` as before.
 """
 
 from __future__ import annotations
@@ -68,6 +69,10 @@ class LiveMaps:
         a photon energy outside its range, are in ``cache.rebuilds``).
     n_full : int
         Maps computed by a full ``compute_trpes`` call (decompositions).
+    band : BandSticks or None
+        The sticks of the band analysis (made on the first band query of a cache).
+    n_band_builds : int
+        Band sticks made (each one pass over the ensemble).
     """
 
     def __init__(self) -> None:
@@ -77,6 +82,11 @@ class LiveMaps:
         self._key: Any = None
         self._sticks_key: Any = None
         self._ground: tuple[Any, float] | None = None
+        self.band: Any = None
+        self.n_band_builds = 0
+        self._band_key: Any = None
+        self._band_for: Any = None
+        self._band_kw: dict[str, Any] = {}
 
     def compute(self, model: Any, *, probe: Any, pump: Any, kinetic_energies: np.ndarray,
                 delays: np.ndarray, resolution: float, convolve: bool, decompose: str | None,
@@ -126,19 +136,43 @@ class LiveMaps:
             from ..compute.spectroscopy.cache import prepare_map_cache
 
             hv = probe.photon_energy
+            self.band = None  # the old cache's band sticks go first (made again if asked)
             self.cache = prepare_map_cache(
                 ens, probe=probe, pump=pump, resolution=resolution, exclude=list(excluded),
                 photon_energies=(max(0.5 * hv, hv - PHOTON_ENERGY_SPAN),
                                  hv + PHOTON_ENERGY_SPAN), **build_kw)
             self._key = key
             self.n_caches += 1
+            self._band_kw = {"exclude": list(excluded), **build_kw}
         self.cache.set_pump(pump)  # a new pass only when the weights depend on it
         trpes = self.cache.map(kinetic_energies=kinetic_energies, delays=delays,
                                probe_fwhm=probe.fwhm, resolution=resolution,
                                photon_energy=probe.photon_energy, convolve=convolve,
                                normalise=kwargs.get("normalise", "alive"))
         self._warn_ground_state(ens, probe)
+        model.remember_band_sticks(trpes, self.band_sticks)
         return trpes, held
+
+    def band_sticks(self, trpes_map: Any) -> Any:
+        """Indexed sticks serving the band queries of `trpes_map` (a map of the current
+        cache), made on the first call after the cache changed; None if they cannot."""
+        from ..compute.bands import prepare_band_sticks
+        from ..compute.spectroscopy.pulses import GaussianPulse
+
+        cache = self.cache
+        if cache is None:
+            return None
+        key = (self.n_caches, cache.rebuilds)
+        if self.band is None or self._band_key != key or (
+                self.band.serves(trpes_map) and self._band_for is not trpes_map):
+            self.band = None  # the old sticks go before the new ones are made
+            self.band = prepare_band_sticks(
+                cache.ens, probe=GaussianPulse(**trpes_map.params["probe"]), pump=cache.pump,
+                photon_energies=cache.photon_energies, **self._band_kw)
+            self._band_key = key
+            self._band_for = trpes_map  # made for this map: not made again for it
+            self.n_band_builds += 1
+        return None if self.band.serves(trpes_map) else self.band
 
     def _warn_ground_state(self, ens: Ensemble, probe: Any) -> None:
         """The ground-state warning of ``compute_trpes`` (the fraction kept per probe)."""

@@ -139,6 +139,7 @@ class SelectionModel(HasTraits):
         self._current_key: tuple[int, ...] | None = None
         self._current: Ensemble | None = None
         self._stick_models: tuple[Any, Any, Any] | None = None
+        self._band_sticks: tuple[Any, Any, Any] | None = None  # (map, excluded, source)
         ids = ens.snapshots["snapshot"].to_numpy()
         self._identity_ids = bool(np.array_equal(ids, np.arange(ids.size)))
         self._row_of = pd.Index(ids)
@@ -194,6 +195,11 @@ class SelectionModel(HasTraits):
         """Keep the stick model of `trpes_map` (made from :attr:`ens` with the current
         exclusions as ``exclude=``) for band queries."""
         self._stick_models = (trpes_map, tuple(self.excluded), model)
+
+    def remember_band_sticks(self, trpes_map: Any, source: Any) -> None:
+        """Keep `source` (``source(trpes_map)``: indexed :class:`~ensemblelab.compute.bands.
+        BandSticks` serving the map, or None) for the band queries of `trpes_map`."""
+        self._band_sticks = (trpes_map, tuple(self.excluded), source)
 
     def known_stick_model(self) -> Any:
         """The stick model held for :attr:`trpes_map` and the current exclusions, or None
@@ -340,9 +346,12 @@ class SelectionModel(HasTraits):
             raise ValueError("no map is shown yet: select_band needs trpes_map to be set.")
         e_rng = _range(energy_range, "energy_range")
         d_rng = _range(delay_range, "delay_range")
+        held = self._band_sticks  # sticks that serve this map: no new ones
+        sticks = held[2](self.trpes_map) if held is not None and held[0] is self.trpes_map \
+            and held[1] == tuple(self.excluded) else None
         analysis = analyse_band(self.ens, self.trpes_map, energy_range=e_rng,
-                                delay_range=d_rng, groups=self._groups(),
-                                model=self.stick_model())
+                                delay_range=d_rng, groups=self._groups(), sticks=sticks,
+                                model=None if sticks is not None else self.stick_model())
         fraction = _signal_fraction(analysis.total, self.trpes_map)
         no_signal = fraction < self.min_signal_fraction
         band = self._decorate(analysis.table(

@@ -51,15 +51,15 @@ def test_width_change_redraws_from_the_cache_and_equals_a_fresh_map(model):
     assert view.messages.errors == []
 
 
-def test_resolution_change_keeps_the_sticks_a_width_change_drops_them(model):
+def test_resolution_and_width_changes_keep_the_band_sticks(model):
     view = MapView(model, debounce=0, **GRID)
     view.brush.brushing = True
     view.brush.selected_x, view.brush.selected_y = np.array([1.3, 1.7]), np.array([0.0, 50.0])
-    view.brush.brushing = False  # the first brush builds the sticks
-    sticks = model.known_stick_model()
-    assert sticks is not None
+    view.brush.brushing = False  # the first brush makes the band's sticks
+    sticks = view.live.band
+    assert sticks is not None and view.live.n_band_builds == 1
     view.resolution.value = 0.04
-    assert model.known_stick_model() is sticks and view.live.cache.rebuilds == 1
+    assert view.live.band is sticks and view.live.cache.rebuilds == 1
     _close(model.trpes_map, _fresh(view, model))
     # the band follows the new map and equals the band of a fresh map with fresh sticks
     fresh_map, fresh_sticks = _fresh(view, model, return_model=True)
@@ -69,9 +69,9 @@ def test_resolution_change_keeps_the_sticks_a_width_change_drops_them(model):
     band = other.select_band(energy_range=(1.3, 1.7), delay_range=(0.0, 50.0))
     assert model.analysis.total == pytest.approx(other.analysis.total, rel=1e-9)
     assert list(model.band["snapshot"][:10]) == list(band["snapshot"][:10])
-    view.probe_fwhm.value = 45.0  # the open fractions change: new sticks for the band
-    assert model.known_stick_model() is not sticks
-    assert view.live.cache.rebuilds == 1
+    view.probe_fwhm.value = 45.0  # the same sticks serve the new width
+    assert view.live.band is sticks and view.live.n_band_builds == 1
+    assert model.known_stick_model() is None and view.live.cache.rebuilds == 1
 
 
 def test_photon_energy_change_shifts_the_cached_sticks(model):

@@ -11,6 +11,7 @@ from .analysis import (
     group_band,
     label_groups,
 )
+from .band_sticks import BandSticks, prepare_band_sticks
 
 __all__ = [
     "analyse_band",
@@ -19,4 +20,6 @@ __all__ = [
     "BAND_GROUPS",
     "group_band",
     "label_groups",
+    "BandSticks",
+    "prepare_band_sticks",
 ]

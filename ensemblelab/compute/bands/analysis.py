@@ -22,7 +22,7 @@ import numpy.typing as npt
 import pandas as pd
 
 from ...errors import SchemaError
-from ._kernels_bands import integer_codes, pair_counts, top_k_indices
+from ._kernels_bands import cell_sums, integer_codes, pair_counts, top_k_indices
 
 if TYPE_CHECKING:
     from ...data.ensemble import Ensemble
@@ -262,8 +262,9 @@ class BandAnalysis:
             k = rows.size if k is None else k
             return rows[top_k_indices(x[rows], k)]
         k = self.n_snapshots if k is None else min(int(k), self.n_snapshots)
-        # fewer than all contributing rows: the top k are all contributing anyway
-        rows = np.flatnonzero(self.mask) if k == self.n_snapshots else np.arange(x.size)
+        if k < self.n_snapshots:  # the top k are all contributing anyway: no gather
+            return top_k_indices(x, k)
+        rows = np.flatnonzero(self.mask)
         return rows[top_k_indices(x[rows], k)]
 
     def strongest(self, k: int | None = None, *, group_by: str | None = None,
@@ -346,16 +347,15 @@ class BandAnalysis:
         t_codes, t_values = self.groups.codes("traj")
         n_t = t_values.size
         if group_by == "traj":
-            inten = np.bincount(t_codes, x, minlength=n_t)
-            n_snap = self.traj_counts
+            inten, n_snap = cell_sums(t_codes, x, n_t)  # one pass: sums and counts
+            n_snap = self._cache.setdefault("traj_counts", n_snap)
             out = (inten, n_snap, (n_snap > 0).astype(np.int64), t_values)
         else:
             codes, values = self.groups.codes(group_by)
             n_g = values.size
             if n_g * n_t <= _MAX_PAIR_CELLS:
-                pairs = self.groups.pair_codes(group_by)
-                per_pair = np.bincount(pairs[mask], minlength=n_g * n_t).reshape(n_g, n_t)
-                inten = np.bincount(pairs, x, minlength=n_g * n_t).reshape(n_g, n_t).sum(axis=1)
+                pair_int, per_pair = self.pair_sums(group_by)
+                inten = pair_int.sum(axis=1)
                 self._cache.setdefault("traj_counts", per_pair.sum(axis=0))
                 out = (inten, per_pair.sum(axis=1), np.count_nonzero(per_pair, axis=1), values)
             else:
@@ -365,6 +365,31 @@ class BandAnalysis:
                        values)
         self._cache[key] = out
         return out
+
+    def pair_sums(self, group_by: str) -> tuple[np.ndarray, np.ndarray]:
+        """Band intensity and contributing snapshots of every (group, trajectory) pair.
+
+        Parameters
+        ----------
+        group_by : {"cluster", "state"}
+
+        Returns
+        -------
+        intensity : ndarray of float, shape (n_codes, n_trajectory_codes)
+        n_snapshots : ndarray of int, shape (n_codes, n_trajectory_codes)
+            Computed in one pass over the rows and kept.
+        """
+        if _check_group_by(group_by, "BandAnalysis.pair_sums") == "traj":
+            raise ValueError("pair_sums groups by cluster or state (a trajectory's pairs "
+                             "are group_sums('traj')).")
+        key = f"pair_sums:{group_by}"
+        if key not in self._cache:
+            n_g = self.groups.codes(group_by)[1].size
+            n_t = self.groups.codes("traj")[1].size
+            sums, counts = cell_sums(self.groups.pair_codes(group_by), self.intensity,
+                                     n_g * n_t)
+            self._cache[key] = (sums.reshape(n_g, n_t), counts.reshape(n_g, n_t))
+        return self._cache[key]
 
     def group_table(self, group_by: str, *, cluster_names: dict[str, str] | None = None
                     ) -> pd.DataFrame:
@@ -407,6 +432,7 @@ def analyse_band(
     clusters: npt.ArrayLike | None = None,
     groups: SnapshotGroups | None = None,
     model: Any = None,
+    sticks: Any = None,
 ) -> BandAnalysis:
     """Find what makes one band of a map: per-snapshot intensities, groups, shares.
 
@@ -428,6 +454,10 @@ def analyse_band(
     model : TRPESModel, optional
         The stick model the map was made with (``compute_trpes(..., return_model=True)``);
         without it the model is rebuilt from the map's parameters.
+    sticks : BandSticks, optional
+        Sticks of `ens` indexed for band queries (:func:`.band_sticks.prepare_band_sticks`)
+        that serve this map (``sticks.serves(trpes_map)`` is empty): used instead of
+        `model`, so a map of another probe width or photon energy needs no new sticks.
 
     Returns
     -------
@@ -455,7 +485,15 @@ def analyse_band(
         raise SchemaError(f"The 'groups' parameter of analyse_band holds "
                           f"{groups.n_snapshots} rows; ens has {ens.n_snapshots}. Hint: "
                           "pass the groups of the same ensemble (or none).")
-    x = region_intensity(ens, trpes_map, energy_range=e_rng, delay_range=d_rng, model=model)
+    if sticks is not None:
+        if sticks.n_snapshots != ens.n_snapshots:
+            raise SchemaError(f"The 'sticks' parameter of analyse_band holds sticks of "
+                              f"{sticks.n_snapshots} snapshots; ens has {ens.n_snapshots}. "
+                              "Hint: pass the sticks of the same ensemble (or none).")
+        x = sticks.region_intensity(trpes_map, energy_range=e_rng, delay_range=d_rng)
+    else:
+        x = region_intensity(ens, trpes_map, energy_range=e_rng, delay_range=d_rng,
+                             model=model)
     return BandAnalysis.from_intensity(groups, x, energy_range=e_rng, delay_range=d_rng)
 
 

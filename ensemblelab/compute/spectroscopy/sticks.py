@@ -478,6 +478,7 @@ def prepare_sticks(
     progress: bool = True,
     ionisation_shifts: Sequence[float] | Mapping[int, float] | None = None,
     absorbing: str = "zero",
+    exclude: Any = None,
 ) -> TRPESModel:
     """Compute the raw sticks of an ensemble for a probe and keep them for broadening.
 
@@ -501,8 +502,9 @@ def prepare_sticks(
         Accuracy knobs of the fast kernel (see :mod:`._kernels_deposit`).
     progress : bool
         Show a progress bar for large ensembles.
-    ionisation_shifts, absorbing
-        As for :func:`~ensemblelab.compute.spectroscopy.maps.compute_trpes`.
+    ionisation_shifts, absorbing, exclude
+        As for :func:`~ensemblelab.compute.spectroscopy.maps.compute_trpes` (``exclude``:
+        trajectory ids given weight 0 and not counted alive).
 
     Returns
     -------
@@ -510,7 +512,7 @@ def prepare_sticks(
         Holding the sticks; :meth:`TRPESModel.broaden` makes maps.
     """
     from ..engine import as_source, time_statistics
-    from .sampling import ensemble_absorbing_state, kish_effective_size
+    from .sampling import ensemble_absorbing_state, excluded_ids, kish_effective_size
 
     if not isinstance(ens, Ensemble):
         raise SchemaError(f"ens must be an Ensemble; got {type(ens).__name__}.")
@@ -523,6 +525,10 @@ def prepare_sticks(
     dt = check_time_step(time_step)
     cs = resolve_cross_section(cross_section)
     w_traj, weights_used = trajectory_weights(ens, weights=weights, pump=pump)
+    keep = None
+    if exclude is not None and len(excluded_ids(exclude)):  # weight 0, not counted alive
+        keep = ~np.isin(ens.trajectories["traj"].to_numpy(), excluded_ids(exclude))
+        w_traj = np.where(keep, w_traj, 0.0)
     st = time_statistics(as_source(ens))
     if dt is None:
         dt = st["median_step"] if np.isfinite(st["median_step"]) else 1.0
@@ -533,7 +539,7 @@ def prepare_sticks(
                       weights_used=weights_used, decompose=decompose, start=start, dt=dt,
                       n_time=n_time, ionisation_shifts=shifts,
                       absorbing_state=ensemble_absorbing_state(ens), absorbing=absorbing,
-                      t_end=t_end)
+                      t_end=t_end, keep=keep)
     n = ens.n_snapshots
     return TRPESModel(
         sticks=bs.sticks, probe=probe, decompose=decompose, labels=labels, grid_start=start,

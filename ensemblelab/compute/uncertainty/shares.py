@@ -295,7 +295,10 @@ def band_share_table(
     t_codes, t_keys = band.groups.codes("traj")
     n_t = int(t_keys.size)
     x = band.intensity
-    per_unit = np.bincount(t_codes, x, minlength=n_t)  # one pass over the rows
+    pairs = group_by != "traj" and g_keys.size * n_t <= 20_000_000
+    # per-trajectory sums: from the (group, trajectory) sums the table was made from
+    per_unit = (band.pair_sums(group_by)[0].sum(axis=0) if pairs
+                else band.group_sums("traj")[0])
     keys = table["key"].to_numpy()
     k = keys.size if top is None else min(keys.size, max(int(top), 0))
     lower = np.full(keys.size, np.nan)
@@ -306,9 +309,8 @@ def band_share_table(
         if group_by == "traj":  # a trajectory's group holds only itself
             part = np.zeros((k, n_t))
             part[np.arange(k), sel] = per_unit[sel]
-        elif g_keys.size * n_t <= 20_000_000:  # (group, trajectory) sums: one more pass
-            part = np.bincount(band.groups.pair_codes(group_by), x,
-                               minlength=g_keys.size * n_t).reshape(g_keys.size, n_t)[sel]
+        elif pairs:  # (group, trajectory) sums, kept by the band analysis
+            part = band.pair_sums(group_by)[0][sel]
         else:
             hit = np.isin(g_codes, sel)
             remap = np.full(g_keys.size, -1, dtype=np.int64)
