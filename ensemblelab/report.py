@@ -374,14 +374,17 @@ def build_report(
                 weighting: dict[str, Any] = {} if pump is not None else {"weights": "uniform"}
                 kw = dict(probe=probe, pump=pump, kinetic_energies=e_grid, delays=d_grid,
                           decompose="neutral", progress=False, **weighting)
-                try:  # 100 resamples of whole trajectories: the map's uncertainty
-                    trpes = compute_trpes(clean, interval="bootstrap", n_boot=100, **kw)
-                    rse = trpes.median_rel_se()
+                try:  # 100 resamples of whole trajectories: the map's uncertainty (of the
+                    # total only: the page shows no component intervals, and the total's
+                    # replicates do not depend on the decomposition)
+                    rse = compute_trpes(clean, interval="bootstrap", n_boot=100,
+                                        **(kw | {"decompose": None})).median_rel_se()
                     unc = ("" if rse is None else f"Median relative standard error over the "
                            f"pixels above 5 % of the peak: {100 * rse:.1f} % (percentile "
                            "bootstrap, 100 resamples of whole trajectories, seed 0).")
                 except SchemaError as exc:
-                    trpes, unc = compute_trpes(clean, **kw), f"No uncertainty: {exc}"
+                    unc = f"No uncertainty: {exc}"
+                trpes = compute_trpes(clean, **kw)
                 if not np.any(np.isfinite(trpes.intensity) & (trpes.intensity != 0)):
                     raise _Missing("the map has no signal on its grid (every cell is zero or "
                                    "undefined); check the photon energy and the grids.")
