@@ -61,7 +61,7 @@ def trusted_subset(ens: Any, rows: np.ndarray) -> Any:
     """The subset of the validated Ensemble `ens` at the strictly increasing snapshot
     `rows`, built without a second validation (equal to :func:`validated_subset`)."""
     frame = ens.snapshots.iloc[rows].reset_index(drop=True)
-    frame.flags.allows_duplicate_labels = True  # type: ignore[attr-defined]
+    frame.flags.allows_duplicate_labels = True
     traj = frame["traj"].to_numpy()
     first = np.r_[0, np.flatnonzero(traj[1:] != traj[:-1]) + 1]
     last = np.r_[first[1:] - 1, traj.size - 1]

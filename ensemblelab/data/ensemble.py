@@ -298,7 +298,7 @@ class Ensemble:
     # ------------------------------------------------------------------ views
     def _take(self, rows: np.ndarray) -> Ensemble:
         """Return a new Ensemble with the given snapshot rows (sorted positions)."""
-        return take_rows(self, rows, trusted=type(self) is Ensemble)  # type: ignore[no-any-return]
+        return take_rows(self, rows, trusted=type(self) is Ensemble)
 
     def select(self, mask: npt.ArrayLike | Iterable[int]) -> Ensemble:
         """Select snapshots by a boolean mask, or whole trajectories by id.
