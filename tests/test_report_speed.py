@@ -326,3 +326,25 @@ def test_neutralise_text_column_once_per_distinct_label(dtype, monkeypatch):
     assert got.dtype == col.dtype
     assert got.isna().tolist() == want.isna().tolist()
     assert got.fillna("<na>").tolist() == want.fillna("<na>").tolist()
+
+
+def test_program_relaxes_and_freezes_the_collector_but_python_calls_do_not(tmp_path):
+    # common practice (Python's gc module): measured in a fresh interpreter run as the
+    # program (argv from the command line) and through main(argv) from Python
+    import gc
+    import subprocess
+    import sys
+
+    from ensemblelab.cli import PROGRAM_GC_THRESHOLDS, main
+    from ensemblelab.io import write_extxyz
+
+    folder = write_extxyz(make_toy_ensemble(4, seed=1, t_max=20.0, dt=2.0), tmp_path / "t")
+    code = ("import gc, sys\nfrom ensemblelab.cli import main\n"
+            f"sys.argv = ['ensemblelab', 'info', {str(folder)!r}, '--no-progress']\n"
+            "rc = main()\nprint('RESULT', rc, gc.get_freeze_count() > 0, *gc.get_threshold())\n")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                         check=True).stdout.splitlines()[-1].split()
+    assert out == ["RESULT", "0", "True", *map(str, PROGRAM_GC_THRESHOLDS)]
+    before, frozen = gc.get_threshold(), gc.get_freeze_count()
+    assert main(["info", str(folder), "--no-progress"]) == 0
+    assert gc.get_threshold() == before and gc.get_freeze_count() == frozen
