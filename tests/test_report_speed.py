@@ -348,3 +348,23 @@ def test_program_relaxes_and_freezes_the_collector_but_python_calls_do_not(tmp_p
     before, frozen = gc.get_threshold(), gc.get_freeze_count()
     assert main(["info", str(folder), "--no-progress"]) == 0
     assert gc.get_threshold() == before and gc.get_freeze_count() == frozen
+
+
+def test_few_threads_reuses_its_controller_until_a_module_is_imported(tmp_path, monkeypatch):
+    # common practice (threadpoolctl): one library scan per set of loaded modules
+    import importlib
+    import sys
+
+    with _threads.few_threads(10):
+        first = _threads.thread_controller()
+    with _threads.few_threads(10):
+        assert _threads.thread_controller() is first
+    (tmp_path / "_el_fresh_module.py").write_text("X = 1\n")
+    monkeypatch.syspath_prepend(str(tmp_path))
+    importlib.import_module("_el_fresh_module")
+    try:
+        with _threads.few_threads(10):
+            assert _threads.thread_controller() is not first  # scanned again
+            assert _max_threads() == 1
+    finally:
+        sys.modules.pop("_el_fresh_module", None)
