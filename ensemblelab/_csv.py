@@ -61,15 +61,17 @@ def _text_columns(frame: pd.DataFrame) -> list[Any]:
 def _neutralised_column(col: Any) -> Any:
     # long tables repeat a few labels: neutralise each distinct text once (same cells as
     # col.map(neutralise_cell)); anything but plain text cells takes the per-cell path
-    if isinstance(col, pd.Series) and col.dtype == object and len(col) > 64:
+    # (pandas' string dtype too, whose missing cells stay missing: code -1, the last entry)
+    text = isinstance(col, pd.Series) and isinstance(col.dtype, pd.StringDtype)
+    if isinstance(col, pd.Series) and (col.dtype == object or text) and len(col) > 64:
         try:
             codes, uniques = pd.factorize(col, use_na_sentinel=True)
         except TypeError:  # unhashable cells
             codes = None
-        if codes is not None and codes.min(initial=0) >= 0 and all(
+        if codes is not None and (text or codes.min(initial=0) >= 0) and all(
                 type(u) is str for u in uniques):
-            table = np.array([neutralise_cell(u) for u in uniques], dtype=object)
-            return pd.Series(table[codes], index=col.index, name=col.name, dtype=object)
+            table = np.array([neutralise_cell(u) for u in uniques] + [None], dtype=object)
+            return pd.Series(table[codes], index=col.index, name=col.name, dtype=col.dtype)
     return col.map(neutralise_cell)
 
 

@@ -22,7 +22,9 @@ interval's method and level. A section that cannot be computed (for example ever
 trajectory is flagged, or the map's grid is empty) is replaced by a note saying
 why; the rest of the report is still written.
 
-Uses matplotlib without pyplot (no display needed) and never imports the widget stack.
+Uses matplotlib without pyplot (no display needed) and never imports the widget stack;
+matplotlib, scipy.stats and scikit-learn are imported when a report is built, not
+with this module.
 """
 
 from __future__ import annotations
@@ -47,8 +49,6 @@ from ._csv import neutralise_csv_text, to_csv_text
 from .compute._threads import few_threads
 from .data.ensemble import Ensemble
 from .errors import SchemaError, StoreError
-from .plotting.populations import savefig, scheme_name
-from .plotting.spectra import plot_components, plot_map, resolve_energy_range
 from .report_convergence import convergence_section
 from .report_inputs import hill_formula, report_pulses
 from .report_observables import OBSERVABLE_SECTIONS
@@ -83,6 +83,8 @@ def _default_delays(ens: Ensemble, fwhm_cc: float) -> np.ndarray:
 
 
 def _png(fig: Any, path: Path) -> Path:
+    from .plotting.populations import savefig
+
     path.parent.mkdir(parents=True, exist_ok=True)
     return savefig(fig, path)  # 300 dpi (common practice for print)
 
@@ -192,6 +194,8 @@ def _interval_text(ci: float, method: str) -> str:
 
 def _fit_table(fits: list[Any], names: dict[int, str]) -> pd.DataFrame:
     """One row per fitted parameter: scheme, value, interval and how it was obtained."""
+    from .plotting.populations import scheme_name
+
     rows = []
     for fit in fits:
         for r in fit.summary.itertuples():
@@ -304,7 +308,8 @@ def build_report(
     from .compute.structures.outliers import flag_trajectories
     from .compute.structures.representatives import cluster_representatives
     from .io.structures import write_structures
-    from .plotting.populations import plot_populations
+    from .plotting.populations import plot_populations, scheme_name
+    from .plotting.spectra import plot_components, plot_map, resolve_energy_range
 
     out = Path(out)
     _check_replaceable(out, ens, source)
@@ -374,14 +379,17 @@ def build_report(
                 weighting: dict[str, Any] = {} if pump is not None else {"weights": "uniform"}
                 kw = dict(probe=probe, pump=pump, kinetic_energies=e_grid, delays=d_grid,
                           decompose="neutral", progress=False, **weighting)
-                try:  # 100 resamples of whole trajectories: the map's uncertainty
-                    trpes = compute_trpes(clean, interval="bootstrap", n_boot=100, **kw)
-                    rse = trpes.median_rel_se()
+                try:  # 100 resamples of whole trajectories: the map's uncertainty (of the
+                    # total only: the page shows no component intervals, and the total's
+                    # replicates do not depend on the decomposition)
+                    rse = compute_trpes(clean, interval="bootstrap", n_boot=100,
+                                        **(kw | {"decompose": None})).median_rel_se()
                     unc = ("" if rse is None else f"Median relative standard error over the "
                            f"pixels above 5 % of the peak: {100 * rse:.1f} % (percentile "
                            "bootstrap, 100 resamples of whole trajectories, seed 0).")
                 except SchemaError as exc:
-                    trpes, unc = compute_trpes(clean, **kw), f"No uncertainty: {exc}"
+                    unc = f"No uncertainty: {exc}"
+                trpes = compute_trpes(clean, **kw)
                 if not np.any(np.isfinite(trpes.intensity) & (trpes.intensity != 0)):
                     raise _Missing("the map has no signal on its grid (every cell is zero or "
                                    "undefined); check the photon energy and the grids.")

@@ -11,12 +11,12 @@ from __future__ import annotations
 
 import html
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 from ._csv import to_csv_text
-from .compute.uncertainty.convergence import convergence
-from .data.ensemble import Ensemble
-from .plotting.convergence import plot_convergence
-from .plotting.populations import savefig
+
+if TYPE_CHECKING:
+    from .data.ensemble import Ensemble
 
 __all__ = ["CONVERGENCE_TARGET", "convergence_section"]
 
@@ -44,6 +44,11 @@ def convergence_section(ens: Ensemble, folder: Path, *,
     str
         The section's HTML.
     """
+    # imported on use: importing the report stays light (no matplotlib, no scipy.stats)
+    from .compute.uncertainty.convergence import convergence
+    from .plotting.convergence import plot_convergence
+    from .plotting.populations import savefig
+
     conv = convergence(ens, target=target)
     (folder / "figures").mkdir(parents=True, exist_ok=True)
     (folder / "tables").mkdir(parents=True, exist_ok=True)

@@ -13,15 +13,15 @@ import html
 import math
 from collections.abc import Callable
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
 from ._csv import to_csv_text
-from .data.ensemble import Ensemble
 from .errors import MissingDependencyError
-from .plotting.observables import plot_absorption, plot_observable_cuts, plot_scattering
-from .plotting.populations import savefig
+
+if TYPE_CHECKING:
+    from .data.ensemble import Ensemble
 
 __all__ = ["scattering_section", "absorption_section", "OBSERVABLE_SECTIONS"]
 
@@ -31,6 +31,8 @@ REPORT_Q = np.linspace(0.5, 10.0, 96)
 
 
 def _write(fig: Any, table: Any, folder: Path, name: str) -> None:
+    from .plotting.populations import savefig
+
     (folder / "figures").mkdir(parents=True, exist_ok=True)
     (folder / "tables").mkdir(parents=True, exist_ok=True)
     savefig(fig, folder / "figures" / f"{name}.png", dpi=300)
@@ -48,6 +50,7 @@ def scattering_section(ens: Ensemble, folder: Path, *, probe: Any, pump: Any,
                        delays: np.ndarray) -> str:
     """Time-resolved X-ray scattering: percent-difference map and cuts."""
     from .compute.observables import compute_scattering
+    from .plotting.observables import plot_observable_cuts, plot_scattering
 
     try:
         m = compute_scattering(ens, kind="xray", q=REPORT_Q, delays=delays, pump=pump,
@@ -76,6 +79,7 @@ def absorption_section(ens: Ensemble, folder: Path, *, probe: Any, pump: Any,
                        delays: np.ndarray) -> str:
     """Transient absorption: map and cuts with the GSB, SE and ESA components."""
     from .compute.observables import compute_transient_absorption
+    from .plotting.observables import plot_absorption, plot_observable_cuts
 
     if ens.transition_strengths is None:
         raise ValueError("the ensemble has no transition_strengths (oscillator strengths "

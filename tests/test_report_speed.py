@@ -247,3 +247,124 @@ def test_csv_text_of_repeated_grid_columns_equals_pandas():
     text = to_csv_text(frame)
     assert text == frame.to_csv(index=False)
     assert "-0.0," in text and "\n0.0," in text.replace("\r\n", "\n")
+
+
+def test_importing_the_report_leaves_heavy_libraries_for_later():
+    # common practice: measured by importing in a fresh interpreter (sys.modules)
+    import subprocess
+    import sys
+
+    heavy = ["scipy.stats", "scipy.interpolate", "scipy.optimize", "sklearn", "matplotlib",
+             "numba"]
+    code = ("import sys\nimport ensemblelab.report\n"
+            f"print(' '.join(m for m in {heavy!r} if m in sys.modules))\n")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                         check=True).stdout.strip()
+    assert out == ""
+    # the names moved behind the lazy import still resolve, to the same objects
+    code = ("import ensemblelab.compute.spectroscopy as S\n"
+            "from ensemblelab.compute.spectroscopy.compare import compare_maps\n"
+            "from ensemblelab.compute.spectroscopy import fit_measured_map, MapComparison\n"
+            "print(S.compare_maps is compare_maps, callable(fit_measured_map), "
+            "MapComparison.__name__)\n")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                         check=True).stdout.split()
+    assert out == ["True", "True", "MapComparison"]
+
+
+def test_report_bootstraps_the_map_total_only_with_the_same_error(tmp_path, monkeypatch):
+    # computed independently (not published): the median relative standard error of the
+    # full decomposed bootstrap (every component resampled too) is the one on the page
+    import re
+
+    from ensemblelab.compute import spectroscopy as S
+    from ensemblelab.report import build_report
+
+    ens = make_toy_ensemble(16, seed=4, t_max=120.0, dt=2.0)
+    grids = {"energies": np.linspace(0, 2.5, 61), "delays": np.arange(-40.0, 121.0, 10.0)}
+    calls: list[dict] = []
+    real = S.compute_trpes
+
+    def spy(e, **kw):
+        calls.append(kw)
+        return real(e, **kw)
+
+    monkeypatch.setattr(S, "compute_trpes", spy)
+    page = build_report(ens, tmp_path / "r", exclude_flagged=False, n_boot=0, progress=False,
+                        **grids).read_text()
+    boot = [kw for kw in calls if kw.get("interval") == "bootstrap"]
+    assert len(boot) == 1 and boot[0]["decompose"] is None  # no component replicates
+    plain = [kw for kw in calls if kw.get("interval") is None]
+    assert plain and plain[0]["decompose"] == "neutral"  # the figures' decomposition
+    full = real(ens, **(boot[0] | {"decompose": "neutral"}))
+    total = real(ens, **boot[0])
+    np.testing.assert_array_equal(total.rel_se, full.rel_se)
+    shown = re.search(r"above 5 % of the peak: ([0-9.]+) %", page)
+    assert shown is not None and shown.group(1) == f"{100 * full.median_rel_se():.1f}"
+
+
+@pytest.mark.parametrize("dtype", ["str", "string", object])
+def test_neutralise_text_column_once_per_distinct_label(dtype, monkeypatch):
+    # computed independently (not published): the per-cell path (Series.map) on the same
+    # column; the fast path neutralises each distinct label once
+    import pandas as pd
+
+    from ensemblelab import _csv
+
+    labels = ["total", "=SUM(A1)", "+1.5", "-x", "'quoted", "@cmd", "S1", ""]
+    rng = np.random.default_rng(5)
+    cells: list = [labels[i] for i in rng.integers(0, len(labels), size=500)]
+    if dtype is not object:
+        cells[3] = cells[40] = None
+    col = pd.Series(cells, dtype=dtype, name="component")
+    want = col.map(_csv.neutralise_cell)
+    seen: list = []
+    real = _csv.neutralise_cell
+    monkeypatch.setattr(_csv, "neutralise_cell", lambda v: seen.append(v) or real(v))
+    got = _csv.neutralise_frame(col.to_frame())["component"]
+    assert len(seen) == len(set(labels)) + 1  # and the column name
+    assert got.dtype == col.dtype
+    assert got.isna().tolist() == want.isna().tolist()
+    assert got.fillna("<na>").tolist() == want.fillna("<na>").tolist()
+
+
+def test_program_relaxes_and_freezes_the_collector_but_python_calls_do_not(tmp_path):
+    # common practice (Python's gc module): measured in a fresh interpreter run as the
+    # program (argv from the command line) and through main(argv) from Python
+    import gc
+    import subprocess
+    import sys
+
+    from ensemblelab.cli import PROGRAM_GC_THRESHOLDS, main
+    from ensemblelab.io import write_extxyz
+
+    folder = write_extxyz(make_toy_ensemble(4, seed=1, t_max=20.0, dt=2.0), tmp_path / "t")
+    code = ("import gc, sys\nfrom ensemblelab.cli import main\n"
+            f"sys.argv = ['ensemblelab', 'info', {str(folder)!r}, '--no-progress']\n"
+            "rc = main()\nprint('RESULT', rc, gc.get_freeze_count() > 0, *gc.get_threshold())\n")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                         check=True).stdout.splitlines()[-1].split()
+    assert out == ["RESULT", "0", "True", *map(str, PROGRAM_GC_THRESHOLDS)]
+    before, frozen = gc.get_threshold(), gc.get_freeze_count()
+    assert main(["info", str(folder), "--no-progress"]) == 0
+    assert gc.get_threshold() == before and gc.get_freeze_count() == frozen
+
+
+def test_few_threads_reuses_its_controller_until_a_module_is_imported(tmp_path, monkeypatch):
+    # common practice (threadpoolctl): one library scan per set of loaded modules
+    import importlib
+    import sys
+
+    with _threads.few_threads(10):
+        first = _threads.thread_controller()
+    with _threads.few_threads(10):
+        assert _threads.thread_controller() is first
+    (tmp_path / "_el_fresh_module.py").write_text("X = 1\n")
+    monkeypatch.syspath_prepend(str(tmp_path))
+    importlib.import_module("_el_fresh_module")
+    try:
+        with _threads.few_threads(10):
+            assert _threads.thread_controller() is not first  # scanned again
+            assert _max_threads() == 1
+    finally:
+        sys.modules.pop("_el_fresh_module", None)

@@ -8,6 +8,7 @@ module discovers the ones present, in the order of :data:`COMMANDS`.
 from __future__ import annotations
 
 import argparse
+import gc
 import importlib
 import importlib.util
 import os
@@ -18,6 +19,12 @@ __all__ = ["main", "build_parser", "COMMANDS"]
 
 #: sub-commands in the order ``--help`` lists them
 COMMANDS = ("info", "convert", "demo", "report", "explore")
+
+#: collection thresholds of the program (Python's default: 700, 10, 10): a command
+#: imports millions of objects (numpy, pandas, scipy, scikit-learn, matplotlib, numba)
+#: that every full collection walks again; young cycles are still collected, every
+#: 10000 allocations (measured: 0.65 s of collections in a report, 0.2 s with these)
+PROGRAM_GC_THRESHOLDS = (10_000, 20, 20)
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -40,7 +47,14 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def main(argv: Sequence[str] | None = None) -> int:
-    """Run the command line; returns the process exit status."""
+    """Run the command line; returns the process exit status.
+
+    Run as the program (`argv` None: ``ensemblelab ...`` or ``python -m ensemblelab``),
+    the garbage collector runs less often (:data:`PROGRAM_GC_THRESHOLDS`) and is frozen
+    when the command is done, so that the interpreter exits without a last walk over
+    every object (about 1 s after a report; the operating system frees the memory).
+    Called from Python with `argv`, the collector is left as it is.
+    """
     parser = build_parser()
     args = parser.parse_args(argv)
     if getattr(args, "func", None) is None:
@@ -48,6 +62,9 @@ def main(argv: Sequence[str] | None = None) -> int:
         return 2
     from ..errors import EnsembleError
 
+    program = argv is None
+    if program:
+        gc.set_threshold(*PROGRAM_GC_THRESHOLDS)
     try:
         return int(args.func(args) or 0)
     except KeyboardInterrupt:
@@ -60,6 +77,9 @@ def main(argv: Sequence[str] | None = None) -> int:
             raise
         print(f"ensemblelab {args.command}: error: {_message(exc)}", file=sys.stderr)
         return 1
+    finally:
+        if program:
+            gc.freeze()  # what is left is freed at exit by the system, not walked by gc
 
 
 def _message(exc: BaseException, limit: int = 2000) -> str:

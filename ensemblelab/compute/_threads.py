@@ -11,15 +11,32 @@ tests compare labels and values).
 from __future__ import annotations
 
 import contextlib
+import sys
 from collections.abc import Iterator
+from typing import Any
 
-__all__ = ["THREADED_MIN_ROWS", "few_threads"]
+__all__ = ["THREADED_MIN_ROWS", "few_threads", "thread_controller"]
 
 #: fewest rows for which the libraries' thread pools are used (below: one thread);
 #: the 80-trajectory demo (2 x 10^4 snapshots) clusters in ~1 s on one thread and took
 #: 7 s with two spin-waiting OpenMP threads on a loaded 2-core machine
 #: (benchmarks/bench_report.py)
 THREADED_MIN_ROWS = 200_000
+
+
+_CONTROLLER: dict[str, Any] = {}
+
+
+def thread_controller() -> Any:
+    """The threadpoolctl controller of the loaded OpenMP/BLAS libraries, made again only
+    after new modules were imported (a new one scans every loaded library: ~3 ms, which
+    dozens of small calls in a report added up to 0.1 s)."""
+    from threadpoolctl import ThreadpoolController
+
+    key = len(sys.modules)  # native libraries arrive with imports
+    if _CONTROLLER.get("key") != key:
+        _CONTROLLER["ctl"], _CONTROLLER["key"] = ThreadpoolController(), key
+    return _CONTROLLER["ctl"]
 
 
 @contextlib.contextmanager
@@ -35,7 +52,5 @@ def few_threads(n_rows: int) -> Iterator[None]:
     if n_rows >= THREADED_MIN_ROWS:
         yield
         return
-    from threadpoolctl import threadpool_limits
-
-    with threadpool_limits(limits=1):
+    with thread_controller().limit(limits=1):
         yield

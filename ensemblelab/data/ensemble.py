@@ -25,6 +25,7 @@ from ._schema import (
     TRAJECTORY_ARRAYS,
     validate_fields,
 )
+from ._subset import take_rows
 
 __all__ = ["Ensemble", "SCHEMA_VERSION", "SNAPSHOT_ARRAYS", "TRAJECTORY_ARRAYS", "REQUIRED_COLUMNS",
            "absorbing_state_of"]
@@ -297,31 +298,7 @@ class Ensemble:
     # ------------------------------------------------------------------ views
     def _take(self, rows: np.ndarray) -> Ensemble:
         """Return a new Ensemble with the given snapshot rows (sorted positions)."""
-        rows = np.asarray(rows, dtype=np.int64)
-        frame = self.snapshots.iloc[rows].reset_index(drop=True)
-        ids = np.unique(frame["traj"].to_numpy())
-        keep = self.trajectories["traj"].isin(ids).to_numpy()
-        trajs = self.trajectories.loc[keep, [c for c in self.trajectories.columns
-                                             if c not in ("n_steps", "t_end")]]
-        arrays = {
-            name: None if getattr(self, name) is None else getattr(self, name)[rows]
-            for name in SNAPSHOT_ARRAYS
-        }
-        for name in TRAJECTORY_ARRAYS:
-            value = getattr(self, name)
-            arrays[name] = None if value is None else value[keep]
-        return type(self)(
-            snapshots=frame,
-            geometries=self.geometries[rows],
-            energies=self.energies[rows],
-            symbols=self.symbols,
-            masses=self.masses,
-            trajectories=trajs,
-            state_labels=self.state_labels,
-            cation_labels=self.cation_labels,
-            metadata=_copy.deepcopy(self.metadata),
-            **arrays,
-        )
+        return take_rows(self, rows, trusted=type(self) is Ensemble)
 
     def select(self, mask: npt.ArrayLike | Iterable[int]) -> Ensemble:
         """Select snapshots by a boolean mask, or whole trajectories by id.

@@ -170,16 +170,17 @@ _NAN_TOKENS = ["nan", "NaN", "NAN", "-nan", "+nan", "-NaN", "+NaN"]
 
 def _read_table(text: str, ncol: int, *, symbols: bool = False) -> pd.DataFrame | None:
     """Parse whitespace-separated columns with pandas' C tokenizer; None when anything is odd."""
-    dtype: dict[int, Any] = {j: np.float64 for j in range(int(symbols), ncol)}
+    dtype: Any = np.float64  # all columns numeric: one dtype and one NaN list for all
+    na: Any = _NAN_TOKENS  # (per-column dicts cost pandas work per column and call)
     if symbols:
-        dtype[0] = object
+        dtype = {j: np.float64 for j in range(1, ncol)} | {0: object}
+        na = {j: _NAN_TOKENS for j in range(1, ncol)}
     try:
-        # na_values keyed by column position is valid with header=None; the stub wants str keys
-        return pd.read_csv(  # type: ignore[call-overload]
+        # na_values keyed by column position is valid with header=None
+        return pd.read_csv(
             io.StringIO(text), sep=r"\s+", header=None, engine="c",
             names=list(range(ncol)), dtype=dtype, keep_default_na=False,
-            na_values={j: _NAN_TOKENS for j in range(int(symbols), ncol)},
-            skip_blank_lines=False)
+            na_values=na, skip_blank_lines=False)
     except (ValueError, pd.errors.ParserError, pd.errors.EmptyDataError):
         return None
 

@@ -18,8 +18,10 @@ in one compiled pass where it applies (the numpy stick path is its twin);
 
 from __future__ import annotations
 
+import importlib
+from typing import TYPE_CHECKING, Any
+
 from .cache import StickCache, prepare_map_cache
-from .compare import MapComparison, compare_maps, resample_map
 from .contributions import contributions, model_for_map, region_intensity
 from .cross_sections import (
     AnionThresholdLaw,
@@ -41,7 +43,6 @@ from .diabatic import (
     propagate_adt,
 )
 from .extent import signal_extent
-from .fit_measured import MeasuredFitResult, fit_measured_map
 from .maps import compute_trpes
 from .model import TRPESModel
 from .pulses import GaussianPulse, cross_correlation, cross_correlation_fwhm
@@ -54,6 +55,15 @@ from .weights import (
     ground_state_ionisation_fraction,
     trajectory_weights,
 )
+
+if TYPE_CHECKING:
+    from .compare import MapComparison, compare_maps, resample_map
+    from .fit_measured import MeasuredFitResult, fit_measured_map
+
+#: names imported on first use: their modules pull in scipy.stats and scipy.interpolate,
+#: which the map itself never needs (keeps ``import ensemblelab.report`` light)
+_LAZY = {"MapComparison": "compare", "compare_maps": "compare", "resample_map": "compare",
+         "MeasuredFitResult": "fit_measured", "fit_measured_map": "fit_measured"}
 
 __all__ = [
     "GaussianPulse",
@@ -97,3 +107,11 @@ __all__ = [
     "StickCache",
     "prepare_map_cache",
 ]
+
+
+def __getattr__(name: str) -> Any:
+    if name in _LAZY:
+        value = getattr(importlib.import_module(f"{__name__}.{_LAZY[name]}"), name)
+        globals()[name] = value
+        return value
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
