@@ -298,7 +298,8 @@ def test_report_bootstraps_the_map_total_only_with_the_same_error(tmp_path, monk
     assert plain and plain[0]["decompose"] == "neutral"  # the figures' decomposition
     full = real(ens, **(boot[0] | {"decompose": "neutral"}))
     total = real(ens, **boot[0])
-    np.testing.assert_array_equal(total.rel_se, full.rel_se)
+    # the same replicates; the streamed deposit may sum in another order with components
+    np.testing.assert_allclose(total.rel_se, full.rel_se, rtol=1e-12, atol=1e-15)
     shown = re.search(r"above 5 % of the peak: ([0-9.]+) %", page)
     assert shown is not None and shown.group(1) == f"{100 * full.median_rel_se():.1f}"
 
