@@ -34,6 +34,7 @@ __all__ = [
     "BroadeningBlocks",
     "time_matrix",
     "assemble",
+    "single_thread_blas",
     "sparse_rows",
     "SparseTime",
     "interpolation_rows",
@@ -359,14 +360,14 @@ def assemble(hist: np.ndarray, bmat: np.ndarray | BroadeningBlocks,
     """
     blocks = bmat if isinstance(bmat, BroadeningBlocks) else _blocks_from_dense(bmat,
                                                                                 ENERGY_BLOCK)
-    with _single_thread_blas():
+    with single_thread_blas():
         return _assemble(hist, blocks, cmat, n_threads)
 
 
 _BLAS: dict[str, Any] = {}
 
 
-def _single_thread_blas() -> Any:
+def single_thread_blas() -> Any:
     """Context limiting BLAS to one thread (many small products: threads only cost).
 
     Uses threadpoolctl (installed with scikit-learn) when present, else does nothing.

@@ -14,12 +14,12 @@ order); tests compare them with the one-resample path.
 
 from __future__ import annotations
 
-import contextlib
 from concurrent.futures import ThreadPoolExecutor
 from typing import Any
 
 import numpy as np
 
+from . import _kernels_broadening as KB
 from . import _kernels_deposit as KD
 
 __all__ = ["ReplicateBlocks", "replicate_blocks", "broaden_energy", "apply_time",
@@ -78,7 +78,7 @@ def broaden_energy(acc: np.ndarray, blocks: ReplicateBlocks, y: np.ndarray, *,
                     np.dot(mat_t, acc[c, i, lo:hi].reshape((hi - lo) * order, n_rep),
                            out=y[c, i, j0:j1])
 
-    with _single_blas():
+    with KB.single_thread_blas():  # many small products side by side
         if n_threads == 1:
             run(0)
         else:
@@ -128,21 +128,3 @@ def assemble_replicates(acc: np.ndarray, blocks: Any, cmat: np.ndarray, norm: np
     y = np.empty((n_c, n_win, blocks.n_energies, n_rep))
     broaden_energy(acc, blocks, y)
     apply_time(y, cmat, norm, out)
-
-
-_BLAS: dict[str, Any] = {}
-
-
-def _single_blas() -> Any:
-    """Context holding BLAS at one thread (threadpoolctl, installed with scikit-learn;
-    else nothing): many small products side by side, where BLAS threads only cost. The
-    controller (which scans the loaded libraries) is made once."""
-    if "ctl" not in _BLAS:
-        try:
-            import threadpoolctl
-
-            _BLAS["ctl"] = threadpoolctl.ThreadpoolController()
-        except Exception:  # pragma: no cover - threadpoolctl missing or failing
-            _BLAS["ctl"] = None
-    ctl = _BLAS["ctl"]
-    return contextlib.nullcontext() if ctl is None else ctl.limit(limits=1, user_api="blas")
