@@ -18,6 +18,7 @@ import pytest
 from ensemblelab.compute.spectroscopy import _kernels_bootstrap as KBS
 from ensemblelab.compute.spectroscopy import _kernels_broadening as KB
 from ensemblelab.compute.spectroscopy import _kernels_deposit as KD
+from ensemblelab.compute.spectroscopy import _kernels_quantiles as KQ
 from ensemblelab.compute.spectroscopy import _kernels_replicate_maps as KRM
 from ensemblelab.compute.spectroscopy._reference_bootstrap import naive_bootstrap_maps
 from ensemblelab.compute.spectroscopy.pulses import GaussianPulse
@@ -142,6 +143,87 @@ def test_percentiles_equal_numpy_quantile(n, ci):
     lo0, hi0, _ = KBS.percentile_summary(np.moveaxis(reps, -1, 0), est, ci)  # axis 0
     np.testing.assert_array_equal(lo0, lo)
     np.testing.assert_array_equal(hi0, hi)
+
+
+def _quantile_cases(n, seed):
+    """Replicates (4, 5, n) with ties, a constant pixel, an outlier, and two NaN pixels."""
+    rng = np.random.default_rng(seed)
+    reps = rng.normal(size=(4, 5, n))
+    reps[0, 0] = 1.0  # all tied
+    reps[0, 1] = np.round(reps[0, 1])  # many ties
+    reps[1, 2, 0] = 1e6  # an outlier
+    reps[2, 3, n // 2] = np.nan
+    reps[3, 4, -1] = np.nan
+    return reps
+
+
+# Check values: np.quantile (reference library; its default "linear" method is method 7
+# of The American Statistician, 1996, "Sample quantiles in statistical packages";
+# common practice) and ndarray.std(ddof=1) (reference library).
+@needs_numba
+@pytest.mark.parametrize("n", [2, 7, 50, 200, 1000])
+@pytest.mark.parametrize("ci", [0.95, 0.5, 0.99, 0.8])
+@pytest.mark.parametrize("dtype", [np.float64, np.float32])
+def test_compiled_percentiles_equal_numpy_quantile(n, ci, dtype):
+    reps = _quantile_cases(n, seed=n).astype(dtype)
+    est = np.nanmean(reps.astype(np.float64), axis=-1)
+    est[1, 1] = 0.0  # rel_se NaN there
+    lo, hi, rel = KBS.percentile_summary(reps, est, ci, axis=-1, backend="numba")
+    a = (1 - ci) / 2
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        qlo, qhi = np.quantile(reps.astype(np.float64), [a, 1 - a], axis=-1)
+    for got, ref in ((lo, qlo), (hi, qhi)):
+        assert got.dtype == np.float64
+        np.testing.assert_allclose(got, ref, rtol=1e-14, atol=1e-15)  # NaN where NaN
+    assert np.isnan(lo[2, 3]) and np.isnan(hi[3, 4]) and not np.isnan(lo[1, 2])
+    se = reps.astype(np.float64).std(axis=-1, ddof=1)
+    ref_rel = np.where(est != 0, se / np.abs(np.where(est != 0, est, 1.0)), np.nan)
+    np.testing.assert_allclose(rel, ref_rel, rtol=1e-12)
+    assert np.isnan(rel[1, 1])
+    # the numpy fallback (naive twin) gives the same bits
+    for got, ref in zip((lo, hi, rel), KBS.percentile_summary(reps, est, ci, axis=-1,
+                                                              backend="numpy"), strict=True):
+        np.testing.assert_array_equal(got, ref)
+    # replicates on axis 0 (moved last by a copy)
+    lo0, hi0, rel0 = KBS.percentile_summary(np.moveaxis(reps, -1, 0), est, ci,
+                                            backend="numba")
+    np.testing.assert_array_equal(lo0, lo)
+    np.testing.assert_array_equal(hi0, hi)
+    np.testing.assert_array_equal(rel0, rel)
+
+
+@needs_numba
+@pytest.mark.parametrize("sort_above", [0, 48])
+def test_compiled_percentiles_sorted_pixels_and_threads(sort_above, monkeypatch):
+    # a sort per pixel (long buffers) and pixels split over two threads: np.quantile
+    # (reference library; common practice)
+    monkeypatch.setattr(KQ, "SORT_ABOVE", sort_above)
+    monkeypatch.setattr(KQ, "MIN_VALUES_PER_THREAD", 1)
+    monkeypatch.setattr(KD, "usable_cores", lambda: 2)
+    reps = _quantile_cases(60, seed=4)
+    reps[1, 0] = np.arange(60.0)[::-1]  # descending: every value enters the buffers
+    est = np.ones(reps.shape[:-1])
+    lo, hi, _ = KBS.percentile_summary(reps, est, 0.9, axis=-1, backend="numba")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        qlo, qhi = np.quantile(reps, [0.05, 0.95], axis=-1)
+    np.testing.assert_allclose(lo, qlo, rtol=1e-14, atol=1e-15)
+    np.testing.assert_allclose(hi, qhi, rtol=1e-14, atol=1e-15)
+
+
+def test_numpy_percentiles_nan_pixels_and_float32():
+    # the numpy fallback alone: np.quantile (reference library; common practice)
+    reps = _quantile_cases(30, seed=9).astype(np.float32)
+    lo, hi, rel = KBS.percentile_summary(reps, np.ones(reps.shape[:-1]), 0.9, axis=-1,
+                                         backend="numpy")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        qlo, qhi = np.quantile(reps.astype(np.float64), [0.05, 0.95], axis=-1)
+    np.testing.assert_allclose(lo, qlo, rtol=1e-14, atol=1e-15)
+    np.testing.assert_allclose(hi, qhi, rtol=1e-14, atol=1e-15)
+    np.testing.assert_allclose(rel, reps.astype(np.float64).std(axis=-1, ddof=1),
+                               rtol=1e-12)
 
 
 @needs_numba

@@ -27,7 +27,8 @@ numerator and denominator from the same draw.
 * :func:`chunk_plan` / :func:`stream_plan` size the chunks of resamples and windows
   of time bins to a memory budget (:func:`replicate_chunk`: resamples per chunk).
 * :func:`percentile_summary` turns replicate maps into percentile intervals (those of
-  ``np.quantile``, by one partition per pixel) and the relative standard error.
+  ``np.quantile``) and the relative standard error (:mod:`._kernels_quantiles`: a
+  compiled selection of the few order statistics needed, numpy fallback).
 
 :mod:`._kernels_replicate_maps` turns the histograms into maps, all resamples at once.
 The naive reference twin is :mod:`._reference_bootstrap` (a loop over resampled
@@ -36,7 +37,6 @@ ensembles, each through :func:`~.maps.compute_trpes`); tests compare the two.
 
 from __future__ import annotations
 
-import math
 from collections.abc import Callable
 from concurrent.futures import ThreadPoolExecutor
 from typing import Any, NamedTuple
@@ -44,6 +44,7 @@ from typing import Any, NamedTuple
 import numpy as np
 
 from . import _kernels_deposit as KD
+from ._kernels_quantiles import percentile_summary
 
 __all__ = ["bootstrap_counts", "unit_alive", "CellSticks", "sort_cells",
            "deposit_replicates", "compact_counts", "per_resample", "replicate_chunk",
@@ -438,47 +439,3 @@ def per_resample(acc: np.ndarray, r: int) -> np.ndarray:
     """Resample r's histograms (order, comp, time, fine) of an accumulator (comp, time,
     fine, moment, resample): a strided view."""
     return np.moveaxis(acc[..., r], -1, 0)
-
-
-def percentile_summary(reps: np.ndarray, estimate: np.ndarray, ci: float, *, axis: int = 0
-                       ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Percentile interval and relative standard error from replicate maps.
-
-    The quantiles are those of ``np.quantile`` (linear interpolation between order
-    statistics), found by one ``np.partition`` of the replicates of every pixel
-    (cheaper than a sort; fastest with the replicates on the last, contiguous axis).
-
-    Parameters
-    ----------
-    reps : ndarray
-        Replicate values, the replicates along ``axis``.
-    estimate : ndarray
-        The map itself (the shape of ``reps`` without ``axis``).
-    ci : float
-        Confidence level.
-    axis : int
-        Axis of the replicates.
-
-    Returns
-    -------
-    lower, upper : ndarray, shape of ``estimate``
-        The ``(1 - ci) / 2`` and ``(1 + ci) / 2`` quantiles over the replicates.
-    rel_se : ndarray, shape of ``estimate``
-        Bootstrap standard error over ``|estimate|``; NaN where the estimate is 0.
-    """
-    r = np.moveaxis(np.asarray(reps, dtype=float), axis, -1)
-    n = r.shape[-1]
-    alpha = (1.0 - ci) / 2.0
-    pos = [q * (n - 1) for q in (alpha, 1.0 - alpha)]  # np.quantile's "linear" method
-    lo_i = [min(int(math.floor(p)), n - 1) for p in pos]
-    hi_i = [min(i + 1, n - 1) for i in lo_i]
-    part = np.partition(r, sorted(set(lo_i + hi_i)), axis=-1)
-    qs = []
-    for p, i, j in zip(pos, lo_i, hi_i, strict=True):
-        a, b, g = part[..., i], part[..., j], p - i
-        diff = b - a  # as numpy's lerp: from the nearer end
-        qs.append(a + diff * g if g < 0.5 else b - diff * (1.0 - g))
-    se = r.std(axis=-1, ddof=1)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        rel = np.where(estimate != 0, se / np.abs(estimate), np.nan)
-    return qs[0], qs[1], rel
