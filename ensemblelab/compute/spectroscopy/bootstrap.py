@@ -45,6 +45,7 @@ from ..engine import BlockSpan, add, as_source, reduce
 from . import _kernels_bootstrap as KBS
 from . import _kernels_broadening as KB
 from . import _kernels_replicate_maps as KRM
+from . import bootstrap_fused as BF
 from ._checks import time_bins
 from .cross_sections import resolve_cross_section
 from .model import TRPESModel
@@ -221,10 +222,11 @@ def _normalise(res: dict[str, Any], normalise: str) -> np.ndarray:
 
 def _operators(model: TRPESModel, kinetic_energies: np.ndarray, delays: np.ndarray, *,
                probe: GaussianPulse, pump: GaussianPulse | None, resolution: Resolution,
-               convolve: bool, e_lo: float, h: float, n_fine: int
+               convolve: bool, e_lo: float, h: float, n_fine: int, order: int | None = None
                ) -> tuple[Any, np.ndarray]:
     """Energy broadening blocks and time matrix (without normaliser) of
-    :meth:`.model.TRPESModel.broaden` for these grids."""
+    :meth:`.model.TRPESModel.broaden` for these grids (``order``: moments, default the
+    model's)."""
     resolution = check_resolution(resolution)
     probe = probe or model.probe
     sigma = None
@@ -239,7 +241,8 @@ def _operators(model: TRPESModel, kinetic_energies: np.ndarray, delays: np.ndarr
         def fwhm_of(c: np.ndarray) -> np.ndarray:
             return np.asarray(stick_fwhm(probe, res, c))
     bmat = KB.broadening_blocks(kinetic_energies, e_lo=e_lo, h=h, n_fine=n_fine,
-                                fwhm=model.fwhm(probe, resolution), order=model.order,
+                                fwhm=model.fwhm(probe, resolution),
+                                order=model.order if order is None else order,
                                 fwhm_of=fwhm_of)
     return KRM.replicate_blocks(bmat), cmat
 
@@ -270,6 +273,7 @@ def bootstrap_map(
     backend: str = "auto",
     budget: int | None = None,
     return_replicates: bool = False,
+    replicates: BF.ReplicateGrid | str | None = "default",
 ) -> TRPESMap | tuple[TRPESMap, np.ndarray, np.ndarray | None]:
     """The map with percentile bootstrap intervals over whole trajectories.
 
@@ -279,7 +283,10 @@ def bootstrap_map(
     :data:`._kernels_bootstrap.MEMORY_BUDGET`; see
     :func:`._kernels_bootstrap.stream_plan` and :func:`._kernels_bootstrap.chunk_plan`);
     ``backend`` that of :func:`._kernels_bootstrap.deposit_replicates` (``"numpy"``:
-    the loop of numpy deposits, whole time grid per chunk of resamples).
+    the loop of numpy deposits, whole time grid per chunk of resamples);
+    ``replicates`` the precision of the fused route (:mod:`.bootstrap_fused`;
+    ``"default"``: :data:`.bootstrap_fused.DEFAULT_GRID`, read at call time; None: the
+    stick route always).
 
     Returns
     -------
@@ -315,19 +322,42 @@ def bootstrap_map(
         "absorbing_state": model.info.get("absorbing_state"), "absorbing": absorbing,
         "t_end": model.t_known, "backend": backend,
         "cache": {} if isinstance(ens, Ensemble) else None}
-    if isinstance(ens, Ensemble):  # one block: the model's own sticks
-        opts["cache"][0] = block_resampling_inputs(ens, opts, model)
     rng = random_state if isinstance(random_state, np.random.Generator) else \
         np.random.default_rng(random_state)
     counts = KBS.bootstrap_counts(n_traj, int(n_boot), rng)
-    bmat, cmat = _operators(model, kinetic_energies, delays, probe=probe, pump=pump,
-                            resolution=resolution, convolve=convolve, e_lo=e_lo, h=h,
-                            n_fine=n_fine)
-    # replicate maps, the resamples last (contiguous for the percentiles)
-    reps = np.zeros((1 + n_lab, *trpes_map.shape, int(n_boot)))
+    ops = {"probe": probe, "pump": pump, "resolution": resolution, "convolve": convolve}
+    bmat, cmat = _operators(model, kinetic_energies, delays, e_lo=e_lo, h=h, n_fine=n_fine,
+                            **ops)
     budget = KBS.MEMORY_BUDGET if budget is None else budget
+    fused = None
+    if isinstance(replicates, str):
+        if replicates != "default":
+            raise SchemaError(f"replicates must be a ReplicateGrid, 'default' or None; got "
+                              f"{replicates!r}.")
+        replicates = BF.DEFAULT_GRID
+    if replicates is not None and backend in ("auto", "numba") and BF.can_fuse(
+            ens, cross_section=opts["cross_section"], decompose=model.decompose,
+            absorbing=absorbing):
+        fused = BF.fused_bootstrap_maps(
+            ens, model, counts, intensity=trpes_map.intensity, probe=model.probe,
+            fwhm=model.fwhm(probe, resolution), kinetic_energies=kinetic_energies,
+            w_traj=trajectory_weights(ens, weights=kind, pump=pump)[0],
+            cross_section=opts["cross_section"], ionisation_shifts=ionisation_shifts,
+            cmat=cmat, grid=replicates, budget=budget, progress=progress,
+            blocks_of=lambda e0, h0, n0, k0: _operators(
+                model, kinetic_energies, delays, e_lo=e0, h=h0, n_fine=n0, order=k0,
+                **ops)[0],
+            normalise_of=lambda al, tot: _normalise({"alive": al, "total": tot},
+                                                    normalise))
+    if fused is None and isinstance(ens, Ensemble):  # one block: the model's own sticks
+        opts["cache"][0] = block_resampling_inputs(ens, opts, model)
+    # replicate maps, the resamples last (contiguous for the percentiles)
+    reps = np.zeros((1 + n_lab, *trpes_map.shape, int(n_boot))) if fused is None else \
+        fused[None]
     per_bin = 8 * order * (1 + n_lab) * n_fine
-    if isinstance(ens, Ensemble) and opts["cache"][0]["total"]["cells"] is not None:
+    if fused is not None:
+        pass
+    elif isinstance(ens, Ensemble) and opts["cache"][0]["total"]["cells"] is not None:
         _stream(opts["cache"][0], counts, opts, bmat, cmat, normalise, reps, budget=budget,
                 progress=progress)
     else:
@@ -356,7 +386,10 @@ def bootstrap_map(
         "random_state": seed,
         "interval_method": (f"percentile bootstrap over whole trajectories ({int(n_boot)} "
                             "resamples with replacement; weights kept with their "
-                            "trajectory; numerator and normaliser resampled together)")}
+                            "trajectory; numerator and normaliser resampled together" + (
+                                "" if fused is None or replicates is None else
+                                f"; replicates by the fused pass with {replicates.order or order}"
+                                f" moments, {replicates.dtype}, recentred on the map") + ")")}
     out_map = trpes_map.replace(lower=lower, upper=upper, rel_se=rel, component_lower=c_lo,
                                 component_upper=c_hi, params=params)
     if not return_replicates:

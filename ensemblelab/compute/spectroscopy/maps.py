@@ -47,6 +47,7 @@ from ._checks import (
     grid_from_range,
 )
 from .bootstrap import bootstrap_map, check_interval
+from .bootstrap_fused import can_fuse
 from .cross_sections import CrossSection, describe_cross_section, resolve_cross_section
 from .fused import block_layout, fused_partial, stick_energy_range, use_fused
 from .gaps import time_fill
@@ -532,7 +533,9 @@ def compute_trpes(
                         time_step=time_step, progress=progress, client=client,
                         scheduler=scheduler, ionisation_shifts=ionisation_shifts,
                         absorbing=absorbing, exclude=exclude,
-                        keep_sticks=return_model or interval == "bootstrap")
+                        keep_sticks=return_model or (interval == "bootstrap" and not can_fuse(
+                            ens, cross_section=resolve_cross_section(cross_section),
+                            decompose=decompose, absorbing=absorbing)))
     if isinstance(ens, Ensemble):
         fraction = ground_state_ionisation_fraction(ens, probe=probe)
         if fraction > 0:
