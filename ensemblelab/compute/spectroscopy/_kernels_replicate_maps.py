@@ -88,7 +88,7 @@ def broaden_energy(acc: np.ndarray, blocks: ReplicateBlocks, y: np.ndarray, *,
 
 #: time bins per product of :func:`apply_time` (the time matrix is banded: a chunk of
 #: bins meets only the delays within the cross-correlation's reach)
-TIME_CHUNK = 64
+TIME_CHUNK = 128
 
 
 def apply_time(y: np.ndarray, cmat: np.ndarray, norm: np.ndarray, out: np.ndarray) -> None:
@@ -106,7 +106,7 @@ def apply_time(y: np.ndarray, cmat: np.ndarray, norm: np.ndarray, out: np.ndarra
         Replicate maps, added to (eV^-1).
     """
     n_c, n_win, n_e, n_rep = y.shape
-    y *= norm.T[None, :, None, :]
+    y *= np.ascontiguousarray(norm.T, dtype=y.dtype)[None, :, None, :]
     for a in range(0, n_win, TIME_CHUNK):  # time bins in chunks: each meets a band of delays
         b = min(a + TIME_CHUNK, n_win)
         rows = np.flatnonzero(np.any(cmat[:, a:b] != 0, axis=1))
