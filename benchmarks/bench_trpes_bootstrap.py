@@ -3,18 +3,16 @@
 Prints, from one run on an invented ensemble with ~N (snapshot, channel) sticks (3
 cation channels):
 
-* one map, end to end (``compute_trpes``, the compiled fused path), the peer (best of
-  two runs before and one after the bootstrap), and the same map keeping its sticks
-  (``return_model=True``: the stick path the bootstrap needs, best of two);
+* one map, end to end (``compute_trpes``, the compiled fused path): the peer (best of
+  two runs before and one after the bootstrap);
 * the same call with ``interval="bootstrap", n_boot=200`` (the map and its 200
-  replicates), as a ratio to both (goal <= 3x one map), and the replicate work alone
-  (beyond the map keeping its sticks);
-* the kernel figure: the replicate deposit of all sticks for all resamples (in the
-  bootstrap's time windows), in ns per stick and resample, and per resample against
-  one ordinary deposit of the same sticks;
-* the growth of the peak resident memory during the bootstrap call (the replicate
-  histograms are chunked to :data:`._kernels_bootstrap.MEMORY_BUDGET`; the replicate
-  maps, n_boot x n_delays x n_energies, are kept for the percentiles).
+  replicates, default precision: the fused replicate pass, 3 moments in float32,
+  recentred on the map), as a ratio to the peer (goal <= 3x), best of two; the fused
+  replicate pass's own time in ns per (stick, resample) (the kernel figure);
+* the same with exact replicates (the map's 8 moments, float64) and by the stick route
+  (the sorted-stick replicate deposit), and how far the default's interval endpoints
+  are from the exact ones (fraction of the widest half-width);
+* the growth of the peak resident memory during the default call.
 
 Usage: python benchmarks/bench_trpes_bootstrap.py [--quick] [--sticks 1e7] [--n-boot 200]
 """
@@ -29,8 +27,9 @@ import warnings
 
 import numpy as np
 
-from ensemblelab.compute.spectroscopy import _kernels_bootstrap as KBS
+from ensemblelab.compute.spectroscopy import _kernels_boot_fused as KBF
 from ensemblelab.compute.spectroscopy import _kernels_deposit as KD
+from ensemblelab.compute.spectroscopy import bootstrap_fused as BF
 from ensemblelab.compute.spectroscopy import compute_trpes
 from ensemblelab.compute.spectroscopy.pulses import GaussianPulse
 from ensemblelab.data.ensemble import Ensemble
@@ -75,76 +74,76 @@ def main(argv: list[str] | None = None) -> int:
               pump=GaussianPulse(photon_energy=4.0, fwhm=30.0),
               kinetic_energies=np.linspace(0.0, 4.0, N_ENERGIES),
               delays=np.linspace(-100.0, 500.0, N_DELAYS), progress=False)
+    boot = dict(interval="bootstrap", n_boot=args.n_boot, random_state=0, **kw)
     warnings.simplefilter("ignore")
     small = make_ensemble(3000)
     compute_trpes(small, **kw)  # compile / cache load: the fused map ...
-    compute_trpes(small, interval="bootstrap", n_boot=4, **kw)  # ... and the bootstrap
-    t_ones, t_sticks = [], []
-    for _ in range(2):  # the peers: best of the runs before and after (machines drift)
+    for grid in (BF.FAST, BF.EXACT):  # ... and both precisions of the fused bootstrap
+        BF.DEFAULT_GRID = grid
+        compute_trpes(small, interval="bootstrap", n_boot=4, **kw)
+    BF.DEFAULT_GRID = BF.FAST
+    t_ones = []
+    for _ in range(2):  # the peer: best of the runs before and after (machines drift)
         t0 = time.perf_counter()
         compute_trpes(ens, **kw)
         t_ones.append(time.perf_counter() - t0)
+    # the kernel's share of the default call: the fused replicate pass, timed inside
+    kernel_t: list[float] = []
+    inner = KBF.fused_replicates
+
+    def timed(*a, **k):
         t0 = time.perf_counter()
-        m, model = compute_trpes(ens, return_model=True, **kw)
-        t_sticks.append(time.perf_counter() - t0)
+        out = inner(*a, **k)
+        kernel_t.append(time.perf_counter() - t0)
+        return out
+
+    BF.KBF.fused_replicates = timed  # type: ignore[assignment]
     rss0 = _rss_mb()
-    t0 = time.perf_counter()
-    mb = compute_trpes(ens, interval="bootstrap", n_boot=args.n_boot, random_state=0, **kw)
-    t_boot = time.perf_counter() - t0
+    t_boots = []
+    for _ in range(2):
+        kernel_t.clear()
+        t0 = time.perf_counter()
+        mb = compute_trpes(ens, **boot)
+        t_boots.append(time.perf_counter() - t0)
     rss1 = _rss_mb()
+    BF.KBF.fused_replicates = inner  # type: ignore[assignment]
     t0 = time.perf_counter()
     compute_trpes(ens, **kw)
     t_ones.append(time.perf_counter() - t0)
-    t_one, t_stick = min(t_ones), min(t_sticks)
-    # kernel figure: the replicate deposit of all sticks for all resamples, in the time
-    # windows of the bootstrap, per stick and resample
-    s = model.sticks
-    assert s is not None and model.tbin is not None
-    e_lo, h, n_fine = model.moment_grid(model.fwhm())
-    src = np.searchsorted(ens.trajectories["traj"].to_numpy(), s.traj).astype(np.int32)
-    n_rep, n_sub, _ = KBS.stream_plan(args.n_boot, model.n_time,
-                                      8 * model.order * n_fine, 8 * N_ENERGIES)
-    rw = KBS.bootstrap_counts(ens.n_trajectories, n_rep, np.random.default_rng(0)).T.copy()
-    grid = {"e_lo": e_lo, "h": h, "n_time": model.n_time, "tfrac": model.tfrac}
+    BF.DEFAULT_GRID = BF.EXACT
     t0 = time.perf_counter()
-    cells = KBS.sort_cells(model.tbin, s.energy, s.weight, src, n_fine=n_fine, **grid)
-    t_sort = time.perf_counter() - t0
-    acc = np.zeros((1, n_sub, n_fine, model.order, n_rep))
-    t_dep = 0.0
-    for w0 in range(0, model.n_time, n_sub):
-        part = acc[:, :min(n_sub, model.n_time - w0)]
-        part[...] = 0.0
-        t0 = time.perf_counter()
-        KBS.deposit_replicates(part, model.tbin, s.energy, s.weight, src, rw, t0=w0,
-                               cells=cells, **grid)
-        t_dep += time.perf_counter() - t0
+    me = compute_trpes(ens, **boot)
+    t_exact = time.perf_counter() - t0
+    BF.DEFAULT_GRID = None  # the stick route (sorted sticks, replicate deposit)
     t0 = time.perf_counter()
-    KD.deposit_moments(model.tbin, s.energy, s.weight, n_time=model.n_time, e_lo=e_lo, h=h,
-                       n_fine=n_fine, order=model.order, tfrac=model.tfrac)
-    t_one_dep = time.perf_counter() - t0
-    pairs = s.n_sticks * n_rep
-    print(f"TRPES map bootstrap benchmark: {s.n_sticks:.2e} sticks, "
+    compute_trpes(ens, **boot)
+    t_stick = time.perf_counter() - t0
+    BF.DEFAULT_GRID = BF.FAST
+    t_one, t_boot = min(t_ones), min(t_boots)
+    half = 0.5 * float(np.max(me.upper - me.lower))
+    d_lo = float(np.max(np.abs(mb.lower - me.lower))) / half
+    d_hi = float(np.max(np.abs(mb.upper - me.upper))) / half
+    pairs = n_sticks * (args.n_boot + 1)
+    t_k = sum(kernel_t)
+    print(f"TRPES map bootstrap benchmark: ~{n_sticks:.2e} sticks, "
           f"{ens.n_trajectories} trajectories, map {N_DELAYS} x {N_ENERGIES}, "
-          f"{args.n_boot} resamples (deposit backend "
-          f"{'numba' if KD.numba_available() else 'numpy'}, {KD.usable_cores()} cores)")
-    print(f"  one map (peer, fused path, best of 3)     : {t_one:.2f} s "
-          f"(runs {', '.join(f'{t:.2f}' for t in t_ones)} s)")
-    print(f"  one map keeping its sticks (best of 2)    : {t_stick:.2f} s "
-          f"(runs {', '.join(f'{t:.2f}' for t in t_sticks)} s)")
-    print(f"  map + {args.n_boot} bootstrap replicates          : {t_boot:.2f} s = "
-          f"{t_boot / t_one:.1f}x one map (goal <= 3x); "
-          f"{t_boot / t_stick:.2f}x the map keeping its sticks")
-    print(f"  replicate work alone                      : {t_boot - t_stick:.2f} s = "
-          f"{(t_boot - t_stick) / t_one:.1f}x one map")
-    print(f"  kernel: replicate deposit {t_dep:.2f} s for {pairs:.2e} (stick, resample) "
-          f"pairs = {t_dep / pairs * 1e9:.3f} ns per stick and resample (wall, "
-          f"{KD.usable_cores()} threads) "
-          f"({t_dep / n_rep * 1e3:.1f} ms per resample vs one deposit "
-          f"{t_one_dep * 1e3:.1f} ms: {t_dep / n_rep / t_one_dep:.2f}x; "
-          f"cell sort {t_sort:.2f} s once)")
-    print(f"  peak resident memory growth               : {rss1 - rss0:.0f} MB (budget for "
-          f"the replicate histograms {KBS.MEMORY_BUDGET / 2**20:.0f} MB; replicate maps "
-          f"{args.n_boot * N_DELAYS * N_ENERGIES * 8 / 2**20:.0f} MB)")
+          f"{args.n_boot} resamples (numba {'yes' if KD.numba_available() else 'no'}, "
+          f"{KD.usable_cores()} cores)")
+    print(f"  one map (peer, fused path, best of 3)     : {t_one:.3f} s "
+          f"(runs {', '.join(f'{t:.3f}' for t in t_ones)} s)")
+    print(f"  map + {args.n_boot} replicates, default (best of 2): {t_boot:.3f} s = "
+          f"{t_boot / t_one:.1f}x one map (goal <= 3x) "
+          f"(runs {', '.join(f'{t:.3f}' for t in t_boots)} s)")
+    print(f"  of which the fused replicate pass         : {t_k:.3f} s = "
+          f"{t_k / pairs * 1e9:.3f} ns per (stick, resample) (wall, "
+          f"{KD.usable_cores()} threads; {BF.FAST.order} moments, {BF.FAST.dtype})")
+    print(f"  same, exact replicates (8 moments, f64)   : {t_exact:.3f} s = "
+          f"{t_exact / t_one:.1f}x one map; default vs exact endpoints: "
+          f"{100 * d_lo:.2f} % / {100 * d_hi:.2f} % of the widest half-width")
+    print(f"  same, stick route (sorted sticks)         : {t_stick:.3f} s = "
+          f"{t_stick / t_one:.1f}x one map; the default is {t_stick / t_boot:.1f}x faster")
+    print(f"  peak resident memory growth (default)     : {rss1 - rss0:.0f} MB (replicate "
+          f"maps {args.n_boot * N_DELAYS * N_ENERGIES * 8 / 2**20:.0f} MB)")
     print(f"  median relative standard error (pixels > 5% of peak): "
           f"{mb.median_rel_se():.4f}")
     return 0

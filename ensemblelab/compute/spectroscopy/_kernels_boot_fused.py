@@ -5,15 +5,16 @@ accumulator cell and deposits them for all resamples; for 10^7 sticks the stick 
 alone cost many times the map. This module does the bootstrap in one compiled pass
 per thread over the grid times, like :mod:`._kernels_fused` does the map:
 
-* each thread takes a range of grid times; for each time bin ``j`` it walks every
-  trajectory's snapshots at ``j`` (a cursor per trajectory: the snapshots are grouped
-  by trajectory and sorted by time), forms each (snapshot, cation channel) stick as
-  the fused map pass does (ionisation energy, threshold, built-in cross section,
-  weight ``w_traj * sigma``, linear time split) and adds its ``order`` Taylor moments,
-  times the trajectory's multiplicity in every resample of the chunk
-  (``rw[traj, :]``, one contiguous vector multiply-add per moment), to a two-row
-  accumulator (time bins ``j`` and ``j + 1``, fine bin x moment x resample: small
-  enough for the second-level cache);
+* each thread takes a range of grid times, in tiles of a few bins (:data:`TILE_BYTES`
+  of stick buffer); for each tile it reads every trajectory's snapshots of the tile in
+  a row (a cursor per trajectory: the snapshots are grouped by trajectory and sorted by
+  time), forms each (snapshot, cation channel) stick as the fused map pass does
+  (ionisation energy, threshold, built-in cross section, weight ``w_traj * sigma``,
+  linear time split) into one bucket per bin; then, bin by bin, each stick adds its
+  ``order`` Taylor moments, times the trajectory's multiplicity in every resample of
+  the chunk (``rw[traj, :]``, contiguous vector multiply-adds with flat unsigned
+  indices), to a two-row accumulator (bins ``j`` and ``j + 1``, fine bin x moment x
+  resample);
 * when bin ``j`` is complete its row is broadened in energy at once for all resamples
   (one BLAS product per banded block of :func:`._kernels_replicate_maps.replicate_blocks`)
   into the replicate rows ``y[j]``, and the accumulator row is reused for ``j + 2``;

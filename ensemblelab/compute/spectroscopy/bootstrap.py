@@ -325,7 +325,8 @@ def bootstrap_map(
     rng = random_state if isinstance(random_state, np.random.Generator) else \
         np.random.default_rng(random_state)
     counts = KBS.bootstrap_counts(n_traj, int(n_boot), rng)
-    ops = {"probe": probe, "pump": pump, "resolution": resolution, "convolve": convolve}
+    ops: dict[str, Any] = {"probe": probe, "pump": pump, "resolution": resolution,
+                           "convolve": convolve}
     bmat, cmat = _operators(model, kinetic_energies, delays, e_lo=e_lo, h=h, n_fine=n_fine,
                             **ops)
     budget = KBS.MEMORY_BUDGET if budget is None else budget
