@@ -10,7 +10,8 @@ for standard errors, confidence intervals, and other measures of statistical acc
 
 from __future__ import annotations
 
-import warnings
+import sys
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -22,37 +23,12 @@ from ensemblelab.compute.spectroscopy import bootstrap_fused as BF
 from ensemblelab.compute.spectroscopy import compute_trpes
 from ensemblelab.compute.spectroscopy._reference_bootstrap import naive_bootstrap_maps
 from ensemblelab.compute.spectroscopy.cross_sections import HydrogenicCoulomb
-from ensemblelab.compute.spectroscopy.pulses import GaussianPulse
 from ensemblelab.testing import make_toy_ensemble
 
 pytestmark = pytest.mark.skipif(not KD.numba_available(), reason="numba not installed")
 
-PROBE = GaussianPulse(photon_energy=5.0, fwhm=30.0)
-PUMP = GaussianPulse(photon_energy=4.0, fwhm=30.0)
-SMALL = {"kinetic_energies": np.linspace(0.0, 2.0, 41), "delays": np.arange(-40.0, 161.0, 20.0),
-         "probe": PROBE, "pump": PUMP}
-
-
-def _quiet(fn, *a, **k):
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        return fn(*a, **k)
-
-
-def _absorbing_weighted(n=18, seed=5):
-    """Toy ensemble: two trajectories stop early on S0 (absorbing), unequal weights."""
-    ens = make_toy_ensemble(n, seed=seed, t_max=120.0, ragged=True)
-    snaps = ens.snapshots.copy()
-    keep = np.ones(len(snaps), dtype=bool)
-    for tr, t_stop in ((1, 50.0), (4, 73.0)):
-        sel = snaps["traj"].to_numpy() == tr
-        keep &= ~(sel & (snaps["time"].to_numpy() > t_stop))
-        last = np.flatnonzero(sel & (snaps["time"].to_numpy() == t_stop))
-        snaps.loc[last, "active"] = 0
-    ens = ens.replace(snapshots=snaps).select(keep)
-    trajs = ens.trajectories.copy()
-    trajs["weight"] = np.random.default_rng(seed).uniform(0.3, 2.0, ens.n_trajectories)
-    return ens.replace(trajectories=trajs)
+sys.path.insert(0, str(Path(__file__).parent))
+from test_trpes_bootstrap import PROBE, SMALL, _absorbing_weighted, _quiet  # noqa: E402
 
 
 def _boot(ens, grid, monkeypatch, **kw):
