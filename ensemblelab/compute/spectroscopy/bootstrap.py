@@ -12,14 +12,19 @@ standard deviation over the map (the percentile bootstrap; Stat. Sci. 1986, "Boo
 methods for standard errors, confidence intervals, and other measures of statistical
 accuracy").
 
-No sticks are made again: the sticks are linear in the trajectory weights, so each
-resample's moment histograms are deposited from the same sticks with the resample's
-multiplicities (:mod:`._kernels_bootstrap`, all resamples of a chunk in one pass, the
-sticks sorted by cell once), and broadened into maps for all resamples at once
-(:mod:`._kernels_replicate_maps`). An in-memory ensemble reuses the map's own sticks
-and alive inputs and streams over windows of time bins (histograms of a few bins at a
-time, broadened while in cache; :func:`_stream`); a chunked store is read once per
-chunk of resamples (:func:`bootstrap_partial`, histograms over the whole time grid).
+The fast route (:mod:`.bootstrap_fused`: in memory, numba, a built-in cross section, no
+decomposition) makes no stick arrays at all: one compiled pass forms the sticks per grid
+time and adds them to every resample (replicates with fewer moments in float32,
+recentred on the map; ``bootstrap_fused.EXACT`` for the numbers below to rounding).
+Otherwise (the stick route) no sticks are made again: the sticks are linear in the
+trajectory weights, so each resample's moment histograms are deposited from the same
+sticks with the resample's multiplicities (:mod:`._kernels_bootstrap`, all resamples of
+a chunk in one pass, the sticks sorted by cell once), and broadened into maps for all
+resamples at once (:mod:`._kernels_replicate_maps`). An in-memory ensemble reuses the
+map's own sticks and alive inputs and streams over windows of time bins (histograms of a
+few bins at a time, broadened while in cache; :func:`_stream`); a chunked store is read
+once per chunk of resamples (:func:`bootstrap_partial`, histograms over the whole time
+grid).
 Memory: within :data:`._kernels_bootstrap.MEMORY_BUDGET` for the histograms and
 broadened rows, plus the replicate maps (``(1 + n_components) x n_delays x n_energies
 x n_boot`` floats, for the percentiles) and, in memory, the sorted sticks (28 bytes
