@@ -17,6 +17,7 @@ import numpy as np
 import pytest
 
 from ensemblelab.compute.spectroscopy import _kernels_bootstrap as KBS
+from ensemblelab.compute.spectroscopy import bootstrap_fused as BF
 from ensemblelab.compute.spectroscopy import compute_trpes
 from ensemblelab.compute.spectroscopy._reference_bootstrap import naive_bootstrap_maps
 from ensemblelab.widgets import MapView
@@ -25,6 +26,14 @@ from ensemblelab.widgets._small_maps import nice_ticks
 GRID = {"kinetic_energies": np.linspace(0.0, 2.5, 51), "delays": np.arange(-60.0, 201.0, 20.0)}
 N_BOOT = 16  # small: the naive twin recomputes one map per resample
 SEED = 3
+
+
+@pytest.fixture(autouse=True)
+def _exact_replicates(monkeypatch):
+    """The widget's numbers equal the direct call's and the naive twin's to rounding with
+    exact replicates (the default recentred float32 ones are checked against these in
+    tests/compute/test_trpes_bootstrap_fused.py)."""
+    monkeypatch.setattr(BF, "DEFAULT_GRID", BF.EXACT)
 
 
 def _view(model):

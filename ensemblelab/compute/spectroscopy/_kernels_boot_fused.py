@@ -365,7 +365,7 @@ def fused_replicates(block: Any, *, layout: Any, w_traj: np.ndarray, rw: np.ndar
     """
     from ._kernels_broadening import single_thread_blas
     from ._kernels_deposit import usable_cores
-    from ._kernels_fused import _time_cuts, block_arrays, cross_section_code
+    from ._kernels_fused import block_arrays, cross_section_code, time_cuts
 
     k = _kernels()
     assert k is not None and layout is not None and layout.sorted
@@ -379,7 +379,7 @@ def fused_replicates(block: Any, *, layout: Any, w_traj: np.ndarray, rw: np.ndar
     n_rep = rw.shape[1]
     blk, mats = _pack_blocks(blocks, dtype)
     n_threads = max(1, min(usable_cores() if n_threads is None else int(n_threads), n_time))
-    cuts = _time_cuts(time, layout.starts, start, dt, n_time,
+    cuts = time_cuts(time, layout.starts, start, dt, n_time,
                       max(1, n_threads * jobs_per_thread))
     y = np.empty((n_time, n_energies, n_rep), dtype=dtype)
     y[:] = 0.0

@@ -431,7 +431,7 @@ def fused_pass(block: Any, *, w_traj: np.ndarray, cross_section: Any, total_ener
         # shared machine leaves its share to the others
         n_jobs = max(JOBS_PER_THREAD * n_threads if n_threads > 1 else 1,
                      -(-8 * n_time * line // JOB_BYTES))
-        cuts = _time_cuts(time, layout.starts, start, dt, n_time,
+        cuts = time_cuts(time, layout.starts, start, dt, n_time,
                           -(-n_jobs // n_threads) * n_threads)
         jobs = [(layout.starts, no_tix, 0, block.n_trajectories, cuts[t], cuts[t + 1])
                 for t in range(len(cuts) - 1)]
@@ -521,7 +521,7 @@ def fused_pass(block: Any, *, w_traj: np.ndarray, cross_section: Any, total_ener
             "n_missing": int(counts[2]), "n_sticks": int(counts[3])}
 
 
-def _time_cuts(time: np.ndarray, starts: np.ndarray, start: float, dt: float, n_time: int,
+def time_cuts(time: np.ndarray, starts: np.ndarray, start: float, dt: float, n_time: int,
                n_threads: int) -> list[int]:
     """Grid rows ``0 = c_0 < c_1 < ... = n_time`` giving each thread about as many
     snapshots (each trajectory's taken as spread evenly from its first to its last

@@ -71,12 +71,12 @@ def _unit_extension(ens: Any, layout: Any, unit: np.ndarray, w_traj: np.ndarray,
                     model: Any, probe: Any, shifts: np.ndarray | None) -> None:
     """Add the absorbed extension (a trajectory stopped in the absorbing state stays
     alive after its stop, as :func:`.sticks.block_alive`) to the unit profiles."""
-    from .fused import _extension
+    from .fused import last_row_extension
 
     state, t_end = model.info.get("absorbing_state"), model.t_known
     if state is None or model.info.get("absorbing", "zero") == "end" or t_end is None:
         return
-    x = _extension(ens, w_traj, layout, probe=probe, shifts=shifts, state=state,
+    x = last_row_extension(ens, w_traj, layout, probe=probe, shifts=shifts, state=state,
                    t_end=t_end, start=model.grid_start, dt=model.time_step,
                    n_time=model.n_time)
     rows = np.searchsorted(layout.starts, x.rows, side="right") - 1

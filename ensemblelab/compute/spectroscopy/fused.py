@@ -129,7 +129,7 @@ def fused_partial(block: Any, opts: dict[str, Any], w_traj: np.ndarray) -> dict[
         state, t_end = opts.get("absorbing_state"), opts.get("t_end")
         if (state is not None and opts.get("absorbing", "zero") != "end" and t_end is not None
                 and block.n_snapshots):
-            x = _extension(block, w_traj, common["layout"], probe=probe, shifts=shifts,
+            x = last_row_extension(block, w_traj, common["layout"], probe=probe, shifts=shifts,
                            state=state, t_end=t_end, start=opts["start"], dt=opts["dt"],
                            n_time=n_time)
             alive = alive + x.ext
@@ -149,7 +149,7 @@ def fused_partial(block: Any, opts: dict[str, Any], w_traj: np.ndarray) -> dict[
             "counts": {k: np.int64(v) for k, v in counts.items()}}
 
 
-def _extension(block: Any, w_traj: np.ndarray, layout: Any, *, probe: Any,
+def last_row_extension(block: Any, w_traj: np.ndarray, layout: Any, *, probe: Any,
                shifts: np.ndarray | None, state: int, t_end: float, start: float, dt: float,
                n_time: int) -> Any:
     """:func:`.sticks.absorbed_extension` from each trajectory's last row only."""
