@@ -361,12 +361,11 @@ def bootstrap_map(
     reps = np.zeros((1 + n_lab, *trpes_map.shape, int(n_boot))) if fused is None else \
         fused[None]
     per_bin = 8 * order * (1 + n_lab) * n_fine
-    if fused is not None:
-        pass
-    elif isinstance(ens, Ensemble) and opts["cache"][0]["total"]["cells"] is not None:
+    if fused is None and isinstance(ens, Ensemble) and \
+            opts["cache"][0]["total"]["cells"] is not None:
         _stream(opts["cache"][0], counts, opts, bmat, cmat, normalise, reps, budget=budget,
                 progress=progress)
-    else:
+    elif fused is None:
         steps: Any = KBS.chunk_plan(int(n_boot), n_time, per_bin, budget)
         if progress:
             from tqdm.auto import tqdm
