@@ -40,12 +40,16 @@ import numpy as np
 
 from . import _kernels_fused as KF
 
-__all__ = ["fused_replicates", "available", "L2_BYTES"]
+__all__ = ["fused_replicates", "available", "L2_BYTES", "LANES"]
 
 #: bytes of the two-row replicate accumulator of a thread (near its second-level cache;
 #: 200 resamples in one chunk beat two chunks of 100 that fit it: each chunk reads the
 #: ensemble again). The chunk of resamples shrinks to fit.
 L2_BYTES = 2 << 20
+
+#: resamples per vector loop (16 float32 in a 512-bit register): the caller pads the
+#: resamples to a multiple of it, so that no loop over them ends in scalar steps
+LANES = 16
 
 #: bytes of the stick buffer of one tile of grid times (last-level cache)
 TILE_BYTES = 4 << 20
@@ -125,6 +129,100 @@ def _deposit_bucket(sb, sd, sv, sf, sr, s0, s1, acc, cur, nxt, row_len, n_rep, o
             _add_moments(acc, c1 + off, nr, order, sv[q] * f, sd[q], rw, rb, coef)
 
 
+
+def _add4(acc, off, n_rep, order, c4, rb0, rb1, rb2, rb3, rwf):  # pragma: no cover - numba
+    """Four sticks of one fine bin: ``acc[off + m n_rep + q] += sum_u c4[4 m + u]
+    rwf[rb_u + q]`` for m < order, q < n_rep.
+
+    One load and store of each accumulator value for four sticks (the adds of one
+    stick at a time are bound by the stores). ``c4`` (4 order,): ``v_u d_u^m``.
+    """
+    if order == 3:  # the default: unrolled (the generic loop vectorises worse)
+        a, b, c, e = c4[0], c4[1], c4[2], c4[3]
+        for q in range(n_rep):
+            acc[off + q] += (a * rwf[rb0 + q] + b * rwf[rb1 + q] + c * rwf[rb2 + q]
+                             + e * rwf[rb3 + q])
+        o = off + n_rep
+        a, b, c, e = c4[4], c4[5], c4[6], c4[7]
+        for q in range(n_rep):
+            acc[o + q] += a * rwf[rb0 + q] + b * rwf[rb1 + q] + c * rwf[rb2 + q] + e * rwf[rb3 + q]
+        o += n_rep
+        a, b, c, e = c4[8], c4[9], c4[10], c4[11]
+        for q in range(n_rep):
+            acc[o + q] += a * rwf[rb0 + q] + b * rwf[rb1 + q] + c * rwf[rb2 + q] + e * rwf[rb3 + q]
+        return
+    o = off
+    for m in range(order):
+        a = c4[4 * m]
+        b = c4[4 * m + 1]
+        c = c4[4 * m + 2]
+        e = c4[4 * m + 3]
+        for q in range(n_rep):
+            acc[o + q] += a * rwf[rb0 + q] + b * rwf[rb1 + q] + c * rwf[rb2 + q] + e * rwf[rb3 + q]
+        o += n_rep
+
+
+def _coef4(c4, order, u, v, d):  # pragma: no cover - compiled by numba
+    """``c4[4 m + u] = v d^m`` for m < order."""
+    for m in range(order):
+        c4[4 * m + u] = v
+        v *= d
+
+
+def _deposit_sorted(sb, sd, sv, sf, sr, s0, s1, perm, cnt, acc, cur, nxt, row_len, n_rep,
+                    order, rw, coef, c4, n_time, j):  # pragma: no cover - compiled by numba
+    """:func:`_deposit_bucket` with the sticks taken in fine-bin order (a counting sort,
+    ``perm`` and ``cnt`` (n_fine + 1,) scratch), four at a time where four share a bin
+    (:func:`_add4`): the bin's accumulator values stay in the first-level cache."""
+    n_b = cnt.shape[0] - 1
+    for q in range(n_b + 1):
+        cnt[q] = 0
+    for q in range(s0, s1):
+        cnt[sb[q] // order + 1] += 1
+    for q in range(n_b):
+        cnt[q + 1] += cnt[q]
+    for q in range(s0, s1):
+        b = sb[q] // order
+        perm[cnt[b]] = q
+        cnt[b] += 1
+    n = s1 - s0
+    nr = np.uint64(n_rep)
+    c0 = np.uint64(cur * row_len)
+    c1 = np.uint64(nxt * row_len)
+    has_next = j + 1 < n_time
+    p = 0
+    while p < n:
+        q = perm[p]
+        off = np.uint64(sb[q]) * nr
+        if p + 3 < n and sb[perm[p + 3]] == sb[q]:  # sorted: all four in one bin
+            q1 = perm[p + 1]
+            q2 = perm[p + 2]
+            q3 = perm[p + 3]
+            r0 = np.uint64(sr[q]) * nr
+            r1 = np.uint64(sr[q1]) * nr
+            r2 = np.uint64(sr[q2]) * nr
+            r3 = np.uint64(sr[q3]) * nr
+            _coef4(c4, order, 0, sv[q] * (1.0 - sf[q]), sd[q])
+            _coef4(c4, order, 1, sv[q1] * (1.0 - sf[q1]), sd[q1])
+            _coef4(c4, order, 2, sv[q2] * (1.0 - sf[q2]), sd[q2])
+            _coef4(c4, order, 3, sv[q3] * (1.0 - sf[q3]), sd[q3])
+            _add4(acc, c0 + off, nr, order, c4, r0, r1, r2, r3, rw)
+            if has_next and (sf[q] > 0.0 or sf[q1] > 0.0 or sf[q2] > 0.0 or sf[q3] > 0.0):
+                _coef4(c4, order, 0, sv[q] * sf[q], sd[q])
+                _coef4(c4, order, 1, sv[q1] * sf[q1], sd[q1])
+                _coef4(c4, order, 2, sv[q2] * sf[q2], sd[q2])
+                _coef4(c4, order, 3, sv[q3] * sf[q3], sd[q3])
+                _add4(acc, c1 + off, nr, order, c4, r0, r1, r2, r3, rw)
+            p += 4
+            continue
+        f = sf[q]
+        rb = np.uint64(sr[q]) * nr
+        _add_moments(acc, c0 + off, nr, order, sv[q] * (1.0 - f), sd[q], rw, rb, coef)
+        if f > 0.0 and has_next:
+            _add_moments(acc, c1 + off, nr, order, sv[q] * f, sd[q], rw, rb, coef)
+        p += 1
+
+
 def _run(time, active, starts, w_traj, energies, cat, dyson, by_state, shifts, kind, p1,
          p2, total, tail, start, dt, n_time, shift_e, inv_h, n_fine, order, rw, j_lo, j_hi,
          tile, cursor, blk, mats, acc, y, do_unit, unit, counts):  # pragma: no cover - numba
@@ -143,6 +241,8 @@ def _run(time, active, starts, w_traj, energies, cat, dyson, by_state, shifts, k
     n_cat = cat.shape[1]
     fn = float(n_fine)
     coef = np.empty(order, dtype=rw.dtype)
+    c4 = np.empty(4 * order, dtype=rw.dtype)
+    cnt = np.empty(n_fine + 1, np.int64)
     n_rep = rw.shape[1]
     row_len = n_fine * order * n_rep
     accf = acc.reshape(2 * row_len)
@@ -150,12 +250,13 @@ def _run(time, active, starts, w_traj, energies, cat, dyson, by_state, shifts, k
     acc[:] = 0.0
     cur = 0
     cap = 1024
-    sb = np.empty(cap, np.int64)
-    sd = np.empty(cap)
-    sv = np.empty(cap)
-    sf = np.empty(cap)
-    sr = np.empty(cap, np.int64)
+    sb = np.empty(cap, np.int32)
+    sd = np.empty(cap, rw.dtype)
+    sv = np.empty(cap, rw.dtype)
+    sf = np.empty(cap, rw.dtype)
+    sr = np.empty(cap, np.int32)
     bstart = np.zeros(tile + 2, np.int64)
+    perm = np.empty(cap, np.int32)
     for r in range(n_traj):  # each trajectory's first snapshot at bin >= j_lo - 1
         lo = starts[r]
         hi = starts[r + 1]
@@ -184,11 +285,11 @@ def _run(time, active, starts, w_traj, energies, cat, dyson, by_state, shifts, k
         need = bstart[tile + 1]
         if need > cap:
             cap = max(need, 2 * cap)
-            sb = np.empty(cap, np.int64)
-            sd = np.empty(cap)
-            sv = np.empty(cap)
-            sf = np.empty(cap)
-            sr = np.empty(cap, np.int64)
+            sb = np.empty(cap, np.int32)
+            sd = np.empty(cap, rw.dtype)
+            sv = np.empty(cap, rw.dtype)
+            sf = np.empty(cap, rw.dtype)
+            sr = np.empty(cap, np.int32)
         fill = bstart[:tile + 1].copy()
         for r in range(n_traj):
             i = cursor[r]
@@ -256,8 +357,10 @@ def _run(time, active, starts, w_traj, energies, cat, dyson, by_state, shifts, k
         for j in range(t0, t1):
             nxt = 1 - cur
             kb = j - t0 + 1
-            _deposit_bucket(sb, sd, sv, sf, sr, bstart[kb], fill[kb], accf, cur, nxt,
-                            row_len, n_rep, order, rwf, coef, n_time, j)
+            if perm.shape[0] < cap:
+                perm = np.empty(cap, np.int32)
+            _deposit_sorted(sb, sd, sv, sf, sr, bstart[kb], fill[kb], perm, cnt, accf, cur,
+                            nxt, row_len, n_rep, order, rwf, coef, c4, n_time, j)
             row = acc[cur]
             out = y[j - j_lo]
             for q in range(n_blk):
@@ -287,6 +390,10 @@ def _kernels() -> dict[str, Callable[..., Any]] | None:
                     g = globals()
                     g["_add_moments"] = inl(_add_moments)
                     g["_grid_pos"] = numba.njit(nogil=True, inline="always")(_grid_pos)
+                    g["_add4"] = inl(_add4)
+                    g["_coef4"] = inl(_coef4)
+                    g["_deposit_sorted"] = numba.njit(nogil=True, boundscheck=False,
+                                                      fastmath=True)(_deposit_sorted)
                     g["_deposit_bucket"] = numba.njit(nogil=True, boundscheck=False,
                                                       fastmath=True)(_deposit_bucket)
                     _COMPILED["run"] = numba.njit(cache=True, nogil=True,
@@ -432,10 +539,10 @@ def replicate_rows_bytes(n_fine: int, order: int, itemsize: int) -> int:
 
 def reps_per_chunk(n_boot: int, n_fine: int, order: int, itemsize: int,
                    budget: int = L2_BYTES) -> int:
-    """Resamples per chunk so that the two-row accumulator fits ``budget`` bytes (>= 8,
-    a multiple of 8 unless all fit)."""
+    """Resamples per chunk so that the two-row accumulator fits ``budget`` bytes (>=
+    :data:`LANES`, a multiple of it unless all fit)."""
     per = replicate_rows_bytes(n_fine, order, itemsize)
-    n = int(max(8, budget // max(per, 1)))
+    n = int(max(LANES, budget // max(per, 1)))
     if n >= n_boot:
         return n_boot
-    return max(8, (n // 8) * 8) if n > 8 else 8
+    return (n // LANES) * LANES

@@ -141,22 +141,26 @@ def fused_bootstrap_maps(ens: Any, model: Any, counts: np.ndarray, *,
     n_traj, n_time = counts.shape[1], model.n_time
     n_e = len(kinetic_energies)
     # resample 0: every trajectory once (the unresampled ensemble), for the recentring
-    allc = np.vstack([np.ones((1, n_traj)), counts])
-    n_all = allc.shape[0]
-    n_rep = KBF.reps_per_chunk(n_all, n_fine, order, dtype.itemsize)
-    n_rep = max(1, min(n_rep, budget // max(n_time * n_e * dtype.itemsize, 1)))
+    # and copies of it up to a multiple of LANES resamples (whole vector loops in the kernel)
+    n_all = counts.shape[0] + 1
+    n_pad = -(-n_all // KBF.LANES) * KBF.LANES
+    allc = np.vstack([np.ones((1 + n_pad - n_all, n_traj)), counts])
+    n_rep = KBF.reps_per_chunk(n_pad, n_fine, order, dtype.itemsize)
+    cap = budget // max(n_time * n_e * dtype.itemsize, 1)  # replicate rows of a chunk
+    if n_rep > cap:
+        n_rep = max(KBF.LANES, cap // KBF.LANES * KBF.LANES)
     unit = np.zeros((n_traj, n_time))
     shifts = check_shifts(ionisation_shifts, ens.n_cation)
-    out = np.zeros((1, len(cmat), n_e, n_all))
+    out = np.zeros((1, len(cmat), n_e, n_pad))
     c32 = np.ascontiguousarray(cmat, dtype=dtype)
     tail = THRESHOLD_TAIL * probe.effective_spectral_fwhm * FWHM_TO_SIGMA
     bar = None
-    n_chunks = -(-n_all // n_rep)
+    n_chunks = -(-n_pad // n_rep)
     if progress:
         from tqdm.auto import tqdm
         bar = tqdm(total=n_chunks, desc="bootstrap chunks", unit="chunk")
     try:
-        for c, r0 in enumerate(range(0, n_all, n_rep)):
+        for c, r0 in enumerate(range(0, n_pad, n_rep)):
             sub = allc[r0:r0 + n_rep]
             y = KBF.fused_replicates(
                 ens, layout=layout, w_traj=w_traj, rw=np.ascontiguousarray(sub.T, dtype),
@@ -175,7 +179,7 @@ def fused_bootstrap_maps(ens: Any, model: Any, counts: np.ndarray, *,
     finally:
         if bar is not None:
             bar.close()
-    reps = out[0]
+    reps = out[0, ..., n_pad - n_all:]  # the padding copies dropped
     if intensity is None:  # not recentred: the unresampled replicate first
         return reps
     reps[..., 1:] += (intensity - reps[..., 0])[..., None]  # recentre on the map
