@@ -134,7 +134,7 @@ def test_small_accumulator_budget_chunks_the_resamples(monkeypatch):
     ens = make_toy_ensemble(12, seed=9, t_max=90.0)
     kw = dict(SMALL, n_boot=20, random_state=4)
     one = _boot(ens, BF.EXACT, monkeypatch, **kw)
-    monkeypatch.setattr(KBF, "L2_BYTES", 1)  # 8 resamples per chunk
+    monkeypatch.setattr(KBF, "L2_BYTES", 1)  # 16 resamples (LANES) per chunk
     many = _boot(ens, BF.EXACT, monkeypatch, **kw)
     np.testing.assert_allclose(many.lower, one.lower, rtol=1e-12, atol=0)
     np.testing.assert_allclose(many.upper, one.upper, rtol=1e-12, atol=0)
