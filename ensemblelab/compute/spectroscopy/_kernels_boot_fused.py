@@ -13,8 +13,8 @@ per thread over the grid times, like :mod:`._kernels_fused` does the map:
   linear time split) into one bucket per bin; then, bin by bin, each stick adds its
   ``order`` Taylor moments, times the trajectory's multiplicity in every resample of
   the chunk (``rw[traj, :]``, contiguous vector multiply-adds with flat unsigned
-  indices), to a two-row accumulator (bins ``j`` and ``j + 1``, fine bin x moment x
-  resample);
+  indices; sticks in fine-bin order, four at a time), to a two-row accumulator
+  (bins ``j`` and ``j + 1``, fine bin x moment x resample);
 * when bin ``j`` is complete its row is broadened in energy at once for all resamples
   (one BLAS product per banded block of :func:`._kernels_replicate_maps.replicate_blocks`)
   into the replicate rows ``y[j]``, and the accumulator row is reused for ``j + 2``;
@@ -137,20 +137,6 @@ def _add4(acc, off, n_rep, order, c4, rb0, rb1, rb2, rb3, rwf):  # pragma: no co
     One load and store of each accumulator value for four sticks (the adds of one
     stick at a time are bound by the stores). ``c4`` (4 order,): ``v_u d_u^m``.
     """
-    if order == 3:  # the default: unrolled (the generic loop vectorises worse)
-        a, b, c, e = c4[0], c4[1], c4[2], c4[3]
-        for q in range(n_rep):
-            acc[off + q] += (a * rwf[rb0 + q] + b * rwf[rb1 + q] + c * rwf[rb2 + q]
-                             + e * rwf[rb3 + q])
-        o = off + n_rep
-        a, b, c, e = c4[4], c4[5], c4[6], c4[7]
-        for q in range(n_rep):
-            acc[o + q] += a * rwf[rb0 + q] + b * rwf[rb1 + q] + c * rwf[rb2 + q] + e * rwf[rb3 + q]
-        o += n_rep
-        a, b, c, e = c4[8], c4[9], c4[10], c4[11]
-        for q in range(n_rep):
-            acc[o + q] += a * rwf[rb0 + q] + b * rwf[rb1 + q] + c * rwf[rb2 + q] + e * rwf[rb3 + q]
-        return
     o = off
     for m in range(order):
         a = c4[4 * m]
@@ -195,23 +181,20 @@ def _deposit_sorted(sb, sd, sv, sf, sr, s0, s1, perm, cnt, acc, cur, nxt, row_le
         q = perm[p]
         off = np.uint64(sb[q]) * nr
         if p + 3 < n and sb[perm[p + 3]] == sb[q]:  # sorted: all four in one bin
-            q1 = perm[p + 1]
-            q2 = perm[p + 2]
-            q3 = perm[p + 3]
             r0 = np.uint64(sr[q]) * nr
-            r1 = np.uint64(sr[q1]) * nr
-            r2 = np.uint64(sr[q2]) * nr
-            r3 = np.uint64(sr[q3]) * nr
-            _coef4(c4, order, 0, sv[q] * (1.0 - sf[q]), sd[q])
-            _coef4(c4, order, 1, sv[q1] * (1.0 - sf[q1]), sd[q1])
-            _coef4(c4, order, 2, sv[q2] * (1.0 - sf[q2]), sd[q2])
-            _coef4(c4, order, 3, sv[q3] * (1.0 - sf[q3]), sd[q3])
+            r1 = np.uint64(sr[perm[p + 1]]) * nr
+            r2 = np.uint64(sr[perm[p + 2]]) * nr
+            r3 = np.uint64(sr[perm[p + 3]]) * nr
+            split = False
+            for u in range(4):  # first shares (at j)
+                qu = perm[p + u]
+                _coef4(c4, order, u, sv[qu] * (1.0 - sf[qu]), sd[qu])
+                split = split or sf[qu] > 0.0
             _add4(acc, c0 + off, nr, order, c4, r0, r1, r2, r3, rw)
-            if has_next and (sf[q] > 0.0 or sf[q1] > 0.0 or sf[q2] > 0.0 or sf[q3] > 0.0):
-                _coef4(c4, order, 0, sv[q] * sf[q], sd[q])
-                _coef4(c4, order, 1, sv[q1] * sf[q1], sd[q1])
-                _coef4(c4, order, 2, sv[q2] * sf[q2], sd[q2])
-                _coef4(c4, order, 3, sv[q3] * sf[q3], sd[q3])
+            if split and has_next:  # second shares (at j + 1)
+                for u in range(4):
+                    qu = perm[p + u]
+                    _coef4(c4, order, u, sv[qu] * sf[qu], sd[qu])
                 _add4(acc, c1 + off, nr, order, c4, r0, r1, r2, r3, rw)
             p += 4
             continue
