@@ -153,3 +153,34 @@ def test_a_stick_outside_the_fine_grid_is_an_error():
     rw = np.ones((ens.n_trajectories, 2))
     with pytest.raises(ValueError, match="outside the time or fine energy grid"):
         _rows(ens, rw, e_lo=100.0)  # every stick below the fine grid
+
+
+@pytest.mark.parametrize("dtype", [np.float32, np.float64])
+def test_byte_multiplicities_give_the_rows_of_float_ones(dtype):
+    # The caller passes whole multiplicities below 256 as uint8 (a quarter of the memory
+    # traffic); the kernel must widen them exactly. Reference: the same multiplicities as
+    # floats of the accumulator's precision (computed independently, not published).
+    ens = make_toy_ensemble(14, seed=4, t_max=100.0, ragged=True)
+    counts = KBS.bootstrap_counts(ens.n_trajectories, 16, np.random.default_rng(3)).T
+    counts[0, :] = 255  # the largest byte value
+    ref = _rows(ens, np.ascontiguousarray(counts, dtype=dtype), n_threads=1)
+    got = _rows(ens, np.ascontiguousarray(counts, dtype=np.uint8), dtype=dtype, n_threads=1)
+    assert got.dtype == dtype and np.abs(ref).max() > 0
+    tol = 1e-12 if dtype == np.float64 else 1e-5
+    np.testing.assert_allclose(got, ref, rtol=tol, atol=tol * np.abs(ref).max())
+    # a byte array with a float accumulator of the other width is refused
+    with pytest.raises(AssertionError):
+        _rows(ens, np.ascontiguousarray(counts, dtype=np.float32), dtype=np.float64)
+
+
+def test_padding_copies_do_not_change_the_resamples(monkeypatch):
+    # Resamples are padded with copies of the unresampled ensemble up to a multiple of
+    # LANES; with LANES = 1 there is no padding, and every interval must be the same.
+    ens = make_toy_ensemble(12, seed=8, t_max=90.0)
+    kw = dict(SMALL, n_boot=13, random_state=2)  # 14 replicates: 2 padding copies
+    padded = _boot(ens, BF.EXACT, monkeypatch, **kw)
+    monkeypatch.setattr(KBF, "LANES", 1)
+    plain = _boot(ens, BF.EXACT, monkeypatch, **kw)
+    assert np.max(padded.upper - padded.lower) > 0
+    np.testing.assert_allclose(padded.lower, plain.lower, rtol=1e-12, atol=0)
+    np.testing.assert_allclose(padded.upper, plain.upper, rtol=1e-12, atol=0)

@@ -232,8 +232,8 @@ class BroadeningBlocks(list):
     n_energies: int
 
 
-def _reach_bins(h: float, sa: float, order: int) -> int:
-    """Fine bins beyond which every broadening term is below ``BAND_CUTOFF`` of the peak.
+def _reach_bins(h: float, sa: float, order: int, cutoff: float = BAND_CUTOFF) -> int:
+    """Fine bins beyond which every broadening term is below ``cutoff`` of the peak.
 
     Evaluates ``max_k |h^k a^(k/2) H_k(y) G(y) / k!|`` on the bin offsets (it is even
     in y) and returns the last offset above the cutoff, plus one bin of margin.
@@ -243,18 +243,19 @@ def _reach_bins(h: float, sa: float, order: int) -> int:
     y = step * m
     g = np.exp(-y * y)
     mag = np.max([np.abs(term * g) for term in _taylor_terms(y, step, order)], axis=0)
-    big = np.flatnonzero(mag > BAND_CUTOFF * mag.max())
+    big = np.flatnonzero(mag > cutoff * mag.max())
     return int(big[-1]) + 1
 
 
 def broadening_blocks(energies: np.ndarray, *, e_lo: float, h: float, n_fine: int,
                       fwhm: float, order: int, truncate_below: float | None = 0.0,
-                      block: int = ENERGY_BLOCK, fwhm_of: Any = None) -> BroadeningBlocks:
+                      block: int = ENERGY_BLOCK, fwhm_of: Any = None,
+                      cutoff: float = BAND_CUTOFF) -> BroadeningBlocks:
     """The broadening matrices of :func:`energy_matrices`, banded and in blocks.
 
     Only the entries within reach of each block of output energies are evaluated
-    (entries further out are below ``BAND_CUTOFF`` of the largest, so leaving them out
-    changes a map by less than about ``order * n_fine * BAND_CUTOFF`` of its peak).
+    (entries further out are below ``cutoff`` of the largest, so leaving them out
+    changes a map by less than about ``order * n_fine * cutoff`` of its peak).
 
     Parameters
     ----------
@@ -264,6 +265,12 @@ def broadening_blocks(energies: np.ndarray, *, e_lo: float, h: float, n_fine: in
         As in :func:`energy_matrices`.
     block : int
         Output energies per block.
+    fwhm_of : callable, optional
+        FWHM (eV) of the broadening at given fine-bin centres (a resolution
+        proportional to the kinetic energy); None: ``fwhm`` everywhere.
+    cutoff : float
+        Relative size below which entries are left out (default :data:`BAND_CUTOFF`;
+        float32 replicates use a larger one, below their rounding).
 
     Returns
     -------
@@ -275,9 +282,9 @@ def broadening_blocks(energies: np.ndarray, *, e_lo: float, h: float, n_fine: in
     sa = math.sqrt(a)
     if fwhm_of is not None:  # the widest bin sets the reach
         widest = float(np.max(fwhm_of(e_lo + h * np.arange(n_fine)))) if n_fine else fwhm
-        reach = _reach_bins(h, math.sqrt(FOUR_LN2) / max(widest, fwhm), order)
+        reach = _reach_bins(h, math.sqrt(FOUR_LN2) / max(widest, fwhm), order, cutoff)
     else:
-        reach = _reach_bins(h, sa, order)
+        reach = _reach_bins(h, sa, order, cutoff)
     out = BroadeningBlocks()
     out.order, out.n_fine, out.n_energies = order, n_fine, energies.size
     spans = []

@@ -227,11 +227,12 @@ def _normalise(res: dict[str, Any], normalise: str) -> np.ndarray:
 
 def _operators(model: TRPESModel, kinetic_energies: np.ndarray, delays: np.ndarray, *,
                probe: GaussianPulse, pump: GaussianPulse | None, resolution: Resolution,
-               convolve: bool, e_lo: float, h: float, n_fine: int, order: int | None = None
-               ) -> tuple[Any, np.ndarray]:
+               convolve: bool, e_lo: float, h: float, n_fine: int, order: int | None = None,
+               **banded: Any) -> tuple[Any, np.ndarray]:
     """Energy broadening blocks and time matrix (without normaliser) of
     :meth:`.model.TRPESModel.broaden` for these grids (``order``: moments, default the
-    model's)."""
+    model's; ``banded``: ``block`` and ``cutoff`` of
+    :func:`._kernels_broadening.broadening_blocks`)."""
     resolution = check_resolution(resolution)
     probe = probe or model.probe
     sigma = None
@@ -248,7 +249,7 @@ def _operators(model: TRPESModel, kinetic_energies: np.ndarray, delays: np.ndarr
     bmat = KB.broadening_blocks(kinetic_energies, e_lo=e_lo, h=h, n_fine=n_fine,
                                 fwhm=model.fwhm(probe, resolution),
                                 order=model.order if order is None else order,
-                                fwhm_of=fwhm_of)
+                                fwhm_of=fwhm_of, **banded)
     return KRM.replicate_blocks(bmat), cmat
 
 
@@ -350,9 +351,9 @@ def bootstrap_map(
             w_traj=trajectory_weights(ens, weights=kind, pump=pump)[0],
             cross_section=opts["cross_section"], ionisation_shifts=ionisation_shifts,
             cmat=cmat, grid=replicates, budget=budget, progress=progress,
-            blocks_of=lambda e0, h0, n0, k0: _operators(
+            blocks_of=lambda e0, h0, n0, k0, **banded: _operators(
                 model, kinetic_energies, delays, e_lo=e0, h=h0, n_fine=n0, order=k0,
-                **ops)[0],
+                **banded, **ops)[0],
             normalise_of=lambda al, tot: _normalise({"alive": al, "total": tot},
                                                     normalise))
     if fused is None and isinstance(ens, Ensemble):  # one block: the model's own sticks

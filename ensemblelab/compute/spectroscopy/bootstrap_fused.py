@@ -58,6 +58,11 @@ EXACT = ReplicateGrid(order=None, bins_per_fwhm=None, dtype="float64")
 DEFAULT_GRID = FAST
 
 
+#: energy block and band cutoff of the broadening of float32 replicates (a relative
+#: size far below float32's rounding, 6e-8)
+F32_BLOCK, F32_CUTOFF = 8, 1e-9
+
+
 def can_fuse(ens: Any, *, cross_section: Any, decompose: str | None, absorbing: str) -> bool:
     """True when the fused bootstrap may apply (the layout is checked later)."""
     from ...data.ensemble import Ensemble
@@ -113,7 +118,8 @@ def fused_bootstrap_maps(ens: Any, model: Any, counts: np.ndarray, *,
     cmat : ndarray, shape (n_delays, n_time)
         Time matrix (without normaliser).
     blocks_of : callable
-        ``blocks_of(e_lo, h, n_fine, order)``: the banded broadening blocks
+        ``blocks_of(e_lo, h, n_fine, order, block=..., cutoff=...)``: the banded
+        broadening blocks
         (:func:`._kernels_replicate_maps.replicate_blocks`).
     normalise_of : callable
         ``normalise_of(alive, total)``: 1 / normaliser, shape (n_rep, n_time).
@@ -137,7 +143,10 @@ def fused_bootstrap_maps(ens: Any, model: Any, counts: np.ndarray, *,
     n_fine = n_fine_m if h == h_m else int(math.ceil(n_fine_m * h_m / h)) + 1
     e_lo = e_lo_m if h == h_m else e_lo_m - 0.5 * h_m + 0.5 * h  # same lower edge
     dtype = np.dtype(grid.dtype)
-    blocks = blocks_of(e_lo, h, n_fine, order)
+    # float32: broadening entries below its rounding left out, narrower energy blocks
+    # (fewer zeros multiplied; every time row of every resample is broadened)
+    blocks = blocks_of(e_lo, h, n_fine, order, **(
+        {} if dtype == np.float64 else {"block": F32_BLOCK, "cutoff": F32_CUTOFF}))
     n_traj, n_time = counts.shape[1], model.n_time
     n_e = len(kinetic_energies)
     # resample 0: every trajectory once (the unresampled ensemble), for the recentring
@@ -149,6 +158,10 @@ def fused_bootstrap_maps(ens: Any, model: Any, counts: np.ndarray, *,
     cap = budget // max(n_time * n_e * dtype.itemsize, 1)  # replicate rows of a chunk
     if n_rep > cap:
         n_rep = max(KBF.LANES, cap // KBF.LANES * KBF.LANES)
+    # whole multiplicities below 256 (always, in practice) are read as bytes: every stick
+    # reads its trajectory's row for every resample, a quarter of the memory traffic
+    small = bool(np.all(allc == np.round(allc))) and float(allc.max(initial=0.0)) < 256
+    rw_type = np.uint8 if small and allc.min(initial=0.0) >= 0 else dtype
     unit = np.zeros((n_traj, n_time))
     shifts = check_shifts(ionisation_shifts, ens.n_cation)
     out = np.zeros((1, len(cmat), n_e, n_pad))
@@ -163,7 +176,8 @@ def fused_bootstrap_maps(ens: Any, model: Any, counts: np.ndarray, *,
         for c, r0 in enumerate(range(0, n_pad, n_rep)):
             sub = allc[r0:r0 + n_rep]
             y = KBF.fused_replicates(
-                ens, layout=layout, w_traj=w_traj, rw=np.ascontiguousarray(sub.T, dtype),
+                ens, layout=layout, w_traj=w_traj, rw=np.ascontiguousarray(sub.T, rw_type),
+                dtype=dtype,
                 cross_section=cross_section, total_energy=probe.total_energy, tail=tail,
                 start=model.grid_start, dt=model.time_step, n_time=n_time, e_lo=e_lo, h=h,
                 n_fine=n_fine, order=order, shifts=shifts, blocks=blocks, n_energies=n_e,
