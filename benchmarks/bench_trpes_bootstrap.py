@@ -142,7 +142,7 @@ def main(argv: list[str] | None = None) -> int:
     print(f"  same, stick route (sorted sticks)         : {t_stick:.3f} s = "
           f"{t_stick / t_one:.1f}x one map; the default is {t_stick / t_boot:.1f}x faster")
     print(f"  peak resident memory growth (default)     : {rss1 - rss0:.0f} MB (replicate "
-          f"maps {args.n_boot * N_DELAYS * N_ENERGIES * 8 / 2**20:.0f} MB)")
+          f"maps {args.n_boot * N_DELAYS * N_ENERGIES * 4 / 2**20:.0f} MB in float32)")
     print(f"  median relative standard error (pixels > 5% of peak): "
           f"{mb.median_rel_se():.4f}")
     return 0

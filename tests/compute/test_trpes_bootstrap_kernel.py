@@ -246,10 +246,11 @@ def test_numpy_fallback_equals_the_compiled_path(monkeypatch):
 
 @pytest.mark.parametrize("convolve,chunk", [(True, 64), (False, 64), (True, 2)])
 def test_replicate_maps_equal_one_assemble_per_resample(convolve, chunk, monkeypatch):
-    """All resamples at once (energy products per time bin, time products over chunks
-    of bins) against _kernels_broadening.assemble called once per resample with its
-    normaliser."""
-    monkeypatch.setattr(KRM, "TIME_CHUNK", chunk)
+    """All resamples at once (energy products per time bin, time products over blocks
+    of delays and of energies) against _kernels_broadening.assemble called once per
+    resample with its normaliser."""
+    monkeypatch.setattr(KRM, "DELAY_CHUNK", chunk)
+    monkeypatch.setattr(KRM, "APPLY_BYTES", 1 if chunk == 2 else KRM.APPLY_BYTES)
     rng = np.random.default_rng(7)
     n_c, n_time, n_fine, order, n_rep, h = 2, 9, 40, 8, 5, 0.05
     acc = rng.random((n_c, n_time, n_fine, order, n_rep))
@@ -269,3 +270,28 @@ def test_replicate_maps_equal_one_assemble_per_resample(convolve, chunk, monkeyp
     for r in range(n_rep):
         ref = KB.assemble(KBS.per_resample(acc, r), blocks, cmat * norm[r][None, :])
         np.testing.assert_allclose(out[..., r], ref, rtol=0, atol=1e-12 * np.abs(ref).max())
+
+
+@pytest.mark.parametrize("dtype", [np.float64, np.float32])
+@pytest.mark.parametrize("chunk,nbytes", [(16, 512 << 10), (4, 1)])
+def test_apply_time_into_a_strided_slice_of_resamples(dtype, chunk, nbytes, monkeypatch):
+    """The fused route adds a chunk of resamples into ``out[..., r0:r1]`` (not
+    contiguous): the same numbers as a contiguous output, computed independently here
+    as an einsum of the normalised replicates with the time matrix (not published)."""
+    monkeypatch.setattr(KRM, "DELAY_CHUNK", chunk)  # 1 or 3 blocks of delays
+    monkeypatch.setattr(KRM, "APPLY_BYTES", nbytes)  # all energies, or one per block
+    rng = np.random.default_rng(11)
+    n_win, n_e, n_rep = 30, 7, 6
+    y = rng.random((1, n_win, n_e, n_rep)).astype(dtype)
+    y0 = y.copy()
+    times = np.arange(n_win) * 1.0
+    cmat = KB.time_matrix(np.linspace(-5.0, 35.0, 9), times, sigma=2.0, t_known=29.0)
+    norm = rng.uniform(0.5, 2.0, (n_rep, n_win))
+    ref = np.einsum("dt,cter,rt->cder", cmat, y.astype(np.float64), norm)
+    out = np.full((1, 9, n_e, n_rep + 4), 0.25)
+    KRM.apply_time(y, cmat.astype(dtype), norm, out[..., 2:2 + n_rep], n_threads=2)
+    tol = 1e-12 if dtype == np.float64 else 1e-5
+    np.testing.assert_allclose(out[..., 2:2 + n_rep] - 0.25, ref, rtol=0,
+                               atol=tol * np.abs(ref).max())
+    assert np.all(out[..., :2] == 0.25) and np.all(out[..., 2 + n_rep:] == 0.25)
+    np.testing.assert_array_equal(y, y0)  # the input is not modified

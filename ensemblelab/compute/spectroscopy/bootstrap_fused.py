@@ -133,6 +133,7 @@ def fused_bootstrap_maps(ens: Any, model: Any, counts: np.ndarray, *,
     Returns
     -------
     ndarray, shape (n_delays, n_energies, n_boot), or None
+        In the precision of ``grid`` (float32 replicates stay float32).
     """
     layout = block_layout(ens)
     if layout is None or not layout.sorted or layout.starts is None:
@@ -164,7 +165,9 @@ def fused_bootstrap_maps(ens: Any, model: Any, counts: np.ndarray, *,
     rw_type = np.uint8 if small and allc.min(initial=0.0) >= 0 else dtype
     unit = np.zeros((n_traj, n_time))
     shifts = check_shifts(ionisation_shifts, ens.n_cation)
-    out = np.zeros((1, len(cmat), n_e, n_pad))
+    # replicate maps in the replicates' precision (float32: half the memory traffic of the
+    # time products, the recentring and the percentiles; the percentiles are float64)
+    out = np.zeros((1, len(cmat), n_e, n_pad), dtype=dtype)
     c32 = np.ascontiguousarray(cmat, dtype=dtype)
     tail = THRESHOLD_TAIL * probe.effective_spectral_fwhm * FWHM_TO_SIGMA
     bar = None
