@@ -39,8 +39,11 @@ def test_browser_uncertainty_toggle_draws_layer_and_bands(browser_page):
     # the bands: one filled path in each cut figure
     for fig in (".ensemblelab-delay-cut", ".ensemblelab-energy-cut"):
         page.wait_for_function(f"() => ({BANDS})('{fig}') > 0", timeout=30_000)
-    caption = page.locator(".ensemblelab-cut-caption").first.inner_text()
-    assert "bootstrap interval of each cut" in caption
+    # the caption follows the bands in a later message (a layer change redraws the cuts,
+    # which resets the caption before the bands' text is set again): wait for it
+    page.wait_for_function(
+        "() => (document.querySelector('.ensemblelab-cut-caption')?.innerText || '')"
+        ".includes('bootstrap interval of each cut')", timeout=30_000)
     screenshot(page, "uncertainty_layer", CONTROLS)
     assert "error" not in page.locator(".ensemblelab-messages").inner_text().lower()
     errs = unexpected(page.errors)
