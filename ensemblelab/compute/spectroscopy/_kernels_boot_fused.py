@@ -119,12 +119,13 @@ def _deposit_bucket(sb, sd, sv, sf, sr, s0, s1, acc, cur, nxt, row_len, n_rep, o
     ``nxt`` (second share) of the flat two-row accumulator (``row_len`` values per
     row), for every resample."""
     nr = np.uint64(n_rep)
+    nro = np.uint64(n_rep * order)  # accumulator values per fine bin
     c0 = np.uint64(cur * row_len)
     c1 = np.uint64(nxt * row_len)
     for q in range(s0, s1):
         f = sf[q]
         rb = np.uint64(sr[q]) * nr
-        off = np.uint64(sb[q]) * nr
+        off = np.uint64(sb[q]) * nro
         if f >= 0.0:
             _add_moments(acc, c0 + off, nr, order, sv[q] * (1.0 - f), sd[q], rw, rb, coef)
         else:
@@ -168,22 +169,23 @@ def _deposit_sorted(sb, sd, sv, sf, sr, s0, s1, perm, cnt, acc, cur, nxt, row_le
     for q in range(n_b + 1):
         cnt[q] = 0
     for q in range(s0, s1):
-        cnt[sb[q] // order + 1] += 1
+        cnt[sb[q] + 1] += 1
     for q in range(n_b):
         cnt[q + 1] += cnt[q]
     for q in range(s0, s1):
-        b = sb[q] // order
+        b = sb[q]
         perm[cnt[b]] = q
         cnt[b] += 1
     n = s1 - s0
     nr = np.uint64(n_rep)
+    nro = np.uint64(n_rep * order)
     c0 = np.uint64(cur * row_len)
     c1 = np.uint64(nxt * row_len)
     has_next = j + 1 < n_time
     p = 0
     while p < n:
         q = perm[p]
-        off = np.uint64(sb[q]) * nr
+        off = np.uint64(sb[q]) * nro
         if p + 3 < n and sb[perm[p + 3]] == sb[q]:  # sorted: all four in one bin
             r0 = np.uint64(sr[q]) * nr
             r1 = np.uint64(sr[perm[p + 1]]) * nr
@@ -218,7 +220,7 @@ def _run(time, active, starts, w_traj, energies, cat, dyson, by_state, shifts, k
 
     Tiles of ``tile`` bins: each trajectory's snapshots of the tile are read in a row
     (contiguous memory) and their sticks put into one bucket per bin (a buffer of
-    (offset, delta, weight, split, trajectory)); then bin by bin the bucket is added
+    (fine bin, delta, weight, split, trajectory)); then bin by bin the bucket is added
     to the two-row accumulator and the finished row broadened. ``blk`` (n_blocks, 5):
     ``j0, j1, lo, hi, offset`` of each banded block, its matrix ``mats[offset:]`` of
     shape ``(j1 - j0, (hi - lo) * order)``. ``acc`` (2, n_fine * order, n_rep) is
@@ -324,7 +326,7 @@ def _run(time, active, starts, w_traj, energies, cat, dyson, by_state, shifts, k
                     bb = np.int64(p)
                     if first and f > 0.0 and jj + 1 >= n_time:
                         counts[0] += 1
-                    sb[pos] = bb * order
+                    sb[pos] = bb  # fine bin (no division by the order when sorting)
                     sd[pos] = p - bb - 0.5
                     sv[pos] = w * sig
                     sf[pos] = f if first else -f
