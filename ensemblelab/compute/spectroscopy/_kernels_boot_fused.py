@@ -474,7 +474,10 @@ def fused_replicates(block: Any, *, layout: Any, w_traj: np.ndarray, rw: np.ndar
     code = cross_section_code(cross_section)
     assert code is not None
     dtype = np.dtype(rw.dtype if dtype is None else dtype)
-    assert dtype in (np.float32, np.float64) and rw.dtype in (np.uint8, dtype)
+    if dtype not in (np.float32, np.float64) or rw.dtype not in (np.uint8, dtype):
+        raise TypeError(f"fused_replicates: multiplicities of dtype {rw.dtype} with "
+                        f"accumulator dtype {dtype}; expected uint8 or the accumulator's "
+                        "dtype, and float32 or float64 for the accumulator.")
     a = block_arrays(block, shifts)
     time = np.ascontiguousarray(block.snapshots["time"].to_numpy(), dtype=np.float64)
     w_traj = np.ascontiguousarray(w_traj, dtype=np.float64)
